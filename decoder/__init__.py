@@ -1,0 +1,1 @@
+"""placeloop's pure core: environments, place model, decoding, binning, zones, triggers, pipeline."""

@@ -1,0 +1,278 @@
+"""Typed input messages: what the pipeline consumes.
+
+The wire codec (``rig_adapters.protocol``) turns bytes into these and back;
+the pipeline never sees bytes. Every message carries the name of its source
+and that source's sequence number, so that gaps can be counted, and its
+timestamps are acquisition (data) time in float seconds on the source's clock.
+
+Arrays are validated once, in the constructors below, so that the core can
+trust them: right dtype, one dimension, equal lengths, finite times.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+#: Largest number of spikes or frames one message may carry; a batch this
+#: large covers seconds of a 1000-unit recording, so anything bigger is a
+#: malformed or hostile message rather than data.
+MAX_BATCH = 200_000
+
+SOURCE_KINDS = ("spikes", "tracker", "sync", "control")
+
+
+class MessageError(ValueError):
+    """A message that is well-formed on the wire but makes no sense as data."""
+
+
+def _vector(name: str, values: Any, dtype: Any) -> np.ndarray:
+    arr = np.asarray(values)
+    if arr.ndim != 1:
+        raise MessageError(f"{name} must be one-dimensional, got shape {arr.shape}")
+    if arr.size > MAX_BATCH:
+        raise MessageError(f"{name} has {arr.size} elements, more than the limit of {MAX_BATCH}")
+    try:
+        out = arr.astype(dtype, casting="same_kind" if arr.dtype.kind == np.dtype(dtype).kind else "unsafe")
+    except (TypeError, ValueError) as exc:
+        raise MessageError(f"{name} cannot be read as {np.dtype(dtype).name}: {exc}") from None
+    if np.dtype(dtype).kind == "i" and arr.dtype.kind == "f":
+        if not np.all(np.isfinite(arr)) or not np.array_equal(arr, np.round(arr)):
+            raise MessageError(f"{name} must hold whole numbers")
+    out = np.ascontiguousarray(out)
+    out.setflags(write=False)
+    return out
+
+
+def _finite_times(name: str, t_s: np.ndarray) -> None:
+    if not np.all(np.isfinite(t_s)):
+        raise MessageError(f"{name} holds a NaN or infinite timestamp")
+
+
+def _source(source: Any) -> str:
+    if not isinstance(source, str) or not source or len(source) > 64:
+        raise MessageError(f"source must be a non-empty name of at most 64 characters, got {source!r}")
+    return source
+
+
+def _seq(seq: Any) -> int:
+    if isinstance(seq, bool) or not isinstance(seq, (int, np.integer)) or seq < 0:
+        raise MessageError(f"seq must be a non-negative integer, got {seq!r}")
+    return int(seq)
+
+
+@dataclass(frozen=True, slots=True)
+class SourceAnnounce:
+    """A source says what it is: its kind, its units, its clock.
+
+    Parameters
+    ----------
+    source : str
+        Name of the source, unique on the rig (for example ``"ephys"``).
+    seq : int
+        The source's sequence number.
+    kind : {"spikes", "tracker", "sync", "control"}
+    clock : str
+        Name of the clock the source's timestamps run on.
+    sample_rate_hz : float
+        Sampling rate of that clock (30 kHz for an acquisition system,
+        the frame rate for a tracker).
+    unit_ids : ndarray of int64, shape (n_units,)
+        The units a spike source will send; empty for other kinds.
+    """
+
+    source: str
+    seq: int
+    kind: str
+    clock: str
+    sample_rate_hz: float
+    unit_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        if self.kind not in SOURCE_KINDS:
+            raise MessageError(f"kind must be one of {SOURCE_KINDS}, got {self.kind!r}")
+        if not isinstance(self.clock, str) or not self.clock:
+            raise MessageError(f"clock must be a non-empty name, got {self.clock!r}")
+        rate = float(self.sample_rate_hz)
+        if not np.isfinite(rate) or rate <= 0:
+            raise MessageError(f"sample_rate_hz must be positive, got {self.sample_rate_hz!r}")
+        object.__setattr__(self, "sample_rate_hz", rate)
+        ids = _vector("unit_ids", self.unit_ids, np.int64)
+        if np.unique(ids).size != ids.size:
+            raise MessageError("unit_ids holds a repeated id")
+        object.__setattr__(self, "unit_ids", ids)
+
+
+@dataclass(frozen=True, slots=True)
+class SpikeBatch:
+    """Spikes from one source, in acquisition-time order.
+
+    Parameters
+    ----------
+    t_s : ndarray of float64, shape (n,)
+        Spike times, non-decreasing within the batch.
+    unit_id : ndarray of int64, shape (n,)
+        The unit of each spike.
+    """
+
+    source: str
+    seq: int
+    t_s: np.ndarray
+    unit_id: np.ndarray
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        t = _vector("t_s", self.t_s, np.float64)
+        u = _vector("unit_id", self.unit_id, np.int64)
+        if t.size != u.size:
+            raise MessageError(f"t_s has {t.size} spikes but unit_id has {u.size}")
+        _finite_times("t_s", t)
+        if t.size > 1 and np.any(np.diff(t) < 0):
+            raise MessageError("spike times within a batch must not decrease")
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "unit_id", u)
+
+
+@dataclass(frozen=True, slots=True)
+class TrackerFrames:
+    """One or more tracker frames.
+
+    Parameters
+    ----------
+    t_s : ndarray of float64, shape (n,)
+        Frame times, strictly increasing.
+    xy_cm : ndarray of float64, shape (n, 2)
+        Position in the arena's frame; NaN where the tracker lost the animal.
+    head_dir_rad : ndarray of float64, shape (n,) or None
+        Head direction, NaN where unknown.
+    quality : ndarray of uint8, shape (n,)
+        0 for a lost frame, 1..255 for increasing confidence. A frame with
+        quality 0 or a NaN coordinate is treated as lost.
+    """
+
+    source: str
+    seq: int
+    t_s: np.ndarray
+    xy_cm: np.ndarray
+    head_dir_rad: np.ndarray | None = None
+    quality: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        t = _vector("t_s", self.t_s, np.float64)
+        _finite_times("t_s", t)
+        if t.size > 1 and np.any(np.diff(t) <= 0):
+            raise MessageError("frame times within a message must increase")
+        xy = np.asarray(self.xy_cm, dtype=np.float64)
+        if xy.shape != (t.size, 2):
+            raise MessageError(f"xy_cm must have shape ({t.size}, 2), got {xy.shape}")
+        if np.any(np.isinf(xy)):
+            raise MessageError("xy_cm holds an infinite coordinate; send NaN for a lost frame")
+        xy = np.ascontiguousarray(xy)
+        if self.quality is None:
+            q = np.where(np.all(np.isfinite(xy), axis=1), 1, 0).astype(np.uint8)
+        else:
+            q = _vector("quality", self.quality, np.int64)
+            if q.size != t.size or np.any((q < 0) | (q > 255)):
+                raise MessageError("quality must give one value in 0..255 per frame")
+            q = q.astype(np.uint8)
+        lost = (q == 0) | ~np.all(np.isfinite(xy), axis=1)
+        if np.any(lost):
+            xy = xy.copy()
+            xy[lost] = np.nan
+            q = q.copy()
+            q[lost] = 0
+        xy.setflags(write=False)
+        q.setflags(write=False)
+        hd = None
+        if self.head_dir_rad is not None:
+            hd = _vector("head_dir_rad", self.head_dir_rad, np.float64)
+            if hd.size != t.size:
+                raise MessageError("head_dir_rad must give one value per frame")
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "xy_cm", xy)
+        object.__setattr__(self, "head_dir_rad", hd)
+        object.__setattr__(self, "quality", q)
+
+
+@dataclass(frozen=True, slots=True)
+class Heartbeat:
+    """A source's clock is at ``t_s`` and it has sent everything before it."""
+
+    source: str
+    seq: int
+    t_s: float
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        t = float(self.t_s)
+        if not np.isfinite(t):
+            raise MessageError("heartbeat t_s must be finite")
+        object.__setattr__(self, "t_s", t)
+
+
+@dataclass(frozen=True, slots=True)
+class SyncPulse:
+    """A shared sync pulse seen by one source, identified by ``pulse_id``.
+
+    The same pulse seen by two sources (same ``pulse_id``) ties their clocks.
+    """
+
+    source: str
+    seq: int
+    t_s: float
+    pulse_id: int
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        t = float(self.t_s)
+        if not np.isfinite(t):
+            raise MessageError("sync t_s must be finite")
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "pulse_id", _seq(self.pulse_id))
+
+
+CONTROL_COMMANDS = (
+    "start_learning",
+    "stop_learning",
+    "fit",
+    "load_model",
+    "arm",
+    "disarm",
+    "status",
+    "stall",
+)
+
+
+@dataclass(frozen=True, slots=True)
+class ControlCommand:
+    """A command from the experiment-control script or the shell.
+
+    Control commands are recorded and replayed like any input, so that a
+    replay passes through the same session states at the same data time.
+    ``stall`` is raised by the shell's watchdog when a stream goes quiet.
+    """
+
+    source: str
+    seq: int
+    command: str
+    args: dict = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "source", _source(self.source))
+        object.__setattr__(self, "seq", _seq(self.seq))
+        if self.command not in CONTROL_COMMANDS:
+            raise MessageError(f"command must be one of {CONTROL_COMMANDS}, got {self.command!r}")
+        if not isinstance(self.args, dict):
+            raise MessageError("args must be a map")
+
+
+InputMessage = SourceAnnounce | SpikeBatch | TrackerFrames | Heartbeat | SyncPulse | ControlCommand

@@ -1,0 +1,71 @@
+"""Validation of the typed input messages (decoder.messages)."""
+
+import numpy as np
+import pytest
+
+from decoder.messages import (
+    MAX_BATCH,
+    ControlCommand,
+    Heartbeat,
+    MessageError,
+    SourceAnnounce,
+    SpikeBatch,
+    SyncPulse,
+    TrackerFrames,
+)
+
+
+def test_spike_batch_arrays_are_typed_and_read_only():
+    batch = SpikeBatch("ephys", 3, [0.1, 0.2], [101, 102])
+    assert batch.t_s.dtype == np.float64 and batch.unit_id.dtype == np.int64
+    with pytest.raises(ValueError):
+        batch.t_s[0] = 1.0
+
+
+@pytest.mark.parametrize(
+    "t_s, unit_id, words",
+    [
+        ([0.1, np.nan], [1, 2], "NaN or infinite"),
+        ([0.1, np.inf], [1, 2], "NaN or infinite"),
+        ([0.2, 0.1], [1, 2], "must not decrease"),
+        ([0.1, 0.2], [1], "has 1"),
+        ([[0.1]], [1], "one-dimensional"),
+        ([0.1], [1.5], "whole numbers"),
+    ],
+)
+def test_spike_batch_rejects_bad_arrays_with_a_reason(t_s, unit_id, words):
+    with pytest.raises(MessageError, match=words):
+        SpikeBatch("ephys", 0, t_s, unit_id)
+
+
+def test_oversized_batch_is_rejected():
+    n = MAX_BATCH + 1
+    with pytest.raises(MessageError, match="limit"):
+        SpikeBatch("ephys", 0, np.zeros(n), np.zeros(n, np.int64))
+
+
+def test_lost_frames_become_nan_with_quality_zero():
+    frames = TrackerFrames("cam", 0, [1.0, 1.02], [[np.nan, 3.0], [4.0, 5.0]])
+    assert np.all(np.isnan(frames.xy_cm[0])) and frames.quality.tolist() == [0, 1]
+    frames = TrackerFrames("cam", 0, [1.0], [[4.0, 5.0]], quality=[0])
+    assert np.all(np.isnan(frames.xy_cm[0]))
+
+
+def test_infinite_position_is_an_error_not_a_lost_frame():
+    with pytest.raises(MessageError, match="infinite"):
+        TrackerFrames("cam", 0, [1.0], [[np.inf, 0.0]])
+
+
+def test_scalar_messages_validate():
+    assert Heartbeat("ephys", 1, 2).t_s == 2.0
+    assert SyncPulse("ephys", 1, 2.5, 7).pulse_id == 7
+    with pytest.raises(MessageError):
+        Heartbeat("ephys", -1, 2.0)
+    with pytest.raises(MessageError):
+        SyncPulse("ephys", 1, float("nan"), 7)
+    with pytest.raises(MessageError, match="command"):
+        ControlCommand("ctl", 0, "launch")
+    with pytest.raises(MessageError, match="repeated"):
+        SourceAnnounce("ephys", 0, "spikes", "acq", 30000.0, [1, 1])
+    with pytest.raises(MessageError, match="source"):
+        Heartbeat("", 0, 1.0)
