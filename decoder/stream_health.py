@@ -1,0 +1,59 @@
+"""Per-source sequence numbers and message counts: gaps, duplicates, restarts."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+
+@dataclass
+class SourceHealth:
+    """What one source has sent so far."""
+
+    messages: int = 0
+    last_seq: int = -1
+    gaps: int = 0
+    stale: int = 0
+    restarts: int = 0
+    last_data_t_s: float = float("-inf")
+
+
+@dataclass
+class StreamHealth:
+    """Sequence-number bookkeeping for every source.
+
+    A source numbers its messages 0, 1, 2, ... A jump forward is a gap (the
+    missing messages are counted); a number not above the last one is a
+    duplicate or out-of-order message and is dropped; a return to 0 is a
+    restarted publisher.
+    """
+
+    sources: dict[str, SourceHealth] = field(default_factory=dict)
+
+    def accept(self, source: str, seq: int) -> str:
+        """Classify a message: ``"ok"``, ``"gap"``, ``"restart"`` or ``"stale"`` (drop it)."""
+        health = self.sources.setdefault(source, SourceHealth())
+        verdict = "ok"
+        if health.last_seq >= 0:
+            if seq == 0 and health.last_seq > 0:
+                health.restarts += 1
+                verdict = "restart"
+            elif seq <= health.last_seq:
+                health.stale += 1
+                return "stale"
+            elif seq > health.last_seq + 1:
+                health.gaps += seq - health.last_seq - 1
+                verdict = "gap"
+        health.last_seq = seq
+        health.messages += 1
+        return verdict
+
+    @property
+    def total_gaps(self) -> int:
+        return sum(h.gaps for h in self.sources.values())
+
+    @property
+    def total_stale(self) -> int:
+        return sum(h.stale for h in self.sources.values())
+
+    def summary(self) -> dict[str, dict]:
+        return {name: vars(h).copy() for name, h in self.sources.items()}

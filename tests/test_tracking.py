@@ -1,0 +1,29 @@
+"""Tracked-position lookup and running speed (decoder.tracking)."""
+
+import numpy as np
+
+from decoder.tracking import TrackHistory
+
+
+def test_speed_of_a_constant_velocity_run():
+    hist = TrackHistory(speed_window_s=0.25)
+    t = np.arange(0, 2, 0.02)
+    xy = np.column_stack([20.0 * t, np.zeros_like(t)])   # 20 cm/s along x
+    hist.add(t, xy)
+    pos, speed = hist.at(1.0)
+    np.testing.assert_allclose(pos, [20.0, 0.0])
+    # Displacement over the lag divided by the lag: exact for straight, uniform motion.
+    assert abs(speed - 20.0) < 1e-9
+
+
+def test_lost_old_and_out_of_order_frames():
+    hist = TrackHistory(max_age_s=0.1)
+    hist.add(np.array([0.0, 0.02]), np.array([[1.0, 1.0], [np.nan, np.nan]]))
+    hist.add(np.array([0.01]), np.array([[5.0, 5.0]]))
+    assert hist.out_of_order == 1
+    pos, _ = hist.at(0.05)
+    np.testing.assert_allclose(pos, [1.0, 1.0])          # the lost frame is skipped
+    pos, speed = hist.at(0.5)
+    assert np.all(np.isnan(pos)) and np.isnan(speed)     # too old to trust
+    pos, _ = hist.at(-1.0)
+    assert np.all(np.isnan(pos))
