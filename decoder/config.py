@@ -1,0 +1,323 @@
+"""Experiment configuration: TOML read into frozen dataclasses.
+
+Every option is documented once, beside its field, with its unit. Defaults
+and validation live here and nowhere else; a bad value raises
+:class:`ConfigError` naming the table, the key and what was expected.
+
+A config file has these tables (all optional but ``[environment]``)::
+
+    [environment]   geometry and bin size          -> build_environment()
+    [model]         place-model learning settings  -> ModelSettings
+    [decoder]       window, step, prior            -> DecoderSettings
+    [sources]       which stream is which          -> SourceSettings
+    [session]       the automatic session plan     -> SessionSettings
+    [safety]        caps beneath every rule        -> decoder.triggers.SafetyCaps
+    [[zones]]       target zones                   -> decoder.zones
+    [[rules]]       trigger rules                  -> decoder.triggers.TriggerRule
+    [endpoints]     ZeroMQ endpoints (shell only)  -> EndpointSettings
+    [ttl]           serial TTL output (shell only) -> TtlSettings
+    [simulation]    the simulated rig (shell only), read by rig_adapters.simulation
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from decoder.environments import Arena, Environment, LinearTrack, TrackGraph
+from decoder.triggers import SafetyCaps, TriggerRule
+from decoder.zones import zone_from_dict
+
+
+class ConfigError(ValueError):
+    """A configuration value that cannot be used; the message names it."""
+
+
+def _from_table(cls, table: dict | None, where: str):
+    """Build dataclass ``cls`` from a TOML table, rejecting unknown keys."""
+    table = dict(table or {})
+    names = {f.name for f in dataclasses.fields(cls)}
+    unknown = sorted(set(table) - names)
+    if unknown:
+        raise ConfigError(f"[{where}] has unknown key(s) {unknown}; known keys are {sorted(names)}")
+    try:
+        return cls(**table)
+    except ConfigError:
+        raise
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"[{where}]: {exc}") from None
+
+
+def _positive(where: str, **values: float) -> None:
+    for key, value in values.items():
+        if not isinstance(value, (int, float)) or isinstance(value, bool) or not value > 0:
+            raise ConfigError(f"[{where}] {key} must be a positive number, got {value!r}")
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    """How the place model learns (see ``decoder.place_model.PlaceModel``)."""
+
+    #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s.
+    min_speed_cm_s: float = 3.0
+    #: Gaussian smoothing of occupancy and spike counts, s.d. in cm.
+    smooth_cm: float = 4.0
+    #: Bins occupied less than this (s) are left out of the decoder's map.
+    min_occupancy_s: float = 0.1
+    #: Floor under every rate (Hz) so that no likelihood is minus infinity.
+    rate_floor_hz: float = 0.01
+    #: Number of blocked cross-validation folds.
+    cv_folds: int = 5
+    #: Length of one cross-validation block of time (s).
+    cv_block_s: float = 30.0
+
+    def __post_init__(self) -> None:
+        _positive("model", smooth_cm=self.smooth_cm, min_occupancy_s=self.min_occupancy_s,
+                  rate_floor_hz=self.rate_floor_hz, cv_block_s=self.cv_block_s)
+        if self.min_speed_cm_s < 0:
+            raise ConfigError(f"[model] min_speed_cm_s must be >= 0, got {self.min_speed_cm_s}")
+        if int(self.cv_folds) != self.cv_folds or self.cv_folds < 2:
+            raise ConfigError(f"[model] cv_folds must be an integer >= 2, got {self.cv_folds}")
+
+    def place_model_kwargs(self) -> dict[str, Any]:
+        return {
+            "min_speed_cm_s": self.min_speed_cm_s,
+            "smooth_cm": self.smooth_cm,
+            "min_occupancy_s": self.min_occupancy_s,
+            "rate_floor_hz": self.rate_floor_hz,
+            "cv_folds": int(self.cv_folds),
+            "cv_block_s": self.cv_block_s,
+        }
+
+
+@dataclass(frozen=True)
+class DecoderSettings:
+    """The decoding step (see ``decoder.decoding.BayesDecoder``)."""
+
+    #: Length of the spike-count window (s); 0.2 for behaviour, 0.02 for fast events.
+    window_s: float = 0.2
+    #: The window moves by this much each step (s); steps end at multiples of it.
+    step_s: float = 0.02
+    #: "uniform" or "state_space" (causal random-walk filter).
+    prior: str = "state_space"
+    #: S.d. of the random walk per step (cm), for the state-space prior.
+    random_walk_sd_cm: float = 3.0
+    #: A step closes when the spike stream's data time passes its end by this much (s).
+    allowed_lateness_s: float = 0.005
+
+    def __post_init__(self) -> None:
+        _positive("decoder", window_s=self.window_s, step_s=self.step_s,
+                  random_walk_sd_cm=self.random_walk_sd_cm)
+        if self.prior not in ("uniform", "state_space"):
+            raise ConfigError(f"[decoder] prior must be 'uniform' or 'state_space', got {self.prior!r}")
+        if self.step_s > self.window_s:
+            raise ConfigError(f"[decoder] step_s ({self.step_s}) must not exceed window_s ({self.window_s})")
+        if not 0 <= self.allowed_lateness_s <= 1.0:
+            raise ConfigError(f"[decoder] allowed_lateness_s must be within 0..1 s, got {self.allowed_lateness_s}")
+
+
+@dataclass(frozen=True)
+class SourceSettings:
+    """Which announced source is which stream."""
+
+    #: Source name of the spike stream; its clock is the pipeline's reference clock.
+    spikes: str = "ephys"
+    #: Source name of the video tracker.
+    tracker: str = "tracker"
+    #: Optional source of the true position (simulated rigs only); used for scoring, never decoding.
+    truth: str = ""
+    #: Largest allowed disagreement between sync pulses and the clock fit (s).
+    clock_tolerance_s: float = 0.004
+
+    def __post_init__(self) -> None:
+        if not self.spikes or not self.tracker or self.spikes == self.tracker:
+            raise ConfigError("[sources] spikes and tracker must be two different, non-empty source names")
+        _positive("sources", clock_tolerance_s=self.clock_tolerance_s)
+
+
+@dataclass(frozen=True)
+class SessionSettings:
+    """The automatic session plan, in data time; all off by default.
+
+    With ``learn_s > 0`` the session starts learning at the first data, fits
+    after ``learn_s`` seconds and, with ``arm_after_fit``, arms the triggers.
+    The same plan replays identically because it runs on data time.
+    """
+
+    #: Seconds of data to learn from before fitting; 0 waits for control commands.
+    learn_s: float = 0.0
+    #: Arm the triggers as soon as the model is fitted (demos and dry runs).
+    arm_after_fit: bool = False
+    #: Compute the cross-validated error at fitting time (costs a few seconds).
+    cross_validate: bool = True
+    #: An event counts as false when the true (or tracked) position is farther than this from its zone (cm).
+    false_margin_cm: float = 10.0
+
+    def __post_init__(self) -> None:
+        if self.learn_s < 0:
+            raise ConfigError(f"[session] learn_s must be >= 0, got {self.learn_s}")
+        if self.false_margin_cm < 0:
+            raise ConfigError(f"[session] false_margin_cm must be >= 0, got {self.false_margin_cm}")
+
+
+@dataclass(frozen=True)
+class EndpointSettings:
+    """ZeroMQ endpoints. Loopback unless an interface is named explicitly."""
+
+    #: Rig publishers placeloop connects its SUB socket to.
+    rig: tuple[str, ...] = ("tcp://127.0.0.1:5770",)
+    #: Where placeloop binds its PUB socket for trigger events.
+    events: str = "tcp://127.0.0.1:5771"
+    #: Where placeloop binds its PUB socket for the decoder's state (monitor).
+    state: str = "tcp://127.0.0.1:5772"
+    #: Where placeloop binds its REP socket for control commands.
+    control: str = "tcp://127.0.0.1:5773"
+    #: Set to true to allow binding to an interface other than loopback.
+    allow_remote: bool = False
+
+    def __post_init__(self) -> None:
+        rig = (self.rig,) if isinstance(self.rig, str) else tuple(self.rig)
+        object.__setattr__(self, "rig", rig)
+        for name in ("events", "state", "control"):
+            endpoint = getattr(self, name)
+            if not self.allow_remote and not is_loopback_endpoint(endpoint):
+                raise ConfigError(
+                    f"[endpoints] {name} = {endpoint!r} is not on loopback; set allow_remote = true "
+                    "to bind another interface (it exposes the socket to that network)"
+                )
+
+
+def is_loopback_endpoint(endpoint: str) -> bool:
+    """True for ``tcp://127.x.x.x:port``, ``tcp://localhost:port``, ``ipc://`` and ``inproc://``."""
+    if endpoint.startswith(("ipc://", "inproc://")):
+        return True
+    if not endpoint.startswith("tcp://"):
+        return False
+    host = endpoint[len("tcp://"):].rsplit(":", 1)[0]
+    return host.startswith("127.") or host in ("localhost", "[::1]")
+
+
+@dataclass(frozen=True)
+class TtlSettings:
+    """Optional TTL pulse through a serial device for each event."""
+
+    #: pyserial URL or device path, e.g. "/dev/ttyACM0" or "loop://"; empty for none.
+    device: str = ""
+    #: Baud rate of the device.
+    baud: int = 115200
+    #: Byte written to the device for each event (the device turns it into a pulse).
+    pulse_byte: int = 0x31
+
+    def __post_init__(self) -> None:
+        if not 0 <= self.pulse_byte <= 255:
+            raise ConfigError(f"[ttl] pulse_byte must be 0..255, got {self.pulse_byte}")
+
+
+@dataclass(frozen=True)
+class ExperimentConfig:
+    """One experiment: the whole TOML file, validated."""
+
+    environment: Environment
+    model: ModelSettings = field(default_factory=ModelSettings)
+    decoder: DecoderSettings = field(default_factory=DecoderSettings)
+    sources: SourceSettings = field(default_factory=SourceSettings)
+    session: SessionSettings = field(default_factory=SessionSettings)
+    safety: SafetyCaps = field(default_factory=SafetyCaps)
+    zones: tuple = ()
+    rules: tuple[TriggerRule, ...] = ()
+    endpoints: EndpointSettings = field(default_factory=EndpointSettings)
+    ttl: TtlSettings = field(default_factory=TtlSettings)
+    #: The raw ``[simulation]`` table, read by the simulated rig.
+    simulation: dict = field(default_factory=dict)
+    #: The raw TOML text, stored beside a session log.
+    source_text: str = ""
+
+    def zone_names(self) -> tuple[str, ...]:
+        return tuple(z.name for z in self.zones)
+
+
+def build_environment(table: dict) -> Environment:
+    """Build the environment described by an ``[environment]`` table.
+
+    ``kind`` is one of ``rectangle`` (width_cm, height_cm, origin_cm),
+    ``circle`` (center_cm, radius_cm), ``polygon`` (vertices_cm),
+    ``linear_track`` (start_cm, end_cm, max_distance_cm) or ``graph``
+    (nodes_cm, edges, max_distance_cm); all take ``bin_cm``.
+    """
+    table = dict(table or {})
+    kind = table.pop("kind", None)
+    builders = {
+        "rectangle": lambda t: Arena.rectangle(**t),
+        "circle": lambda t: Arena.circle(**t),
+        "polygon": lambda t: Arena.polygon(**t),
+        "linear_track": lambda t: LinearTrack(**t),
+        "graph": lambda t: TrackGraph(**{**t, "edges": [tuple(e) for e in t.get("edges", [])]}),
+    }
+    if kind not in builders:
+        raise ConfigError(f"[environment] kind must be one of {sorted(builders)}, got {kind!r}")
+    try:
+        return builders[kind](table)
+    except TypeError as exc:
+        raise ConfigError(f"[environment] ({kind}): {exc}") from None
+    except ValueError as exc:
+        raise ConfigError(f"[environment] ({kind}): {exc}") from None
+
+
+def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
+    """Parse and validate the TOML text of an experiment config."""
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{where} is not valid TOML: {exc}") from None
+    known = {"environment", "model", "decoder", "sources", "session", "safety", "zones",
+             "rules", "endpoints", "ttl", "simulation"}
+    unknown = sorted(set(doc) - known)
+    if unknown:
+        raise ConfigError(f"{where} has unknown table(s) {unknown}; known tables are {sorted(known)}")
+    if "environment" not in doc:
+        raise ConfigError(f"{where} has no [environment] table")
+    environment = build_environment(doc["environment"])
+    zones = []
+    for i, zone_table in enumerate(doc.get("zones", [])):
+        try:
+            zone = zone_from_dict(dict(zone_table))
+            zone.bin_mask(environment)
+        except (TypeError, ValueError, KeyError) as exc:
+            raise ConfigError(f"[[zones]] #{i + 1}: {exc}") from None
+        zones.append(zone)
+    names = [z.name for z in zones]
+    if len(set(names)) != len(names):
+        raise ConfigError(f"[[zones]] names must be unique, got {names}")
+    rules = []
+    for i, rule_table in enumerate(doc.get("rules", [])):
+        rule = _from_table(TriggerRule, rule_table, f"[rules] #{i + 1}")
+        if rule.zone not in names:
+            raise ConfigError(f"[[rules]] {rule.name!r} names zone {rule.zone!r}, which is not among {names}")
+        rules.append(rule)
+    return ExperimentConfig(
+        environment=environment,
+        model=_from_table(ModelSettings, doc.get("model"), "model"),
+        decoder=_from_table(DecoderSettings, doc.get("decoder"), "decoder"),
+        sources=_from_table(SourceSettings, doc.get("sources"), "sources"),
+        session=_from_table(SessionSettings, doc.get("session"), "session"),
+        safety=_from_table(SafetyCaps, doc.get("safety"), "safety"),
+        zones=tuple(zones),
+        rules=tuple(rules),
+        endpoints=_from_table(EndpointSettings, doc.get("endpoints"), "endpoints"),
+        ttl=_from_table(TtlSettings, doc.get("ttl"), "ttl"),
+        simulation=dict(doc.get("simulation", {})),
+        source_text=text,
+    )
+
+
+def load_config(path: str | Path) -> ExperimentConfig:
+    """Read and validate an experiment config file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"cannot read config {path}: {exc.strerror}") from None
+    return parse_config(text, str(path))
