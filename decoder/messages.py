@@ -34,13 +34,14 @@ def _vector(name: str, values: Any, dtype: Any) -> np.ndarray:
         raise MessageError(f"{name} must be one-dimensional, got shape {arr.shape}")
     if arr.size > MAX_BATCH:
         raise MessageError(f"{name} has {arr.size} elements, more than the limit of {MAX_BATCH}")
+    if np.dtype(dtype).kind == "i" and arr.dtype.kind == "f":
+        # Checked before the cast, which would warn on NaN and wrap infinities.
+        if not np.all(np.isfinite(arr)) or not np.array_equal(arr, np.round(arr)):
+            raise MessageError(f"{name} must hold whole numbers")
     try:
         out = arr.astype(dtype, casting="same_kind" if arr.dtype.kind == np.dtype(dtype).kind else "unsafe")
     except (TypeError, ValueError) as exc:
         raise MessageError(f"{name} cannot be read as {np.dtype(dtype).name}: {exc}") from None
-    if np.dtype(dtype).kind == "i" and arr.dtype.kind == "f":
-        if not np.all(np.isfinite(arr)) or not np.array_equal(arr, np.round(arr)):
-            raise MessageError(f"{name} must hold whole numbers")
     out = np.ascontiguousarray(out)
     out.setflags(write=False)
     return out
@@ -195,6 +196,8 @@ class TrackerFrames:
             hd = _vector("head_dir_rad", self.head_dir_rad, np.float64)
             if hd.size != t.size:
                 raise MessageError("head_dir_rad must give one value per frame")
+            if np.any(np.isinf(hd)):
+                raise MessageError("head_dir_rad holds an infinite angle; send NaN where unknown")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "xy_cm", xy)
         object.__setattr__(self, "head_dir_rad", hd)
