@@ -1,0 +1,202 @@
+"""End-to-end latency and memory of the live loop under load.
+
+    python bench/loop.py --json out/loop.json [--duration-s 600] [--speed 4]
+
+Three measurements in one run:
+
+1. the floor: raw ZeroMQ one-way latency between two processes on this
+   machine (PUB → SUB over loopback TCP, a payload the size of a spike batch),
+   stamped with the monotonic clock both processes share;
+2. the loop: the simulated rig (300 units, 10,000-bin arena) publishing at
+   ``speed`` × real time into ``placeloop run`` with a model fitted from the
+   same simulated animal, the state-space prior and 20 ms steps; the loop's
+   own added latency (receipt of the message that closed a step → its output
+   handed to ZeroMQ) for every step;
+3. memory: the loop's resident set sampled every second; growth is the last
+   sample against the sample after the first fifth of the run (after numba
+   compilation and the first allocations).
+
+Targets (issue 3): added p99 ≤ 2 ms and ≤ 10× the floor's p99; no growth of
+memory over a 10-minute accelerated run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import psutil
+import tomli_w
+import zmq
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from decoder.config import parse_config  # noqa: E402
+from decoder.pipeline import Pipeline  # noqa: E402
+from rig_adapters.demo import free_loopback_port  # noqa: E402
+from rig_adapters.simulation import SimulatedSession, SimulationSettings  # noqa: E402
+
+
+def bench_config(ports: dict, units: int) -> dict:
+    n_grid = units // 10
+    n_nonspatial = units // 10
+    return {
+        "environment": {"kind": "rectangle", "width_cm": 200.0, "height_cm": 200.0, "bin_cm": 2.0},
+        "model": {"smooth_cm": 4.0, "cv_folds": 2},
+        "decoder": {"window_s": 0.2, "step_s": 0.02, "prior": "state_space", "random_walk_sd_cm": 3.0},
+        "sources": {"truth": "truth"},
+        "session": {"cross_validate": False},
+        "safety": {"refractory_s": 2.0, "max_per_minute": 30, "max_per_session": 100000},
+        "zones": [{"name": "goal", "kind": "circle", "center_cm": [150.0, 150.0], "radius_cm": 12.0}],
+        "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
+        "endpoints": {
+            "rig": [f"tcp://127.0.0.1:{ports['rig']}"],
+            "events": f"tcp://127.0.0.1:{ports['events']}",
+            "state": f"tcp://127.0.0.1:{ports['state']}",
+            "control": f"tcp://127.0.0.1:{ports['control']}",
+        },
+        "simulation": {
+            "n_place_cells": units - n_grid - n_nonspatial,
+            "n_grid_cells": n_grid,
+            "n_nonspatial_cells": n_nonspatial,
+        },
+    }
+
+
+def fit_model(doc: dict, learn_s: float, path: Path) -> None:
+    """Learn a model from the simulated animal through the pipeline itself."""
+    learn_doc = dict(doc, session={"learn_s": learn_s, "cross_validate": False})
+    config = parse_config(tomli_w.dumps(learn_doc))
+    pipeline = Pipeline(config)
+    session = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=11)
+    for msg in session.messages(until_s=learn_s + 1.0):
+        pipeline.on_message(msg)
+        if pipeline.state == "decoding":
+            break
+    assert pipeline.state == "decoding", "the model did not fit"
+    pipeline.model.save(path)
+
+
+def floor_child(endpoint: str, n: int, payload_bytes: int) -> None:
+    ctx = zmq.Context.instance()
+    pub = ctx.socket(zmq.PUB)
+    pub.setsockopt(zmq.LINGER, 1000)
+    pub.bind(endpoint)
+    time.sleep(1.0)  # let the subscriber join
+    pad = os.urandom(payload_bytes)
+    for _ in range(n):
+        pub.send(np.float64(time.perf_counter()).tobytes() + pad)
+        time.sleep(0.005)
+    pub.close()
+
+
+def measure_floor(n: int, payload_bytes: int) -> dict:
+    port = free_loopback_port()
+    endpoint = f"tcp://127.0.0.1:{port}"
+    ctx = zmq.Context.instance()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.connect(endpoint)
+    child = subprocess.Popen([sys.executable, __file__, "--floor-child", endpoint, str(n), str(payload_bytes)])
+    lat = []
+    try:
+        while len(lat) < n:
+            if not sub.poll(5000):
+                break
+            data = sub.recv()
+            lat.append((time.perf_counter() - np.frombuffer(data[:8], np.float64)[0]) * 1e3)
+    finally:
+        sub.close()
+        child.wait(30)
+    a = np.asarray(lat)
+    return {"p50": float(np.percentile(a, 50)), "p99": float(np.percentile(a, 99)), "n": int(a.size)}
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--json", default=None, help="write results here")
+    parser.add_argument("--duration-s", type=float, default=600.0, help="wall seconds of the loaded run")
+    parser.add_argument("--speed", type=float, default=4.0, help="simulated seconds per wall second")
+    parser.add_argument("--units", type=int, default=300)
+    parser.add_argument("--learn-s", type=float, default=300.0, help="simulated seconds to fit the model from")
+    parser.add_argument("--floor-child", nargs=3, metavar=("ENDPOINT", "N", "BYTES"), help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.floor_child:
+        floor_child(args.floor_child[0], int(args.floor_child[1]), int(args.floor_child[2]))
+        return 0
+
+    print("measuring the ZeroMQ floor ...", file=sys.stderr)
+    floor = measure_floor(3000, payload_bytes=600)
+    with tempfile.TemporaryDirectory(prefix="placeloop-bench-") as tmp:
+        tmp = Path(tmp)
+        ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
+        doc = bench_config(ports, args.units)
+        cfg = tmp / "bench.toml"
+        cfg.write_text(tomli_w.dumps(doc))
+        model = tmp / "model.npz"
+        print(f"fitting a {args.units}-unit model from {args.learn_s:.0f} simulated s ...", file=sys.stderr)
+        t0 = time.perf_counter()
+        fit_model(doc, args.learn_s, model)
+        print(f"  fitted in {time.perf_counter() - t0:.1f} s", file=sys.stderr)
+        summary_path = tmp / "summary.json"
+        loop = subprocess.Popen([sys.executable, "-m", "rig_adapters.cli", "run", "--config", str(cfg), "--model",
+                                 str(model), "--summary", str(summary_path), "--idle-exit-s", "3"],
+                                cwd=ROOT, stderr=subprocess.DEVNULL)
+        sim_s = args.duration_s * args.speed
+        rig = subprocess.Popen([sys.executable, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
+                                f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(args.speed), "--duration-s",
+                                str(sim_s), "--seed", "12"], cwd=ROOT)
+        proc = psutil.Process(loop.pid)
+        rss = []
+        print(f"running the loop for {args.duration_s:.0f} s at {args.speed:g}x ...", file=sys.stderr)
+        while rig.poll() is None:
+            try:
+                rss.append((time.monotonic(), proc.memory_info().rss))
+            except psutil.Error:
+                break
+            time.sleep(1.0)
+        loop.wait(60)
+        summary = json.loads(summary_path.read_text())
+    t = np.array([r[0] for r in rss])
+    mem = np.array([r[1] for r in rss], float)
+    after_warmup = mem[np.searchsorted(t, t[0] + 0.2 * (t[-1] - t[0]))] if mem.size else float("nan")
+    growth = float((mem[-1] - after_warmup) / after_warmup * 100) if mem.size else float("nan")
+    added = summary["latency_ms"]
+    result = {
+        "added_ms": {"p50": added["p50"], "p99": added["p99"], "max": added["max"], "n": added["n"]},
+        "floor_one_way_ms": floor,
+        "ratio_p99_to_floor": added["p99"] / floor["p99"],
+        "rss_growth_pct": growth,
+        "rss_mb": {"after_warmup": after_warmup / 2**20, "end": float(mem[-1]) / 2**20 if mem.size else None},
+        "decode_steps": summary["decode"]["steps"],
+        "median_error_cm": summary["decode"]["median_error_cm"],
+        "units": args.units,
+        "bins": 10000,
+        "duration_s": args.duration_s,
+        "speed": args.speed,
+    }
+    print()
+    print(f"{'':24s}{'p50 ms':>10s}{'p99 ms':>10s}{'max ms':>10s}")
+    print(f"{'ZeroMQ floor (one way)':24s}{floor['p50']:10.3f}{floor['p99']:10.3f}{'':>10s}")
+    print(f"{'added by placeloop':24s}{added['p50']:10.3f}{added['p99']:10.3f}{added['max']:10.3f}")
+    print(f"added p99 / floor p99: {result['ratio_p99_to_floor']:.1f}x (target <= 10x, and p99 <= 2 ms)")
+    print(f"steps decoded: {result['decode_steps']}, median error {result['median_error_cm']} cm")
+    print(f"resident memory: {result['rss_mb']['after_warmup']:.0f} MB after warm-up, "
+          f"{result['rss_mb']['end']:.0f} MB at the end ({growth:+.1f}%)")
+    if args.json:
+        Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.json).write_text(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,229 @@
+"""The ``placeloop`` command.
+
+Subcommands::
+
+    placeloop demo      simulated rig + decoder + stimulator stand-in, over loopback
+    placeloop run       the decoder's live loop for a real (or simulated) rig
+    placeloop sim       the simulated rig alone
+    placeloop control   send a control command to a running loop
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import logging
+import signal
+import sys
+from pathlib import Path
+
+from decoder.config import ConfigError, load_config
+
+log = logging.getLogger("placeloop")
+
+CAUTION = """\
+CAUTION: placeloop drives reward and stimulation hardware that acts on a living animal.
+  - Software is no hardware interlock: keep hardware limits (current, duration, pump volume) and a
+    physical cut-off on the stimulator or reward line itself.
+  - Stay inside your approved animal-use protocol and your local rules for every setting you arm.
+  - Dry-run every configuration on recorded or simulated data (placeloop demo, placeloop run --dry-run)
+    before a live animal is connected."""
+
+DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"
+
+
+def _setup_logging(verbose: int) -> None:
+    level = logging.WARNING if verbose == 0 else logging.INFO if verbose == 1 else logging.DEBUG
+    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr)
+
+
+def _with_endpoints(config, rig=None, events=None, state=None, control=None):
+    ep = config.endpoints
+    new = dataclasses.replace(
+        ep,
+        rig=tuple(rig) if rig else ep.rig,
+        events=events or ep.events,
+        state=state or ep.state,
+        control=control or ep.control,
+    )
+    return dataclasses.replace(config, endpoints=new)
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from decoder.pipeline import Pipeline
+    from decoder.place_model import ModelFileError, PlaceModel
+    from rig_adapters.loop import LiveLoop, _jsonable
+    from rig_adapters.recorder import SessionRecorder
+
+    print(CAUTION, file=sys.stderr)
+    config = _with_endpoints(load_config(args.config), args.rig, args.events, args.state, args.control)
+    if args.dry_run:
+        config = dataclasses.replace(config, ttl=dataclasses.replace(config.ttl, device=""))
+        print("dry run: no TTL output; events go to the events socket only", file=sys.stderr)
+    model = None
+    if args.model:
+        try:
+            model = PlaceModel.load(args.model)
+        except ModelFileError as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return 2
+    pipeline = Pipeline(config, model=model)
+    recorder = None
+    if args.log:
+        from rig_adapters import protocol
+
+        recorder = SessionRecorder(args.log, metadata={"config": str(args.config), "protocol": protocol.PROTOCOL_VERSION})
+        recorder.write_sidecar("config.toml", config.source_text.encode())
+        if args.model:
+            recorder.write_sidecar("initial_model.npz", Path(args.model).read_bytes())
+    ttl = None
+    if config.ttl.device:
+        import serial
+
+        ttl = serial.serial_for_url(config.ttl.device, baudrate=config.ttl.baud, timeout=0, write_timeout=0)
+    loop = LiveLoop(config, pipeline, recorder=recorder, ttl=ttl)
+
+    def _stop(signum, frame):
+        loop.stop_requested = True
+
+    signal.signal(signal.SIGTERM, _stop)
+    signal.signal(signal.SIGINT, _stop)
+    try:
+        loop.run(duration_s=args.duration_s, idle_exit_s=args.idle_exit_s)
+    finally:
+        if recorder is not None:
+            recorder.close()
+        if ttl is not None:
+            ttl.close()
+    summary = loop.summary()
+    if args.summary:
+        Path(args.summary).write_text(json.dumps(_jsonable(summary), indent=2))
+    print(json.dumps({"decode": summary["decode"], "triggers": {"count": summary["triggers"]["count"]}}),
+          file=sys.stderr)
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from rig_adapters.demo import run_demo
+
+    print(CAUTION, file=sys.stderr)
+    return run_demo(
+        config_path=args.config,
+        speed=args.speed,
+        log_dir=args.log,
+        summary_path=args.summary,
+        learn_s=args.learn_s,
+        decode_s=args.decode_s,
+        seed=args.seed,
+    )
+
+
+def cmd_sim(args: argparse.Namespace) -> int:
+    from rig_adapters import simulated_rig
+
+    argv = ["--config", args.config, "--speed", str(args.speed), "--duration-s", str(args.duration_s),
+            "--seed", str(args.seed)]
+    if args.pub:
+        argv += ["--pub", args.pub]
+    return simulated_rig.main(argv)
+
+
+def cmd_control(args: argparse.Namespace) -> int:
+    import zmq
+
+    from rig_adapters import protocol
+
+    command = args.command.replace("-", "_")
+    cmd_args = {}
+    if command == "load_model":
+        if not args.path:
+            print("error: load-model needs the model file's path", file=sys.stderr)
+            return 2
+        cmd_args["path"] = str(Path(args.path).resolve())
+    if command == "arm":
+        print(CAUTION, file=sys.stderr)
+    ctx = zmq.Context.instance()
+    sock = ctx.socket(zmq.REQ)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.RCVTIMEO, int(args.timeout_s * 1000))
+    try:
+        sock.connect(args.endpoint)
+        sock.send(protocol.encode_control_request(command, cmd_args))
+        try:
+            reply = protocol.decode_control_reply(sock.recv())
+        except zmq.Again:
+            print(f"error: no reply from {args.endpoint} within {args.timeout_s} s; is `placeloop run` up?",
+                  file=sys.stderr)
+            return 1
+    finally:
+        sock.close()
+    print(json.dumps(reply, indent=2))
+    return 0 if reply.get("ok") else 1
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="placeloop",
+        description="Closed-loop Bayesian position decoding from place-cell spikes.",
+        epilog=CAUTION,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
+    sub = parser.add_subparsers(dest="cmd", required=True)
+
+    p = sub.add_parser("demo", help="simulated rig, decoder and stimulator stand-in over loopback ZeroMQ")
+    p.add_argument("--config", default=str(DEFAULT_DEMO_CONFIG), help="experiment config (TOML)")
+    p.add_argument("--speed", type=float, default=4.0, help="simulated seconds per wall-clock second")
+    p.add_argument("--learn-s", type=float, default=None, help="simulated seconds of learning (default: config)")
+    p.add_argument("--decode-s", type=float, default=120.0, help="simulated seconds of closed loop after fitting")
+    p.add_argument("--log", default=None, help="keep the session log in this directory")
+    p.add_argument("--summary", default=None, help="write the JSON summary here")
+    p.add_argument("--seed", type=int, default=7)
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("run", help="the decoder's live loop")
+    p.add_argument("--config", required=True, help="experiment config (TOML)")
+    p.add_argument("--model", default=None, help="a model file saved earlier; decode with it from the start")
+    p.add_argument("--rig", action="append", default=None, help="rig endpoint to connect to (repeatable)")
+    p.add_argument("--events", default=None, help="bind the events PUB socket here")
+    p.add_argument("--state", default=None, help="bind the state PUB socket here")
+    p.add_argument("--control", default=None, help="bind the control REP socket here")
+    p.add_argument("--log", default=None, help="record the session log in this (new) directory")
+    p.add_argument("--summary", default=None, help="write the JSON summary here at the end")
+    p.add_argument("--duration-s", type=float, default=None, help="stop after this many wall-clock seconds")
+    p.add_argument("--idle-exit-s", type=float, default=None, help="stop after this long without rig input")
+    p.add_argument("--dry-run", action="store_true", help="never drive the TTL line, whatever the config says")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("sim", help="the simulated rig alone")
+    p.add_argument("--config", default=str(DEFAULT_DEMO_CONFIG))
+    p.add_argument("--pub", default=None, help="bind the rig's PUB socket here (default: the config's rig endpoint)")
+    p.add_argument("--speed", type=float, default=1.0, help="simulated seconds per second (0: as fast as possible)")
+    p.add_argument("--duration-s", type=float, default=600.0, help="simulated seconds")
+    p.add_argument("--seed", type=int, default=7)
+    p.set_defaults(func=cmd_sim)
+
+    p = sub.add_parser("control", help="send a command to a running loop")
+    p.add_argument("command", choices=["start-learning", "stop-learning", "fit", "load-model", "arm", "disarm",
+                                       "status"])
+    p.add_argument("path", nargs="?", default=None, help="model file, for load-model")
+    p.add_argument("--endpoint", default="tcp://127.0.0.1:5773")
+    p.add_argument("--timeout-s", type=float, default=10.0)
+    p.set_defaults(func=cmd_control)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    _setup_logging(args.verbose)
+    try:
+        return args.func(args)
+    except ConfigError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,287 @@
+"""Tests of decoder._kernels: each kernel against an outside reference and against its numpy twin.
+
+Twin tolerance: the compiled kernels add the same terms in a different order
+(blocked sums, two-pass convolution), so results agree to a few units in the
+last place of the largest term; rtol=1e-12 leaves a wide margin above that
+(about 1e-15 per addition times at most a few hundred additions).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import ndimage, stats
+from scipy.special import gammaln
+
+from decoder import _kernels as K
+
+TWIN_RTOL = 1e-12
+
+PAIRS = [
+    pytest.param(K.poisson_log_likelihood, id="numba"),
+    pytest.param(K.poisson_log_likelihood_numpy, id="numpy"),
+]
+
+
+def _rates(rng: np.random.Generator, n_units: int, n_bins: int) -> np.ndarray:
+    return rng.gamma(0.7, 4.0, (n_units, n_bins)) + 0.01
+
+
+# -- Poisson log-likelihood ----------------------------------------------------
+
+
+@pytest.mark.parametrize("loglike", PAIRS)
+def test_log_likelihood_equals_scipy_poisson_logpmf(loglike):
+    rng = np.random.default_rng(1)
+    n_units, n_bins, window_s = 13, 37, 0.25
+    rates = _rates(rng, n_units, n_bins)
+    counts_all = rng.poisson(2.0, n_units) * (rng.random(n_units) < 0.6)
+    rows = np.flatnonzero(counts_all).astype(np.int64)
+    counts = counts_all[rows].astype(np.float64)
+    out = loglike(rows, counts, np.log(rates), window_s * rates.sum(axis=0), np.empty(n_bins))
+    # Constant dropped by the kernel: sum_i (n_i log W - log n_i!), over every unit.
+    constant = float(np.sum(counts_all * math.log(window_s) - gammaln(counts_all + 1)))
+    reference = stats.poisson.logpmf(counts_all[:, None], window_s * rates).sum(axis=0)
+    # Source: scipy.stats.poisson.logpmf; independent-Poisson likelihood of Zhang et al. (1998),
+    # J Neurophysiol 79:1017, eq. for P(n|x) as a product over units.
+    np.testing.assert_allclose(out + constant, reference, rtol=1e-12, atol=1e-9)
+
+
+def test_log_likelihood_twins_agree_and_repeats_add_up():
+    rng = np.random.default_rng(2)
+    n_units, n_bins = 40, 2500
+    log_rate = np.log(_rates(rng, n_units, n_bins))
+    expected = rng.random(n_bins) * 5
+    rows = rng.integers(0, n_units, 23).astype(np.int64)  # repeats included, odd length
+    counts = rng.integers(0, 4, 23).astype(np.float64)
+    a = K.poisson_log_likelihood(rows, counts, log_rate, expected, np.empty(n_bins))
+    b = K.poisson_log_likelihood_numpy(rows, counts, log_rate, expected, np.empty(n_bins))
+    # Source: the numpy twin (reference implementation); tolerance in the module docstring.
+    np.testing.assert_allclose(a, b, rtol=TWIN_RTOL, atol=1e-12)
+    merged = np.bincount(rows, weights=counts, minlength=n_units)
+    fired = np.flatnonzero(merged)
+    c = K.poisson_log_likelihood(fired.astype(np.int64), merged[fired], log_rate, expected, np.empty(n_bins))
+    # Source: the log-likelihood is linear in the counts (Zhang et al. 1998), so split counts add up.
+    np.testing.assert_allclose(a, c, rtol=TWIN_RTOL, atol=1e-12)
+
+
+def test_log_likelihood_of_a_silent_window_is_minus_expected_count():
+    expected = np.array([0.5, 1.0, 2.0])
+    out = K.poisson_log_likelihood(np.zeros(0, np.int64), np.zeros(0), np.zeros((2, 3)), expected, np.empty(3))
+    # Source: Poisson pmf at n = 0 is exp(-mu) (definition of the Poisson distribution).
+    np.testing.assert_array_equal(out, -expected)
+
+
+# -- normalisation -------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    "posterior_from_log", [K.posterior_from_log, K.posterior_from_log_numpy], ids=["numba", "numpy"]
+)
+def test_posterior_equals_direct_normalisation_of_poisson_pmf(posterior_from_log):
+    rng = np.random.default_rng(3)
+    n_units, n_bins, window_s = 6, 30, 0.5
+    rates = _rates(rng, n_units, n_bins)
+    counts_all = rng.poisson(1.5, n_units)
+    rows = np.flatnonzero(counts_all).astype(np.int64)
+    valid = rng.random(n_bins) < 0.8
+    prior = rng.random(n_bins) + 0.1
+    counts = counts_all[rows].astype(float)
+    ll = K.poisson_log_likelihood_numpy(rows, counts, np.log(rates), window_s * rates.sum(0), np.empty(n_bins))
+    out = np.empty(n_bins)
+    assert posterior_from_log(ll, prior, valid, out)
+    direct = np.prod(stats.poisson.pmf(counts_all[:, None], window_s * rates), axis=0) * prior * valid
+    # Source: Bayes' rule with scipy.stats.poisson.pmf, normalised directly (no logs).
+    np.testing.assert_allclose(out, direct / direct.sum(), rtol=1e-10, atol=1e-300)
+    # Source: common practice — bins outside the valid set carry exactly zero probability.
+    assert np.all(out[~valid] == 0.0)
+
+
+def test_posterior_twins_agree_and_report_underflow():
+    rng = np.random.default_rng(4)
+    ll = rng.normal(0, 200, 500)
+    prior = rng.random(500)
+    valid = rng.random(500) < 0.9
+    a, b = np.empty(500), np.empty(500)
+    assert K.posterior_from_log(ll, prior, valid, a) and K.posterior_from_log_numpy(ll, prior, valid, b)
+    # Source: the numpy twin; tolerance in the module docstring.
+    np.testing.assert_allclose(a, b, rtol=TWIN_RTOL, atol=0)
+    far = np.zeros(500)
+    far[:10] = 1.0  # the prior lives where the likelihood is e^-800 below its best bin
+    ll = np.zeros(500)
+    ll[:10] = -800.0
+    valid = np.ones(500, bool)
+    # Source: exp(-800) ~ 1e-348 is below the smallest float64 (IEEE 754), so the product underflows.
+    assert not K.posterior_from_log(ll, far, valid, a)
+    assert not K.posterior_from_log_numpy(ll, far, valid, b)
+
+
+# -- random-walk prediction ------------------------------------------------------
+
+
+def _gauss_kernel(sd_bins: float, reach: int) -> np.ndarray:
+    return np.exp(-0.5 * (np.arange(-reach, reach + 1) / sd_bins) ** 2)
+
+
+@pytest.mark.parametrize("convolve", [K.convolve_separable, K.convolve_separable_numpy], ids=["numba", "numpy"])
+def test_separable_convolution_equals_scipy_ndimage(convolve):
+    rng = np.random.default_rng(5)
+    ny, nx = 17, 23
+    kernel = _gauss_kernel(1.7, 6)
+    values = rng.random(ny * nx)
+    out = convolve(values.copy(), ny, nx, kernel, np.empty(ny * nx), np.empty(ny * nx))
+    reference = ndimage.correlate(values.reshape(ny, nx), np.outer(kernel, kernel), mode="constant", cval=0.0)
+    # Source: scipy.ndimage.correlate with zero padding (the kernel is symmetric, so correlation = convolution).
+    np.testing.assert_allclose(out, reference.ravel(), rtol=1e-12)
+    in_place = values.copy()
+    convolve(in_place, ny, nx, kernel, in_place, np.empty(ny * nx))
+    # Source: the same reference; the kernel is documented to accept out is values.
+    np.testing.assert_allclose(in_place, reference.ravel(), rtol=1e-12)
+
+
+def _masked_transition(ny: int, nx: int, kernel: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k, written out bin by bin."""
+    reach = kernel.size // 2
+    n = ny * nx
+    k_full = np.zeros((n, n))
+    for i in range(n):
+        for j in range(n):
+            dy, dx = j // nx - i // nx, j % nx - i % nx
+            if abs(dy) <= reach and abs(dx) <= reach:
+                k_full[i, j] = kernel[dy + reach] * kernel[dx + reach]
+    weighted = k_full * mask[None, :]
+    t = np.zeros((n, n))
+    t[mask] = weighted[mask] / weighted[mask].sum(axis=1, keepdims=True)
+    return t
+
+
+@pytest.mark.parametrize("predict", [K.predict_grid, K.predict_grid_numpy], ids=["numba", "numpy"])
+def test_grid_prediction_applies_the_masked_row_normalised_transition(predict):
+    rng = np.random.default_rng(6)
+    ny, nx = 6, 7
+    kernel = _gauss_kernel(1.2, 4)
+    mask = rng.random(ny * nx) < 0.75
+    t = _masked_transition(ny, nx, kernel, mask)
+    mask_f = mask.astype(float)
+    norm = ndimage.correlate(mask_f.reshape(ny, nx), np.outer(kernel, kernel), mode="constant").ravel()
+    inv_norm = np.where(mask, 1.0 / np.where(mask, norm, 1.0), 0.0)
+    p = rng.random(ny * nx) * mask
+    p /= p.sum()
+    out = predict(p, ny, nx, kernel, mask_f, inv_norm, np.empty(ny * nx), np.empty(ny * nx))
+    # Source: Markov chain prediction p_{t+1} = p_t T (any probability text); T built entry by entry above.
+    np.testing.assert_allclose(out, p @ t, rtol=1e-12, atol=1e-15)
+    # Source: a row-stochastic T preserves total probability (definition of a Markov transition matrix).
+    assert math.isclose(out.sum(), 1.0, rel_tol=1e-12)
+    assert np.all(out[~mask] == 0.0)
+
+
+def test_dense_prediction_twins_agree_with_numpy_matmul():
+    rng = np.random.default_rng(7)
+    t = rng.random((50, 50))
+    t /= t.sum(axis=1, keepdims=True)
+    p = rng.random(50)
+    p[::3] = 0.0
+    a = K.predict_dense(p, t, np.empty(50))
+    b = K.predict_dense_numpy(p, t, np.empty(50))
+    # Source: numpy.matmul as the reference product.
+    np.testing.assert_allclose(a, p @ t, rtol=TWIN_RTOL)
+    np.testing.assert_allclose(b, p @ t, rtol=TWIN_RTOL)
+
+
+# -- highest-posterior-density region --------------------------------------------
+
+HPD = [pytest.param(K.hpd_size, id="numba"), pytest.param(K.hpd_size_numpy, id="numpy")]
+
+
+@pytest.mark.parametrize("hpd", HPD)
+@pytest.mark.parametrize("m", [1, 7, 31, 32, 33, 1000, 9000])
+def test_hpd_of_a_uniform_posterior_is_its_support(hpd, m):
+    p = np.zeros(10_000)
+    p[np.random.default_rng(m).choice(10_000, m, replace=False)] = 1.0 / m
+    # Source: closed form — a flat density's highest-density region at any mass is its whole
+    # support (the superlevel set at the flat value), m bins.
+    assert hpd(p, 0.95, np.empty(p.size)) == m
+
+
+@pytest.mark.parametrize("hpd", HPD)
+def test_hpd_of_a_discretised_normal_is_the_1_96_sigma_band(hpd):
+    bin_cm, sd_cm = 0.05, 10.0
+    x = (np.arange(4000) - 2000 + 0.5) * bin_cm
+    p = np.exp(-0.5 * (x / sd_cm) ** 2)
+    p /= p.sum()
+    width_cm = hpd(p, 0.95, np.empty(p.size)) * bin_cm
+    # Source: 95% of a normal lies within +/-1.96 sd (from memory; equals scipy.stats.norm.ppf(0.975)).
+    assert abs(width_cm - 2 * stats.norm.ppf(0.975) * sd_cm) <= 2 * bin_cm
+
+
+@pytest.mark.parametrize("hpd", HPD)
+def test_hpd_of_a_discretised_2d_normal_is_the_chi2_disc(hpd):
+    bin_cm, sd_cm = 0.5, 8.0
+    c = (np.arange(200) - 100 + 0.5) * bin_cm
+    xx, yy = np.meshgrid(c, c)
+    p = np.exp(-0.5 * (xx**2 + yy**2) / sd_cm**2).ravel()
+    p /= p.sum()
+    area = hpd(p, 0.95, np.empty(p.size)) * bin_cm**2
+    expected = math.pi * sd_cm**2 * stats.chi2.ppf(0.95, df=2)
+    # Source: for an isotropic 2-D normal, r^2/sd^2 is chi-square with 2 d.o.f.; the 95% region is the
+    # disc of radius^2 = sd^2 chi2.ppf(0.95, 2) (scipy.stats.chi2). Tolerance: bins cut by the circle.
+    assert abs(area - expected) / expected < 0.01
+
+
+def test_hpd_twins_agree_on_random_and_tied_posteriors():
+    rng = np.random.default_rng(8)
+    for trial in range(40):
+        n = int(rng.integers(1, 5000))
+        p = rng.dirichlet(np.full(n, rng.choice([0.05, 1.0, 50.0])))
+        if trial % 3 == 0:
+            p = np.round(p * 50) / 50  # many exact ties
+            if p.sum() == 0:
+                continue
+            p /= p.sum()
+        p[rng.random(n) < 0.1] = 0.0
+        if p.sum() == 0:
+            continue
+        mass = float(rng.choice([0.5, 0.95, 0.999]))
+        # Source: the numpy twin (full sort + cumulative sum) as reference.
+        assert K.hpd_size(p, mass, np.empty(n)) == K.hpd_size_numpy(p, mass, np.empty(n)), trial
+
+
+@pytest.mark.parametrize("hpd", HPD)
+def test_hpd_of_values_too_close_for_buckets_falls_back_to_sorting(hpd):
+    p = 1e-300 * (1.0 + np.arange(100) * np.finfo(float).eps)
+    # Their spread (2e-314) makes the bucket scale 256 / spread overflow to inf.
+    n = hpd(p, 0.95, np.empty(100))
+    # Source: the full-sort twin as reference, and closed form — 100 masses equal to 1e-14 relative
+    # need 95 of them (96 if rounding leaves the 95 a hair short) to reach 95%.
+    assert n == K.hpd_size_numpy(p, 0.95, None) and n in (95, 96)
+
+
+# -- summaries ------------------------------------------------------------------
+
+
+def test_posterior_summary_and_zone_mass_twins_agree_with_numpy():
+    rng = np.random.default_rng(9)
+    p = rng.dirichlet(np.ones(300))
+    cx, cy = rng.random(300) * 100, rng.random(300) * 50
+    for summary in (K.posterior_summary, K.posterior_summary_numpy):
+        best, peak, mx, my = summary(p, cx, cy)
+        # Source: numpy.argmax and numpy.average as reference.
+        assert best == int(np.argmax(p)) and peak == p.max()
+        np.testing.assert_allclose([mx, my], [np.average(cx, weights=p), np.average(cy, weights=p)], rtol=1e-12)
+    masks = rng.random((3, 300)) < 0.2
+    start = np.concatenate([[0], np.cumsum(masks.sum(1))]).astype(np.int64)
+    bins = np.nonzero(masks)[1].astype(np.int64)
+    for zone_mass in (K.zone_mass, K.zone_mass_numpy):
+        # Source: numpy matrix product of the boolean masks with the posterior.
+        np.testing.assert_allclose(zone_mass(p, start, bins, np.empty(3)), masks @ p, rtol=1e-12)
+
+
+def test_vectorisable_exp_matches_numpy_exp():
+    rng = np.random.default_rng(10)
+    edges = [0.0, -1e-300, K.LOG_WEIGHT_FLOOR, -0.5 * math.log(2)]
+    d = np.concatenate([rng.random(5000) * K.LOG_WEIGHT_FLOOR, edges])
+    ours = np.array([K._exp_nonpositive(x) for x in d])
+    # Source: numpy.exp as reference; 2 ulp allowed (range reduction plus polynomial rounding).
+    np.testing.assert_allclose(ours, np.exp(d), rtol=2 * np.finfo(float).eps, atol=0)
