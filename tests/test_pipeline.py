@@ -1,0 +1,167 @@
+"""The session pipeline driven by lists of messages (decoder.pipeline).
+
+The simulated session here is invented data; it drives the plumbing (states,
+clocks, counters, determinism). The one figure of merit, the decoding error,
+is a sanity bound only.
+"""
+
+import dataclasses
+
+import numpy as np
+import pytest
+import tomli_w
+
+from decoder.config import parse_config
+from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
+from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from rig_adapters.simulation import SimulatedSession, SimulationSettings
+
+CONFIG = {
+    "environment": {"kind": "rectangle", "width_cm": 80.0, "height_cm": 80.0, "bin_cm": 4.0},
+    "model": {"cv_folds": 2, "cv_block_s": 20.0},
+    "decoder": {"window_s": 0.25, "step_s": 0.025, "prior": "state_space", "random_walk_sd_cm": 4.0},
+    "sources": {"truth": "truth"},
+    "session": {"learn_s": 120.0, "arm_after_fit": True, "cross_validate": False},
+    "safety": {"refractory_s": 3.0, "max_per_minute": 10, "max_per_session": 50, "stall_limit_s": 1.0},
+    "zones": [{"kind": "circle", "name": "goal", "center_cm": [60.0, 60.0], "radius_cm": 12.0}],
+    "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
+    "simulation": {"n_place_cells": 50, "n_grid_cells": 5, "n_nonspatial_cells": 5},
+}
+
+
+def _config(**changes):
+    doc = {**CONFIG, **changes}
+    return parse_config(tomli_w.dumps(doc))
+
+
+def _messages(config, until_s, seed=3):
+    session = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=seed)
+    return list(session.messages(until_s=until_s))
+
+
+@pytest.fixture(scope="module")
+def session_messages():
+    config = _config()
+    return config, _messages(config, 160.0)
+
+
+def _run(config, messages):
+    pipeline = Pipeline(config)
+    outputs = []
+    for msg in messages:
+        outputs.extend(pipeline.on_message(msg))
+    return pipeline, outputs
+
+
+def test_plan_learns_fits_arms_and_decodes(session_messages):
+    config, messages = session_messages
+    pipeline, outputs = _run(config, messages)
+    kinds = [o.kind for o in outputs if isinstance(o, Notice)]
+    assert kinds[:1] == ["state"] and "fitted" in kinds and "armed" in kinds
+    assert any(isinstance(o, LearningProgress) for o in outputs)
+    steps = [o for o in outputs if isinstance(o, StepOutput)]
+    # 40 s of decoding at 25 ms steps.
+    assert abs(len(steps) - 40.0 / 0.025) <= 2
+    # Steps end on whole multiples of the step, in order, without gaps.
+    ks = np.array([s.k for s in steps])
+    assert np.all(np.diff(ks) == 1)
+    # Sanity bound on invented cells (fields 15-30 cm, common practice): the
+    # median error is a few bins, far below the 80 cm box.
+    assert np.median(pipeline.errors_cm) < 12.0
+    # The tracker ran on its own clock; alignment from sync pulses must have
+    # happened for positions to be known at all.
+    assert np.isfinite(steps[-1].tracked_xy_cm).all()
+    assert pipeline.counters["clock_mismatch"] == 0
+
+
+def test_same_messages_give_the_same_digest(session_messages):
+    config, messages = session_messages
+    first, _ = _run(config, messages)
+    second, _ = _run(config, messages)
+    assert first.digest == second.digest
+    assert first.counters == second.counters
+
+
+def test_duplicated_and_unknown_inputs_are_counted_not_used(session_messages):
+    config, messages = session_messages
+    clean, _ = _run(config, messages)
+    noisy = list(messages)
+    spikes = [i for i, m in enumerate(noisy) if isinstance(m, SpikeBatch) and m.t_s.size and m.t_s[0] > 130]
+    # A duplicated spike batch (same seq) must not be counted twice.
+    noisy.insert(spikes[0] + 1, noisy[spikes[0]])
+    pipeline, _ = _run(config, noisy)
+    assert pipeline.counters["stale_messages"] == 1
+    assert pipeline.digest == clean.digest
+    # Spikes from a unit the model does not know are counted and dropped.
+    unknown = SpikeBatch("ephys", 10**9, [150.0001], [999999])
+    extra = list(messages)
+    extra.insert(spikes[-1], unknown)
+    pipeline, _ = _run(config, extra)
+    assert pipeline.counters["unknown_units"] == 1
+    assert pipeline.health.total_gaps > 0   # the jump in seq is a gap
+
+
+def test_a_time_jump_is_refused_and_does_not_run_away(session_messages):
+    config, messages = session_messages
+    bogus = Heartbeat("ephys", 10**8, 1e7)
+    cut = next(i for i, m in enumerate(messages) if isinstance(m, Heartbeat) and m.t_s > 140)
+    pipeline, outputs = _run(config, messages[:cut] + [bogus] + messages[cut:])
+    assert pipeline.counters["time_jumps"] == 1
+    assert pipeline.spike_watermark_s < 200
+
+
+def test_control_commands_drive_the_session_without_a_plan(session_messages):
+    _, messages = session_messages
+    config = _config(session={"learn_s": 0.0, "cross_validate": False})
+    pipeline = Pipeline(config)
+    out = pipeline.on_message(ControlCommand("control", 1, "arm"))
+    assert out[0].kind == "refused"                     # nothing to decode with yet
+    assert pipeline.on_message(ControlCommand("control", 2, "fit"))[0].kind == "refused"
+    pipeline.on_message(ControlCommand("control", 3, "start_learning"))
+    for msg in messages[: len(messages) * 3 // 4]:
+        pipeline.on_message(msg)
+    assert pipeline.state == "learning"
+    kinds = [o.kind for o in pipeline.on_message(ControlCommand("control", 4, "fit"))]
+    assert "fitted" in kinds and pipeline.state == "decoding" and not pipeline.bank.armed
+    assert pipeline.on_message(ControlCommand("control", 5, "arm"))[0].kind == "armed"
+    pipeline.on_message(ControlCommand("control", 6, "stall", {"stream": "ephys"}))
+    assert not pipeline.bank.armed
+
+
+def test_a_restarted_spike_source_disarms_and_starts_steps_afresh(session_messages):
+    config, messages = session_messages
+    pipeline, _ = _run(config, messages)
+    assert pipeline.bank.armed
+    out = pipeline.on_message(SourceAnnounce("ephys", 0, "spikes", "acquisition", 30000.0, [101]))
+    assert any(isinstance(o, Notice) and o.kind == "disarmed" for o in out)
+    assert not pipeline.bank.armed
+    # The restarted clock begins again near zero: steps follow it, none are "late".
+    pipeline.on_message(SpikeBatch("ephys", 1, [0.5], [101]))
+    out = pipeline.on_message(Heartbeat("ephys", 2, 1.0))
+    steps = [o for o in out if isinstance(o, StepOutput)]
+    assert steps and steps[0].t_s > 0.5 and steps[-1].t_s <= 1.0
+
+
+def test_frames_wait_for_clock_alignment_and_lost_frames_are_skipped():
+    config = _config()
+    pipeline = Pipeline(config)
+    pipeline.on_message(SourceAnnounce("ephys", 0, "spikes", "acq", 30000.0, [1, 2]))
+    pipeline.on_message(SourceAnnounce("tracker", 0, "tracker", "camera", 50.0))
+    pipeline.on_message(TrackerFrames("tracker", 1, [10.0, 10.02], [[5.0, 5.0], [np.nan, np.nan]]))
+    # Different clocks and no sync pulse yet: the frames wait.
+    assert pipeline.tracked.newest_t_s == -np.inf
+    assert len(pipeline._pending_frames) == 1
+
+
+def test_config_validation_names_the_problem():
+    with pytest.raises(ValueError, match="step_s"):
+        _config(decoder={"window_s": 0.01, "step_s": 0.02})
+    with pytest.raises(ValueError, match="not on loopback"):
+        _config(endpoints={"events": "tcp://0.0.0.0:5771"})
+    with pytest.raises(ValueError, match="zone 'nowhere'"):
+        _config(rules=[{"name": "r", "zone": "nowhere"}])
+    with pytest.raises(ValueError, match="unknown key"):
+        _config(decoder={"windw_s": 0.2})
+    ok = _config(endpoints={"events": "tcp://0.0.0.0:5771", "allow_remote": True})
+    assert ok.endpoints.events == "tcp://0.0.0.0:5771"
+    assert dataclasses.is_dataclass(ok)
