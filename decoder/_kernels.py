@@ -111,6 +111,48 @@ def _dot(a, b):
 
 
 # ---------------------------------------------------------------------------
+# Input check
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def first_bad_entry(fired_rows, fired_counts, n_units, max_count):
+    """Index of the first entry that is not a valid (row, spike count) pair.
+
+    One pass instead of half a dozen numpy calls: the check runs on every
+    decoded window.
+
+    Parameters
+    ----------
+    fired_rows : ndarray, shape (k,), int64
+    fired_counts : ndarray, shape (k,), float64
+    n_units : int
+        Rows must lie in ``0 .. n_units - 1``.
+    max_count : float
+        Counts must be whole numbers in ``[0, max_count)``; NaN fails.
+
+    Returns
+    -------
+    int
+        The first offending index, or -1 when every entry is valid.
+    """
+    for i in range(fired_rows.shape[0]):
+        r = fired_rows[i]
+        c = fired_counts[i]
+        if r < 0 or r >= n_units or not (c >= 0.0 and c < max_count and c == math.floor(c)):
+            return i
+    return -1
+
+
+def first_bad_entry_numpy(fired_rows, fired_counts, n_units, max_count):
+    """Numpy twin of :func:`first_bad_entry`."""
+    c = fired_counts
+    ok = (fired_rows >= 0) & (fired_rows < n_units) & (c >= 0) & (c < max_count) & (c == np.floor(c))
+    bad = np.flatnonzero(~ok)
+    return int(bad[0]) if bad.size else -1
+
+
+# ---------------------------------------------------------------------------
 # Poisson log-likelihood
 # ---------------------------------------------------------------------------
 

@@ -46,10 +46,15 @@ TRUNCATE_SD = 4.0
 #: full matrix of a grid arena (n_bins² float64; 20,000 bins is 3.2 GB).
 MAX_DENSE_GRID_BINS = 20_000
 
+#: Largest spike count of one unit in one window; beyond this the input is
+#: not spike data (a unit firing at 1 kHz for 1000 s would reach it).
+MAX_COUNT = 1e6
+
 PRIORS = ("uniform", "state_space")
 BACKENDS = ("numba", "numpy")
 
 _KERNEL_NAMES = (
+    "first_bad_entry",
     "poisson_log_likelihood",
     "posterior_from_log",
     "convolve_separable",
@@ -401,20 +406,25 @@ class BayesDecoder:
             return np.zeros(0, np.int64), np.zeros(0, np.float64)
         if rows.dtype.kind not in "iu":
             raise ValueError(f"fired_rows must hold integer model rows, got dtype {rows.dtype}")
-        lo, hi = int(rows.min()), int(rows.max())
-        if lo < 0 or hi >= self.n_units:
-            bad = lo if lo < 0 else hi
-            raise ValueError(f"fired_rows holds row {bad}, outside the model's rows 0..{self.n_units - 1}")
         if counts.dtype.kind not in "iuf":
             raise ValueError(f"fired_counts must be numeric, got dtype {counts.dtype}")
-        counts = counts.astype(np.float64, copy=False)
-        if counts.dtype.kind == "f" and not np.all(np.isfinite(counts)):
-            raise ValueError("fired_counts holds a NaN or infinite count")
-        if counts.min() < 0:
-            raise ValueError(f"fired_counts holds a negative count ({counts.min():g}); spike counts are >= 0")
-        if np.any(counts != np.floor(counts)):
-            raise ValueError("fired_counts must hold whole numbers of spikes")
-        return np.ascontiguousarray(rows, dtype=np.int64), np.ascontiguousarray(counts)
+        rows = np.ascontiguousarray(rows, dtype=np.int64)
+        counts = np.ascontiguousarray(counts, dtype=np.float64)
+        bad = self._k.first_bad_entry(rows, counts, self.n_units, MAX_COUNT)
+        if bad >= 0:
+            row, count = int(rows[bad]), float(counts[bad])
+            if not 0 <= row < self.n_units:
+                raise ValueError(f"fired_rows holds row {row}, outside the model's rows 0..{self.n_units - 1}")
+            if not np.isfinite(count):
+                raise ValueError(f"fired_counts holds a NaN or infinite count ({count}) for row {row}")
+            if count < 0:
+                raise ValueError(
+                    f"fired_counts holds a negative count ({count:g}) for row {row}; spike counts are >= 0"
+                )
+            if count >= MAX_COUNT:
+                raise ValueError(f"fired_counts holds {count:g} spikes for row {row}, more than {MAX_COUNT:g}")
+            raise ValueError(f"fired_counts must hold whole numbers of spikes, got {count:g} for row {row}")
+        return rows, counts
 
     def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray) -> DecodedStep:
         """Decode one window.

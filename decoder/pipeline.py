@@ -191,7 +191,7 @@ class Pipeline:
         self.model_is_loaded = False
         self._digest = hashlib.sha256()
         self.errors_cm: list[float] = []
-        self._zone_masks = zone_masks(config.zones, self.environment).reshape(len(config.zones), -1)
+        self._zone_masks = zone_masks(config.zones, self.environment)
         self._near_zone = self._near_zone_masks(config.session.false_margin_cm)
         if model is not None:
             self.install_model(model, t_s=-math.inf)

@@ -6,6 +6,7 @@ Subcommands::
     placeloop run       the decoder's live loop for a real (or simulated) rig
     placeloop sim       the simulated rig alone
     placeloop control   send a control command to a running loop
+    placeloop monitor   a live web page of the decoding, served on loopback
 """
 
 from __future__ import annotations
@@ -204,6 +205,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7)
     p.set_defaults(func=cmd_sim)
 
+    p = sub.add_parser("monitor", add_help=False,
+                       help="live web page of the decoding (placeloop monitor --help for its options)")
+
     p = sub.add_parser("control", help="send a command to a running loop")
     p.add_argument("command", choices=["start-learning", "stop-learning", "fit", "load-model", "arm", "disarm",
                                        "status"])
@@ -215,6 +219,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if argv[:1] == ["monitor"]:
+        # The monitor parses its own options (python -m rig_adapters.monitor).
+        from rig_adapters import monitor
+
+        return monitor.main(argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.verbose)

@@ -169,7 +169,9 @@ def test_grid_prediction_equals_dense_matrix_product(backend):
 
 
 @pytest.mark.parametrize(
-    "environment", [Arena.rectangle(20, 20, bin_cm=5), LinearTrack((0, 0), (40, 0), bin_cm=5)], ids=["grid", "track"]
+    "environment",
+    [Arena.rectangle(20, 20, bin_cm=5), LinearTrack((0, 0), (40, 0), bin_cm=5)],
+    ids=["grid", "track"],
 )
 def test_a_walk_much_narrower_than_a_bin_stays_put(environment):
     p = np.random.default_rng(8).random(environment.n_bins)
@@ -294,13 +296,19 @@ def test_underflowing_state_space_prior_falls_back_to_uniform_and_is_counted(bac
         (np.array([0]), np.array([-2]), "negative count"),
         (np.array([0]), np.array([np.nan]), "NaN or infinite"),
         (np.array([0]), np.array([1.5]), "whole numbers"),
+        (np.array([0]), np.array([1e7]), "more than"),
+        (np.array([0, 2, 1]), np.array([1, 2, -1]), "negative count \\(-1\\) for row 1"),
+        (np.array([0, 2**40]), np.array([1, 1]), "row 1099511627776, outside"),
         (np.array([0]), np.array(["a"]), "numeric"),
     ],
 )
-def test_bad_counts_are_refused_with_a_clear_message_and_no_state_change(rows, counts, message):
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_bad_counts_are_refused_with_a_clear_message_and_no_state_change(rows, counts, message, backend):
     track = LinearTrack((0, 0), (50, 0), bin_cm=5)
     rates = _random_rates(13, 3, track.n_bins)
-    refused, untouched = (BayesDecoder(rates, track, track.valid_mask, 0.2, prior="state_space") for _ in range(2))
+    refused, untouched = (
+        BayesDecoder(rates, track, track.valid_mask, 0.2, prior="state_space", backend=backend) for _ in range(2)
+    )
     for dec in (refused, untouched):
         dec.decode(np.array([1]), np.array([2]))
     with pytest.raises(ValueError, match=message):

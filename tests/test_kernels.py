@@ -285,3 +285,14 @@ def test_vectorisable_exp_matches_numpy_exp():
     ours = np.array([K._exp_nonpositive(x) for x in d])
     # Source: numpy.exp as reference; 2 ulp allowed (range reduction plus polynomial rounding).
     np.testing.assert_allclose(ours, np.exp(d), rtol=2 * np.finfo(float).eps, atol=0)
+
+
+def test_first_bad_entry_twins_agree():
+    rng = np.random.default_rng(11)
+    specials = np.array([np.nan, np.inf, -np.inf, -1.0, 0.5, 1e6, 3.0, 0.0])
+    for trial in range(200):
+        k = int(rng.integers(0, 12))
+        rows = rng.integers(-1, 6, k).astype(np.int64) if trial % 2 else rng.integers(0, 5, k).astype(np.int64)
+        counts = rng.choice(specials, k) if trial % 3 == 0 else rng.integers(0, 4, k).astype(np.float64)
+        # Source: the numpy twin (vectorised comparisons) as reference; both return the first offender.
+        assert K.first_bad_entry(rows, counts, 5, 1e6) == K.first_bad_entry_numpy(rows, counts, 5, 1e6), trial
