@@ -27,6 +27,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import tomli_w
+
 from decoder.environments import Arena, Environment, LinearTrack, TrackGraph
 from decoder.triggers import SafetyCaps, TriggerRule
 from decoder.zones import zone_from_dict
@@ -321,3 +323,78 @@ def load_config(path: str | Path) -> ExperimentConfig:
     except OSError as exc:
         raise ConfigError(f"cannot read config {path}: {exc.strerror}") from None
     return parse_config(text, str(path))
+
+
+def parse_setting_value(text: str):
+    """Read a value written on the command line as TOML (``0.02``, ``true``, ``"uniform"``, ``uniform``)."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def with_overrides(config: ExperimentConfig, overrides: dict[str, Any]) -> ExperimentConfig:
+    """A copy of ``config`` with settings replaced, validated as a whole.
+
+    Parameters
+    ----------
+    config : ExperimentConfig
+    overrides : dict
+        ``"table.key"`` → value, e.g. ``{"decoder.step_s": 0.01,
+        "environment.bin_cm": 2.5}``. ``"rules.key"`` sets the key on every
+        rule, ``"rules.NAME.key"`` on the rule named NAME; ``"zones.NAME.key"``
+        likewise for a zone.
+
+    Raises
+    ------
+    ConfigError
+        For an unknown table, key, rule or zone, naming it, or an impossible value.
+    """
+    doc = tomllib.loads(config.source_text)
+    for name, value in overrides.items():
+        parts = name.split(".")
+        if len(parts) == 2 and parts[0] in ("rules", "zones"):
+            items = doc.get(parts[0], [])
+            if not items:
+                raise ConfigError(f"setting {name!r}: the config has no [[{parts[0]}]]")
+            for item in items:
+                _set_known(item, parts[1], value, name, f"[[{parts[0]}]]")
+        elif len(parts) == 3 and parts[0] in ("rules", "zones"):
+            matches = [item for item in doc.get(parts[0], []) if item.get("name") == parts[1]]
+            if not matches:
+                raise ConfigError(f"setting {name!r}: no {parts[0][:-1]} is named {parts[1]!r}")
+            _set_known(matches[0], parts[2], value, name, f"[[{parts[0]}]] {parts[1]!r}")
+        elif len(parts) == 2:
+            table, key = parts
+            if table not in _SETTING_TABLES:
+                raise ConfigError(f"setting {name!r}: unknown table {table!r}; settable tables are "
+                                  f"{sorted(_SETTING_TABLES)} and rules, zones")
+            known = _SETTING_TABLES[table]
+            if known is not None and key not in known:
+                raise ConfigError(f"setting {name!r}: [{table}] has no key {key!r}; known keys are {sorted(known)}")
+            doc.setdefault(table, {})[key] = value
+        else:
+            raise ConfigError(f"setting {name!r} must read TABLE.KEY, rules.KEY or rules.NAME.KEY")
+    return parse_config(tomli_w.dumps(doc), "<config with overrides>")
+
+
+def _set_known(item: dict, key: str, value: Any, name: str, where: str) -> None:
+    if key == "name":
+        raise ConfigError(f"setting {name!r}: names cannot be swept")
+    allowed = {f.name for f in dataclasses.fields(TriggerRule)} if where.startswith("[[rules") else None
+    if allowed is not None and key not in allowed:
+        raise ConfigError(f"setting {name!r}: {where} has no key {key!r}; known keys are {sorted(allowed)}")
+    if allowed is None and key not in item:
+        raise ConfigError(f"setting {name!r}: {where} has no key {key!r}; it has {sorted(item)}")
+    item[key] = value
+
+
+_SETTING_TABLES: dict[str, set | None] = {
+    "model": {f.name for f in dataclasses.fields(ModelSettings)},
+    "decoder": {f.name for f in dataclasses.fields(DecoderSettings)},
+    "sources": {f.name for f in dataclasses.fields(SourceSettings)},
+    "session": {f.name for f in dataclasses.fields(SessionSettings)},
+    "safety": {f.name for f in dataclasses.fields(SafetyCaps)},
+    # Geometry keys depend on the kind; build_environment names a wrong one.
+    "environment": None,
+}

@@ -39,6 +39,7 @@ from decoder.messages import (
     TrackerFrames,
 )
 from decoder.place_model import PlaceModel
+from decoder.scoring import ErrorHistogram, VisitScore
 from decoder.stream_health import StreamHealth
 from decoder.tracking import TrackHistory
 from decoder.triggers import SessionCapError, StepInput, TriggerBank, TriggerEvent
@@ -190,7 +191,8 @@ class Pipeline:
         self.readiness: dict | None = None
         self.model_is_loaded = False
         self._digest = hashlib.sha256()
-        self.errors_cm: list[float] = []
+        self.errors = ErrorHistogram()
+        self.visits = VisitScore(len(config.zones))
         self._zone_masks = zone_masks(config.zones, self.environment)
         self._near_zone = self._near_zone_masks(config.session.false_margin_cm)
         if model is not None:
@@ -499,11 +501,9 @@ class Pipeline:
         tracked_xy, speed = self.tracked.at(t)
         true_xy, _ = self.truth.at(t) if self.config.sources.truth else (tracked_xy, speed)
         error = self._error_cm(step.map_xy_cm, true_xy)
-        if math.isfinite(error):
-            self.errors_cm.append(error)
-        in_zone = np.array(
-            [bool(z.contains(tracked_xy[None, :], self.environment)[0]) for z in self.config.zones], bool
-        )
+        self.errors.add(error)
+        in_zone = self._in_zones(tracked_xy)
+        true_in_zone = in_zone if true_xy is tracked_xy else self._in_zones(true_xy)
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
         spike_lag = t - previous_watermark_s if math.isfinite(previous_watermark_s) else 0.0
         tracker_lag = t - self.tracked.newest_t_s if math.isfinite(self.tracked.newest_t_s) else 0.0
@@ -520,12 +520,18 @@ class Pipeline:
                 )
             )
         )
+        self.visits.step(t, true_in_zone)
+        for ev in events:
+            self.visits.event(ev.t_s, self.zone_names.index(ev.zone))
         false_events = tuple(self._is_false(ev, true_xy) for ev in events)
         self.counters["decode_steps"] += 1
         self.counters["events"] += len(events)
         self.counters["false_events"] += sum(false_events)
         self._update_digest(k, step, events)
         return StepOutput(k, t, step, tracked_xy, true_xy, speed, error, events, false_events, self.bank.armed)
+
+    def _in_zones(self, xy: np.ndarray) -> np.ndarray:
+        return np.array([bool(z.contains(xy[None, :], self.environment)[0]) for z in self.config.zones], bool)
 
     def _error_cm(self, map_xy: np.ndarray, true_xy: np.ndarray) -> float:
         if not np.all(np.isfinite(true_xy)):

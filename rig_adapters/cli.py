@@ -4,15 +4,19 @@ Subcommands::
 
     placeloop demo      simulated rig + decoder + stimulator stand-in, over loopback
     placeloop run       the decoder's live loop for a real (or simulated) rig
+    placeloop replay    feed a recorded session through the same pipeline
     placeloop sim       the simulated rig alone
     placeloop control   send a control command to a running loop
     placeloop monitor   a live web page of the decoding, served on loopback
+    placeloop sweep     replay sessions over a grid of settings; the trade-off front
+    placeloop report    a self-contained HTML report of a session
 """
 
 from __future__ import annotations
 
 import argparse
 import dataclasses
+import importlib
 import json
 import logging
 import signal
@@ -30,6 +34,9 @@ CAUTION: placeloop drives reward and stimulation hardware that acts on a living 
   - Stay inside your approved animal-use protocol and your local rules for every setting you arm.
   - Dry-run every configuration on recorded or simulated data (placeloop demo, placeloop run --dry-run)
     before a live animal is connected."""
+
+#: Subcommands handed whole to a module's own ``main(argv)``.
+DELEGATED = {"monitor": "monitor", "sweep": "sweep", "report": "report"}
 
 DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"
 
@@ -163,6 +170,50 @@ def cmd_control(args: argparse.Namespace) -> int:
     return 0 if reply.get("ok") else 1
 
 
+def _parse_sets(items: list[str] | None) -> dict:
+    from decoder.config import ConfigError, parse_setting_value
+
+    overrides = {}
+    for item in items or []:
+        name, sep, value = item.partition("=")
+        if not sep or not name:
+            raise ConfigError(f"--set takes NAME=VALUE, got {item!r}")
+        overrides[name.strip()] = parse_setting_value(value.strip())
+    return overrides
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    from decoder.config import with_overrides
+    from decoder.place_model import ModelFileError, PlaceModel
+    from rig_adapters.loop import _jsonable
+    from rig_adapters.recorder import LogFormatError
+    from rig_adapters.replay import replay_session, session_config
+
+    try:
+        config = load_config(args.config) if args.config else session_config(args.log)
+        overrides = _parse_sets(args.set)
+        if overrides:
+            config = with_overrides(config, overrides)
+        model = PlaceModel.load(args.model) if args.model else None
+        result = replay_session(args.log, config=config, model=model, realtime=args.realtime)
+    except (LogFormatError, ModelFileError, OSError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    s = result.summary
+    if result.damage:
+        print(f"warning: the log is damaged; replayed up to it: {result.damage}", file=sys.stderr)
+    b = s["behaviour"]
+    print(f"replayed {s['decode']['steps']} steps from {result.records_read} records in {result.wall_s:.1f} s "
+          f"({s['replay']['x_realtime'] or 0:.0f}x real time)")
+    print(f"median error {s['decode']['median_error_cm']} cm; events {s['triggers']['count']} "
+          f"({s['triggers']['false_count']} far from the zone); zone entries {b['entries']}: {b['hits']} hit, "
+          f"{b['misses']} missed, {b['false_events']} false; behavioural latency p50 {b['latency_ms']['p50']} ms")
+    print(f"digest {s['decode']['digest']}")
+    if args.summary:
+        Path(args.summary).write_text(json.dumps(_jsonable(s), indent=2))
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="placeloop",
@@ -197,6 +248,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--dry-run", action="store_true", help="never drive the TTL line, whatever the config says")
     p.set_defaults(func=cmd_run)
 
+    p = sub.add_parser("replay", help="feed a recorded session through the same pipeline")
+    p.add_argument("log", help="session directory (or its session.plog)")
+    p.add_argument("--config", default=None, help="replay with this config instead of the recorded one")
+    p.add_argument("--model", default=None, help="decode with this model file from the start")
+    p.add_argument("--set", action="append", metavar="NAME=VALUE",
+                   help="override one setting, e.g. decoder.step_s=0.01 or rules.min_mass=0.7 (repeatable)")
+    p.add_argument("--realtime", action="store_true", help="pace by the recorded receive times")
+    p.add_argument("--summary", default=None, help="write the JSON summary here (same keys as live)")
+    p.set_defaults(func=cmd_replay)
+
     p = sub.add_parser("sim", help="the simulated rig alone")
     p.add_argument("--config", default=str(DEFAULT_DEMO_CONFIG))
     p.add_argument("--pub", default=None, help="bind the rig's PUB socket here (default: the config's rig endpoint)")
@@ -205,8 +266,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7)
     p.set_defaults(func=cmd_sim)
 
-    p = sub.add_parser("monitor", add_help=False,
-                       help="live web page of the decoding (placeloop monitor --help for its options)")
+    sub.add_parser("monitor", help="live web page of the decoding (placeloop monitor --help for its options)")
+    sub.add_parser("sweep", help="replay sessions over a grid of settings (placeloop sweep --help)")
+    sub.add_parser("report", help="one self-contained HTML report of a session (placeloop report --help)")
 
     p = sub.add_parser("control", help="send a command to a running loop")
     p.add_argument("command", choices=["start-learning", "stop-learning", "fit", "load-model", "arm", "disarm",
@@ -220,11 +282,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
-    if argv[:1] == ["monitor"]:
-        # The monitor parses its own options (python -m rig_adapters.monitor).
-        from rig_adapters import monitor
-
-        return monitor.main(argv[1:])
+    if argv[:1] and argv[0] in DELEGATED:
+        # These subcommands parse their own options (python -m rig_adapters.<module>).
+        module = importlib.import_module(f"rig_adapters.{DELEGATED[argv[0]]}")
+        return module.main(argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.verbose)

@@ -23,6 +23,7 @@ Sockets (all bound to loopback unless the config allows otherwise):
 
 from __future__ import annotations
 
+import copy
 import logging
 import math
 import time
@@ -386,13 +387,13 @@ class LiveLoop:
 
 def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
     """Summary figures shared by live runs and replays."""
-    errors = np.asarray(pipeline.errors_cm)
+    errors = pipeline.errors
     c = pipeline.counters
     return {
         "decode": {
             "steps": c["decode_steps"],
-            "median_error_cm": float(np.median(errors)) if errors.size else None,
-            "p90_error_cm": float(np.percentile(errors, 90)) if errors.size else None,
+            "median_error_cm": errors.percentile(50),
+            "p90_error_cm": errors.percentile(90),
             "digest": pipeline.digest,
         },
         "triggers": {
@@ -400,6 +401,7 @@ def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
             "false_count": c["false_events"],
             **{k: v for k, v in pipeline.bank.status().items() if k != "armed"},
         },
+        "behaviour": copy.deepcopy(pipeline.visits).result(),
         "latency_ms": LatencyLog.percentiles(latency.added_ms),
         "latency_stages_ms": {
             "decode_per_step": LatencyLog.percentiles(latency.decode_ms),

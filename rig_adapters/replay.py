@@ -12,11 +12,12 @@ from __future__ import annotations
 
 import logging
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from decoder.config import ExperimentConfig, load_config
-from decoder.pipeline import Notice, Pipeline, StepOutput
+from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from decoder.place_model import PlaceModel
 from rig_adapters.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest
 from rig_adapters.loop import LatencyLog, session_summary
@@ -53,7 +54,9 @@ def session_config(log_dir: str | Path) -> ExperimentConfig:
 
 
 def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
-                   model: PlaceModel | None = None, keep_steps: bool = False) -> ReplayResult:
+                   model: PlaceModel | None = None, keep_steps: bool = False,
+                   on_output: Callable[[StepOutput | LearningProgress | Notice], None] | None = None,
+                   realtime: bool = False) -> ReplayResult:
     """Feed a recorded session through the pipeline.
 
     Parameters
@@ -67,6 +70,12 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         instead of learning as the live run did.
     keep_steps : bool
         Keep every StepOutput (memory grows with the session).
+    on_output : callable, optional
+        Called with every output (step, learning progress, notice) as it
+        comes, for callers that keep only what they need (the report).
+    realtime : bool
+        Pace the replay by the recorded receive times instead of running as
+        fast as possible.
 
     Returns
     -------
@@ -87,10 +96,17 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     reader = iter_records(log_dir)
     started = time.perf_counter()
     first_t = None
+    first_wall = None
     for record in reader:
         result.records_read += 1
         if record.type != "input":
             continue
+        if realtime:
+            if first_wall is None:
+                first_wall = (record.wall_s, time.perf_counter())
+            delay = (record.wall_s - first_wall[0]) - (time.perf_counter() - first_wall[1])
+            if delay > 0:
+                time.sleep(delay)
         t0 = time.perf_counter()
         if record.channel == CHANNEL_RIG:
             outputs = ingest.rig_bytes(record.payload)
@@ -106,6 +122,9 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
             if first_t is None:
                 first_t = steps[0].t_s
             result.data_s = steps[-1].t_s - first_t
+        if on_output is not None:
+            for out in outputs:
+                on_output(out)
         if keep_steps:
             result.steps.extend(steps)
         result.notices.extend(o for o in outputs if isinstance(o, Notice))
@@ -117,8 +136,49 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     result.summary = session_summary(pipeline, latency)
     result.summary["replay"] = {
         "records": result.records_read,
+        "x_realtime": result.data_s / result.wall_s if result.wall_s > 0 else None,
         "clean_close": result.clean_close,
         "damage": result.damage,
         "wall_s": result.wall_s,
     }
     return result
+
+
+def record_simulated_session(config: ExperimentConfig, log_dir: str | Path, until_s: float, seed: int = 7,
+                             wall_start_s: float = 1.0e9) -> Path:
+    """Write the session log a live run of the simulated rig would have left, without sockets.
+
+    Every simulated message is encoded on the wire format and recorded on the
+    rig channel with a receive time of ``wall_start_s`` plus its data time, and
+    the config goes beside the log, exactly as ``placeloop run --log`` stores
+    them. Tests and benchmarks use it to make long sessions in seconds.
+
+    Parameters
+    ----------
+    config : ExperimentConfig
+        Needs a ``[simulation]`` table (may be empty: defaults apply).
+    log_dir : path
+        A new session directory.
+    until_s : float
+        Simulated seconds.
+    seed : int
+
+    Returns
+    -------
+    Path
+        The session directory.
+    """
+    from rig_adapters import protocol
+    from rig_adapters.recorder import SessionRecorder
+    from rig_adapters.simulation import SimulatedSession, SimulationSettings
+
+    session = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=seed)
+    with SessionRecorder(log_dir, flush_interval_s=1.0, fsync="never",
+                         metadata={"simulated": True, "seed": seed}) as recorder:
+        recorder.write_sidecar(CONFIG_SIDECAR, config.source_text.encode())
+        for chunk in session.chunks(until_s=until_s):
+            wall = wall_start_s + chunk.t_end_s
+            for msg in chunk.messages:
+                recorder.record_input(protocol.encode(msg), wall, CHANNEL_RIG)
+            recorder.maybe_flush(wall)
+    return Path(log_dir)
