@@ -5,6 +5,10 @@ from __future__ import annotations
 import numpy as np
 
 
+#: Frames the buffer holds before it compacts (grows if keep_s needs more).
+_CAPACITY = 4096
+
+
 class TrackHistory:
     """Recent tracker frames on the reference clock.
 
@@ -24,8 +28,13 @@ class TrackHistory:
         self.keep_s = float(keep_s)
         self.speed_window_s = float(speed_window_s)
         self.max_age_s = float(max_age_s)
-        self._t = np.zeros(0, np.float64)
-        self._xy = np.zeros((0, 2), np.float64)
+        # A preallocated buffer, compacted when full: a tracker sends 30-60
+        # frames a second, and a concatenation per frame was the replay's
+        # largest cost.
+        self._t = np.zeros(_CAPACITY, np.float64)
+        self._xy = np.zeros((_CAPACITY, 2), np.float64)
+        self._start = 0
+        self._stop = 0
         self.newest_t_s = -np.inf
         self.out_of_order = 0
 
@@ -34,28 +43,54 @@ class TrackHistory:
 
         Frames not newer than the newest one held are counted and dropped.
         """
+        if t_s.size == 1:
+            t = float(t_s[0])
+            if not t > self.newest_t_s:
+                self.out_of_order += 1
+                return
+            self.newest_t_s = t
+            x, y = xy_cm[0]
+            if x != x or y != y:
+                return
+            self._append(t_s, xy_cm)
+            return
         newer = t_s > self.newest_t_s
         self.out_of_order += int(np.count_nonzero(~newer))
         if t_s.size:
             self.newest_t_s = max(self.newest_t_s, float(t_s.max()))
         good = newer & np.all(np.isfinite(xy_cm), axis=1)
-        if not np.any(good):
-            return
-        self._t = np.concatenate([self._t, t_s[good]])
-        self._xy = np.concatenate([self._xy, xy_cm[good]])
-        cut = np.searchsorted(self._t, self._t[-1] - self.keep_s, side="left")
-        if cut:
-            self._t, self._xy = self._t[cut:], self._xy[cut:]
+        if np.any(good):
+            self._append(t_s[good], xy_cm[good])
+
+    def _append(self, t_s: np.ndarray, xy_cm: np.ndarray) -> None:
+        n = t_s.size
+        if self._stop + n > self._t.size:
+            # Keep only the last keep_s of data, moved to the front (grown if needed).
+            t = self._t[self._start:self._stop]
+            cut = int(np.searchsorted(t, t_s[-1] - self.keep_s, side="left")) if t.size else 0
+            kept_t, kept_xy = t[cut:].copy(), self._xy[self._start + cut:self._stop].copy()
+            need = kept_t.size + n
+            if need > self._t.size // 2:
+                self._t = np.zeros(2 * need, np.float64)
+                self._xy = np.zeros((2 * need, 2), np.float64)
+            self._t[:kept_t.size] = kept_t
+            self._xy[:kept_t.size] = kept_xy
+            self._start, self._stop = 0, kept_t.size
+        self._t[self._stop:self._stop + n] = t_s
+        self._xy[self._stop:self._stop + n] = xy_cm
+        self._stop += n
 
     def at(self, t_s: float) -> tuple[np.ndarray, float]:
         """Position (2,) and running speed (cm/s) at ``t_s`` from frames at or before it.
 
         NaN when the newest such frame is older than ``max_age_s``.
         """
-        i = int(np.searchsorted(self._t, t_s, side="right")) - 1
-        if i < 0 or t_s - self._t[i] > self.max_age_s:
+        t = self._t[self._start:self._stop]
+        i = int(np.searchsorted(t, t_s, side="right")) - 1
+        if i < 0 or t_s - t[i] > self.max_age_s:
             return np.full(2, np.nan), float("nan")
-        j = int(np.searchsorted(self._t, self._t[i] - self.speed_window_s, side="left"))
-        dt = self._t[i] - self._t[j]
-        speed = float(np.hypot(*(self._xy[i] - self._xy[j])) / dt) if dt > 0 else float("nan")
-        return self._xy[i].copy(), speed
+        j = int(np.searchsorted(t, t[i] - self.speed_window_s, side="left"))
+        xy = self._xy[self._start:self._stop]
+        dt = t[i] - t[j]
+        speed = float(np.hypot(*(xy[i] - xy[j])) / dt) if dt > 0 else float("nan")
+        return xy[i].copy(), speed

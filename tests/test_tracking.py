@@ -27,3 +27,14 @@ def test_lost_old_and_out_of_order_frames():
     assert np.all(np.isnan(pos)) and np.isnan(speed)     # too old to trust
     pos, _ = hist.at(-1.0)
     assert np.all(np.isnan(pos))
+
+
+def test_long_streams_compact_without_losing_recent_frames():
+    hist = TrackHistory(keep_s=2.0)
+    t = np.arange(0, 600, 0.02)
+    xy = np.column_stack([np.sin(t), np.cos(t)]) * 10
+    for i in range(t.size):
+        hist.add(t[i:i + 1], xy[i:i + 1])
+    pos, _ = hist.at(599.5)
+    np.testing.assert_allclose(pos, xy[np.searchsorted(t, 599.5, side="right") - 1])
+    assert hist._t.size <= 4 * 4096
