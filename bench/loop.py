@@ -8,10 +8,10 @@ Three measurements in one run:
    machine (PUB → SUB over loopback TCP, a payload the size of a spike batch),
    stamped with the monotonic clock both processes share;
 2. the loop: the simulated rig (300 units, 10,000-bin arena) publishing at
-   ``speed`` × real time into ``placeloop run`` with a model fitted from the
-   same simulated animal, the state-space prior and 20 ms steps; the loop's
-   own added latency (receipt of the message that closed a step → its output
-   handed to ZeroMQ) for every step;
+   ``speed`` × real time into ``placeloop run``, which learns for
+   ``learn_s`` simulated seconds, fits, and then decodes every 20 ms step
+   with the state-space prior; the loop's own added latency (receipt of the
+   message that closed a step → its output handed to ZeroMQ) for every step;
 3. memory: the loop's resident set sampled every second; growth is the last
    sample against the sample after the first fifth of the run (after numba
    compilation and the first allocations).
@@ -39,13 +39,10 @@ import zmq
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from decoder.config import parse_config  # noqa: E402
-from decoder.pipeline import Pipeline  # noqa: E402
 from rig_adapters.demo import free_loopback_port  # noqa: E402
-from rig_adapters.simulation import SimulatedSession, SimulationSettings  # noqa: E402
 
 
-def bench_config(ports: dict, units: int) -> dict:
+def bench_config(ports: dict, units: int, learn_s: float) -> dict:
     n_grid = units // 10
     n_nonspatial = units // 10
     return {
@@ -53,7 +50,7 @@ def bench_config(ports: dict, units: int) -> dict:
         "model": {"smooth_cm": 4.0, "cv_folds": 2},
         "decoder": {"window_s": 0.2, "step_s": 0.02, "prior": "state_space", "random_walk_sd_cm": 3.0},
         "sources": {"truth": "truth"},
-        "session": {"cross_validate": False},
+        "session": {"learn_s": learn_s, "arm_after_fit": True, "cross_validate": False},
         "safety": {"refractory_s": 2.0, "max_per_minute": 30, "max_per_session": 100000},
         "zones": [{"name": "goal", "kind": "circle", "center_cm": [150.0, 150.0], "radius_cm": 12.0}],
         "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
@@ -69,20 +66,6 @@ def bench_config(ports: dict, units: int) -> dict:
             "n_nonspatial_cells": n_nonspatial,
         },
     }
-
-
-def fit_model(doc: dict, learn_s: float, path: Path) -> None:
-    """Learn a model from the simulated animal through the pipeline itself."""
-    learn_doc = dict(doc, session={"learn_s": learn_s, "cross_validate": False})
-    config = parse_config(tomli_w.dumps(learn_doc))
-    pipeline = Pipeline(config)
-    session = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=11)
-    for msg in session.messages(until_s=learn_s + 1.0):
-        pipeline.on_message(msg)
-        if pipeline.state == "decoding":
-            break
-    assert pipeline.state == "decoding", "the model did not fit"
-    pipeline.model.save(path)
 
 
 def floor_child(endpoint: str, n: int, payload_bytes: int) -> None:
@@ -127,7 +110,7 @@ def main(argv=None) -> int:
     parser.add_argument("--duration-s", type=float, default=600.0, help="wall seconds of the loaded run")
     parser.add_argument("--speed", type=float, default=4.0, help="simulated seconds per wall second")
     parser.add_argument("--units", type=int, default=300)
-    parser.add_argument("--learn-s", type=float, default=300.0, help="simulated seconds to fit the model from")
+    parser.add_argument("--learn-s", type=float, default=240.0, help="simulated seconds the loop learns from")
     parser.add_argument("--floor-child", nargs=3, metavar=("ENDPOINT", "N", "BYTES"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.floor_child:
@@ -139,17 +122,12 @@ def main(argv=None) -> int:
     with tempfile.TemporaryDirectory(prefix="placeloop-bench-") as tmp:
         tmp = Path(tmp)
         ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
-        doc = bench_config(ports, args.units)
+        doc = bench_config(ports, args.units, args.learn_s)
         cfg = tmp / "bench.toml"
         cfg.write_text(tomli_w.dumps(doc))
-        model = tmp / "model.npz"
-        print(f"fitting a {args.units}-unit model from {args.learn_s:.0f} simulated s ...", file=sys.stderr)
-        t0 = time.perf_counter()
-        fit_model(doc, args.learn_s, model)
-        print(f"  fitted in {time.perf_counter() - t0:.1f} s", file=sys.stderr)
         summary_path = tmp / "summary.json"
-        loop = subprocess.Popen([sys.executable, "-m", "rig_adapters.cli", "run", "--config", str(cfg), "--model",
-                                 str(model), "--summary", str(summary_path), "--idle-exit-s", "3"],
+        loop = subprocess.Popen([sys.executable, "-m", "rig_adapters.cli", "run", "--config", str(cfg),
+                                 "--summary", str(summary_path), "--idle-exit-s", "3"],
                                 cwd=ROOT, stderr=subprocess.DEVNULL)
         sim_s = args.duration_s * args.speed
         rig = subprocess.Popen([sys.executable, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",

@@ -110,6 +110,17 @@ def page_only(url: str) -> int:
     return 0
 
 
+#: The loop gets the last core to itself in both conditions (``placeloop run --cpu``),
+#: as the README advises for a rig; the monitor and the browser run on the others.
+LOOP_CPU = max(os.sched_getaffinity(0))
+
+
+def _off_loop_cpu() -> None:
+    others = os.sched_getaffinity(0) - {LOOP_CPU}
+    if others:
+        os.sched_setaffinity(0, others)
+
+
 def one_run(with_page: bool, args: argparse.Namespace, out_dir: Path, tag: str) -> dict:
     """One demo session; with a monitor and a page attached when ``with_page``."""
     summary = out_dir / f"summary-{tag}.json"
@@ -117,7 +128,8 @@ def one_run(with_page: bool, args: argparse.Namespace, out_dir: Path, tag: str) 
     rc: list[int] = []
     demo = threading.Thread(target=lambda: rc.append(run_demo(
         config_path=str(args.config), speed=args.speed, log_dir=None, summary_path=str(summary),
-        learn_s=args.learn_s, decode_s=args.decode_s, seed=args.seed, monitor_state_endpoint=endpoints)))
+        learn_s=args.learn_s, decode_s=args.decode_s, seed=args.seed, monitor_state_endpoint=endpoints,
+        loop_cpu=LOOP_CPU)))
     demo.start()
     monitor = None
     watcher_result: list[int] = []
@@ -130,13 +142,14 @@ def one_run(with_page: bool, args: argparse.Namespace, out_dir: Path, tag: str) 
             monitor = subprocess.Popen(
                 [sys.executable, "-m", "rig_adapters.monitor", "--config", str(args.config),
                  "--state", endpoints[0], "--http-port", str(port)],
-                cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, preexec_fn=_off_loop_cpu)
             url = f"http://127.0.0.1:{port}/"
             _wait_http(url + "api/environment", 20)
             # The page runs in its own process at the monitor's low priority, as an
             # operator would run a browser beside the loop (see the README).
             watcher = subprocess.Popen([sys.executable, __file__, "--page-only", url], cwd=REPO,
-                                       stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+                                       stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+                                       preexec_fn=_off_loop_cpu)
         demo.join()
     finally:
         if watcher is not None:

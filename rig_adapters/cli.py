@@ -19,6 +19,7 @@ import dataclasses
 import importlib
 import json
 import logging
+import os
 import signal
 import sys
 from pathlib import Path
@@ -65,6 +66,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     from rig_adapters.recorder import SessionRecorder
 
     print(CAUTION, file=sys.stderr)
+    if args.cpu:
+        # A core of its own keeps the loop's latency free of a browser, a monitor or a disk.
+        os.sched_setaffinity(0, set(args.cpu))
     config = _with_endpoints(load_config(args.config), args.rig, args.events, args.state, args.control)
     if args.dry_run:
         config = dataclasses.replace(config, ttl=dataclasses.replace(config.ttl, device=""))
@@ -246,6 +250,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--duration-s", type=float, default=None, help="stop after this many wall-clock seconds")
     p.add_argument("--idle-exit-s", type=float, default=None, help="stop after this long without rig input")
     p.add_argument("--dry-run", action="store_true", help="never drive the TTL line, whatever the config says")
+    p.add_argument("--cpu", type=int, action="append", default=None,
+                   help="run the loop on this CPU core only (repeatable; Linux)")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("replay", help="feed a recorded session through the same pipeline")

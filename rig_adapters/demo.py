@@ -53,7 +53,8 @@ def demo_config_text(config_path: str | Path, learn_s: float | None, ports: dict
 
 
 def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: str | None,
-             learn_s: float | None, decode_s: float, seed: int, monitor_state_endpoint: list | None = None) -> int:
+             learn_s: float | None, decode_s: float, seed: int, monitor_state_endpoint: list | None = None,
+             loop_cpu: int | None = None) -> int:
     ports = {name: free_loopback_port() for name in ("rig", "events", "state", "control")}
     text = demo_config_text(config_path, learn_s, ports)
     learn = tomllib.loads(text)["session"]["learn_s"]
@@ -72,6 +73,8 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
                    "--idle-exit-s", "3"]
         if log_dir:
             run_cmd += ["--log", str(log_dir)]
+        if loop_cpu is not None:
+            run_cmd += ["--cpu", str(loop_cpu)]
         decoder = subprocess.Popen(run_cmd, env=env)
         rig = subprocess.Popen([py, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
                                 f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(speed), "--duration-s",
