@@ -91,9 +91,13 @@ def cmd_run(args: argparse.Namespace) -> int:
             recorder.write_sidecar("initial_model.npz", Path(args.model).read_bytes())
     ttl = None
     if config.ttl.device:
-        import serial
+        from rig_adapters.ttl import TtlLine
 
-        ttl = serial.serial_for_url(config.ttl.device, baudrate=config.ttl.baud, timeout=0, write_timeout=0)
+        try:
+            ttl = TtlLine(config.ttl.device, config.ttl.baud, config.ttl.pulse_byte)
+        except OSError as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return 2
     loop = LiveLoop(config, pipeline, recorder=recorder, ttl=ttl)
 
     def _stop(signum, frame):

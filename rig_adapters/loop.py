@@ -85,8 +85,8 @@ class LiveLoop:
     pipeline : Pipeline
     recorder : SessionRecorder or None
         Session log; every input and every event goes to it.
-    ttl : object with ``write(bytes)`` or None
-        A serial port for TTL pulses.
+    ttl : rig_adapters.ttl.TtlLine or None
+        A serial line for TTL pulses.
     publish_state : bool
         Send a state frame per step (for monitors).
     """
@@ -235,10 +235,7 @@ class LiveLoop:
         self.events.send(payload)
         sent_wall_s = time.time()
         if self.ttl is not None:
-            try:
-                self.ttl.write(bytes([self.config.ttl.pulse_byte]))
-            except OSError as exc:
-                log.error("TTL write failed: %s", exc)
+            self.ttl.pulse()
         self.events_sent += 1
         self.latency.event_ms.append((sent_wall_s - recv_wall_s) * 1e3)
         if self.recorder is not None:
