@@ -108,10 +108,13 @@ def cmd_run(args: argparse.Namespace) -> int:
     try:
         loop.run(duration_s=args.duration_s, idle_exit_s=args.idle_exit_s)
     finally:
-        if recorder is not None:
-            recorder.close()
         if ttl is not None:
             ttl.close()
+        if recorder is not None:
+            try:
+                recorder.close()
+            except OSError as exc:
+                print(f"error: the session log could not be completed: {exc}", file=sys.stderr)
     summary = loop.summary()
     if args.summary:
         Path(args.summary).write_text(json.dumps(_jsonable(summary), indent=2))

@@ -26,6 +26,7 @@ from __future__ import annotations
 import copy
 import logging
 import math
+import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -55,19 +56,82 @@ DRAIN_LIMIT = 2000
 FITTED_MODEL_SIDECAR = "fitted_model.npz"
 
 
+class LatencySeries:
+    """Latency samples (ms) in bounded memory: percentiles from a fixed histogram.
+
+    Bins are log-spaced from 1 µs to 100 s, each 0.5 % wide, so a percentile
+    is exact to 0.5 % however long the session; the newest ``RECENT``
+    samples are kept as they are for monitors.
+
+    Parameters
+    ----------
+    keep_all : bool
+        Also keep every sample (offline use: the report's histograms).
+    """
+
+    RECENT = 2000
+    _EDGES_MS = np.geomspace(1e-3, 1e5, 3700)
+
+    def __init__(self, keep_all: bool = False) -> None:
+        self._counts = np.zeros(self._EDGES_MS.size + 1, np.int64)
+        self._recent = np.zeros(self.RECENT)
+        self._n = 0
+        self.max_ms = float("-inf")
+        self.values: list[float] | None = [] if keep_all else None
+
+    def append(self, ms: float) -> None:
+        self._counts[np.searchsorted(self._EDGES_MS, ms)] += 1
+        self._recent[self._n % self.RECENT] = ms
+        self._n += 1
+        self.max_ms = max(self.max_ms, float(ms))
+        if self.values is not None:
+            self.values.append(ms)
+
+    def __len__(self) -> int:
+        return self._n
+
+    def __iter__(self):
+        return iter(self.values if self.values is not None else self.recent())
+
+    @property
+    def last(self) -> float | None:
+        return float(self._recent[(self._n - 1) % self.RECENT]) if self._n else None
+
+    def recent(self) -> np.ndarray:
+        """The newest samples (up to ``RECENT``), oldest first."""
+        if self._n <= self.RECENT:
+            return self._recent[: self._n].copy()
+        i = self._n % self.RECENT
+        return np.concatenate([self._recent[i:], self._recent[:i]])
+
+    def percentile(self, q: float) -> float | None:
+        if not self._n:
+            return None
+        i = int(np.searchsorted(np.cumsum(self._counts), q / 100.0 * self._n, side="left"))
+        edges = self._EDGES_MS
+        lo = edges[i - 1] if i > 0 else 0.0
+        hi = edges[i] if i < edges.size else self.max_ms
+        # The geometric middle of the bin, never beyond the largest sample.
+        return float(min(math.sqrt(lo * hi) if lo > 0 else hi, self.max_ms))
+
+
 @dataclass
 class LatencyLog:
     """Wall-clock latency samples (ms), per stage."""
 
-    added_ms: list[float] = field(default_factory=list)
-    decode_ms: list[float] = field(default_factory=list)
-    event_ms: list[float] = field(default_factory=list)
+    added_ms: LatencySeries = field(default_factory=LatencySeries)
+    decode_ms: LatencySeries = field(default_factory=LatencySeries)
+    event_ms: LatencySeries = field(default_factory=LatencySeries)
 
     @staticmethod
-    def percentiles(values: list[float]) -> dict:
-        if not values:
+    def percentiles(values) -> dict:
+        """p50, p99, max and count of a :class:`LatencySeries` or a plain sequence."""
+        if not len(values):
             return {"p50": None, "p99": None, "max": None, "n": 0}
-        a = np.asarray(values)
+        if isinstance(values, LatencySeries):
+            return {"p50": values.percentile(50), "p99": values.percentile(99), "max": values.max_ms,
+                    "n": len(values)}
+        a = np.asarray(list(values), float)
         return {
             "p50": float(np.percentile(a, 50)),
             "p99": float(np.percentile(a, 99)),
@@ -306,7 +370,7 @@ class LiveLoop:
         now = time.monotonic()
         if now - self._stats_wall_s >= 1.0:
             c = self.pipeline.counters
-            recent = self.latency.added_ms[-2000:]
+            recent = self.latency.added_ms.recent()
             counts = {name: h.messages for name, h in self.pipeline.health.sources.items()}
             elapsed = now - self._stats_wall_s if self._stats_wall_s > 0 else 1.0
             rates = {f"rate_{role}_hz": (counts.get(src, 0) - self._last_counts.get(src, 0)) / elapsed
@@ -315,8 +379,8 @@ class LiveLoop:
             self._last_counts = counts
             self._stats_wall_s = now
             self._stats = {
-                "latency_p50_ms": float(np.percentile(recent, 50)) if recent else 0.0,
-                "latency_p99_ms": float(np.percentile(recent, 99)) if recent else 0.0,
+                "latency_p50_ms": float(np.percentile(recent, 50)) if recent.size else 0.0,
+                "latency_p99_ms": float(np.percentile(recent, 99)) if recent.size else 0.0,
                 "bad_messages": int(c["bad_messages"]),
                 "gaps": int(self.pipeline.health.total_gaps),
                 "stale_messages": int(c["stale_messages"]),
@@ -332,7 +396,7 @@ class LiveLoop:
             cv = readiness.get("median_cv_error_cm")
             if cv is not None and math.isfinite(cv):
                 stats["cv_error_cm"] = float(cv)
-        stats["added_ms"] = self.latency.added_ms[-1] if self.latency.added_ms else 0.0
+        stats["added_ms"] = self.latency.added_ms.last or 0.0
         return stats
 
     def _notice(self, notice: Notice) -> None:
@@ -344,10 +408,10 @@ class LiveLoop:
                 self._store_model_sidecar()
 
     def _store_model_sidecar(self) -> None:
-        path = Path(self.recorder.directory) / ".model-tmp.npz"
-        self.pipeline.model.save(path)
-        self.recorder.write_sidecar(FITTED_MODEL_SIDECAR, path.read_bytes())
-        path.unlink()
+        with tempfile.TemporaryDirectory(prefix="placeloop-model-") as tmp:
+            path = Path(tmp) / "model.npz"
+            self.pipeline.model.save(path)
+            self.recorder.write_sidecar(FITTED_MODEL_SIDECAR, path.read_bytes())
 
     # -- control --------------------------------------------------------------------
 
