@@ -118,7 +118,10 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
             continue
         steps = [o for o in outputs if isinstance(o, StepOutput)]
         if steps:
-            latency.decode_ms.append((time.perf_counter() - t0) * 1e3 / len(steps))
+            work_ms = (time.perf_counter() - t0) * 1e3
+            # Without sockets, the added latency is the work on the message that closed the steps.
+            latency.added_ms.append(work_ms)
+            latency.decode_ms.append(work_ms / len(steps))
             if first_t is None:
                 first_t = steps[0].t_s
             result.data_s = steps[-1].t_s - first_t
