@@ -714,18 +714,37 @@ class PlaceModel:
         occupancy = self._fold_occ[folds].sum(axis=0)
         return counts, occupancy
 
+    def _visited(self, occupancy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Occupancy around each bin (n_bins,) and the bins the decoder may use.
+
+        A bin is used when the running time in its neighbourhood, weighted by
+        a Gaussian of ``smooth_cm`` with weight 1 at the bin itself, reaches
+        ``min_occupancy_s``. With small bins a running animal spends well
+        under 0.1 s in most bins it crosses, so a threshold on each bin's own
+        time would leave holes along its path; the neighbourhood fills them,
+        and the smoothed rate maps are defined there (common practice).
+        """
+        env = self.environment
+        s = self.smooth_cm / env.bin_cm
+        # Sum of a unit-peak Gaussian over the grid (2-D) or the track (1-D).
+        peak_to_sum = 2.0 * np.pi * s * s if env.ndim_spatial == 2 else np.sqrt(2.0 * np.pi) * s
+        every_bin = np.ones(env.n_bins, dtype=bool)
+        around = env.smooth(occupancy, every_bin, self.smooth_cm) * max(peak_to_sum, 1.0)
+        return around, env.valid_mask & (occupancy.sum() > 0) & (around >= self.min_occupancy_s)
+
     def _rate_maps(self, counts: np.ndarray, occupancy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Smoothed rate maps (n_units, n_bins) and the visited mask from totals."""
-        visited = self.environment.valid_mask & (occupancy > 0) & (occupancy >= self.min_occupancy_s)
+        env = self.environment
+        valid = env.valid_mask
+        _, visited = self._visited(occupancy)
         if not np.any(visited):
             raise ValueError(
                 f"no bin has min_occupancy_s={self.min_occupancy_s} s of running yet "
                 f"(running time so far {occupancy.sum():.1f} s); feed more frames of the animal moving "
                 f"faster than min_speed_cm_s={self.min_speed_cm_s}"
             )
-        env = self.environment
-        spikes = env.smooth(counts.astype(np.float64), visited, self.smooth_cm)
-        time = env.smooth(occupancy, visited, self.smooth_cm)
+        spikes = env.smooth(counts.astype(np.float64), valid, self.smooth_cm)
+        time = env.smooth(occupancy, valid, self.smooth_cm)
         rates = np.zeros_like(spikes)
         np.divide(spikes, time, out=rates, where=visited & (time > 0))
         rates = np.where(visited, np.maximum(rates, self.rate_floor_hz), 0.0)
@@ -774,7 +793,7 @@ class PlaceModel:
         """
         counts, occupancy = self._totals()
         valid = self.environment.valid_mask
-        visited = valid & (occupancy > 0) & (occupancy >= self.min_occupancy_s)
+        _, visited = self._visited(occupancy)
         n_tuned = 0
         if np.any(visited) and len(counts):
             rates, visited = self._rate_maps(counts, occupancy)

@@ -1,0 +1,289 @@
+"""Benchmark of offline replay and of parameter sweeps.
+
+Run ``python bench/replay.py --json out/replay.json`` (``--quick`` for a
+short run). Three measurements, each against a baseline taken in the same
+run:
+
+1. Replay throughput on one core: a 30-minute session of the simulated rig
+   (300 units on a 2,500-bin arena, tracker at 50 Hz) is recorded to a
+   temporary session log, then replayed through the full pipeline with this
+   process pinned to one core; the figure is recorded seconds per wall
+   second (``replay_x_realtime``, target >= 200). The baseline beside it is
+   the time to read the same log without decoding (the floor any replay
+   pays). The time taken to make the session is reported too.
+2. Where a replay's time goes: cProfile over the replay of a shorter
+   session of the same rig, the top functions by own time.
+3. Sweep scaling: the same grid of settings (``rules.min_mass`` at four
+   values, each replay costing the same) over a shorter session, on 1 and
+   on 2 worker processes, alternated and repeated; ``sweep_speedup_2cores``
+   is the median 1-worker wall time over the median 2-worker one
+   (target >= 1.7).
+
+The sessions are simulated (invented data), for timing only. BLAS and
+OpenMP threads are held to one so that "one core" and "two workers" mean
+what they say.
+"""
+
+from __future__ import annotations
+
+import os
+
+# Before numpy loads: one thread each, so a worker is one core.
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import argparse  # noqa: E402
+import concurrent.futures  # noqa: E402
+import cProfile  # noqa: E402
+import json  # noqa: E402
+import pathlib  # noqa: E402
+import platform  # noqa: E402
+import pstats  # noqa: E402
+import sys  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+
+# This folder holds scripts named like the packages they measure (decoder.py);
+# drop it from the import path so that ``import decoder`` finds the package.
+_HERE = pathlib.Path(__file__).resolve().parent
+sys.path[:] = [p for p in sys.path if pathlib.Path(p or ".").resolve() != _HERE]
+
+import numpy as np  # noqa: E402
+import tomli_w  # noqa: E402
+
+from decoder.config import parse_config  # noqa: E402
+from rig_adapters.recorder import iter_records  # noqa: E402
+from rig_adapters.replay import record_simulated_session, replay_session  # noqa: E402
+from rig_adapters.sweep import default_workers, plan_sweep, pool_context, run_sweep  # noqa: E402
+
+TARGET_X_REALTIME = 200.0
+TARGET_SPEEDUP_2 = 1.7
+SWEEP_GRID = {"rules.min_mass": [0.5, 0.6, 0.7, 0.8]}
+
+
+def bench_config(units: int, learn_s: float) -> str:
+    """TOML of the benchmark rig: a 100 cm square at 2 cm bins (2,500 bins), ``units`` cells.
+
+    The cells are 80 % place cells, 10 % grid cells and 10 % without spatial
+    tuning. Cross-validation at fitting time is off: it is a one-off cost
+    that is not part of the per-message path this benchmark times.
+    """
+    n_grid = units // 10
+    n_nonspatial = units // 10
+    doc = {
+        "environment": {"kind": "rectangle", "width_cm": 100.0, "height_cm": 100.0, "bin_cm": 2.0},
+        "model": {"smooth_cm": 4.0},
+        "decoder": {"window_s": 0.2, "step_s": 0.02, "prior": "state_space", "random_walk_sd_cm": 3.0},
+        "sources": {"truth": "truth"},
+        "session": {"learn_s": learn_s, "arm_after_fit": True, "cross_validate": False},
+        "safety": {"refractory_s": 2.0, "max_per_minute": 30, "max_per_session": 100000},
+        "zones": [{"name": "goal", "kind": "circle", "center_cm": [70.0, 70.0], "radius_cm": 12.0}],
+        "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
+        "simulation": {"n_place_cells": units - n_grid - n_nonspatial, "n_grid_cells": n_grid,
+                       "n_nonspatial_cells": n_nonspatial},
+    }
+    return tomli_w.dumps(doc)
+
+
+def one_core() -> set[int] | None:
+    """Pin this process to one core; return the cores it had (None where pinning is unsupported)."""
+    if not hasattr(os, "sched_setaffinity"):
+        return None
+    before = os.sched_getaffinity(0)
+    os.sched_setaffinity(0, {min(before)})
+    return before
+
+
+def read_only_s(log_dir: pathlib.Path) -> float:
+    """Wall time to read every record of a log without decoding: the floor of any replay."""
+    started = time.perf_counter()
+    n = 0
+    for _ in iter_records(log_dir):
+        n += 1
+    return time.perf_counter() - started
+
+
+def profile_replay(log_dir: pathlib.Path, top: int) -> tuple[list[dict], list[dict], float]:
+    """Own-time leaders of one profiled replay: by function, and summed by source file."""
+    profiler = cProfile.Profile()
+    profiler.enable()
+    replay_session(log_dir)
+    profiler.disable()
+    stats = pstats.Stats(profiler)
+    total = stats.total_tt
+    rows = []
+    by_file: dict[str, float] = {}
+    for (filename, line, name), (_, ncalls, tottime, cumtime, _) in stats.stats.items():
+        where = _source_name(filename)
+        rows.append({"function": f"{where}:{line}({name})", "calls": ncalls,
+                     "own_s": tottime, "cumulative_s": cumtime, "own_share": tottime / total if total else 0.0})
+        by_file[where] = by_file.get(where, 0.0) + tottime
+    rows.sort(key=lambda r: r["own_s"], reverse=True)
+    files = [{"file": name, "own_s": own, "own_share": own / total if total else 0.0}
+             for name, own in sorted(by_file.items(), key=lambda kv: kv[1], reverse=True)]
+    return rows[:top], files[:top], total
+
+
+def _source_name(filename: str) -> str:
+    """``decoder/pipeline.py`` for placeloop's files, ``numpy`` for a library, ``builtins`` for C."""
+    path = pathlib.Path(filename)
+    if filename.startswith("~") or filename.startswith("<"):
+        return "builtins"
+    for package in ("decoder", "rig_adapters"):
+        if path.parent.name == package:
+            return f"{package}/{path.name}"
+    for part in path.parts:
+        if part in ("numpy", "numba", "scipy", "msgpack"):
+            return part
+    return path.name
+
+
+def time_sweep(log_dir: pathlib.Path, workers: int) -> float:
+    plan = plan_sweep([log_dir], SWEEP_GRID, {})
+    started = time.perf_counter()
+    result = run_sweep(plan, workers=workers)
+    wall = time.perf_counter() - started
+    failed = sum(r["figures"]["failed"] for r in result.rows)
+    if failed:
+        raise RuntimeError(f"{failed} replay(s) of the sweep failed; see the log")
+    return wall
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--json", type=pathlib.Path, help="write the results here as JSON")
+    parser.add_argument("--quick", action="store_true", help="a 5-minute session and one sweep repeat")
+    parser.add_argument("--session-s", type=float, default=None, help="length of the long session (default 1800)")
+    parser.add_argument("--units", type=int, default=300)
+    parser.add_argument("--learn-s", type=float, default=300.0, help="seconds the replay learns from before decoding")
+    parser.add_argument("--sweep-session-s", type=float, default=None,
+                        help="length of the session each sweep replay runs (default 180)")
+    parser.add_argument("--repeats", type=int, default=None, help="sweep repeats per worker count (default 3)")
+    parser.add_argument("--replay-repeats", type=int, default=1, help="repeats of the long replay (default 1)")
+    parser.add_argument("--top", type=int, default=15, help="functions to show from the profile")
+    args = parser.parse_args(argv)
+    session_s = args.session_s or (300.0 if args.quick else 1800.0)
+    learn_s = min(args.learn_s, session_s / 3)
+    sweep_session_s = args.sweep_session_s or (90.0 if args.quick else 180.0)
+    sweep_learn_s = sweep_session_s / 3
+    repeats = args.repeats or (1 if args.quick else 3)
+    cores = default_workers()
+
+    with tempfile.TemporaryDirectory(prefix="placeloop-bench-replay-") as tmp:
+        tmp = pathlib.Path(tmp)
+        print(f"recording a {session_s:.0f} s session, {args.units} units, 2,500 bins ...", file=sys.stderr)
+        started = time.perf_counter()
+        long_log = record_simulated_session(parse_config(bench_config(args.units, learn_s)), tmp / "long",
+                                            until_s=session_s, seed=11)
+        make_s = time.perf_counter() - started
+        log_mb = (long_log / "session.plog").stat().st_size / 2**20
+        short_cfg = parse_config(bench_config(args.units, sweep_learn_s))
+        short_log = record_simulated_session(short_cfg, tmp / "short", until_s=sweep_session_s, seed=12)
+
+        # Warm numba's caches and the imports in this process before anything is timed.
+        replay_session(short_log)
+
+        previous = one_core()
+        try:
+            floor_s = float(np.median([read_only_s(long_log) for _ in range(3)]))
+            replays = []
+            for _ in range(args.replay_repeats):
+                print("replaying it on one core ...", file=sys.stderr)
+                result = replay_session(long_log)
+                replays.append(result)
+            print("profiling a short replay ...", file=sys.stderr)
+            profile, profile_files, profiled_s = profile_replay(short_log, args.top)
+        finally:
+            if previous is not None:
+                os.sched_setaffinity(0, previous)
+        wall_s = float(np.median([r.wall_s for r in replays]))
+        summary = replays[0].summary
+        x_realtime = session_s / wall_s
+
+        sweep_walls: dict[int, list[float]] = {1: [], 2: []}
+        if cores >= 2:
+            # Start the worker fork server (it imports placeloop once) before anything is timed.
+            with concurrent.futures.ProcessPoolExecutor(1, mp_context=pool_context()) as pool:
+                pool.submit(os.getpid).result()
+            for k in range(repeats):
+                for workers in (1, 2) if k % 2 == 0 else (2, 1):
+                    print(f"sweep of {len(SWEEP_GRID['rules.min_mass'])} settings on {workers} worker(s), "
+                          f"repeat {k + 1}/{repeats} ...", file=sys.stderr)
+                    sweep_walls[workers].append(time_sweep(short_log, workers))
+        else:
+            print("only one core available: the sweep scaling is not measured", file=sys.stderr)
+
+    sweep_1 = float(np.median(sweep_walls[1])) if sweep_walls[1] else None
+    sweep_2 = float(np.median(sweep_walls[2])) if sweep_walls[2] else None
+    speedup = sweep_1 / sweep_2 if sweep_1 and sweep_2 else None
+    n_replays = len(SWEEP_GRID["rules.min_mass"])
+
+    print()
+    print(f"session: {session_s:.0f} s simulated, {args.units} units, 2,500 bins, {log_mb:.0f} MB log; "
+          f"made in {make_s:.1f} s ({session_s / make_s:.0f}x real time)")
+    print(f"{'':44s}{'wall s':>10s}{'x real time':>14s}")
+    print(f"{'read the log only (floor, median of 3)':44s}{floor_s:10.2f}{session_s / floor_s:14.0f}")
+    print(f"{'replay, one core (median of ' + str(len(replays)) + ')':44s}{wall_s:10.2f}{x_realtime:14.0f}")
+    decode_phase = summary["replay"]["x_realtime"]
+    per_step = summary["latency_stages_ms"]["decode_per_step"]
+    print(f"  decoding phase alone (after the {learn_s:.0f} s of learning): {decode_phase or 0:.0f}x real time; "
+          f"{summary['decode']['steps']} steps, per-step p50 {per_step['p50']:.3f} ms")
+    print(f"  replay / floor: {wall_s / floor_s:.1f}x the time of reading the log")
+    print()
+    print(f"where a replay's time goes (cProfile, {sweep_session_s:.0f} s session, {profiled_s:.1f} s profiled):")
+    print(f"{'own s':>8s}{'share':>7s}{'calls':>10s}  function")
+    for row in profile:
+        print(f"{row['own_s']:8.2f}{row['own_share']:7.1%}{row['calls']:10d}  {row['function']}")
+    print("summed by source file:")
+    for row in profile_files:
+        print(f"{row['own_s']:8.2f}{row['own_share']:7.1%}{'':10s}  {row['file']}")
+    print()
+    if speedup is not None:
+        print(f"sweep of {n_replays} replays of a {sweep_session_s:.0f} s session (median of {repeats}):")
+        print(f"  1 worker {sweep_1:.2f} s ({n_replays / sweep_1 * 60:.1f} replays/min), "
+              f"2 workers {sweep_2:.2f} s ({n_replays / sweep_2 * 60:.1f} replays/min): {speedup:.2f}x")
+    print()
+    checks = [
+        (f"replay >= {TARGET_X_REALTIME:g}x real time on one core", x_realtime >= TARGET_X_REALTIME),
+        (f"sweep >= {TARGET_SPEEDUP_2:g}x on 2 workers", None if speedup is None else speedup >= TARGET_SPEEDUP_2),
+    ]
+    for text, ok in checks:
+        print(f"  {'met   ' if ok else 'n/a   ' if ok is None else 'MISSED'} {text}")
+    if args.quick:
+        print("  (--quick: a shorter session than the target's 30 minutes)")
+
+    if args.json:
+        args.json.parent.mkdir(parents=True, exist_ok=True)
+        report = {
+            "replay_x_realtime": x_realtime,
+            "sweep_speedup_2cores": speedup,
+            "replay_wall_s": wall_s,
+            "replay_wall_s_all": [r.wall_s for r in replays],
+            "decode_phase_x_realtime": decode_phase,
+            "read_only_wall_s": floor_s,
+            "read_only_x_realtime": session_s / floor_s,
+            "session_s": session_s,
+            "learn_s": learn_s,
+            "units": args.units,
+            "bins": 2500,
+            "log_mb": log_mb,
+            "make_session_s": make_s,
+            "decode_steps": summary["decode"]["steps"],
+            "decode_per_step_ms": summary["latency_stages_ms"]["decode_per_step"],
+            "median_error_cm": summary["decode"]["median_error_cm"],
+            "profile_top": profile,
+            "profile_by_file": profile_files,
+            "profile_session_s": sweep_session_s,
+            "sweep": {"grid": SWEEP_GRID, "session_s": sweep_session_s, "repeats": repeats,
+                      "wall_s_1_worker": sweep_walls[1], "wall_s_2_workers": sweep_walls[2],
+                      "median_s_1_worker": sweep_1, "median_s_2_workers": sweep_2},
+            "targets": {"replay_x_realtime": TARGET_X_REALTIME, "sweep_speedup_2cores": TARGET_SPEEDUP_2},
+            "meta": {"quick": args.quick, "cores_available": cores, "python": platform.python_version(),
+                     "machine": platform.machine(), "processor": platform.processor()},
+        }
+        args.json.write_text(json.dumps(report, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
