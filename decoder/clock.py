@@ -229,7 +229,7 @@ class ClockAligner:
         if not math.isfinite(t):
             raise ValueError(f"sync pulse {pulse_id} from {source!r} has a non-finite time {t_s!r}")
         seen = self._seen.setdefault(source, OrderedDict())
-        pending = self._pending.setdefault(source, OrderedDict())
+        self._pending.setdefault(source, OrderedDict())
         if pulse_id in seen:
             self.counters["duplicate"] += 1
             logger.warning("sync pulse %d from %r was already seen; ignored", pulse_id, source)

@@ -20,8 +20,8 @@ from decoder.config import ExperimentConfig, load_config
 from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from decoder.place_model import PlaceModel
 from rig_adapters.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest
-from rig_adapters.loop import LatencyLog, session_summary
-from rig_adapters.recorder import LogFormatError, iter_records
+from rig_adapters.loop import LatencyLog, LatencySeries, session_summary
+from rig_adapters.recorder import LogFormatError, LogRecord, iter_records
 
 log = logging.getLogger(__name__)
 
@@ -43,6 +43,11 @@ class ReplayResult:
     damage: str | None = None
     wall_s: float = 0.0
     data_s: float = 0.0
+    #: The pipeline after the replay: its model, scores and counters.
+    pipeline: Pipeline | None = None
+    latency: LatencyLog | None = None
+    #: The log's JSON header.
+    header: dict | None = None
 
 
 def session_config(log_dir: str | Path) -> ExperimentConfig:
@@ -56,7 +61,8 @@ def session_config(log_dir: str | Path) -> ExperimentConfig:
 def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
                    model: PlaceModel | None = None, keep_steps: bool = False,
                    on_output: Callable[[StepOutput | LearningProgress | Notice], None] | None = None,
-                   realtime: bool = False) -> ReplayResult:
+                   realtime: bool = False, on_record: Callable[[LogRecord], None] | None = None,
+                   keep_latency_samples: bool = False) -> ReplayResult:
     """Feed a recorded session through the pipeline.
 
     Parameters
@@ -76,6 +82,11 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     realtime : bool
         Pace the replay by the recorded receive times instead of running as
         fast as possible.
+    on_record : callable, optional
+        Called with every record of the log as it is read (the report reads
+        the live run's event stamps from the output records).
+    keep_latency_samples : bool
+        Keep every per-step work sample (``result.latency.decode_ms.values``).
 
     Returns
     -------
@@ -91,14 +102,17 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         initial = PlaceModel.load(session_dir / INITIAL_MODEL)
     pipeline = Pipeline(config, model=initial)
     ingest = Ingest(pipeline, model_override=model)
-    latency = LatencyLog()
-    result = ReplayResult(summary={})
+    latency = LatencyLog(decode_ms=LatencySeries(keep_all=keep_latency_samples))
+    result = ReplayResult(summary={}, pipeline=pipeline, latency=latency, header=None)
     reader = iter_records(log_dir)
     started = time.perf_counter()
     first_t = None
     first_wall = None
+    result.header = reader.header
     for record in reader:
         result.records_read += 1
+        if on_record is not None:
+            on_record(record)
         if record.type != "input":
             continue
         if realtime:

@@ -35,7 +35,6 @@ import json
 import logging
 import math
 import sys
-import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -51,10 +50,10 @@ from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from decoder.place_model import ModelFileError, PlaceModel
 from rig_adapters import protocol
 from rig_adapters.cli import CAUTION
-from rig_adapters.ingest import CHANNEL_CONTROL, CHANNEL_EVENTS, CHANNEL_RIG, Ingest
-from rig_adapters.loop import FITTED_MODEL_SIDECAR, LatencyLog, LatencySeries, _jsonable, session_summary
-from rig_adapters.recorder import LogFormatError, iter_records
-from rig_adapters.replay import INITIAL_MODEL, session_config
+from rig_adapters.ingest import CHANNEL_EVENTS
+from rig_adapters.loop import FITTED_MODEL_SIDECAR, LatencyLog, LatencySeries, _jsonable
+from rig_adapters.recorder import LogFormatError
+from rig_adapters.replay import INITIAL_MODEL, replay_session, session_config
 
 log = logging.getLogger(__name__)
 
@@ -323,40 +322,23 @@ def gather_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     initial = model
     if initial is None and (session_dir / INITIAL_MODEL).exists():
         initial = PlaceModel.load(session_dir / INITIAL_MODEL)
-    pipeline = Pipeline(config, model=initial)
-    ingest = Ingest(pipeline, model_override=model)
-    latency = LatencyLog(decode_ms=LatencySeries(keep_all=True))
     trace = SessionTrace()
     live = LiveStamps()
-    reader = iter_records(log_dir)
-    records = 0
-    first_wall = last_wall = None
-    for record in reader:
-        records += 1
-        if record.type == "output":
-            if record.channel == CHANNEL_EVENTS:
-                live.add(record.payload)
-            continue
-        if record.type != "input":
-            continue
-        first_wall = record.wall_s if first_wall is None else first_wall
-        last_wall = record.wall_s
-        t0 = time.perf_counter()
-        if record.channel == CHANNEL_RIG:
-            outputs = ingest.rig_bytes(record.payload)
-        elif record.channel == CHANNEL_CONTROL:
-            outputs, _ = ingest.control_bytes(record.payload)
-        else:
-            continue
-        n_steps = sum(isinstance(o, StepOutput) for o in outputs)
-        if n_steps:
-            latency.decode_ms.append((time.perf_counter() - t0) * 1e3 / n_steps)
-        for out in outputs:
-            trace.add(out)
-    if reader.damage:
-        log.warning("the report covers the log up to its damage: %s", reader.damage)
-    summary = session_summary(pipeline, latency)
-    summary["replay"] = {"records": records, "clean_close": reader.clean_close, "damage": reader.damage}
+    walls: list[float] = []
+
+    def read_record(record) -> None:
+        if record.type == "output" and record.channel == CHANNEL_EVENTS:
+            live.add(record.payload)
+        elif record.type == "input":
+            if not walls:
+                walls.append(record.wall_s)
+            walls[1:] = [record.wall_s]
+
+    result = replay_session(log_dir, config=config, model=model, on_output=trace.add, on_record=read_record,
+                            keep_latency_samples=True)
+    if result.damage:
+        log.warning("the report covers the log up to its damage: %s", result.damage)
+    pipeline, latency, summary = result.pipeline, result.latency, result.summary
     visits = copy.deepcopy(pipeline.visits)
     visits.result()
     fitted, source = _fitted_model(pipeline, initial, session_dir)
@@ -370,11 +352,11 @@ def gather_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         behaviour_latency_ms=np.asarray(visits.latencies_s, np.float64) * 1e3,
         model=fitted,
         model_source=source,
-        header=reader.header,
-        records_read=records,
-        damage=reader.damage,
-        clean_close=reader.clean_close,
-        wall_span_s=None if first_wall is None else last_wall - first_wall,
+        header=result.header,
+        records_read=result.records_read,
+        damage=result.damage,
+        clean_close=result.clean_close,
+        wall_span_s=walls[-1] - walls[0] if walls else None,
         overrides=dict(overrides or {}),
     )
 
