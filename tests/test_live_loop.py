@@ -177,6 +177,11 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
                 break
         assert status["armed"] is False
         assert status["triggers"]["disarm_reason"] == "stall"
+        # The same by hand: `placeloop control status` is a REQ client of the same socket.
+        by_hand = subprocess.run([sys.executable, "-m", "rig_adapters.cli", "control", "status", "--endpoint",
+                                  control], cwd=ROOT, capture_output=True, text=True, timeout=60)
+        assert by_hand.returncode == 0, by_hand.stderr
+        assert json.loads(by_hand.stdout)["status"]["triggers"]["disarm_reason"] == "stall"
         # A publisher that restarts: a new socket on the same port, sequence numbers from 0.
         pub.close()
         pub = ctx.socket(zmq.XPUB)
