@@ -333,6 +333,26 @@ def parse_setting_value(text: str):
         return text
 
 
+def parse_settings(items: list[str] | None, option: str = "--set") -> dict[str, Any]:
+    """Read ``NAME=VALUE`` command-line items into ``{NAME: value}`` (values as TOML).
+
+    Raises
+    ------
+    ConfigError
+        For an item without ``=``, an empty name or value, or a name given twice.
+    """
+    settings: dict[str, Any] = {}
+    for item in items or []:
+        name, sep, text = item.partition("=")
+        name = name.strip()
+        if not sep or not name or not text.strip():
+            raise ConfigError(f"{option} takes NAME=VALUE, e.g. decoder.step_s=0.01; got {item!r}")
+        if name in settings:
+            raise ConfigError(f"{option} {name} is given twice")
+        settings[name] = parse_setting_value(text.strip())
+    return settings
+
+
 def with_overrides(config: ExperimentConfig, overrides: dict[str, Any]) -> ExperimentConfig:
     """A copy of ``config`` with settings replaced, validated as a whole.
 

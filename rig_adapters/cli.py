@@ -181,20 +181,8 @@ def cmd_control(args: argparse.Namespace) -> int:
     return 0 if reply.get("ok") else 1
 
 
-def _parse_sets(items: list[str] | None) -> dict:
-    from decoder.config import ConfigError, parse_setting_value
-
-    overrides = {}
-    for item in items or []:
-        name, sep, value = item.partition("=")
-        if not sep or not name:
-            raise ConfigError(f"--set takes NAME=VALUE, got {item!r}")
-        overrides[name.strip()] = parse_setting_value(value.strip())
-    return overrides
-
-
 def cmd_replay(args: argparse.Namespace) -> int:
-    from decoder.config import with_overrides
+    from decoder.config import parse_settings, with_overrides
     from decoder.place_model import ModelFileError, PlaceModel
     from rig_adapters.loop import _jsonable
     from rig_adapters.recorder import LogFormatError
@@ -202,7 +190,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
     try:
         config = load_config(args.config) if args.config else session_config(args.log)
-        overrides = _parse_sets(args.set)
+        overrides = parse_settings(args.set)
         if overrides:
             config = with_overrides(config, overrides)
         model = PlaceModel.load(args.model) if args.model else None

@@ -44,7 +44,7 @@ from matplotlib import colormaps
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
-from decoder.config import ConfigError, ExperimentConfig, load_config, parse_setting_value, with_overrides
+from decoder.config import ConfigError, ExperimentConfig, load_config, parse_settings, with_overrides
 from decoder.environments import Environment
 from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from decoder.place_model import ModelFileError, PlaceModel
@@ -1165,16 +1165,6 @@ def write_report(log_dir: str | Path, out_path: str | Path, config: ExperimentCo
     return record
 
 
-def _parse_sets(items: list[str]) -> dict:
-    overrides = {}
-    for item in items:
-        name, sep, value = item.partition("=")
-        if not sep or not name.strip():
-            raise ConfigError(f"--set takes NAME=VALUE, e.g. decoder.step_s=0.01; got {item!r}")
-        overrides[name.strip()] = parse_setting_value(value.strip())
-    return overrides
-
-
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="placeloop report",
@@ -1207,7 +1197,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         config = load_config(args.config) if args.config else None
         model = PlaceModel.load(args.model) if args.model else None
-        record = write_report(log_path, out, config=config, overrides=_parse_sets(args.set), model=model,
+        record = write_report(log_path, out, config=config, overrides=parse_settings(args.set), model=model,
                               sweep_path=args.sweep)
     except (LogFormatError, ConfigError, ModelFileError, ValueError, OSError) as exc:
         print(f"error: {exc}", file=sys.stderr)

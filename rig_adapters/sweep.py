@@ -101,7 +101,7 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from decoder.config import ConfigError, parse_setting_value, with_overrides
+from decoder.config import ConfigError, parse_setting_value, parse_settings, with_overrides
 from rig_adapters.loop import _jsonable
 from rig_adapters.recorder import LOG_NAME, LogFormatError, iter_records
 from rig_adapters.replay import replay_session, session_config
@@ -185,16 +185,7 @@ def parse_grid(items: list[str] | None) -> dict[str, list]:
 
 def parse_fixed(items: list[str] | None) -> dict[str, Any]:
     """Read ``--fixed NAME=V`` options into ``{NAME: value}``."""
-    fixed: dict[str, Any] = {}
-    for item in items or []:
-        name, sep, text = item.partition("=")
-        name = name.strip()
-        if not sep or not name or not text.strip():
-            raise ConfigError(f"--fixed takes NAME=VALUE, got {item!r}")
-        if name in fixed:
-            raise ConfigError(f"--fixed {name} is given twice")
-        fixed[name] = parse_setting_value(text.strip())
-    return fixed
+    return parse_settings(items, "--fixed")
 
 
 @dataclass(frozen=True)
