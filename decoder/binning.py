@@ -65,18 +65,20 @@ class SpikeWindow:
         counts : ndarray of float64, shape (k,)
             Their spike counts.
         """
-        lo = np.searchsorted(self._t, t_end_s - self.window_s, side="right")
-        hi = np.searchsorted(self._t, t_end_s, side="right")
+        # Called at every decoding step on a short array: ndarray methods
+        # skip the module functions' dispatch, which cost more than the work.
+        lo = self._t.searchsorted(t_end_s - self.window_s, side="right")
+        hi = self._t.searchsorted(t_end_s, side="right")
         rows = self._row[lo:hi]
         if rows.size == 0:
             return np.zeros(0, np.int64), np.zeros(0, np.float64)
         binned = np.bincount(rows, minlength=self.n_units)
-        fired = np.flatnonzero(binned)
+        fired = binned.nonzero()[0]
         return fired.astype(np.int64), binned[fired].astype(np.float64)
 
     def discard_before(self, t_s: float) -> None:
         """Forget spikes at or before ``t_s`` (no later window can contain them)."""
-        cut = np.searchsorted(self._t, t_s, side="right")
+        cut = self._t.searchsorted(t_s, side="right")
         if cut:
             self._t = self._t[cut:]
             self._row = self._row[cut:]

@@ -11,6 +11,7 @@ trust them: right dtype, one dimension, equal lengths, finite times.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -48,7 +49,7 @@ def _vector(name: str, values: Any, dtype: Any) -> np.ndarray:
 
 
 def _finite_times(name: str, t_s: np.ndarray) -> None:
-    if not np.all(np.isfinite(t_s)):
+    if not np.isfinite(t_s).all():
         raise MessageError(f"{name} holds a NaN or infinite timestamp")
 
 
@@ -133,7 +134,9 @@ class SpikeBatch:
         if t.size != u.size:
             raise MessageError(f"t_s has {t.size} spikes but unit_id has {u.size}")
         _finite_times("t_s", t)
-        if t.size > 1 and np.any(np.diff(t) < 0):
+        # On finite doubles ``b - a < 0`` exactly when ``b < a``, so comparing
+        # neighbours gives np.diff's verdict without its temporary.
+        if t.size > 1 and (t[1:] < t[:-1]).any():
             raise MessageError("spike times within a batch must not decrease")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "unit_id", u)
@@ -166,6 +169,46 @@ class TrackerFrames:
     def __post_init__(self) -> None:
         object.__setattr__(self, "source", _source(self.source))
         object.__setattr__(self, "seq", _seq(self.seq))
+        if not self._take_one_frame():
+            self._take_frames()
+
+    def _take_one_frame(self) -> bool:
+        """Validate and store a single float64 frame with Python scalars; False if not that case.
+
+        A tracker sends one frame per message, 30 to 60 times a second, and
+        the general path's dozen numpy calls on 1-element arrays were most of
+        a replay's decoding cost. Anything unusual (other dtypes, several
+        frames, head direction, an invalid value) goes to ``_take_frames``,
+        which gives the same result and the error messages.
+        """
+        t, xy, q = self.t_s, self.xy_cm, self.quality
+        if not (
+            type(t) is np.ndarray and t.shape == (1,) and t.dtype == np.float64
+            and type(xy) is np.ndarray and xy.shape == (1, 2) and xy.dtype == np.float64
+            and self.head_dir_rad is None
+            and (q is None or (type(q) is np.ndarray and q.shape == (1,) and q.dtype == np.uint8))
+        ):
+            return False
+        x, y = xy.item(0), xy.item(1)
+        if not math.isfinite(t.item(0)) or math.isinf(x) or math.isinf(y):
+            return False
+        seen = x == x and y == y
+        quality = (1 if seen else 0) if q is None else q.item(0)
+        t = t.copy()
+        t.setflags(write=False)
+        xy = np.ascontiguousarray(xy)
+        if quality == 0 or not seen:
+            xy = np.full((1, 2), np.nan)
+            quality = 0
+        xy.setflags(write=False)
+        q = np.array([quality], np.uint8)
+        q.setflags(write=False)
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "xy_cm", xy)
+        object.__setattr__(self, "quality", q)
+        return True
+
+    def _take_frames(self) -> None:
         t = _vector("t_s", self.t_s, np.float64)
         _finite_times("t_s", t)
         if t.size > 1 and np.any(np.diff(t) <= 0):
@@ -216,7 +259,7 @@ class Heartbeat:
         object.__setattr__(self, "source", _source(self.source))
         object.__setattr__(self, "seq", _seq(self.seq))
         t = float(self.t_s)
-        if not np.isfinite(t):
+        if not math.isfinite(t):
             raise MessageError("heartbeat t_s must be finite")
         object.__setattr__(self, "t_s", t)
 
@@ -237,7 +280,7 @@ class SyncPulse:
         object.__setattr__(self, "source", _source(self.source))
         object.__setattr__(self, "seq", _seq(self.seq))
         t = float(self.t_s)
-        if not np.isfinite(t):
+        if not math.isfinite(t):
             raise MessageError("sync t_s must be finite")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "pulse_id", _seq(self.pulse_id))

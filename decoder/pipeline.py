@@ -29,6 +29,7 @@ from decoder.binning import SpikeWindow, StepSchedule
 from decoder.clock import ClockAligner, ClockMismatchError
 from decoder.config import ExperimentConfig
 from decoder.decoding import BayesDecoder, DecodedStep
+from decoder.environments import Arena
 from decoder.messages import (
     ControlCommand,
     Heartbeat,
@@ -194,6 +195,7 @@ class Pipeline:
         self.errors = ErrorHistogram()
         self.visits = VisitScore(len(config.zones))
         self._zone_masks = zone_masks(config.zones, self.environment)
+        self._euclidean = type(self.environment).distance_cm is Arena.distance_cm
         self._near_zone = self._near_zone_masks(config.session.false_margin_cm)
         if model is not None:
             self.install_model(model, t_s=-math.inf)
@@ -384,22 +386,25 @@ class Pipeline:
         if self.state != "decoding":
             return
         rows = self._rows_of(msg.unit_id)
-        known = rows >= 0
-        n_unknown = int(rows.size - np.count_nonzero(known))
-        if n_unknown:
-            self.counters["unknown_units"] += n_unknown
-        t = msg.t_s[known]
-        rows = rows[known]
+        t = msg.t_s
+        if rows.min() < 0:
+            known = rows >= 0
+            self.counters["unknown_units"] += int(rows.size - np.count_nonzero(known))
+            t = t[known]
+            rows = rows[known]
         next_k = self.schedule.next_k
-        if next_k is not None and t.size:
+        # Times are sorted (checked in SpikeBatch), so the first one tells whether any is late.
+        if next_k is not None and t.size and t[0] <= self.schedule.step_end_s(next_k - 1):
             late = t <= self.schedule.step_end_s(next_k - 1)
-            if np.any(late):
-                self.counters["late_spikes"] += int(np.count_nonzero(late))
+            self.counters["late_spikes"] += int(np.count_nonzero(late))
         self.window.add(t, rows)
 
     def _rows_of(self, unit_ids: np.ndarray) -> np.ndarray:
         if self._unit_lut is not None:
             idx = unit_ids - self._unit_lut_offset
+            # The usual batch has only announced units: one lookup, no masks.
+            if idx.min() >= 0 and idx.max() < self._unit_lut.size:
+                return self._unit_lut[idx]
             inside = (idx >= 0) & (idx < self._unit_lut.size)
             rows = np.full(unit_ids.size, -1, np.int64)
             rows[inside] = self._unit_lut[idx[inside]]
@@ -531,11 +536,17 @@ class Pipeline:
         return StepOutput(k, t, step, tracked_xy, true_xy, speed, error, events, false_events, self.bank.armed)
 
     def _in_zones(self, xy: np.ndarray) -> np.ndarray:
-        return np.array([bool(z.contains(xy[None, :], self.environment)[0]) for z in self.config.zones], bool)
+        x, y = xy.tolist()
+        return np.array([z.contains_point(x, y, self.environment) for z in self.config.zones], bool)
 
     def _error_cm(self, map_xy: np.ndarray, true_xy: np.ndarray) -> float:
-        if not np.all(np.isfinite(true_xy)):
+        tx, ty = true_xy.tolist()
+        if not (math.isfinite(tx) and math.isfinite(ty)):
             return float("nan")
+        if self._euclidean:
+            # Arena.distance_cm's own formula on scalars: one call instead of a dozen on (1, 2) arrays.
+            mx, my = map_xy.tolist()
+            return float(np.hypot(mx - tx, my - ty))
         return float(self.environment.distance_cm(map_xy[None, :], true_xy[None, :])[0])
 
     def _near_zone_masks(self, margin_cm: float) -> np.ndarray:

@@ -480,25 +480,13 @@ class PlaceModel:
             raise ValueError(f"xy_cm must have shape ({len(t)}, 2) to match t_s, got {xy.shape}")
         c = self._counters
         c["frames_received"] += len(t)
-        finite = np.isfinite(t)
-        c["frames_bad_time"] += int(np.count_nonzero(~finite))
-        t, xy = t[finite], xy[finite]
-        if t.size == 0:
-            return
-        running_max = np.maximum.accumulate(np.concatenate([[self._last_frame_t], t]))[:-1]
-        in_order = t > running_max
-        c["frames_out_of_order"] += int(np.count_nonzero(~in_order))
-        t, xy = t[in_order], xy[in_order]
-        if t.size == 0:
-            return
-        if self._t0 is None:
-            self._t0 = float(t[0])
-        self._last_frame_t = float(t[-1])
-        seen = np.all(np.isfinite(xy), axis=1)
-        c["frames_lost"] += int(np.count_nonzero(~seen))
-        t, xy = t[seen], xy[seen]
-        if t.size == 0:
-            return
+        if len(t) == 1:
+            if not self._take_one_frame(t.item(0), *xy[0].tolist()):
+                return
+        else:
+            t, xy = self._take_frames(t, xy)
+            if t.size == 0:
+                return
         self._first_frame_t = min(self._first_frame_t, float(t[0]))
         bins = self.environment.bin_index(xy)
         c["frames_outside_environment"] += int(np.count_nonzero(bins < 0))
@@ -510,6 +498,48 @@ class PlaceModel:
         self._settle_intervals()
         self._release_spikes()
         self._trim_history()
+
+    def _take_one_frame(self, t_s: float, x_cm: float, y_cm: float) -> bool:
+        """Count one frame and say whether it is new and seen: ``_take_frames`` on scalars.
+
+        A tracker sends one frame per message, and the general path's numpy
+        calls on 1-element arrays cost more than the frame's own work.
+        """
+        c = self._counters
+        if not math.isfinite(t_s):
+            c["frames_bad_time"] += 1
+            return False
+        if not t_s > self._last_frame_t:
+            c["frames_out_of_order"] += 1
+            return False
+        if self._t0 is None:
+            self._t0 = t_s
+        self._last_frame_t = t_s
+        if not (math.isfinite(x_cm) and math.isfinite(y_cm)):
+            c["frames_lost"] += 1
+            return False
+        return True
+
+    def _take_frames(self, t: np.ndarray, xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Count the frames and keep those with a finite time, newer than any before, and seen."""
+        c = self._counters
+        finite = np.isfinite(t)
+        c["frames_bad_time"] += int(np.count_nonzero(~finite))
+        t, xy = t[finite], xy[finite]
+        if t.size == 0:
+            return t, xy
+        running_max = np.maximum.accumulate(np.concatenate([[self._last_frame_t], t]))[:-1]
+        in_order = t > running_max
+        c["frames_out_of_order"] += int(np.count_nonzero(~in_order))
+        t, xy = t[in_order], xy[in_order]
+        if t.size == 0:
+            return t, xy
+        if self._t0 is None:
+            self._t0 = float(t[0])
+        self._last_frame_t = float(t[-1])
+        seen = np.all(np.isfinite(xy), axis=1)
+        c["frames_lost"] += int(np.count_nonzero(~seen))
+        return t[seen], xy[seen]
 
     def update_spikes(self, t_s: Any, unit_ids: Any) -> None:
         """Add spikes.
@@ -660,8 +690,8 @@ class PlaceModel:
         c["spikes_placed"] += int(np.count_nonzero(inside))
         n_units_cap, n_bins = self._fold_counts.shape[1:]
         flat = (self._iv_fold[k_run][inside] * n_units_cap + rows[run][inside]) * n_bins + bins[inside]
-        where, how_many = np.unique(flat, return_counts=True)
-        self._fold_counts.reshape(-1)[where] += how_many.astype(np.int32)
+        # Unbuffered adds count repeated cells, the same integers as unique + counts at a fraction of the cost.
+        np.add.at(self._fold_counts.reshape(-1), flat, 1)
         # Evaluation windows see every spike of a known unit, running or not, as a live decoder would.
         self._count_in_cv_windows(t, rows)
 

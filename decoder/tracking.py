@@ -85,12 +85,22 @@ class TrackHistory:
 
         NaN when the newest such frame is older than ``max_age_s``.
         """
+        # Asked at every decoding step: ndarray methods and Python floats
+        # (the same IEEE operations) rather than numpy's wrappers on 1-element arrays.
         t = self._t[self._start:self._stop]
-        i = int(np.searchsorted(t, t_s, side="right")) - 1
-        if i < 0 or t_s - t[i] > self.max_age_s:
+        i = int(t.searchsorted(t_s, side="right")) - 1
+        if i < 0:
             return np.full(2, np.nan), float("nan")
-        j = int(np.searchsorted(t, t[i] - self.speed_window_s, side="left"))
+        t_i = t.item(i)
+        if t_s - t_i > self.max_age_s:
+            return np.full(2, np.nan), float("nan")
+        j = int(t.searchsorted(t_i - self.speed_window_s, side="left"))
         xy = self._xy[self._start:self._stop]
-        dt = t[i] - t[j]
-        speed = float(np.hypot(*(xy[i] - xy[j])) / dt) if dt > 0 else float("nan")
+        dt = t_i - t.item(j)
+        if dt > 0:
+            x_i, y_i = xy[i].tolist()
+            x_j, y_j = xy[j].tolist()
+            speed = float(np.hypot(x_i - x_j, y_i - y_j)) / dt
+        else:
+            speed = float("nan")
         return xy[i].copy(), speed

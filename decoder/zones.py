@@ -111,6 +111,22 @@ class Zone:
     def _contains_finite(self, xy: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
+    def contains_point(self, x_cm: float, y_cm: float, environment: Any = None) -> bool:
+        """Whether one position lies in the zone; ``contains`` for a single point.
+
+        Parameters
+        ----------
+        x_cm, y_cm : float
+            The position; NaN for a lost frame (never inside).
+        environment : Environment, optional
+            As for ``contains``.
+
+        Returns
+        -------
+        bool
+        """
+        return bool(self.contains(np.array([[x_cm, y_cm]], dtype=np.float64), environment)[0])
+
     def bin_mask(self, environment: Any) -> np.ndarray:
         """Bins of ``environment`` whose centres lie in the zone.
 
@@ -173,6 +189,16 @@ class CircleZone(Zone):
         dy = xy[:, 1] - self.center_cm[1]
         return dx * dx + dy * dy <= self.radius_cm * self.radius_cm
 
+    def contains_point(self, x_cm: float, y_cm: float, environment: Any = None) -> bool:
+        # Scalar arithmetic, the same IEEE operations as _contains_finite: the
+        # pipeline asks this of the tracked position at every decoding step.
+        x, y = float(x_cm), float(y_cm)
+        if not (math.isfinite(x) and math.isfinite(y)):
+            return False
+        dx = x - self.center_cm[0]
+        dy = y - self.center_cm[1]
+        return dx * dx + dy * dy <= self.radius_cm * self.radius_cm
+
     def to_dict(self) -> dict:
         return {"kind": self.kind, "name": self.name, "center_cm": list(self.center_cm), "radius_cm": self.radius_cm}
 
@@ -211,6 +237,13 @@ class RectangleZone(Zone):
     def _contains_finite(self, xy: np.ndarray) -> np.ndarray:
         x, y = xy[:, 0], xy[:, 1]
         return (x >= self.x_min_cm) & (x <= self.x_max_cm) & (y >= self.y_min_cm) & (y <= self.y_max_cm)
+
+    def contains_point(self, x_cm: float, y_cm: float, environment: Any = None) -> bool:
+        # Scalar comparisons for the pipeline's per-step question (see CircleZone).
+        x, y = float(x_cm), float(y_cm)
+        if not (math.isfinite(x) and math.isfinite(y)):
+            return False
+        return self.x_min_cm <= x <= self.x_max_cm and self.y_min_cm <= y <= self.y_max_cm
 
     def to_dict(self) -> dict:
         return {

@@ -69,3 +69,29 @@ def test_scalar_messages_validate():
         SourceAnnounce("ephys", 0, "spikes", "acq", 30000.0, [1, 1])
     with pytest.raises(MessageError, match="source"):
         Heartbeat("", 0, 1.0)
+
+
+@pytest.mark.parametrize(
+    "xy, quality",
+    [([[4.0, 5.0]], None), ([[4.0, 5.0]], [7]), ([[np.nan, 5.0]], None), ([[4.0, 5.0]], [0]), ([[4.0, np.nan]], [9])],
+)
+def test_single_float64_frame_matches_the_general_path(xy, quality):
+    # The one-frame fast path must store what the general path stores: lost
+    # frames NaN with quality 0 (the rule in the TrackerFrames docstring).
+    q = None if quality is None else np.array(quality, np.uint8)
+    fast = TrackerFrames("cam", 0, np.array([1.5]), np.array(xy, np.float64), quality=q)
+    general = TrackerFrames("cam", 0, [1.5], xy, quality=quality)  # lists take the general path
+    for name in ("t_s", "xy_cm", "quality"):
+        a, b = getattr(fast, name), getattr(general, name)
+        np.testing.assert_array_equal(a, b)
+        assert a.dtype == b.dtype and not a.flags.writeable
+    assert fast.head_dir_rad is None
+
+
+@pytest.mark.parametrize(
+    "t_s, xy, words",
+    [([np.nan], [[1.0, 2.0]], "NaN or infinite"), ([1.0], [[np.inf, 2.0]], "infinite coordinate")],
+)
+def test_single_float64_frame_keeps_the_error_messages(t_s, xy, words):
+    with pytest.raises(MessageError, match=words):
+        TrackerFrames("cam", 0, np.array(t_s), np.array(xy))

@@ -638,3 +638,25 @@ def test_worked_example_bridge_receives_events():
     assert [f[0] for f in fired] == ["goal"] * 3 and fired[0][2] == 101.25
     ids = [f[3] for f in fired]
     assert ids == sorted(set(ids))  # in publishing order; a late one may be refused as stale (MAX_AGE_S)
+
+
+@pytest.mark.parametrize(
+    "x, q",
+    [(10.0, None), (10.0, b"\x07"), (float("nan"), None), (10.0, b"\x00")],
+)
+def test_single_frame_as_bin_decodes_like_lists(x, q):
+    # One frame as bin takes a scalar fast path; as plain lists it takes the general one.
+    extra = {} if q is None else {"q": q}
+    as_bin = decode(pack(frames_map(t=struct.pack("<d", 1.0), x=struct.pack("<d", x), y=struct.pack("<d", 20.0),
+                                    **extra)))
+    as_lists = decode(pack(frames_map(t=[1.0], x=[x], y=[20.0], **({} if q is None else {"q": list(q)}))))
+    assert_same(as_bin, as_lists)
+
+
+@pytest.mark.parametrize(
+    "t, x, reason",
+    [(float("nan"), 10.0, "bad_time"), (1.0, float("inf"), "bad_field")],
+)
+def test_single_bad_frame_as_bin_keeps_its_reason(t, x, reason):
+    frame = pack(frames_map(t=struct.pack("<d", t), x=struct.pack("<d", x), y=struct.pack("<d", 20.0)))
+    assert reason_of(frame) == reason

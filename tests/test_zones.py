@@ -189,3 +189,35 @@ def test_interval_zone_needs_a_track():
 def test_positions_must_be_pairs():
     with pytest.raises(ValueError, match=r"shape \(n, 2\)"):
         CircleZone("c", (0, 0), 1.0).contains(np.zeros(3))
+
+
+@pytest.mark.parametrize(
+    "zone",
+    [
+        CircleZone("disc", (40.0, 60.0), 12.5),
+        RectangleZone("box", 10.0, 30.0, 50.0, 95.0),
+        PolygonZone("notched", NOTCHED),
+    ],
+)
+def test_contains_point_agrees_with_contains_for_single_points(zone):
+    rng = np.random.default_rng(5)
+    probes = np.vstack([
+        rng.uniform(0.0, 100.0, (400, 2)),
+        # On the boundary: closed zones count it as inside (|xy - c| = r; x = x_min).
+        [[52.5, 60.0], [10.0, 70.0], [30.0, 95.0]],
+        [[np.nan, 50.0], [np.inf, 50.0], [50.0, -np.inf]],
+    ])
+    expected = zone.contains(probes)
+    got = [zone.contains_point(x, y) for x, y in probes]
+    # Reference: the array form, whose circle and rectangle rules are the closed-form
+    # definitions |xy - c| <= r and x_min <= x <= x_max, y_min <= y <= y_max (common practice).
+    assert got == expected.tolist()
+    assert all(type(v) is bool for v in got)
+
+
+def test_contains_point_on_a_track_uses_the_linearised_position():
+    track = LinearTrack((0.0, 0.0), (100.0, 0.0), bin_cm=5.0)
+    zone = IntervalZone("end", 80.0, 100.0)
+    # Linear position along a straight track is the distance from its start (closed-form).
+    assert zone.contains_point(90.0, 1.0, track) and not zone.contains_point(20.0, 0.0, track)
+    assert not zone.contains_point(float("nan"), 0.0, track)
