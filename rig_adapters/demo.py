@@ -67,8 +67,14 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
         events_out = tmp / "standin.json"
         py = sys.executable
         env = dict(os.environ)
+        # With a core reserved for the loop, everything else keeps off it.
+        others = None
+        if loop_cpu is not None and len(os.sched_getaffinity(0)) > 1:
+            cpus = os.sched_getaffinity(0) - {loop_cpu}
+            others = lambda: os.sched_setaffinity(0, cpus)  # noqa: E731
         standin = subprocess.Popen([py, "-m", "rig_adapters.stimulator_standin", "--events",
-                                   f"tcp://127.0.0.1:{ports['events']}", "--out", str(events_out)], env=env)
+                                   f"tcp://127.0.0.1:{ports['events']}", "--out", str(events_out)], env=env,
+                                  preexec_fn=others)
         run_cmd = [py, "-m", "rig_adapters.cli", "run", "--config", str(cfg), "--summary", str(summary),
                    "--idle-exit-s", "3"]
         if log_dir:
@@ -78,7 +84,7 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
         decoder = subprocess.Popen(run_cmd, env=env)
         rig = subprocess.Popen([py, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
                                 f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(speed), "--duration-s",
-                                str(duration_s), "--seed", str(seed)], env=env)
+                                str(duration_s), "--seed", str(seed)], env=env, preexec_fn=others)
         if monitor_state_endpoint is not None:
             monitor_state_endpoint.append(f"tcp://127.0.0.1:{ports['state']}")
         started = time.monotonic()
