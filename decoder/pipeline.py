@@ -64,6 +64,9 @@ LEARNING_REPORT_S = 1.0
 #: each count fits rate maps, so it is kept rare.
 TUNING_REPORT_S = 15.0
 
+#: Below this fraction of its bins in the learned map, a zone gets a warning at fitting time.
+ZONE_COVERAGE_WARNING = 0.8
+
 #: Tracker frames held while waiting for the first clock fit.
 MAX_PENDING_FRAMES = 5000
 
@@ -298,8 +301,19 @@ class Pipeline:
             log.error("fitting failed: %s", exc)
             return [Notice("refused", t_s, {"command": "fit", "why": str(exc)})]
         readiness = dict(self.model.readiness(with_cv_error=self.config.session.cross_validate))
+        # A zone can only be decoded where the model has a map: bins the animal
+        # never ran near during learning carry no posterior mass, ever.
+        learned = self.model.visited_mask_
+        readiness["zone_coverage"] = {
+            name: float((mask & learned).sum() / mask.sum()) for name, mask in zip(self.zone_names, self._zone_masks)
+        }
         self.readiness = readiness
         notices = [Notice("fitted", t_s, {"readiness": readiness})]
+        for name, covered in readiness["zone_coverage"].items():
+            if covered < ZONE_COVERAGE_WARNING:
+                log.warning("zone %r: only %.0f%% of its bins are in the learned map; learn longer before arming",
+                            name, 100 * covered)
+                notices.append(Notice("zone_not_learned", t_s, {"zone": name, "coverage": covered}))
         notices.extend(self.install_model(self.model, t_s))
         return notices
 

@@ -133,6 +133,8 @@ def format_summary(s: dict) -> str:
         "----------------------",
         f"learning   coverage {_fmt(ready.get('coverage'), '.0%')}, spatially tuned units "
         f"{ready.get('n_tuned_units', 'n/a')}, cross-validated error {_fmt(ready.get('median_cv_error_cm'))} cm",
+        f"zones      share of each zone in the learned map: "
+        f"{', '.join(f'{z} {c:.0%}' for z, c in (ready.get('zone_coverage') or {}).items()) or 'n/a'}",
         f"decoding   {d['steps']} steps, median error {_fmt(d['median_error_cm'])} cm "
         f"(90th percentile {_fmt(d.get('p90_error_cm'))} cm)",
         f"triggers   {t['count']} events, {t['false_count']} while the animal was far from the zone; "

@@ -72,6 +72,8 @@ def test_plan_learns_fits_arms_and_decodes(session_messages):
     # happened for positions to be known at all.
     assert np.isfinite(steps[-1].tracked_xy_cm).all()
     assert pipeline.counters["clock_mismatch"] == 0
+    # The readiness report says how much of each zone the learned map covers.
+    assert 0.0 <= pipeline.readiness["zone_coverage"]["goal"] <= 1.0
 
 
 def test_same_messages_give_the_same_digest(session_messages):
