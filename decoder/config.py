@@ -22,6 +22,7 @@ A config file has these tables (all optional but ``[environment]``)::
 from __future__ import annotations
 
 import dataclasses
+import ipaddress
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -192,14 +193,23 @@ class EndpointSettings:
                 )
 
 
+def is_loopback_host(host: str) -> bool:
+    """True for ``localhost`` and loopback addresses (127.0.0.0/8, ::1)."""
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip("[]")).is_loopback
+    except ValueError:
+        return False
+
+
 def is_loopback_endpoint(endpoint: str) -> bool:
-    """True for ``tcp://127.x.x.x:port``, ``tcp://localhost:port``, ``ipc://`` and ``inproc://``."""
+    """True for ``tcp://`` on a loopback host, and for ``ipc://`` and ``inproc://``."""
     if endpoint.startswith(("ipc://", "inproc://")):
         return True
     if not endpoint.startswith("tcp://"):
         return False
-    host = endpoint[len("tcp://"):].rsplit(":", 1)[0]
-    return host.startswith("127.") or host in ("localhost", "[::1]")
+    return is_loopback_host(endpoint[len("tcp://"):].rsplit(":", 1)[0])
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,6 @@ from __future__ import annotations
 import argparse
 import asyncio
 import bisect
-import ipaddress
 import json
 import logging
 import math
@@ -50,7 +49,7 @@ import zmq
 import zmq.asyncio
 from aiohttp import WSMsgType, web
 
-from decoder.config import ConfigError, ExperimentConfig, load_config
+from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
 from decoder.environments import Arena, TrackGraph
 from rig_adapters import protocol
 
@@ -592,16 +591,6 @@ def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application
     app.on_startup.append(_start_reader)
     app.on_cleanup.append(_stop_reader)
     return app
-
-
-def is_loopback_host(host: str) -> bool:
-    """True for ``localhost`` and loopback addresses (127.0.0.0/8, ::1)."""
-    if host == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        return False
 
 
 def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750) -> None:
