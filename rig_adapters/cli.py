@@ -42,7 +42,8 @@ DELEGATED = {"monitor": "monitor", "sweep": "sweep", "report": "report"}
 DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"
 
 
-def _setup_logging(verbose: int) -> None:
+def setup_logging(verbose: int) -> None:
+    """The log format of every subcommand; -v info, -vv debug (no-op if logging is set up already)."""
     level = logging.WARNING if verbose == 0 else logging.INFO if verbose == 1 else logging.DEBUG
     logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr)
 
@@ -289,7 +290,7 @@ def main(argv: list[str] | None = None) -> int:
         return module.main(argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
-    _setup_logging(args.verbose)
+    setup_logging(args.verbose)
     try:
         return args.func(args)
     except ConfigError as exc:

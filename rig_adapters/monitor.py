@@ -52,6 +52,7 @@ from aiohttp import WSMsgType, web
 from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
 from decoder.environments import Arena, TrackGraph
 from rig_adapters import protocol
+from rig_adapters.cli import setup_logging
 
 log = logging.getLogger(__name__)
 
@@ -644,9 +645,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """``placeloop monitor --config C [--state EP] [--http-port P] [--host H]``."""
     args = build_parser().parse_args(argv)
-    if not logging.getLogger().handlers:
-        logging.basicConfig(level=logging.WARNING if args.verbose == 0 else logging.INFO,
-                            format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr)
+    setup_logging(args.verbose)
     try:
         state = args.state or load_config(args.config).endpoints.state
         run_monitor(args.config, state, host=args.host, port=args.http_port)

@@ -49,7 +49,7 @@ from decoder.environments import Environment
 from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from decoder.place_model import ModelFileError, PlaceModel
 from rig_adapters import protocol
-from rig_adapters.cli import CAUTION
+from rig_adapters.cli import CAUTION, setup_logging
 from rig_adapters.ingest import CHANNEL_EVENTS
 from rig_adapters.loop import FITTED_MODEL_SIDECAR, LatencyLog, LatencySeries, _jsonable
 from rig_adapters.recorder import LogFormatError
@@ -1188,9 +1188,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """``placeloop report LOG [--sweep SWEEP.json] [--out PATH.html] [--config C] [--model M] [--set NAME=V ...]``."""
     args = build_parser().parse_args(argv)
-    if not logging.getLogger().handlers:
-        logging.basicConfig(level=logging.WARNING if args.verbose == 0 else logging.INFO,
-                            format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr)
+    setup_logging(args.verbose)
     log_path = Path(args.log)
     session_dir = log_path if log_path.is_dir() else log_path.parent
     out = Path(args.out) if args.out else Path(f"report_{session_dir.resolve().name}.html")

@@ -102,6 +102,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from decoder.config import ConfigError, parse_setting_value, parse_settings, with_overrides
+from rig_adapters.cli import setup_logging
 from rig_adapters.loop import _jsonable
 from rig_adapters.recorder import LOG_NAME, LogFormatError, iter_records
 from rig_adapters.replay import replay_session, session_config
@@ -638,8 +639,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """``placeloop sweep``: returns 0 when every replay ran, 1 when some failed, 2 for bad input."""
     args = build_parser().parse_args(argv)
-    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
-                        format="%(levelname)s %(name)s: %(message)s")
+    setup_logging(args.verbose)
     try:
         if args.workers is not None and args.workers < 1:
             raise ConfigError(f"--workers must be at least 1, got {args.workers}")
