@@ -11,7 +11,95 @@ from __future__ import annotations
 
 import math
 
+import numba
 import numpy as np
+
+
+@numba.njit(cache=True)
+def window_counts(t_s, rows, start, stop, t_end_s, window_s, n_units):
+    """Spike counts per row in ``(t_end_s - window_s, t_end_s]`` over ``t_s[start:stop]`` (sorted).
+
+    Parameters
+    ----------
+    t_s : ndarray of float64, shape (n,)
+    rows : ndarray of int64, shape (n,)
+        Row ``0..n_units-1`` of each spike.
+    start, stop : int
+        The held part of the arrays.
+    t_end_s, window_s : float
+    n_units : int
+
+    Returns
+    -------
+    fired : ndarray of int64, shape (k,)
+        Rows that fired, ascending.
+    counts : ndarray of float64, shape (k,)
+    """
+    held = t_s[start:stop]
+    lo = start + np.searchsorted(held, t_end_s - window_s, side="right")
+    hi = start + np.searchsorted(held, t_end_s, side="right")
+    binned = np.zeros(n_units, np.int64)
+    for i in range(lo, hi):
+        binned[rows[i]] += 1
+    k = 0
+    for c in binned:
+        if c:
+            k += 1
+    fired = np.empty(k, np.int64)
+    counts = np.empty(k, np.float64)
+    k = 0
+    for r in range(n_units):
+        if binned[r]:
+            fired[k] = r
+            counts[k] = binned[r]
+            k += 1
+    return fired, counts
+
+
+def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
+    """Numpy twin of :func:`window_counts` (the tests' reference)."""
+    held_t, held_rows = t_s[start:stop], rows[start:stop]
+    lo = np.searchsorted(held_t, t_end_s - window_s, side="right")
+    hi = np.searchsorted(held_t, t_end_s, side="right")
+    binned = np.bincount(held_rows[lo:hi], minlength=n_units)
+    fired = np.flatnonzero(binned)
+    return fired.astype(np.int64), binned[fired].astype(np.float64)
+
+
+@numba.njit(cache=True)
+def rows_of_units(unit_ids, row_of_id, first_id):
+    """Decoder row of each spike's unit through a lookup table; -1 for a unit the table lacks.
+
+    Parameters
+    ----------
+    unit_ids : ndarray of int64, shape (n,)
+    row_of_id : ndarray of int64, shape (span,)
+        Row of unit ``first_id + i`` at ``i``, or -1.
+    first_id : int
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+    """
+    rows = np.empty(unit_ids.size, np.int64)
+    span = row_of_id.size
+    for i in range(unit_ids.size):
+        j = unit_ids[i] - first_id
+        rows[i] = row_of_id[j] if 0 <= j < span else -1
+    return rows
+
+
+def rows_of_units_numpy(unit_ids, row_of_id, first_id):
+    """Numpy twin of :func:`rows_of_units` (the tests' reference)."""
+    j = unit_ids - first_id
+    inside = (j >= 0) & (j < row_of_id.size)
+    rows = np.full(unit_ids.size, -1, np.int64)
+    rows[inside] = row_of_id[j[inside]]
+    return rows
+
+
+#: Spikes the window's buffer holds before it first grows.
+_CAPACITY = 4096
 
 
 class SpikeWindow:
@@ -33,27 +121,46 @@ class SpikeWindow:
             raise ValueError(f"window_s must be positive, got {window_s}")
         self.n_units = int(n_units)
         self.window_s = float(window_s)
-        self._t = np.zeros(0, np.float64)
-        self._row = np.zeros(0, np.int64)
-        self._counts = np.zeros(self.n_units, np.float64)
+        # A preallocated buffer holding spikes [start, stop), compacted when
+        # the end is reached: a batch comes every few ms, and a concatenation
+        # per batch cost more than counting.
+        self._t = np.zeros(_CAPACITY, np.float64)
+        self._row = np.zeros(_CAPACITY, np.int64)
+        self._start = 0
+        self._stop = 0
 
     def __len__(self) -> int:
-        return int(self._t.size)
+        return self._stop - self._start
 
     def add(self, t_s: np.ndarray, rows: np.ndarray) -> None:
-        """Add spikes (shape (n,) each); they may be older than spikes already held."""
-        if t_s.size == 0:
+        """Add spikes (shape (n,) each, times sorted); they may be older than spikes already held."""
+        n = t_s.size
+        if n == 0:
             return
-        if self._t.size and t_s[0] < self._t[-1]:
-            t = np.concatenate([self._t, t_s])
-            r = np.concatenate([self._row, rows])
+        if self._stop + n > self._t.size:
+            self._compact(n)
+        start, stop = self._start, self._stop
+        self._t[stop:stop + n] = t_s
+        self._row[stop:stop + n] = rows
+        self._stop = stop + n
+        if stop > start and t_s[0] < self._t[stop - 1]:
             # Stable, so spikes with equal times keep their arrival order and a
             # replay gives bit-identical windows.
-            order = np.argsort(t, kind="stable")
-            self._t, self._row = t[order], r[order]
-        else:
-            self._t = np.concatenate([self._t, t_s])
-            self._row = np.concatenate([self._row, rows])
+            order = np.argsort(self._t[start:self._stop], kind="stable")
+            self._t[start:self._stop] = self._t[start:self._stop][order]
+            self._row[start:self._stop] = self._row[start:self._stop][order]
+
+    def _compact(self, incoming: int) -> None:
+        """Move the held spikes to the front, growing the buffer if they fill half of it."""
+        held = self._stop - self._start
+        t, row = self._t[self._start:self._stop].copy(), self._row[self._start:self._stop].copy()
+        if held + incoming > self._t.size // 2:
+            size = 2 * (held + incoming)
+            self._t = np.zeros(size, np.float64)
+            self._row = np.zeros(size, np.int64)
+        self._t[:held] = t
+        self._row[:held] = row
+        self._start, self._stop = 0, held
 
     def counts(self, t_end_s: float) -> tuple[np.ndarray, np.ndarray]:
         """Spike counts of the window ``(t_end_s - window_s, t_end_s]``.
@@ -65,23 +172,11 @@ class SpikeWindow:
         counts : ndarray of float64, shape (k,)
             Their spike counts.
         """
-        # Called at every decoding step on a short array: ndarray methods
-        # skip the module functions' dispatch, which cost more than the work.
-        lo = self._t.searchsorted(t_end_s - self.window_s, side="right")
-        hi = self._t.searchsorted(t_end_s, side="right")
-        rows = self._row[lo:hi]
-        if rows.size == 0:
-            return np.zeros(0, np.int64), np.zeros(0, np.float64)
-        binned = np.bincount(rows, minlength=self.n_units)
-        fired = binned.nonzero()[0]
-        return fired.astype(np.int64), binned[fired].astype(np.float64)
+        return window_counts(self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units)
 
     def discard_before(self, t_s: float) -> None:
         """Forget spikes at or before ``t_s`` (no later window can contain them)."""
-        cut = self._t.searchsorted(t_s, side="right")
-        if cut:
-            self._t = self._t[cut:]
-            self._row = self._row[cut:]
+        self._start += int(self._t[self._start:self._stop].searchsorted(t_s, side="right"))
 
 
 class StepSchedule:

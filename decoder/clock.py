@@ -83,7 +83,9 @@ class ClockFit:
         -------
         float or ndarray of float64, shape (n,)
         """
-        return self.offset_s + self.slope * np.asarray(t_other, dtype=np.float64)
+        if type(t_other) is not np.ndarray or t_other.dtype != np.float64:
+            t_other = np.asarray(t_other, dtype=np.float64)
+        return self.offset_s + (1.0 + self.drift_ppm * 1e-6) * t_other
 
 
 def fit_clock(pulses_ref_s: Any, pulses_other_s: Any) -> ClockFit:

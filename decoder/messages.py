@@ -15,6 +15,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
+import numba
 import numpy as np
 
 #: Largest number of spikes or frames one message may carry; a batch this
@@ -23,6 +24,20 @@ import numpy as np
 MAX_BATCH = 200_000
 
 SOURCE_KINDS = ("spikes", "tracker", "sync", "control")
+
+_F64 = np.dtype(np.float64)
+_I64 = np.dtype(np.int64)
+_I32 = np.dtype(np.int32)
+_U8 = np.dtype(np.uint8)
+
+
+def _read_only(arr: np.ndarray) -> np.ndarray:
+    arr.setflags(write=False)
+    return arr
+
+
+#: The quality array of one frame, one shared read-only array per value.
+SINGLE_FRAME_QUALITY = tuple(_read_only(np.array([value], np.uint8)) for value in range(256))
 
 
 class MessageError(ValueError):
@@ -53,13 +68,47 @@ def _finite_times(name: str, t_s: np.ndarray) -> None:
         raise MessageError(f"{name} holds a NaN or infinite timestamp")
 
 
+@numba.njit(cache=True)
+def finite_non_decreasing(t_s):
+    """Whether every time is finite and none is below the one before; t_s (n,) float64.
+
+    One compiled pass: a spike batch arrives every few ms, and the two numpy
+    reductions this replaces cost more than the batch's own work.
+    """
+    previous = -np.inf
+    for t in t_s:
+        if not (np.isfinite(t) and t >= previous):
+            return False
+        previous = t
+    return True
+
+
+def finite_non_decreasing_numpy(t_s: np.ndarray) -> bool:
+    """Numpy twin of :func:`finite_non_decreasing` (the tests' reference)."""
+    return bool(np.isfinite(t_s).all() and not (t_s[1:] < t_s[:-1]).any())
+
+
+def _is_ready_vector(arr: Any, dtype: np.dtype) -> bool:
+    """Whether ``arr`` is already what :func:`_vector` would make: 1-D, ``dtype``, contiguous, read-only.
+
+    Arrays read straight off the wire with ``numpy.frombuffer`` are, and
+    checking costs a fraction of converting.
+    """
+    return (
+        type(arr) is np.ndarray and arr.dtype == dtype and arr.ndim == 1 and arr.size <= MAX_BATCH
+        and not arr.flags.writeable and arr.flags.c_contiguous
+    )
+
+
 def _source(source: Any) -> str:
-    if not isinstance(source, str) or not source or len(source) > 64:
+    if type(source) is not str or not source or len(source) > 64:
         raise MessageError(f"source must be a non-empty name of at most 64 characters, got {source!r}")
     return source
 
 
 def _seq(seq: Any) -> int:
+    if type(seq) is int and seq >= 0:
+        return seq
     if isinstance(seq, bool) or not isinstance(seq, (int, np.integer)) or seq < 0:
         raise MessageError(f"seq must be a non-negative integer, got {seq!r}")
     return int(seq)
@@ -129,14 +178,19 @@ class SpikeBatch:
     def __post_init__(self) -> None:
         object.__setattr__(self, "source", _source(self.source))
         object.__setattr__(self, "seq", _seq(self.seq))
-        t = _vector("t_s", self.t_s, np.float64)
-        u = _vector("unit_id", self.unit_id, np.int64)
+        t = self.t_s if _is_ready_vector(self.t_s, _F64) else _vector("t_s", self.t_s, np.float64)
+        u = self.unit_id
+        if not _is_ready_vector(u, _I64):
+            if type(u) is np.ndarray and u.dtype == _I32 and u.ndim == 1:
+                # Ids come off the wire as int32: widening is always exact.
+                u = u.astype(_I64)
+                u.setflags(write=False)
+            else:
+                u = _vector("unit_id", u, np.int64)
         if t.size != u.size:
             raise MessageError(f"t_s has {t.size} spikes but unit_id has {u.size}")
-        _finite_times("t_s", t)
-        # On finite doubles ``b - a < 0`` exactly when ``b < a``, so comparing
-        # neighbours gives np.diff's verdict without its temporary.
-        if t.size > 1 and (t[1:] < t[:-1]).any():
+        if not finite_non_decreasing(t):
+            _finite_times("t_s", t)
             raise MessageError("spike times within a batch must not decrease")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "unit_id", u)
@@ -183,10 +237,10 @@ class TrackerFrames:
         """
         t, xy, q = self.t_s, self.xy_cm, self.quality
         if not (
-            type(t) is np.ndarray and t.shape == (1,) and t.dtype == np.float64
-            and type(xy) is np.ndarray and xy.shape == (1, 2) and xy.dtype == np.float64
+            type(t) is np.ndarray and t.shape == (1,) and t.dtype == _F64
+            and type(xy) is np.ndarray and xy.shape == (1, 2) and xy.dtype == _F64
             and self.head_dir_rad is None
-            and (q is None or (type(q) is np.ndarray and q.shape == (1,) and q.dtype == np.uint8))
+            and (q is None or (type(q) is np.ndarray and q.shape == (1,) and q.dtype == _U8))
         ):
             return False
         x, y = xy.item(0), xy.item(1)
@@ -194,15 +248,19 @@ class TrackerFrames:
             return False
         seen = x == x and y == y
         quality = (1 if seen else 0) if q is None else q.item(0)
-        t = t.copy()
-        t.setflags(write=False)
-        xy = np.ascontiguousarray(xy)
+        # Arrays read off the wire are read-only already and can be kept as they are.
+        if t.flags.writeable:
+            t = t.copy()
+            t.setflags(write=False)
         if quality == 0 or not seen:
             xy = np.full((1, 2), np.nan)
+            xy.setflags(write=False)
             quality = 0
-        xy.setflags(write=False)
-        q = np.array([quality], np.uint8)
-        q.setflags(write=False)
+        elif xy.flags.writeable or not xy.flags.c_contiguous:
+            xy = xy.copy()
+            xy.setflags(write=False)
+        if q is None or q.flags.writeable or q.item(0) != quality:
+            q = SINGLE_FRAME_QUALITY[quality]
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "xy_cm", xy)
         object.__setattr__(self, "quality", q)
@@ -256,9 +314,15 @@ class Heartbeat:
     t_s: float
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
-        t = float(self.t_s)
+        source, seq, t = self.source, self.seq, self.t_s
+        # Half of all messages are heartbeats: the usual exact types need no conversion.
+        if type(source) is str and 0 < len(source) <= 64 and type(seq) is int and seq >= 0 and type(t) is float:
+            if not math.isfinite(t):
+                raise MessageError("heartbeat t_s must be finite")
+            return
+        object.__setattr__(self, "source", _source(source))
+        object.__setattr__(self, "seq", _seq(seq))
+        t = float(t)
         if not math.isfinite(t):
             raise MessageError("heartbeat t_s must be finite")
         object.__setattr__(self, "t_s", t)

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from decoder.binning import SpikeWindow, StepSchedule
+from decoder.binning import SpikeWindow, StepSchedule, rows_of_units
 from decoder.clock import ClockAligner, ClockMismatchError
 from decoder.config import ExperimentConfig
 from decoder.decoding import BayesDecoder, DecodedStep
@@ -172,6 +172,8 @@ class Pipeline:
         }
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
+        self._spike_source = config.sources.spikes
+        self._position_sources = (config.sources.tracker, config.sources.truth)
         self.clock = ClockAligner(config.sources.spikes, tolerance_s=config.sources.clock_tolerance_s)
         self.tracked = TrackHistory()
         self.truth = TrackHistory()
@@ -213,23 +215,25 @@ class Pipeline:
             log.warning("dropped message %d from %r: sequence number not above the last one", msg.seq, msg.source)
             return []
         out: list[StepOutput | Notice] = []
+        source = msg.source
         if verdict == "restart":
-            out.append(Notice("source_restart", self.spike_watermark_s, {"source": msg.source}))
-            log.warning("source %r restarted its sequence numbers", msg.source)
+            out.append(Notice("source_restart", self.spike_watermark_s, {"source": source}))
+            log.warning("source %r restarted its sequence numbers", source)
             # A restarted source may restart its clock: its old clock fit no longer holds.
-            self.clock.forget(msg.source)
-            if msg.source == self.config.sources.spikes:
+            self.clock.forget(source)
+            if source == self._spike_source:
                 out.extend(self._on_spike_source_restart())
-        if isinstance(msg, ControlCommand):
+        kind = type(msg)
+        if kind is ControlCommand:
             out.extend(self.on_control(msg))
-        elif isinstance(msg, SourceAnnounce):
-            self.announced[msg.source] = msg
-        elif isinstance(msg, SyncPulse):
+        elif kind is SourceAnnounce:
+            self.announced[source] = msg
+        elif kind is SyncPulse:
             out.extend(self._on_sync(msg))
-        elif msg.source == self.config.sources.spikes:
+        elif source == self._spike_source:
             out.extend(self._on_spike_source(msg))
-        elif msg.source in (self.config.sources.tracker, self.config.sources.truth):
-            if isinstance(msg, TrackerFrames):
+        elif source in self._position_sources:
+            if kind is TrackerFrames:
                 self._on_frames(msg)
         else:
             self.counters["unknown_source"] += 1
@@ -415,14 +419,7 @@ class Pipeline:
 
     def _rows_of(self, unit_ids: np.ndarray) -> np.ndarray:
         if self._unit_lut is not None:
-            idx = unit_ids - self._unit_lut_offset
-            # The usual batch has only announced units: one lookup, no masks.
-            if idx.min() >= 0 and idx.max() < self._unit_lut.size:
-                return self._unit_lut[idx]
-            inside = (idx >= 0) & (idx < self._unit_lut.size)
-            rows = np.full(unit_ids.size, -1, np.int64)
-            rows[inside] = self._unit_lut[idx[inside]]
-            return rows
+            return rows_of_units(unit_ids, self._unit_lut, self._unit_lut_offset)
         return np.array([self._unit_rows.get(int(u), -1) for u in unit_ids], np.int64)
 
     def _on_frames(self, msg: TrackerFrames) -> None:
@@ -455,7 +452,7 @@ class Pipeline:
     def _to_reference(self, source: str, t_s: np.ndarray) -> np.ndarray:
         if self._same_clock(source):
             return t_s
-        return np.asarray(self.clock.to_reference(source, t_s), np.float64)
+        return self.clock.fit(source).to_reference(t_s)
 
     def _on_sync(self, msg: SyncPulse) -> list[Notice]:
         try:
@@ -558,9 +555,9 @@ class Pipeline:
         if not (math.isfinite(tx) and math.isfinite(ty)):
             return float("nan")
         if self._euclidean:
-            # Arena.distance_cm's own formula on scalars: one call instead of a dozen on (1, 2) arrays.
+            # Arena.distance_cm's formula on scalars: one call instead of a dozen on (1, 2) arrays.
             mx, my = map_xy.tolist()
-            return float(np.hypot(mx - tx, my - ty))
+            return math.hypot(mx - tx, my - ty)
         return float(self.environment.distance_cm(map_xy[None, :], true_xy[None, :])[0])
 
     def _near_zone_masks(self, margin_cm: float) -> np.ndarray:

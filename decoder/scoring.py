@@ -88,16 +88,15 @@ class VisitScore:
     false_events: int = 0
     repeat_events: int = 0
     latencies_s: list[float] = field(default_factory=list)
-    _inside: np.ndarray | None = None
+    _inside: list[bool] | None = None
     _open: list[_Visit] = field(default_factory=list)
     _pending_events: list[tuple[float, int]] = field(default_factory=list)
 
     def step(self, t_s: float, in_zone: np.ndarray) -> None:
         """The animal's in-zone flags (n_zones,) at step time ``t_s``; unknown position: all False."""
         if self._inside is None:
-            self._inside = np.zeros(self.n_zones, bool)
-        for z in range(self.n_zones):
-            now = bool(in_zone[z])
+            self._inside = [False] * self.n_zones
+        for z, now in enumerate(np.asarray(in_zone, bool).tolist()):
             if now and not self._inside[z]:
                 visit = _Visit(z, t_s)
                 # Events that came shortly before the entry belong to it.
@@ -112,7 +111,8 @@ class VisitScore:
                     if visit.zone == z and visit.exit_s == math.inf:
                         visit.exit_s = t_s
             self._inside[z] = now
-        self._settle(t_s)
+        if self._open or self._pending_events:
+            self._settle(t_s)
 
     def event(self, t_s: float, zone: int) -> None:
         for visit in self._open:

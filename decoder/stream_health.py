@@ -31,7 +31,9 @@ class StreamHealth:
 
     def accept(self, source: str, seq: int) -> str:
         """Classify a message: ``"ok"``, ``"gap"``, ``"restart"`` or ``"stale"`` (drop it)."""
-        health = self.sources.setdefault(source, SourceHealth())
+        health = self.sources.get(source)
+        if health is None:
+            health = self.sources[source] = SourceHealth()
         verdict = "ok"
         if health.last_seq >= 0:
             if seq == 0 and health.last_seq > 0:

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import math
+from bisect import bisect_left, bisect_right
+
 import numpy as np
 
-
-#: Frames the buffer holds before it compacts (grows if keep_s needs more).
-_CAPACITY = 4096
+#: Frames held before the oldest (beyond ``keep_s``) are dropped in one cut.
+_COMPACT_AT = 4096
 
 
 class TrackHistory:
@@ -28,15 +30,17 @@ class TrackHistory:
         self.keep_s = float(keep_s)
         self.speed_window_s = float(speed_window_s)
         self.max_age_s = float(max_age_s)
-        # A preallocated buffer, compacted when full: a tracker sends 30-60
-        # frames a second, and a concatenation per frame was the replay's
-        # largest cost.
-        self._t = np.zeros(_CAPACITY, np.float64)
-        self._xy = np.zeros((_CAPACITY, 2), np.float64)
-        self._start = 0
-        self._stop = 0
-        self.newest_t_s = -np.inf
+        # Plain lists of Python floats: frames come one at a time and are
+        # looked up one at a time, at every decoding step, where numpy's
+        # per-call cost on one-element arrays was most of the work.
+        self._t: list[float] = []
+        self._x: list[float] = []
+        self._y: list[float] = []
+        self.newest_t_s = -math.inf
         self.out_of_order = 0
+
+    def __len__(self) -> int:
+        return len(self._t)
 
     def add(self, t_s: np.ndarray, xy_cm: np.ndarray) -> None:
         """Append frames (t_s (n,), xy_cm (n, 2)); lost frames (NaN) are skipped.
@@ -44,63 +48,37 @@ class TrackHistory:
         Frames not newer than the newest one held are counted and dropped.
         """
         if t_s.size == 1:
-            t = float(t_s[0])
-            if not t > self.newest_t_s:
-                self.out_of_order += 1
-                return
-            self.newest_t_s = t
-            x, y = xy_cm[0]
-            if x != x or y != y:
-                return
-            self._append(t_s, xy_cm)
-            return
-        newer = t_s > self.newest_t_s
-        self.out_of_order += int(np.count_nonzero(~newer))
-        if t_s.size:
-            self.newest_t_s = max(self.newest_t_s, float(t_s.max()))
-        good = newer & np.all(np.isfinite(xy_cm), axis=1)
-        if np.any(good):
-            self._append(t_s[good], xy_cm[good])
+            self._add_one(t_s.item(0), xy_cm.item(0), xy_cm.item(1))
+        else:
+            for t, (x, y) in zip(t_s.tolist(), xy_cm.tolist()):
+                self._add_one(t, x, y)
+        if len(self._t) > _COMPACT_AT:
+            cut = bisect_left(self._t, self._t[-1] - self.keep_s)
+            if cut:
+                del self._t[:cut], self._x[:cut], self._y[:cut]
 
-    def _append(self, t_s: np.ndarray, xy_cm: np.ndarray) -> None:
-        n = t_s.size
-        if self._stop + n > self._t.size:
-            # Keep only the last keep_s of data, moved to the front (grown if needed).
-            t = self._t[self._start:self._stop]
-            cut = int(np.searchsorted(t, t_s[-1] - self.keep_s, side="left")) if t.size else 0
-            kept_t, kept_xy = t[cut:].copy(), self._xy[self._start + cut:self._stop].copy()
-            need = kept_t.size + n
-            if need > self._t.size // 2:
-                self._t = np.zeros(2 * need, np.float64)
-                self._xy = np.zeros((2 * need, 2), np.float64)
-            self._t[:kept_t.size] = kept_t
-            self._xy[:kept_t.size] = kept_xy
-            self._start, self._stop = 0, kept_t.size
-        self._t[self._stop:self._stop + n] = t_s
-        self._xy[self._stop:self._stop + n] = xy_cm
-        self._stop += n
+    def _add_one(self, t: float, x: float, y: float) -> None:
+        if not t > self.newest_t_s:
+            self.out_of_order += 1
+            return
+        self.newest_t_s = t
+        if math.isfinite(x) and math.isfinite(y):
+            self._t.append(t)
+            self._x.append(x)
+            self._y.append(y)
 
     def at(self, t_s: float) -> tuple[np.ndarray, float]:
         """Position (2,) and running speed (cm/s) at ``t_s`` from frames at or before it.
 
         NaN when the newest such frame is older than ``max_age_s``.
         """
-        # Asked at every decoding step: ndarray methods and Python floats
-        # (the same IEEE operations) rather than numpy's wrappers on 1-element arrays.
-        t = self._t[self._start:self._stop]
-        i = int(t.searchsorted(t_s, side="right")) - 1
-        if i < 0:
-            return np.full(2, np.nan), float("nan")
-        t_i = t.item(i)
-        if t_s - t_i > self.max_age_s:
-            return np.full(2, np.nan), float("nan")
-        j = int(t.searchsorted(t_i - self.speed_window_s, side="left"))
-        xy = self._xy[self._start:self._stop]
-        dt = t_i - t.item(j)
-        if dt > 0:
-            x_i, y_i = xy[i].tolist()
-            x_j, y_j = xy[j].tolist()
-            speed = float(np.hypot(x_i - x_j, y_i - y_j)) / dt
-        else:
-            speed = float("nan")
-        return xy[i].copy(), speed
+        t = self._t
+        i = bisect_right(t, t_s) - 1
+        if i < 0 or t_s - t[i] > self.max_age_s:
+            return np.full(2, np.nan), math.nan
+        t_i = t[i]
+        j = bisect_left(t, t_i - self.speed_window_s, 0, i)
+        x_i, y_i = self._x[i], self._y[i]
+        dt = t_i - t[j]
+        speed = math.hypot(x_i - self._x[j], y_i - self._y[j]) / dt if dt > 0 else math.nan
+        return np.array((x_i, y_i)), speed

@@ -22,8 +22,9 @@ from __future__ import annotations
 import math
 import struct
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import msgpack
 import numpy as np
@@ -31,6 +32,7 @@ import numpy as np
 from decoder.messages import (
     CONTROL_COMMANDS,
     MAX_BATCH,
+    SINGLE_FRAME_QUALITY,
     SOURCE_KINDS,
     ControlCommand,
     Heartbeat,
@@ -100,6 +102,10 @@ _OUTPUT_LIMITS = dict(
     max_ext_len=0,
 )
 
+#: Frames up to this many bytes are unpacked with msgpack's own limits, which
+#: are then no looser than ours (every limit below is at least this large).
+_SMALL_FRAME_BYTES = min(MAX_MAP_LEN, MAX_STR_BYTES, 8 * MAX_BATCH, MAX_BATCH)
+
 _F64 = np.dtype("<f8")
 _F32 = np.dtype("<f4")
 _U8 = np.dtype("<u1")
@@ -135,14 +141,23 @@ class ProtocolError(ValueError):
 
 
 def _unpack(data: Any, max_bytes: int, limits: dict) -> dict:
-    try:
-        n_bytes = memoryview(data).nbytes
-    except TypeError:
-        raise ProtocolError("not_msgpack", f"a frame must be bytes, got {type(data).__name__}") from None
+    if type(data) is bytes:
+        n_bytes = len(data)
+    else:
+        try:
+            n_bytes = memoryview(data).nbytes
+        except TypeError:
+            raise ProtocolError("not_msgpack", f"a frame must be bytes, got {type(data).__name__}") from None
     if n_bytes > max_bytes:
         raise ProtocolError("oversized", f"the frame has {n_bytes} bytes, more than the limit of {max_bytes}")
     try:
-        obj = msgpack.unpackb(data, raw=False, strict_map_key=True, **limits)
+        if n_bytes <= _SMALL_FRAME_BYTES:
+            # msgpack bounds every length by the frame's own size when not told
+            # otherwise, tighter than our limits for a frame this small; passing
+            # them all costs more than unpacking a heartbeat.
+            obj = msgpack.unpackb(data, max_ext_len=0)
+        else:
+            obj = msgpack.unpackb(data, raw=False, strict_map_key=True, **limits)
     # msgpack signals bad bytes with several exception types (ValueError,
     # FormatError, StackError, ExtraData, UnicodeDecodeError, MemoryError);
     # at this edge every one of them means "not a frame we can read".
@@ -304,9 +319,6 @@ def _decode_spikes(m: dict) -> SpikeBatch:
 
 
 def _decode_frames(m: dict) -> TrackerFrames:
-    one = _one_frame(m)
-    if one is not None:
-        return one
     t = _times(m, "t", "frames", strictly=True)
     x = _array(m, "x", "frames", _F64)
     y = _array(m, "y", "frames", _F64)
@@ -326,8 +338,37 @@ def _decode_frames(m: dict) -> TrackerFrames:
     return _build(TrackerFrames, **_source_seq(m, "frames"), t_s=t, xy_cm=xy, head_dir_rad=hd, quality=q)
 
 
+def _quick(m: dict) -> InputMessage | None:
+    """The well-formed heartbeat, spike batch or single frame, read with the fewest checks; None otherwise.
+
+    These three kinds are nearly all the traffic, and the general readers'
+    per-key helpers cost more than a heartbeat's own work. Whatever this
+    declines or whatever the message's constructor refuses, :func:`decode`
+    reads again on the general path, which gives the error and its reason;
+    the constructors still check every value.
+    """
+    v, src, seq, k = m.get("v"), m.get("src"), m.get("seq"), m.get("k")
+    if not (type(v) is int and v == PROTOCOL_VERSION and type(src) is str and type(seq) is int):
+        return None
+    try:
+        if k == "heartbeat":
+            t = m.get("t")
+            return Heartbeat(src, seq, t) if type(t) is float else None
+        if k == "spikes":
+            t, u, width = m.get("t"), m.get("u"), m.get("iw", 4)
+            if not (type(t) is bytes and type(u) is bytes and type(width) is int and width in _INT_BY_WIDTH
+                    and len(t) % 8 == 0 and len(u) * 8 == len(t) * width):
+                return None
+            return SpikeBatch(src, seq, np.frombuffer(t, dtype=_F64), np.frombuffer(u, dtype=_INT_BY_WIDTH[width]))
+        if k == "frames":
+            return _one_frame(m)
+    except MessageError:
+        return None
+    return None
+
+
 def _one_frame(m: dict) -> TrackerFrames | None:
-    """A valid single frame sent as bin, read with scalar checks; None for anything else.
+    """A valid single frame sent as bin, read with scalar checks; None for anything else (part of :func:`_quick`).
 
     A tracker sends one frame per message, 30 to 60 times a second, and the
     general path's numpy calls on 1-element arrays dominated a replay's
@@ -343,10 +384,10 @@ def _one_frame(m: dict) -> TrackerFrames | None:
     (t_s,), (x_cm,), (y_cm,) = _F64_ONE.unpack(t), _F64_ONE.unpack(x), _F64_ONE.unpack(y)
     if not math.isfinite(t_s) or math.isinf(x_cm) or math.isinf(y_cm):
         return None
-    quality = np.frombuffer(m["q"], dtype=_U8) if "q" in m else None
-    xy = np.frombuffer(x + y, dtype=_F64).reshape(1, 2)
-    return _build(TrackerFrames, **_source_seq(m, "frames"), t_s=np.frombuffer(t, dtype=_F64), xy_cm=xy,
-                  head_dir_rad=None, quality=quality)
+    # One buffer for the three values: numpy's constructors cost more than the frame's checks.
+    txy = np.frombuffer(t + x + y, dtype=_F64)
+    quality = SINGLE_FRAME_QUALITY[q[0]] if "q" in m else None
+    return TrackerFrames(m["src"], m["seq"], txy[:1], txy[1:].reshape(1, 2), None, quality)
 
 
 def _decode_heartbeat(m: dict) -> Heartbeat:
@@ -406,7 +447,7 @@ def decode(data: bytes) -> InputMessage:
     Heartbeat(source='ephys', seq=4, t_s=12.5)
     """
     m = _unpack(data, MAX_FRAME_BYTES, _INPUT_LIMITS)
-    return _INPUT_DECODERS[_envelope(m, INPUT_KINDS)](m)
+    return _quick(m) or _INPUT_DECODERS[_envelope(m, INPUT_KINDS)](m)
 
 
 # --------------------------------------------------------------------------

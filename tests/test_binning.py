@@ -64,3 +64,51 @@ def test_bad_window_settings_are_refused():
         SpikeWindow(0, 0.2)
     with pytest.raises(ValueError, match="window_s"):
         SpikeWindow(3, 0.0)
+
+
+def test_window_counts_kernel_matches_its_numpy_twin():
+    # Twin check (common practice here): the compiled kernel and the plain numpy one agree exactly.
+    from decoder.binning import window_counts, window_counts_numpy
+
+    rng = np.random.default_rng(4)
+    t = np.sort(rng.uniform(0, 2, 500))
+    rows = rng.integers(0, 30, t.size).astype(np.int64)
+    for start, stop, t_end in [(0, 500, 1.0), (100, 400, 0.7), (0, 0, 1.0), (250, 500, 1.99), (0, 500, -1.0)]:
+        a = window_counts(t, rows, start, stop, t_end, 0.2, 30)
+        b = window_counts_numpy(t, rows, start, stop, t_end, 0.2, 30)
+        for x, y in zip(a, b):
+            assert x.dtype == y.dtype
+            np.testing.assert_array_equal(x, y)
+
+
+def test_window_survives_many_compactions_and_late_batches():
+    rng = np.random.default_rng(5)
+    n_units, window_s = 7, 0.2
+    win = SpikeWindow(n_units, window_s)
+    held_t, held_rows = np.zeros(0), np.zeros(0, np.int64)
+    for k in range(1, 2000):
+        t = np.sort(rng.uniform((k - 1) * 0.02, k * 0.02, rng.integers(0, 40)))
+        if k % 7 == 0:
+            t = t - 0.03          # a late batch, older than spikes already held
+        rows = rng.integers(0, n_units, t.size)
+        win.add(t, rows)
+        held_t, held_rows = np.concatenate([held_t, t]), np.concatenate([held_rows, rows])
+        fired, counts = win.counts(k * 0.02 - 0.05)
+        dense = np.zeros(n_units)
+        dense[fired] = counts
+        np.testing.assert_array_equal(dense, _reference_counts(held_t, held_rows, k * 0.02 - 0.05, window_s, n_units))
+        win.discard_before(k * 0.02 - 0.05 - window_s)
+        keep = held_t > k * 0.02 - 0.05 - window_s
+        held_t, held_rows = held_t[keep], held_rows[keep]
+    assert len(win) == held_t.size
+
+
+def test_rows_of_units_kernel_matches_its_numpy_twin():
+    # Twin check (common practice here): ids inside, below and above the table, and ids the table lacks.
+    from decoder.binning import rows_of_units, rows_of_units_numpy
+
+    table = np.array([3, -1, 0, 1, -1, 2], np.int64)      # units 10..15
+    ids = np.array([10, 11, 12, 9, 16, 15, 13, -4, 10], np.int64)
+    np.testing.assert_array_equal(rows_of_units(ids, table, 10), rows_of_units_numpy(ids, table, 10))
+    assert rows_of_units(ids, table, 10).tolist() == [3, -1, 0, -1, -1, 2, 1, -1, 3]
+    assert rows_of_units(np.zeros(0, np.int64), table, 10).size == 0

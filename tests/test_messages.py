@@ -95,3 +95,24 @@ def test_single_float64_frame_matches_the_general_path(xy, quality):
 def test_single_float64_frame_keeps_the_error_messages(t_s, xy, words):
     with pytest.raises(MessageError, match=words):
         TrackerFrames("cam", 0, np.array(t_s), np.array(xy))
+
+
+@pytest.mark.parametrize(
+    "t",
+    [[], [1.0], [1.0, 1.0, 2.0], [2.0, 1.0], [1.0, np.nan], [np.inf], [-np.inf, 0.0], [0.0, 1.0, 0.5, 2.0]],
+)
+def test_spike_time_check_matches_its_numpy_twin(t):
+    # Twin check (common practice here): the compiled check and numpy's isfinite + neighbour comparison agree.
+    from decoder.messages import finite_non_decreasing, finite_non_decreasing_numpy
+
+    arr = np.asarray(t, dtype=np.float64)
+    assert finite_non_decreasing(arr) == finite_non_decreasing_numpy(arr)
+
+
+def test_spike_batch_keeps_wire_arrays_and_widens_int32_ids():
+    t = np.frombuffer(np.array([0.1, 0.2]).tobytes())
+    u = np.frombuffer(np.array([3, 4], np.int32).tobytes(), dtype=np.int32)
+    batch = SpikeBatch(source="ephys", seq=0, t_s=t, unit_id=u)
+    assert batch.t_s is t                       # read-only float64 off the wire: kept as it is
+    assert batch.unit_id.dtype == np.int64 and batch.unit_id.tolist() == [3, 4]
+    assert not batch.unit_id.flags.writeable

@@ -660,3 +660,36 @@ def test_single_frame_as_bin_decodes_like_lists(x, q):
 def test_single_bad_frame_as_bin_keeps_its_reason(t, x, reason):
     frame = pack(frames_map(t=struct.pack("<d", t), x=struct.pack("<d", x), y=struct.pack("<d", 20.0)))
     assert reason_of(frame) == reason
+
+
+@pytest.mark.parametrize(
+    "m",
+    [
+        VALID_MAPS["heartbeat"],
+        spikes_map(t=np.array([0.001, 0.002, 0.002]).tobytes(), u=np.array([3, 7, 3], np.int32).tobytes()),
+        spikes_map(t=np.array([0.5]).tobytes(), u=np.array([2**40], np.int64).tobytes(), iw=8),
+        spikes_map(t=b"", u=b""),
+        frames_map(t=struct.pack("<d", 1.0), x=struct.pack("<d", 3.0), y=struct.pack("<d", 4.0), q=b"\x05"),
+    ],
+)
+def test_the_quick_reader_gives_what_the_general_reader_gives(m):
+    # The usual heartbeat, spike batch and single frame take protocol._quick; the
+    # general readers are the reference for what the message must hold.
+    from rig_adapters.protocol import _INPUT_DECODERS
+
+    assert_same(decode(pack(m)), _INPUT_DECODERS[m["k"]](msgpack.unpackb(pack(m))))
+
+
+@pytest.mark.parametrize(
+    "m, reason",
+    [
+        (VALID_MAPS["heartbeat"] | {"t": float("inf")}, "bad_time"),
+        (VALID_MAPS["heartbeat"] | {"src": "x" * 65}, "bad_field"),
+        (VALID_MAPS["heartbeat"] | {"seq": -1}, "bad_field"),
+        (spikes_map(t=np.array([0.2, 0.1]).tobytes(), u=np.array([3, 7], np.int32).tobytes()), "bad_time"),
+        (spikes_map(t=np.array([0.2, np.nan]).tobytes(), u=np.array([3, 7], np.int32).tobytes()), "bad_time"),
+        (spikes_map(t=np.array([0.2]).tobytes(), u=np.array([3, 7], np.int32).tobytes()), "length_mismatch"),
+    ],
+)
+def test_what_the_quick_reader_refuses_keeps_its_reason(m, reason):
+    assert reason_of(pack(m)) == reason
