@@ -28,6 +28,7 @@ import logging
 import math
 import tempfile
 import time
+from bisect import bisect_left
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -71,19 +72,23 @@ class LatencySeries:
 
     RECENT = 2000
     _EDGES_MS = np.geomspace(1e-3, 1e5, 3700)
+    _EDGE_LIST_MS = _EDGES_MS.tolist()
 
     def __init__(self, keep_all: bool = False) -> None:
-        self._counts = np.zeros(self._EDGES_MS.size + 1, np.int64)
-        self._recent = np.zeros(self.RECENT)
+        self._counts = [0] * (self._EDGES_MS.size + 1)
+        self._recent = [0.0] * self.RECENT
         self._n = 0
         self.max_ms = float("-inf")
         self.values: list[float] | None = [] if keep_all else None
 
     def append(self, ms: float) -> None:
-        self._counts[np.searchsorted(self._EDGES_MS, ms)] += 1
+        ms = float(ms)
+        # bisect_left on a list is searchsorted's default side, without numpy's per-call cost (every step pays it).
+        self._counts[bisect_left(self._EDGE_LIST_MS, ms)] += 1
         self._recent[self._n % self.RECENT] = ms
         self._n += 1
-        self.max_ms = max(self.max_ms, float(ms))
+        if ms > self.max_ms:
+            self.max_ms = ms
         if self.values is not None:
             self.values.append(ms)
 
@@ -100,9 +105,9 @@ class LatencySeries:
     def recent(self) -> np.ndarray:
         """The newest samples (up to ``RECENT``), oldest first."""
         if self._n <= self.RECENT:
-            return self._recent[: self._n].copy()
+            return np.array(self._recent[: self._n])
         i = self._n % self.RECENT
-        return np.concatenate([self._recent[i:], self._recent[:i]])
+        return np.array(self._recent[i:] + self._recent[:i])
 
     def percentile(self, q: float) -> float | None:
         if not self._n:
