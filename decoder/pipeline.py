@@ -121,7 +121,9 @@ class LearningProgress:
     coverage : float
         Fraction of the environment's valid bins visited so far.
     n_tuned_units : int or None
-        Spatially tuned units, refreshed every ``TUNING_REPORT_S`` (None before).
+        Spatially tuned units, refreshed every ``TUNING_REPORT_S`` (None
+        before); an estimate on bins about ``smooth_cm`` wide
+        (``PlaceModel.n_tuned_units_so_far``), the exact count comes with the fit.
     learn_elapsed_s : float
     """
 
@@ -391,7 +393,7 @@ class Pipeline:
         self._next_progress_s = t + LEARNING_REPORT_S
         if t >= self._next_tuning_s:
             self._next_tuning_s = t + TUNING_REPORT_S
-            self._n_tuned = int(self.model.readiness().n_tuned_units)
+            self._n_tuned = self.model.n_tuned_units_so_far()
         occupancy = self.model.occupancy_so_far_s()
         valid = self.environment.valid_mask
         coverage = float(np.count_nonzero(valid & (occupancy >= self.config.model.min_occupancy_s)) / valid.sum())

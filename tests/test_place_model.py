@@ -525,3 +525,174 @@ def test_files_that_are_not_models_are_refused(saved, tmp_path):
     _rewrite_header(saved, tmp_path / "foreign.npz", format="someone.elses.format")
     with pytest.raises(ModelFileError, match="not a placeloop place-model file"):
         PlaceModel.load(tmp_path / "foreign.npz")
+
+
+# --- held arrivals: batching never changes a result -------------------------------------------
+
+
+def arrivals(t, xy, st, su, *, frames_per_call=1, spike_batch_s=0.02, lag_s=0.01, late=(), seed=5):
+    """The session as a rig delivers it: frame calls and spike batches in order of delivery.
+
+    Spike batches of ``spike_batch_s`` arrive ``lag_s`` after they end;
+    ``late`` holds ``(index, delay_s)`` pairs: spike ``index`` comes alone,
+    ``delay_s`` after it fired. Returns a list of ``("f", t, xy)`` and
+    ``("s", t, unit)`` in delivery order.
+    """
+    events = []
+    for i in range(0, len(t), frames_per_call):
+        events.append((t[i], 0, ("f", t[i : i + frames_per_call], xy[i : i + frames_per_call])))
+    late_idx = {i for i, _ in late}
+    on_time = np.array([i not in late_idx for i in range(len(st))], dtype=bool)
+    batch = np.floor(st / spike_batch_s).astype(np.int64)
+    for b in np.unique(batch[on_time]):
+        sel = on_time & (batch == b)
+        events.append(((b + 1) * spike_batch_s + lag_s, 1, ("s", st[sel], su[sel])))
+    for i, delay in late:
+        events.append((st[i] + delay, 1, ("s", st[i : i + 1], su[i : i + 1])))
+    events.sort(key=lambda e: (e[0], e[1]))
+    return [e[2] for e in events]
+
+
+def feed(model, events, *, read_every=0):
+    """Deliver ``events``; every ``read_every`` events, read the state as the pipeline does."""
+    for n, (kind, a, b) in enumerate(events, 1):
+        if kind == "f":
+            model.update_frames(a, b)
+        else:
+            model.update_spikes(a, b)
+        if read_every and n % read_every == 0:
+            model.occupancy_so_far_s()
+            _ = model.counters_
+    return model
+
+
+def assert_same_model(a, b, *, pair_order=True):
+    """Every learned array, counter and evaluation sample equal, to the bit (numpy.array_equal)."""
+    a.fit()
+    b.fit()
+    assert a.counters_ == b.counters_
+    for name in PlaceModel._LEARNED:
+        assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True), name
+    for name in ("_fold_occ", "_cv_t", "_cv_xy", "_cv_fold"):
+        assert np.array_equal(getattr(a, name), getattr(b, name)), name
+    # Per-fold counts in output order (rows are kept in order of first arrival).
+    fold_counts = [m._fold_counts[:, : m.n_units][:, m._output_order()] for m in (a, b)]
+    assert np.array_equal(*fold_counts)
+    for x, y in zip(a._cv_counts(), b._cv_counts()):
+        assert np.array_equal(x, y)
+    if pair_order:
+        assert a._unit_list == b._unit_list
+        pairs_a = [np.concatenate(p) for p in zip(*a._cv_pairs)]
+        pairs_b = [np.concatenate(p) for p in zip(*b._cv_pairs)]
+        for x, y in zip(pairs_a, pairs_b):
+            assert np.array_equal(x, y)
+
+
+@pytest.fixture(scope="module")
+def short_session():
+    """Two minutes of foraging at 50 Hz with 20 invented place cells, some frames lost."""
+    fps = 50.0
+    t, xy = foraging(120.0, fps=fps, seed=31)
+    t = t + 10.0
+    rng = np.random.default_rng(32)
+    st, su = place_cell_spikes(t, xy, rng.uniform(10, 90, (20, 2)), 8.0, rng.uniform(5, 15, 20), seed=33)
+    xy[rng.choice(len(t), 60, replace=False)] = np.nan  # lost frames
+    xy[3000:3040] = np.nan  # a 0.8 s tracking gap
+    return t, xy, st, su
+
+
+def test_held_arrivals_give_what_working_each_in_at_once_gives(short_session, monkeypatch):
+    t, xy, st, su = short_session
+    rng = np.random.default_rng(34)
+    # Late spikes: 1-3 s late (still placed) and 6-8 s late (too late to place).
+    late = [(int(i), float(rng.uniform(1.0, 3.0))) for i in rng.choice(len(st), 40, replace=False)]
+    late += [(int(i), float(rng.uniform(6.0, 8.0))) for i in rng.choice(len(st), 10, replace=False)]
+    late = list({i: d for i, d in late}.items())
+    events = arrivals(t, xy, st, su, late=late)
+    events.insert(500, ("s", np.array([np.nan, 20.0]), np.array([100, 999])))  # a bad time, a new unit
+    events.insert(900, ("f", np.array([t[300]]), np.array([[5.0, 5.0]])))  # a frame out of order
+    settings = {"cv_block_s": 20.0, "cv_folds": 3}
+    held = feed(PlaceModel(box(2.0), **settings), events, read_every=97)
+    # A batch of one: every arrival is worked in at once, as the model did before it held any.
+    monkeypatch.setattr("decoder.place_model._FRAME_BATCH", 1)
+    at_once = feed(PlaceModel(box(2.0), **settings), events)
+    assert held.counters_["spikes_too_late"] > 0
+    assert held.counters_["frames_out_of_order"] == 1
+    # Exact equality, not closeness: the contract of the held path (numpy.array_equal),
+    # down to the order of the evaluation-window pairs.
+    assert_same_model(held, at_once)
+
+
+@pytest.mark.parametrize("unit_ids", [None, list(range(100, 120))])
+def test_one_at_a_time_large_chunks_and_interleaved_give_identical_models(short_session, unit_ids):
+    t, xy, st, su = short_session
+    settings = {"cv_block_s": 20.0, "cv_folds": 3, "unit_ids": unit_ids}
+    one_by_one = feed(PlaceModel(box(2.0), **settings), arrivals(t, xy, st, su), read_every=50)
+    chunked = feed(PlaceModel(box(2.0), **settings), arrivals(t, xy, st, su, frames_per_call=173, spike_batch_s=1.3))
+    interleaved = PlaceModel(box(2.0), **settings)
+    feed_live(interleaved, t, xy, st, su, chunk_s=0.7, lag_s=0.2)
+    whole = PlaceModel(box(2.0), **settings)
+    whole.update_spikes(st, su)
+    whole.update_frames(t, xy)
+    # Same frames and spikes, none too late: the same model whatever the chunking
+    # (numpy.array_equal). Pairs may be listed in another order; their counts may not differ.
+    for other in (chunked, interleaved, whole):
+        assert_same_model(one_by_one, other, pair_order=False)
+
+
+def test_readers_see_every_arrival_so_far(short_session, monkeypatch):
+    t, xy, st, su = short_session
+    events = arrivals(t, xy, st, su)
+    held = PlaceModel(box(2.0))
+    for kind, a, b in events[:1234]:
+        (held.update_frames if kind == "f" else held.update_spikes)(a, b)
+    monkeypatch.setattr("decoder.place_model._FRAME_BATCH", 1)
+    at_once = feed(PlaceModel(box(2.0)), events[:1234])
+    # Nothing held back from a reader: occupancy and counters as if every arrival
+    # had been worked in on the spot (numpy.array_equal).
+    assert held.counters_ == at_once.counters_
+    assert held.counters_["frames_received"] > 0 and held.counters_["spikes_received"] > 0
+    assert np.array_equal(held.occupancy_so_far_s(), at_once.occupancy_so_far_s())
+    assert held.n_units == at_once.n_units
+    assert held.readiness().running_time_s == at_once.readiness().running_time_s
+
+
+def test_held_arrays_are_copies_and_memory_stays_bounded(short_session):
+    t, xy, _, _ = short_session
+    model = PlaceModel(box(2.0))
+    reference = PlaceModel(box(2.0))
+    frame_t, frame_xy = np.zeros(1), np.zeros((1, 2))
+    for i in range(2000):
+        frame_t[0], frame_xy[0] = t[i], xy[i]  # the caller reuses its buffers
+        model.update_frames(frame_t, frame_xy)
+        reference.update_frames(t[i : i + 1], xy[i : i + 1].copy())
+        assert len(model._held_t) < 64
+    np.testing.assert_array_equal(model.occupancy_so_far_s(), reference.occupancy_so_far_s())
+    assert model._ft.size <= (model.max_spike_delay_s + 2.0) * 50
+
+
+def test_tuned_count_so_far_matches_readiness_on_the_models_grid(foraging_model):
+    # 4 cm bins and smooth_cm = 4: no coarser grid, so the very count readiness gives.
+    assert foraging_model.n_tuned_units_so_far() == foraging_model.readiness().n_tuned_units
+
+
+def test_tuned_count_so_far_on_a_coarser_grid_is_close_and_keeps_counting(short_session):
+    t, xy, st, su = short_session
+    half = len(t) // 2
+    cut = np.searchsorted(st, t[half])
+    model = PlaceModel(box(2.0), smooth_cm=5.0)
+    model.update_spikes(st[:cut], su[:cut])
+    model.update_frames(t[:half], xy[:half])
+    model.n_tuned_units_so_far()  # the coarse grid's counts start here and follow every spike after
+    model.update_spikes(st[cut:], su[cut:])
+    model.update_frames(t[half:], xy[half:])
+    fresh = PlaceModel(box(2.0), smooth_cm=5.0)
+    fresh.update_spikes(st, su)
+    fresh.update_frames(t, xy)
+    assert model.n_tuned_units_so_far() == fresh.n_tuned_units_so_far()
+    np.testing.assert_array_equal(model._tuning_counts[: model.n_units], fresh._tuning_counts[: fresh.n_units])
+    # The pooled counts hold every placed spike that lands in a grid bin (exact integers).
+    assert model._tuning_counts.sum() == model.counters_["spikes_placed"]
+    # Sanity bound on invented cells: 4 cm bins under a 5 cm Gaussian call nearly
+    # the same units tuned as the 2 cm maps do.
+    assert abs(model.n_tuned_units_so_far() - model.readiness().n_tuned_units) <= 2
