@@ -53,17 +53,10 @@ MAX_COUNT = 1e6
 PRIORS = ("uniform", "state_space")
 BACKENDS = ("numba", "numpy")
 
-_KERNEL_NAMES = (
-    "first_bad_entry",
-    "poisson_log_likelihood",
-    "posterior_from_log",
-    "convolve_separable",
-    "predict_grid",
-    "predict_dense",
-    "hpd_size",
-    "posterior_summary",
-    "zone_mass",
-)
+_KERNEL_NAMES = ("convolve_separable", "predict_grid", "predict_dense", "decode_step")
+
+_INT64 = np.dtype(np.int64)
+_FLOAT64 = np.dtype(np.float64)
 
 
 def _kernel_set(backend: str) -> SimpleNamespace:
@@ -100,9 +93,9 @@ class DecodedStep:
         Probability of each bin; sums to 1, exactly 0 outside the valid bins.
     map_bin : int
         Bin of highest posterior probability (the first one on a tie).
-    map_xy_cm : ndarray of float64, shape (2,)
+    map_xy_cm : ndarray of float64, shape (2,), read-only
         Centre of ``map_bin``.
-    mean_xy_cm : ndarray of float64, shape (2,)
+    mean_xy_cm : ndarray of float64, shape (2,), read-only
         Posterior mean of the bin centres. On a track graph this average of
         positions may lie off the track (between two arms).
     hpd95_size : float
@@ -114,6 +107,12 @@ class DecodedStep:
         Posterior mass inside each zone.
     n_spikes : int
         Spikes in the window.
+
+    Notes
+    -----
+    The four arrays are views of one buffer that belongs to this step alone
+    (the decoder allocates one per window and never writes to it again), so
+    a step may be kept for as long as needed.
     """
 
     posterior: np.ndarray
@@ -373,6 +372,7 @@ class BayesDecoder:
                 f"got {zones.dtype} of shape {zones.shape}"
             )
         self.n_zones = zones.shape[0]
+        self._bin_size = float(environment.bin_size)
         self._zone_start = np.concatenate([[0], np.cumsum(zones.sum(axis=1))]).astype(np.int64)
         self._zone_bins = np.ascontiguousarray(np.nonzero(zones)[1], dtype=np.int64)
 
@@ -383,17 +383,84 @@ class BayesDecoder:
         self._centers_x = np.ascontiguousarray(centers[:, 0])
         self._centers_y = np.ascontiguousarray(centers[:, 1])
         self._uniform = valid.astype(np.float64)
+
+        # decode_step's arguments between the window and the previous
+        # posterior, and after it; the arrays it keeps between calls are
+        # ``_state``, ``_unit_counts`` and ``_log_like``.
+        walk = self.transition
+        walk_arrays, dense = (np.zeros(1),) * 3, np.zeros((1, 1))
+        if walk is None:
+            kind = _kernels.NO_TRANSITION
+        elif walk._transition is None:
+            kind, walk_arrays = _kernels.GRID_TRANSITION, (walk._kernel_1d, walk._mask_f, walk._inv_norm)
+        else:
+            kind, dense = _kernels.DENSE_TRANSITION, walk._transition
+        ny, nx = environment.grid_shape if kind == _kernels.GRID_TRANSITION else (1, n_bins)
+        reach = walk_arrays[0].size // 2
+        self._state = np.zeros(_kernels.STATE_SIZE, np.int64)
+        self._state[_kernels.STATE_UPDATES] = -1
+        self._unit_counts = np.zeros((3, self.n_units))
         self._log_like = np.empty(n_bins)
-        self._predicted = np.empty(n_bins)
-        self._scratch = np.empty(n_bins)
-        self._previous: np.ndarray | None = None
+        self._args_before = (
+            MAX_COUNT,
+            self._log_rate,
+            self._expected_total,
+            self._valid,
+            self._uniform,
+            kind,
+            ny,
+            nx,
+            *walk_arrays,
+            dense,
+            self._centers_x,
+            self._centers_y,
+            self._zone_start,
+            self._zone_bins,
+            HPD_MASS,
+            self._state,
+            self._unit_counts,
+            np.empty(self.n_units, np.int64),  # unit_rows
+            self._log_like,
+        )
+        self._args_after = (
+            np.empty(n_bins),  # predicted
+            np.empty(n_bins),  # scratch
+            # grid_scratch: two copies of the grid padded by the walk's reach
+            # (zeros: padding that is never written must hold numbers)
+            np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach)),
+        )
+        self._out_size = n_bins + 4 + self.n_zones
+        # The last posterior's own buffer (posterior, MAP and mean centres,
+        # zone masses), or a placeholder before the first step; read-only
+        # like every buffer handed out, so that the kernel compiles once.
+        self._previous = np.zeros(self._out_size)
+        self._previous.setflags(write=False)
         self.underflow_resets = 0
 
     def reset(self) -> None:
-        """Forget the previous posterior: the next window uses the uniform prior."""
-        self._previous = None
+        """Forget the previous posterior: the next window uses the uniform prior.
+
+        The log-likelihood is recomputed afresh at the next window too, so a
+        reset decoder gives the same numbers as a new one.
+        """
+        self._state[_kernels.STATE_UPDATES] = -1
+        self._state[_kernels.STATE_HAS_PREVIOUS] = 0
 
     def _read_counts(self, fired_rows: Any, fired_counts: Any) -> tuple[np.ndarray, np.ndarray]:
+        # The pipeline passes contiguous int64 rows and float64 counts: those
+        # go straight through; values are checked inside decode_step.
+        if (
+            type(fired_rows) is np.ndarray
+            and type(fired_counts) is np.ndarray
+            and fired_rows.dtype is _INT64
+            and fired_counts.dtype is _FLOAT64
+            and fired_rows.ndim == 1
+            and fired_counts.ndim == 1
+            and fired_rows.shape == fired_counts.shape
+            and fired_rows.flags.c_contiguous
+            and fired_counts.flags.c_contiguous
+        ):
+            return fired_rows, fired_counts
         rows = np.asarray(fired_rows)
         counts = np.asarray(fired_counts)
         if rows.ndim != 1 or counts.ndim != 1:
@@ -408,23 +475,19 @@ class BayesDecoder:
             raise ValueError(f"fired_rows must hold integer model rows, got dtype {rows.dtype}")
         if counts.dtype.kind not in "iuf":
             raise ValueError(f"fired_counts must be numeric, got dtype {counts.dtype}")
-        rows = np.ascontiguousarray(rows, dtype=np.int64)
-        counts = np.ascontiguousarray(counts, dtype=np.float64)
-        bad = self._k.first_bad_entry(rows, counts, self.n_units, MAX_COUNT)
-        if bad >= 0:
-            row, count = int(rows[bad]), float(counts[bad])
-            if not 0 <= row < self.n_units:
-                raise ValueError(f"fired_rows holds row {row}, outside the model's rows 0..{self.n_units - 1}")
-            if not np.isfinite(count):
-                raise ValueError(f"fired_counts holds a NaN or infinite count ({count}) for row {row}")
-            if count < 0:
-                raise ValueError(
-                    f"fired_counts holds a negative count ({count:g}) for row {row}; spike counts are >= 0"
-                )
-            if count >= MAX_COUNT:
-                raise ValueError(f"fired_counts holds {count:g} spikes for row {row}, more than {MAX_COUNT:g}")
-            raise ValueError(f"fired_counts must hold whole numbers of spikes, got {count:g} for row {row}")
-        return rows, counts
+        return np.ascontiguousarray(rows, dtype=np.int64), np.ascontiguousarray(counts, dtype=np.float64)
+
+    def _bad_entry(self, rows: np.ndarray, counts: np.ndarray, bad: int) -> ValueError:
+        row, count = int(rows[bad]), float(counts[bad])
+        if not 0 <= row < self.n_units:
+            return ValueError(f"fired_rows holds row {row}, outside the model's rows 0..{self.n_units - 1}")
+        if not np.isfinite(count):
+            return ValueError(f"fired_counts holds a NaN or infinite count ({count}) for row {row}")
+        if count < 0:
+            return ValueError(f"fired_counts holds a negative count ({count:g}) for row {row}; spike counts are >= 0")
+        if count >= MAX_COUNT:
+            return ValueError(f"fired_counts holds {count:g} spikes for row {row}, more than {MAX_COUNT:g}")
+        return ValueError(f"fired_counts must hold whole numbers of spikes, got {count:g} for row {row}")
 
     def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray) -> DecodedStep:
         """Decode one window.
@@ -439,6 +502,8 @@ class BayesDecoder:
         Returns
         -------
         DecodedStep
+            Its arrays are views of one buffer of its own, which no later
+            call writes to, so a caller may keep the step.
 
         Raises
         ------
@@ -446,48 +511,41 @@ class BayesDecoder:
             For arrays of the wrong shape or type, rows out of range, or
             negative, fractional or non-finite counts. The decoder's state is
             unchanged when this is raised.
+
+        Notes
+        -----
+        Consecutive windows mostly share their spikes, so the log-likelihood
+        is updated where counts changed rather than recomputed (afresh at
+        least every ``_kernels.LIKELIHOOD_REFRESH_STEPS`` windows and after
+        :meth:`reset`). The result therefore depends, within rounding (about
+        1e-13 relative), on the windows decoded since the last reset, and is
+        the same, bit for bit, whenever the same windows are decoded in the
+        same order from construction or a reset, as live runs and their
+        replays are.
         """
         rows, counts = self._read_counts(fired_rows, fired_counts)
-        k = self._k
-        log_like = k.poisson_log_likelihood(rows, counts, self._log_rate, self._expected_total, self._log_like)
-        posterior = np.empty(self.n_bins)
-        if self.transition is not None and self._previous is not None:
-            predicted = self.transition.predict(self._previous, out=self._predicted)
-            if not k.posterior_from_log(log_like, predicted, self._valid, posterior):
-                self.underflow_resets += 1
-                # Loud once, then quiet: a pathological stream could repeat this at every step.
-                log = logger.warning if self.underflow_resets == 1 else logger.debug
-                log(
-                    "state-space prior underflowed (no prior mass where the spikes point); "
-                    "decoding this window with the uniform prior (%d so far)",
-                    self.underflow_resets,
-                )
-                self._uniform_posterior(log_like, posterior)
-        else:
-            self._uniform_posterior(log_like, posterior)
-        if self.transition is not None:
-            self._previous = posterior
-
-        map_bin, peak, mean_x, mean_y = k.posterior_summary(posterior, self._centers_x, self._centers_y)
-        n_hpd = k.hpd_size(posterior, HPD_MASS, self._scratch)
-        zone_mass = k.zone_mass(posterior, self._zone_start, self._zone_bins, np.empty(self.n_zones))
-        zone_mass.setflags(write=False)
-        # The caller gets a read-only view; the array itself stays writable
-        # so that the kernels see one array type and compile once.
-        shown = posterior.view()
-        shown.setflags(write=False)
-        return DecodedStep(
-            posterior=shown,
-            map_bin=int(map_bin),
-            map_xy_cm=np.array([self._centers_x[map_bin], self._centers_y[map_bin]]),
-            mean_xy_cm=np.array([mean_x, mean_y]),
-            hpd95_size=float(n_hpd) * float(self.environment.bin_size),
-            peak_prob=float(peak),
-            zone_mass=zone_mass,
-            n_spikes=int(counts.sum()),
+        buf = np.empty(self._out_size)
+        status, map_bin, n_hpd, n_spikes, peak = self._k.decode_step(
+            rows, counts, *self._args_before, self._previous, *self._args_after, buf
         )
-
-    def _uniform_posterior(self, log_like: np.ndarray, out: np.ndarray) -> None:
-        ok = self._k.posterior_from_log(log_like, self._uniform, self._valid, out)
-        # With a flat prior the best valid bin has weight exactly 1.
-        assert ok
+        if status >= 0:
+            raise self._bad_entry(rows, counts, status)
+        if status == _kernels.STEP_UNDERFLOW:
+            self.underflow_resets += 1
+            # Loud once, then quiet: a pathological stream could repeat this at every step.
+            log = logger.warning if self.underflow_resets == 1 else logger.debug
+            log(
+                "state-space prior underflowed (no prior mass where the spikes point); "
+                "decoding this window with the uniform prior (%d so far)",
+                self.underflow_resets,
+            )
+        # Read-only from here on: the caller gets views of it, and the next
+        # step reads it as the previous posterior.
+        buf.setflags(write=False)
+        if self.transition is not None:
+            self._previous = buf
+        n = self.n_bins
+        # Positional, in field order: keywords cost a microsecond here.
+        return DecodedStep(
+            buf[:n], map_bin, buf[n : n + 2], buf[n + 2 : n + 4], n_hpd * self._bin_size, peak, buf[n + 4 :], n_spikes
+        )

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from decoder.binning import SpikeWindow, StepSchedule, rows_of_units
-from decoder.clock import ClockAligner, ClockMismatchError
+from decoder.clock import ClockAligner, ClockFit, ClockMismatchError
 from decoder.config import ExperimentConfig
 from decoder.decoding import BayesDecoder, DecodedStep
 from decoder.environments import Arena
@@ -175,6 +175,7 @@ class Pipeline:
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
         self._spike_source = config.sources.spikes
+        self._truth_source = config.sources.truth
         self._position_sources = (config.sources.tracker, config.sources.truth)
         self.clock = ClockAligner(config.sources.spikes, tolerance_s=config.sources.clock_tolerance_s)
         self.tracked = TrackHistory()
@@ -425,36 +426,43 @@ class Pipeline:
         return np.array([self._unit_rows.get(int(u), -1) for u in unit_ids], np.int64)
 
     def _on_frames(self, msg: TrackerFrames) -> None:
-        if not self._clock_ready(msg.source):
+        fit = self._clock_fit(msg.source)
+        if fit is None:
             if len(self._pending_frames) >= MAX_PENDING_FRAMES:
                 self.counters["frames_dropped_unaligned"] += msg.t_s.size
                 return
             self._pending_frames.append(msg)
             return
-        self._apply_frames(msg)
+        self._apply_frames(msg, fit)
 
-    def _apply_frames(self, msg: TrackerFrames) -> None:
-        t_ref = self._to_reference(msg.source, msg.t_s)
-        if msg.source == self.config.sources.truth:
-            self.truth.add(t_ref, msg.xy_cm)
+    def _apply_frames(self, msg: TrackerFrames, fit: ClockFit | bool) -> None:
+        """Frames into the tracked (or true) history, on the spike clock (``fit`` True: already on it)."""
+        history = self.truth if msg.source == self._truth_source else self.tracked
+        learning = history is self.tracked and self.state == "learning"
+        if msg.t_s.size == 1 and not learning:
+            # One frame per message is the usual case: Python floats, the same IEEE
+            # operations as ClockFit.to_reference, without numpy's per-call cost.
+            t = msg.t_s.item(0)
+            if fit is not True:
+                t = fit.offset_s + (1.0 + fit.drift_ppm * 1e-6) * t
+            history.add_one(t, msg.xy_cm.item(0), msg.xy_cm.item(1))
             return
-        self.tracked.add(t_ref, msg.xy_cm)
-        if self.state == "learning":
+        t_ref = msg.t_s if fit is True else fit.to_reference(msg.t_s)
+        history.add(t_ref, msg.xy_cm)
+        if learning:
             self.model.update_frames(t_ref, msg.xy_cm)
 
     def _same_clock(self, source: str) -> bool:
-        spikes = self.announced.get(self.config.sources.spikes)
+        spikes = self.announced.get(self._spike_source)
         other = self.announced.get(source)
         # Without announcements both clocks are taken to be one (documented in PROTOCOL.md).
         return spikes is None or other is None or spikes.clock == other.clock
 
-    def _clock_ready(self, source: str) -> bool:
-        return self._same_clock(source) or self.clock.is_aligned(source)
-
-    def _to_reference(self, source: str, t_s: np.ndarray) -> np.ndarray:
+    def _clock_fit(self, source: str) -> ClockFit | bool | None:
+        """True when ``source`` runs on the spike clock, its clock fit when aligned, else None."""
         if self._same_clock(source):
-            return t_s
-        return self.clock.fit(source).to_reference(t_s)
+            return True
+        return self.clock.fit(source)
 
     def _on_sync(self, msg: SyncPulse) -> list[Notice]:
         try:
@@ -465,10 +473,10 @@ class Pipeline:
             self.bank.disarm(t, "clock_mismatch")
             log.error("%s", exc)
             return [Notice("clock_mismatch", t, {"why": str(exc)})]
-        if self._pending_frames and all(self._clock_ready(m.source) for m in self._pending_frames):
+        if self._pending_frames and all(self._clock_fit(m.source) is not None for m in self._pending_frames):
             pending, self._pending_frames = self._pending_frames, []
             for frames in pending:
-                self._apply_frames(frames)
+                self._apply_frames(frames, self._clock_fit(frames.source))
         return []
 
     def _on_spike_source_restart(self) -> list[Notice]:

@@ -47,25 +47,24 @@ class TrackHistory:
 
         Frames not newer than the newest one held are counted and dropped.
         """
-        if t_s.size == 1:
-            self._add_one(t_s.item(0), xy_cm.item(0), xy_cm.item(1))
-        else:
-            for t, (x, y) in zip(t_s.tolist(), xy_cm.tolist()):
-                self._add_one(t, x, y)
-        if len(self._t) > _COMPACT_AT:
-            cut = bisect_left(self._t, self._t[-1] - self.keep_s)
-            if cut:
-                del self._t[:cut], self._x[:cut], self._y[:cut]
+        for t, (x, y) in zip(t_s.tolist(), xy_cm.tolist()):
+            self.add_one(t, x, y)
 
-    def _add_one(self, t: float, x: float, y: float) -> None:
-        if not t > self.newest_t_s:
+    def add_one(self, t_s: float, x_cm: float, y_cm: float) -> None:
+        """Append one frame given as Python floats; the same rules as :meth:`add`."""
+        if not t_s > self.newest_t_s:
             self.out_of_order += 1
             return
-        self.newest_t_s = t
-        if math.isfinite(x) and math.isfinite(y):
-            self._t.append(t)
-            self._x.append(x)
-            self._y.append(y)
+        self.newest_t_s = t_s
+        if math.isfinite(x_cm) and math.isfinite(y_cm):
+            t = self._t
+            t.append(t_s)
+            self._x.append(x_cm)
+            self._y.append(y_cm)
+            if len(t) > _COMPACT_AT:
+                cut = bisect_left(t, t_s - self.keep_s)
+                if cut:
+                    del t[:cut], self._x[:cut], self._y[:cut]
 
     def at(self, t_s: float) -> tuple[np.ndarray, float]:
         """Position (2,) and running speed (cm/s) at ``t_s`` from frames at or before it.

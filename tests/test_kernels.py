@@ -296,3 +296,232 @@ def test_first_bad_entry_twins_agree():
         counts = rng.choice(specials, k) if trial % 3 == 0 else rng.integers(0, 4, k).astype(np.float64)
         # Source: the numpy twin (vectorised comparisons) as reference; both return the first offender.
         assert K.first_bad_entry(rows, counts, 5, 1e6) == K.first_bad_entry_numpy(rows, counts, 5, 1e6), trial
+
+
+# -- fused decoding step ------------------------------------------------------------
+
+_GRID = (60, 16)
+
+
+def _sliding_windows(rng: np.random.Generator, rates: np.ndarray, n_steps: int, per_window: int = 10):
+    """Counts of overlapping windows, each ``per_window`` sub-steps long, moved by one sub-step.
+
+    Consecutive windows share 90% of their spikes, as a 200 ms window moved by 20 ms does,
+    which is what the incremental log-likelihood of decode_step exploits. The spikes follow
+    the rates at a bin that wanders by at most one row or column per sub-step.
+    """
+    ny, nx = _GRID
+    n_units = rates.shape[0]
+    moves = rng.integers(-1, 2, (n_steps + per_window, 2)) * (rng.random((n_steps + per_window, 1)) < 0.1)
+    yx = np.abs(np.cumsum(moves, axis=0) + [ny // 2, nx // 2])
+    yx = np.minimum(yx % (2 * np.array([ny, nx])), 2 * np.array([ny, nx]) - 1 - yx % (2 * np.array([ny, nx])))
+    place = yx[:, 0] * nx + yx[:, 1]
+    sub = rng.poisson(0.02 * rates[:, place].T)  # 20 ms of spikes
+    cum = np.vstack([np.zeros((1, n_units), np.int64), np.cumsum(sub, axis=0)])
+    for k in range(n_steps):
+        counts = cum[k + per_window] - cum[k]
+        rows = np.flatnonzero(counts).astype(np.int64)
+        yield rows, counts[rows].astype(np.float64)
+
+
+def _step_arguments(rng: np.random.Generator, n_units: int, kind: int):
+    ny, nx = _GRID
+    n_bins = ny * nx
+    # Random bumps on a random background (not data): a posterior that covers a few rows.
+    cy, cx = np.divmod(np.arange(n_bins), nx)
+    fy, fx = rng.uniform(0, ny, n_units), rng.uniform(0, nx, n_units)
+    bumps = np.exp(-0.5 * ((cy[None, :] - fy[:, None]) ** 2 + (cx[None, :] - fx[:, None]) ** 2) / 2.0**2)
+    rates = _rates(rng, n_units, n_bins) * 0.3 + 60.0 * bumps
+    valid = np.ones(n_bins, bool)
+    valid[rng.choice(n_bins, 25, replace=False)] = False
+    mask_f = valid.astype(float)
+    kernel = _gauss_kernel(1.5, 6)
+    norm = ndimage.correlate(mask_f.reshape(ny, nx), np.outer(kernel, kernel), mode="constant").ravel()
+    inv_norm = np.where(valid, 1.0 / np.where(valid, norm, 1.0), 0.0)
+    zones = np.zeros((2, n_bins), bool)
+    zones[0, :40] = True
+    zones[1, 200:230] = True
+    model = (
+        1e6,
+        np.log(rates),
+        0.2 * rates.sum(axis=0),
+        valid,
+        mask_f.copy(),
+        kind,
+        ny,
+        nx,
+        kernel,
+        mask_f,
+        inv_norm,
+        np.zeros((1, 1)),
+        cx * 2.0 + 1.0,
+        cy * 2.0 + 1.0,
+        np.array([0, 40, 70], np.int64),
+        np.nonzero(zones)[1].astype(np.int64),
+        0.95,
+    )
+    return rates, model
+
+
+class _StepState:
+    """The arrays decode_step keeps between calls, as BayesDecoder holds them."""
+
+    def __init__(self, n_units: int, n_bins: int, grid_len: int, n_zones: int):
+        self.state = np.array([-1, 0, 0, 0], np.int64)
+        self.unit_counts = np.zeros((3, n_units))
+        self.unit_rows = np.empty(n_units, np.int64)
+        self.log_like = np.empty(n_bins)
+        self.previous = np.zeros(n_bins + 4 + n_zones)
+        self.after = (np.empty(n_bins), np.empty(n_bins), np.zeros(grid_len))
+        self.out_size = n_bins + 4 + n_zones
+
+    def step(self, kernel, rows, counts, model):
+        out = np.empty(self.out_size)
+        result = kernel(
+            rows, counts, *model, self.state, self.unit_counts, self.unit_rows, self.log_like,
+            self.previous, *self.after, out,
+        )  # fmt: skip
+        if result[0] < 0:
+            self.previous = out
+        return result, out
+
+
+def _new_state(model) -> _StepState:
+    ny, nx = _GRID
+    r = model[8].size // 2
+    return _StepState(model[1].shape[0], ny * nx, (2 * ny + 2 * r) * (nx + 2 * r), 2)
+
+
+@pytest.mark.parametrize("kind", [K.NO_TRANSITION, K.GRID_TRANSITION], ids=["uniform", "grid"])
+def test_decode_step_with_incremental_likelihood_matches_the_exact_numpy_twin_over_a_long_run(kind):
+    rng = np.random.default_rng(12)
+    n_units = 200
+    rates, model = _step_arguments(rng, n_units, kind)
+    fast, slow = _new_state(model), _new_state(model)
+    updates_seen = 0
+    worst_drift = 0.0
+    fewest_rows = _GRID[0]
+    for rows, counts in _sliding_windows(rng, rates, 3000):
+        (status_a, map_a, hpd_a, spikes_a, peak_a), a = fast.step(K.decode_step, rows, counts, model)
+        (status_b, map_b, hpd_b, spikes_b, peak_b), b = slow.step(K.decode_step_numpy, rows, counts, model)
+        updates_seen = max(updates_seen, int(fast.state[K.STATE_UPDATES]))
+        fewest_rows = min(fewest_rows, int(fast.state[K.STATE_Y1] - fast.state[K.STATE_Y0] + 1))
+        # The twin recomputes the log-likelihood afresh each window; the kernel mostly updates
+        # the previous one. Drift bound: between two exact computations at most
+        # LIKELIHOOD_REFRESH_STEPS updates, each adding at most n_units products to every bin, each
+        # addition rounding by at most eps times the largest partial sum, itself at most
+        # sum_i n_i |log rate_i| + expected count (Higham 2002, Accuracy and Stability of Numerical
+        # Algorithms, 2nd ed., SIAM, eq. 4.4: |error of a sum| <= (n - 1) eps sum |terms|).
+        scale = float(np.max(counts @ np.abs(model[1][rows]) + model[2])) if rows.size else float(model[2].max())
+        bound = K.LIKELIHOOD_REFRESH_STEPS * (n_units + 1) * np.finfo(float).eps * 2 * scale
+        drift = float(np.max(np.abs(fast.log_like - slow.log_like)))
+        worst_drift = max(worst_drift, drift)
+        assert drift <= bound
+        # Source: the numpy twin. A log-likelihood off by d changes each normalised posterior
+        # value by a factor within exp(+-2d), d < 1e-11 here, so rtol=1e-9 is generous; values
+        # within that of PROB_FLOOR may be floored in one and not the other, hence atol.
+        np.testing.assert_allclose(a, b, rtol=1e-9, atol=2 * K.PROB_FLOOR)
+        assert (status_a, map_a, spikes_a) == (status_b, map_b, spikes_b)
+        # The HPD count changes only if a cumulative sum lands within ~1e-11 of 95%.
+        assert hpd_a == hpd_b
+        assert peak_a == pytest.approx(peak_b, rel=1e-9)
+    # The run did take the incremental path, and the drift stayed far below what a posterior shows;
+    # with the random walk, the posterior was confined to a band of rows at times.
+    assert updates_seen == K.LIKELIHOOD_REFRESH_STEPS
+    assert worst_drift < 1e-10
+    if kind == K.GRID_TRANSITION:
+        assert fewest_rows + 2 * (model[8].size // 2) < _GRID[0]
+
+
+def test_decode_step_is_deterministic_and_refuses_bad_entries_without_touching_its_state():
+    rng = np.random.default_rng(13)
+    rates, model = _step_arguments(rng, 40, K.GRID_TRANSITION)
+    windows = list(_sliding_windows(rng, rates, 300))
+    runs = []
+    for _ in range(2):
+        st = _new_state(model)
+        outs = []
+        for i, (rows, counts) in enumerate(windows):
+            if i == 150:
+                before = (st.state.copy(), st.unit_counts[0].copy(), st.log_like.copy())
+                bad_counts = counts.copy()
+                bad_counts[-1] = 0.5
+                (status, *_), _ = st.step(K.decode_step, rows, bad_counts, model)
+                # Source: the kernel's contract — the index of the first bad entry, state untouched.
+                assert status == rows.size - 1
+                np.testing.assert_array_equal(st.state, before[0])
+                np.testing.assert_array_equal(st.unit_counts[0], before[1])
+                np.testing.assert_array_equal(st.log_like, before[2])
+            outs.append(st.step(K.decode_step, rows, counts, model)[1])
+        runs.append(np.array(outs))
+    # Source: common practice (live runs and replays are compared by a digest of every step) —
+    # the same windows in the same order give the same bits.
+    np.testing.assert_array_equal(runs[0], runs[1])
+
+
+def test_decode_step_starts_afresh_when_asked():
+    rng = np.random.default_rng(14)
+    rates, model = _step_arguments(rng, 40, K.GRID_TRANSITION)
+    windows = list(_sliding_windows(rng, rates, 60))
+    st = _new_state(model)
+    for rows, counts in windows[:40]:
+        st.step(K.decode_step, rows, counts, model)
+    st.state[K.STATE_UPDATES] = -1
+    st.state[K.STATE_HAS_PREVIOUS] = 0
+    fresh = _new_state(model)
+    for rows, counts in windows[40:]:
+        a = st.step(K.decode_step, rows, counts, model)[1]
+        b = fresh.step(K.decode_step, rows, counts, model)[1]
+        # Source: the kernel's contract — after a restart the history before it leaves no trace.
+        np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.parametrize("hpd", HPD)
+def test_hpd_of_concentrated_posteriors_needs_several_passes_and_agrees_with_the_sort(hpd):
+    rng = np.random.default_rng(15)
+    for trial in range(30):
+        n = int(rng.integers(50, 3000))
+        # Values spread over hundreds of decades, as a decoded posterior's are, so that
+        # reaching 99.9999% takes several passes of 2**8 each.
+        p = np.exp(-rng.exponential(rng.choice([5.0, 50.0, 400.0]), n))
+        p /= p.sum()
+        mass = float(rng.choice([0.5, 0.95, 0.999999]))
+        # Source: the numpy twin (full sort + cumulative sum).
+        assert hpd(p, mass, np.empty(n)) == K.hpd_size_numpy(p, mass, None), trial
+
+
+def test_grid_prediction_on_a_posterior_confined_to_a_few_rows():
+    rng = np.random.default_rng(16)
+    ny, nx = 20, 15
+    kernel = _gauss_kernel(1.3, 5)
+    mask = rng.random(ny * nx) < 0.9
+    t = _masked_transition(ny, nx, kernel, mask)
+    mask_f = mask.astype(float)
+    norm = ndimage.correlate(mask_f.reshape(ny, nx), np.outer(kernel, kernel), mode="constant").ravel()
+    inv_norm = np.where(mask, 1.0 / np.where(mask, norm, 1.0), 0.0)
+    for rows in [(0, 1), (7, 9), (18, 20), (0, 20)]:
+        p = np.zeros((ny, nx))
+        p[rows[0] : rows[1]] = rng.random((rows[1] - rows[0], nx))
+        p = p.ravel() * mask
+        p /= p.sum()
+        out = K.predict_grid(p, ny, nx, kernel, mask_f, inv_norm, np.full(ny * nx, np.nan), None)
+        # Source: Markov chain prediction p T with T written out entry by entry (as above); the
+        # kernel's taps are summed in another order than the product's, hence rtol.
+        np.testing.assert_allclose(out, p @ t, rtol=1e-12, atol=1e-18)
+        in_place = p.copy()
+        K.predict_grid(in_place, ny, nx, kernel, mask_f, inv_norm, in_place, None)
+        np.testing.assert_allclose(in_place, p @ t, rtol=1e-12, atol=1e-18)
+
+
+def test_integer_keyed_maxima_equal_numpy_max():
+    rng = np.random.default_rng(17)
+    for n in (1, 7, 8, 9, 1000):
+        a = rng.normal(0, 300, n)
+        a[rng.random(n) < 0.1] = -0.0
+        keep = rng.random(n) < 0.7
+        keep[rng.integers(n)] = True
+        # Source: numpy.max as reference (IEEE 754 ordering of doubles).
+        assert K._max_where(a, keep) == a[keep].max()
+        assert K._max_where(np.full(n, -np.inf), np.ones(n, bool)) == -np.inf
+        b = np.abs(a)
+        assert K._max_nonnegative(b) == b.max()
