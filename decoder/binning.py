@@ -68,7 +68,7 @@ def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
 
 @numba.njit(cache=True)
 def rows_of_units(unit_ids, row_of_id, first_id):
-    """Decoder row of each spike's unit through a lookup table; -1 for a unit the table lacks.
+    """Decoder row of each spike's unit through a lookup table (-1 for a unit the table lacks), and the -1s.
 
     Parameters
     ----------
@@ -79,14 +79,19 @@ def rows_of_units(unit_ids, row_of_id, first_id):
 
     Returns
     -------
-    ndarray of int64, shape (n,)
+    rows : ndarray of int64, shape (n,)
+    n_unknown : int
+        Spikes whose unit the table lacks.
     """
     rows = np.empty(unit_ids.size, np.int64)
     span = row_of_id.size
+    n_unknown = 0
     for i in range(unit_ids.size):
         j = unit_ids[i] - first_id
         rows[i] = row_of_id[j] if 0 <= j < span else -1
-    return rows
+        if rows[i] < 0:
+            n_unknown += 1
+    return rows, n_unknown
 
 
 def rows_of_units_numpy(unit_ids, row_of_id, first_id):
@@ -95,7 +100,7 @@ def rows_of_units_numpy(unit_ids, row_of_id, first_id):
     inside = (j >= 0) & (j < row_of_id.size)
     rows = np.full(unit_ids.size, -1, np.int64)
     rows[inside] = row_of_id[j[inside]]
-    return rows
+    return rows, int(np.count_nonzero(rows < 0))
 
 
 #: Spikes the window's buffer holds before it first grows.
@@ -143,7 +148,7 @@ class SpikeWindow:
         self._t[stop:stop + n] = t_s
         self._row[stop:stop + n] = rows
         self._stop = stop + n
-        if stop > start and t_s[0] < self._t[stop - 1]:
+        if stop > start and t_s.item(0) < self._t.item(stop - 1):
             # Stable, so spikes with equal times keep their arrival order and a
             # replay gives bit-identical windows.
             order = np.argsort(self._t[start:self._stop], kind="stable")

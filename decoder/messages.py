@@ -226,14 +226,37 @@ class TrackerFrames:
         if not self._take_one_frame():
             self._take_frames()
 
-    def _take_one_frame(self) -> bool:
-        """Validate and store a single float64 frame with Python scalars; False if not that case.
+    @classmethod
+    def one(cls, source: str, seq: int, t_s: float, x_cm: float, y_cm: float,
+            quality: int | None = None) -> TrackerFrames:
+        """One frame from Python scalars: what the constructor makes of 1-element arrays, for less.
 
         A tracker sends one frame per message, 30 to 60 times a second, and
-        the general path's dozen numpy calls on 1-element arrays were most of
-        a replay's decoding cost. Anything unusual (other dtypes, several
-        frames, head direction, an invalid value) goes to ``_take_frames``,
-        which gives the same result and the error messages.
+        the wire reader has the values as floats already; building the
+        message from them skips the array checks. Values the one-frame path
+        does not take (an infinite coordinate, a bad quality, ...) go through
+        the constructor, which raises its usual :class:`MessageError`.
+        """
+        if not (
+            type(t_s) is float and type(x_cm) is float and type(y_cm) is float and math.isfinite(t_s)
+            and not math.isinf(x_cm) and not math.isinf(y_cm)
+            and (quality is None or (type(quality) is int and 0 <= quality <= 255))
+        ):
+            q = None if quality is None else np.array([quality])
+            return cls(source, seq, np.array([t_s], np.float64), np.array([[x_cm, y_cm]], np.float64), None, q)
+        self = object.__new__(cls)
+        object.__setattr__(self, "source", _source(source))
+        object.__setattr__(self, "seq", _seq(seq))
+        object.__setattr__(self, "head_dir_rad", None)
+        self._store_one(t_s, x_cm, y_cm, quality)
+        return self
+
+    def _take_one_frame(self) -> bool:
+        """Store a single float64 frame through :meth:`_store_one`; False if not that case.
+
+        Anything unusual (other dtypes, several frames, head direction, an
+        invalid value) goes to ``_take_frames``, which gives the same result
+        and the error messages.
         """
         t, xy, q = self.t_s, self.xy_cm, self.quality
         if not (
@@ -243,28 +266,26 @@ class TrackerFrames:
             and (q is None or (type(q) is np.ndarray and q.shape == (1,) and q.dtype == _U8))
         ):
             return False
-        x, y = xy.item(0), xy.item(1)
-        if not math.isfinite(t.item(0)) or math.isinf(x) or math.isinf(y):
+        t_s, x, y = t.item(0), xy.item(0), xy.item(1)
+        if not math.isfinite(t_s) or math.isinf(x) or math.isinf(y):
             return False
-        seen = x == x and y == y
-        quality = (1 if seen else 0) if q is None else q.item(0)
-        # Arrays read off the wire are read-only already and can be kept as they are.
-        if t.flags.writeable:
-            t = t.copy()
-            t.setflags(write=False)
-        if quality == 0 or not seen:
-            xy = np.full((1, 2), np.nan)
-            xy.setflags(write=False)
-            quality = 0
-        elif xy.flags.writeable or not xy.flags.c_contiguous:
-            xy = xy.copy()
-            xy.setflags(write=False)
-        if q is None or q.flags.writeable or q.item(0) != quality:
-            q = SINGLE_FRAME_QUALITY[quality]
-        object.__setattr__(self, "t_s", t)
-        object.__setattr__(self, "xy_cm", xy)
-        object.__setattr__(self, "quality", q)
+        self._store_one(t_s, x, y, None if q is None else q.item(0))
         return True
+
+    def _store_one(self, t_s: float, x_cm: float, y_cm: float, quality: int | None) -> None:
+        """Store one checked frame (finite time, finite or NaN coordinates, quality 0..255 or None)."""
+        seen = x_cm == x_cm and y_cm == y_cm
+        if quality is None:
+            quality = 1 if seen else 0
+        if quality == 0 or not seen:
+            x_cm = y_cm = math.nan
+            quality = 0
+        # One read-only buffer for time and position: numpy's constructors cost more than the checks.
+        txy = np.array((t_s, x_cm, y_cm))
+        txy.setflags(write=False)
+        object.__setattr__(self, "t_s", txy[:1])
+        object.__setattr__(self, "xy_cm", txy[1:].reshape(1, 2))
+        object.__setattr__(self, "quality", SINGLE_FRAME_QUALITY[quality])
 
     def _take_frames(self) -> None:
         t = _vector("t_s", self.t_s, np.float64)

@@ -359,7 +359,7 @@ class Pipeline:
 
     def _on_spike_source(self, msg: InputMessage) -> list[StepOutput | Notice]:
         if isinstance(msg, SpikeBatch):
-            newest = float(msg.t_s[-1]) if msg.t_s.size else -math.inf
+            newest = msg.t_s.item(-1) if msg.t_s.size else -math.inf
         elif isinstance(msg, Heartbeat):
             newest = msg.t_s
         else:
@@ -372,7 +372,6 @@ class Pipeline:
                 msg.source, newest, newest - self.spike_watermark_s, MAX_TIME_JUMP_S,
             )
             return []
-        out: list[StepOutput | Notice] = []
         previous = self.spike_watermark_s
         if newest > self.spike_watermark_s:
             self.spike_watermark_s = newest
@@ -380,11 +379,14 @@ class Pipeline:
             self.schedule.start_at(self.spike_watermark_s)
         if self.state == "learning" and self._learn_started_s is None:
             self._learn_started_s = self.spike_watermark_s
-        out.extend(self._run_plan())
+        out = self._run_plan() if not self._plan_done else []
         if isinstance(msg, SpikeBatch) and msg.t_s.size:
             self._take_spikes(msg)
         if self.state == "decoding":
-            out.extend(self._close_steps(previous))
+            steps = self._close_steps(previous)
+            if not out:
+                return steps
+            out.extend(steps)
         elif self.state == "learning" and self.spike_watermark_s >= self._next_progress_s:
             out.append(self._learning_progress())
         return out
@@ -406,24 +408,26 @@ class Pipeline:
             return
         if self.state != "decoding":
             return
-        rows = self._rows_of(msg.unit_id)
+        rows, n_unknown = self._rows_of(msg.unit_id)
         t = msg.t_s
-        if rows.min() < 0:
+        if n_unknown:
             known = rows >= 0
-            self.counters["unknown_units"] += int(rows.size - np.count_nonzero(known))
+            self.counters["unknown_units"] += n_unknown
             t = t[known]
             rows = rows[known]
         next_k = self.schedule.next_k
         # Times are sorted (checked in SpikeBatch), so the first one tells whether any is late.
-        if next_k is not None and t.size and t[0] <= self.schedule.step_end_s(next_k - 1):
+        if next_k is not None and t.size and t.item(0) <= self.schedule.step_end_s(next_k - 1):
             late = t <= self.schedule.step_end_s(next_k - 1)
             self.counters["late_spikes"] += int(np.count_nonzero(late))
         self.window.add(t, rows)
 
-    def _rows_of(self, unit_ids: np.ndarray) -> np.ndarray:
+    def _rows_of(self, unit_ids: np.ndarray) -> tuple[np.ndarray, int]:
+        """Decoder row of each spike's unit (-1 for a unit the model lacks), and how many are -1."""
         if self._unit_lut is not None:
             return rows_of_units(unit_ids, self._unit_lut, self._unit_lut_offset)
-        return np.array([self._unit_rows.get(int(u), -1) for u in unit_ids], np.int64)
+        rows = np.array([self._unit_rows.get(int(u), -1) for u in unit_ids], np.int64)
+        return rows, int(np.count_nonzero(rows < 0))
 
     def _on_frames(self, msg: TrackerFrames) -> None:
         fit = self._clock_fit(msg.source)
@@ -533,26 +537,19 @@ class Pipeline:
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
         spike_lag = t - previous_watermark_s if math.isfinite(previous_watermark_s) else 0.0
         tracker_lag = t - self.tracked.newest_t_s if math.isfinite(self.tracked.newest_t_s) else 0.0
-        events = tuple(
-            self.bank.step(
-                StepInput(
-                    t_s=t,
-                    zone_mass=step.zone_mass,
-                    map_zone=map_zone,
-                    tracked_xy_cm=tracked_xy,
-                    tracked_in_zone=in_zone,
-                    tracked_speed_cm_s=speed,
-                    stream_lag_s=max(spike_lag, tracker_lag, 0.0),
-                )
-            )
-        )
+        # Positional, in field order: keywords cost a microsecond at every step.
+        lag = max(spike_lag, tracker_lag, 0.0)
+        events = tuple(self.bank.step(StepInput(t, step.zone_mass, map_zone, tracked_xy, in_zone, speed, lag)))
         self.visits.step(t, true_in_zone)
         for ev in events:
             self.visits.event(ev.t_s, self.zone_names.index(ev.zone))
-        false_events = tuple(self._is_false(ev, true_xy) for ev in events)
-        self.counters["decode_steps"] += 1
-        self.counters["events"] += len(events)
-        self.counters["false_events"] += sum(false_events)
+        counters = self.counters
+        counters["decode_steps"] += 1
+        false_events = ()
+        if events:
+            false_events = tuple(self._is_false(ev, true_xy) for ev in events)
+            counters["events"] += len(events)
+            counters["false_events"] += sum(false_events)
         self._update_digest(k, step, events)
         return StepOutput(k, t, step, tracked_xy, true_xy, speed, error, events, false_events, self.bank.armed)
 

@@ -32,7 +32,6 @@ import numpy as np
 from decoder.messages import (
     CONTROL_COMMANDS,
     MAX_BATCH,
-    SINGLE_FRAME_QUALITY,
     SOURCE_KINDS,
     ControlCommand,
     Heartbeat,
@@ -384,10 +383,7 @@ def _one_frame(m: dict) -> TrackerFrames | None:
     (t_s,), (x_cm,), (y_cm,) = _F64_ONE.unpack(t), _F64_ONE.unpack(x), _F64_ONE.unpack(y)
     if not math.isfinite(t_s) or math.isinf(x_cm) or math.isinf(y_cm):
         return None
-    # One buffer for the three values: numpy's constructors cost more than the frame's checks.
-    txy = np.frombuffer(t + x + y, dtype=_F64)
-    quality = SINGLE_FRAME_QUALITY[q[0]] if "q" in m else None
-    return TrackerFrames(m["src"], m["seq"], txy[:1], txy[1:].reshape(1, 2), None, quality)
+    return TrackerFrames.one(m["src"], m["seq"], t_s, x_cm, y_cm, q[0] if "q" in m else None)
 
 
 def _decode_heartbeat(m: dict) -> Heartbeat:

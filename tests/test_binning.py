@@ -109,6 +109,8 @@ def test_rows_of_units_kernel_matches_its_numpy_twin():
 
     table = np.array([3, -1, 0, 1, -1, 2], np.int64)      # units 10..15
     ids = np.array([10, 11, 12, 9, 16, 15, 13, -4, 10], np.int64)
-    np.testing.assert_array_equal(rows_of_units(ids, table, 10), rows_of_units_numpy(ids, table, 10))
-    assert rows_of_units(ids, table, 10).tolist() == [3, -1, 0, -1, -1, 2, 1, -1, 3]
-    assert rows_of_units(np.zeros(0, np.int64), table, 10).size == 0
+    rows, n_unknown = rows_of_units(ids, table, 10)
+    twin_rows, twin_unknown = rows_of_units_numpy(ids, table, 10)
+    np.testing.assert_array_equal(rows, twin_rows)
+    assert rows.tolist() == [3, -1, 0, -1, -1, 2, 1, -1, 3] and n_unknown == twin_unknown == 4
+    assert rows_of_units(np.zeros(0, np.int64), table, 10)[0].size == 0

@@ -116,3 +116,23 @@ def test_spike_batch_keeps_wire_arrays_and_widens_int32_ids():
     assert batch.t_s is t                       # read-only float64 off the wire: kept as it is
     assert batch.unit_id.dtype == np.int64 and batch.unit_id.tolist() == [3, 4]
     assert not batch.unit_id.flags.writeable
+
+
+@pytest.mark.parametrize(
+    "t, x, y, q",
+    [(1.0, 2.0, 3.0, None), (1.0, 2.0, 3.0, 9), (1.0, np.nan, 3.0, None), (1.0, 2.0, 3.0, 0), (1.0, np.nan, 3.0, 7)],
+)
+def test_one_frame_from_scalars_equals_the_constructor(t, x, y, q):
+    a = TrackerFrames.one("tracker", 3, t, x, y, q)
+    b = TrackerFrames("tracker", 3, np.array([t]), np.array([[x, y]]), None, None if q is None else np.array([q]))
+    for name in ("t_s", "xy_cm", "quality"):
+        u, v = getattr(a, name), getattr(b, name)
+        np.testing.assert_array_equal(u, v)
+        assert u.dtype == v.dtype and u.shape == v.shape and not u.flags.writeable
+    assert (a.source, a.seq, a.head_dir_rad) == (b.source, b.seq, b.head_dir_rad)
+
+
+@pytest.mark.parametrize("t, x, q", [(np.inf, 1.0, None), (1.0, np.inf, None), (1.0, 1.0, 300), (1.0, 1.0, -1)])
+def test_one_frame_from_scalars_refuses_what_the_constructor_refuses(t, x, q):
+    with pytest.raises(MessageError):
+        TrackerFrames.one("tracker", 3, t, x, 2.0, q)
