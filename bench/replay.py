@@ -183,7 +183,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--learn-s", type=float, default=300.0, help="seconds the replay learns from before decoding")
     parser.add_argument("--sweep-session-s", type=float, default=None,
                         help="length of the session each sweep replay runs (default 180)")
-    parser.add_argument("--repeats", type=int, default=None, help="sweep repeats per worker count (default 3)")
+    parser.add_argument("--repeats", type=int, default=None, help="sweep repeats per worker count (default 5)")
     parser.add_argument("--replay-repeats", type=int, default=1, help="repeats of the long replay (default 1)")
     parser.add_argument("--top", type=int, default=15, help="functions to show from the profile")
     args = parser.parse_args(argv)
@@ -191,7 +191,7 @@ def main(argv: list[str] | None = None) -> int:
     learn_s = min(args.learn_s, session_s / 3)
     sweep_session_s = args.sweep_session_s or (90.0 if args.quick else 180.0)
     sweep_learn_s = sweep_session_s / 3
-    repeats = args.repeats or (1 if args.quick else 3)
+    repeats = args.repeats or (1 if args.quick else 5)
     cores = default_workers()
 
     with tempfile.TemporaryDirectory(prefix="placeloop-bench-replay-") as tmp:
