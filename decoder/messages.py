@@ -106,6 +106,14 @@ def _source(source: Any) -> str:
     return source
 
 
+def _check_source_seq(msg: Any) -> None:
+    """Check a message's ``source`` and ``seq`` where they stand; ``seq`` becomes a Python int."""
+    _source(msg.source)
+    seq = msg.seq
+    if type(seq) is not int or seq < 0:
+        object.__setattr__(msg, "seq", _seq(seq))
+
+
 def _seq(seq: Any) -> int:
     if type(seq) is int and seq >= 0:
         return seq
@@ -176,8 +184,7 @@ class SpikeBatch:
     unit_id: np.ndarray
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
+        _check_source_seq(self)
         t = self.t_s if _is_ready_vector(self.t_s, _F64) else _vector("t_s", self.t_s, np.float64)
         u = self.unit_id
         if not _is_ready_vector(u, _I64):
@@ -221,8 +228,7 @@ class TrackerFrames:
     quality: np.ndarray | None = None
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
+        _check_source_seq(self)
         if not self._take_one_frame():
             self._take_frames()
 

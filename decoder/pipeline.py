@@ -528,12 +528,18 @@ class Pipeline:
         t = self.schedule.step_end_s(k)
         rows, counts = self.window.counts(t)
         step = self.decoder.decode(rows, counts)
-        tracked_xy, speed = self.tracked.at(t)
-        true_xy, _ = self.truth.at(t) if self.config.sources.truth else (tracked_xy, speed)
-        error = self._error_cm(step.map_xy_cm, true_xy)
+        x, y, speed = self.tracked.at_xy(t)
+        tracked_xy = np.array((x, y))
+        in_zone_flags = self._zone_flags(x, y)
+        if self._truth_source:
+            x, y, _ = self.truth.at_xy(t)
+            true_xy = np.array((x, y))
+            true_in_zone = self._zone_flags(x, y)
+        else:
+            true_xy, true_in_zone = tracked_xy, in_zone_flags
+        error = self._error_cm(step.map_xy_cm, x, y, true_xy)
         self.errors.add(error)
-        in_zone = self._in_zones(tracked_xy)
-        true_in_zone = in_zone if true_xy is tracked_xy else self._in_zones(true_xy)
+        in_zone = np.array(in_zone_flags, bool)
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
         spike_lag = t - previous_watermark_s if math.isfinite(previous_watermark_s) else 0.0
         tracker_lag = t - self.tracked.newest_t_s if math.isfinite(self.tracked.newest_t_s) else 0.0
@@ -553,12 +559,13 @@ class Pipeline:
         self._update_digest(k, step, events)
         return StepOutput(k, t, step, tracked_xy, true_xy, speed, error, events, false_events, self.bank.armed)
 
-    def _in_zones(self, xy: np.ndarray) -> np.ndarray:
-        x, y = xy.tolist()
-        return np.array([z.contains_point(x, y, self.environment) for z in self.config.zones], bool)
+    def _zone_flags(self, x_cm: float, y_cm: float) -> list[bool]:
+        """Whether the position lies in each zone (False for a NaN position)."""
+        env = self.environment
+        return [z.contains_point(x_cm, y_cm, env) for z in self.config.zones]
 
-    def _error_cm(self, map_xy: np.ndarray, true_xy: np.ndarray) -> float:
-        tx, ty = true_xy.tolist()
+    def _error_cm(self, map_xy: np.ndarray, tx: float, ty: float, true_xy: np.ndarray) -> float:
+        """Distance from the MAP to the true position ``(tx, ty)`` (also given as ``true_xy`` (2,)); NaN if unknown."""
         if not (math.isfinite(tx) and math.isfinite(ty)):
             return float("nan")
         if self._euclidean:

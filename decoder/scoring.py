@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -30,14 +31,15 @@ class ErrorHistogram:
 
     def __init__(self, resolution_cm: float = 0.05, max_cm: float = 2000.0) -> None:
         self.resolution_cm = float(resolution_cm)
-        self._counts = np.zeros(int(math.ceil(max_cm / resolution_cm)) + 1, np.int64)
+        # A list: one increment per decoded step, where numpy's item access costs more than the work.
+        self._counts = [0] * (int(math.ceil(max_cm / resolution_cm)) + 1)
         self.n = 0
         self.total_cm = 0.0
 
     def add(self, error_cm: float) -> None:
         if not math.isfinite(error_cm):
             return
-        i = min(int(error_cm / self.resolution_cm), self._counts.size - 1)
+        i = min(int(error_cm / self.resolution_cm), len(self._counts) - 1)
         self._counts[i] += 1
         self.n += 1
         self.total_cm += error_cm
@@ -92,11 +94,12 @@ class VisitScore:
     _open: list[_Visit] = field(default_factory=list)
     _pending_events: list[tuple[float, int]] = field(default_factory=list)
 
-    def step(self, t_s: float, in_zone: np.ndarray) -> None:
-        """The animal's in-zone flags (n_zones,) at step time ``t_s``; unknown position: all False."""
+    def step(self, t_s: float, in_zone: Any) -> None:
+        """The animal's in-zone flags (a sequence of n_zones bools) at step time ``t_s``; unknown position: all False."""
         if self._inside is None:
             self._inside = [False] * self.n_zones
-        for z, now in enumerate(np.asarray(in_zone, bool).tolist()):
+        for z, flag in enumerate(in_zone):
+            now = bool(flag)
             if now and not self._inside[z]:
                 visit = _Visit(z, t_s)
                 # Events that came shortly before the entry belong to it.

@@ -71,13 +71,18 @@ class TrackHistory:
 
         NaN when the newest such frame is older than ``max_age_s``.
         """
+        x, y, speed = self.at_xy(t_s)
+        return np.array((x, y)), speed
+
+    def at_xy(self, t_s: float) -> tuple[float, float, float]:
+        """:meth:`at` as three Python floats ``(x_cm, y_cm, speed_cm_s)``, for callers that want scalars."""
         t = self._t
         i = bisect_right(t, t_s) - 1
         if i < 0 or t_s - t[i] > self.max_age_s:
-            return np.full(2, np.nan), math.nan
+            return math.nan, math.nan, math.nan
         t_i = t[i]
         j = bisect_left(t, t_i - self.speed_window_s, 0, i)
         x_i, y_i = self._x[i], self._y[i]
         dt = t_i - t[j]
         speed = math.hypot(x_i - self._x[j], y_i - self._y[j]) / dt if dt > 0 else math.nan
-        return np.array((x_i, y_i)), speed
+        return x_i, y_i, speed

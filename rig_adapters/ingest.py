@@ -50,7 +50,7 @@ class Ingest:
             self.pipeline.count_bad_message(exc.reason)
             log.warning("bad rig message (%s): %s", exc.reason, exc.detail)
             return []
-        if isinstance(msg, ControlCommand):
+        if type(msg) is ControlCommand:
             # Control belongs on the control socket; a rig cannot arm the loop.
             self.pipeline.count_bad_message("unknown_kind")
             log.warning("refused a control command that came on the rig stream from %r", msg.source)
