@@ -184,7 +184,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--sweep-session-s", type=float, default=None,
                         help="length of the session each sweep replay runs (default 180)")
     parser.add_argument("--repeats", type=int, default=None, help="sweep repeats per worker count (default 5)")
-    parser.add_argument("--replay-repeats", type=int, default=1, help="repeats of the long replay (default 1)")
+    parser.add_argument("--replay-repeats", type=int, default=3, help="repeats of the long replay (default 3)")
     parser.add_argument("--top", type=int, default=15, help="functions to show from the profile")
     args = parser.parse_args(argv)
     session_s = args.session_s or (300.0 if args.quick else 1800.0)
@@ -252,7 +252,11 @@ def main(argv: list[str] | None = None) -> int:
     print(f"{'':44s}{'wall s':>10s}{'x real time':>14s}")
     print(f"{'read the log only (floor, median of 3)':44s}{floor_s:10.2f}{session_s / floor_s:14.0f}")
     print(f"{'replay, one core (median of ' + str(len(replays)) + ')':44s}{wall_s:10.2f}{x_realtime:14.0f}")
-    phase = phases[len(phases) // 2]
+    if len(replays) > 1:
+        each = ", ".join(f"{session_s / r.wall_s:.0f}x" for r in replays)
+        print(f"  each replay: {each}")
+    # The phases of the median replay.
+    phase = sorted(phases, key=lambda p: p.learning_wall_s + p.decoding_wall_s)[len(phases) // 2]
     decode_phase = phase.decoded_data_s / phase.decoding_wall_s if phase.decoding_wall_s > 0 else None
     learn_phase = learn_s / phase.learning_wall_s if phase.learning_wall_s > 0 else None
     per_step = summary["latency_stages_ms"]["decode_per_step"]
