@@ -148,7 +148,8 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
                 on_output(out)
         if keep_steps:
             result.steps.extend(steps)
-        result.notices.extend(o for o in outputs if isinstance(o, Notice))
+        if len(steps) < len(outputs):
+            result.notices.extend(o for o in outputs if isinstance(o, Notice))
     result.records_read = n_read
     result.wall_s = clock() - started
     result.clean_close = reader.clean_close

@@ -18,9 +18,11 @@ numbers:
     heartbeats at the end of every chunk. Its clock is data time.
 ``"tracker"`` (kind ``tracker``, clock ``"camera"``)
     Noisy frames at ``tracker_rate_hz`` with lost frames and short dropouts,
-    the same sync pulses, and heartbeats; all its times run on the camera's
-    clock, which is offset and drifts against the acquisition clock, so the
-    receiver must align the two from the sync pulses.
+    and the same sync pulses; all its times run on the camera's clock, which
+    is offset and drifts against the acquisition clock, so the receiver must
+    align the two from the sync pulses. Like a real camera it sends no
+    heartbeats (its frames tell its progress, and the protocol asks
+    heartbeats of spike sources only) unless ``position_heartbeats`` is set.
 ``"truth"`` (kind ``tracker``, clock ``"acquisition"``)
     The noise-free position, for scoring decoding errors and false triggers;
     never for decoding.
@@ -89,6 +91,10 @@ class SimulationSettings:
 
     #: Length of one generated chunk, and the interval between heartbeats (s).
     tick_s: float = 0.02
+    #: Whether the tracker and the truth stream also send a heartbeat at the end of every chunk.
+    #: The protocol asks heartbeats of spike sources only and placeloop ignores the others, so a
+    #: real tracker sends none; they are here to measure a rig that sends them anyway.
+    position_heartbeats: bool = False
     #: Mean running speed (cm/s); 15-25 cm/s for a foraging mouse or rat (common practice).
     mean_speed_cm_s: float = 20.0
     #: Correlation time of the running velocity in an open field (s).
@@ -157,11 +163,15 @@ class SimulationSettings:
         "grid_peak_hz", "nonspatial_rate_hz", "dropout_duration_s", "sync_interval_s",
     )
     _COUNTS: ClassVar[tuple[str, ...]] = ("n_place_cells", "n_grid_cells", "n_nonspatial_cells", "units_per_tetrode")
+    _FLAGS: ClassVar[tuple[str, ...]] = ("position_heartbeats",)
 
     def __post_init__(self) -> None:
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
-            if f.name in self._RANGES:
+            if f.name in self._FLAGS:
+                if not isinstance(value, bool):
+                    raise ValueError(f"{f.name} must be true or false, got {value!r}")
+            elif f.name in self._RANGES:
                 object.__setattr__(self, f.name, self._read_range(f.name, value))
             elif f.name in self._COUNTS:
                 if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
@@ -655,7 +665,8 @@ class SimulatedSession:
 
         The first chunk holds the three source announcements (``t_end_s`` 0);
         each later one covers one tick of acquisition time and ends with a
-        heartbeat from every source.
+        heartbeat from the spike source (and from the tracker and the truth
+        stream with ``position_heartbeats``).
 
         Parameters
         ----------
@@ -723,8 +734,8 @@ class SimulatedSession:
         frame_t_acq, frame_t_trk, frame_xy, frame_q = self._tracker_frames(t0, t1, position)
         if pulse_t is not None:
             pulse_trk_t = float(self._truth.tracker_time_s(pulse_t)) + self._rng.normal(0.0, s.sync_jitter_s)
-            # Jitter must not carry the pulse past a heartbeat, which promises
-            # that everything before it has been sent.
+            # Jitter must not carry the pulse past the chunk's end, where a
+            # heartbeat (if sent) promises that everything before it has been sent.
             lo, hi = self._truth.tracker_time_s(np.array([t0, t1]))
             pulse_trk_t = min(max(pulse_trk_t, float(lo)), float(np.nextafter(hi, -np.inf)))
         else:
@@ -741,7 +752,8 @@ class SimulatedSession:
             msg = self._message(TrackerFrames, TRACKER_SOURCE, t_s=frame_t_trk[before:], xy_cm=frame_xy[before:],
                                 quality=frame_q[before:])
             tracker.append((float(frame_t_acq[before]), msg))
-        tracker.append((t1, self._message(Heartbeat, TRACKER_SOURCE, t_s=float(self._truth.tracker_time_s(t1)))))
+        if s.position_heartbeats:
+            tracker.append((t1, self._message(Heartbeat, TRACKER_SOURCE, t_s=float(self._truth.tracker_time_s(t1)))))
 
         truth: list[tuple[float, InputMessage]] = []
         j0, j1 = self._next_truth, int(math.ceil(t1 * s.tracker_rate_hz - 1e-9))
@@ -751,7 +763,8 @@ class SimulatedSession:
             msg = self._message(TrackerFrames, TRUTH_SOURCE, t_s=t, xy_cm=xy, quality=np.full(t.size, 255))
             truth.append((float(t[0]), msg))
         self._next_truth = max(j1, j0)
-        truth.append((t1, self._message(Heartbeat, TRUTH_SOURCE, t_s=t1)))
+        if s.position_heartbeats:
+            truth.append((t1, self._message(Heartbeat, TRUTH_SOURCE, t_s=t1)))
 
         merged = heapq.merge(ephys, tracker, truth, key=lambda item: item[0])
         return Chunk(t1, tuple(msg for _, msg in merged))

@@ -9,6 +9,7 @@ damage and say where.
 import json
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -121,3 +122,16 @@ def test_replaying_twice_is_deterministic_and_overrides_are_validated(recorded):
     with pytest.raises(ConfigError, match="min_mass"):
         with_overrides(config, {"rules.min_mass": 1.5})
     assert load_config(log_dir / "config.toml").decoder == config.decoder
+
+
+def test_heartbeats_from_the_position_sources_change_nothing_decoded(recorded, tmp_path):
+    # PROTOCOL.md asks heartbeats of spike sources only; a rig whose tracker sends them
+    # anyway must decode to the same steps and events (the digest covers both).
+    config, log_dir = recorded
+    doc = tomllib.loads(config.source_text)
+    doc["simulation"]["position_heartbeats"] = True
+    chatty = record_simulated_session(parse_config(tomli_w.dumps(doc)), tmp_path / "chatty", until_s=70.0, seed=4)
+    quiet, loud = replay_session(log_dir), replay_session(chatty)
+    assert loud.records_read > quiet.records_read
+    assert loud.summary["decode"]["digest"] == quiet.summary["decode"]["digest"]
+    assert loud.summary["decode"]["steps"] == quiet.summary["decode"]["steps"] > 0

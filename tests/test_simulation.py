@@ -276,7 +276,19 @@ def test_each_source_is_in_data_time_order_with_consecutive_seq(arena_run):
         times = np.concatenate([np.atleast_1d(m.t_s) for m in own if not isinstance(m, SourceAnnounce)])
         assert np.all(np.diff(times) >= 0), source
     kinds = {(type(m), m.source) for m in messages}
-    assert {(Heartbeat, s) for s in (SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE)} <= kinds
+    # Heartbeats come from the spike source only: PROTOCOL.md asks them of spike sources.
+    assert (Heartbeat, SPIKE_SOURCE) in kinds
+    assert not {(Heartbeat, s) for s in (TRACKER_SOURCE, TRUTH_SOURCE)} & kinds
+
+
+def test_position_heartbeats_come_when_asked():
+    settings = dataclasses.replace(SETTINGS, position_heartbeats=True)
+    chunks = list(SimulatedSession(TRACK, settings, seed=3).chunks(until_s=0.2))
+    for chunk in chunks[1:]:
+        beats = {m.source for m in chunk.messages if isinstance(m, Heartbeat)}
+        assert beats == {SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE}
+    with pytest.raises(ValueError, match="position_heartbeats"):
+        SimulationSettings.from_dict({"position_heartbeats": 1})
 
 
 def test_heartbeats_every_tick_and_generation_in_chunks():
