@@ -436,10 +436,11 @@ def pool_context():
     """The multiprocessing context the local runner's worker processes come from."""
     # A fork server starts clean (no threads inherited from the caller, e.g. a
     # Dask client or a test runner) and forks each worker with placeloop
-    # already imported, so workers start in milliseconds.
+    # already imported and its kernels loaded (rig_adapters.sweep_worker), so
+    # workers start in milliseconds and their first replay runs warm.
     if "forkserver" in multiprocessing.get_all_start_methods():
         ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["rig_adapters.replay"])
+        ctx.set_forkserver_preload(["rig_adapters.replay", "rig_adapters.sweep_worker"])
         return ctx
     return multiprocessing.get_context("spawn")
 
