@@ -109,7 +109,7 @@ _F64 = np.dtype("<f8")
 _F32 = np.dtype("<f4")
 _U8 = np.dtype("<u1")
 _INT_BY_WIDTH = {4: np.dtype("<i4"), 8: np.dtype("<i8")}
-_F64_ONE = struct.Struct("<d")
+_F64_THREE = struct.Struct("<3d")
 _INT32 = np.iinfo(np.int32)
 _INT64_MAX = np.iinfo(np.int64).max
 
@@ -381,7 +381,7 @@ def _one_frame(m: dict) -> TrackerFrames | None:
         and len(t) == 8 and len(x) == 8 and len(y) == 8 and len(q) == 1 and "hd" not in m
     ):
         return None
-    (t_s,), (x_cm,), (y_cm,) = _F64_ONE.unpack(t), _F64_ONE.unpack(x), _F64_ONE.unpack(y)
+    t_s, x_cm, y_cm = _F64_THREE.unpack(t + x + y)
     if not math.isfinite(t_s) or math.isinf(x_cm) or math.isinf(y_cm):
         return None
     return TrackerFrames.one(m["src"], m["seq"], t_s, x_cm, y_cm, q[0] if "q" in m else None)
