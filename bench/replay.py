@@ -152,7 +152,6 @@ class PhaseClock:
     def __init__(self) -> None:
         self.started = time.perf_counter()
         self.first_step_wall: float | None = None
-        self.first_step_t_s: float | None = None
         self.learning_wall_s = 0.0
         self.decoding_wall_s = 0.0
         self.decoded_data_s = 0.0
@@ -160,7 +159,6 @@ class PhaseClock:
     def see(self, output: object) -> None:
         if self.first_step_wall is None and isinstance(output, StepOutput):
             self.first_step_wall = time.perf_counter()
-            self.first_step_t_s = output.t_s
 
     def finish(self, result) -> None:
         ended = self.started + result.wall_s

@@ -337,22 +337,12 @@ def posterior_from_log(log_like, prior, valid, out):
         is: the scaled evidence fell below ``MIN_EVIDENCE``. ``out`` is then
         meaningless and the caller must use another prior.
     """
-    n_bins = out.shape[0]
-    best = -np.inf
-    for j in range(n_bins):
-        if valid[j] and log_like[j] > best:
-            best = log_like[j]
-    # Branch-free so that the loop vectorises: the floor is applied after the
-    # exp, which is evaluated on a clamped argument.
-    for j in range(n_bins):
-        d = log_like[j] - best
-        e = _exp_nonpositive(max(d, LOG_WEIGHT_FLOOR))
-        out[j] = prior[j] * e if (valid[j] and d > LOG_WEIGHT_FLOOR) else 0.0
-    total = _sum(out)
+    # The same steps as decode_step's: best valid bin, weights, normalisation.
+    total = _weigh(log_like, _max_where(log_like, valid), prior, valid, out)
     if not total >= MIN_EVIDENCE:
         return False
     inv = 1.0 / total
-    for j in range(n_bins):
+    for j in range(out.shape[0]):
         v = out[j] * inv
         out[j] = v if v >= PROB_FLOOR else 0.0
     return True

@@ -150,8 +150,7 @@ class SourceAnnounce:
     unit_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
+        _check_source_seq(self)
         if self.kind not in SOURCE_KINDS:
             raise MessageError(f"kind must be one of {SOURCE_KINDS}, got {self.kind!r}")
         if not isinstance(self.clock, str) or not self.clock:
@@ -341,18 +340,14 @@ class Heartbeat:
     t_s: float
 
     def __post_init__(self) -> None:
-        source, seq, t = self.source, self.seq, self.t_s
-        # Half of all messages are heartbeats: the usual exact types need no conversion.
-        if type(source) is str and 0 < len(source) <= 64 and type(seq) is int and seq >= 0 and type(t) is float:
-            if not math.isfinite(t):
-                raise MessageError("heartbeat t_s must be finite")
-            return
-        object.__setattr__(self, "source", _source(source))
-        object.__setattr__(self, "seq", _seq(seq))
-        t = float(t)
+        _check_source_seq(self)
+        t = self.t_s
+        # Half of all messages are heartbeats: a float, the usual type, needs no conversion.
+        if type(t) is not float:
+            t = float(t)
+            object.__setattr__(self, "t_s", t)
         if not math.isfinite(t):
             raise MessageError("heartbeat t_s must be finite")
-        object.__setattr__(self, "t_s", t)
 
 
 @dataclass(frozen=True, slots=True)
@@ -368,8 +363,7 @@ class SyncPulse:
     pulse_id: int
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
+        _check_source_seq(self)
         t = float(self.t_s)
         if not math.isfinite(t):
             raise MessageError("sync t_s must be finite")
@@ -404,8 +398,7 @@ class ControlCommand:
     args: dict = field(default_factory=dict)
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "source", _source(self.source))
-        object.__setattr__(self, "seq", _seq(self.seq))
+        _check_source_seq(self)
         if self.command not in CONTROL_COMMANDS:
             raise MessageError(f"command must be one of {CONTROL_COMMANDS}, got {self.command!r}")
         if not isinstance(self.args, dict):

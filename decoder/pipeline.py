@@ -542,7 +542,7 @@ class Pipeline:
             true_in_zone = self._zone_flags(x, y)
         else:
             true_xy, true_in_zone = tracked_xy, in_zone_flags
-        error = self._error_cm(step.map_xy_cm, x, y, true_xy)
+        error = self._error_cm(step.map_xy_cm, x, y)
         self.errors.add(error)
         in_zone = np.array(in_zone_flags, bool)
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
@@ -569,15 +569,15 @@ class Pipeline:
         env = self.environment
         return [z.contains_point(x_cm, y_cm, env) for z in self.config.zones]
 
-    def _error_cm(self, map_xy: np.ndarray, tx: float, ty: float, true_xy: np.ndarray) -> float:
-        """Distance from the MAP to the true position ``(tx, ty)`` (also given as ``true_xy`` (2,)); NaN if unknown."""
+    def _error_cm(self, map_xy: np.ndarray, tx: float, ty: float) -> float:
+        """Distance from the MAP to the true position ``(tx, ty)``; NaN if unknown."""
         if not (math.isfinite(tx) and math.isfinite(ty)):
             return float("nan")
         if self._euclidean:
             # Arena.distance_cm's formula on scalars: one call instead of a dozen on (1, 2) arrays.
             mx, my = map_xy.tolist()
             return math.hypot(mx - tx, my - ty)
-        return float(self.environment.distance_cm(map_xy[None, :], true_xy[None, :])[0])
+        return float(self.environment.distance_cm(map_xy[None, :], np.array([[tx, ty]]))[0])
 
     def _near_zone_masks(self, margin_cm: float) -> np.ndarray:
         """Bins within ``margin_cm`` of each zone (along the graph on a track)."""

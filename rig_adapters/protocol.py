@@ -373,7 +373,8 @@ def _one_frame(m: dict) -> TrackerFrames | None:
     A tracker sends one frame per message, 30 to 60 times a second, and the
     general path's numpy calls on 1-element arrays dominated a replay's
     decoding time. Whatever this declines (several frames, head direction,
-    plain lists, a bad value) the general path reads, with its error reasons.
+    plain lists) or ``TrackerFrames.one`` refuses (a bad value), the general
+    path reads, with its error reasons.
     """
     t, x, y, q = m.get("t"), m.get("x"), m.get("y"), m.get("q", b"\x01")
     if not (
@@ -382,8 +383,6 @@ def _one_frame(m: dict) -> TrackerFrames | None:
     ):
         return None
     t_s, x_cm, y_cm = _F64_THREE.unpack(t + x + y)
-    if not math.isfinite(t_s) or math.isinf(x_cm) or math.isinf(y_cm):
-        return None
     return TrackerFrames.one(m["src"], m["seq"], t_s, x_cm, y_cm, q[0] if "q" in m else None)
 
 
