@@ -34,6 +34,8 @@ def window_counts(t_s, rows, start, stop, t_end_s, window_s, n_units):
     fired : ndarray of int64, shape (k,)
         Rows that fired, ascending.
     counts : ndarray of float64, shape (k,)
+    first : int
+        Index of the first spike in the window or after it.
     """
     held = t_s[start:stop]
     lo = start + np.searchsorted(held, t_end_s - window_s, side="right")
@@ -53,7 +55,7 @@ def window_counts(t_s, rows, start, stop, t_end_s, window_s, n_units):
             fired[k] = r
             counts[k] = binned[r]
             k += 1
-    return fired, counts
+    return fired, counts, lo
 
 
 def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
@@ -63,44 +65,64 @@ def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
     hi = np.searchsorted(held_t, t_end_s, side="right")
     binned = np.bincount(held_rows[lo:hi], minlength=n_units)
     fired = np.flatnonzero(binned)
-    return fired.astype(np.int64), binned[fired].astype(np.float64)
+    return fired.astype(np.int64), binned[fired].astype(np.float64), start + int(lo)
 
 
 @numba.njit(cache=True)
-def rows_of_units(unit_ids, row_of_id, first_id):
-    """Decoder row of each spike's unit through a lookup table (-1 for a unit the table lacks), and the -1s.
+def append_known_spikes(t_s, unit_ids, row_of_id, first_id, closed_until_s, held_t_s, held_rows, stop):
+    """Append the spikes whose unit a lookup table knows, as rows, at ``stop`` of the held arrays.
 
     Parameters
     ----------
+    t_s : ndarray of float64, shape (n,)
     unit_ids : ndarray of int64, shape (n,)
     row_of_id : ndarray of int64, shape (span,)
-        Row of unit ``first_id + i`` at ``i``, or -1.
+        Row of unit ``first_id + i`` at ``i``, or -1 for a unit without one.
     first_id : int
+    closed_until_s : float
+        End of the last step already decoded; a known spike at or before it
+        is late (counted, still appended).
+    held_t_s : ndarray of float64, shape (>= stop + n,)
+    held_rows : ndarray of int64, shape (>= stop + n,)
+        Receive the known spikes from ``stop`` on, in their order.
+    stop : int
 
     Returns
     -------
-    rows : ndarray of int64, shape (n,)
+    stop : int
+        The new end of the held spikes.
     n_unknown : int
-        Spikes whose unit the table lacks.
+        Spikes left out: their unit has no row.
+    n_late : int
     """
-    rows = np.empty(unit_ids.size, np.int64)
     span = row_of_id.size
     n_unknown = 0
-    for i in range(unit_ids.size):
+    n_late = 0
+    for i in range(t_s.size):
         j = unit_ids[i] - first_id
-        rows[i] = row_of_id[j] if 0 <= j < span else -1
-        if rows[i] < 0:
+        row = row_of_id[j] if 0 <= j < span else -1
+        if row < 0:
             n_unknown += 1
-    return rows, n_unknown
+            continue
+        if t_s[i] <= closed_until_s:
+            n_late += 1
+        held_t_s[stop] = t_s[i]
+        held_rows[stop] = row
+        stop += 1
+    return stop, n_unknown, n_late
 
 
-def rows_of_units_numpy(unit_ids, row_of_id, first_id):
-    """Numpy twin of :func:`rows_of_units` (the tests' reference)."""
+def append_known_spikes_numpy(t_s, unit_ids, row_of_id, first_id, closed_until_s, held_t_s, held_rows, stop):
+    """Numpy twin of :func:`append_known_spikes` (the tests' reference)."""
     j = unit_ids - first_id
     inside = (j >= 0) & (j < row_of_id.size)
     rows = np.full(unit_ids.size, -1, np.int64)
     rows[inside] = row_of_id[j[inside]]
-    return rows, int(np.count_nonzero(rows < 0))
+    known = rows >= 0
+    n = int(np.count_nonzero(known))
+    held_t_s[stop:stop + n] = t_s[known]
+    held_rows[stop:stop + n] = rows[known]
+    return stop + n, int(unit_ids.size - n), int(np.count_nonzero(t_s[known] <= closed_until_s))
 
 
 #: Spikes the window's buffer holds before it first grows.
@@ -144,11 +166,50 @@ class SpikeWindow:
             return
         if self._stop + n > self._t.size:
             self._compact(n)
-        start, stop = self._start, self._stop
+        stop = self._stop
         self._t[stop:stop + n] = t_s
         self._row[stop:stop + n] = rows
         self._stop = stop + n
-        if stop > start and t_s.item(0) < self._t.item(stop - 1):
+        self._keep_sorted(stop)
+
+    def add_units(self, t_s: np.ndarray, unit_ids: np.ndarray, row_of_id: np.ndarray, first_id: int,
+                  closed_until_s: float) -> tuple[int, int]:
+        """Add spikes given by unit id, through a lookup table, in one compiled pass.
+
+        Parameters
+        ----------
+        t_s : ndarray of float64, shape (n,)
+            Sorted; may be older than spikes already held.
+        unit_ids : ndarray of int64, shape (n,)
+        row_of_id : ndarray of int64, shape (span,)
+            Row of unit ``first_id + i`` at ``i``, or -1: such spikes are left out.
+        first_id : int
+        closed_until_s : float
+            End of the last step already decoded (``-inf`` if none).
+
+        Returns
+        -------
+        n_unknown : int
+            Spikes left out because their unit has no row.
+        n_late : int
+            Spikes kept that are at or before ``closed_until_s``.
+        """
+        n = t_s.size
+        if n == 0:
+            return 0, 0
+        if self._stop + n > self._t.size:
+            self._compact(n)
+        stop = self._stop
+        self._stop, n_unknown, n_late = append_known_spikes(
+            t_s, unit_ids, row_of_id, first_id, closed_until_s, self._t, self._row, stop
+        )
+        self._keep_sorted(stop)
+        return n_unknown, n_late
+
+    def _keep_sorted(self, stop: int) -> None:
+        """Restore time order after spikes were appended at ``stop``."""
+        start = self._start
+        if start < stop < self._stop and self._t.item(stop) < self._t.item(stop - 1):
             # Stable, so spikes with equal times keep their arrival order and a
             # replay gives bit-identical windows.
             order = np.argsort(self._t[start:self._stop], kind="stable")
@@ -167,8 +228,15 @@ class SpikeWindow:
         self._row[:held] = row
         self._start, self._stop = 0, held
 
-    def counts(self, t_end_s: float) -> tuple[np.ndarray, np.ndarray]:
+    def counts(self, t_end_s: float, forget_older: bool = False) -> tuple[np.ndarray, np.ndarray]:
         """Spike counts of the window ``(t_end_s - window_s, t_end_s]``.
+
+        Parameters
+        ----------
+        t_end_s : float
+        forget_older : bool
+            Also forget the spikes before the window, as :meth:`discard_before`
+            would: for a caller whose later windows all end later.
 
         Returns
         -------
@@ -177,7 +245,12 @@ class SpikeWindow:
         counts : ndarray of float64, shape (k,)
             Their spike counts.
         """
-        return window_counts(self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units)
+        fired, counts, first = window_counts(
+            self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units
+        )
+        if forget_older:
+            self._start = first
+        return fired, counts
 
     def discard_before(self, t_s: float) -> None:
         """Forget spikes at or before ``t_s`` (no later window can contain them)."""

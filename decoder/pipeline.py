@@ -26,7 +26,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from decoder.binning import SpikeWindow, StepSchedule, rows_of_units
+from decoder.binning import SpikeWindow, StepSchedule
 from decoder.clock import ClockAligner, ClockFit, ClockMismatchError
 from decoder.config import ExperimentConfig
 from decoder.decoding import BayesDecoder, DecodedStep
@@ -222,8 +222,16 @@ class Pipeline:
             self.counters["stale_messages"] += 1
             log.warning("dropped message %d from %r: sequence number not above the last one", msg.seq, msg.source)
             return []
-        out: list[StepOutput | Notice] = []
         source = msg.source
+        kind = type(msg)
+        if verdict != "restart":
+            # Nearly every message of a session is one of these: straight to its handler.
+            if source == self._spike_source and (kind is SpikeBatch or kind is Heartbeat):
+                return self._on_spike_source(msg)
+            if kind is TrackerFrames and source in self._position_sources:
+                self._on_frames(msg)
+                return []
+        out: list[StepOutput | Notice] = []
         if verdict == "restart":
             out.append(Notice("source_restart", self.spike_watermark_s, {"source": source}))
             log.warning("source %r restarted its sequence numbers", source)
@@ -231,7 +239,6 @@ class Pipeline:
             self.clock.forget(source)
             if source == self._spike_source:
                 out.extend(self._on_spike_source_restart())
-        kind = type(msg)
         if kind is ControlCommand:
             out.extend(self.on_control(msg))
         elif kind is SourceAnnounce:
@@ -413,26 +420,23 @@ class Pipeline:
             return
         if self.state != "decoding":
             return
-        rows, n_unknown = self._rows_of(msg.unit_id)
-        t = msg.t_s
-        if n_unknown:
-            known = rows >= 0
-            self.counters["unknown_units"] += n_unknown
-            t = t[known]
-            rows = rows[known]
         next_k = self.schedule.next_k
-        # Times are sorted (checked in SpikeBatch), so the first one tells whether any is late.
-        if next_k is not None and t.size and t.item(0) <= self.schedule.step_end_s(next_k - 1):
-            late = t <= self.schedule.step_end_s(next_k - 1)
-            self.counters["late_spikes"] += int(np.count_nonzero(late))
-        self.window.add(t, rows)
-
-    def _rows_of(self, unit_ids: np.ndarray) -> tuple[np.ndarray, int]:
-        """Decoder row of each spike's unit (-1 for a unit the model lacks), and how many are -1."""
+        closed_until_s = self.schedule.step_end_s(next_k - 1) if next_k is not None else -math.inf
         if self._unit_lut is not None:
-            return rows_of_units(unit_ids, self._unit_lut, self._unit_lut_offset)
-        rows = np.array([self._unit_rows.get(int(u), -1) for u in unit_ids], np.int64)
-        return rows, int(np.count_nonzero(rows < 0))
+            n_unknown, n_late = self.window.add_units(
+                msg.t_s, msg.unit_id, self._unit_lut, self._unit_lut_offset, closed_until_s
+            )
+        else:
+            rows = np.array([self._unit_rows.get(int(u), -1) for u in msg.unit_id.tolist()], np.int64)
+            known = rows >= 0
+            t = msg.t_s[known]
+            n_unknown = rows.size - t.size
+            n_late = int(np.count_nonzero(t <= closed_until_s))
+            self.window.add(t, rows[known])
+        if n_unknown:
+            self.counters["unknown_units"] += n_unknown
+        if n_late:
+            self.counters["late_spikes"] += n_late
 
     def _on_frames(self, msg: TrackerFrames) -> None:
         fit = self._clock_fit(msg.source)
@@ -524,14 +528,12 @@ class Pipeline:
             self.counters["steps_skipped"] += len(ks) - MAX_STEPS_PER_MESSAGE
             ks = ks[-MAX_STEPS_PER_MESSAGE:]
             self.decoder.reset()
-        out = [self._decode_step(k, previous_watermark_s) for k in ks]
-        if ks:
-            self.window.discard_before(self.schedule.step_end_s(ks[-1]) - self.window.window_s)
-        return out
+        return [self._decode_step(k, previous_watermark_s) for k in ks]
 
     def _decode_step(self, k: int, previous_watermark_s: float) -> StepOutput:
         t = self.schedule.step_end_s(k)
-        rows, counts = self.window.counts(t)
+        # Steps only move forward: no later window needs the spikes before this one.
+        rows, counts = self.window.counts(t, forget_older=True)
         step = self.decoder.decode(rows, counts)
         x, y, speed = self.tracked.at_xy(t)
         tracked_xy = np.array((x, y))
@@ -548,9 +550,9 @@ class Pipeline:
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
         spike_lag = t - previous_watermark_s if math.isfinite(previous_watermark_s) else 0.0
         tracker_lag = t - self.tracked.newest_t_s if math.isfinite(self.tracked.newest_t_s) else 0.0
-        # Positional, in field order: keywords cost a microsecond at every step.
         lag = max(spike_lag, tracker_lag, 0.0)
-        events = tuple(self.bank.step(StepInput(t, step.zone_mass, map_zone, tracked_xy, in_zone, speed, lag)))
+        step_input = StepInput.from_arrays(t, step.zone_mass, map_zone, tracked_xy, in_zone, speed, lag)
+        events = tuple(self.bank.step(step_input))
         self.visits.step(t, true_in_zone)
         for ev in events:
             self.visits.event(ev.t_s, self.zone_names.index(ev.zone))
@@ -610,7 +612,8 @@ class Pipeline:
     def _update_digest(self, k: int, step: DecodedStep, events: tuple[TriggerEvent, ...]) -> None:
         h = self._digest
         h.update(struct.pack("<qqdd", k, int(step.map_bin), float(step.peak_prob), float(step.hpd95_size)))
-        h.update(np.ascontiguousarray(step.zone_mass, np.float64).tobytes())
+        # A contiguous float64 view of the decoder's buffer: hashed in place, no copy.
+        h.update(step.zone_mass)
         for ev in events:
             h.update(f"{ev.event_id}|{ev.rule}|{ev.zone}|{ev.t_s!r}".encode())
 

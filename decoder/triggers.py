@@ -216,10 +216,6 @@ class SafetyCaps:
         object.__setattr__(self, "max_per_session", _positive_int(owner, "max_per_session", self.max_per_session))
 
 
-_F64 = np.dtype(np.float64)
-_BOOL = np.dtype(np.bool_)
-
-
 def _flag_vector(name: str, values: Any) -> np.ndarray:
     arr = np.asarray(values)
     if arr.ndim != 1 or (arr.size and arr.dtype.kind not in "bui"):
@@ -260,8 +256,6 @@ class StepInput:
     stream_lag_s: float
 
     def __post_init__(self) -> None:
-        if self._is_ready():
-            return
         t = float(self.t_s)
         if not math.isfinite(t):
             raise ValueError(f"step t_s must be a finite data time, got {self.t_s!r}")
@@ -286,21 +280,25 @@ class StepInput:
         object.__setattr__(self, "tracked_speed_cm_s", float(self.tracked_speed_cm_s))
         object.__setattr__(self, "stream_lag_s", float(self.stream_lag_s))
 
-    def _is_ready(self) -> bool:
-        """Whether every field already has the exact type and shape the checks below would give.
+    @classmethod
+    def from_arrays(cls, t_s: float, zone_mass: np.ndarray, map_zone: np.ndarray, tracked_xy_cm: np.ndarray,
+                    tracked_in_zone: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float) -> StepInput:
+        """A step from values that already have the exact types the constructor would give, unchecked.
 
-        The pipeline builds one StepInput per decoding step from arrays of
-        the right kind; confirming that costs a fraction of converting.
+        For the pipeline, which builds one per decoding step from arrays of
+        its own making: Python floats, float64 and bool vectors of one value
+        per zone, a float64 (2,) position. Anyone else uses the constructor.
         """
-        t, mass, map_zone, in_zone, xy = self.t_s, self.zone_mass, self.map_zone, self.tracked_in_zone, self.tracked_xy_cm
-        return (
-            type(t) is float and math.isfinite(t)
-            and type(self.tracked_speed_cm_s) is float and type(self.stream_lag_s) is float
-            and type(mass) is np.ndarray and mass.dtype == _F64 and mass.ndim == 1
-            and type(map_zone) is np.ndarray and map_zone.dtype == _BOOL and map_zone.shape == mass.shape
-            and type(in_zone) is np.ndarray and in_zone.dtype == _BOOL and in_zone.shape == mass.shape
-            and type(xy) is np.ndarray and xy.dtype == _F64 and xy.shape == (2,)
-        )
+        self = object.__new__(cls)
+        setattr_ = object.__setattr__
+        setattr_(self, "t_s", t_s)
+        setattr_(self, "zone_mass", zone_mass)
+        setattr_(self, "map_zone", map_zone)
+        setattr_(self, "tracked_xy_cm", tracked_xy_cm)
+        setattr_(self, "tracked_in_zone", tracked_in_zone)
+        setattr_(self, "tracked_speed_cm_s", tracked_speed_cm_s)
+        setattr_(self, "stream_lag_s", stream_lag_s)
+        return self
 
 
 @dataclass(frozen=True, slots=True)

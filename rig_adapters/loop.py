@@ -92,6 +92,22 @@ class LatencySeries:
         if self.values is not None:
             self.values.append(ms)
 
+    def extend(self, values_ms: list[float]) -> None:
+        """Append many samples at once, in order: the same result as :meth:`append` on each."""
+        if not values_ms:
+            return
+        values = np.asarray(values_ms, np.float64)
+        counts = self._counts
+        for i in np.searchsorted(self._EDGES_MS, values, side="left").tolist():
+            counts[i] += 1
+        recent, size = self._recent, self.RECENT
+        for k, ms in enumerate(values.tolist()[-size:], self._n + max(0, values.size - size)):
+            recent[k % size] = ms
+        self._n += values.size
+        self.max_ms = max(self.max_ms, float(values.max()))
+        if self.values is not None:
+            self.values.extend(values.tolist())
+
     def __len__(self) -> int:
         return self._n
 

@@ -38,6 +38,15 @@ def test_discard_keeps_what_later_windows_need():
     assert fired.tolist() == [2] and counts.tolist() == [1.0]
 
 
+def test_counting_can_forget_what_is_older_than_the_window():
+    win = SpikeWindow(3, 0.1)
+    win.add(np.array([0.05, 0.15, 0.25]), np.array([0, 1, 2]))
+    assert win.counts(0.2)[0].tolist() == [1] and len(win) == 3
+    fired, _ = win.counts(0.2, forget_older=True)
+    assert fired.tolist() == [1] and len(win) == 2
+    assert win.counts(0.3, forget_older=True)[0].tolist() == [2] and len(win) == 1
+
+
 def test_window_is_half_open_on_the_left():
     win = SpikeWindow(1, 0.1)
     win.add(np.array([0.1, 0.2]), np.array([0, 0]))
@@ -76,9 +85,10 @@ def test_window_counts_kernel_matches_its_numpy_twin():
     for start, stop, t_end in [(0, 500, 1.0), (100, 400, 0.7), (0, 0, 1.0), (250, 500, 1.99), (0, 500, -1.0)]:
         a = window_counts(t, rows, start, stop, t_end, 0.2, 30)
         b = window_counts_numpy(t, rows, start, stop, t_end, 0.2, 30)
-        for x, y in zip(a, b):
+        for x, y in zip(a[:2], b[:2]):
             assert x.dtype == y.dtype
             np.testing.assert_array_equal(x, y)
+        assert a[2] == b[2] == start + np.searchsorted(t[start:stop], t_end - 0.2, side="right")
 
 
 def test_window_survives_many_compactions_and_late_batches():
@@ -103,14 +113,49 @@ def test_window_survives_many_compactions_and_late_batches():
     assert len(win) == held_t.size
 
 
-def test_rows_of_units_kernel_matches_its_numpy_twin():
-    # Twin check (common practice here): ids inside, below and above the table, and ids the table lacks.
-    from decoder.binning import rows_of_units, rows_of_units_numpy
+def test_append_known_spikes_kernel_matches_its_numpy_twin():
+    # Twin check (common practice here): ids inside, below and above the table, ids the table lacks, late spikes.
+    from decoder.binning import append_known_spikes, append_known_spikes_numpy
 
     table = np.array([3, -1, 0, 1, -1, 2], np.int64)      # units 10..15
     ids = np.array([10, 11, 12, 9, 16, 15, 13, -4, 10], np.int64)
-    rows, n_unknown = rows_of_units(ids, table, 10)
-    twin_rows, twin_unknown = rows_of_units_numpy(ids, table, 10)
-    np.testing.assert_array_equal(rows, twin_rows)
-    assert rows.tolist() == [3, -1, 0, -1, -1, 2, 1, -1, 3] and n_unknown == twin_unknown == 4
-    assert rows_of_units(np.zeros(0, np.int64), table, 10)[0].size == 0
+    t = np.linspace(0.9, 1.3, ids.size)
+    results = []
+    for kernel in (append_known_spikes, append_known_spikes_numpy):
+        held_t, held_rows = np.full(20, -7.0), np.full(20, -7, np.int64)
+        stop, n_unknown, n_late = kernel(t, ids, table, 10, 1.0, held_t, held_rows, 3)
+        results.append((stop, n_unknown, n_late, held_t.tolist(), held_rows.tolist()))
+    assert results[0] == results[1]
+    stop, n_unknown, n_late, held_t, held_rows = results[0]
+    assert (stop, n_unknown) == (8, 4)
+    assert held_rows[3:8] == [3, 0, 2, 1, 3] and held_rows[:3] == [-7] * 3 and held_rows[8:] == [-7] * 12
+    assert held_t[3:8] == [t[0], t[2], t[5], t[6], t[8]]
+    assert n_late == int(np.count_nonzero(t[[0, 2, 5, 6, 8]] <= 1.0))
+
+
+def test_adding_by_unit_id_equals_adding_rows():
+    # Two ways into the window (unit ids through a table, rows directly) must hold the same spikes.
+    rng = np.random.default_rng(8)
+    table = np.array([-1, 0, 1, 2, -1, 3], np.int64)      # units 5..10; 5 and 9 have no row
+    by_id, by_row = SpikeWindow(4, 0.2), SpikeWindow(4, 0.2)
+    late_total = unknown_total = 0
+    for k in range(1, 400):
+        t = np.sort(rng.uniform((k - 1) * 0.02, k * 0.02, rng.integers(0, 30)))
+        if k % 5 == 0:
+            t = t - 0.03          # late, and older than spikes already held
+        ids = rng.integers(4, 12, t.size).astype(np.int64)
+        n_unknown, n_late = by_id.add_units(t, ids, table, 5, (k - 2) * 0.02)
+        j = ids - 5
+        rows = np.where((j >= 0) & (j < table.size), table[np.clip(j, 0, table.size - 1)], -1)
+        known = rows >= 0
+        by_row.add(t[known], rows[known])
+        assert n_unknown == int(np.count_nonzero(~known))
+        assert n_late == int(np.count_nonzero(t[known] <= (k - 2) * 0.02))
+        late_total += n_late
+        unknown_total += n_unknown
+        for window in (by_id, by_row):
+            window.discard_before(k * 0.02 - 0.3)
+        a, b = by_id.counts(k * 0.02 - 0.01), by_row.counts(k * 0.02 - 0.01)
+        np.testing.assert_array_equal(a[0], b[0])
+        np.testing.assert_array_equal(a[1], b[1])
+    assert late_total > 0 and unknown_total > 0 and len(by_id) == len(by_row)

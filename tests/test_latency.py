@@ -33,3 +33,20 @@ def test_memory_does_not_grow_with_the_session():
 def test_summary_of_an_empty_series_and_of_plain_lists():
     assert LatencyLog.percentiles(LatencySeries())["p50"] is None
     assert LatencyLog.percentiles([1.0, 3.0])["max"] == 3.0
+
+
+def test_extend_equals_appending_one_by_one():
+    # Bulk and one-by-one must leave the same histogram, recent ring, maximum and kept values (common practice).
+    rng = np.random.default_rng(3)
+    samples = (10 ** rng.uniform(-4, 6, 5000)).tolist() + [1e-3, 1e5, 2e5, 0.0]
+    for keep_all in (False, True):
+        one, bulk = LatencySeries(keep_all=keep_all), LatencySeries(keep_all=keep_all)
+        for ms in samples:
+            one.append(ms)
+        for part in (samples[:2500], [], samples[2500:2501], samples[2501:]):
+            bulk.extend(part)
+        assert len(one) == len(bulk) and one.max_ms == bulk.max_ms
+        for q in (1, 50, 99, 100):
+            assert one.percentile(q) == bulk.percentile(q)
+        np.testing.assert_array_equal(one.recent(), bulk.recent())
+        assert list(one) == list(bulk)
