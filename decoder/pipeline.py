@@ -539,7 +539,7 @@ class Pipeline:
         tracked_xy = np.array((x, y))
         in_zone_flags = self._zone_flags(x, y)
         if self._truth_source:
-            x, y, _ = self.truth.at_xy(t)
+            x, y = self.truth.position_at(t)
             true_xy = np.array((x, y))
             true_in_zone = self._zone_flags(x, y)
         else:

@@ -74,6 +74,14 @@ class TrackHistory:
         x, y, speed = self.at_xy(t_s)
         return np.array((x, y)), speed
 
+    def position_at(self, t_s: float) -> tuple[float, float]:
+        """:meth:`at_xy` without the speed: ``(x_cm, y_cm)``, NaN when unknown."""
+        t = self._t
+        i = bisect_right(t, t_s) - 1
+        if i < 0 or t_s - t[i] > self.max_age_s:
+            return math.nan, math.nan
+        return self._x[i], self._y[i]
+
     def at_xy(self, t_s: float) -> tuple[float, float, float]:
         """:meth:`at` as three Python floats ``(x_cm, y_cm, speed_cm_s)``, for callers that want scalars."""
         t = self._t

@@ -38,3 +38,16 @@ def test_long_streams_compact_without_losing_recent_frames():
     pos, _ = hist.at(599.5)
     np.testing.assert_allclose(pos, xy[np.searchsorted(t, 599.5, side="right") - 1])
     assert len(hist) <= 4096 + 1
+
+
+def test_position_at_is_at_xy_without_the_speed():
+    # Two lookups of one history must agree wherever asked: inside, between frames, too old, too early.
+    rng = np.random.default_rng(2)
+    hist = TrackHistory(max_age_s=0.1)
+    t = np.cumsum(rng.uniform(0.005, 0.05, 300))
+    xy = rng.uniform(0, 100, (t.size, 2))
+    xy[rng.random(t.size) < 0.1] = np.nan
+    hist.add(t, xy)
+    for q in np.concatenate([[-1.0, t[0], t[-1] + 1.0], rng.uniform(0, t[-1], 500)]):
+        x, y, _ = hist.at_xy(q)
+        np.testing.assert_array_equal(hist.position_at(q), (x, y))
