@@ -1127,7 +1127,7 @@ def decode_step(
     79:1017-1044 (likelihood). Brown EN, Frank LM, Tang D, Quirk MC, Wilson
     MA (1998). J Neurosci 18:7411-7425 (state-space prior).
     """
-    n_units, n_bins = log_rate.shape
+    n_units = log_rate.shape[0]
     bad = first_bad_entry(fired_rows, fired_counts, n_units, max_count)
     if bad >= 0:
         return bad, 0, 0, 0, 0.0
@@ -1138,6 +1138,22 @@ def decode_step(
     for i in range(fired_rows.shape[0]):
         now[fired_rows[i]] += fired_counts[i]
         n_spikes += fired_counts[i]
+    return _decode_counts(
+        n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
+        transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
+        log_like, previous, predicted, scratch, grid_scratch, out,
+    )
+
+
+@numba.njit(cache=True)
+def _decode_counts(
+    n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
+    transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
+    log_like, previous, predicted, scratch, grid_scratch, out,
+):
+    """:func:`decode_step` from the window's counts per unit, already in ``unit_counts[1]`` (checked)."""
+    n_bins = log_rate.shape[1]
+    now = unit_counts[1]
     _update_log_likelihood(
         now, unit_counts[0], log_rate, expected_total, state, unit_rows, unit_counts[2], log_like
     )
@@ -1246,3 +1262,72 @@ def decode_step_numpy(
     zone_mass_numpy(post, zone_start, zone_bins, out[n_bins + 4 :])
     n_hpd = hpd_size_numpy(post, hpd_mass, scratch)
     return status, map_bin, n_hpd, int(fired_counts.sum()), peak
+
+
+
+@numba.njit(cache=True)
+def decode_window_step(
+    held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
+    transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
+    zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+):
+    """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
+
+    The same numbers, bit for bit, as counting the window first (``binning.window_counts``)
+    and passing its rows and counts to :func:`decode_step`: a unit's count is
+    a sum of ones either way. Counting here saves the decoding loop a call
+    and two arrays per step.
+
+    Parameters
+    ----------
+    held_t_s : ndarray, shape (n,), float64
+        Spike times, sorted over ``start:stop``.
+    held_rows : ndarray, shape (n,), int64
+        Model row of each spike.
+    start, stop : int
+        The held part of the arrays.
+    t_end_s, window_s : float
+    max_count, log_rate, ..., out
+        As in :func:`decode_step` (``max_count`` is not needed: counts of
+        held spikes are whole numbers by construction).
+
+    Returns
+    -------
+    status, map_bin, n_hpd, n_spikes, peak_prob
+        As in :func:`decode_step`; a status ``>= 0`` is the index (into the
+        held arrays) of a spike whose row is out of range.
+    first : int
+        Index of the first held spike inside the window or after it.
+    """
+    n_units = log_rate.shape[0]
+    held = held_t_s[start:stop]
+    lo = start + np.searchsorted(held, t_end_s - window_s, side="right")
+    hi = start + np.searchsorted(held, t_end_s, side="right")
+    for i in range(lo, hi):
+        if not 0 <= held_rows[i] < n_units:
+            return i, 0, 0, 0, 0.0, lo
+    now = unit_counts[1]
+    now[:] = 0.0
+    for i in range(lo, hi):
+        now[held_rows[i]] += 1.0
+    status, map_bin, n_hpd, n_spikes, peak = _decode_counts(
+        float(hi - lo), log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f,
+        inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
+        unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+    )
+    return status, map_bin, n_hpd, n_spikes, peak, lo
+
+
+def decode_window_step_numpy(held_t_s, held_rows, start, stop, t_end_s, window_s, *decode_args):
+    """Numpy twin of :func:`decode_window_step`: the window counted with numpy, then :func:`decode_step_numpy`."""
+    n_units = decode_args[1].shape[0]
+    held_t, rows = held_t_s[start:stop], held_rows[start:stop]
+    lo = int(np.searchsorted(held_t, t_end_s - window_s, side="right"))
+    hi = int(np.searchsorted(held_t, t_end_s, side="right"))
+    in_window = rows[lo:hi]
+    bad = np.flatnonzero((in_window < 0) | (in_window >= n_units))
+    if bad.size:
+        return start + lo + int(bad[0]), 0, 0, 0, 0.0, start + lo
+    binned = np.bincount(in_window, minlength=n_units)
+    fired = np.flatnonzero(binned)
+    return (*decode_step_numpy(fired, binned[fired].astype(np.float64), *decode_args), start + lo)

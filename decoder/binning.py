@@ -10,6 +10,7 @@ the allowed lateness; the window of step ``k`` is ``(t_k - window_s, t_k]``.
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numba
 import numpy as np
@@ -34,8 +35,6 @@ def window_counts(t_s, rows, start, stop, t_end_s, window_s, n_units):
     fired : ndarray of int64, shape (k,)
         Rows that fired, ascending.
     counts : ndarray of float64, shape (k,)
-    first : int
-        Index of the first spike in the window or after it.
     """
     held = t_s[start:stop]
     lo = start + np.searchsorted(held, t_end_s - window_s, side="right")
@@ -55,7 +54,7 @@ def window_counts(t_s, rows, start, stop, t_end_s, window_s, n_units):
             fired[k] = r
             counts[k] = binned[r]
             k += 1
-    return fired, counts, lo
+    return fired, counts
 
 
 def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
@@ -65,7 +64,7 @@ def window_counts_numpy(t_s, rows, start, stop, t_end_s, window_s, n_units):
     hi = np.searchsorted(held_t, t_end_s, side="right")
     binned = np.bincount(held_rows[lo:hi], minlength=n_units)
     fired = np.flatnonzero(binned)
-    return fired.astype(np.int64), binned[fired].astype(np.float64), start + int(lo)
+    return fired.astype(np.int64), binned[fired].astype(np.float64)
 
 
 @numba.njit(cache=True)
@@ -228,15 +227,8 @@ class SpikeWindow:
         self._row[:held] = row
         self._start, self._stop = 0, held
 
-    def counts(self, t_end_s: float, forget_older: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    def counts(self, t_end_s: float) -> tuple[np.ndarray, np.ndarray]:
         """Spike counts of the window ``(t_end_s - window_s, t_end_s]``.
-
-        Parameters
-        ----------
-        t_end_s : float
-        forget_older : bool
-            Also forget the spikes before the window, as :meth:`discard_before`
-            would: for a caller whose later windows all end later.
 
         Returns
         -------
@@ -245,12 +237,28 @@ class SpikeWindow:
         counts : ndarray of float64, shape (k,)
             Their spike counts.
         """
-        fired, counts, first = window_counts(
-            self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units
-        )
-        if forget_older:
-            self._start = first
-        return fired, counts
+        return window_counts(self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units)
+
+    def decode(self, decoder: Any, t_end_s: float) -> Any:
+        """Decode the window ``(t_end_s - window_s, t_end_s]`` and forget the spikes before it.
+
+        For a caller whose windows only move forward, as decoding steps do:
+        no later window needs the forgotten spikes.
+
+        Parameters
+        ----------
+        decoder : decoding.BayesDecoder
+            With the same ``window_s``; counts and decodes the window in one
+            call (:meth:`~decoder.decoding.BayesDecoder.decode_held`).
+        t_end_s : float
+
+        Returns
+        -------
+        DecodedStep
+        """
+        step, first = decoder.decode_held(self._t, self._row, self._start, self._stop, t_end_s)
+        self._start = first
+        return step
 
     def discard_before(self, t_s: float) -> None:
         """Forget spikes at or before ``t_s`` (no later window can contain them)."""

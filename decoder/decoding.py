@@ -52,7 +52,7 @@ MAX_COUNT = 1e6
 PRIORS = ("uniform", "state_space")
 BACKENDS = ("numba", "numpy")
 
-_KERNEL_NAMES = ("convolve_separable", "predict_grid", "predict_dense", "decode_step")
+_KERNEL_NAMES = ("convolve_separable", "predict_grid", "predict_dense", "decode_step", "decode_window_step")
 
 _INT64 = np.dtype(np.int64)
 _FLOAT64 = np.dtype(np.float64)
@@ -530,6 +530,53 @@ class BayesDecoder:
         )
         if status >= 0:
             raise self._bad_entry(rows, counts, status)
+        return self._step(buf, status, map_bin, n_hpd, n_spikes, peak)
+
+    def decode_held(self, held_t_s: np.ndarray, held_rows: np.ndarray, start: int, stop: int,
+                    t_end_s: float) -> tuple[DecodedStep, int]:
+        """Count and decode the window ``(t_end_s - window_s, t_end_s]`` of held spikes, in one call.
+
+        The same step, bit for bit, as counting the window's spikes per row
+        and passing them to :meth:`decode`; for a caller that keeps its
+        spikes in sorted arrays (``binning.SpikeWindow``).
+
+        Parameters
+        ----------
+        held_t_s : ndarray of float64, shape (n,)
+            Spike times, sorted over ``start:stop``.
+        held_rows : ndarray of int64, shape (n,)
+            Model row (``0..n_units-1``) of each spike.
+        start, stop : int
+            The held part of the arrays.
+        t_end_s : float
+
+        Returns
+        -------
+        step : DecodedStep
+        first : int
+            Index of the first held spike inside the window or after it:
+            the spikes before it are older than this window.
+
+        Raises
+        ------
+        ValueError
+            For a spike of the window whose row is out of range (the
+            decoder's state is then unchanged).
+        """
+        buf = np.empty(self._out_size)
+        status, map_bin, n_hpd, n_spikes, peak, first = self._k.decode_window_step(
+            held_t_s, held_rows, start, stop, t_end_s, self.window_s,
+            *self._args_before, self._previous, *self._args_after, buf,
+        )
+        if status >= 0:
+            raise ValueError(
+                f"held spike {status} has row {int(held_rows[status])}, outside the model's rows 0..{self.n_units - 1}"
+            )
+        return self._step(buf, status, map_bin, n_hpd, n_spikes, peak), first
+
+    def _step(self, buf: np.ndarray, status: int, map_bin: int, n_hpd: int, n_spikes: int,
+              peak: float) -> DecodedStep:
+        """The DecodedStep of a window the kernel decoded into ``buf``."""
         if status == _kernels.STEP_UNDERFLOW:
             self.underflow_resets += 1
             # Loud once, then quiet: a pathological stream could repeat this at every step.

@@ -532,9 +532,7 @@ class Pipeline:
 
     def _decode_step(self, k: int, previous_watermark_s: float) -> StepOutput:
         t = self.schedule.step_end_s(k)
-        # Steps only move forward: no later window needs the spikes before this one.
-        rows, counts = self.window.counts(t, forget_older=True)
-        step = self.decoder.decode(rows, counts)
+        step = self.window.decode(self.decoder, t)
         x, y, speed = self.tracked.at_xy(t)
         tracked_xy = np.array((x, y))
         in_zone_flags = self._zone_flags(x, y)

@@ -439,3 +439,44 @@ def test_underflowing_prior_on_a_grid_arena_falls_back_to_uniform(backend):
     assert dec.underflow_resets == 1
     np.testing.assert_allclose(far.posterior, uniform.decode(np.array([1]), np.array([120])).posterior, rtol=1e-12)
     assert far.map_xy_cm[0] > 180
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_decoding_held_spikes_equals_counting_them_first(backend):
+    # Source: the decoder's contract (decode_held is decode of the window's counts), checked bit for bit,
+    # against windows counted with numpy.bincount, over a run long enough to take the incremental path.
+    arena = Arena.rectangle(40, 30, bin_cm=2)
+    rates = _random_rates(21, 30, arena.n_bins)
+    rng = np.random.default_rng(22)
+    t = np.sort(rng.uniform(0.0, 8.0, 6000))
+    rows = rng.integers(0, 30, t.size).astype(np.int64)
+    by_counts = BayesDecoder(rates, arena, arena.valid_mask, 0.2, prior="state_space", backend=backend)
+    held = BayesDecoder(rates, arena, arena.valid_mask, 0.2, prior="state_space", backend=backend)
+    start = 0
+    for k in range(10, 400):
+        t_end = k * 0.02
+        inside = (t > t_end - 0.2) & (t <= t_end)
+        binned = np.bincount(rows[inside], minlength=30)
+        fired = np.flatnonzero(binned)
+        a = by_counts.decode(fired, binned[fired])
+        b, first = held.decode_held(t, rows, start, t.size, t_end)
+        assert first == int(np.searchsorted(t, t_end - 0.2, side="right"))
+        start = first
+        np.testing.assert_array_equal(a.posterior, b.posterior)
+        np.testing.assert_array_equal(a.zone_mass, b.zone_mass)
+        assert (a.map_bin, a.peak_prob, a.hpd95_size, a.n_spikes) == (b.map_bin, b.peak_prob, b.hpd95_size, b.n_spikes)
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_a_held_spike_with_a_row_out_of_range_is_refused_without_a_state_change(backend):
+    track = LinearTrack((0, 0), (40, 0), bin_cm=5)
+    rates = _random_rates(23, 3, track.n_bins)
+    decoder = BayesDecoder(rates, track, track.valid_mask, 0.2, prior="state_space", backend=backend)
+    t = np.array([0.05, 0.1, 0.15])
+    decoder.decode_held(t, np.array([0, 1, 2]), 0, 3, 0.15)
+    state = decoder._state.copy()
+    with pytest.raises(ValueError, match="row 3, outside the model's rows 0..2"):
+        decoder.decode_held(t, np.array([0, 3, 2]), 0, 3, 0.2)
+    np.testing.assert_array_equal(decoder._state, state)
+    # A bad row outside the window is not looked at.
+    assert decoder.decode_held(t, np.array([7, 1, 2]), 0, 3, 0.26)[0].n_spikes == 2
