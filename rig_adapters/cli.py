@@ -22,6 +22,7 @@ import logging
 import os
 import signal
 import sys
+import time
 from pathlib import Path
 
 from decoder.config import ConfigError, load_config
@@ -65,6 +66,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from decoder.place_model import ModelFileError, PlaceModel
     from rig_adapters.loop import LiveLoop, _jsonable
     from rig_adapters.recorder import SessionRecorder
+    from rig_adapters.warm_up import warm_up
 
     print(CAUTION, file=sys.stderr)
     if args.cpu:
@@ -74,6 +76,15 @@ def cmd_run(args: argparse.Namespace) -> int:
     if args.dry_run:
         config = dataclasses.replace(config, ttl=dataclasses.replace(config.ttl, device=""))
         print("dry run: no TTL output; events go to the events socket only", file=sys.stderr)
+    # Before any socket opens: the first decoded step must not wait for numba to compile.
+    started = time.perf_counter()
+    try:
+        warm_up()
+    except Exception as exc:  # noqa: BLE001 - the loop still runs; its first steps then pay the compilation
+        print(f"warning: the kernels could not be loaded ahead of time ({exc}); the first steps will be slow",
+              file=sys.stderr)
+    else:
+        print(f"kernels ready in {time.perf_counter() - started:.1f} s", file=sys.stderr)
     model = None
     if args.model:
         try:

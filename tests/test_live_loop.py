@@ -203,6 +203,8 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
         events.close()
     stderr = loop.stderr.read()
     assert loop.returncode == 0, stderr[-3000:]
+    # The kernels were loaded before the sockets opened, not at the first decoded step.
+    assert "kernels ready in" in stderr
     summary = json.loads(summary_path.read_text())
     reasons = summary["input"]["bad_reasons"]
     for _, reason in bad:

@@ -333,10 +333,3 @@ def test_front_refuses_nan_and_flat_input():
         trade_off_front([[1.0, np.nan]])
     with pytest.raises(ValueError, match="2-D"):
         trade_off_front([1.0, 2.0])
-
-
-def test_the_worker_warm_up_learns_fits_and_decodes():
-    # The fork server imports this module to load every kernel a replay calls before forking workers.
-    from rig_adapters import sweep_worker
-
-    assert sweep_worker.warm_up(seconds=8.0) > 0
