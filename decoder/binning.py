@@ -10,10 +10,13 @@ the allowed lateness; the window of step ``k`` is ``(t_k - window_s, t_k]``.
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numba
 import numpy as np
+
+if TYPE_CHECKING:
+    from decoder.decoding import BayesDecoder, DecodedStep
 
 
 @numba.njit(cache=True)
@@ -239,7 +242,7 @@ class SpikeWindow:
         """
         return window_counts(self._t, self._row, self._start, self._stop, t_end_s, self.window_s, self.n_units)
 
-    def decode(self, decoder: Any, t_end_s: float) -> Any:
+    def decode(self, decoder: BayesDecoder, t_end_s: float) -> DecodedStep:
         """Decode the window ``(t_end_s - window_s, t_end_s]`` and forget the spikes before it.
 
         For a caller whose windows only move forward, as decoding steps do:
@@ -247,7 +250,7 @@ class SpikeWindow:
 
         Parameters
         ----------
-        decoder : decoding.BayesDecoder
+        decoder : BayesDecoder
             With the same ``window_s``; counts and decodes the window in one
             call (:meth:`~decoder.decoding.BayesDecoder.decode_held`).
         t_end_s : float

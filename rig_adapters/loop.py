@@ -93,7 +93,10 @@ class LatencySeries:
             self.values.append(ms)
 
     def extend(self, values_ms: list[float]) -> None:
-        """Append many samples at once, in order: the same result as :meth:`append` on each."""
+        """Append many samples at once, in order: the same result as :meth:`append` on each.
+
+        Samples are durations, never NaN (which the two would file in different bins).
+        """
         if not values_ms:
             return
         values = np.asarray(values_ms, np.float64)

@@ -167,3 +167,24 @@ def test_config_validation_names_the_problem():
     ok = _config(endpoints={"events": "tcp://0.0.0.0:5771", "allow_remote": True})
     assert ok.endpoints.events == "tcp://0.0.0.0:5771"
     assert dataclasses.is_dataclass(ok)
+
+
+def test_unit_ids_spread_too_wide_for_a_lookup_table_decode_the_same(session_messages):
+    # Ids more than a million apart take the dictionary path instead of the lookup table; the
+    # decoded steps, the events and the counters must not depend on which (common practice:
+    # a rig's unit ids are labels, their spacing means nothing).
+    config, messages = session_messages
+    spread = []
+    for msg in messages:
+        if isinstance(msg, SourceAnnounce) and msg.unit_ids.size:
+            msg = dataclasses.replace(msg, unit_ids=msg.unit_ids * 10**7)
+        elif isinstance(msg, SpikeBatch):
+            msg = dataclasses.replace(msg, unit_id=msg.unit_id * 10**7)
+        spread.append(msg)
+    cut = next(i for i, m in enumerate(messages) if isinstance(m, SpikeBatch) and m.t_s.size and m.t_s[0] > 140)
+    tight, _ = _run(config, messages[:cut] + [SpikeBatch("ephys", 10**9, [140.5], [123457])] + messages[cut:])
+    wide, _ = _run(config, spread[:cut] + [SpikeBatch("ephys", 10**9, [140.5], [123457])] + spread[cut:])
+    assert wide._unit_lut is None and tight._unit_lut is not None
+    assert wide.digest == tight.digest
+    assert wide.counters == tight.counters
+    assert wide.counters["unknown_units"] == 1
