@@ -1264,7 +1264,6 @@ def decode_step_numpy(
     return status, map_bin, n_hpd, int(fired_counts.sum()), peak
 
 
-
 @numba.njit(cache=True)
 def decode_window_step(
     held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
