@@ -131,6 +131,7 @@ class SourceSettings:
     #: Source name of the video tracker.
     tracker: str = "tracker"
     #: Optional source of the true position (simulated rigs only); used for scoring, never decoding.
+    #: A third name: neither the spikes nor the tracker.
     truth: str = ""
     #: Largest allowed disagreement between sync pulses and the clock fit (s).
     clock_tolerance_s: float = 0.004
@@ -138,6 +139,11 @@ class SourceSettings:
     def __post_init__(self) -> None:
         if not self.spikes or not self.tracker or self.spikes == self.tracker:
             raise ConfigError("[sources] spikes and tracker must be two different, non-empty source names")
+        if self.truth in (self.spikes, self.tracker):
+            raise ConfigError(
+                f"[sources] truth must name a third source (or be empty), not {self.truth!r}, "
+                "which is already the spikes or the tracker"
+            )
         _positive("sources", clock_tolerance_s=self.clock_tolerance_s)
 
 

@@ -164,6 +164,9 @@ def test_config_validation_names_the_problem():
         _config(rules=[{"name": "r", "zone": "nowhere"}])
     with pytest.raises(ValueError, match="unknown key"):
         _config(decoder={"windw_s": 0.2})
+    for name in ("ephys", "tracker"):
+        with pytest.raises(ValueError, match="truth must name a third source"):
+            _config(sources={"spikes": "ephys", "tracker": "tracker", "truth": name})
     ok = _config(endpoints={"events": "tcp://0.0.0.0:5771", "allow_remote": True})
     assert ok.endpoints.events == "tcp://0.0.0.0:5771"
     assert dataclasses.is_dataclass(ok)
