@@ -132,7 +132,7 @@ def main(argv=None) -> int:
         sim_s = args.duration_s * args.speed
         rig = subprocess.Popen([sys.executable, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
                                 f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(args.speed), "--duration-s",
-                                str(sim_s), "--seed", "12"], cwd=ROOT)
+                                str(sim_s), "--seed", "12", "--wait-s", "300"], cwd=ROOT)
         proc = psutil.Process(loop.pid)
         rss = []
         print(f"running the loop for {args.duration_s:.0f} s at {args.speed:g}x ...", file=sys.stderr)

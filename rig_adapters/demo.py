@@ -27,6 +27,10 @@ from pathlib import Path
 
 import tomli_w
 
+#: How long the simulated rig waits for the decoder to subscribe (s): the decoder loads its
+#: kernels first, which takes about a minute on a machine whose numba cache is still empty.
+RIG_WAIT_S = 300.0
+
 
 def free_loopback_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
@@ -84,7 +88,8 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
         decoder = subprocess.Popen(run_cmd, env=env)
         rig = subprocess.Popen([py, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
                                 f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(speed), "--duration-s",
-                                str(duration_s), "--seed", str(seed)], env=env, preexec_fn=others)
+                                str(duration_s), "--seed", str(seed), "--wait-s", str(RIG_WAIT_S)],
+                               env=env, preexec_fn=others)
         if monitor_state_endpoint is not None:
             monitor_state_endpoint.append(f"tcp://127.0.0.1:{ports['state']}")
         started = time.monotonic()

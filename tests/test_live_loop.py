@@ -57,7 +57,8 @@ def rig_setup(tmp_path_factory):
     return tmp, model, messages
 
 
-def _wait_for_subscriber(xpub, timeout_s=20.0):
+def _wait_for_subscriber(xpub, timeout_s=120.0):
+    # The loop subscribes once its kernels are loaded: about a minute where the numba cache is empty.
     if not xpub.poll(int(timeout_s * 1000)):
         raise AssertionError("the loop never subscribed to the test rig")
     xpub.recv()
