@@ -442,18 +442,17 @@ def decode(data: bytes) -> InputMessage:
     >>> decode(encode(Heartbeat(source="ephys", seq=4, t_s=12.5)))
     Heartbeat(source='ephys', seq=4, t_s=12.5)
     """
+    m = None
     if type(data) is bytes and len(data) <= _SMALL_FRAME_BYTES:
-        # The usual small frame, read without _unpack's layers; anything this
-        # path does not take is read again below, which names what is wrong.
+        # The usual small frame, unpacked without _unpack's layers (the same
+        # call as its small-frame branch); bytes that fail here are unpacked
+        # again by _unpack, only to name what is wrong.
         try:
             m = msgpack.unpackb(data, max_ext_len=0)
-        except Exception:  # noqa: BLE001 - _unpack below reads the frame again and names the error
+        except Exception:  # noqa: BLE001 - _unpack below names the error
             m = None
-        if type(m) is dict:
-            msg = _quick(m)
-            if msg is not None:
-                return msg
-    m = _unpack(data, MAX_FRAME_BYTES, _INPUT_LIMITS)
+    if type(m) is not dict:
+        m = _unpack(data, MAX_FRAME_BYTES, _INPUT_LIMITS)
     return _quick(m) or _INPUT_DECODERS[_envelope(m, INPUT_KINDS)](m)
 
 
