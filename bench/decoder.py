@@ -18,7 +18,7 @@ zone, with a per-unit background rate on top of the place fields so that
 about 100 units fire per window. Its figure feeds the replay benchmark
 (``bench/replay.py``), which holds the replay's own target.
 
-Two more figures: the time for :class:`decoder.place_model.PlaceModel` to
+Two more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
 take 30 simulated minutes (tracker at 50 Hz, 300 units) through its update
 methods and fit them, and the time for a fresh Python process, with numba's
 on-disk cache warm, to import the decoder and decode its first windows.
@@ -44,10 +44,10 @@ sys.path[:] = [p for p in sys.path if pathlib.Path(p or ".").resolve() != _HERE]
 import numba  # noqa: E402
 import numpy as np  # noqa: E402
 
-from decoder.decoding import BayesDecoder  # noqa: E402
-from decoder.environments import Arena, Environment, LinearTrack  # noqa: E402
-from decoder.place_model import PlaceModel  # noqa: E402
-from decoder.zones import CircleZone, zone_masks  # noqa: E402
+from decoder.inference.decoding import BayesDecoder  # noqa: E402
+from decoder.space.environments import Arena, Environment, LinearTrack  # noqa: E402
+from decoder.encoding.place_model import PlaceModel  # noqa: E402
+from decoder.space.zones import CircleZone, zone_masks  # noqa: E402
 
 WINDOW_S = 0.2
 STEP_S = 0.02
@@ -227,8 +227,8 @@ def fit_time_s(minutes: float, n_units: int, seed: int) -> float:
 
 WARM_START_SCRIPT = """
 import numpy as np
-from decoder.decoding import BayesDecoder
-from decoder.environments import Arena
+from decoder.inference.decoding import BayesDecoder
+from decoder.space.environments import Arena
 env = Arena.rectangle(100, 100, bin_cm=2.0)
 rates = np.full((300, env.n_bins), 1.0)
 dec = BayesDecoder(rates, env, env.valid_mask, 0.2, prior="state_space", random_walk_sd_cm=3.0)

@@ -39,7 +39,7 @@ import zmq
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from rig_adapters.demo import free_loopback_port  # noqa: E402
+from rig_adapters.sim.demo import free_loopback_port  # noqa: E402
 
 
 def bench_config(ports: dict, units: int, learn_s: float) -> dict:
@@ -130,7 +130,7 @@ def main(argv=None) -> int:
                                  "--summary", str(summary_path), "--idle-exit-s", "3"],
                                 cwd=ROOT, stderr=subprocess.DEVNULL)
         sim_s = args.duration_s * args.speed
-        rig = subprocess.Popen([sys.executable, "-m", "rig_adapters.simulated_rig", "--config", str(cfg), "--pub",
+        rig = subprocess.Popen([sys.executable, "-m", "rig_adapters.sim.simulated_rig", "--config", str(cfg), "--pub",
                                 f"tcp://127.0.0.1:{ports['rig']}", "--speed", str(args.speed), "--duration-s",
                                 str(sim_s), "--seed", "12", "--wait-s", "300"], cwd=ROOT)
         proc = psutil.Process(loop.pid)

@@ -1,7 +1,7 @@
 """Benchmark: does a monitor page slow the loop? Added latency with and without one.
 
 Run ``python bench/monitor.py --json out/monitor.json`` (``--quick`` for a
-short run). The same simulated demo session (``rig_adapters.demo.run_demo``:
+short run). The same simulated demo session (``rig_adapters.sim.demo.run_demo``:
 simulated rig, decoder loop, stimulator stand-in, all over loopback ZeroMQ)
 runs twice per repeat, alternating the order: once alone, once with
 ``placeloop monitor`` subscribed to its state stream and a headless chromium
@@ -38,8 +38,8 @@ sys.path[:] = [p for p in sys.path if Path(p or ".").resolve() != _HERE]
 
 import numpy as np  # noqa: E402
 
-from rig_adapters.demo import run_demo  # noqa: E402
-from rig_adapters.monitor import MONITOR_NICENESS  # noqa: E402
+from rig_adapters.sim.demo import run_demo  # noqa: E402
+from rig_adapters.monitor.server import MONITOR_NICENESS  # noqa: E402
 
 REPO = Path(__file__).resolve().parent.parent
 CONFIG = REPO / "configs" / "round_arena_goal.toml"
@@ -140,7 +140,7 @@ def one_run(with_page: bool, args: argparse.Namespace, out_dir: Path, tag: str) 
                 time.sleep(0.05)
             port = _free_port()
             monitor = subprocess.Popen(
-                [sys.executable, "-m", "rig_adapters.monitor", "--config", str(args.config),
+                [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(args.config),
                  "--state", endpoints[0], "--http-port", str(port)],
                 cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, preexec_fn=_off_loop_cpu)
             url = f"http://127.0.0.1:{port}/"

@@ -56,10 +56,11 @@ import numpy as np  # noqa: E402
 import tomli_w  # noqa: E402
 
 from decoder.config import parse_config  # noqa: E402
-from decoder.pipeline import StepOutput  # noqa: E402
-from rig_adapters.recorder import iter_records  # noqa: E402
-from rig_adapters.replay import record_simulated_session, replay_session  # noqa: E402
-from rig_adapters.sweep import default_workers, plan_sweep, pool_context, run_sweep  # noqa: E402
+from decoder.session.pipeline import StepOutput  # noqa: E402
+from rig_adapters.sessions.recorder import iter_records  # noqa: E402
+from rig_adapters.sessions.replay import replay_session  # noqa: E402
+from rig_adapters.sim.recording import record_simulated_session  # noqa: E402
+from rig_adapters.offline.sweep import default_workers, plan_sweep, pool_context, run_sweep  # noqa: E402
 
 TARGET_X_REALTIME = 200.0
 TARGET_SPEEDUP_2 = 1.7
@@ -133,7 +134,7 @@ def profile_replay(log_dir: pathlib.Path, top: int) -> tuple[list[dict], list[di
 
 
 def _source_name(filename: str) -> str:
-    """``decoder/pipeline.py`` for placeloop's files, ``numpy`` for a library, ``builtins`` for C."""
+    """``decoder/session/pipeline.py`` for placeloop's files, ``numpy`` for a library, ``builtins`` for C."""
     path = pathlib.Path(filename)
     if filename.startswith("~") or filename.startswith("<"):
         return "builtins"

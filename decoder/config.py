@@ -11,32 +11,158 @@ A config file has these tables (all optional but ``[environment]``)::
     [decoder]       window, step, prior            -> DecoderSettings
     [sources]       which stream is which          -> SourceSettings
     [session]       the automatic session plan     -> SessionSettings
-    [safety]        caps beneath every rule        -> decoder.triggers.SafetyCaps
-    [[zones]]       target zones                   -> decoder.zones
-    [[rules]]       trigger rules                  -> decoder.triggers.TriggerRule
+    [safety]        caps beneath every rule        -> SafetyCaps
+    [[zones]]       target zones                   -> decoder.space.zones
+    [[rules]]       trigger rules                  -> TriggerRule
     [endpoints]     ZeroMQ endpoints (shell only)  -> EndpointSettings
     [ttl]           serial TTL output (shell only) -> TtlSettings
-    [simulation]    the simulated rig (shell only), read by rig_adapters.simulation
+    [simulation]    the simulated rig (shell only), read by rig_adapters.sim.simulation
 """
 
 from __future__ import annotations
 
 import dataclasses
 import ipaddress
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import tomli_w
 
-from decoder.environments import Arena, Environment, LinearTrack, TrackGraph
-from decoder.triggers import SafetyCaps, TriggerRule
-from decoder.zones import zone_from_dict
+from decoder.space.environments import Arena, Environment, LinearTrack, TrackGraph
+from decoder.space.zones import zone_from_dict
 
 
 class ConfigError(ValueError):
     """A configuration value that cannot be used; the message names it."""
+
+
+# -- trigger rules and the caps beneath them ([[rules]], [safety]) -------------------------
+
+MODES = ("mass", "map")
+TRACKED = ("any", "inside", "outside")
+
+def _positive_int(owner: str, field_name: str, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise ValueError(f"{owner}: {field_name} must be a whole number of at least 1, got {value!r}")
+    return int(value)
+
+
+def _positive_seconds(owner: str, field_name: str, value: Any) -> float:
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{owner}: {field_name} must be a number of seconds, got {value!r}") from None
+    if not (math.isfinite(out) and out > 0):
+        raise ValueError(f"{owner}: {field_name} must be a positive, finite number of seconds, got {value!r}")
+    return out
+
+
+def _optional_speed(owner: str, field_name: str, value: Any) -> float | None:
+    if value is None:
+        return None
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{owner}: {field_name} must be a speed in cm/s or None, got {value!r}") from None
+    if not (math.isfinite(out) and out >= 0):
+        raise ValueError(f"{owner}: {field_name} must be a finite, non-negative speed in cm/s, got {value!r}")
+    return out
+
+
+@dataclass(frozen=True)
+class TriggerRule:
+    """When one zone should produce an event.
+
+    Parameters
+    ----------
+    name : str
+        Unique within a bank; written into every event.
+    zone : str
+        Name of the zone; must be one of the bank's ``zone_names``.
+    mode : {"mass", "map"}, default "mass"
+        ``"mass"``: posterior mass in the zone ``>= min_mass``.
+        ``"map"``: the maximum a posteriori bin lies in the zone.
+    min_mass : float, default 0.8
+        In (0, 1]; used by ``mode="mass"``.
+    consecutive_steps : int, default 3
+        Decoding steps in a row the condition must hold before the rule fires.
+    min_speed_cm_s, max_speed_cm_s : float or None
+        Inclusive bounds on the tracked speed; None leaves that side open.
+    tracked : {"any", "inside", "outside"}, default "any"
+        Where the tracked animal must be relative to the same zone.
+        ``"outside"`` serves experiments that act on a non-local
+        representation (decoded in the zone while the animal is elsewhere).
+    """
+
+    name: str
+    zone: str
+    mode: str = "mass"
+    min_mass: float = 0.8
+    consecutive_steps: int = 3
+    min_speed_cm_s: float | None = None
+    max_speed_cm_s: float | None = None
+    tracked: str = "any"
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.name, str) or not self.name.strip():
+            raise ValueError(f"a trigger rule needs a non-empty name, got {self.name!r}")
+        owner = f"trigger rule {self.name!r}"
+        if not isinstance(self.zone, str) or not self.zone.strip():
+            raise ValueError(f"{owner}: zone must be the non-empty name of a zone, got {self.zone!r}")
+        if self.mode not in MODES:
+            raise ValueError(f"{owner}: mode must be one of {MODES}, got {self.mode!r}")
+        if self.tracked not in TRACKED:
+            raise ValueError(f"{owner}: tracked must be one of {TRACKED}, got {self.tracked!r}")
+        try:
+            min_mass = float(self.min_mass)
+        except (TypeError, ValueError):
+            raise ValueError(f"{owner}: min_mass must be a number in (0, 1], got {self.min_mass!r}") from None
+        if not (0.0 < min_mass <= 1.0):
+            raise ValueError(f"{owner}: min_mass must be in (0, 1], got {self.min_mass!r}")
+        object.__setattr__(self, "min_mass", min_mass)
+        steps = _positive_int(owner, "consecutive_steps", self.consecutive_steps)
+        object.__setattr__(self, "consecutive_steps", steps)
+        lo = _optional_speed(owner, "min_speed_cm_s", self.min_speed_cm_s)
+        hi = _optional_speed(owner, "max_speed_cm_s", self.max_speed_cm_s)
+        if lo is not None and hi is not None and lo > hi:
+            raise ValueError(f"{owner}: min_speed_cm_s ({lo}) must not exceed max_speed_cm_s ({hi})")
+        object.__setattr__(self, "min_speed_cm_s", lo)
+        object.__setattr__(self, "max_speed_cm_s", hi)
+
+
+@dataclass(frozen=True)
+class SafetyCaps:
+    """Limits beneath every rule; none can be switched off.
+
+    Parameters
+    ----------
+    refractory_s : float, default 2.0
+        Least data time between two events of any rule.
+    max_per_minute : int, default 10
+        Most events in any 60 s of data time (sliding window).
+    max_per_session : int, default 200
+        Most events in the life of the bank; reaching it disarms the bank for good.
+    stall_limit_s : float, default 1.0
+        Largest tolerated lag of the slowest input stream behind data time;
+        beyond it the bank disarms itself (reason ``"stall"``).
+    """
+
+    refractory_s: float = 2.0
+    max_per_minute: int = 10
+    max_per_session: int = 200
+    stall_limit_s: float = 1.0
+
+    def __post_init__(self) -> None:
+        owner = "safety caps"
+        object.__setattr__(self, "refractory_s", _positive_seconds(owner, "refractory_s", self.refractory_s))
+        object.__setattr__(self, "stall_limit_s", _positive_seconds(owner, "stall_limit_s", self.stall_limit_s))
+        object.__setattr__(self, "max_per_minute", _positive_int(owner, "max_per_minute", self.max_per_minute))
+        object.__setattr__(self, "max_per_session", _positive_int(owner, "max_per_session", self.max_per_session))
+
 
 
 def _from_table(cls, table: dict | None, where: str):
@@ -62,7 +188,7 @@ def _positive(where: str, **values: float) -> None:
 
 @dataclass(frozen=True)
 class ModelSettings:
-    """How the place model learns (see ``decoder.place_model.PlaceModel``)."""
+    """How the place model learns (see ``decoder.encoding.place_model.PlaceModel``)."""
 
     #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s.
     min_speed_cm_s: float = 3.0
@@ -98,7 +224,7 @@ class ModelSettings:
 
 @dataclass(frozen=True)
 class DecoderSettings:
-    """The decoding step (see ``decoder.decoding.BayesDecoder``)."""
+    """The decoding step (see ``decoder.inference.decoding.BayesDecoder``)."""
 
     #: Length of the spike-count window (s); 0.2 for behaviour, 0.02 for fast events.
     window_s: float = 0.2

@@ -1,6 +1,6 @@
 """Typed input messages: what the pipeline consumes.
 
-The wire codec (``rig_adapters.protocol``) turns bytes into these and back;
+The wire codec (``rig_adapters.wire.protocol``) turns bytes into these and back;
 the pipeline never sees bytes. Every message carries the name of its source
 and that source's sequence number, so that gaps can be counted, and its
 timestamps are acquisition (data) time in float seconds on the source's clock.

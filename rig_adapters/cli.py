@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import importlib
 import json
 import logging
 import os
@@ -26,27 +25,16 @@ import time
 from pathlib import Path
 
 from decoder.config import ConfigError, load_config
+from rig_adapters.console import CAUTION, setup_logging
+from rig_adapters.monitor import server as monitor_server
+from rig_adapters.offline import report, sweep
 
 log = logging.getLogger("placeloop")
 
-CAUTION = """\
-CAUTION: placeloop drives reward and stimulation hardware that acts on a living animal.
-  - Software is no hardware interlock: keep hardware limits (current, duration, pump volume) and a
-    physical cut-off on the stimulator or reward line itself.
-  - Stay inside your approved animal-use protocol and your local rules for every setting you arm.
-  - Dry-run every configuration on recorded or simulated data (placeloop demo, placeloop run --dry-run)
-    before a live animal is connected."""
-
 #: Subcommands handed whole to a module's own ``main(argv)``.
-DELEGATED = {"monitor": "monitor", "sweep": "sweep", "report": "report"}
+DELEGATED = {"monitor": monitor_server.main, "sweep": sweep.main, "report": report.main}
 
 DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"
-
-
-def setup_logging(verbose: int) -> None:
-    """The log format of every subcommand; -v info, -vv debug (no-op if logging is set up already)."""
-    level = logging.WARNING if verbose == 0 else logging.INFO if verbose == 1 else logging.DEBUG
-    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr)
 
 
 def _with_endpoints(config, rig=None, events=None, state=None, control=None):
@@ -62,11 +50,12 @@ def _with_endpoints(config, rig=None, events=None, state=None, control=None):
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from decoder.pipeline import Pipeline
-    from decoder.place_model import ModelFileError, PlaceModel
-    from rig_adapters.loop import LiveLoop, _jsonable
-    from rig_adapters.recorder import SessionRecorder
-    from rig_adapters.warm_up import warm_up
+    from decoder.session.pipeline import Pipeline
+    from decoder.encoding.place_model import ModelFileError, PlaceModel
+    from rig_adapters.live.loop import LiveLoop
+    from rig_adapters.sessions.summary import jsonable
+    from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, SessionRecorder
+    from rig_adapters.live.warm_up import warm_up
 
     print(CAUTION, file=sys.stderr)
     if args.cpu:
@@ -95,15 +84,15 @@ def cmd_run(args: argparse.Namespace) -> int:
     pipeline = Pipeline(config, model=model)
     recorder = None
     if args.log:
-        from rig_adapters import protocol
+        from rig_adapters.wire import protocol
 
         recorder = SessionRecorder(args.log, metadata={"config": str(args.config), "protocol": protocol.PROTOCOL_VERSION})
-        recorder.write_sidecar("config.toml", config.source_text.encode())
+        recorder.write_sidecar(CONFIG_SIDECAR, config.source_text.encode())
         if args.model:
-            recorder.write_sidecar("initial_model.npz", Path(args.model).read_bytes())
+            recorder.write_sidecar(INITIAL_MODEL_SIDECAR, Path(args.model).read_bytes())
     ttl = None
     if config.ttl.device:
-        from rig_adapters.ttl import TtlLine
+        from rig_adapters.live.ttl import TtlLine
 
         try:
             ttl = TtlLine(config.ttl.device, config.ttl.baud, config.ttl.pulse_byte)
@@ -129,14 +118,14 @@ def cmd_run(args: argparse.Namespace) -> int:
                 print(f"error: the session log could not be completed: {exc}", file=sys.stderr)
     summary = loop.summary()
     if args.summary:
-        Path(args.summary).write_text(json.dumps(_jsonable(summary), indent=2))
+        Path(args.summary).write_text(json.dumps(jsonable(summary), indent=2))
     print(json.dumps({"decode": summary["decode"], "triggers": {"count": summary["triggers"]["count"]}}),
           file=sys.stderr)
     return 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from rig_adapters.demo import run_demo
+    from rig_adapters.sim.demo import run_demo
 
     print(CAUTION, file=sys.stderr)
     return run_demo(
@@ -151,7 +140,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_sim(args: argparse.Namespace) -> int:
-    from rig_adapters import simulated_rig
+    from rig_adapters.sim import simulated_rig
 
     argv = ["--config", args.config, "--speed", str(args.speed), "--duration-s", str(args.duration_s),
             "--seed", str(args.seed)]
@@ -163,7 +152,7 @@ def cmd_sim(args: argparse.Namespace) -> int:
 def cmd_control(args: argparse.Namespace) -> int:
     import zmq
 
-    from rig_adapters import protocol
+    from rig_adapters.wire import protocol
 
     command = args.command.replace("-", "_")
     cmd_args = {}
@@ -195,10 +184,10 @@ def cmd_control(args: argparse.Namespace) -> int:
 
 def cmd_replay(args: argparse.Namespace) -> int:
     from decoder.config import parse_settings, with_overrides
-    from decoder.place_model import ModelFileError, PlaceModel
-    from rig_adapters.loop import _jsonable
-    from rig_adapters.recorder import LogFormatError
-    from rig_adapters.replay import replay_session, session_config
+    from decoder.encoding.place_model import ModelFileError, PlaceModel
+    from rig_adapters.sessions.summary import jsonable
+    from rig_adapters.sessions.recorder import LogFormatError
+    from rig_adapters.sessions.replay import replay_session, session_config
 
     try:
         config = load_config(args.config) if args.config else session_config(args.log)
@@ -221,7 +210,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
           f"{b['misses']} missed, {b['false_events']} false; behavioural latency p50 {b['latency_ms']['p50']} ms")
     print(f"digest {s['decode']['digest']}")
     if args.summary:
-        Path(args.summary).write_text(json.dumps(_jsonable(s), indent=2))
+        Path(args.summary).write_text(json.dumps(jsonable(s), indent=2))
     return 0
 
 
@@ -296,9 +285,8 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     if argv[:1] and argv[0] in DELEGATED:
-        # These subcommands parse their own options (python -m rig_adapters.<module>).
-        module = importlib.import_module(f"rig_adapters.{DELEGATED[argv[0]]}")
-        return module.main(argv[1:])
+        # These subcommands parse their own options.
+        return DELEGATED[argv[0]](argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
     setup_logging(args.verbose)

@@ -1,9 +1,9 @@
-"""Window binning and step scheduling (decoder.binning)."""
+"""Window binning and step scheduling (decoder.inference.binning)."""
 
 import numpy as np
 import pytest
 
-from decoder.binning import SpikeWindow, StepSchedule
+from decoder.inference.binning import SpikeWindow, StepSchedule
 
 
 def _reference_counts(t, rows, t_end, window_s, n_units):
@@ -39,8 +39,8 @@ def test_discard_keeps_what_later_windows_need():
 
 
 def test_decoding_a_window_forgets_what_is_older_than_it():
-    from decoder.decoding import BayesDecoder
-    from decoder.environments import LinearTrack
+    from decoder.inference.decoding import BayesDecoder
+    from decoder.space.environments import LinearTrack
 
     env = LinearTrack((0, 0), (30, 0), bin_cm=10)
     decoder = BayesDecoder(np.array([[1.0, 5.0, 9.0]] * 3), env, np.ones(3, bool), window_s=0.1)
@@ -80,7 +80,7 @@ def test_bad_window_settings_are_refused():
 
 def test_window_counts_kernel_matches_its_numpy_twin():
     # Twin check (common practice here): the compiled kernel and the plain numpy one agree exactly.
-    from decoder.binning import window_counts, window_counts_numpy
+    from decoder.inference.binning import window_counts, window_counts_numpy
 
     rng = np.random.default_rng(4)
     t = np.sort(rng.uniform(0, 2, 500))
@@ -117,7 +117,7 @@ def test_window_survives_many_compactions_and_late_batches():
 
 def test_append_known_spikes_kernel_matches_its_numpy_twin():
     # Twin check (common practice here): ids inside, below and above the table, ids the table lacks, late spikes.
-    from decoder.binning import append_known_spikes, append_known_spikes_numpy
+    from decoder.inference.binning import append_known_spikes, append_known_spikes_numpy
 
     table = np.array([3, -1, 0, 1, -1, 2], np.int64)      # units 10..15
     ids = np.array([10, 11, 12, 9, 16, 15, 13, -4, 10], np.int64)

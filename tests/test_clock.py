@@ -1,4 +1,4 @@
-"""Tests for decoder.clock: least-squares clock fits and the pulse aligner.
+"""Tests for decoder.session.clock: least-squares clock fits and the pulse aligner.
 
 The fit is checked against numpy.polyfit and scipy.stats.linregress
 (reference libraries). Pulse trains are built from a known offset and drift;
@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from decoder.clock import ClockAligner, ClockMismatchError, fit_clock
+from decoder.session.clock import ClockAligner, ClockMismatchError, fit_clock
 
 OFFSET_S = 1234.5678
 DRIFT_PPM = 20.0

@@ -1,4 +1,4 @@
-"""Tests of decoder.decoding: BayesDecoder and RandomWalk against outside references.
+"""Tests of decoder.inference.decoding: BayesDecoder and RandomWalk against outside references.
 
 References used: scipy.stats.poisson (likelihood), hmmlearn.hmm.PoissonHMM
 (forward pass of the state-space filter), closed-form posteriors. Rate maps
@@ -14,8 +14,8 @@ import pytest
 from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
-from decoder.decoding import BayesDecoder, DecodedStep, RandomWalk
-from decoder.environments import Arena, LinearTrack, TrackGraph
+from decoder.inference.decoding import BayesDecoder, DecodedStep, RandomWalk
+from decoder.space.environments import Arena, LinearTrack, TrackGraph
 
 BACKENDS = ["numba", "numpy"]
 

@@ -1,4 +1,4 @@
-"""Tests for decoder.environments.
+"""Tests for decoder.space.environments.
 
 Each check of the science names its source beside the assertion. Positions
 are drawn at random only to probe the geometry; no simulated cells are used.
@@ -16,7 +16,7 @@ from scipy.sparse import csr_array
 from scipy.sparse.csgraph import shortest_path
 from scipy.spatial.distance import cdist
 
-from decoder.environments import MAX_BINS, Arena, Environment, LinearTrack, TrackGraph, points_in_polygon
+from decoder.space.environments import MAX_BINS, Arena, Environment, LinearTrack, TrackGraph, points_in_polygon
 
 RNG_SEED = 20240611
 

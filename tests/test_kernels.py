@@ -1,4 +1,4 @@
-"""Tests of decoder._kernels: each kernel against an outside reference and against its numpy twin.
+"""Tests of decoder.inference._kernels: each kernel against an outside reference and against its numpy twin.
 
 Twin tolerance: the compiled kernels add the same terms in a different order
 (blocked sums, two-pass convolution), so results agree to a few units in the
@@ -15,7 +15,7 @@ import pytest
 from scipy import ndimage, stats
 from scipy.special import gammaln
 
-from decoder import _kernels as K
+from decoder.inference import _kernels as K
 
 TWIN_RTOL = 1e-12
 

@@ -1,8 +1,8 @@
-"""Latency samples in bounded memory (rig_adapters.loop.LatencySeries)."""
+"""Latency samples in bounded memory (rig_adapters.live.loop.LatencySeries)."""
 
 import numpy as np
 
-from rig_adapters.loop import LatencyLog, LatencySeries
+from rig_adapters.sessions.summary import LatencyLog, LatencySeries
 
 
 def test_percentiles_match_numpy_within_the_bin_width():

@@ -21,11 +21,11 @@ import zmq
 
 from decoder.config import parse_config
 from decoder.messages import SourceAnnounce, SpikeBatch, TrackerFrames
-from decoder.pipeline import Pipeline
-from rig_adapters import protocol
-from rig_adapters.demo import free_loopback_port
-from rig_adapters.recorder import read_log
-from rig_adapters.simulation import SimulatedSession, SimulationSettings
+from decoder.session.pipeline import Pipeline
+from rig_adapters.wire import protocol
+from rig_adapters.sim.demo import free_loopback_port
+from rig_adapters.sessions.recorder import read_log
+from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
 
 ROOT = Path(__file__).resolve().parent.parent
 

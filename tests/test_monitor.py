@@ -1,4 +1,4 @@
-"""The live monitor (rig_adapters.monitor): its figures, its server, and the page in a real browser.
+"""The live monitor (rig_adapters.monitor.server): its figures, its server, and the page in a real browser.
 
 References used below: numpy (``median``, ``histogram``) as the independent
 reference for the rolling error, the error trace and the latency histogram;
@@ -33,8 +33,8 @@ import zmq.asyncio
 from aiohttp import web
 
 from decoder.config import parse_config
-from rig_adapters import protocol
-from rig_adapters.monitor import (
+from rig_adapters.wire import protocol
+from rig_adapters.monitor.server import (
     LATENCY_EDGES_MS,
     ROLLING_ERROR_S,
     SEND_INTERVAL_S,
@@ -355,7 +355,7 @@ CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic"
 def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
     from playwright.sync_api import sync_playwright
 
-    from rig_adapters.demo import run_demo
+    from rig_adapters.sim.demo import run_demo
 
     config_path = REPO / "configs" / "round_arena_goal.toml"
     endpoints: list[str] = []
@@ -373,7 +373,7 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
         time.sleep(0.1)
     http_port = free_port()
     monitor = subprocess.Popen(
-        [sys.executable, "-m", "rig_adapters.monitor", "--config", str(config_path), "--state", endpoints[0],
+        [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(config_path), "--state", endpoints[0],
          "--http-port", str(http_port)],
         cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
     )

@@ -1,4 +1,4 @@
-"""The session pipeline driven by lists of messages (decoder.pipeline).
+"""The session pipeline driven by lists of messages (decoder.session.pipeline).
 
 The simulated session here is invented data; it drives the plumbing (states,
 clocks, counters, determinism). The one figure of merit, the decoding error,
@@ -13,8 +13,8 @@ import tomli_w
 
 from decoder.config import parse_config
 from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
-from decoder.pipeline import LearningProgress, Notice, Pipeline, StepOutput
-from rig_adapters.simulation import SimulatedSession, SimulationSettings
+from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
 
 CONFIG = {
     "environment": {"kind": "rectangle", "width_cm": 80.0, "height_cm": 80.0, "bin_cm": 4.0},

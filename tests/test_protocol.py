@@ -1,4 +1,4 @@
-"""The wire codec (rig_adapters.protocol) on real bytes.
+"""The wire codec (rig_adapters.wire.protocol) on real bytes.
 
 References used below: the MessagePack specification (msgpack/msgpack,
 spec.md: format bytes for fixmap, fixstr, float 64, bin 8, array 32, ext);
@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 import zmq
 
-import rig_adapters
+from rig_adapters.wire import protocol
 from decoder.messages import (
     MAX_BATCH,
     ControlCommand,
@@ -32,7 +32,7 @@ from decoder.messages import (
     SyncPulse,
     TrackerFrames,
 )
-from rig_adapters.protocol import (
+from rig_adapters.wire.protocol import (
     MAX_FRAME_BYTES,
     PROTOCOL_VERSION,
     REASONS,
@@ -48,7 +48,7 @@ from rig_adapters.protocol import (
     encode_state,
 )
 
-PROTOCOL_MD = Path(rig_adapters.__file__).with_name("PROTOCOL.md")
+PROTOCOL_MD = Path(protocol.__file__).with_name("PROTOCOL.md")
 
 
 def pack(m: dict) -> bytes:
@@ -675,7 +675,7 @@ def test_single_bad_frame_as_bin_keeps_its_reason(t, x, reason):
 def test_the_quick_reader_gives_what_the_general_reader_gives(m):
     # The usual heartbeat, spike batch and single frame take protocol._quick; the
     # general readers are the reference for what the message must hold.
-    from rig_adapters.protocol import _INPUT_DECODERS
+    from rig_adapters.wire.protocol import _INPUT_DECODERS
 
     assert_same(decode(pack(m)), _INPUT_DECODERS[m["k"]](msgpack.unpackb(pack(m))))
 

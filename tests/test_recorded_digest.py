@@ -10,7 +10,7 @@ promise (a replay reproduces the live run), not a figure of merit.
 
 from pathlib import Path
 
-from rig_adapters.replay import replay_session
+from rig_adapters.sessions.replay import replay_session
 
 FIXTURE = Path(__file__).resolve().parent / "fixtures" / "demo_session"
 # Printed by the live run that recorded the fixture (its summary's decode.digest).

@@ -1,10 +1,10 @@
-"""Tests for rig_adapters.recorder: the crash-safe session log.
+"""Tests for rig_adapters.sessions.recorder: the crash-safe session log.
 
 Real files and real processes throughout: a subprocess is killed with
 SIGKILL mid-run, another writes against a file-size limit set with
 setrlimit so that the kernel refuses writes, a third is killed while
 replacing a sidecar. The byte layout is checked against the format document
-(rig_adapters/LOG_FORMAT.md) with the plain-Python reader printed there,
+(rig_adapters/sessions/LOG_FORMAT.md) with the plain-Python reader printed there,
 and CRC-32 against its published check value.
 
 Payloads are arbitrary bytes made up for the test; the recorder never looks
@@ -26,9 +26,9 @@ from pathlib import Path
 
 import pytest
 
-from rig_adapters import recorder
-from rig_adapters.protocol import PROTOCOL_VERSION
-from rig_adapters.recorder import (
+from rig_adapters.sessions import recorder
+from rig_adapters.wire.protocol import PROTOCOL_VERSION
+from rig_adapters.sessions.recorder import (
     FLUSH_BYTES,
     FORMAT_VERSION,
     LOG_NAME,
@@ -349,7 +349,7 @@ def test_sidecar_killed_mid_write_is_old_or_new_never_a_mix(tmp_path):
     child = start_counting_child(
         """
         import os, struct, sys
-        from rig_adapters.recorder import SessionRecorder
+        from rig_adapters.sessions.recorder import SessionRecorder
         rec = SessionRecorder(sys.argv[1], fsync="never")
         i = 0
         while True:
@@ -403,7 +403,7 @@ def kill_after(child, at_least, timeout_s=30.0):
 RECORDS_PER_FLUSH = 16
 KILL_CHILD = f"""
 import os, struct, sys
-from rig_adapters.recorder import SessionRecorder
+from rig_adapters.sessions.recorder import SessionRecorder
 rec = SessionRecorder(sys.argv[1], flush_interval_s={RECORDS_PER_FLUSH}/1024, fsync="never")
 i = 0
 while True:
@@ -438,7 +438,7 @@ def test_a_disk_that_refuses_writes_loses_nothing_and_never_raises_in_the_loop(t
     out = run_child(
         """
         import json, resource, signal, sys
-        import rig_adapters.recorder as recorder
+        import rig_adapters.sessions.recorder as recorder
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
         recorder.MAX_BUFFER_BYTES = 6000  # small, so that the outage fills it
         rec = recorder.SessionRecorder(sys.argv[1], flush_interval_s=0.0, fsync="never")

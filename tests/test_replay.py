@@ -1,4 +1,4 @@
-"""Replaying recorded sessions (rig_adapters.replay, placeloop replay).
+"""Replaying recorded sessions (rig_adapters.sessions.replay, placeloop replay).
 
 The sessions are the simulated rig's (invented data). What is checked is the
 replay's promise: the same bytes through the same pipeline give the same
@@ -16,8 +16,9 @@ import pytest
 import tomli_w
 
 from decoder.config import ConfigError, load_config, parse_config, with_overrides
-from rig_adapters.recorder import LogFormatError
-from rig_adapters.replay import record_simulated_session, replay_session
+from rig_adapters.sessions.recorder import LogFormatError
+from rig_adapters.sessions.replay import replay_session
+from rig_adapters.sim.recording import record_simulated_session
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_CONFIG = ROOT / "configs" / "round_arena_goal.toml"

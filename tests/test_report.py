@@ -1,4 +1,4 @@
-"""The session report (rig_adapters.report, placeloop report).
+"""The session report (rig_adapters.offline.report, placeloop report).
 
 The sessions are the simulated rig's (invented data). What is checked: the
 HTML is one self-contained file (every section, every image a valid PNG,
@@ -29,12 +29,15 @@ import tomli_w
 from PIL import Image
 
 from decoder.config import parse_config
-from decoder.pipeline import Pipeline, StepOutput
-from rig_adapters import protocol, report
-from rig_adapters.ingest import CHANNEL_EVENTS, CHANNEL_RIG, Ingest
-from rig_adapters.recorder import SessionRecorder, iter_records, read_log
-from rig_adapters.replay import CONFIG_SIDECAR, record_simulated_session, replay_session
-from rig_adapters.report import build_parser, main, write_report
+from decoder.session.pipeline import Pipeline, StepOutput
+from rig_adapters.offline import report
+from rig_adapters.wire import protocol
+from rig_adapters.wire.ingest import CHANNEL_EVENTS, CHANNEL_RIG, Ingest
+from rig_adapters.sessions.recorder import SessionRecorder, iter_records, read_log
+from rig_adapters.sessions.recorder import CONFIG_SIDECAR
+from rig_adapters.sessions.replay import replay_session
+from rig_adapters.sim.recording import record_simulated_session
+from rig_adapters.offline.report import build_parser, main, write_report
 
 pytestmark = pytest.mark.timeout(120)
 

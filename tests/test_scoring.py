@@ -1,8 +1,8 @@
-"""Online scores: error percentiles and zone visits matched to events (decoder.scoring)."""
+"""Online scores: error percentiles and zone visits matched to events (decoder.session.scoring)."""
 
 import numpy as np
 
-from decoder.scoring import ErrorHistogram, VisitScore
+from decoder.session.scoring import ErrorHistogram, VisitScore
 
 
 def test_histogram_percentiles_match_numpy_within_the_resolution():

@@ -1,4 +1,4 @@
-"""Tests of rig_adapters.simulated_rig: the simulated rig as a real process on real ZeroMQ sockets.
+"""Tests of rig_adapters.sim.simulated_rig: the simulated rig as a real process on real ZeroMQ sockets.
 
 Every socket binds or connects on 127.0.0.1 only.
 """
@@ -17,9 +17,9 @@ import pytest
 import zmq
 
 from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
-from rig_adapters import protocol
-from rig_adapters.simulated_rig import CAUTION, run_rig
-from rig_adapters.simulation import SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE
+from rig_adapters.wire import protocol
+from rig_adapters.sim.simulated_rig import CAUTION, run_rig
+from rig_adapters.sim.simulation import SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE
 
 REPO = Path(__file__).resolve().parents[1]
 ARENA_CONFIG = REPO / "configs" / "round_arena_goal.toml"
@@ -33,7 +33,7 @@ def _free_port() -> int:
 
 
 def _start_rig(config: Path, port: int, *extra: str) -> subprocess.Popen:
-    cmd = [sys.executable, "-m", "rig_adapters.simulated_rig", "--config", str(config),
+    cmd = [sys.executable, "-m", "rig_adapters.sim.simulated_rig", "--config", str(config),
            "--pub", f"tcp://127.0.0.1:{port}", *extra]
     return subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
 
@@ -145,7 +145,7 @@ def test_run_rig_checks_its_arguments(kwargs, words):
 
 
 def test_help_carries_the_animal_safety_caution():
-    out = subprocess.run([sys.executable, "-m", "rig_adapters.simulated_rig", "--help"], cwd=REPO,
+    out = subprocess.run([sys.executable, "-m", "rig_adapters.sim.simulated_rig", "--help"], cwd=REPO,
                          capture_output=True, text=True, timeout=30).stdout
     assert "no hardware interlock" in " ".join(out.split())
     assert "animal-use protocol" in CAUTION

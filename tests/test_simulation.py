@@ -1,4 +1,4 @@
-"""Tests of rig_adapters.simulation: the generative model behind the simulated rig.
+"""Tests of rig_adapters.sim.simulation: the generative model behind the simulated rig.
 
 The sessions here are simulated, so every check is a sanity bound on the
 generator against an outside reference (a published formula, scipy, numpy,
@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from decoder.environments import Arena, LinearTrack, TrackGraph
+from decoder.space.environments import Arena, LinearTrack, TrackGraph
 from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
-from rig_adapters.simulation import (
+from rig_adapters.sim.simulation import (
     SPIKE_SOURCE,
     TRACKER_SOURCE,
     TRUTH_SOURCE,

@@ -1,4 +1,4 @@
-"""Tests for decoder.spatial_metrics.
+"""Tests for decoder.encoding.spatial_metrics.
 
 Each check of the science names its source beside the assertion: a closed
 form from the cited paper, a reference library (scipy, numpy), or common
@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from scipy.stats import entropy
 
-from decoder.environments import Arena, LinearTrack
-from decoder.spatial_metrics import (
+from decoder.space.environments import Arena, LinearTrack
+from decoder.encoding.spatial_metrics import (
     field_size,
     gridness_score,
     skaggs_information,

@@ -1,6 +1,6 @@
-"""Sequence-number bookkeeping (decoder.stream_health)."""
+"""Sequence-number bookkeeping (decoder.session.streams)."""
 
-from decoder.stream_health import StreamHealth
+from decoder.session.streams import StreamHealth
 
 
 def test_gaps_duplicates_and_restarts_are_told_apart():

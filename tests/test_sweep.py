@@ -15,9 +15,10 @@ import numpy as np
 import pytest
 
 from decoder.config import ConfigError, parse_config, with_overrides
-from rig_adapters.recorder import LogFormatError
-from rig_adapters.replay import record_simulated_session, replay_session, session_config
-from rig_adapters.sweep import (
+from rig_adapters.sessions.recorder import LogFormatError
+from rig_adapters.sessions.replay import replay_session, session_config
+from rig_adapters.sim.recording import record_simulated_session
+from rig_adapters.offline.sweep import (
     FRONT_FIGURES,
     TIMING_FIGURES,
     aggregate,

@@ -1,8 +1,8 @@
-"""Tracked-position lookup and running speed (decoder.tracking)."""
+"""Tracked-position lookup and running speed (decoder.session.tracking)."""
 
 import numpy as np
 
-from decoder.tracking import TrackHistory
+from decoder.session.tracking import TrackHistory
 
 
 def test_speed_of_a_constant_velocity_run():

@@ -1,8 +1,8 @@
-"""Tests for decoder.triggers: rules, safety caps and the armed state.
+"""Tests for decoder.session.triggers: rules, safety caps and the armed state.
 
 Each test drives a TriggerBank with a hand-written list of StepInput and
 checks every output. The rules under test are the documented semantics in
-decoder/triggers.py; where a behaviour is a convention of closed-loop rigs
+decoder/session/triggers.py; where a behaviour is a convention of closed-loop rigs
 rather than a published result it is marked "common practice".
 """
 
@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 
-from decoder.triggers import (
+from decoder.session.triggers import (
     SafetyCaps,
     SessionCapError,
     StepInput,

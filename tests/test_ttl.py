@@ -1,8 +1,8 @@
-"""The serial TTL line (rig_adapters.ttl), through pyserial's loopback URL."""
+"""The serial TTL line (rig_adapters.live.ttl), through pyserial's loopback URL."""
 
 import pytest
 
-from rig_adapters.ttl import TtlLine
+from rig_adapters.live.ttl import TtlLine
 
 
 def test_each_pulse_writes_one_byte_read_back_through_the_loopback():

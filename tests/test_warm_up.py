@@ -1,4 +1,4 @@
-"""Loading the kernels before any data arrives (rig_adapters.warm_up)."""
+"""Loading the kernels before any data arrives (rig_adapters.live.warm_up)."""
 
 import subprocess
 import sys
@@ -11,8 +11,9 @@ def test_warm_up_leaves_every_per_step_kernel_ready_in_a_fresh_process():
     # Common practice for numba code on a latency budget: compile (or load) before the first real call.
     # A fresh process, so that no earlier test has loaded the kernels already.
     code = (
-        "from rig_adapters.warm_up import warm_up\n"
-        "from decoder import _kernels, binning, messages\n"
+        "from rig_adapters.live.warm_up import warm_up\n"
+        "from decoder import messages\n"
+        "from decoder.inference import _kernels, binning\n"
         "kernels = (_kernels.decode_window_step, binning.append_known_spikes, messages.finite_non_decreasing)\n"
         "assert not any(k.signatures for k in kernels)\n"
         "steps = warm_up()\n"
@@ -27,7 +28,7 @@ def test_warm_up_leaves_every_per_step_kernel_ready_in_a_fresh_process():
 
 def test_the_sweep_fork_server_module_warms_up_on_import():
     done = subprocess.run(
-        [sys.executable, "-c", "import rig_adapters.sweep_worker; from decoder import _kernels; "
+        [sys.executable, "-c", "import rig_adapters.offline.sweep_worker; from decoder.inference import _kernels; "
                                "print(len(_kernels.decode_window_step.signatures))"],
         cwd=ROOT, capture_output=True, text=True, timeout=600,
     )

@@ -1,4 +1,4 @@
-"""Tests for decoder.zones.
+"""Tests for decoder.space.zones.
 
 Geometry is checked against matplotlib's point-in-polygon (a reference
 library) and against closed-form areas; the random points below are test
@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from matplotlib.path import Path
 
-from decoder.environments import Arena, LinearTrack, TrackGraph
-from decoder.zones import (
+from decoder.space.environments import Arena, LinearTrack, TrackGraph
+from decoder.space.zones import (
     CircleZone,
     IntervalZone,
     PolygonZone,
@@ -118,7 +118,7 @@ def test_lost_positions_are_never_inside(zone):
 def test_boundaries_are_closed():
     circle = CircleZone("c", (10.0, 10.0), 4.0)
     rect = RectangleZone("r", 0.0, 2.0, 0.0, 3.0)
-    # Documented convention of decoder.zones (not a published fact): edges are inside.
+    # Documented convention of decoder.space.zones (not a published fact): edges are inside.
     assert circle.contains(np.array([[14.0, 10.0], [10.0, 6.0]])).all()
     assert rect.contains(np.array([[0.0, 0.0], [2.0, 3.0], [1.0, 3.0]])).all()
 

@@ -1,0 +1,1332 @@
+"""Numerical kernels of the Bayesian decoder, each with a plain numpy twin.
+
+Every kernel ``name`` is compiled with numba and has a twin ``name_numpy``
+with the same signature and the same result. Tests use the twins as the
+reference; ``bench/decoder.py`` uses them as the baseline. Kernels write into
+caller-owned ``out`` (and ``scratch``) arrays so that the decoding loop
+allocates nothing large per step but the posterior it hands out; a twin takes
+the same arguments even where numpy needs no scratch space, so that the two
+are interchangeable.
+
+:func:`decode_step` is what the decoder calls: one window from check to
+summaries in one call, with the arithmetic of the separate kernels (which
+remain, each checked against an outside reference) and an incremental
+log-likelihood. Its twin composes the separate twins.
+
+Bins are flattened as in ``decoder.space.environments`` (row-major for a grid:
+``bin = iy * nx + ix``). Posterior vectors hold exactly 0 outside the valid
+bins.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+from numba.core import types
+from numba.extending import intrinsic
+
+#: A bin whose log-likelihood lies this far below the best valid bin gets
+#: weight exactly 0: exp(-700) ~ 1e-304 is below anything a posterior can
+#: resolve, and skipping it keeps subnormal numbers out of the arithmetic.
+LOG_WEIGHT_FLOOR = -700.0
+
+#: Normalised posterior values below this are stored as 0, for the same reason.
+PROB_FLOOR = 1e-300
+
+#: If prior times likelihood (scaled so that the best valid bin has
+#: likelihood 1) sums to less than this, the prior has no mass where the
+#: spikes point and the product has underflowed; the caller must fall back.
+MIN_EVIDENCE = 1e-300
+
+#: Bins per block of ``poisson_log_likelihood`` (8 KiB of float64).
+_LIKELIHOOD_BLOCK = 1024
+
+#: Value buckets per refinement pass of ``hpd_size``.
+_HPD_BUCKETS = 256
+
+#: Below this many candidates ``hpd_size`` sorts instead of bucketing.
+_HPD_SORT_BELOW = 32
+
+#: Each pass of ``hpd_size`` gathers the values within this factor below
+#: those of the previous pass (the first: below the peak).
+_HPD_GATHER_FACTOR = 2.0**-8
+
+
+# ---------------------------------------------------------------------------
+# Scalar helpers the compiler can vectorise
+# ---------------------------------------------------------------------------
+
+# numba calls the C library's scalar exp, which no loop can vectorise (there
+# is no vector maths library without SVML), and a plain float sum is a chain
+# of dependent additions. Over 10,000 bins the two helpers below are about 3x
+# and 8x faster. The exp is the textbook one: d = k ln2 + r with
+# |r| <= ln2 / 2 (Cody & Waite 1980, Software Manual for the Elementary
+# Functions, Prentice-Hall, with ln2 split in two parts so that k ln2 is
+# exact), a degree-13 Taylor polynomial for exp(r) (truncation error below
+# 1e-17) evaluated with fused multiply-adds where the CPU has them, and 2^k
+# built from its IEEE 754 bits (a table lookup would be a gather, slow in
+# vector code); tests check it against numpy.exp.
+
+_LN2_HI = 6.93147180369123816490e-01
+_LN2_LO = 1.90821492927058770002e-10
+_INV_LN2 = 1.44269504088896338700e00
+_C2, _C3, _C4, _C5, _C6, _C7, _C8, _C9, _C10, _C11, _C12, _C13 = (1.0 / math.factorial(k) for k in range(2, 14))
+
+
+@intrinsic
+def _float_from_bits(typingctx, bits):
+    """The float64 whose IEEE 754 bit pattern is the int64 ``bits``."""
+    if bits != types.int64:
+        return None
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.float64))
+
+    return types.float64(types.int64), codegen
+
+
+@intrinsic
+def _bits_of_float(typingctx, x):
+    """The int64 with the IEEE 754 bit pattern of the float64 ``x``."""
+    if x != types.float64:
+        return None
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.int64))
+
+    return types.int64(types.float64), codegen
+
+
+@numba.njit(cache=True, fastmath={"contract"})
+def _exp_nonpositive(d):
+    """``exp(d)`` for ``LOG_WEIGHT_FLOOR <= d <= 0``, to 1 ulp, in vectorisable form.
+
+    Parameters
+    ----------
+    d : float
+
+    Returns
+    -------
+    float
+    """
+    k = math.floor(d * _INV_LN2 + 0.5)
+    r = (d - k * _LN2_HI) - k * _LN2_LO
+    p = _C13 * r + _C12
+    p = p * r + _C11
+    p = p * r + _C10
+    p = p * r + _C9
+    p = p * r + _C8
+    p = p * r + _C7
+    p = p * r + _C6
+    p = p * r + _C5
+    p = p * r + _C4
+    p = p * r + _C3
+    p = p * r + _C2
+    p = (p * r + 1.0) * r + 1.0
+    # 2^k with -1010 <= k <= 0 (exp(LOG_WEIGHT_FLOOR) needs k down to -1010):
+    # biased exponent 1023 + k >= 13, a normal double with a zero mantissa.
+    return p * _float_from_bits(np.int64(1023 + int(k)) << 52)
+
+
+@numba.njit(cache=True, fastmath={"reassoc"})
+def _sum(a):
+    # Reassociation lets the compiler keep several partial sums in vector
+    # registers; the result differs from a left-to-right sum by rounding only.
+    s = 0.0
+    for j in range(a.shape[0]):
+        s += a[j]
+    return s
+
+
+@numba.njit(cache=True, fastmath={"reassoc"})
+def _dot(a, b):
+    s = 0.0
+    for j in range(a.shape[0]):
+        s += a[j] * b[j]
+    return s
+
+
+# Loops below index with range() rather than iterate over an array: numba
+# vectorises the former only. No flag makes it vectorise a float maximum, but
+# an integer one vectorises: non-negative doubles order like their bit
+# patterns read as int64, and flipping the magnitude bits of negative ones
+# extends that order to every double but NaN.
+
+_MAGNITUDE_BITS = np.int64(0x7FFFFFFFFFFFFFFF)
+_SMALLEST_INT64 = np.iinfo(np.int64).min
+
+
+@numba.njit(cache=True)
+def _max_nonnegative(a):
+    """Largest value of a non-empty array of non-negative doubles (no NaN)."""
+    m = np.int64(0)
+    for j in range(a.shape[0]):
+        m = max(m, _bits_of_float(a[j]))
+    return _float_from_bits(m)
+
+
+@numba.njit(cache=True)
+def _max_where(a, keep):
+    """Largest ``a[j]`` with ``keep[j]`` (no NaN; at least one ``keep``)."""
+    m = _SMALLEST_INT64
+    for j in range(a.shape[0]):
+        b = _bits_of_float(a[j])
+        key = b ^ ((b >> 63) & _MAGNITUDE_BITS)
+        m = max(m, key if keep[j] else _SMALLEST_INT64)
+    return _float_from_bits(m ^ ((m >> 63) & _MAGNITUDE_BITS))
+
+
+# ---------------------------------------------------------------------------
+# Input check
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def first_bad_entry(fired_rows, fired_counts, n_units, max_count):
+    """Index of the first entry that is not a valid (row, spike count) pair.
+
+    One pass instead of half a dozen numpy calls: the check runs on every
+    decoded window.
+
+    Parameters
+    ----------
+    fired_rows : ndarray, shape (k,), int64
+    fired_counts : ndarray, shape (k,), float64
+    n_units : int
+        Rows must lie in ``0 .. n_units - 1``.
+    max_count : float
+        Counts must be whole numbers in ``[0, max_count)``; NaN fails.
+
+    Returns
+    -------
+    int
+        The first offending index, or -1 when every entry is valid.
+    """
+    for i in range(fired_rows.shape[0]):
+        r = fired_rows[i]
+        c = fired_counts[i]
+        if r < 0 or r >= n_units or not (c >= 0.0 and c < max_count and c == math.floor(c)):
+            return i
+    return -1
+
+
+def first_bad_entry_numpy(fired_rows, fired_counts, n_units, max_count):
+    """Numpy twin of :func:`first_bad_entry`."""
+    c = fired_counts
+    ok = (fired_rows >= 0) & (fired_rows < n_units) & (c >= 0) & (c < max_count) & (c == np.floor(c))
+    bad = np.flatnonzero(~ok)
+    return int(bad[0]) if bad.size else -1
+
+
+# ---------------------------------------------------------------------------
+# Poisson log-likelihood
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def _add_weighted_rows(out, log_rate, rows, weights, n):
+    """``out += sum_k weights[k] * log_rate[rows[k]]`` over the first ``n`` entries.
+
+    Bins are done in blocks small enough for the output block to stay in L1
+    cache while the rows stream past it, four rows per sweep; this halves the
+    time of the plain row-by-row loop at 10,000 bins. Each bin receives its
+    terms in the order of ``rows``.
+    """
+    n_bins = out.shape[0]
+    for j0 in range(0, n_bins, _LIKELIHOOD_BLOCK):
+        j1 = min(j0 + _LIKELIHOOD_BLOCK, n_bins)
+        o = out[j0:j1]
+        k = 0
+        while k + 4 <= n:
+            r0 = log_rate[rows[k], j0:j1]
+            r1 = log_rate[rows[k + 1], j0:j1]
+            r2 = log_rate[rows[k + 2], j0:j1]
+            r3 = log_rate[rows[k + 3], j0:j1]
+            n0 = weights[k]
+            n1 = weights[k + 1]
+            n2 = weights[k + 2]
+            n3 = weights[k + 3]
+            for j in range(j1 - j0):
+                o[j] += n0 * r0[j] + n1 * r1[j] + n2 * r2[j] + n3 * r3[j]
+            k += 4
+        while k < n:
+            r0 = log_rate[rows[k], j0:j1]
+            n0 = weights[k]
+            for j in range(j1 - j0):
+                o[j] += n0 * r0[j]
+            k += 1
+
+
+@numba.njit(cache=True)
+def poisson_log_likelihood(fired_rows, fired_counts, log_rate, expected_total, out):
+    """Log-likelihood of every bin for one window of spike counts.
+
+    Under the independent-Poisson model the log-likelihood of position ``x``
+    is ``sum_i n_i log(lambda_i(x)) - W sum_i lambda_i(x)`` up to terms that do
+    not depend on ``x`` (``-sum_i log n_i!`` and ``sum_i n_i log W``). Only the
+    units that fired are touched; the silent units enter through
+    ``expected_total``.
+
+    Parameters
+    ----------
+    fired_rows : ndarray, shape (k,), int64
+        Model rows of the units that fired in the window; repeats add up.
+    fired_counts : ndarray, shape (k,), float64
+        Spike counts of those units in the window.
+    log_rate : ndarray, shape (n_units, n_bins), float64, C-contiguous
+        Natural log of each unit's rate map in Hz (finite everywhere).
+    expected_total : ndarray, shape (n_bins,), float64
+        ``window_s * sum_i lambda_i(x)``, the expected spike count of the
+        whole population in the window at each bin.
+    out : ndarray, shape (n_bins,), float64
+        Receives the log-likelihood; finite wherever the inputs are.
+
+    Returns
+    -------
+    out : ndarray, shape (n_bins,)
+
+    References
+    ----------
+    Zhang K, Ginzburg I, McNaughton BL, Sejnowski TJ (1998). Interpreting
+    neuronal population activity by reconstruction: unified framework with
+    application to hippocampal place cells. J Neurophysiol 79:1017-1044.
+    """
+    for j in range(out.shape[0]):
+        out[j] = -expected_total[j]
+    _add_weighted_rows(out, log_rate, fired_rows, fired_counts, fired_rows.shape[0])
+    return out
+
+
+def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, out):
+    """Numpy twin of :func:`poisson_log_likelihood`."""
+    out[:] = fired_counts @ log_rate[fired_rows] - expected_total
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Normalisation to a posterior
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def posterior_from_log(log_like, prior, valid, out):
+    """Normalise ``prior * exp(log_like)`` over the valid bins.
+
+    The log-likelihood is shifted by its maximum over the valid bins before
+    exponentiation (the log-sum-exp device), so no weight overflows. Weights
+    more than ``-LOG_WEIGHT_FLOOR`` nats below the best bin, and normalised
+    values below ``PROB_FLOOR``, are set to 0.
+
+    Parameters
+    ----------
+    log_like : ndarray, shape (n_bins,), float64
+        Log-likelihood up to a constant, finite.
+    prior : ndarray, shape (n_bins,), float64
+        Prior weights, non-negative, in any scale (normalisation divides it out).
+    valid : ndarray, shape (n_bins,), bool
+        Bins the animal can occupy; at least one must be True.
+    out : ndarray, shape (n_bins,), float64
+        Receives the posterior: sums to 1, exactly 0 outside ``valid``.
+
+    Returns
+    -------
+    ok : bool
+        False when the prior has (numerically) no mass where the likelihood
+        is: the scaled evidence fell below ``MIN_EVIDENCE``. ``out`` is then
+        meaningless and the caller must use another prior.
+    """
+    # The same steps as decode_step's: best valid bin, weights, normalisation.
+    total = _weigh(log_like, _max_where(log_like, valid), prior, valid, out)
+    if not total >= MIN_EVIDENCE:
+        return False
+    inv = 1.0 / total
+    for j in range(out.shape[0]):
+        v = out[j] * inv
+        out[j] = v if v >= PROB_FLOOR else 0.0
+    return True
+
+
+def posterior_from_log_numpy(log_like, prior, valid, out):
+    """Numpy twin of :func:`posterior_from_log`."""
+    best = log_like[valid].max()
+    d = np.where(valid, log_like - best, -np.inf)
+    keep = d > LOG_WEIGHT_FLOOR
+    # Products of two small numbers may underflow to 0, which is the intent.
+    with np.errstate(under="ignore"):
+        w = np.where(keep, prior * np.exp(np.maximum(d, LOG_WEIGHT_FLOOR)), 0.0)
+        total = w.sum()
+        if not total >= MIN_EVIDENCE:
+            return False
+        v = w / total
+    out[:] = np.where(v >= PROB_FLOOR, v, 0.0)
+    return True
+
+
+# ---------------------------------------------------------------------------
+# Random-walk prediction
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def convolve_separable(values, ny, nx, kernel_1d, out, scratch):
+    """Convolve a grid with a symmetric separable kernel, zero outside the grid.
+
+    Parameters
+    ----------
+    values : ndarray, shape (ny * nx,), float64
+        Grid values, row-major; may be the same array as ``out``.
+    ny, nx : int
+        Grid shape.
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+        Symmetric 1-D kernel applied along y and then along x.
+    out, scratch : ndarray, shape (ny * nx,), float64
+        ``out`` receives the result; ``scratch`` is overwritten.
+
+    Returns
+    -------
+    out : ndarray, shape (ny * nx,)
+    """
+    r = kernel_1d.shape[0] // 2
+    grid = values.reshape((ny, nx))
+    along_y = scratch.reshape((ny, nx))
+    result = out.reshape((ny, nx))
+    # A posterior is mostly zero far from its peak; rows that are zero
+    # throughout are skipped in both passes.
+    row_nonzero = np.zeros(ny, dtype=np.bool_)
+    for iy in range(ny):
+        row = grid[iy]
+        for ix in range(nx):
+            if row[ix] != 0.0:
+                row_nonzero[iy] = True
+                break
+    # The y pass reads whole rows and the x pass works on a zero-padded copy
+    # of one row, so every inner loop runs over contiguous memory with no
+    # bounds tests and vectorises; ``values`` is consumed by the y pass.
+    along_y_nonzero = np.zeros(ny, dtype=np.bool_)
+    for iy in range(ny):
+        dst = along_y[iy]
+        dst[:] = 0.0
+        for src in range(max(0, iy - r), min(ny, iy + r + 1)):
+            if not row_nonzero[src]:
+                continue
+            along_y_nonzero[iy] = True
+            w = kernel_1d[src - iy + r]
+            src_row = grid[src]
+            for ix in range(nx):
+                dst[ix] += w * src_row[ix]
+    padded = np.zeros(nx + 2 * r)
+    for iy in range(ny):
+        dst = result[iy]
+        dst[:] = 0.0
+        if not along_y_nonzero[iy]:
+            continue
+        padded[r : r + nx] = along_y[iy]
+        for k in range(2 * r + 1):
+            w = kernel_1d[k]
+            for ix in range(nx):
+                dst[ix] += w * padded[ix + k]
+    return out
+
+
+def convolve_separable_numpy(values, ny, nx, kernel_1d, out, scratch):
+    """Numpy twin of :func:`convolve_separable` (``scratch`` is not needed)."""
+    r = kernel_1d.shape[0] // 2
+    grid = np.pad(values.reshape(ny, nx), r)
+    # Far tails of a posterior times kernel tails may underflow to 0, harmlessly.
+    with np.errstate(under="ignore"):
+        along_y = sum(w * grid[k : k + ny, :] for k, w in enumerate(kernel_1d))
+        along_x = sum(w * along_y[:, k : k + nx] for k, w in enumerate(kernel_1d))
+    out[:] = along_x.ravel()
+    return out
+
+
+@numba.njit(cache=True)
+def _support_rows(p, nx, y0, y1):
+    """First and last grid row holding a non-zero value of ``p``, among rows ``y0..y1``.
+
+    Parameters
+    ----------
+    p : ndarray, shape (ny * nx,), float64
+        Row-major grid values.
+    nx : int
+    y0, y1 : int
+        Rows searched, inclusive.
+
+    Returns
+    -------
+    y0, y1 : int
+        Inclusive; ``y1 < y0`` when every row searched is zero.
+    """
+    while y0 <= y1 and not _any_nonzero(p[y0 * nx : (y0 + 1) * nx]):
+        y0 += 1
+    while y1 > y0 and not _any_nonzero(p[y1 * nx : (y1 + 1) * nx]):
+        y1 -= 1
+    return y0, y1
+
+
+@numba.njit(cache=True)
+def _any_nonzero(a):
+    for j in range(a.shape[0]):
+        if a[j] != 0.0:
+            return True
+    return False
+
+
+@numba.njit(cache=True, fastmath={"contract"})
+def _symmetric_filter(src, kernel_1d, step, dst):
+    """``dst[j] = sum_k kernel_1d[k] * src[j + k * step]`` for a symmetric kernel.
+
+    Taps ``k`` and ``2r - k`` share a weight, so they are added before the
+    multiplication, and three pairs go in each sweep over ``dst``: a sixth
+    of the loads and stores of one sweep per tap.
+
+    Parameters
+    ----------
+    src : ndarray, shape (>= len(dst) + 2 * r * step,), float64
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+        Symmetric: ``kernel_1d[k] == kernel_1d[2 * r - k]``.
+    step : int
+    dst : ndarray, float64
+        Receives the result; must not overlap ``src``.
+    """
+    r = kernel_1d.shape[0] // 2
+    n = dst.shape[0]
+    centre = src[r * step : r * step + n]
+    w = kernel_1d[r]
+    for j in range(n):
+        dst[j] = w * centre[j]
+    k = 0
+    while k + 3 <= r:
+        a0 = src[k * step : k * step + n]
+        b0 = src[(2 * r - k) * step : (2 * r - k) * step + n]
+        a1 = src[(k + 1) * step : (k + 1) * step + n]
+        b1 = src[(2 * r - k - 1) * step : (2 * r - k - 1) * step + n]
+        a2 = src[(k + 2) * step : (k + 2) * step + n]
+        b2 = src[(2 * r - k - 2) * step : (2 * r - k - 2) * step + n]
+        w0 = kernel_1d[k]
+        w1 = kernel_1d[k + 1]
+        w2 = kernel_1d[k + 2]
+        for j in range(n):
+            dst[j] += w0 * (a0[j] + b0[j]) + w1 * (a1[j] + b1[j]) + w2 * (a2[j] + b2[j])
+        k += 3
+    while k < r:
+        a0 = src[k * step : k * step + n]
+        b0 = src[(2 * r - k) * step : (2 * r - k) * step + n]
+        w0 = kernel_1d[k]
+        for j in range(n):
+            dst[j] += w0 * (a0[j] + b0[j])
+        k += 1
+
+
+@numba.njit(cache=True)
+def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch):
+    """The random-walk step of :func:`predict_grid` for a ``p`` that is 0 outside rows ``y0..y1``.
+
+    Only the rows ``y0 - r .. y1 + r`` (``r`` the kernel's reach) can receive
+    mass; nothing of ``out`` outside them is written, and callers treat it
+    as 0. The x pass runs first, on the rows of ``p`` only, the y pass then
+    spreads them. Both work on copies of the grid padded with zeros (columns
+    for the x pass, rows for the y pass), so that each is a few long loops
+    over contiguous memory (shifted by single bins, or by whole padded rows)
+    that vectorise, where loops over single rows would be too short to.
+
+    Parameters
+    ----------
+    p : ndarray, shape (ny * nx,), float64
+        Current posterior, 0 outside rows ``y0..y1`` and outside the valid
+        bins. May be the same array as ``out``.
+    ny, nx, kernel_1d, mask_f, inv_norm
+        As in :func:`predict_grid` (``kernel_1d`` symmetric).
+    y0, y1 : int
+        Inclusive, ``0 <= y0 <= y1 < ny``.
+    out : ndarray, shape (ny * nx,), float64
+        Receives the prediction in the returned rows.
+    grid_scratch : ndarray, shape (>= (2 * ny + 2 * r) * (nx + 2 * r),), float64
+        Overwritten.
+
+    Returns
+    -------
+    y0, y1 : int
+        Inclusive rows that may hold non-zero predictions.
+    """
+    r = kernel_1d.shape[0] // 2
+    stride = nx + 2 * r
+    # Grid row iy, column ix is rows_in[iy * stride + r + ix] before the x
+    # pass and along_x[(iy + r) * stride + r + ix] after it (r zero rows on
+    # top); the y pass writes rows_in[iy * stride + r + ix] again.
+    rows_in = grid_scratch[: ny * stride]
+    along_x = grid_scratch[ny * stride : (2 * ny + 2 * r) * stride]
+    out_y0 = max(0, y0 - r)
+    out_y1 = min(ny - 1, y1 + r)
+    for iy in range(y0, y1 + 1):
+        dst = rows_in[iy * stride : (iy + 1) * stride]
+        src = p[iy * nx : (iy + 1) * nx]
+        inv = inv_norm[iy * nx : (iy + 1) * nx]
+        dst[:r] = 0.0
+        dst[r + nx :] = 0.0
+        for ix in range(nx):
+            dst[r + ix] = src[ix] * inv[ix]
+    # From the first real bin of row y0 to the last of row y1; the padding
+    # columns between rows get values that only ever reach padding columns.
+    j0 = y0 * stride + r
+    j1 = y1 * stride + r + nx
+    _symmetric_filter(rows_in[j0 - r : j1 + r], kernel_1d, 1, along_x[j0 + r * stride : j1 + r * stride])
+    # Every row the y pass reads (grid rows out_y0 - r .. out_y1 + r) that
+    # the x pass did not write is zero.
+    along_x[out_y0 * stride : (y0 + r) * stride] = 0.0
+    along_x[(y1 + 1 + r) * stride : (out_y1 + 2 * r + 1) * stride] = 0.0
+    j0 = out_y0 * stride + r
+    j1 = out_y1 * stride + r + nx
+    _symmetric_filter(along_x[j0 : j1 + 2 * r * stride], kernel_1d, stride, rows_in[j0:j1])
+    for iy in range(out_y0, out_y1 + 1):
+        dst = out[iy * nx : (iy + 1) * nx]
+        src = rows_in[iy * stride + r : iy * stride + r + nx]
+        m = mask_f[iy * nx : (iy + 1) * nx]
+        for ix in range(nx):
+            dst[ix] = src[ix] * m[ix]
+    return out_y0, out_y1
+
+
+@numba.njit(cache=True)
+def predict_grid(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
+    """One random-walk step on a grid arena: ``mask * conv(p / conv(mask))``.
+
+    This applies the transition ``T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k``
+    (from bin ``i`` to bin ``j``) without forming it: ``K`` is the separable
+    kernel, ``m`` the valid-bin mask, and ``inv_norm = 1 / conv(m)`` on valid
+    bins (0 elsewhere) is precomputed. Only the rows around the non-zero
+    values of ``p``, grown by the kernel's reach, are convolved: a posterior
+    is mostly zero far from its peak.
+
+    Parameters
+    ----------
+    p : ndarray, shape (ny * nx,), float64
+        Current posterior, 0 outside the valid bins. May be the same array
+        as ``out``.
+    ny, nx : int
+        Grid shape.
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+        Sampled 1-D Gaussian of the random walk (symmetric).
+    mask_f : ndarray, shape (ny * nx,), float64
+        1.0 on valid bins, 0.0 elsewhere.
+    inv_norm : ndarray, shape (ny * nx,), float64
+        ``1 / conv(mask_f)`` on valid bins, 0 elsewhere.
+    out, scratch : ndarray, shape (ny * nx,), float64
+        ``out`` receives the prediction (sums to ``p.sum()``); ``scratch``
+        is not used (the twin's signature).
+
+    Returns
+    -------
+    out : ndarray, shape (ny * nx,)
+    """
+    y0, y1 = _support_rows(p, nx, 0, ny - 1)
+    if y1 < y0:
+        out[:] = 0.0
+        return out
+    reach = kernel_1d.shape[0] // 2
+    # Zeros, not np.empty: padding that is never written must hold numbers.
+    grid_scratch = np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach))
+    y0, y1 = _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch)
+    out[: y0 * nx] = 0.0
+    out[(y1 + 1) * nx :] = 0.0
+    return out
+
+
+def predict_grid_numpy(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
+    """Numpy twin of :func:`predict_grid`."""
+    with np.errstate(under="ignore"):
+        convolve_separable_numpy(p * inv_norm, ny, nx, kernel_1d, out, scratch)
+        out *= mask_f
+    return out
+
+
+@numba.njit(cache=True)
+def predict_dense(p, transition, out):
+    """One random-walk step with an explicit transition matrix: ``p @ T``.
+
+    Parameters
+    ----------
+    p : ndarray, shape (n_bins,), float64
+        Current posterior.
+    transition : ndarray, shape (n_bins, n_bins), float64, C-contiguous
+        ``transition[i, j]`` is the probability of moving from bin ``i`` to
+        bin ``j`` in one step.
+    out : ndarray, shape (n_bins,), float64
+        Receives the prediction.
+
+    Returns
+    -------
+    out : ndarray, shape (n_bins,)
+    """
+    n = out.shape[0]
+    for j in range(n):
+        out[j] = 0.0
+    for i in range(n):
+        w = p[i]
+        if w == 0.0:
+            continue
+        row = transition[i]
+        for j in range(n):
+            out[j] += w * row[j]
+    return out
+
+
+def predict_dense_numpy(p, transition, out):
+    """Numpy twin of :func:`predict_dense`."""
+    with np.errstate(under="ignore"):
+        out[:] = p @ transition
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Posterior summaries
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def hpd_size(p, mass, scratch):
+    """Number of bins in the highest-posterior-density region of ``mass``.
+
+    The region is the superlevel set ``{j : p_j >= t}`` for the largest
+    threshold ``t`` whose set holds at least ``mass`` of the total; bins tied
+    at the threshold are all included (a posterior uniform over ``m`` bins
+    gives ``m``). No full sort: one pass gathers the values within a factor
+    ``2**8`` of the peak (a few dozen for a decoded position, which is
+    concentrated), and if they do not reach ``mass`` the next pass gathers
+    the next factor ``2**8`` down, and so on; the values of the pass that
+    crosses ``mass`` are refined by bucketing, then sorted once few are left.
+
+    Parameters
+    ----------
+    p : ndarray, shape (n_bins,), float64
+        Non-negative weights (normally a posterior).
+    mass : float
+        Probability mass of the region, in (0, 1].
+    scratch : ndarray, shape (n_bins,), float64
+        Overwritten.
+
+    Returns
+    -------
+    n : int
+        Number of bins in the region (0 if every weight is 0).
+
+    References
+    ----------
+    Box GEP, Tiao GC (1973). Bayesian Inference in Statistical Analysis.
+    Addison-Wesley (highest posterior density regions).
+    """
+    if p.shape[0] == 0:
+        return 0
+    return _hpd_and_first_max(p, _max_nonnegative(p), _sum(p), mass, scratch)[0]
+
+
+@numba.njit(cache=True)
+def _hpd_and_first_max(p, peak, total, mass, scratch):
+    """:func:`hpd_size`, given the maximum and the sum of ``p``, and the first index of the maximum.
+
+    Returns
+    -------
+    n_hpd, first_max : int
+    """
+    target = mass * total
+    first = 0
+    found = False
+    acc_mass = 0.0
+    acc_count = 0
+    upper = np.inf
+    t = peak * _HPD_GATHER_FACTOR
+    while True:
+        # Gather the positive values in [t, upper): all of them once t
+        # underflows to 0 (or the peak is 0).
+        n_c = 0
+        got = 0.0
+        lo = np.inf
+        hi = 0.0
+        for j in range(p.shape[0]):
+            v = p[j]
+            if v >= t and v < upper and v > 0.0:
+                scratch[n_c] = v
+                n_c += 1
+                got += v
+                lo = min(lo, v)
+                hi = max(hi, v)
+                if v == peak and not found:
+                    first = j
+                    found = True
+        if acc_mass + got >= target or not t > 0.0:
+            return _hpd_refine(scratch, n_c, lo, hi, target, acc_mass, acc_count), first
+        acc_mass += got
+        acc_count += n_c
+        upper = t
+        t *= _HPD_GATHER_FACTOR
+
+
+@numba.njit(cache=True)
+def _hpd_refine(scratch, n_c, lo, hi, target, acc_mass, acc_count):
+    """Finish :func:`hpd_size` on the candidates of a bracket.
+
+    Parameters
+    ----------
+    scratch : ndarray, shape (>= n_c,), float64
+        The candidate values in ``scratch[:n_c]``; overwritten.
+    n_c : int
+    lo, hi : float
+        Their minimum and maximum.
+    target : float
+        Mass the region must reach.
+    acc_mass, acc_count : float, int
+        Mass and number of the values above every candidate (all in the region).
+
+    Returns
+    -------
+    n : int
+    """
+    bucket_mass = np.empty(_HPD_BUCKETS)
+    bucket_count = np.empty(_HPD_BUCKETS, dtype=np.int64)
+    while n_c > 0:
+        if lo == hi:
+            return acc_count + n_c
+        scale = _HPD_BUCKETS / (hi - lo)
+        # Few candidates left, or values so close that the bucket scale overflows: sort them.
+        if n_c < _HPD_SORT_BELOW or not math.isfinite(scale):
+            vals = np.sort(scratch[:n_c])[::-1]
+            cum = acc_mass
+            for i in range(n_c):
+                cum += vals[i]
+                if cum >= target:
+                    t = vals[i]
+                    n_in = 0
+                    for m in range(n_c):
+                        if vals[m] >= t:
+                            n_in += 1
+                    return acc_count + n_in
+            return acc_count + n_c
+        bucket_mass[:] = 0.0
+        bucket_count[:] = 0
+        for i in range(n_c):
+            v = scratch[i]
+            b = min(int((v - lo) * scale), _HPD_BUCKETS - 1)
+            bucket_mass[b] += v
+            bucket_count[b] += 1
+        crossing = -1
+        for b in range(_HPD_BUCKETS - 1, -1, -1):
+            if acc_mass + bucket_mass[b] >= target:
+                crossing = b
+                break
+            acc_mass += bucket_mass[b]
+            acc_count += bucket_count[b]
+        if crossing < 0:
+            # Rounding left the whole set just short of ``target``.
+            return acc_count
+        n_next = 0
+        lo_next = np.inf
+        hi_next = 0.0
+        for i in range(n_c):
+            v = scratch[i]
+            if min(int((v - lo) * scale), _HPD_BUCKETS - 1) == crossing:
+                scratch[n_next] = v
+                n_next += 1
+                lo_next = min(lo_next, v)
+                hi_next = max(hi_next, v)
+        n_c = n_next
+        lo = lo_next
+        hi = hi_next
+    return acc_count
+
+
+def hpd_size_numpy(p, mass, scratch):
+    """Numpy twin of :func:`hpd_size`, by a full sort (``scratch`` is not needed)."""
+    desc = np.sort(p[p > 0.0])[::-1]
+    cum = np.cumsum(desc)
+    i = min(int(np.searchsorted(cum, mass * cum[-1], side="left")), desc.size - 1)
+    return int(np.count_nonzero(p >= desc[i]))
+
+
+@numba.njit(cache=True)
+def posterior_summary(p, centers_x_cm, centers_y_cm):
+    """Maximum a posteriori bin, its probability and the posterior mean.
+
+    Parameters
+    ----------
+    p : ndarray, shape (n_bins,), float64
+        Posterior (sums to 1).
+    centers_x_cm, centers_y_cm : ndarray, shape (n_bins,), float64
+        Bin centres.
+
+    Returns
+    -------
+    map_bin : int
+        First bin of highest probability.
+    peak_prob : float
+    mean_x_cm, mean_y_cm : float
+    """
+    best = 0
+    peak = -1.0
+    for j in range(p.shape[0]):
+        if p[j] > peak:
+            peak = p[j]
+            best = j
+    return best, peak, _dot(p, centers_x_cm), _dot(p, centers_y_cm)
+
+
+def posterior_summary_numpy(p, centers_x_cm, centers_y_cm):
+    """Numpy twin of :func:`posterior_summary`."""
+    best = int(np.argmax(p))
+    return best, float(p[best]), float(p @ centers_x_cm), float(p @ centers_y_cm)
+
+
+@numba.njit(cache=True)
+def zone_mass(p, zone_start, zone_bins, out):
+    """Posterior mass inside each zone.
+
+    Parameters
+    ----------
+    p : ndarray, shape (n_bins,), float64
+        Posterior.
+    zone_start : ndarray, shape (n_zones + 1,), int64
+        Zone ``z`` owns ``zone_bins[zone_start[z]:zone_start[z + 1]]``.
+    zone_bins : ndarray, shape (total,), int64
+        Bin indices of all zones, concatenated.
+    out : ndarray, shape (n_zones,), float64
+        Receives the masses.
+
+    Returns
+    -------
+    out : ndarray, shape (n_zones,)
+    """
+    for z in range(out.shape[0]):
+        s = 0.0
+        for i in range(zone_start[z], zone_start[z + 1]):
+            s += p[zone_bins[i]]
+        out[z] = s
+    return out
+
+
+def zone_mass_numpy(p, zone_start, zone_bins, out):
+    """Numpy twin of :func:`zone_mass`."""
+    for z in range(out.shape[0]):
+        out[z] = p[zone_bins[zone_start[z] : zone_start[z + 1]]].sum()
+    return out
+
+
+# ---------------------------------------------------------------------------
+# One decoding step, fused
+# ---------------------------------------------------------------------------
+
+#: ``decode_step`` updates the log-likelihood of the previous window in place
+#: (only the rows whose count changed) at most this many steps in a row
+#: before computing it afresh, so that rounding cannot build up: each update
+#: adds a few ulp of the largest term, and 32 of them stay far below what a
+#: posterior can show (tests/test_kernels.py bounds it).
+LIKELIHOOD_REFRESH_STEPS = 32
+
+#: ``transition_kind`` of :func:`decode_step`: uniform prior at every step,
+#: separable random walk on a grid, dense transition matrix.
+NO_TRANSITION, GRID_TRANSITION, DENSE_TRANSITION = 0, 1, 2
+
+#: Slots of the int64 ``state`` vector of :func:`decode_step`: updates since
+#: the last exact log-likelihood (-1: compute it afresh at the next step),
+#: whether ``previous`` holds the last posterior (1) or not (0), and the
+#: first and last grid rows (inclusive) outside which it is 0.
+STATE_UPDATES, STATE_HAS_PREVIOUS, STATE_Y0, STATE_Y1 = 0, 1, 2, 3
+STATE_SIZE = 4
+
+#: Status returned by :func:`decode_step` besides the index (>= 0) of the
+#: first bad input entry: decoded, or decoded with the uniform prior after
+#: the state-space prior underflowed.
+STEP_OK, STEP_UNDERFLOW = -1, -2
+
+
+@numba.njit(cache=True)
+def _update_log_likelihood(now, last, log_rate, expected_total, state, rows, weights, log_like):
+    """Bring ``log_like`` from the counts ``last`` to the counts ``now``.
+
+    Consecutive windows share most of their spikes, so usually only a few
+    rows changed: ``log_like += (now - last)[u] * log_rate[u]`` over those.
+    The log-likelihood is computed afresh instead when ``state`` asks for it,
+    after ``LIKELIHOOD_REFRESH_STEPS`` updates, or when more rows changed than
+    fired (then afresh is cheaper). Counts are whole numbers below 2^53, so
+    the differences are exact; only the additions round.
+    """
+    n_units = now.shape[0]
+    n_fired = 0
+    n_changed = 0
+    for u in range(n_units):
+        c = now[u]
+        if c != 0.0:
+            n_fired += 1
+        if c != last[u]:
+            rows[n_changed] = u
+            weights[n_changed] = c - last[u]
+            n_changed += 1
+    updates = state[STATE_UPDATES]
+    if updates < 0 or updates >= LIKELIHOOD_REFRESH_STEPS or n_changed > n_fired:
+        n = 0
+        for u in range(n_units):
+            if now[u] != 0.0:
+                rows[n] = u
+                weights[n] = now[u]
+                n += 1
+        for j in range(log_like.shape[0]):
+            log_like[j] = -expected_total[j]
+        _add_weighted_rows(log_like, log_rate, rows, weights, n)
+        state[STATE_UPDATES] = 0
+    else:
+        _add_weighted_rows(log_like, log_rate, rows, weights, n_changed)
+        state[STATE_UPDATES] = updates + 1
+    last[:] = now
+
+
+@numba.njit(cache=True, fastmath={"reassoc"})
+def _weigh(log_like, best, prior, valid, out):
+    """The unnormalised posterior of :func:`posterior_from_log`; returns its sum."""
+    total = 0.0
+    for j in range(out.shape[0]):
+        d = log_like[j] - best
+        e = _exp_nonpositive(max(d, LOG_WEIGHT_FLOOR))
+        w = prior[j] * e if (valid[j] and d > LOG_WEIGHT_FLOOR) else 0.0
+        out[j] = w
+        total += w
+    return total
+
+
+@numba.njit(cache=True, fastmath={"reassoc"})
+def _normalise(out, total, centers_x_cm, centers_y_cm):
+    """Divide by ``total`` (values below ``PROB_FLOOR`` become 0); return the new sum and the mean centre."""
+    inv = 1.0 / total
+    s = 0.0
+    mean_x = 0.0
+    mean_y = 0.0
+    for j in range(out.shape[0]):
+        v = out[j] * inv
+        v = v if v >= PROB_FLOOR else 0.0
+        out[j] = v
+        s += v
+        mean_x += v * centers_x_cm[j]
+        mean_y += v * centers_y_cm[j]
+    return s, mean_x, mean_y
+
+
+@numba.njit(cache=True)
+def decode_step(
+    fired_rows,
+    fired_counts,
+    max_count,
+    log_rate,
+    expected_total,
+    valid,
+    uniform,
+    transition_kind,
+    ny,
+    nx,
+    kernel_1d,
+    mask_f,
+    inv_norm,
+    transition,
+    centers_x_cm,
+    centers_y_cm,
+    zone_start,
+    zone_bins,
+    hpd_mass,
+    state,
+    unit_counts,
+    unit_rows,
+    log_like,
+    previous,
+    predicted,
+    scratch,
+    grid_scratch,
+    out,
+):
+    """One window decoded: check, likelihood, prior, posterior and its summaries in one call.
+
+    The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood`,
+    :func:`predict_grid` or :func:`predict_dense`, :func:`posterior_from_log`,
+    :func:`posterior_summary`, :func:`hpd_size` and :func:`zone_mass` in turn,
+    with three economies: the log-likelihood of the previous window is
+    updated where counts changed instead of recomputed (see
+    ``LIKELIHOOD_REFRESH_STEPS``); on a grid the prediction, the
+    exponentials and the summaries cover only the rows the prior can reach
+    (the previous posterior's non-zero rows grown by the random walk's
+    reach), outside which the posterior is exactly 0; and one call replaces
+    a dozen.
+
+    Parameters
+    ----------
+    fired_rows : ndarray, shape (k,), int64
+        Model rows of the units that fired; repeats add up.
+    fired_counts : ndarray, shape (k,), float64
+        Their spike counts.
+    max_count : float
+        Counts must be whole numbers in ``[0, max_count)``, ``max_count <= 2**53``.
+    log_rate : ndarray, shape (n_units, n_bins), float64, C-contiguous
+        Natural log of each unit's rate map in Hz.
+    expected_total : ndarray, shape (n_bins,), float64
+        Expected spike count of the population in the window at each bin.
+    valid : ndarray, shape (n_bins,), bool
+        Bins decoded over; at least one.
+    uniform : ndarray, shape (n_bins,), float64
+        1.0 on valid bins, 0.0 elsewhere: the flat prior.
+    transition_kind : int
+        ``NO_TRANSITION``, ``GRID_TRANSITION`` or ``DENSE_TRANSITION``.
+    ny, nx : int
+        Grid shape (``1, n_bins`` for an environment that is not a grid).
+    kernel_1d, mask_f, inv_norm : ndarray, float64
+        The random walk on a grid, as in :func:`predict_grid` (any 1-D
+        arrays for other kinds).
+    transition : ndarray, shape (n_bins, n_bins), float64
+        The dense transition, as in :func:`predict_dense` (any 2-D array for
+        other kinds).
+    centers_x_cm, centers_y_cm : ndarray, shape (n_bins,), float64
+        Bin centres.
+    zone_start, zone_bins : ndarray, int64
+        Zones as in :func:`zone_mass`.
+    hpd_mass : float
+        Mass of the highest-posterior-density region, in (0, 1].
+    state : ndarray, shape (STATE_SIZE,), int64
+        The filter's state between calls (see ``STATE_UPDATES``); updated.
+        Set ``state[STATE_UPDATES] = -1`` and ``state[STATE_HAS_PREVIOUS] = 0``
+        to start afresh.
+    unit_counts : ndarray, shape (3, n_units), float64
+        Row 0 holds the counts behind ``log_like`` between calls; rows 1
+        and 2 are overwritten.
+    unit_rows : ndarray, shape (n_units,), int64
+        Overwritten.
+    log_like : ndarray, shape (n_bins,), float64
+        The log-likelihood of the last window, kept between calls.
+    previous : ndarray, shape (>= n_bins,), float64
+        The last posterior (first ``n_bins`` values), when ``state`` says so;
+        read only.
+    predicted, scratch : ndarray, shape (n_bins,), float64
+        Overwritten.
+    grid_scratch : ndarray, shape ((2 * ny + len(kernel_1d) - 1) * (nx + len(kernel_1d) - 1),), float64
+        Overwritten (for ``GRID_TRANSITION``; any 1-D array otherwise).
+    out : ndarray, shape (n_bins + 4 + n_zones,), float64
+        Receives the posterior (``[:n_bins]``), the centre of the MAP bin
+        (``[n_bins:n_bins + 2]``), the posterior mean (``[n_bins + 2:n_bins + 4]``)
+        and the zone masses (``[n_bins + 4:]``).
+
+    Returns
+    -------
+    status : int
+        ``STEP_OK``; ``STEP_UNDERFLOW`` when the state-space prior had no mass
+        where the spikes point and the window was decoded with the uniform
+        prior; or the index of the first bad entry of the input, in which
+        case nothing else was written and ``state`` is unchanged.
+    map_bin, n_hpd, n_spikes : int
+        First bin of highest probability, bins in the HPD region, spikes in
+        the window.
+    peak_prob : float
+        Posterior probability of ``map_bin``.
+
+    References
+    ----------
+    Zhang K, Ginzburg I, McNaughton BL, Sejnowski TJ (1998). J Neurophysiol
+    79:1017-1044 (likelihood). Brown EN, Frank LM, Tang D, Quirk MC, Wilson
+    MA (1998). J Neurosci 18:7411-7425 (state-space prior).
+    """
+    n_units = log_rate.shape[0]
+    bad = first_bad_entry(fired_rows, fired_counts, n_units, max_count)
+    if bad >= 0:
+        return bad, 0, 0, 0, 0.0
+
+    now = unit_counts[1]
+    now[:] = 0.0
+    n_spikes = 0.0
+    for i in range(fired_rows.shape[0]):
+        now[fired_rows[i]] += fired_counts[i]
+        n_spikes += fired_counts[i]
+    return _decode_counts(
+        n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
+        transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
+        log_like, previous, predicted, scratch, grid_scratch, out,
+    )
+
+
+@numba.njit(cache=True)
+def _decode_counts(
+    n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
+    transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
+    log_like, previous, predicted, scratch, grid_scratch, out,
+):
+    """:func:`decode_step` from the window's counts per unit, already in ``unit_counts[1]`` (checked)."""
+    n_bins = log_rate.shape[1]
+    now = unit_counts[1]
+    _update_log_likelihood(
+        now, unit_counts[0], log_rate, expected_total, state, unit_rows, unit_counts[2], log_like
+    )
+    best = _max_where(log_like, valid)
+
+    # The prior is 0 outside grid rows y0..y1, and so is the posterior; the
+    # arithmetic below covers those rows only (bins j0..j1 - 1).
+    y0, y1 = 0, ny - 1
+    prior = uniform
+    if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
+        y0, y1 = _predict_grid_rows(
+            previous, ny, nx, kernel_1d, mask_f, inv_norm, state[STATE_Y0], state[STATE_Y1], predicted, grid_scratch
+        )
+        prior = predicted
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
+        predict_dense(previous[:n_bins], transition, predicted)
+        prior = predicted
+
+    post = out[:n_bins]
+    status = STEP_OK
+    j0, j1 = y0 * nx, (y1 + 1) * nx
+    total = _weigh(log_like[j0:j1], best, prior[j0:j1], valid[j0:j1], post[j0:j1])
+    if not total >= MIN_EVIDENCE:
+        status = STEP_UNDERFLOW
+        y0, y1 = 0, ny - 1
+        j0, j1 = 0, n_bins
+        # With a flat prior the best valid bin has weight exactly 1.
+        total = _weigh(log_like, best, uniform, valid, post)
+    post[:j0] = 0.0
+    post[j1:] = 0.0
+    total, mean_x, mean_y = _normalise(post[j0:j1], total, centers_x_cm[j0:j1], centers_y_cm[j0:j1])
+    y0, y1 = _support_rows(post, nx, y0, y1)
+    if transition_kind != NO_TRANSITION:
+        state[STATE_HAS_PREVIOUS] = 1
+        state[STATE_Y0] = y0
+        state[STATE_Y1] = y1
+
+    # Summaries over the non-zero rows: the first maximum there is the first
+    # of the whole posterior, which is 0 elsewhere.
+    j0, j1 = y0 * nx, (y1 + 1) * nx
+    band = post[j0:j1]
+    peak = _max_nonnegative(band)
+    n_hpd, map_bin = _hpd_and_first_max(band, peak, total, hpd_mass, scratch)
+    map_bin += j0
+    out[n_bins] = centers_x_cm[map_bin]
+    out[n_bins + 1] = centers_y_cm[map_bin]
+    out[n_bins + 2] = mean_x
+    out[n_bins + 3] = mean_y
+    zone_mass(post, zone_start, zone_bins, out[n_bins + 4 :])
+    return status, map_bin, n_hpd, int(n_spikes), peak
+
+
+def decode_step_numpy(
+    fired_rows,
+    fired_counts,
+    max_count,
+    log_rate,
+    expected_total,
+    valid,
+    uniform,
+    transition_kind,
+    ny,
+    nx,
+    kernel_1d,
+    mask_f,
+    inv_norm,
+    transition,
+    centers_x_cm,
+    centers_y_cm,
+    zone_start,
+    zone_bins,
+    hpd_mass,
+    state,
+    unit_counts,
+    unit_rows,
+    log_like,
+    previous,
+    predicted,
+    scratch,
+    grid_scratch,
+    out,
+):
+    """Numpy twin of :func:`decode_step`: the separate twins in turn, the log-likelihood afresh every step."""
+    n_units, n_bins = log_rate.shape
+    bad = first_bad_entry_numpy(fired_rows, fired_counts, n_units, max_count)
+    if bad >= 0:
+        return bad, 0, 0, 0, 0.0
+    unit_counts[0] = np.bincount(fired_rows, weights=fired_counts, minlength=n_units)
+    state[STATE_UPDATES] = 0
+    poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, log_like)
+    prior = uniform
+    if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
+        prior = predict_grid_numpy(previous[:n_bins], ny, nx, kernel_1d, mask_f, inv_norm, predicted, scratch)
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
+        prior = predict_dense_numpy(previous[:n_bins], transition, predicted)
+    post = out[:n_bins]
+    status = STEP_OK
+    if not posterior_from_log_numpy(log_like, prior, valid, post):
+        status = STEP_UNDERFLOW
+        posterior_from_log_numpy(log_like, uniform, valid, post)
+    if transition_kind != NO_TRANSITION:
+        # Every row of the grid, a band outside which the posterior is 0.
+        state[STATE_HAS_PREVIOUS:] = (1, 0, ny - 1)
+    map_bin, peak, mean_x, mean_y = posterior_summary_numpy(post, centers_x_cm, centers_y_cm)
+    out[n_bins : n_bins + 4] = (centers_x_cm[map_bin], centers_y_cm[map_bin], mean_x, mean_y)
+    zone_mass_numpy(post, zone_start, zone_bins, out[n_bins + 4 :])
+    n_hpd = hpd_size_numpy(post, hpd_mass, scratch)
+    return status, map_bin, n_hpd, int(fired_counts.sum()), peak
+
+
+@numba.njit(cache=True)
+def decode_window_step(
+    held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
+    transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
+    zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+):
+    """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
+
+    The same numbers, bit for bit, as counting the window first (``binning.window_counts``)
+    and passing its rows and counts to :func:`decode_step`: a unit's count is
+    a sum of ones either way. Counting here saves the decoding loop a call
+    and two arrays per step.
+
+    Parameters
+    ----------
+    held_t_s : ndarray, shape (n,), float64
+        Spike times, sorted over ``start:stop``.
+    held_rows : ndarray, shape (n,), int64
+        Model row of each spike.
+    start, stop : int
+        The held part of the arrays.
+    t_end_s, window_s : float
+    max_count, log_rate, ..., out
+        As in :func:`decode_step` (``max_count`` is not needed: counts of
+        held spikes are whole numbers by construction).
+
+    Returns
+    -------
+    status, map_bin, n_hpd, n_spikes, peak_prob
+        As in :func:`decode_step`; a status ``>= 0`` is the index (into the
+        held arrays) of a spike whose row is out of range.
+    first : int
+        Index of the first held spike inside the window or after it.
+    """
+    n_units = log_rate.shape[0]
+    held = held_t_s[start:stop]
+    lo = start + np.searchsorted(held, t_end_s - window_s, side="right")
+    hi = start + np.searchsorted(held, t_end_s, side="right")
+    for i in range(lo, hi):
+        if not 0 <= held_rows[i] < n_units:
+            return i, 0, 0, 0, 0.0, lo
+    now = unit_counts[1]
+    now[:] = 0.0
+    for i in range(lo, hi):
+        now[held_rows[i]] += 1.0
+    status, map_bin, n_hpd, n_spikes, peak = _decode_counts(
+        float(hi - lo), log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f,
+        inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
+        unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+    )
+    return status, map_bin, n_hpd, n_spikes, peak, lo
+
+
+def decode_window_step_numpy(held_t_s, held_rows, start, stop, t_end_s, window_s, *decode_args):
+    """Numpy twin of :func:`decode_window_step`: the window counted with numpy, then :func:`decode_step_numpy`."""
+    n_units = decode_args[1].shape[0]
+    held_t, rows = held_t_s[start:stop], held_rows[start:stop]
+    lo = int(np.searchsorted(held_t, t_end_s - window_s, side="right"))
+    hi = int(np.searchsorted(held_t, t_end_s, side="right"))
+    in_window = rows[lo:hi]
+    bad = np.flatnonzero((in_window < 0) | (in_window >= n_units))
+    if bad.size:
+        return start + lo + int(bad[0]), 0, 0, 0, 0.0, start + lo
+    binned = np.bincount(in_window, minlength=n_units)
+    fired = np.flatnonzero(binned)
+    return (*decode_step_numpy(fired, binned[fired].astype(np.float64), *decode_args), start + lo)

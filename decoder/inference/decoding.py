@@ -1,0 +1,598 @@
+"""Bayesian decoding of position from one window of spike counts.
+
+:class:`BayesDecoder` turns the spike counts of one window into a posterior
+over the environment's bins, either with a uniform prior (each window on its
+own) or with a state-space prior (a causal filter: the previous posterior,
+moved by a Gaussian random walk, is the prior of the next window).
+:class:`RandomWalk` is that transition. The arithmetic lives in
+``decoder.inference._kernels``; this module validates inputs, precomputes what does
+not change between windows and summarises each posterior.
+
+References
+----------
+Zhang K, Ginzburg I, McNaughton BL, Sejnowski TJ (1998). Interpreting
+neuronal population activity by reconstruction: unified framework with
+application to hippocampal place cells. J Neurophysiol 79:1017-1044.
+
+Brown EN, Frank LM, Tang D, Quirk MC, Wilson MA (1998). A statistical
+paradigm for neural spike train decoding applied to position prediction
+from ensemble firing patterns of rat hippocampal place cells. J Neurosci
+18:7411-7425.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from types import SimpleNamespace
+from typing import Any, NamedTuple
+
+import numpy as np
+
+from decoder.inference import _kernels
+from decoder.space.environments import Environment
+
+logger = logging.getLogger(__name__)
+
+#: Probability mass of the highest-posterior-density region reported per step.
+HPD_MASS = 0.95
+
+#: The random-walk kernel is cut off this many s.d. from its centre, where it
+#: has fallen to exp(-8) ~ 3e-4 of its peak.
+TRUNCATE_SD = 4.0
+
+#: Largest environment for which :meth:`RandomWalk.dense_matrix` builds the
+#: full matrix of a grid arena (n_bins² float64; 20,000 bins is 3.2 GB).
+MAX_DENSE_GRID_BINS = 20_000
+
+#: Largest spike count of one unit in one window; beyond this the input is
+#: not spike data (a unit firing at 1 kHz for 1000 s would reach it).
+MAX_COUNT = 1e6
+
+PRIORS = ("uniform", "state_space")
+BACKENDS = ("numba", "numpy")
+
+_KERNEL_NAMES = ("convolve_separable", "predict_grid", "predict_dense", "decode_step", "decode_window_step")
+
+_INT64 = np.dtype(np.int64)
+_FLOAT64 = np.dtype(np.float64)
+
+
+def _kernel_set(backend: str) -> SimpleNamespace:
+    if backend not in BACKENDS:
+        raise ValueError(f"backend must be one of {BACKENDS}, got {backend!r}")
+    suffix = "" if backend == "numba" else "_numpy"
+    return SimpleNamespace(**{name: getattr(_kernels, name + suffix) for name in _KERNEL_NAMES})
+
+
+def _positive_finite(name: str, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+        raise ValueError(f"{name} must be a positive number, got {value!r}")
+    if not (math.isfinite(value) and value > 0):
+        raise ValueError(f"{name} must be a positive, finite number, got {value!r}")
+    return float(value)
+
+
+def _bin_mask(name: str, mask: Any, n_bins: int) -> np.ndarray:
+    arr = np.asarray(mask)
+    if arr.shape != (n_bins,) or arr.dtype != np.bool_:
+        raise ValueError(
+            f"{name} must be a boolean array of shape ({n_bins},), got {arr.dtype} of shape {arr.shape}"
+        )
+    return arr
+
+
+class DecodedStep(NamedTuple):
+    """The decoder's answer for one window.
+
+    Attributes
+    ----------
+    posterior : ndarray of float64, shape (n_bins,), read-only
+        Probability of each bin; sums to 1, exactly 0 outside the valid bins.
+    map_bin : int
+        Bin of highest posterior probability (the first one on a tie).
+    map_xy_cm : ndarray of float64, shape (2,), read-only
+        Centre of ``map_bin``.
+    mean_xy_cm : ndarray of float64, shape (2,), read-only
+        Posterior mean of the bin centres. On a track graph this average of
+        positions may lie off the track (between two arms).
+    hpd95_size : float
+        Size of the 95% highest-posterior-density region: cm² in an arena,
+        cm on a track or graph.
+    peak_prob : float
+        Posterior probability of ``map_bin``.
+    zone_mass : ndarray of float64, shape (n_zones,), read-only
+        Posterior mass inside each zone.
+    n_spikes : int
+        Spikes in the window.
+
+    Notes
+    -----
+    The four arrays are views of one buffer that belongs to this step alone
+    (the decoder allocates one per window and never writes to it again), so
+    a step may be kept for as long as needed. A named tuple rather than a
+    frozen dataclass: just as immutable, and built for a fraction of the
+    cost, once per decoded window.
+    """
+
+    posterior: np.ndarray
+    map_bin: int
+    map_xy_cm: np.ndarray
+    mean_xy_cm: np.ndarray
+    hpd95_size: float
+    peak_prob: float
+    zone_mass: np.ndarray
+    n_spikes: int
+
+
+class RandomWalk:
+    """Gaussian random-walk transition between the valid bins of an environment.
+
+    From bin ``i`` the animal moves to bin ``j`` with probability
+    ``T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k``, where ``m`` is the
+    valid-bin mask and ``K`` a Gaussian of s.d. ``sd_cm`` in the distance
+    between bin centres, cut off at ``TRUNCATE_SD`` s.d. In a grid arena
+    ``K`` is separable (a Gaussian along x times one along y, each cut off
+    separately) and ``T`` is applied as a convolution without being formed;
+    on a track or graph ``K`` uses the distance along the track and ``T`` is
+    a dense matrix. Each row of ``T`` for a valid bin sums to 1; rows of
+    invalid bins are 0 (the posterior never has mass there).
+
+    Parameters
+    ----------
+    environment : Environment
+    valid_mask : ndarray of bool, shape (n_bins,)
+        Bins the walk may enter (combined with ``environment.valid_mask``).
+    sd_cm : float
+        S.d. of one step of the walk in cm, along each axis in an arena.
+    backend : {"numba", "numpy"}, default "numba"
+        Compiled kernels, or their plain numpy twins.
+
+    Examples
+    --------
+    >>> from decoder.space.environments import LinearTrack
+    >>> track = LinearTrack((0, 0), (100, 0), bin_cm=10)
+    >>> walk = RandomWalk(track, track.valid_mask, sd_cm=10.0)
+    >>> p = np.zeros(10); p[0] = 1.0
+    >>> bool(np.isclose(walk.predict(p).sum(), 1.0))
+    True
+    """
+
+    def __init__(
+        self, environment: Environment, valid_mask: np.ndarray, sd_cm: float, backend: str = "numba"
+    ) -> None:
+        self.environment = environment
+        self.valid_mask = _bin_mask("valid_mask", valid_mask, environment.n_bins) & environment.valid_mask
+        self.sd_cm = _positive_finite("sd_cm", sd_cm)
+        self.backend = backend
+        self._k = _kernel_set(backend)
+        self._mask_f = self.valid_mask.astype(np.float64)
+        grid = environment.grid_shape
+        if grid is not None:
+            self._ny, self._nx = grid
+            # Only offsets within the cut-off, as on a track; a walk narrower
+            # than a quarter bin stays put.
+            reach = math.floor(TRUNCATE_SD * self.sd_cm / environment.bin_cm)
+            offsets_cm = np.arange(-reach, reach + 1) * environment.bin_cm
+            self._kernel_1d = np.exp(-0.5 * (offsets_cm / self.sd_cm) ** 2)
+            self._scratch = np.empty(environment.n_bins)
+            norm = self._k.convolve_separable(
+                self._mask_f, self._ny, self._nx, self._kernel_1d, np.empty(environment.n_bins), self._scratch
+            )
+            # On a valid bin the kernel's own centre contributes 1, so norm >= 1 there.
+            self._inv_norm = np.zeros(environment.n_bins)
+            self._inv_norm[self.valid_mask] = 1.0 / norm[self.valid_mask]
+            self._transition = None
+        else:
+            self._transition = np.ascontiguousarray(self._dense_from_distances())
+
+    def _dense_from_distances(self) -> np.ndarray:
+        d = self.environment.bin_distance_matrix_cm()
+        near = d <= TRUNCATE_SD * self.sd_cm
+        kernel = np.zeros(d.shape)
+        kernel[near] = np.exp(-0.5 * (d[near] / self.sd_cm) ** 2)
+        return self._normalise_rows(kernel)
+
+    def _normalise_rows(self, kernel: np.ndarray) -> np.ndarray:
+        weighted = kernel * self._mask_f[np.newaxis, :]
+        norm = weighted.sum(axis=1)
+        out = np.zeros_like(weighted)
+        rows = self.valid_mask
+        out[rows] = weighted[rows] / norm[rows, np.newaxis]
+        return out
+
+    def predict(self, p: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Move a posterior one step: ``(p @ T)``.
+
+        Parameters
+        ----------
+        p : ndarray of float64, shape (n_bins,)
+            Distribution over bins, 0 outside the valid bins.
+        out : ndarray of float64, shape (n_bins,), optional
+            Where to write the result.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_bins,)
+            The predicted distribution; sums to ``p.sum()``.
+        """
+        if out is None:
+            out = np.empty(self.environment.n_bins)
+        if self._transition is not None:
+            return self._k.predict_dense(p, self._transition, out)
+        return self._k.predict_grid(
+            p, self._ny, self._nx, self._kernel_1d, self._mask_f, self._inv_norm, out, self._scratch
+        )
+
+    def dense_matrix(self) -> np.ndarray:
+        """The transition matrix ``T`` (from row bin to column bin), plain numpy.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_bins, n_bins)
+
+        Raises
+        ------
+        ValueError
+            For a grid arena of more than ``MAX_DENSE_GRID_BINS`` bins.
+        """
+        if self._transition is not None:
+            return self._transition.copy()
+        n = self.environment.n_bins
+        if n > MAX_DENSE_GRID_BINS:
+            raise ValueError(f"a dense transition of {n} bins would need {n * n * 8 / 1e9:.1f} GB; use predict()")
+        reach = self._kernel_1d.size // 2
+
+        def axis_kernel(size: int) -> np.ndarray:
+            lag = np.arange(size)[np.newaxis, :] - np.arange(size)[:, np.newaxis]
+            return np.where(np.abs(lag) <= reach, self._kernel_1d[np.clip(lag + reach, 0, 2 * reach)], 0.0)
+
+        # Row-major bins (bin = iy * nx + ix) make the separable kernel a Kronecker product.
+        return self._normalise_rows(np.kron(axis_kernel(self._ny), axis_kernel(self._nx)))
+
+
+class BayesDecoder:
+    """Posterior over position from the spike counts of one window.
+
+    Under the independent-Poisson model a unit with rate map ``lambda_i(x)``
+    fires ``n_i`` spikes in a window of ``window_s`` with probability
+    ``Poisson(n_i; window_s * lambda_i(x))`` (Zhang et al. 1998). With
+    ``prior="uniform"`` each window is decoded on its own. With
+    ``prior="state_space"`` the decoder is a causal filter (Brown et al.
+    1998): the first window after construction or :meth:`reset` uses the
+    uniform prior over the valid bins, every later one uses the previous
+    posterior moved one step by a :class:`RandomWalk`. Should that prior
+    have no mass where the spikes point (the product underflows), the window
+    is decoded with the uniform prior instead and ``underflow_resets`` counts it.
+
+    Parameters
+    ----------
+    rate_maps_hz : ndarray of float64, shape (n_units, n_bins)
+        Firing-rate map of each unit (Hz); must be finite and non-negative
+        on the valid bins (other bins are ignored, NaN allowed there).
+    environment : Environment
+    valid_mask : ndarray of bool, shape (n_bins,)
+        Bins to decode over, normally the place model's visited bins; it is
+        combined with ``environment.valid_mask``. Other bins get posterior 0.
+    window_s : float
+        Length of the spike-count window in seconds.
+    prior : {"uniform", "state_space"}, default "uniform"
+    random_walk_sd_cm : float, default 3.0
+        S.d. of the random walk per decoded window (cm), for ``"state_space"``.
+    zone_masks : ndarray of bool, shape (n_zones, n_bins), optional
+        Bins of each target zone; the posterior mass in each is reported.
+    rate_floor_hz : float, default 0.01
+        Rates below this are raised to it, so that a spike where a unit never
+        fired lowers the likelihood there instead of ruling the bin out
+        (common practice).
+    backend : {"numba", "numpy"}, default "numba"
+        Compiled kernels, or their plain numpy twins (the benchmark baseline).
+
+    Attributes
+    ----------
+    valid_mask : ndarray of bool, shape (n_bins,)
+        The bins decoded over (``valid_mask & environment.valid_mask``).
+    n_units, n_bins, n_zones : int
+    transition : RandomWalk or None
+        The state-space transition; ``None`` for the uniform prior.
+    underflow_resets : int
+        Windows in which the state-space prior underflowed and was replaced
+        by the uniform prior.
+
+    Examples
+    --------
+    >>> from decoder.space.environments import LinearTrack
+    >>> track = LinearTrack((0, 0), (100, 0), bin_cm=10)
+    >>> rates = np.full((2, 10), 1.0); rates[0, 2] = 20.0; rates[1, 7] = 20.0
+    >>> dec = BayesDecoder(rates, track, track.valid_mask, window_s=0.25)
+    >>> step = dec.decode(np.array([0]), np.array([3]))
+    >>> step.map_bin, step.map_xy_cm.tolist()
+    (2, [25.0, 0.0])
+    """
+
+    def __init__(
+        self,
+        rate_maps_hz: np.ndarray,
+        environment: Environment,
+        valid_mask: np.ndarray,
+        window_s: float,
+        *,
+        prior: str = "uniform",
+        random_walk_sd_cm: float = 3.0,
+        zone_masks: np.ndarray | None = None,
+        rate_floor_hz: float = 0.01,
+        backend: str = "numba",
+    ) -> None:
+        n_bins = environment.n_bins
+        self.environment = environment
+        self.window_s = _positive_finite("window_s", window_s)
+        if prior not in PRIORS:
+            raise ValueError(f"prior must be one of {PRIORS}, got {prior!r}")
+        self.prior = prior
+        self.random_walk_sd_cm = _positive_finite("random_walk_sd_cm", random_walk_sd_cm)
+        self.rate_floor_hz = _positive_finite("rate_floor_hz", rate_floor_hz)
+        self.backend = backend
+        self._k = _kernel_set(backend)
+
+        valid = _bin_mask("valid_mask", valid_mask, n_bins) & environment.valid_mask
+        if not valid.any():
+            raise ValueError("no bin is valid: valid_mask and the environment's valid_mask share no bin")
+        # The kernels get a writable array (one compiled type); users a read-only view.
+        self._valid = valid
+        self.valid_mask = valid.view()
+        self.valid_mask.setflags(write=False)
+
+        rates = np.asarray(rate_maps_hz)
+        if rates.ndim != 2 or rates.shape[1] != n_bins or rates.shape[0] == 0 or rates.dtype.kind not in "iuf":
+            raise ValueError(
+                f"rate_maps_hz must be a numeric array of shape (n_units >= 1, {n_bins}), "
+                f"got {rates.dtype} of shape {rates.shape}"
+            )
+        on_valid = rates[:, valid].astype(np.float64)
+        if not np.all(np.isfinite(on_valid)) or np.any(on_valid < 0):
+            unit = int(np.flatnonzero(~(np.isfinite(on_valid) & (on_valid >= 0)).all(axis=1))[0])
+            raise ValueError(f"rate_maps_hz row {unit} holds a negative, NaN or infinite rate on a valid bin")
+        self.n_units, self.n_bins = rates.shape
+        floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
+        floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
+        self._log_rate = np.ascontiguousarray(np.log(floored))
+        with np.errstate(over="ignore"):
+            self._expected_total = self.window_s * floored.sum(axis=0)
+        if not np.all(np.isfinite(self._expected_total)):
+            raise ValueError(
+                "rate_maps_hz sum to an infinite expected spike count; check the units (Hz) of the maps"
+            )
+
+        if zone_masks is None:
+            zone_masks = np.zeros((0, n_bins), bool)
+        zones = np.asarray(zone_masks)
+        if zones.ndim != 2 or zones.shape[1] != n_bins or zones.dtype != np.bool_:
+            raise ValueError(
+                f"zone_masks must be a boolean array of shape (n_zones, {n_bins}), "
+                f"got {zones.dtype} of shape {zones.shape}"
+            )
+        self.n_zones = zones.shape[0]
+        self._bin_size = float(environment.bin_size)
+        self._zone_start = np.concatenate([[0], np.cumsum(zones.sum(axis=1))]).astype(np.int64)
+        self._zone_bins = np.ascontiguousarray(np.nonzero(zones)[1], dtype=np.int64)
+
+        self.transition = None
+        if prior == "state_space":
+            self.transition = RandomWalk(environment, valid, self.random_walk_sd_cm, backend)
+        centers = np.asarray(environment.bin_centers_cm, dtype=np.float64)
+        self._centers_x = np.ascontiguousarray(centers[:, 0])
+        self._centers_y = np.ascontiguousarray(centers[:, 1])
+        self._uniform = valid.astype(np.float64)
+
+        # decode_step's arguments between the window and the previous
+        # posterior, and after it; the arrays it keeps between calls are
+        # ``_state``, ``_unit_counts`` and ``_log_like``.
+        walk = self.transition
+        walk_arrays, dense = (np.zeros(1),) * 3, np.zeros((1, 1))
+        if walk is None:
+            kind = _kernels.NO_TRANSITION
+        elif walk._transition is None:
+            kind, walk_arrays = _kernels.GRID_TRANSITION, (walk._kernel_1d, walk._mask_f, walk._inv_norm)
+        else:
+            kind, dense = _kernels.DENSE_TRANSITION, walk._transition
+        ny, nx = environment.grid_shape if kind == _kernels.GRID_TRANSITION else (1, n_bins)
+        reach = walk_arrays[0].size // 2
+        self._state = np.zeros(_kernels.STATE_SIZE, np.int64)
+        self._state[_kernels.STATE_UPDATES] = -1
+        self._unit_counts = np.zeros((3, self.n_units))
+        self._log_like = np.empty(n_bins)
+        self._args_before = (
+            MAX_COUNT,
+            self._log_rate,
+            self._expected_total,
+            self._valid,
+            self._uniform,
+            kind,
+            ny,
+            nx,
+            *walk_arrays,
+            dense,
+            self._centers_x,
+            self._centers_y,
+            self._zone_start,
+            self._zone_bins,
+            HPD_MASS,
+            self._state,
+            self._unit_counts,
+            np.empty(self.n_units, np.int64),  # unit_rows
+            self._log_like,
+        )
+        self._args_after = (
+            np.empty(n_bins),  # predicted
+            np.empty(n_bins),  # scratch
+            # grid_scratch: two copies of the grid padded by the walk's reach
+            # (zeros: padding that is never written must hold numbers)
+            np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach)),
+        )
+        self._out_size = n_bins + 4 + self.n_zones
+        # The last posterior's own buffer (posterior, MAP and mean centres,
+        # zone masses), or a placeholder before the first step; read-only
+        # like every buffer handed out, so that the kernel compiles once.
+        self._previous = np.zeros(self._out_size)
+        self._previous.setflags(write=False)
+        self.underflow_resets = 0
+
+    def reset(self) -> None:
+        """Forget the previous posterior: the next window uses the uniform prior.
+
+        The log-likelihood is recomputed afresh at the next window too, so a
+        reset decoder gives the same numbers as a new one.
+        """
+        self._state[_kernels.STATE_UPDATES] = -1
+        self._state[_kernels.STATE_HAS_PREVIOUS] = 0
+
+    def _read_counts(self, fired_rows: Any, fired_counts: Any) -> tuple[np.ndarray, np.ndarray]:
+        # The pipeline passes contiguous int64 rows and float64 counts: those
+        # go straight through; values are checked inside decode_step.
+        if (
+            type(fired_rows) is np.ndarray
+            and type(fired_counts) is np.ndarray
+            and fired_rows.dtype is _INT64
+            and fired_counts.dtype is _FLOAT64
+            and fired_rows.ndim == 1
+            and fired_counts.ndim == 1
+            and fired_rows.shape == fired_counts.shape
+            and fired_rows.flags.c_contiguous
+            and fired_counts.flags.c_contiguous
+        ):
+            return fired_rows, fired_counts
+        rows = np.asarray(fired_rows)
+        counts = np.asarray(fired_counts)
+        if rows.ndim != 1 or counts.ndim != 1:
+            raise ValueError(
+                f"fired_rows and fired_counts must be one-dimensional, got shapes {rows.shape} and {counts.shape}"
+            )
+        if rows.size != counts.size:
+            raise ValueError(f"fired_rows has {rows.size} entries but fired_counts has {counts.size}")
+        if rows.size == 0:
+            return np.zeros(0, np.int64), np.zeros(0, np.float64)
+        if rows.dtype.kind not in "iu":
+            raise ValueError(f"fired_rows must hold integer model rows, got dtype {rows.dtype}")
+        if counts.dtype.kind not in "iuf":
+            raise ValueError(f"fired_counts must be numeric, got dtype {counts.dtype}")
+        return np.ascontiguousarray(rows, dtype=np.int64), np.ascontiguousarray(counts, dtype=np.float64)
+
+    def _bad_entry(self, rows: np.ndarray, counts: np.ndarray, bad: int) -> ValueError:
+        row, count = int(rows[bad]), float(counts[bad])
+        if not 0 <= row < self.n_units:
+            return ValueError(f"fired_rows holds row {row}, outside the model's rows 0..{self.n_units - 1}")
+        if not np.isfinite(count):
+            return ValueError(f"fired_counts holds a NaN or infinite count ({count}) for row {row}")
+        if count < 0:
+            return ValueError(f"fired_counts holds a negative count ({count:g}) for row {row}; spike counts are >= 0")
+        if count >= MAX_COUNT:
+            return ValueError(f"fired_counts holds {count:g} spikes for row {row}, more than {MAX_COUNT:g}")
+        return ValueError(f"fired_counts must hold whole numbers of spikes, got {count:g} for row {row}")
+
+    def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray) -> DecodedStep:
+        """Decode one window.
+
+        Parameters
+        ----------
+        fired_rows : ndarray of int, shape (k,)
+            Model rows (``0..n_units-1``) of the units that fired; repeats add up.
+        fired_counts : ndarray of int or float, shape (k,)
+            Their spike counts in the window (whole numbers, >= 0).
+
+        Returns
+        -------
+        DecodedStep
+            Its arrays are views of one buffer of its own, which no later
+            call writes to, so a caller may keep the step.
+
+        Raises
+        ------
+        ValueError
+            For arrays of the wrong shape or type, rows out of range, or
+            negative, fractional or non-finite counts. The decoder's state is
+            unchanged when this is raised.
+
+        Notes
+        -----
+        Consecutive windows mostly share their spikes, so the log-likelihood
+        is updated where counts changed rather than recomputed (afresh at
+        least every ``_kernels.LIKELIHOOD_REFRESH_STEPS`` windows and after
+        :meth:`reset`). The result therefore depends, within rounding (about
+        1e-13 relative), on the windows decoded since the last reset, and is
+        the same, bit for bit, whenever the same windows are decoded in the
+        same order from construction or a reset, as live runs and their
+        replays are.
+        """
+        rows, counts = self._read_counts(fired_rows, fired_counts)
+        buf = np.empty(self._out_size)
+        status, map_bin, n_hpd, n_spikes, peak = self._k.decode_step(
+            rows, counts, *self._args_before, self._previous, *self._args_after, buf
+        )
+        if status >= 0:
+            raise self._bad_entry(rows, counts, status)
+        return self._step(buf, status, map_bin, n_hpd, n_spikes, peak)
+
+    def decode_held(self, held_t_s: np.ndarray, held_rows: np.ndarray, start: int, stop: int,
+                    t_end_s: float) -> tuple[DecodedStep, int]:
+        """Count and decode the window ``(t_end_s - window_s, t_end_s]`` of held spikes, in one call.
+
+        The same step, bit for bit, as counting the window's spikes per row
+        and passing them to :meth:`decode`; for a caller that keeps its
+        spikes in sorted arrays (``binning.SpikeWindow``).
+
+        Parameters
+        ----------
+        held_t_s : ndarray of float64, shape (n,)
+            Spike times, sorted over ``start:stop``.
+        held_rows : ndarray of int64, shape (n,)
+            Model row (``0..n_units-1``) of each spike.
+        start, stop : int
+            The held part of the arrays.
+        t_end_s : float
+
+        Returns
+        -------
+        step : DecodedStep
+        first : int
+            Index of the first held spike inside the window or after it:
+            the spikes before it are older than this window.
+
+        Raises
+        ------
+        ValueError
+            For a spike of the window whose row is out of range (the
+            decoder's state is then unchanged).
+        """
+        buf = np.empty(self._out_size)
+        status, map_bin, n_hpd, n_spikes, peak, first = self._k.decode_window_step(
+            held_t_s, held_rows, start, stop, t_end_s, self.window_s,
+            *self._args_before, self._previous, *self._args_after, buf,
+        )
+        if status >= 0:
+            raise ValueError(
+                f"held spike {status} has row {int(held_rows[status])}, outside the model's rows 0..{self.n_units - 1}"
+            )
+        return self._step(buf, status, map_bin, n_hpd, n_spikes, peak), first
+
+    def _step(self, buf: np.ndarray, status: int, map_bin: int, n_hpd: int, n_spikes: int,
+              peak: float) -> DecodedStep:
+        """The DecodedStep of a window the kernel decoded into ``buf``."""
+        if status == _kernels.STEP_UNDERFLOW:
+            self.underflow_resets += 1
+            # Loud once, then quiet: a pathological stream could repeat this at every step.
+            log = logger.warning if self.underflow_resets == 1 else logger.debug
+            log(
+                "state-space prior underflowed (no prior mass where the spikes point); "
+                "decoding this window with the uniform prior (%d so far)",
+                self.underflow_resets,
+            )
+        # Read-only from here on: the caller gets views of it, and the next
+        # step reads it as the previous posterior.
+        buf.setflags(write=False)
+        if self.transition is not None:
+            self._previous = buf
+        n = self.n_bins
+        # Positional, in field order: keywords cost a microsecond here.
+        return DecodedStep(
+            buf[:n], map_bin, buf[n : n + 2], buf[n + 2 : n + 4], n_hpd * self._bin_size, peak, buf[n + 4 :], n_spikes
+        )

@@ -1,0 +1,357 @@
+"""The live closed loop: ZeroMQ in, the pipeline, ZeroMQ out, the recorder as a tap.
+
+One process, one poller loop, read top to bottom in :meth:`LiveLoop.run`:
+
+1. wait on the rig SUB socket and the control REP socket;
+2. drain what arrived, stamping each message with its wall-clock receipt;
+3. record the raw bytes (before anything can go wrong with them), decode
+   them (bad input is counted and logged, never raised), and feed the
+   pipeline;
+4. publish each event on the events PUB socket (and the TTL line) and the
+   decoder's state on the state PUB socket, then record what went out;
+5. watch the input streams on the wall clock and disarm when one stalls.
+
+Sockets (all bound to loopback unless the config allows otherwise):
+
+- rig SUB: connects to the rig's publishers; RCVHWM is large so that a
+  burst (or a pause while fitting) queues instead of losing spikes;
+- events PUB: one message per trigger event;
+- state PUB: one message per decoding step for monitors; SNDHWM is tiny so
+  a slow or absent monitor loses frames instead of holding memory or time;
+- control REP: request/reply commands from an experiment-control script.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import zmq
+
+from decoder.config import ExperimentConfig
+from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from rig_adapters.wire import protocol
+from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_EVENTS, CHANNEL_RIG, Ingest
+from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
+from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
+
+log = logging.getLogger(__name__)
+
+#: Input queued in the SUB socket before ZeroMQ drops: minutes of a 1000-unit
+#: rig at 100 batches/s, enough to ride out a model fit.
+RIG_RCVHWM = 1_000_000
+
+#: A monitor that falls behind by more than this many state frames loses frames.
+STATE_SNDHWM = 4
+
+#: Messages handled per pass before the control socket and the watchdog get a turn.
+DRAIN_LIMIT = 2000
+
+class LiveLoop:
+    """The decoder process's loop.
+
+    Parameters
+    ----------
+    config : ExperimentConfig
+    pipeline : Pipeline
+    recorder : SessionRecorder or None
+        Session log; every input and every event goes to it.
+    ttl : rig_adapters.live.ttl.TtlLine or None
+        A serial line for TTL pulses.
+    publish_state : bool
+        Send a state frame per step (for monitors).
+    """
+
+    def __init__(self, config: ExperimentConfig, pipeline: Pipeline, recorder: SessionRecorder | None = None,
+                 ttl=None, publish_state: bool = True) -> None:
+        self.config = config
+        self.pipeline = pipeline
+        self.ingest = Ingest(pipeline)
+        self.recorder = recorder
+        self.ttl = ttl
+        self.publish_state = publish_state
+        self.latency = LatencyLog()
+        self.events_sent = 0
+        self.stop_requested = False
+        self.name = "placeloop"
+        self._state_seq = 0
+        self._stats_wall_s = 0.0
+        self._stats: dict = {}
+        self._last_counts: dict = {}
+        shape = config.environment.grid_shape
+        self._grid_shape = list(shape) if shape is not None else [config.environment.n_bins]
+        self._last_rig_wall_s: float | None = None
+        self._stall_raised = False
+        self.ctx = zmq.Context.instance()
+
+    # -- sockets -----------------------------------------------------------------
+
+    def _open_sockets(self) -> None:
+        ep = self.config.endpoints
+        self.rig = self.ctx.socket(zmq.SUB)
+        self.rig.setsockopt(zmq.RCVHWM, RIG_RCVHWM)
+        self.rig.setsockopt(zmq.LINGER, 0)
+        self.rig.setsockopt(zmq.SUBSCRIBE, b"")
+        for endpoint in ep.rig:
+            self.rig.connect(endpoint)
+        self.events = self.ctx.socket(zmq.PUB)
+        # Events are rare and must reach the stimulator: a generous queue.
+        self.events.setsockopt(zmq.SNDHWM, 10_000)
+        self.events.setsockopt(zmq.LINGER, 500)
+        self.events.bind(ep.events)
+        self.state_pub = self.ctx.socket(zmq.PUB)
+        self.state_pub.setsockopt(zmq.SNDHWM, STATE_SNDHWM)
+        self.state_pub.setsockopt(zmq.LINGER, 0)
+        self.state_pub.bind(ep.state)
+        self.control = self.ctx.socket(zmq.REP)
+        self.control.setsockopt(zmq.LINGER, 0)
+        self.control.bind(ep.control)
+
+    def _close_sockets(self) -> None:
+        for sock in (self.rig, self.events, self.state_pub, self.control):
+            sock.close()
+
+    # -- the loop ------------------------------------------------------------------
+
+    def run(self, duration_s: float | None = None, idle_exit_s: float | None = None) -> None:
+        """Run until stopped, ``duration_s`` of wall time, or ``idle_exit_s`` without rig input."""
+        self._open_sockets()
+        poller = zmq.Poller()
+        poller.register(self.rig, zmq.POLLIN)
+        poller.register(self.control, zmq.POLLIN)
+        started = time.monotonic()
+        last_input = started
+        try:
+            while not self.stop_requested:
+                ready = dict(poller.poll(timeout=10))
+                if self.rig in ready:
+                    n = self._drain_rig()
+                    if n:
+                        last_input = time.monotonic()
+                if self.control in ready:
+                    self._serve_control()
+                now = time.monotonic()
+                self._watchdog(now)
+                if self.recorder is not None:
+                    self.recorder.maybe_flush(time.time())
+                if duration_s is not None and now - started >= duration_s:
+                    break
+                if idle_exit_s is not None and now - last_input >= idle_exit_s:
+                    log.info("no rig input for %.1f s; stopping", idle_exit_s)
+                    break
+        finally:
+            self._close_sockets()
+            if self.recorder is not None:
+                self.recorder.flush()
+
+    def _drain_rig(self) -> int:
+        n = 0
+        while n < DRAIN_LIMIT:
+            try:
+                payload = self.rig.recv(zmq.NOBLOCK, copy=True)
+            except zmq.Again:
+                break
+            recv_wall_s = time.time()
+            n += 1
+            self.handle_rig_bytes(payload, recv_wall_s)
+        return n
+
+    def handle_rig_bytes(self, payload: bytes, recv_wall_s: float) -> None:
+        """Record, decode and process one rig message."""
+        if self.recorder is not None:
+            self.recorder.record_input(payload, recv_wall_s, CHANNEL_RIG)
+        self._last_rig_wall_s = time.monotonic()
+        self._stall_raised = False
+        t0 = time.perf_counter()
+        outputs = self.ingest.rig_bytes(payload)
+        if outputs:
+            self._emit(outputs, recv_wall_s, time.time(), (time.perf_counter() - t0) * 1e3)
+
+    def _emit(self, outputs: list, recv_wall_s: float, decoded_wall_s: float, work_ms: float) -> None:
+        steps = [o for o in outputs if isinstance(o, StepOutput)]
+        if steps:
+            self.latency.decode_ms.append(work_ms / len(steps))
+        for out in outputs:
+            if isinstance(out, Notice):
+                self._notice(out)
+                continue
+            if isinstance(out, LearningProgress):
+                if self.publish_state:
+                    self._send_learning(out)
+                continue
+            for event, is_false in zip(out.events, out.false_events):
+                self._send_event(out, event, is_false, recv_wall_s, decoded_wall_s)
+            if self.publish_state:
+                self._send_state(out)
+        # The added latency: from the receipt of the message that closed the
+        # step to the last byte of its output handed to ZeroMQ.
+        if steps:
+            self.latency.added_ms.append((time.time() - recv_wall_s) * 1e3)
+
+    def _send_event(self, out: StepOutput, event, is_false: bool, recv_wall_s: float, decoded_wall_s: float) -> None:
+        payload = protocol.encode_event(
+            source=self.name,
+            seq=self.events_sent,
+            event_id=event.event_id,
+            zone=event.zone,
+            rule=event.rule,
+            t_s=out.t_s,
+            map_xy_cm=out.step.map_xy_cm,
+            mean_xy_cm=out.step.mean_xy_cm,
+            zone_mass=float(event.zone_mass),
+            tracked_xy_cm=out.tracked_xy_cm,
+            wall_received_s=recv_wall_s,
+            wall_decoded_s=decoded_wall_s,
+        )
+        self.events.send(payload)
+        sent_wall_s = time.time()
+        if self.ttl is not None:
+            self.ttl.pulse()
+        self.events_sent += 1
+        self.latency.event_ms.append((sent_wall_s - recv_wall_s) * 1e3)
+        if self.recorder is not None:
+            self.recorder.record_output(payload, sent_wall_s, CHANNEL_EVENTS)
+        log.info("event %d: rule %r zone %r at t=%.3f s%s", event.event_id, event.rule, event.zone, out.t_s,
+                 " (animal far from the zone)" if is_false else "")
+
+    def _send_state(self, out: StepOutput) -> None:
+        stats = self._monitor_stats()
+        stats["error_cm"] = out.error_cm if math.isfinite(out.error_cm) else -1.0
+        stats["true_x_cm"], stats["true_y_cm"] = (float(v) for v in out.true_xy_cm)
+        stats["event_id"] = out.events[-1].event_id if out.events else 0
+        fields = dict(
+            source=self.name,
+            seq=self._state_seq,
+            t_s=out.t_s,
+            state=self.pipeline.state,
+            armed=bool(out.armed),
+            map_xy_cm=out.step.map_xy_cm,
+            mean_xy_cm=out.step.mean_xy_cm,
+            tracked_xy_cm=out.tracked_xy_cm,
+            hpd95_size=float(out.step.hpd95_size),
+            peak_prob=float(out.step.peak_prob),
+            zone_masses={name: float(m) for name, m in zip(self.pipeline.zone_names, out.step.zone_mass)},
+            n_spikes=int(out.step.n_spikes),
+            posterior=out.step.posterior,
+            grid_shape=self._grid_shape,
+            stats={k: v for k, v in stats.items() if isinstance(v, int) or math.isfinite(v)},
+        )
+        self._publish_state(fields)
+
+    def _send_learning(self, progress: LearningProgress) -> None:
+        tracked_xy, _ = self.pipeline.tracked.at(progress.t_s)
+        occupancy = progress.occupancy_s
+        total = occupancy.sum()
+        stats = self._monitor_stats()
+        stats.update(coverage=progress.coverage, learn_elapsed_s=progress.learn_elapsed_s)
+        if progress.n_tuned_units is not None:
+            stats["n_spatial_units"] = progress.n_tuned_units
+        nan2 = [float("nan"), float("nan")]
+        self._publish_state(dict(
+            source=self.name,
+            seq=self._state_seq,
+            t_s=progress.t_s,
+            state=self.pipeline.state,
+            armed=False,
+            map_xy_cm=nan2,
+            mean_xy_cm=nan2,
+            tracked_xy_cm=tracked_xy,
+            hpd95_size=0.0,
+            peak_prob=0.0,
+            zone_masses={name: 0.0 for name in self.pipeline.zone_names},
+            n_spikes=0,
+            posterior=occupancy / total if total > 0 else occupancy,
+            grid_shape=self._grid_shape,
+            stats=stats,
+        ))
+
+    def _publish_state(self, fields: dict) -> None:
+        self._state_seq += 1
+        try:
+            self.state_pub.send(protocol.encode_state(**fields), zmq.NOBLOCK)
+        except zmq.Again:
+            pass
+
+    def _monitor_stats(self) -> dict:
+        """Counters and latency figures for monitors, refreshed once a second of wall time."""
+        now = time.monotonic()
+        if now - self._stats_wall_s >= 1.0:
+            c = self.pipeline.counters
+            recent = self.latency.added_ms.recent()
+            counts = {name: h.messages for name, h in self.pipeline.health.sources.items()}
+            elapsed = now - self._stats_wall_s if self._stats_wall_s > 0 else 1.0
+            rates = {f"rate_{role}_hz": (counts.get(src, 0) - self._last_counts.get(src, 0)) / elapsed
+                     for role, src in (("spikes", self.config.sources.spikes),
+                                       ("tracker", self.config.sources.tracker))}
+            self._last_counts = counts
+            self._stats_wall_s = now
+            self._stats = {
+                "latency_p50_ms": float(np.percentile(recent, 50)) if recent.size else 0.0,
+                "latency_p99_ms": float(np.percentile(recent, 99)) if recent.size else 0.0,
+                "bad_messages": int(c["bad_messages"]),
+                "gaps": int(self.pipeline.health.total_gaps),
+                "stale_messages": int(c["stale_messages"]),
+                "events_total": int(c["events"]),
+                "stalled": int(self._stall_raised),
+                **rates,
+            }
+        stats = dict(self._stats)
+        readiness = self.pipeline.readiness
+        if readiness:
+            stats["coverage"] = float(readiness["coverage"])
+            stats["n_spatial_units"] = int(readiness["n_tuned_units"])
+            cv = readiness.get("median_cv_error_cm")
+            if cv is not None and math.isfinite(cv):
+                stats["cv_error_cm"] = float(cv)
+        stats["added_ms"] = self.latency.added_ms.last or 0.0
+        return stats
+
+    def _notice(self, notice: Notice) -> None:
+        log.info("session: %s at t=%s %s", notice.kind, notice.t_s, notice.detail or "")
+        if self.recorder is not None:
+            self.recorder.record_mark({"notice": notice.kind, "t_s": json_float(notice.t_s),
+                                       "detail": jsonable(notice.detail)}, time.time())
+            if notice.kind == "fitted" and self.pipeline.model is not None:
+                self._store_model_sidecar()
+
+    def _store_model_sidecar(self) -> None:
+        with tempfile.TemporaryDirectory(prefix="placeloop-model-") as tmp:
+            path = Path(tmp) / "model.npz"
+            self.pipeline.model.save(path)
+            self.recorder.write_sidecar(FITTED_MODEL_SIDECAR, path.read_bytes())
+
+    # -- control --------------------------------------------------------------------
+
+    def _serve_control(self) -> None:
+        payload = self.control.recv()
+        recv_wall_s = time.time()
+        if self.recorder is not None:
+            self.recorder.record_input(payload, recv_wall_s, CHANNEL_CONTROL)
+        outputs, reply = self.ingest.control_bytes(payload)
+        self._emit(outputs, recv_wall_s, time.time(), 0.0)
+        ok = reply.pop("ok")
+        self.control.send(protocol.encode_control_reply(ok, **jsonable(reply)))
+
+    def _watchdog(self, now: float) -> None:
+        """Disarm when the rig has been silent for the stall limit (wall clock)."""
+        if self._last_rig_wall_s is None or self._stall_raised or not self.pipeline.bank.armed:
+            return
+        if now - self._last_rig_wall_s > self.config.safety.stall_limit_s:
+            self._stall_raised = True
+            log.error("rig silent for %.2f s: disarming", now - self._last_rig_wall_s)
+            payload = Ingest.stall_request(self.config.sources.spikes)
+            recv_wall_s = time.time()
+            if self.recorder is not None:
+                self.recorder.record_input(payload, recv_wall_s, CHANNEL_CONTROL)
+            outputs, _ = self.ingest.control_bytes(payload)
+            self._emit(outputs, recv_wall_s, time.time(), 0.0)
+
+    # -- summary ----------------------------------------------------------------------
+
+    def summary(self) -> dict:
+        """The session summary (the JSON written by ``--summary``)."""
+        return session_summary(self.pipeline, self.latency)
