@@ -34,6 +34,15 @@ log = logging.getLogger("placeloop")
 #: Subcommands handed whole to a module's own ``main(argv)``.
 DELEGATED = {"monitor": monitor_server.main, "sweep": sweep.main, "report": report.main}
 
+RUN_DESCRIPTION = """\
+The decoder's live loop: rig in, decoding, trigger events out.
+
+--dry-run is safe by construction: the events socket is not bound at all, so
+nothing a stimulator bridge connects to exists, and no TTL line is driven.
+Every event that would have fired is written to the session log (channel
+events_dry_run), counted in the summary (outputs.events_withheld) and shown
+to monitors on the state stream (stats.dry_run, stats.events_withheld)."""
+
 DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"
 
 
@@ -64,7 +73,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     config = _with_endpoints(load_config(args.config), args.rig, args.events, args.state, args.control)
     if args.dry_run:
         config = dataclasses.replace(config, ttl=dataclasses.replace(config.ttl, device=""))
-        print("dry run: no TTL output; events go to the events socket only", file=sys.stderr)
+        print(f"dry run: no events socket at {config.endpoints.events} and no TTL output; events are only "
+              "logged and shown to monitors", file=sys.stderr)
     # Before any socket opens: the first decoded step must not wait for numba to compile.
     started = time.perf_counter()
     try:
@@ -99,7 +109,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         except OSError as exc:
             print(f"error: {exc}", file=sys.stderr)
             return 2
-    loop = LiveLoop(config, pipeline, recorder=recorder, ttl=ttl)
+    loop = LiveLoop(config, pipeline, recorder=recorder, ttl=ttl, dry_run=args.dry_run)
 
     def _stop(signum, frame):
         loop.stop_requested = True
@@ -108,6 +118,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGINT, _stop)
     try:
         loop.run(duration_s=args.duration_s, idle_exit_s=args.idle_exit_s)
+    except OSError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
     finally:
         if ttl is not None:
             ttl.close()
@@ -234,7 +247,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7)
     p.set_defaults(func=cmd_demo)
 
-    p = sub.add_parser("run", help="the decoder's live loop")
+    p = sub.add_parser("run", help="the decoder's live loop", description=RUN_DESCRIPTION, epilog=CAUTION,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--config", required=True, help="experiment config (TOML)")
     p.add_argument("--model", default=None, help="a model file saved earlier; decode with it from the start")
     p.add_argument("--rig", action="append", default=None, help="rig endpoint to connect to (repeatable)")
@@ -245,7 +259,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--summary", default=None, help="write the JSON summary here at the end")
     p.add_argument("--duration-s", type=float, default=None, help="stop after this many wall-clock seconds")
     p.add_argument("--idle-exit-s", type=float, default=None, help="stop after this long without rig input")
-    p.add_argument("--dry-run", action="store_true", help="never drive the TTL line, whatever the config says")
+    p.add_argument("--dry-run", action="store_true",
+                   help="publish no event and drive no TTL line, whatever the config says; events are logged only")
     p.add_argument("--cpu", type=int, action="append", default=None,
                    help="run the loop on this CPU core only (repeatable; Linux)")
     p.set_defaults(func=cmd_run)

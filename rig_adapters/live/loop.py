@@ -11,14 +11,25 @@ One process, one poller loop, read top to bottom in :meth:`LiveLoop.run`:
    decoder's state on the state PUB socket, then record what went out;
 5. watch the input streams on the wall clock and disarm when one stalls.
 
+A dry run (``dry_run=True``) never binds the events socket and drives no
+TTL line: a stimulator bridge has nothing to connect to, so nothing can act
+on an event. Each event is recorded instead on the session log's
+``events_dry_run`` channel and counted as withheld, and the state stream
+says ``dry_run`` in its stats, so monitors and summaries show what would
+have fired.
+
 Sockets (all bound to loopback unless the config allows otherwise):
 
 - rig SUB: connects to the rig's publishers; RCVHWM is large so that a
   burst (or a pause while fitting) queues instead of losing spikes;
-- events PUB: one message per trigger event;
+- events PUB: one message per trigger event (not opened in a dry run);
 - state PUB: one message per decoding step for monitors; SNDHWM is tiny so
   a slow or absent monitor loses frames instead of holding memory or time;
-- control REP: request/reply commands from an experiment-control script.
+- control REP: request/reply commands from an experiment-control script;
+  every request gets one reply, a refusal saying why (rig_adapters.wire.ingest).
+
+A socket that cannot be opened closes the ones opened before it, so a failed
+start leaves every port free.
 """
 
 from __future__ import annotations
@@ -35,7 +46,14 @@ import zmq
 from decoder.config import ExperimentConfig
 from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
 from rig_adapters.wire import protocol
-from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_EVENTS, CHANNEL_RIG, Ingest
+from rig_adapters.wire.ingest import (
+    CHANNEL_CONTROL,
+    CHANNEL_CONTROL_REFUSED,
+    CHANNEL_DRY_RUN_EVENTS,
+    CHANNEL_EVENTS,
+    CHANNEL_RIG,
+    Ingest,
+)
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
 from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
 
@@ -51,6 +69,11 @@ STATE_SNDHWM = 4
 #: Messages handled per pass before the control socket and the watchdog get a turn.
 DRAIN_LIMIT = 2000
 
+#: Control requests over this size (bytes) make ZeroMQ drop the requester's
+#: connection, unanswered: the loop never holds such a frame in memory.
+#: Requests up to it are answered; over ingest.MAX_CONTROL_BYTES, refused.
+CONTROL_MAXMSGSIZE = 1024 * 1024
+
 class LiveLoop:
     """The decoder process's loop.
 
@@ -64,10 +87,15 @@ class LiveLoop:
         A serial line for TTL pulses.
     publish_state : bool
         Send a state frame per step (for monitors).
+    dry_run : bool
+        Bind no events socket and drive no TTL line; events are recorded
+        and counted as withheld (see the module's docstring).
     """
 
     def __init__(self, config: ExperimentConfig, pipeline: Pipeline, recorder: SessionRecorder | None = None,
-                 ttl=None, publish_state: bool = True) -> None:
+                 ttl=None, publish_state: bool = True, dry_run: bool = False) -> None:
+        if dry_run and ttl is not None:
+            raise ValueError("a dry run drives no TTL line; pass ttl=None or drop dry_run")
         self.config = config
         self.pipeline = pipeline
         self.ingest = Ingest(pipeline)
@@ -75,7 +103,10 @@ class LiveLoop:
         self.ttl = ttl
         self.publish_state = publish_state
         self.latency = LatencyLog()
+        self.dry_run = dry_run
         self.events_sent = 0
+        self.events_withheld = 0
+        self._sockets: list[zmq.Socket] = []
         self.stop_requested = False
         self.name = "placeloop"
         self._state_seq = 0
@@ -92,28 +123,41 @@ class LiveLoop:
 
     def _open_sockets(self) -> None:
         ep = self.config.endpoints
-        self.rig = self.ctx.socket(zmq.SUB)
-        self.rig.setsockopt(zmq.RCVHWM, RIG_RCVHWM)
-        self.rig.setsockopt(zmq.LINGER, 0)
-        self.rig.setsockopt(zmq.SUBSCRIBE, b"")
-        for endpoint in ep.rig:
-            self.rig.connect(endpoint)
-        self.events = self.ctx.socket(zmq.PUB)
-        # Events are rare and must reach the stimulator: a generous queue.
-        self.events.setsockopt(zmq.SNDHWM, 10_000)
-        self.events.setsockopt(zmq.LINGER, 500)
-        self.events.bind(ep.events)
-        self.state_pub = self.ctx.socket(zmq.PUB)
-        self.state_pub.setsockopt(zmq.SNDHWM, STATE_SNDHWM)
-        self.state_pub.setsockopt(zmq.LINGER, 0)
-        self.state_pub.bind(ep.state)
-        self.control = self.ctx.socket(zmq.REP)
-        self.control.setsockopt(zmq.LINGER, 0)
-        self.control.bind(ep.control)
+        try:
+            self.rig = self._socket(zmq.SUB, "rig", ep.rig, bind=False, options=(
+                (zmq.RCVHWM, RIG_RCVHWM), (zmq.LINGER, 0), (zmq.SUBSCRIBE, b"")))
+            self.events = None
+            if not self.dry_run:
+                # Events are rare and must reach the stimulator: a generous queue.
+                self.events = self._socket(zmq.PUB, "events", [ep.events], options=(
+                    (zmq.SNDHWM, 10_000), (zmq.LINGER, 500)))
+            self.state_pub = self._socket(zmq.PUB, "state", [ep.state], options=(
+                (zmq.SNDHWM, STATE_SNDHWM), (zmq.LINGER, 0)))
+            self.control = self._socket(zmq.REP, "control", [ep.control], options=(
+                (zmq.LINGER, 0), (zmq.MAXMSGSIZE, CONTROL_MAXMSGSIZE)))
+        except BaseException:
+            self._close_sockets()
+            raise
+
+    def _socket(self, kind: int, name: str, endpoints, options, bind: bool = True) -> zmq.Socket:
+        """A configured socket bound (or connected) to ``endpoints``; kept for closing."""
+        sock = self.ctx.socket(kind)
+        self._sockets.append(sock)
+        for option, value in options:
+            sock.setsockopt(option, value)
+        for endpoint in endpoints:
+            verb = "bind" if bind else "connect"
+            try:
+                getattr(sock, verb)(endpoint)
+            except zmq.ZMQError as exc:
+                raise OSError(f"cannot {verb} the {name} socket to {endpoint} ({exc}); is another placeloop "
+                              f"running there, or the port taken? Choose free endpoints in [endpoints]") from None
+        return sock
 
     def _close_sockets(self) -> None:
-        for sock in (self.rig, self.events, self.state_pub, self.control):
+        for sock in self._sockets:
             sock.close()
+        self._sockets.clear()
 
     # -- the loop ------------------------------------------------------------------
 
@@ -207,6 +251,14 @@ class LiveLoop:
             wall_received_s=recv_wall_s,
             wall_decoded_s=decoded_wall_s,
         )
+        if self.dry_run:
+            # No events socket exists: the event goes to the log, on its own channel.
+            self.events_withheld += 1
+            if self.recorder is not None:
+                self.recorder.record_output(payload, time.time(), CHANNEL_DRY_RUN_EVENTS)
+            log.info("dry run: event %d withheld (rule %r zone %r at t=%.3f s would have fired)%s",
+                     event.event_id, event.rule, event.zone, out.t_s, " (animal far from the zone)" if is_false else "")
+            return
         self.events.send(payload)
         sent_wall_s = time.time()
         if self.ttl is not None:
@@ -297,6 +349,9 @@ class LiveLoop:
                 "stale_messages": int(c["stale_messages"]),
                 "events_total": int(c["events"]),
                 "stalled": int(self._stall_raised),
+                "dry_run": int(self.dry_run),
+                "events_withheld": self.events_withheld,
+                "control_refused": sum(self.ingest.control_refused.values()),
                 **rates,
             }
         stats = dict(self._stats)
@@ -327,14 +382,48 @@ class LiveLoop:
     # -- control --------------------------------------------------------------------
 
     def _serve_control(self) -> None:
-        payload = self.control.recv()
+        """Answer one request: exactly one reply, whatever the request holds."""
+        try:
+            parts = self.control.recv_multipart(zmq.NOBLOCK)
+        except zmq.Again:
+            return
         recv_wall_s = time.time()
-        if self.recorder is not None:
-            self.recorder.record_input(payload, recv_wall_s, CHANNEL_CONTROL)
-        outputs, reply = self.ingest.control_bytes(payload)
-        self._emit(outputs, recv_wall_s, time.time(), 0.0)
-        ok = reply.pop("ok")
-        self.control.send(protocol.encode_control_reply(ok, **jsonable(reply)))
+        reply = None
+        try:
+            if len(parts) == 1:
+                if self.recorder is not None:
+                    self.recorder.record_input(parts[0], recv_wall_s, CHANNEL_CONTROL)
+                outputs, reply = self.ingest.control_bytes(parts[0])
+                self._emit(outputs, recv_wall_s, time.time(), 0.0)
+            else:
+                # Kept in the log, on a channel a replay does not feed: it was never a request.
+                if self.recorder is not None:
+                    for part in parts:
+                        self.recorder.record_input(part, recv_wall_s, CHANNEL_CONTROL_REFUSED)
+                _, reply = self.ingest.refuse(
+                    "multipart", f"the request has {len(parts)} parts; send one frame holding one control map")
+        except Exception as exc:  # noqa: BLE001 - the control socket's edge: a request never ends the loop
+            log.exception("a control request failed")
+            _, reply = self.ingest.refuse("internal", f"the request failed inside placeloop ({type(exc).__name__}); "
+                                                      "see the decoder's log")
+        finally:
+            self._reply(reply)
+
+    def _reply(self, fields: dict | None) -> None:
+        if fields is None:
+            fields = {"ok": False, "error": "the request failed inside placeloop; see the decoder's log"}
+        fields = dict(fields)
+        ok = fields.pop("ok")
+        try:
+            payload = protocol.encode_control_reply(ok, **jsonable(fields))
+        except Exception:  # noqa: BLE001 - the REP socket must answer, or it takes no more requests
+            log.exception("a control reply could not be encoded")
+            payload = protocol.encode_control_reply(False, error="the reply could not be encoded; see the "
+                                                                  "decoder's log", reason="internal")
+        try:
+            self.control.send(payload, zmq.NOBLOCK)
+        except zmq.ZMQError as exc:
+            log.warning("a control reply was not sent (%s); the requester has gone", exc)
 
     def _watchdog(self, now: float) -> None:
         """Disarm when the rig has been silent for the stall limit (wall clock)."""
@@ -353,5 +442,14 @@ class LiveLoop:
     # -- summary ----------------------------------------------------------------------
 
     def summary(self) -> dict:
-        """The session summary (the JSON written by ``--summary``)."""
-        return session_summary(self.pipeline, self.latency)
+        """The session summary (the JSON written by ``--summary``).
+
+        Beyond the keys a replay shares, ``outputs`` says how many events
+        were published and how many a dry run withheld, and ``control``
+        counts refused control requests by reason.
+        """
+        summary = session_summary(self.pipeline, self.latency)
+        summary["outputs"] = {"dry_run": self.dry_run, "events_published": self.events_sent,
+                              "events_withheld": self.events_withheld}
+        summary["control"] = {"refused": dict(self.ingest.control_refused)}
+        return summary
