@@ -40,7 +40,7 @@ The decoder's live loop: rig in, decoding, trigger events out.
 --dry-run is safe by construction: the events socket is not bound at all, so
 nothing a stimulator bridge connects to exists, and no TTL line is driven.
 Every event that would have fired is written to the session log (channel
-events_dry_run), counted in the summary (outputs.events_withheld) and shown
+events_dry_run), counted in the summary (triggers.withheld) and shown
 to monitors on the state stream (stats.dry_run, stats.events_withheld)."""
 
 DEFAULT_DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "round_arena_goal.toml"

@@ -8,6 +8,7 @@ while disarmed or far from the zone, and record every frame it received.
 
 import json
 import os
+import signal
 import subprocess
 import sys
 import time
@@ -132,7 +133,7 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
     summary_path = tmp / "summary.json"
     loop = subprocess.Popen(
         [sys.executable, "-m", "rig_adapters.cli", "-v", "run", "--config", str(cfg), "--model", str(model),
-         "--log", str(log_dir), "--summary", str(summary_path), "--idle-exit-s", "5"],
+         "--log", str(log_dir), "--summary", str(summary_path), "--idle-exit-s", "120"],
         cwd=ROOT, stderr=subprocess.PIPE, text=True,
     )
     ctx = zmq.Context.instance()
@@ -195,8 +196,14 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
         sent += 1
         pub.send(protocol.encode(TrackerFrames("tracker", 10**6, [25.0], [[np.nan, np.nan]])))
         sent += 1
-        time.sleep(0.5)
+        # Stopped by signal once the last frame is in, not by an idle timeout: on a loaded
+        # machine `placeloop control` above may take longer to start than any short timeout.
+        deadline = time.monotonic() + 30.0
+        while _request(control, "status")["status"]["sources"].get("tracker", {}).get("last_seq") != 10**6:
+            assert time.monotonic() < deadline, "the loop never took the last frame"
+            time.sleep(0.2)
         pub.close()
+        loop.send_signal(signal.SIGTERM)
         loop.wait(timeout=60)
     finally:
         if loop.poll() is None:
@@ -212,6 +219,9 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
         if reason is not None:
             assert reasons.get(reason, 0) >= 1, (reason, reasons)
     assert summary["input"]["bad_messages"] == len(bad)
+    # The status polls were answered without a sequence number: no gap on the control stream.
+    assert summary["input"]["sources"]["control"]["gaps"] == 0
+    assert summary["input"]["control_refused"] == {}
     # Each bad message is logged with its reason.
     assert stderr.count("bad rig message") + stderr.count("refused a control command") == len(bad)
     assert summary["input"]["unknown_units"] >= 1

@@ -74,6 +74,7 @@ DRAIN_LIMIT = 2000
 #: Requests up to it are answered; over ingest.MAX_CONTROL_BYTES, refused.
 CONTROL_MAXMSGSIZE = 1024 * 1024
 
+
 class LiveLoop:
     """The decoder process's loop.
 
@@ -421,7 +422,8 @@ class LiveLoop:
             payload = protocol.encode_control_reply(False, error="the reply could not be encoded; see the "
                                                                   "decoder's log", reason="internal")
         try:
-            self.control.send(payload, zmq.NOBLOCK)
+            # A REP reply goes to its requester's own pipe; if that peer has gone, ZeroMQ drops it.
+            self.control.send(payload)
         except zmq.ZMQError as exc:
             log.warning("a control reply was not sent (%s); the requester has gone", exc)
 
@@ -444,12 +446,12 @@ class LiveLoop:
     def summary(self) -> dict:
         """The session summary (the JSON written by ``--summary``).
 
-        Beyond the keys a replay shares, ``outputs`` says how many events
-        were published and how many a dry run withheld, and ``control``
-        counts refused control requests by reason.
+        Beyond the figures a replay shares, ``triggers`` says whether this
+        was a dry run and how many events were published or withheld, and
+        ``input.control_refused`` counts refused control requests by reason
+        (apart from ``input.bad_messages``, which is rig data only).
         """
         summary = session_summary(self.pipeline, self.latency)
-        summary["outputs"] = {"dry_run": self.dry_run, "events_published": self.events_sent,
-                              "events_withheld": self.events_withheld}
-        summary["control"] = {"refused": dict(self.ingest.control_refused)}
+        summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld)
+        summary["input"]["control_refused"] = dict(self.ingest.control_refused)
         return summary
