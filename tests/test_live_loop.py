@@ -115,7 +115,16 @@ def _bad_frames():
         (huge, "oversized"),
         (inf_frame, None),
         (protocol.encode_control_request("arm", source="ephys", seq=10**6), "unknown_kind"),
+        # About 1 KB each, nested 1000 lists deep: the codec must not take the loop down with it.
+        *((msgpack.packb({**unpacked, key: _deep_list()}), None) for key in ("v", "k", "src", "seq")),
     ]
+
+
+def _deep_list(depth=1000):
+    x = []
+    for _ in range(depth):
+        x = [x]
+    return x
 
 
 def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
