@@ -167,7 +167,8 @@ def test_a_refused_model_file_leaves_the_installed_model(running_loop, model_fil
     reply = _send(endpoint, protocol.encode_control_request("load_model", {"path": str(model_files[name])}))
     assert reply["ok"] is False and reply["reason"] == "bad_model", reply
     assert why in reply["error"], reply["error"]
-    # A FIFO is refused at once: opening it would wait for a writer for ever.
+    # A FIFO is refused at once: opening a FIFO for reading blocks until a writer opens it
+    # (POSIX open(); Linux fifo(7) man page, from memory).
     assert time.monotonic() - started < 5.0
     assert loop.pipeline.model is before
     assert _status(endpoint)["state"] == "decoding"
@@ -243,13 +244,16 @@ def test_multipart_and_oversized_requests_are_refused(running_loop):
     status = protocol.encode_control_request("status")
     reply = _send(endpoint, status, status)
     assert (reply["ok"], reply["reason"]) == (False, "multipart") and "2 parts" in reply["error"]
+    # REQ strips nothing but its own delimiter, so REP sees both frames (ZeroMQ guide, REQ/REP envelopes).
     reply = _send(endpoint, b"", status)
     assert (reply["ok"], reply["reason"]) == (False, "multipart")
     big = _request("status", {"pad": "x" * 4000}, pad=[b"y" * 1000] * 70)
     assert MAX_CONTROL_BYTES < len(big) < CONTROL_MAXMSGSIZE
     reply = _send(endpoint, big)
     assert (reply["ok"], reply["reason"]) == (False, "oversized") and str(MAX_CONTROL_BYTES) in reply["error"]
-    # Over the transport's limit ZeroMQ drops the requester unanswered (PROTOCOL.md, section 6).
+    # Over the transport's limit ZeroMQ drops the requester unanswered: "if a peer sends a message
+    # larger than ZMQ_MAXMSGSIZE it is disconnected" (libzmq zmq_setsockopt docs, from memory;
+    # PROTOCOL.md section 6 promises the same).
     with pytest.raises(zmq.Again):
         _send(endpoint, b"z" * (CONTROL_MAXMSGSIZE + 1), timeout_ms=1000)
     status = _status(endpoint)
