@@ -255,43 +255,50 @@ class OnlineCounts:
         if xy.shape != (len(t), 2):
             raise ValueError(f"xy_cm must have shape ({len(t)}, 2) to match t_s, got {xy.shape}")
         self._counters["frames_received"] += len(t)
-        t, xy = self._take_frames(t, xy)
-        if t.size == 0:
+        if len(t) == 1:
+            # A tracker sends one frame per message: reading it costs more than the rule.
+            frames = [(t.item(0), xy.item(0), xy.item(1))]
+        else:
+            frames = zip(t.tolist(), xy[:, 0].tolist(), xy[:, 1].tolist())
+        take = self._take_frame
+        kept = [frame for frame in frames if take(*frame)]
+        if not kept:
             return
-        if t.size >= _FRAME_BATCH:
+        if len(kept) >= _FRAME_BATCH:
             # A batch this long gains nothing from being held.
             self._flush()
-            self._work_in_frames(t, xy, [t.size])
+            txy = np.array(kept)
+            self._work_in_frames(txy[:, 0], txy[:, 1:], [len(kept)])
             return
-        self._held_t.extend(t.tolist())
-        self._held_xy.extend(map(tuple, xy.tolist()))
+        for t_s, x_cm, y_cm in kept:
+            self._held_t.append(t_s)
+            self._held_xy.append((x_cm, y_cm))
         self._held_calls.append(len(self._held_t))
         if len(self._held_t) >= _FRAME_BATCH:
             self._flush()
 
-    def _take_frames(self, t: np.ndarray, xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Count the frames and keep those with a finite time, newer than any before, and seen.
+    def _take_frame(self, t_s: float, x_cm: float, y_cm: float) -> bool:
+        """Count one frame; True when it has a finite time, is newer than any before, and is seen.
 
-        The one rule for every frame, a message's single frame included.
+        The one rule for every frame: a batch is taken frame by frame, so a
+        message's single frame and a long batch are judged alike. Python
+        floats rather than numpy, because a tracker sends one frame per
+        message and numpy's calls on one element cost more than the rule.
         """
         c = self._counters
-        finite = np.isfinite(t)
-        c["frames_bad_time"] += int(np.count_nonzero(~finite))
-        t, xy = t[finite], xy[finite]
-        if t.size == 0:
-            return t, xy
-        running_max = np.maximum.accumulate(np.concatenate([[self._last_frame_t], t]))[:-1]
-        in_order = t > running_max
-        c["frames_out_of_order"] += int(np.count_nonzero(~in_order))
-        t, xy = t[in_order], xy[in_order]
-        if t.size == 0:
-            return t, xy
+        if not math.isfinite(t_s):
+            c["frames_bad_time"] += 1
+            return False
+        if not t_s > self._last_frame_t:
+            c["frames_out_of_order"] += 1
+            return False
         if self._t0 is None:
-            self._t0 = float(t[0])
-        self._last_frame_t = float(t[-1])
-        seen = np.all(np.isfinite(xy), axis=1)
-        c["frames_lost"] += int(np.count_nonzero(~seen))
-        return t[seen], xy[seen]
+            self._t0 = t_s
+        self._last_frame_t = t_s
+        if not (math.isfinite(x_cm) and math.isfinite(y_cm)):
+            c["frames_lost"] += 1
+            return False
+        return True
 
     def update_spikes(self, t_s: Any, unit_ids: Any) -> None:
         """Add spikes.
