@@ -68,7 +68,6 @@ _FRAME_BATCH = 64
 #: Unit ids below this are looked up in a table rather than a dict.
 _MAX_UNIT_TABLE = 1 << 20
 
-
 # Fate of each interval between consecutive valid frames.
 _COUNTED, _SLOW, _GAP, _OUTSIDE = 0, 1, 2, 3
 
@@ -91,7 +90,6 @@ _COUNTER_KEYS = (
 )
 
 
-
 def _add_ones(counts: np.ndarray, index: np.ndarray) -> None:
     """Add 1 to ``counts[i]`` for every ``i`` in ``index``, repeats included (``np.add.at(counts, index, 1)``).
 
@@ -109,7 +107,6 @@ def _positive(name: str, value: Any, *, allow_zero: bool = False) -> None:
     if not ok:
         need = "zero or a positive" if allow_zero else "a positive"
         raise ValueError(f"{name} must be {need} finite number, got {value!r}")
-
 
 
 class OnlineCounts:

@@ -121,7 +121,6 @@ def _check_simple_polygon(verts: np.ndarray) -> None:
         raise ValueError("vertices_cm encloses almost no area; check the units and the vertex order")
 
 
-
 class Arena(Environment):
     """An open field covered by a square grid.
 

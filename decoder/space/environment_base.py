@@ -73,12 +73,10 @@ def read_positions(name: str, xy_cm: Any) -> np.ndarray:
     return xy
 
 
-
 def freeze(arr: np.ndarray) -> np.ndarray:
     """``arr`` made read-only, so that an environment's geometry cannot change under a model."""
     arr.setflags(write=False)
     return arr
-
 
 
 class Environment(abc.ABC):

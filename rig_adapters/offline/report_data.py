@@ -352,7 +352,6 @@ def _describe_notice(detail: dict) -> str:
     return ", ".join(f"{k} {format_figure(v)}" for k, v in flat.items())
 
 
-
 def format_figure(value, digits: int = 3) -> str:
     """A figure for people: integers as they are, other numbers to ``digits`` significant digits."""
     if value is None:
@@ -366,7 +365,6 @@ def format_figure(value, digits: int = 3) -> str:
             return "–"
         return f"{value:.{digits}g}" if abs(value) < 10 ** digits else f"{value:.0f}"
     return str(value)
-
 
 
 # ---------------------------------------------------------------------------
