@@ -20,9 +20,9 @@ from decoder.encoding.place_model import (
     FORMAT_VERSION,
     ModelFileError,
     PlaceModel,
-    _window_speed,
-    _window_speed_numpy,
 )
+from decoder.encoding.running_speed import running_speed as _window_speed
+from decoder.encoding.running_speed import running_speed_numpy as _window_speed_numpy
 from decoder.encoding.spatial_metrics import skaggs_information
 
 FPS = 30.0
@@ -222,7 +222,7 @@ def test_spikes_in_a_gap_before_tracking_or_outside_are_counted_not_placed():
 
 
 def test_a_full_spike_buffer_drops_the_oldest_and_counts_them(monkeypatch):
-    monkeypatch.setattr("decoder.encoding.place_model._MAX_PENDING_SPIKES", 100)
+    monkeypatch.setattr("decoder.encoding.online_counts._MAX_PENDING_SPIKES", 100)
     model = PlaceModel(box(5.0))
     t, xy = circle_run(10.0, t0_s=0.0)
     # The tracker stalls: 150 spikes arrive with no frame to place them.
@@ -614,7 +614,7 @@ def test_held_arrivals_give_what_working_each_in_at_once_gives(short_session, mo
     settings = {"cv_block_s": 20.0, "cv_folds": 3}
     held = feed(PlaceModel(box(2.0), **settings), events, read_every=97)
     # A batch of one: every arrival is worked in at once, as the model did before it held any.
-    monkeypatch.setattr("decoder.encoding.place_model._FRAME_BATCH", 1)
+    monkeypatch.setattr("decoder.encoding.online_counts._FRAME_BATCH", 1)
     at_once = feed(PlaceModel(box(2.0), **settings), events)
     assert held.counters_["spikes_too_late"] > 0
     assert held.counters_["frames_out_of_order"] == 1
@@ -646,7 +646,7 @@ def test_readers_see_every_arrival_so_far(short_session, monkeypatch):
     held = PlaceModel(box(2.0))
     for kind, a, b in events[:1234]:
         (held.update_frames if kind == "f" else held.update_spikes)(a, b)
-    monkeypatch.setattr("decoder.encoding.place_model._FRAME_BATCH", 1)
+    monkeypatch.setattr("decoder.encoding.online_counts._FRAME_BATCH", 1)
     at_once = feed(PlaceModel(box(2.0)), events[:1234])
     # Nothing held back from a reader: occupancy and counters as if every arrival
     # had been worked in on the spot (numpy.array_equal).

@@ -30,7 +30,7 @@ from PIL import Image
 
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline, StepOutput
-from rig_adapters.offline import report
+from rig_adapters.offline import report, report_data
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import CHANNEL_EVENTS, CHANNEL_RIG, Ingest
 from rig_adapters.sessions.recorder import SessionRecorder, iter_records, read_log
@@ -113,9 +113,9 @@ def session(tmp_path_factory):
     # An independent replay; its outputs also feed a trace with small caps, to see the thinning at work.
     steps, events = [], []
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(report, "TRACE_SAMPLES", 100)
-        mp.setattr(report, "MAX_EVENT_PANELS", 4)
-        mp.setattr(report, "EXCERPT_S", 10.0)
+        mp.setattr(report_data, "TRACE_SAMPLES", 100)
+        mp.setattr(report_data, "MAX_EVENT_PANELS", 4)
+        mp.setattr(report_data, "EXCERPT_S", 10.0)
         small = report.SessionTrace()
 
         def on_output(out):

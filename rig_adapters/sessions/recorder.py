@@ -10,7 +10,10 @@ hands the buffer to the operating system at most once per
 except an optional ``fsync``.
 
 The byte layout is specified in ``rig_adapters/sessions/LOG_FORMAT.md``; this module
-is its reference implementation, writer and reader.
+is its writer, :mod:`rig_adapters.sessions.log_reader` its reader and
+:mod:`rig_adapters.sessions.log_format` holds what both agree on. The reader's
+names are importable from here too, beside the sidecar names, so that a
+session directory is described in one place.
 
 Durability, in short: once :meth:`~SessionRecorder.maybe_flush` or
 :meth:`~SessionRecorder.flush` has returned, the bytes belong to the
@@ -22,27 +25,74 @@ or kernel crash can also lose what the OS had not yet put on disk; the
 
 from __future__ import annotations
 
-import gc
 import hashlib
 import importlib.metadata
 import json
 import logging
 import math
 import os
-import struct
 import time
 import zlib
-from collections.abc import Iterator
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import Any
 
+from rig_adapters.sessions.log_format import (
+    CHANNEL_RECORD,
+    CRC,
+    END_RECORD,
+    FILE_START,
+    FORMAT_VERSION,
+    HEADER_CRC,
+    INPUT_RECORD,
+    LOG_NAME,
+    MAGIC,
+    MARK_RECORD,
+    MAX_CHANNEL_NAME_BYTES,
+    MAX_CHANNELS,
+    MAX_HEADER_BYTES,
+    MAX_NOTE_BYTES,
+    MAX_PAYLOAD_BYTES,
+    NO_CHANNEL,
+    OUTPUT_RECORD,
+    PREFIX,
+    PREFIX_AFTER_CRC,
+    TYPE_NAMES,
+    LogFormatError,
+)
+from rig_adapters.sessions.log_reader import (
+    LogReader,
+    LogReadResult,
+    LogRecord,
+    iter_records,
+    read_log,
+)
 from rig_adapters.wire.protocol import PROTOCOL_VERSION
 
 logger = logging.getLogger(__name__)
 
-#: Name of the log file inside a session directory.
-LOG_NAME = "session.plog"
+__all__ = [
+    "SessionRecorder",
+    "CONFIG_SIDECAR",
+    "INITIAL_MODEL_SIDECAR",
+    "FITTED_MODEL_SIDECAR",
+    "FLUSH_BYTES",
+    "MAX_BUFFER_BYTES",
+    "FSYNC_POLICIES",
+    # The log's format and its reader, re-exported for the callers that name a session directory's files.
+    "LOG_NAME",
+    "MAGIC",
+    "FORMAT_VERSION",
+    "MAX_PAYLOAD_BYTES",
+    "MAX_HEADER_BYTES",
+    "MAX_CHANNEL_NAME_BYTES",
+    "MAX_NOTE_BYTES",
+    "LogFormatError",
+    "LogRecord",
+    "LogReadResult",
+    "LogReader",
+    "iter_records",
+    "read_log",
+]
 
 #: Sidecar holding the config the live run used.
 CONFIG_SIDECAR = "config.toml"
@@ -50,25 +100,6 @@ CONFIG_SIDECAR = "config.toml"
 INITIAL_MODEL_SIDECAR = "initial_model.npz"
 #: Sidecar holding a model fitted during the session (read back by replays and reports).
 FITTED_MODEL_SIDECAR = "fitted_model.npz"
-
-#: First eight bytes of every session log, in every format version.
-MAGIC = b"PLOOPLOG"
-
-#: The format version this module writes and reads.
-FORMAT_VERSION = 1
-
-#: Largest payload one record may carry, in bytes. A reader treats a larger
-#: declared length as damage, so the cap is part of the format.
-MAX_PAYLOAD_BYTES = 64 * 1024 * 1024
-
-#: Largest JSON header, in bytes.
-MAX_HEADER_BYTES = 1024 * 1024
-
-#: Largest channel name, in bytes of UTF-8.
-MAX_CHANNEL_NAME_BYTES = 64
-
-#: Largest JSON note in a mark record, in bytes.
-MAX_NOTE_BYTES = 1024 * 1024
 
 #: The buffer is handed to the OS at the next ``maybe_flush`` once it holds
 #: this many bytes, even before the flush interval is over, so that a burst
@@ -81,108 +112,6 @@ FLUSH_BYTES = 1024 * 1024
 MAX_BUFFER_BYTES = 256 * 1024 * 1024
 
 FSYNC_POLICIES = ("never", "on_flush", "on_close")
-
-# Record types on disk. Only input, output and mark are handed to readers;
-# channel declarations and the end record are bookkeeping.
-_INPUT, _OUTPUT, _MARK, _CHANNEL, _END = 1, 2, 3, 4, 5
-_TYPE_NAMES = {_INPUT: "input", _OUTPUT: "output", _MARK: "mark"}
-
-# File header: magic, version (u16), header JSON length (u32), then after
-# the JSON a CRC-32 (u32) over version, length and JSON.
-_FILE_START = struct.Struct("<8sHI")
-_HEADER_CRC = struct.Struct("<I")
-
-# Record prefix: CRC-32 (u32) over everything after it, payload length
-# (u32), type (u8), reserved (u8, zero), channel id (u16), wall time (f64 s).
-_PREFIX = struct.Struct("<IIBBHd")
-_PREFIX_AFTER_CRC = struct.Struct("<IBBHd")
-_CRC = struct.Struct("<I")
-
-_READ_CHUNK_BYTES = 8 * 1024 * 1024
-_NO_CHANNEL = 0
-_MAX_CHANNELS = 0xFFFF
-
-
-class LogFormatError(ValueError):
-    """The file is not a placeloop session log, or one this version cannot read."""
-
-
-class LogRecord(NamedTuple):
-    """One recorded message, as read back.
-
-    Attributes
-    ----------
-    index : int
-        Position among the input, output and mark records of the log, from 0.
-    type : {"input", "output", "mark"}
-    wall_s : float
-        Wall-clock time of receipt (input) or sending (output) or of the
-        mark, in seconds since the Unix epoch.
-    channel : str
-        Name of the channel the message came in or went out on; ``""`` for
-        marks.
-    payload : bytes
-        The message bytes exactly as received or sent; UTF-8 JSON for marks.
-    offset : int
-        Byte offset of the record in the file.
-    """
-
-    index: int
-    type: str
-    wall_s: float
-    channel: str
-    payload: bytes
-    offset: int
-
-    def note(self) -> dict:
-        """The JSON note of a mark record.
-
-        Raises
-        ------
-        ValueError
-            If the record is not a mark.
-        """
-        if self.type != "mark":
-            raise ValueError(f"record {self.index} is an {self.type} record; only marks carry a note")
-        return json.loads(self.payload)
-
-
-@dataclass(frozen=True, slots=True)
-class LogReadResult:
-    """Everything read from one session log.
-
-    Attributes
-    ----------
-    path : Path
-    header : dict
-        The JSON header written when the log was created.
-    records : list of LogRecord
-        Every intact input, output and mark record, in file order.
-    channels : tuple of str
-        Channel names in the order they were first used.
-    clean_close : bool
-        True when the log ends with the end record written by
-        :meth:`SessionRecorder.close`; False after a crash, a kill, a power
-        cut or damage.
-    stopped_at_offset : int
-        Byte offset where reading stopped: the file size after a clean read,
-        else the start of the first record that is incomplete or damaged.
-    damage : str or None
-        A sentence saying why reading stopped early or why the close was not
-        clean; None for a clean, complete log.
-    summary : dict or None
-        The recorder's counters as written in the end record; None without
-        a clean close.
-    """
-
-    path: Path
-    header: dict
-    records: list
-    channels: tuple
-    clean_close: bool
-    stopped_at_offset: int
-    damage: str | None
-    summary: dict | None
 
 
 def _placeloop_version() -> str:
@@ -340,9 +269,9 @@ class SessionRecorder:
                 "Choose a new session directory or move the old one away."
             ) from None
         try:
-            start = _FILE_START.pack(MAGIC, FORMAT_VERSION, len(header_json))
+            start = FILE_START.pack(MAGIC, FORMAT_VERSION, len(header_json))
             crc = zlib.crc32(header_json, zlib.crc32(start[len(MAGIC):]))
-            _write_fully(self._fd, start + header_json + _HEADER_CRC.pack(crc))
+            _write_fully(self._fd, start + header_json + HEADER_CRC.pack(crc))
             if fsync != "never":
                 os.fsync(self._fd)
                 _fsync_directory(self.directory)
@@ -362,7 +291,7 @@ class SessionRecorder:
             "inputs": 0,
             "outputs": 0,
             "marks": 0,
-            "bytes_written": len(start) + len(header_json) + _HEADER_CRC.size,
+            "bytes_written": len(start) + len(header_json) + HEADER_CRC.size,
             "flushes": 0,
             "fsyncs": 0,
             "dropped_oversized": 0,
@@ -385,7 +314,7 @@ class SessionRecorder:
         channel : str
             Name of the channel (socket) it came in on, e.g. ``"spikes"``.
         """
-        self._append_message(_INPUT, payload, recv_wall_s, channel)
+        self._append_message(INPUT_RECORD, payload, recv_wall_s, channel)
 
     def record_output(self, payload: bytes, wall_s: float, channel: str) -> None:
         """Append one outgoing event or state message exactly as sent.
@@ -398,7 +327,7 @@ class SessionRecorder:
         channel : str
             Name of the channel it went out on, e.g. ``"events"``.
         """
-        self._append_message(_OUTPUT, payload, wall_s, channel)
+        self._append_message(OUTPUT_RECORD, payload, wall_s, channel)
 
     def record_mark(self, note: dict, wall_s: float) -> None:
         """Append a small JSON note, e.g. ``{"event": "model fitted"}``.
@@ -429,7 +358,7 @@ class SessionRecorder:
             logger.warning("dropped a mark of %d bytes: over the cap", len(data))
             reason = f"a note of {len(data)} bytes exceeds the cap of {MAX_NOTE_BYTES} bytes"
             data = json.dumps({"dropped": "mark", "keys": sorted(map(str, note))[:50], "reason": reason}).encode()
-        if self._append(_MARK, _NO_CHANNEL, wall_s, data):
+        if self._append(MARK_RECORD, NO_CHANNEL, wall_s, data):
             self._counters["marks"] += 1
 
     def _append_message(self, rtype: int, payload: Any, wall_s: float, channel: str) -> None:
@@ -443,7 +372,7 @@ class SessionRecorder:
             channel_id = self._declare_channel(channel, wall_s)
         if len(payload) > self.max_payload_bytes:
             self._counters["dropped_oversized"] += 1
-            kind = _TYPE_NAMES[rtype]
+            kind = TYPE_NAMES[rtype]
             logger.warning("dropped an %s payload of %d bytes on channel %r: over the cap", kind, len(payload), channel)
             self.record_mark(
                 {
@@ -457,7 +386,7 @@ class SessionRecorder:
             )
             return
         if self._append(rtype, channel_id, wall_s, payload):
-            self._counters["inputs" if rtype == _INPUT else "outputs"] += 1
+            self._counters["inputs" if rtype == INPUT_RECORD else "outputs"] += 1
 
     def _declare_channel(self, channel: Any, wall_s: float) -> int:
         if not isinstance(channel, str) or not channel:
@@ -465,10 +394,10 @@ class SessionRecorder:
         name = channel.encode("utf-8")
         if len(name) > MAX_CHANNEL_NAME_BYTES:
             raise ValueError(f"channel name {channel!r} is longer than {MAX_CHANNEL_NAME_BYTES} bytes")
-        if len(self._channels) >= _MAX_CHANNELS - 1:
-            raise ValueError(f"a session log holds at most {_MAX_CHANNELS - 1} channels; {channel!r} is one too many")
+        if len(self._channels) >= MAX_CHANNELS - 1:
+            raise ValueError(f"a session log holds at most {MAX_CHANNELS - 1} channels; {channel!r} is one too many")
         channel_id = len(self._channels) + 1
-        self._append(_CHANNEL, channel_id, wall_s, name, count=False)
+        self._append(CHANNEL_RECORD, channel_id, wall_s, name, count=False)
         self._channels[channel] = channel_id
         return channel_id
 
@@ -476,14 +405,14 @@ class SessionRecorder:
         # Bookkeeping records (count=False: channel declarations, the end
         # record) are tiny and always kept, so the log stays readable.
         pending = len(self._buf) - self._written
-        if count and pending + _PREFIX.size + len(payload) > MAX_BUFFER_BYTES:
+        if count and pending + PREFIX.size + len(payload) > MAX_BUFFER_BYTES:
             if self._dropped_since_note == 0:
                 logger.error("recorder buffer full (%d bytes unwritten); dropping records until writes work", pending)
             self._dropped_since_note += 1
             self._counters["dropped_buffer_full"] += 1
             return False
-        rest = _PREFIX_AFTER_CRC.pack(len(payload), rtype, 0, channel_id, wall_s)
-        self._buf += _CRC.pack(zlib.crc32(payload, zlib.crc32(rest)))
+        rest = PREFIX_AFTER_CRC.pack(len(payload), rtype, 0, channel_id, wall_s)
+        self._buf += CRC.pack(zlib.crc32(payload, zlib.crc32(rest)))
         self._buf += rest
         self._buf += payload
         if count:
@@ -549,7 +478,7 @@ class SessionRecorder:
         wall_s = time.time()
         self._note_dropped(wall_s)
         summary = dict(self._counters, closed_wall_s=wall_s, channels=list(self._channels))
-        self._append(_END, _NO_CHANNEL, wall_s, json.dumps(summary).encode("utf-8"), count=False)
+        self._append(END_RECORD, NO_CHANNEL, wall_s, json.dumps(summary).encode("utf-8"), count=False)
         try:
             ok = self._flush_buffer(self.fsync != "never")
         finally:
@@ -688,252 +617,3 @@ class SessionRecorder:
         state = "closed" if self._closed else "open"
         return f"SessionRecorder({str(self.directory)!r}, {state}, records={self._counters['records']})"
 
-
-# -- reading ----------------------------------------------------------------------
-
-
-def _read_header(path: Path) -> tuple[dict, int]:
-    with open(path, "rb") as f:
-        start = f.read(_FILE_START.size)
-        if len(start) < len(MAGIC) or start[: len(MAGIC)] != MAGIC:
-            if not start:
-                raise LogFormatError(f"{path} is empty: not a placeloop session log")
-            if MAGIC.startswith(start[: len(MAGIC)]):
-                raise LogFormatError(f"{path} ends inside the log's magic bytes: the header is incomplete")
-            raise LogFormatError(
-                f"{path} is not a placeloop session log: it starts with {start[:len(MAGIC)]!r}, not {MAGIC!r}"
-            )
-        if len(start) < _FILE_START.size:
-            raise LogFormatError(f"{path} ends inside its file header: the header is incomplete")
-        _, version, header_len = _FILE_START.unpack(start)
-        if version != FORMAT_VERSION:
-            raise LogFormatError(
-                f"{path} is a placeloop session log of format version {version}; "
-                f"this placeloop reads format version {FORMAT_VERSION} only"
-            )
-        if header_len > MAX_HEADER_BYTES:
-            raise LogFormatError(f"{path} declares a header of {header_len} bytes, over the limit: it is damaged")
-        rest = f.read(header_len + _HEADER_CRC.size)
-    if len(rest) < header_len + _HEADER_CRC.size:
-        raise LogFormatError(f"{path} ends inside its JSON header: the header is incomplete")
-    header_json = rest[:header_len]
-    (stored,) = _HEADER_CRC.unpack_from(rest, header_len)
-    if zlib.crc32(header_json, zlib.crc32(start[len(MAGIC):])) != stored:
-        raise LogFormatError(f"{path} has a damaged header: its CRC-32 does not match")
-    try:
-        header = json.loads(header_json)
-    except ValueError:
-        raise LogFormatError(f"{path} has a header that is not valid JSON") from None
-    if not isinstance(header, dict):
-        raise LogFormatError(f"{path} has a header that is not a JSON object")
-    return header, _FILE_START.size + header_len + _HEADER_CRC.size
-
-
-class LogReader:
-    """Iterate over a session log's records without loading it whole.
-
-    The header is read and checked on construction. Iterating yields
-    :class:`LogRecord` objects in file order and stops cleanly at the first
-    incomplete or damaged record; afterwards ``clean_close``,
-    ``stopped_at_offset``, ``damage``, ``channels`` and ``summary`` say how
-    it ended (they mean the same as in :class:`LogReadResult`).
-
-    Parameters
-    ----------
-    path : str or Path
-        A ``session.plog`` file, or a session directory holding one.
-
-    Raises
-    ------
-    LogFormatError
-        If the file is not a placeloop session log, or of another format
-        version, or its header is damaged.
-    """
-
-    def __init__(self, path: str | os.PathLike) -> None:
-        path = Path(path)
-        if path.is_dir():
-            path = path / LOG_NAME
-        self.path = path
-        self.header, self._data_offset = _read_header(path)
-        self.clean_close = False
-        self.stopped_at_offset = self._data_offset
-        self.damage: str | None = None
-        self.summary: dict | None = None
-        self.channels: tuple = ()
-        self._iterated = False
-
-    def __iter__(self) -> Iterator[LogRecord]:
-        if self._iterated:
-            raise ValueError("a LogReader can be iterated once; make a new one to read again")
-        self._iterated = True
-        return self._records()
-
-    def _stop(self, offset: int, damage: str | None) -> None:
-        self.stopped_at_offset = offset
-        self.damage = damage
-
-    def _records(self) -> Iterator[LogRecord]:
-        # One tight loop over large chunks: struct.unpack_from and zlib.crc32
-        # on a memoryview, one bytes copy per payload, nothing else per record.
-        unpack_from = _PREFIX.unpack_from
-        prefix_size = _PREFIX.size
-        crc32 = zlib.crc32
-        type_names = _TYPE_NAMES
-        new_tuple = tuple.__new__
-        names = [""]  # channel id -> name; id 0 is "no channel"
-        index = 0
-        with open(self.path, "rb") as f:
-            f.seek(self._data_offset)
-            data = f.read(_READ_CHUNK_BYTES)
-            base = self._data_offset  # file offset of data[0]
-            pos = 0
-            while True:
-                size = len(data)
-                need = 0
-                with memoryview(data) as view:
-                    while pos + prefix_size <= size:
-                        crc, length, rtype, _, channel_id, wall_s = unpack_from(data, pos)
-                        at = base + pos
-                        if length > MAX_PAYLOAD_BYTES:
-                            what = f"declares a payload of {length} bytes, over the cap of {MAX_PAYLOAD_BYTES}"
-                            self._stop(at, _damaged(at, index, what))
-                            return
-                        end = pos + prefix_size + length
-                        if end > size:
-                            need = end - size
-                            break
-                        if crc32(view[pos + 4 : end]) != crc:
-                            self._stop(at, _damaged(at, index, "fails its CRC-32 check"))
-                            return
-                        if rtype in type_names:
-                            if channel_id >= len(names):
-                                what = f"uses channel {channel_id}, which was never declared"
-                                self._stop(at, _damaged(at, index, what))
-                                return
-                            # tuple.__new__ skips the named tuple's argument
-                            # parsing, a third of the per-record cost.
-                            payload = data[pos + prefix_size : end]
-                            record = (index, type_names[rtype], wall_s, names[channel_id], payload, at)
-                            yield new_tuple(LogRecord, record)
-                            index += 1
-                        elif rtype == _CHANNEL and channel_id == len(names):
-                            names.append(data[pos + prefix_size : end].decode("utf-8", "replace"))
-                            self.channels = tuple(names[1:])
-                        elif rtype == _END:
-                            self._finish(f, data[pos + prefix_size : end], at, base + end, size - end)
-                            return
-                        else:
-                            what = f"is of unknown type {rtype} or declares channel {channel_id} out of turn"
-                            self._stop(at, _damaged(at, index, what))
-                            return
-                        pos = end
-                more = f.read(max(_READ_CHUNK_BYTES, need))
-                if not more:
-                    if pos == size:
-                        self._stop(
-                            base + pos,
-                            "the log has no end record: the recording process stopped without closing it "
-                            f"(crash, kill or power cut); all {index} records up to byte {base + pos} are intact",
-                        )
-                    else:
-                        self._stop(
-                            base + pos,
-                            f"the log ends inside the record at byte {base + pos}, after {index} intact records "
-                            f"(only {size - pos} of its bytes are there): the recording process stopped while "
-                            "writing it",
-                        )
-                    return
-                data = data[pos:] + more
-                base += pos
-                pos = 0
-
-    def _finish(self, f: Any, summary_json: bytes, offset: int, end: int, left_in_chunk: int) -> None:
-        try:
-            self.summary = json.loads(summary_json)
-        except ValueError:
-            self._stop(offset, f"the end record at byte {offset} holds no valid JSON: the log is damaged there")
-            return
-        trailing = left_in_chunk + len(f.read())
-        if trailing:
-            self._stop(
-                end,
-                f"{trailing} bytes follow the end record at byte {offset}: "
-                "something wrote to the log after it was closed",
-            )
-        else:
-            self.clean_close = True
-            self._stop(end, None)
-
-
-def _damaged(offset: int, n_intact: int, what: str) -> str:
-    return (
-        f"the record at byte {offset}, after {n_intact} intact records, {what}: the log is damaged there, "
-        "and nothing after a damaged record can be trusted"
-    )
-
-
-def iter_records(path: str | os.PathLike) -> LogReader:
-    """Open a session log for record-by-record reading.
-
-    Parameters
-    ----------
-    path : str or Path
-        A ``session.plog`` file or a session directory.
-
-    Returns
-    -------
-    LogReader
-        Iterable once over :class:`LogRecord`; after the iteration its
-        ``clean_close``, ``stopped_at_offset`` and ``damage`` say how the
-        log ended.
-
-    Raises
-    ------
-    LogFormatError
-        If the file is not a placeloop session log or of another format
-        version.
-    """
-    return LogReader(path)
-
-
-def read_log(path: str | os.PathLike) -> LogReadResult:
-    """Read a whole session log.
-
-    Parameters
-    ----------
-    path : str or Path
-        A ``session.plog`` file or a session directory.
-
-    Returns
-    -------
-    LogReadResult
-
-    Raises
-    ------
-    LogFormatError
-        If the file is not a placeloop session log or of another format
-        version.
-    """
-    reader = LogReader(path)
-    # Millions of small tuples would set off the cyclic garbage collector
-    # over and over, doubling the read time; none of them can form a cycle.
-    gc_was_enabled = gc.isenabled()
-    gc.disable()
-    try:
-        records = list(reader)
-    finally:
-        if gc_was_enabled:
-            gc.enable()
-    if reader.damage is not None:
-        logger.warning("%s: %s", reader.path, reader.damage)
-    return LogReadResult(
-        path=reader.path,
-        header=reader.header,
-        records=records,
-        channels=reader.channels,
-        clean_close=reader.clean_close,
-        stopped_at_offset=reader.stopped_at_offset,
-        damage=reader.damage,
-        summary=reader.summary,
-    )
