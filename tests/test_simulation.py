@@ -89,10 +89,10 @@ def test_from_dict_names_the_bad_value(table, words):
     assert words in str(err.value)
 
 
-def test_only_arenas_and_linear_tracks_are_simulated():
-    graph = TrackGraph([(0, 0), (100, 0), (100, 100)], [(0, 1), (1, 2)], bin_cm=5.0)
-    with pytest.raises(ValueError, match="Arena or on a LinearTrack"):
-        SimulatedSession(graph, SETTINGS, seed=0)
+def test_a_maze_needs_arms_that_end():
+    loop = TrackGraph([(0, 0), (100, 0), (100, 100), (0, 100)], [(0, 1), (1, 2), (2, 3), (3, 0)], bin_cm=5.0)
+    with pytest.raises(ValueError, match="dead ends"):
+        SimulatedSession(loop, SETTINGS, seed=0)
 
 
 # -- trajectory --------------------------------------------------------------------
