@@ -182,7 +182,7 @@ def test_tracker_outliers_come_at_their_rate():
 def test_runs_through_a_w_maze_stay_on_the_track_and_reach_every_arm():
     settings = SimulationSettings(n_place_cells=10, n_grid_cells=0, n_nonspatial_cells=2,
                                   place_field_fwhm_cm=(15.0, 30.0))
-    session, messages = _run(W_MAZE, settings, 8, 200.0)
+    session, messages = _run(W_MAZE, settings, 8, 120.0)
     t, xy, _ = _frames(messages, TRUTH_SOURCE)
     assert (W_MAZE.bin_index(xy) >= 0).all()
     ends = np.array([[0.0, 80.0], [60.0, 80.0], [120.0, 80.0]])

@@ -15,13 +15,8 @@ from scipy import stats
 
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
-from rig_adapters.sim.simulation import (
-    SPIKE_SOURCE,
-    TRACKER_SOURCE,
-    TRUTH_SOURCE,
-    SimulatedSession,
-    SimulationSettings,
-)
+from rig_adapters.sim.settings import SimulationSettings
+from rig_adapters.sim.simulation import SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE, SimulatedSession
 
 ARENA = Arena.circle((45.0, 45.0), 45.0, bin_cm=3.0)
 TRACK = LinearTrack((0.0, 0.0), (200.0, 0.0), bin_cm=2.0)

@@ -377,7 +377,7 @@ class SpikeTrains:
         """Add the bursts opened by these spikes and the earlier bursts' spikes due before ``s1``."""
         s, rng = self._s, self._rng
         opens = self._is_place[rows] & (rng.random(rows.size) < s.burst_prob)
-        low, high = (int(round(v)) for v in s.burst_spikes)
+        low, high = (round(v) for v in s.burst_spikes)
         n_open = int(np.count_nonzero(opens))
         if n_open and high > 1:
             extra = rng.integers(low, high + 1, n_open) - 1
