@@ -15,13 +15,8 @@ from scipy import stats
 
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
-from rig_adapters.sim.simulation import (
-    SPIKE_SOURCE,
-    TRACKER_SOURCE,
-    TRUTH_SOURCE,
-    SimulatedSession,
-    SimulationSettings,
-)
+from rig_adapters.sim.settings import SimulationSettings
+from rig_adapters.sim.simulation import SPIKE_SOURCE, TRACKER_SOURCE, TRUTH_SOURCE, SimulatedSession
 
 ARENA = Arena.circle((45.0, 45.0), 45.0, bin_cm=3.0)
 TRACK = LinearTrack((0.0, 0.0), (200.0, 0.0), bin_cm=2.0)
@@ -89,10 +84,10 @@ def test_from_dict_names_the_bad_value(table, words):
     assert words in str(err.value)
 
 
-def test_only_arenas_and_linear_tracks_are_simulated():
-    graph = TrackGraph([(0, 0), (100, 0), (100, 100)], [(0, 1), (1, 2)], bin_cm=5.0)
-    with pytest.raises(ValueError, match="Arena or on a LinearTrack"):
-        SimulatedSession(graph, SETTINGS, seed=0)
+def test_a_maze_needs_arms_that_end():
+    loop = TrackGraph([(0, 0), (100, 0), (100, 100), (0, 100)], [(0, 1), (1, 2), (2, 3), (3, 0)], bin_cm=5.0)
+    with pytest.raises(ValueError, match="dead ends"):
+        SimulatedSession(loop, SETTINGS, seed=0)
 
 
 # -- trajectory --------------------------------------------------------------------

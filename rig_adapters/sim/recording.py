@@ -6,7 +6,8 @@ from pathlib import Path
 
 from decoder.config import ExperimentConfig
 from rig_adapters.sessions.recorder import CONFIG_SIDECAR, SessionRecorder
-from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
+from rig_adapters.sim.settings import SimulationSettings
+from rig_adapters.sim.simulation import SimulatedSession
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import CHANNEL_RIG
 

@@ -15,7 +15,7 @@ prints a one-line summary to stderr.
 
 The config file needs an ``[environment]`` table (read by
 ``decoder.config``) and may have a ``[simulation]`` table
-(:class:`~rig_adapters.sim.simulation.SimulationSettings`).
+(:class:`~rig_adapters.sim.settings.SimulationSettings`).
 """
 
 from __future__ import annotations
@@ -35,7 +35,8 @@ import zmq
 from decoder.config import is_loopback_endpoint, load_config
 from decoder.messages import SpikeBatch, TrackerFrames
 from rig_adapters.wire import protocol
-from rig_adapters.sim.simulation import TRACKER_SOURCE, SimulatedSession, SimulationSettings
+from rig_adapters.sim.settings import SimulationSettings
+from rig_adapters.sim.simulation import TRACKER_SOURCE, SimulatedSession
 
 log = logging.getLogger(__name__)
 
