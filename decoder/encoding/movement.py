@@ -7,13 +7,23 @@ or graph), mixed with a small uniform component ``uniform_weight`` so that
 the filter can leave a wrong estimate and follow a non-local representation.
 
 :meth:`MovementModel.from_tracking` estimates ``sd_cm`` from the tracked
-positions of the learning period. A random walk's displacement variance
-grows linearly with the time between frames, ``var(lag) = D lag_s``, while
-tracker jitter adds the same ``2 s_j^2`` to every lag; a straight line
-through the robust variances at lags of 1 to ``N_LAGS`` frames separates the
-two, and ``sd_cm = sqrt(D step_s)``. Each variance is robust (the median
-absolute displacement over 0.6745, the normal quantile), so a few lost or
-swapped tracker frames do not inflate it. Lost frames (NaN) are skipped:
+positions of the learning period. The displacement variance over a lag of
+``L`` seconds is fitted as ``var(L) = c + D L + A L^2`` with non-negative
+coefficients: ``c`` is tracker jitter (twice its variance, the same at
+every lag), ``D L`` the diffusive part of the movement and ``A L^2`` the
+ballistic part (running at a steady velocity). A random walk that is to
+reach, over a horizon of ``horizon_s``, as far as the animal does gets
+``sd_cm^2 = (D + A horizon_s) step_s`` per step: a pure random walk
+(``A = 0``) gives its own s.d. whatever the horizon, while for a running
+animal the walk is widened so that the prior keeps up with it over the
+time the filter's posterior integrates spikes (a few hundred ms, the
+textbook decoder's best window). Each variance is a mean square about 0
+with the largest 1 % of displacements left out (divided by the share of a
+normal variance that trimming keeps, so it is exact for Gaussian steps and
+at most 8 % high otherwise), so that a few swapped or misplaced frames do not
+inflate it, while a steady run, whose displacements are all alike, counts
+in full (a median-based scale would take it for a Gaussian and overstate it
+by half). Lost frames (NaN) are skipped:
 displacements are taken between valid frames only, and a lag is the actual
 time between them.
 
@@ -43,14 +53,26 @@ from decoder.space.environments import Environment
 #: lock and can follow a replayed or look-ahead sequence.
 UNIFORM_RATE_PER_S = 0.05
 
-#: Displacement variances are taken at lags of 1 to this many frames.
-N_LAGS = 8
+#: Default horizon over which the walk should reach as far as the animal (s).
+#: The filter's posterior integrates spikes over a few hundred ms; at half a
+#: second a rat running at 20 cm/s covers 10 cm, a few place-field widths'
+#: worth of resolution.
+HORIZON_S = 0.5
+
+#: Displacement variances are taken at lags of 1 frame up to the horizon,
+#: and at least this many lags.
+MIN_LAGS = 8
 
 #: Fewest displacements at each lag for a variance to be used.
 MIN_DISPLACEMENTS = 50
 
-#: Median of |z| for a standard normal z (scipy.stats.norm.ppf(0.75)).
-_MEDIAN_ABS_NORMAL = 0.6744897501960817
+#: Share of the largest displacements (in absolute value) left out of each variance.
+TRIM_FRACTION = 0.01
+
+#: E[z^2 ; |z| below its (1 - TRIM_FRACTION) quantile] / (1 - TRIM_FRACTION) for a standard normal z.
+_TRIMMED_NORMAL_VARIANCE = 1.0 - 2.0 * stats.norm.isf(TRIM_FRACTION / 2) * stats.norm.pdf(
+    stats.norm.isf(TRIM_FRACTION / 2)
+) / (1.0 - TRIM_FRACTION)
 
 
 def _positive(name: str, value: Any) -> float:
@@ -120,6 +142,7 @@ class MovementModel:
         *,
         environment: Environment | None = None,
         uniform_weight: float | None = None,
+        horizon_s: float = HORIZON_S,
     ) -> MovementModel:
         """Estimate the walk's s.d. per step from tracked positions.
 
@@ -137,6 +160,9 @@ class MovementModel:
             An arena or ``None``: per axis, in the plane.
         uniform_weight : float, optional
             Default ``default_uniform_weight(step_s)``.
+        horizon_s : float, default ``HORIZON_S``
+            Time over which the walk should spread as far as the animal
+            moves; only matters for directed (ballistic) movement.
 
         Returns
         -------
@@ -150,6 +176,7 @@ class MovementModel:
             displacements at one frame's lag) to estimate the walk.
         """
         step_s = _positive("step_s", step_s)
+        horizon_s = _positive("horizon_s", horizon_s)
         t = np.asarray(times_s, dtype=np.float64)
         xy = np.asarray(xy_cm, dtype=np.float64)
         if t.ndim != 1 or xy.shape != (t.size, 2):
@@ -162,7 +189,8 @@ class MovementModel:
             ok &= np.isfinite(environment.linearize(np.where(ok[:, None], xy, 0.0)))
         t, xy = t[ok], xy[ok]
         lags_s, variances = [], []
-        for lag in range(1, N_LAGS + 1):
+        frame_s = float(np.median(np.diff(t))) if t.size > 1 else horizon_s
+        for lag in range(1, max(MIN_LAGS, round(horizon_s / frame_s)) + 1):
             if t.size <= lag:
                 break
             dt = t[lag:] - t[:-lag]
@@ -170,23 +198,21 @@ class MovementModel:
                 moved = environment.distance_cm(xy[lag:], xy[:-lag])[:, np.newaxis]
             else:
                 moved = xy[lag:] - xy[:-lag]
-            # Robust variance about 0, not about the median: the filter's
-            # walk has no drift, so a steady run is movement it must allow.
-            scale = np.median(np.abs(moved), axis=0) / _MEDIAN_ABS_NORMAL
             if dt.size >= MIN_DISPLACEMENTS:
                 lags_s.append(float(np.median(dt)))
-                variances.append(float(np.mean(scale**2)))
+                variances.append(_trimmed_variance(moved))
         if not lags_s:
             raise ValueError(
                 f"only {t.size} valid tracked frames; at least {MIN_DISPLACEMENTS + 1} are needed to learn "
                 "the movement model"
             )
-        rate = _diffusion_rate(np.array(lags_s), np.array(variances))
+        _, diffusive, ballistic = _variance_growth(np.array(lags_s), np.array(variances))
         if uniform_weight is None:
             uniform_weight = default_uniform_weight(step_s)
-        if not rate > 0:
+        variance = (diffusive + ballistic * horizon_s) * step_s
+        if not variance > 0:
             raise ValueError("the tracked positions never move; check the tracker before learning movement")
-        return cls(sd_cm=math.sqrt(rate * step_s), uniform_weight=uniform_weight, step_s=step_s)
+        return cls(sd_cm=math.sqrt(variance), uniform_weight=uniform_weight, step_s=step_s)
 
     def walk_sd_cm(self, bin_cm: float) -> float:
         """The s.d. to give ``decoding.RandomWalk`` for this walk on bins of ``bin_cm``.
@@ -227,12 +253,20 @@ class MovementModel:
         return float(optimize.brentq(lambda s: centre_weight(s) - stay, narrowest, widest, xtol=1e-9 * bin_cm))
 
 
-def _diffusion_rate(lags_s: np.ndarray, variances: np.ndarray) -> float:
-    """Slope ``D`` (cm²/s) of ``variance = D lag_s + c`` with ``c >= 0`` (jitter), least squares."""
-    if lags_s.size >= 2:
-        slope, intercept = np.polyfit(lags_s, variances, 1)
-        if intercept >= 0:
-            return float(slope)
-    # A negative intercept (displacement growing faster than a random walk's)
-    # has no jitter to remove: the line through the origin.
-    return float(lags_s @ variances / (lags_s @ lags_s))
+def _trimmed_variance(moved: np.ndarray) -> float:
+    """Mean square about 0 of each column, largest ``TRIM_FRACTION`` left out, Gaussian-corrected; averaged."""
+    # About 0, not about the mean: the filter's walk has no drift, so a
+    # steady run is movement it must allow.
+    size = np.abs(moved)
+    keep = size <= np.quantile(size, 1.0 - TRIM_FRACTION, axis=0)
+    return float(np.mean(np.sum(np.where(keep, moved**2, 0.0), axis=0) / keep.sum(axis=0)) / _TRIMMED_NORMAL_VARIANCE)
+
+
+def _variance_growth(lags_s: np.ndarray, variances: np.ndarray) -> tuple[float, float, float]:
+    """Non-negative least-squares ``(c, D, A)`` of ``variance = c + D lag_s + A lag_s^2``."""
+    design = np.column_stack([np.ones_like(lags_s), lags_s, lags_s**2])
+    # Columns scaled to unit norm so that the solver's tolerance treats them alike.
+    norms = np.linalg.norm(design, axis=0)
+    coef, _ = optimize.nnls(design / norms, variances)
+    c, d, a = coef / norms
+    return float(c), float(d), float(a)
