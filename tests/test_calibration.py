@@ -12,6 +12,7 @@ a Markov walk on a small arena and Gaussian place fields.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -112,13 +113,13 @@ def test_spikes_in_bursts_of_three_need_a_temperature_of_three(walk, rates):
 
 
 def test_a_shared_gamma_gain_widens_the_posterior_and_restores_coverage(walk, rates):
-    kind = dict(gain_cv=0.3, gain_hold_steps=25)
+    kind = {"gain_cv": 0.3, "gain_hold_steps": 25}
     fit = _fit(walk, rates, **kind)
     # A population gain of CV 0.3 held for 0.5 s makes counts overdispersed and correlated across steps,
     # which the independent-Poisson filter ignores: it is overconfident and the fit widens it.
     assert fit.temperature > 1.02
     assert fit.coverage_at_1 < fit.region_mass
-    before, se_before, _ = _check(walk, rates, 1.0, **kind)
+    before, _, _ = _check(walk, rates, 1.0, **kind)
     after, se, mass = _check(walk, rates, fit.temperature, **kind)
     assert before < after
     # Source: Bayesian coverage (common practice), within 3 batch-means standard errors of the mass.
@@ -147,7 +148,7 @@ def test_blocked_folds_cover_every_step_once_in_order():
     folds = blocked_folds(10_001, 5)
     # Source: definition of blocked k-fold cross-validation — contiguous, disjoint, covering.
     assert folds[0][0] == 0 and folds[-1][1] == 10_001
-    assert all(a[1] == b[0] for a, b in zip(folds, folds[1:]))
+    assert all(a[1] == b[0] for a, b in itertools.pairwise(folds))
     assert max(b - a for a, b in folds) - min(b - a for a, b in folds) <= 1
 
 

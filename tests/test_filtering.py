@@ -17,7 +17,12 @@ from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
 from decoder.inference.decoding import BayesDecoder, RandomWalk
-from decoder.inference.filtering import filter_posteriors, hpd_contains, hpd_mass, tempered_log_likelihood
+from decoder.inference.filtering import (
+    filter_posteriors,
+    hpd_contains,
+    hpd_mass,
+    tempered_log_likelihood,
+)
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 
 

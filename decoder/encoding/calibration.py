@@ -38,6 +38,7 @@ data).
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -104,7 +105,7 @@ def blocked_folds(n_steps: int, n_folds: int) -> list[tuple[int, int]]:
     if not (isinstance(n_steps, (int, np.integer)) and n_steps >= n_folds):
         raise ValueError(f"n_steps must be a whole number >= n_folds ({n_folds}), got {n_steps!r}")
     edges = (np.arange(n_folds + 1) * n_steps) // n_folds
-    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    return [(int(a), int(b)) for a, b in itertools.pairwise(edges)]
 
 
 def fit_temperature(
