@@ -54,9 +54,9 @@ from decoder.space.environments import Environment
 UNIFORM_RATE_PER_S = 0.05
 
 #: Default horizon over which the walk should reach as far as the animal (s).
-#: The filter's posterior integrates spikes over a few hundred ms; at half a
-#: second a rat running at 20 cm/s covers 10 cm, a few place-field widths'
-#: worth of resolution.
+#: The filter's posterior integrates spikes over a few hundred ms, as long as
+#: the textbook decoder's best window; over half a second a rat running at
+#: 20 cm/s covers 10 cm.
 HORIZON_S = 0.5
 
 #: Displacement variances are taken at lags of 1 frame up to the horizon,
