@@ -46,7 +46,8 @@ from matplotlib.lines import Line2D
 
 from decoder.config import ConfigError, ExperimentConfig, load_config, parse_settings, with_overrides
 from decoder.space.environments import Environment
-from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from decoder.session.outputs import LearningProgress, Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
 from rig_adapters.console import CAUTION, setup_logging

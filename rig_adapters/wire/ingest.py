@@ -16,7 +16,8 @@ import dataclasses
 import logging
 
 from decoder.messages import ControlCommand, MessageError
-from decoder.session.pipeline import Notice, Pipeline, StepOutput
+from decoder.session.outputs import Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
 
