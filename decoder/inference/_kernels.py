@@ -2,16 +2,19 @@
 
 Every kernel ``name`` is compiled with numba and has a twin ``name_numpy``
 with the same signature and the same result. Tests use the twins as the
-reference; ``bench/decoder.py`` uses them as the baseline. Kernels write into
+reference; ``bench/decoder.py`` uses them as the baseline. Three steps of the
+decoding have a numpy form only (``poisson_log_likelihood_numpy``,
+``posterior_from_log_numpy``, ``posterior_summary_numpy``): production runs
+them fused inside :func:`decode_step`, and they stay as the parts of its twin,
+each checked against an outside reference. Kernels write into
 caller-owned ``out`` (and ``scratch``) arrays so that the decoding loop
 allocates nothing large per step but the posterior it hands out; a twin takes
 the same arguments even where numpy needs no scratch space, so that the two
 are interchangeable.
 
 :func:`decode_step` is what the decoder calls: one window from check to
-summaries in one call, with the arithmetic of the separate kernels (which
-remain, each checked against an outside reference) and an incremental
-log-likelihood. Its twin composes the separate twins.
+summaries in one call, with the arithmetic of the separate steps and an
+incremental log-likelihood. Its twin composes the separate twins.
 
 Bins are flattened as in ``decoder.space.environments`` (row-major for a grid:
 ``bin = iy * nx + ix``). Posterior vectors hold exactly 0 outside the valid
@@ -40,7 +43,7 @@ PROB_FLOOR = 1e-300
 #: spikes point and the product has underflowed; the caller must fall back.
 MIN_EVIDENCE = 1e-300
 
-#: Bins per block of ``poisson_log_likelihood`` (8 KiB of float64).
+#: Bins per block of the log-likelihood sums (8 KiB of float64).
 _LIKELIHOOD_BLOCK = 1024
 
 #: Value buckets per refinement pass of ``hpd_size``.
@@ -137,14 +140,6 @@ def _sum(a):
     s = 0.0
     for j in range(a.shape[0]):
         s += a[j]
-    return s
-
-
-@numba.njit(cache=True, fastmath={"reassoc"})
-def _dot(a, b):
-    s = 0.0
-    for j in range(a.shape[0]):
-        s += a[j] * b[j]
     return s
 
 
@@ -259,15 +254,15 @@ def _add_weighted_rows(out, log_rate, rows, weights, n):
             k += 1
 
 
-@numba.njit(cache=True)
-def poisson_log_likelihood(fired_rows, fired_counts, log_rate, expected_total, out):
-    """Log-likelihood of every bin for one window of spike counts.
+def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, out):
+    """Log-likelihood of every bin for one window of spike counts (a step of :func:`decode_step_numpy`).
 
     Under the independent-Poisson model the log-likelihood of position ``x``
     is ``sum_i n_i log(lambda_i(x)) - W sum_i lambda_i(x)`` up to terms that do
     not depend on ``x`` (``-sum_i log n_i!`` and ``sum_i n_i log W``). Only the
     units that fired are touched; the silent units enter through
-    ``expected_total``.
+    ``expected_total``. :func:`decode_step` computes the same sums in place,
+    updated from the previous window's.
 
     Parameters
     ----------
@@ -293,14 +288,6 @@ def poisson_log_likelihood(fired_rows, fired_counts, log_rate, expected_total, o
     neuronal population activity by reconstruction: unified framework with
     application to hippocampal place cells. J Neurophysiol 79:1017-1044.
     """
-    for j in range(out.shape[0]):
-        out[j] = -expected_total[j]
-    _add_weighted_rows(out, log_rate, fired_rows, fired_counts, fired_rows.shape[0])
-    return out
-
-
-def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, out):
-    """Numpy twin of :func:`poisson_log_likelihood`."""
     out[:] = fired_counts @ log_rate[fired_rows] - expected_total
     return out
 
@@ -310,9 +297,8 @@ def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_to
 # ---------------------------------------------------------------------------
 
 
-@numba.njit(cache=True)
-def posterior_from_log(log_like, prior, valid, out):
-    """Normalise ``prior * exp(log_like)`` over the valid bins.
+def posterior_from_log_numpy(log_like, prior, valid, out):
+    """Normalise ``prior * exp(log_like)`` over the valid bins (a step of :func:`decode_step_numpy`).
 
     The log-likelihood is shifted by its maximum over the valid bins before
     exponentiation (the log-sum-exp device), so no weight overflows. Weights
@@ -337,19 +323,6 @@ def posterior_from_log(log_like, prior, valid, out):
         is: the scaled evidence fell below ``MIN_EVIDENCE``. ``out`` is then
         meaningless and the caller must use another prior.
     """
-    # The same steps as decode_step's: best valid bin, weights, normalisation.
-    total = _weigh(log_like, _max_where(log_like, valid), prior, valid, out)
-    if not total >= MIN_EVIDENCE:
-        return False
-    inv = 1.0 / total
-    for j in range(out.shape[0]):
-        v = out[j] * inv
-        out[j] = v if v >= PROB_FLOOR else 0.0
-    return True
-
-
-def posterior_from_log_numpy(log_like, prior, valid, out):
-    """Numpy twin of :func:`posterior_from_log`."""
     best = log_like[valid].max()
     d = np.where(valid, log_like - best, -np.inf)
     keep = d > LOG_WEIGHT_FLOOR
@@ -844,9 +817,8 @@ def hpd_size_numpy(p, mass, scratch):
     return int(np.count_nonzero(p >= desc[i]))
 
 
-@numba.njit(cache=True)
-def posterior_summary(p, centers_x_cm, centers_y_cm):
-    """Maximum a posteriori bin, its probability and the posterior mean.
+def posterior_summary_numpy(p, centers_x_cm, centers_y_cm):
+    """Maximum a posteriori bin, its probability and the posterior mean (a step of :func:`decode_step_numpy`).
 
     Parameters
     ----------
@@ -862,17 +834,6 @@ def posterior_summary(p, centers_x_cm, centers_y_cm):
     peak_prob : float
     mean_x_cm, mean_y_cm : float
     """
-    best = 0
-    peak = -1.0
-    for j in range(p.shape[0]):
-        if p[j] > peak:
-            peak = p[j]
-            best = j
-    return best, peak, _dot(p, centers_x_cm), _dot(p, centers_y_cm)
-
-
-def posterior_summary_numpy(p, centers_x_cm, centers_y_cm):
-    """Numpy twin of :func:`posterior_summary`."""
     best = int(np.argmax(p))
     return best, float(p[best]), float(p @ centers_x_cm), float(p @ centers_y_cm)
 
@@ -981,7 +942,7 @@ def _update_log_likelihood(now, last, log_rate, expected_total, state, rows, wei
 
 @numba.njit(cache=True, fastmath={"reassoc"})
 def _weigh(log_like, best, prior, valid, out):
-    """The unnormalised posterior of :func:`posterior_from_log`; returns its sum."""
+    """The unnormalised posterior of :func:`posterior_from_log_numpy`; returns its sum."""
     total = 0.0
     for j in range(out.shape[0]):
         d = log_like[j] - best
@@ -1042,9 +1003,9 @@ def decode_step(
 ):
     """One window decoded: check, likelihood, prior, posterior and its summaries in one call.
 
-    The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood`,
-    :func:`predict_grid` or :func:`predict_dense`, :func:`posterior_from_log`,
-    :func:`posterior_summary`, :func:`hpd_size` and :func:`zone_mass` in turn,
+    The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood_numpy`,
+    :func:`predict_grid` or :func:`predict_dense`, :func:`posterior_from_log_numpy`,
+    :func:`posterior_summary_numpy`, :func:`hpd_size` and :func:`zone_mass` in turn,
     with three economies: the log-likelihood of the previous window is
     updated where counts changed instead of recomputed (see
     ``LIKELIHOOD_REFRESH_STEPS``); on a grid the prediction, the
