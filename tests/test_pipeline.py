@@ -191,3 +191,27 @@ def test_unit_ids_spread_too_wide_for_a_lookup_table_decode_the_same(session_mes
     assert wide.digest == tight.digest
     assert wide.counters == tight.counters
     assert wide.counters["unknown_units"] == 1
+
+
+def test_each_message_kind_goes_to_its_handler_and_strays_are_counted():
+    pipeline = Pipeline(_config(session={"learn_s": 0.0}))
+    assert pipeline.on_message(TrackerFrames.one("ephys", 0, 1.0, 5.0, 5.0)) == []      # frames from the spike source
+    assert pipeline.on_message(SpikeBatch("elsewhere", 0, [1.0], [1])) == []             # spikes from nobody we know
+    assert pipeline.counters["unknown_source"] == 2
+    assert pipeline.on_message(Heartbeat("tracker", 0, 1.0)) == []                       # a position source is alive
+    assert pipeline.counters["unknown_source"] == 2 and pipeline.spike_watermark_s == -np.inf
+    pipeline.on_message(Heartbeat("ephys", 1, 2.0))
+    assert pipeline.spike_watermark_s == 2.0
+    out = pipeline.on_message(ControlCommand("anyone", 0, "start_learning"))
+    assert [n.kind for n in out] == ["state"] and pipeline.state == "learning"
+    pipeline.on_message(TrackerFrames.one("tracker", 1, 2.0, 5.0, 6.0))
+    assert pipeline.tracked.position_at(2.0) == (5.0, 6.0)
+
+
+def test_a_restarted_spike_source_starts_its_steps_afresh_disarmed(session_messages):
+    config, messages = session_messages
+    pipeline, _ = _run(config, messages)
+    assert pipeline.bank.armed and pipeline.spike_watermark_s > 150
+    out = pipeline.on_message(SpikeBatch("ephys", 0, [0.2], [101]))
+    assert [n.kind for n in out if isinstance(n, Notice)][:2] == ["source_restart", "disarmed"]
+    assert not pipeline.bank.armed and pipeline.spike_watermark_s == 0.2
