@@ -2,11 +2,12 @@
 
 Every kernel ``name`` is compiled with numba and has a twin ``name_numpy``
 with the same signature and the same result. Tests use the twins as the
-reference; ``bench/decoder.py`` uses them as the baseline. Three steps of the
+reference; ``bench/decoder.py`` uses them as the baseline. Four steps of the
 decoding have a numpy form only (``poisson_log_likelihood_numpy``,
-``posterior_from_log_numpy``, ``posterior_summary_numpy``): production runs
-them fused inside :func:`decode_step`, and they stay as the parts of its twin,
-each checked against an outside reference. Kernels write into
+``predict_grid_numpy``, ``posterior_from_log_numpy``,
+``posterior_summary_numpy``): production runs them fused inside
+:func:`decode_step`, and they stay as the parts of its twin, each checked
+against an outside reference. Kernels write into
 caller-owned ``out`` (and ``scratch``) arrays so that the decoding loop
 allocates nothing large per step but the posterior it hands out; a twin takes
 the same arguments even where numpy needs no scratch space, so that the two
@@ -495,7 +496,7 @@ def _symmetric_filter(src, kernel_1d, step, dst):
 
 @numba.njit(cache=True)
 def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch):
-    """The random-walk step of :func:`predict_grid` for a ``p`` that is 0 outside rows ``y0..y1``.
+    """The random-walk step of :func:`predict_grid_numpy` for a ``p`` that is 0 outside rows ``y0..y1``.
 
     Only the rows ``y0 - r .. y1 + r`` (``r`` the kernel's reach) can receive
     mass; nothing of ``out`` outside them is written, and callers treat it
@@ -511,7 +512,7 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
         Current posterior, 0 outside rows ``y0..y1`` and outside the valid
         bins. May be the same array as ``out``.
     ny, nx, kernel_1d, mask_f, inv_norm
-        As in :func:`predict_grid` (``kernel_1d`` symmetric).
+        As in :func:`predict_grid_numpy` (``kernel_1d`` symmetric).
     y0, y1 : int
         Inclusive, ``0 <= y0 <= y1 < ny``.
     out : ndarray, shape (ny * nx,), float64
@@ -562,16 +563,16 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
     return out_y0, out_y1
 
 
-@numba.njit(cache=True)
-def predict_grid(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
-    """One random-walk step on a grid arena: ``mask * conv(p / conv(mask))``.
+def predict_grid_numpy(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
+    """One random-walk step on a grid arena: ``mask * conv(p / conv(mask))`` (a step of :func:`decode_step_numpy`).
 
     This applies the transition ``T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k``
     (from bin ``i`` to bin ``j``) without forming it: ``K`` is the separable
     kernel, ``m`` the valid-bin mask, and ``inv_norm = 1 / conv(m)`` on valid
     bins (0 elsewhere) is precomputed. Only the rows around the non-zero
-    values of ``p``, grown by the kernel's reach, are convolved: a posterior
-    is mostly zero far from its peak.
+    values of ``p``, grown by the kernel's reach, are convolved inside
+    :func:`decode_step` (:func:`_predict_grid_rows`): a posterior is mostly
+    zero far from its peak.
 
     Parameters
     ----------
@@ -588,27 +589,12 @@ def predict_grid(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
         ``1 / conv(mask_f)`` on valid bins, 0 elsewhere.
     out, scratch : ndarray, shape (ny * nx,), float64
         ``out`` receives the prediction (sums to ``p.sum()``); ``scratch``
-        is not used (the twin's signature).
+        is not used.
 
     Returns
     -------
     out : ndarray, shape (ny * nx,)
     """
-    y0, y1 = _support_rows(p, nx, 0, ny - 1)
-    if y1 < y0:
-        out[:] = 0.0
-        return out
-    reach = kernel_1d.shape[0] // 2
-    # Zeros, not np.empty: padding that is never written must hold numbers.
-    grid_scratch = np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach))
-    y0, y1 = _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch)
-    out[: y0 * nx] = 0.0
-    out[(y1 + 1) * nx :] = 0.0
-    return out
-
-
-def predict_grid_numpy(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
-    """Numpy twin of :func:`predict_grid`."""
     with np.errstate(under="ignore"):
         convolve_separable_numpy(p * inv_norm, ny, nx, kernel_1d, out, scratch)
         out *= mask_f
@@ -1004,7 +990,7 @@ def decode_step(
     """One window decoded: check, likelihood, prior, posterior and its summaries in one call.
 
     The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood_numpy`,
-    :func:`predict_grid` or :func:`predict_dense`, :func:`posterior_from_log_numpy`,
+    :func:`predict_grid_numpy` or :func:`predict_dense`, :func:`posterior_from_log_numpy`,
     :func:`posterior_summary_numpy`, :func:`hpd_size` and :func:`zone_mass` in turn,
     with three economies: the log-likelihood of the previous window is
     updated where counts changed instead of recomputed (see
@@ -1035,7 +1021,7 @@ def decode_step(
     ny, nx : int
         Grid shape (``1, n_bins`` for an environment that is not a grid).
     kernel_1d, mask_f, inv_norm : ndarray, float64
-        The random walk on a grid, as in :func:`predict_grid` (any 1-D
+        The random walk on a grid, as in :func:`predict_grid_numpy` (any 1-D
         arrays for other kinds).
     transition : ndarray, shape (n_bins, n_bins), float64
         The dense transition, as in :func:`predict_dense` (any 2-D array for
