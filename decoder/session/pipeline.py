@@ -101,7 +101,7 @@ class Pipeline:
         self._has_truth = bool(config.sources.truth)
         self._position_sources = (config.sources.tracker, config.sources.truth)
         self.positions = Positions(config.sources, self.counters)
-        self.tracked = self.positions.tracked
+        self.tracked = self.positions.tracked   # the shell reads the tracked position from here
         self.schedule = StepSchedule(config.decoder.step_s, config.decoder.allowed_lateness_s)
         self.steps: DecodingSteps | None = None
         self.zone_names = config.zone_names()
@@ -239,7 +239,7 @@ class Pipeline:
             # Steps start afresh on the new clock, disarmed.
             t = self.watermark.t_s
             self.watermark.reset()
-            self.schedule.next_k = None
+            self.schedule.stop()
             if self.steps is not None:
                 self.steps.restart()
             self.bank.disarm(t, "source_restart")

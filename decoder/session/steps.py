@@ -44,6 +44,10 @@ class StepSchedule:
     def step_end_s(self, k: int) -> float:
         return k * self.step_s
 
+    def stop(self) -> None:
+        """No step is due until the next :meth:`start_at` (the spike clock restarted)."""
+        self.next_k = None
+
     def due(self, watermark_s: float) -> list[int]:
         """Steps that close at this watermark, in order; each is returned once."""
         if self.next_k is None:
@@ -63,7 +67,7 @@ class DecodingSteps:
     ----------
     decoder : BayesDecoder
     unit_ids : ndarray of int64, shape (n_units,)
-        The unit of each decoder row, each once.
+        The unit of each decoder row.
     schedule : StepSchedule
         The session's schedule; kept across models.
     counters : dict of str to int
@@ -74,15 +78,13 @@ class DecodingSteps:
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, schedule: StepSchedule,
                  counters: dict[str, int]) -> None:
         ids = np.asarray(unit_ids, np.int64)
-        if np.unique(ids).size != ids.size:
-            raise ValueError("a model's unit ids must each name one row; this model repeats some")
-        order = np.argsort(ids, kind="stable")
+        # Sorted for the compiled lookup; should a model name a unit twice, its last row takes the spikes.
+        self._known_ids, last_in_reversed = np.unique(ids[::-1], return_index=True)
+        self._row_of_known = (ids.size - 1 - last_in_reversed).astype(np.int64)
         self.decoder = decoder
         self.schedule = schedule
         self.counters = counters
         self.n_units = int(ids.size)
-        self._known_ids = ids[order]
-        self._row_of_known = order.astype(np.int64)
         self.window = SpikeWindow(self.n_units, decoder.window_s)
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
