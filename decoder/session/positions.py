@@ -9,6 +9,8 @@ its frames held until then, so that no frame is placed on a guessed time.
 
 from __future__ import annotations
 
+import numpy as np
+
 from decoder.config import SourceSettings
 from decoder.encoding.place_model import PlaceModel
 from decoder.messages import SyncPulse, TrackerFrames
@@ -100,10 +102,15 @@ class Positions:
         return self.clock.fit(source)
 
     def _apply(self, msg: TrackerFrames, fit: ClockFit | bool, learner: PlaceModel | None) -> None:
-        t_ref = msg.t_s if fit is True else fit.to_reference(msg.t_s)
-        if msg.source == self._truth_source:
-            self.truth.add(t_ref, msg.xy_cm)
-            return
-        self.tracked.add(t_ref, msg.xy_cm)
-        if learner is not None:
-            learner.update_frames(t_ref, msg.xy_cm)
+        # Frames read one way, as Python floats: nearly every message carries one frame, and
+        # numpy's per-call cost on one-element arrays was most of the work.
+        t_ref = msg.t_s.tolist()
+        if fit is not True:
+            to_reference = fit.to_reference
+            t_ref = [to_reference(t) for t in t_ref]
+        history = self.truth if msg.source == self._truth_source else self.tracked
+        add_one = history.add_one
+        for t, (x, y) in zip(t_ref, msg.xy_cm.tolist()):
+            add_one(t, x, y)
+        if learner is not None and history is self.tracked:
+            learner.update_frames(np.array(t_ref), msg.xy_cm)
