@@ -1219,7 +1219,7 @@ def decode_window_step(
 ):
     """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
 
-    The same numbers, bit for bit, as counting the window first (``binning.window_counts``)
+    The same numbers, bit for bit, as counting the window first (as the twin does, with numpy)
     and passing its rows and counts to :func:`decode_step`: a unit's count is
     a sum of ones either way. Counting here saves the decoding loop a call
     and two arrays per step.
