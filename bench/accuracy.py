@@ -59,7 +59,7 @@ from bench.scores import best_lag_s, in_hpd  # noqa: E402
 from bench.textbook import WINDOWS_S, decode_map, gaussian_kernel, rate_maps_hz  # noqa: E402
 from decoder.config import ExperimentConfig, load_config  # noqa: E402
 from decoder.messages import SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames  # noqa: E402
-from decoder.session.pipeline import StepOutput  # noqa: E402
+from decoder.session.outputs import StepOutput  # noqa: E402
 from rig_adapters.sessions.recorder import iter_records  # noqa: E402
 from rig_adapters.sessions.replay import replay_session  # noqa: E402
 from rig_adapters.sim.recording import record_simulated_session  # noqa: E402

@@ -56,7 +56,7 @@ import numpy as np  # noqa: E402
 import tomli_w  # noqa: E402
 
 from decoder.config import parse_config  # noqa: E402
-from decoder.session.pipeline import StepOutput  # noqa: E402
+from decoder.session.outputs import StepOutput  # noqa: E402
 from rig_adapters.sessions.recorder import iter_records  # noqa: E402
 from rig_adapters.sessions.replay import replay_session  # noqa: E402
 from rig_adapters.sim.recording import record_simulated_session  # noqa: E402

@@ -154,16 +154,27 @@ def test_track_transition_is_a_truncated_gaussian_of_along_track_distance():
     np.testing.assert_allclose(t, k / k.sum(axis=1, keepdims=True), rtol=1e-12)
 
 
+def _flat_evidence_decoder(environment, sd_cm, backend):
+    """A filter whose silent windows carry no evidence: two units whose rate maps add up to 10 Hz everywhere.
+
+    A silent window's likelihood is exp(-W sum_i lambda_i(x)) (Poisson pmf at n = 0), the same in every
+    bin here, so the posterior after it is the prediction of the previous posterior, p T.
+    """
+    a = np.random.default_rng(7).uniform(1.0, 9.0, environment.n_bins)
+    rates = np.vstack([a, 10.0 - a])
+    return BayesDecoder(rates, environment, environment.valid_mask, 0.2, prior="state_space",
+                        random_walk_sd_cm=sd_cm, backend=backend)
+
+
 @pytest.mark.parametrize("backend", BACKENDS)
 def test_grid_prediction_equals_dense_matrix_product(backend):
     arena = Arena.circle((0, 0), 30, bin_cm=4)
-    walk = RandomWalk(arena, arena.valid_mask, 6.0, backend=backend)
-    rng = np.random.default_rng(7)
-    p = rng.random(arena.n_bins) * arena.valid_mask
-    p /= p.sum()
-    t = walk.dense_matrix()
+    dec = _flat_evidence_decoder(arena, 6.0, backend)
+    p = np.array(dec.decode(np.array([0]), np.array([3])).posterior)
+    predicted = dec.decode(np.zeros(0, np.int64), np.zeros(0)).posterior
+    t = dec.transition.dense_matrix()
     # Source: Markov chain prediction p T (definition); T is row-stochastic on valid bins.
-    np.testing.assert_allclose(walk.predict(p), p @ t, rtol=1e-11, atol=1e-16)
+    np.testing.assert_allclose(predicted, p @ t, rtol=1e-11, atol=1e-16)
     np.testing.assert_allclose(t[arena.valid_mask].sum(axis=1), 1.0, rtol=1e-12)
     assert np.all(t[:, ~arena.valid_mask] == 0.0)
 
@@ -174,11 +185,13 @@ def test_grid_prediction_equals_dense_matrix_product(backend):
     ids=["grid", "track"],
 )
 def test_a_walk_much_narrower_than_a_bin_stays_put(environment):
-    p = np.random.default_rng(8).random(environment.n_bins)
-    p /= p.sum()
+    dec = _flat_evidence_decoder(environment, 0.1, "numba")
+    p = dec.decode(np.array([1]), np.array([2])).posterior
     # Source: closed form — with the kernel cut at 4 s.d. (0.4 cm here) no neighbouring bin centre
     # (5 cm away) is reachable, so the transition is the identity.
-    np.testing.assert_allclose(RandomWalk(environment, environment.valid_mask, 0.1).predict(p), p, rtol=1e-15)
+    np.testing.assert_allclose(dec.decode(np.zeros(0, np.int64), np.zeros(0)).posterior, p, rtol=1e-13)
+    np.testing.assert_array_equal(RandomWalk(environment, environment.valid_mask, 0.1).dense_matrix(),
+                                  np.eye(environment.n_bins))
 
 
 def test_reset_returns_to_the_uniform_prior():
@@ -226,7 +239,7 @@ def test_silent_window_weights_the_prior_by_the_expected_count(backend):
     )
     first = dec.decode(np.array([1, 4]), np.array([2, 1]))
     silent = dec.decode(np.zeros(0, np.int64), np.zeros(0))
-    predicted = dec.transition.predict(np.array(first.posterior))
+    predicted = np.array(first.posterior) @ dec.transition.dense_matrix()
     expected = predicted * np.exp(-0.2 * rates.sum(axis=0))
     # Source: Poisson pmf at n = 0 is exp(-W lambda) for every unit, so a silent window multiplies the
     # prior by exp(-W sum_i lambda_i(x)) (Zhang et al. 1998).

@@ -1,5 +1,8 @@
 """Tests of decoder.inference._kernels: each kernel against an outside reference and against its numpy twin.
 
+The likelihood, normalisation and summary steps exist in numpy only (production runs them fused inside
+decode_step); they are checked here against outside references, and decode_step against their composition.
+
 Twin tolerance: the compiled kernels add the same terms in a different order
 (blocked sums, two-pass convolution), so results agree to a few units in the
 last place of the largest term; rtol=1e-12 leaves a wide margin above that
@@ -19,12 +22,6 @@ from decoder.inference import _kernels as K
 
 TWIN_RTOL = 1e-12
 
-PAIRS = [
-    pytest.param(K.poisson_log_likelihood, id="numba"),
-    pytest.param(K.poisson_log_likelihood_numpy, id="numpy"),
-]
-
-
 def _rates(rng: np.random.Generator, n_units: int, n_bins: int) -> np.ndarray:
     return rng.gamma(0.7, 4.0, (n_units, n_bins)) + 0.01
 
@@ -32,15 +29,14 @@ def _rates(rng: np.random.Generator, n_units: int, n_bins: int) -> np.ndarray:
 # -- Poisson log-likelihood ----------------------------------------------------
 
 
-@pytest.mark.parametrize("loglike", PAIRS)
-def test_log_likelihood_equals_scipy_poisson_logpmf(loglike):
+def test_log_likelihood_equals_scipy_poisson_logpmf():
     rng = np.random.default_rng(1)
     n_units, n_bins, window_s = 13, 37, 0.25
     rates = _rates(rng, n_units, n_bins)
     counts_all = rng.poisson(2.0, n_units) * (rng.random(n_units) < 0.6)
     rows = np.flatnonzero(counts_all).astype(np.int64)
     counts = counts_all[rows].astype(np.float64)
-    out = loglike(rows, counts, np.log(rates), window_s * rates.sum(axis=0), np.empty(n_bins))
+    out = K.poisson_log_likelihood_numpy(rows, counts, np.log(rates), window_s * rates.sum(axis=0), np.empty(n_bins))
     # Constant dropped by the kernel: sum_i (n_i log W - log n_i!), over every unit.
     constant = float(np.sum(counts_all * math.log(window_s) - gammaln(counts_all + 1)))
     reference = stats.poisson.logpmf(counts_all[:, None], window_s * rates).sum(axis=0)
@@ -49,27 +45,24 @@ def test_log_likelihood_equals_scipy_poisson_logpmf(loglike):
     np.testing.assert_allclose(out + constant, reference, rtol=1e-12, atol=1e-9)
 
 
-def test_log_likelihood_twins_agree_and_repeats_add_up():
+def test_log_likelihood_of_repeated_rows_adds_up():
     rng = np.random.default_rng(2)
     n_units, n_bins = 40, 2500
     log_rate = np.log(_rates(rng, n_units, n_bins))
     expected = rng.random(n_bins) * 5
     rows = rng.integers(0, n_units, 23).astype(np.int64)  # repeats included, odd length
     counts = rng.integers(0, 4, 23).astype(np.float64)
-    a = K.poisson_log_likelihood(rows, counts, log_rate, expected, np.empty(n_bins))
-    b = K.poisson_log_likelihood_numpy(rows, counts, log_rate, expected, np.empty(n_bins))
-    # Source: the numpy twin (reference implementation); tolerance in the module docstring.
-    np.testing.assert_allclose(a, b, rtol=TWIN_RTOL, atol=1e-12)
+    a = K.poisson_log_likelihood_numpy(rows, counts, log_rate, expected, np.empty(n_bins))
     merged = np.bincount(rows, weights=counts, minlength=n_units)
     fired = np.flatnonzero(merged)
-    c = K.poisson_log_likelihood(fired.astype(np.int64), merged[fired], log_rate, expected, np.empty(n_bins))
+    c = K.poisson_log_likelihood_numpy(fired.astype(np.int64), merged[fired], log_rate, expected, np.empty(n_bins))
     # Source: the log-likelihood is linear in the counts (Zhang et al. 1998), so split counts add up.
     np.testing.assert_allclose(a, c, rtol=TWIN_RTOL, atol=1e-12)
 
 
 def test_log_likelihood_of_a_silent_window_is_minus_expected_count():
     expected = np.array([0.5, 1.0, 2.0])
-    out = K.poisson_log_likelihood(np.zeros(0, np.int64), np.zeros(0), np.zeros((2, 3)), expected, np.empty(3))
+    out = K.poisson_log_likelihood_numpy(np.zeros(0, np.int64), np.zeros(0), np.zeros((2, 3)), expected, np.empty(3))
     # Source: Poisson pmf at n = 0 is exp(-mu) (definition of the Poisson distribution).
     np.testing.assert_array_equal(out, -expected)
 
@@ -77,10 +70,7 @@ def test_log_likelihood_of_a_silent_window_is_minus_expected_count():
 # -- normalisation -------------------------------------------------------------
 
 
-@pytest.mark.parametrize(
-    "posterior_from_log", [K.posterior_from_log, K.posterior_from_log_numpy], ids=["numba", "numpy"]
-)
-def test_posterior_equals_direct_normalisation_of_poisson_pmf(posterior_from_log):
+def test_posterior_equals_direct_normalisation_of_poisson_pmf():
     rng = np.random.default_rng(3)
     n_units, n_bins, window_s = 6, 30, 0.5
     rates = _rates(rng, n_units, n_bins)
@@ -91,7 +81,7 @@ def test_posterior_equals_direct_normalisation_of_poisson_pmf(posterior_from_log
     counts = counts_all[rows].astype(float)
     ll = K.poisson_log_likelihood_numpy(rows, counts, np.log(rates), window_s * rates.sum(0), np.empty(n_bins))
     out = np.empty(n_bins)
-    assert posterior_from_log(ll, prior, valid, out)
+    assert K.posterior_from_log_numpy(ll, prior, valid, out)
     direct = np.prod(stats.poisson.pmf(counts_all[:, None], window_s * rates), axis=0) * prior * valid
     # Source: Bayes' rule with scipy.stats.poisson.pmf, normalised directly (no logs).
     np.testing.assert_allclose(out, direct / direct.sum(), rtol=1e-10, atol=1e-300)
@@ -99,22 +89,14 @@ def test_posterior_equals_direct_normalisation_of_poisson_pmf(posterior_from_log
     assert np.all(out[~valid] == 0.0)
 
 
-def test_posterior_twins_agree_and_report_underflow():
-    rng = np.random.default_rng(4)
-    ll = rng.normal(0, 200, 500)
-    prior = rng.random(500)
-    valid = rng.random(500) < 0.9
-    a, b = np.empty(500), np.empty(500)
-    assert K.posterior_from_log(ll, prior, valid, a) and K.posterior_from_log_numpy(ll, prior, valid, b)
-    # Source: the numpy twin; tolerance in the module docstring.
-    np.testing.assert_allclose(a, b, rtol=TWIN_RTOL, atol=0)
+def test_posterior_reports_underflow():
+    b = np.empty(500)
     far = np.zeros(500)
     far[:10] = 1.0  # the prior lives where the likelihood is e^-800 below its best bin
     ll = np.zeros(500)
     ll[:10] = -800.0
     valid = np.ones(500, bool)
     # Source: exp(-800) ~ 1e-348 is below the smallest float64 (IEEE 754), so the product underflows.
-    assert not K.posterior_from_log(ll, far, valid, a)
     assert not K.posterior_from_log_numpy(ll, far, valid, b)
 
 
@@ -141,6 +123,17 @@ def test_separable_convolution_equals_scipy_ndimage(convolve):
     np.testing.assert_allclose(in_place, reference.ravel(), rtol=1e-12)
 
 
+def _predict_grid_compiled(p, ny, nx, kernel, mask_f, inv_norm, out, scratch=None):
+    """The compiled grid prediction as decode_step runs it: only the rows within reach of p's support."""
+    y0, y1 = K._support_rows(p, nx, 0, ny - 1)
+    reach = kernel.size // 2
+    grid_scratch = np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach))
+    y0, y1 = K._predict_grid_rows(p, ny, nx, kernel, mask_f, inv_norm, y0, y1, out, grid_scratch)
+    out[: y0 * nx] = 0.0
+    out[(y1 + 1) * nx :] = 0.0
+    return out
+
+
 def _masked_transition(ny: int, nx: int, kernel: np.ndarray, mask: np.ndarray) -> np.ndarray:
     """T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k, written out bin by bin."""
     reach = kernel.size // 2
@@ -157,7 +150,7 @@ def _masked_transition(ny: int, nx: int, kernel: np.ndarray, mask: np.ndarray) -
     return t
 
 
-@pytest.mark.parametrize("predict", [K.predict_grid, K.predict_grid_numpy], ids=["numba", "numpy"])
+@pytest.mark.parametrize("predict", [_predict_grid_compiled, K.predict_grid_numpy], ids=["numba", "numpy"])
 def test_grid_prediction_applies_the_masked_row_normalised_transition(predict):
     rng = np.random.default_rng(6)
     ny, nx = 6, 7
@@ -261,15 +254,14 @@ def test_hpd_of_values_too_close_for_buckets_falls_back_to_sorting(hpd):
 # -- summaries ------------------------------------------------------------------
 
 
-def test_posterior_summary_and_zone_mass_twins_agree_with_numpy():
+def test_posterior_summary_and_zone_mass_agree_with_numpy():
     rng = np.random.default_rng(9)
     p = rng.dirichlet(np.ones(300))
     cx, cy = rng.random(300) * 100, rng.random(300) * 50
-    for summary in (K.posterior_summary, K.posterior_summary_numpy):
-        best, peak, mx, my = summary(p, cx, cy)
-        # Source: numpy.argmax and numpy.average as reference.
-        assert best == int(np.argmax(p)) and peak == p.max()
-        np.testing.assert_allclose([mx, my], [np.average(cx, weights=p), np.average(cy, weights=p)], rtol=1e-12)
+    best, peak, mx, my = K.posterior_summary_numpy(p, cx, cy)
+    # Source: numpy.argmax and numpy.average as reference.
+    assert best == int(np.argmax(p)) and peak == p.max()
+    np.testing.assert_allclose([mx, my], [np.average(cx, weights=p), np.average(cy, weights=p)], rtol=1e-12)
     masks = rng.random((3, 300)) < 0.2
     start = np.concatenate([[0], np.cumsum(masks.sum(1))]).astype(np.int64)
     bins = np.nonzero(masks)[1].astype(np.int64)
@@ -504,12 +496,12 @@ def test_grid_prediction_on_a_posterior_confined_to_a_few_rows():
         p[rows[0] : rows[1]] = rng.random((rows[1] - rows[0], nx))
         p = p.ravel() * mask
         p /= p.sum()
-        out = K.predict_grid(p, ny, nx, kernel, mask_f, inv_norm, np.full(ny * nx, np.nan), None)
+        out = _predict_grid_compiled(p, ny, nx, kernel, mask_f, inv_norm, np.full(ny * nx, np.nan))
         # Source: Markov chain prediction p T with T written out entry by entry (as above); the
         # kernel's taps are summed in another order than the product's, hence rtol.
         np.testing.assert_allclose(out, p @ t, rtol=1e-12, atol=1e-18)
         in_place = p.copy()
-        K.predict_grid(in_place, ny, nx, kernel, mask_f, inv_norm, in_place, None)
+        _predict_grid_compiled(in_place, ny, nx, kernel, mask_f, inv_norm, in_place)
         np.testing.assert_allclose(in_place, p @ t, rtol=1e-12, atol=1e-18)
 
 

@@ -13,7 +13,8 @@ import tomli_w
 
 from decoder.config import parse_config
 from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
-from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from decoder.session.outputs import LearningProgress, Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
 
 CONFIG = {
@@ -152,7 +153,7 @@ def test_frames_wait_for_clock_alignment_and_lost_frames_are_skipped():
     pipeline.on_message(TrackerFrames("tracker", 1, [10.0, 10.02], [[5.0, 5.0], [np.nan, np.nan]]))
     # Different clocks and no sync pulse yet: the frames wait.
     assert pipeline.tracked.newest_t_s == -np.inf
-    assert len(pipeline._pending_frames) == 1
+    assert len(pipeline.positions.pending) == 1
 
 
 def test_config_validation_names_the_problem():
@@ -173,8 +174,8 @@ def test_config_validation_names_the_problem():
 
 
 def test_unit_ids_spread_too_wide_for_a_lookup_table_decode_the_same(session_messages):
-    # Ids more than a million apart take the dictionary path instead of the lookup table; the
-    # decoded steps, the events and the counters must not depend on which (common practice:
+    # Ids ten million apart and ids next to each other go through the same lookup; the decoded
+    # steps, the events and the counters must not depend on their spacing (common practice:
     # a rig's unit ids are labels, their spacing means nothing).
     config, messages = session_messages
     spread = []
@@ -187,7 +188,30 @@ def test_unit_ids_spread_too_wide_for_a_lookup_table_decode_the_same(session_mes
     cut = next(i for i, m in enumerate(messages) if isinstance(m, SpikeBatch) and m.t_s.size and m.t_s[0] > 140)
     tight, _ = _run(config, messages[:cut] + [SpikeBatch("ephys", 10**9, [140.5], [123457])] + messages[cut:])
     wide, _ = _run(config, spread[:cut] + [SpikeBatch("ephys", 10**9, [140.5], [123457])] + spread[cut:])
-    assert wide._unit_lut is None and tight._unit_lut is not None
     assert wide.digest == tight.digest
     assert wide.counters == tight.counters
     assert wide.counters["unknown_units"] == 1
+
+
+def test_each_message_kind_goes_to_its_handler_and_strays_are_counted():
+    pipeline = Pipeline(_config(session={"learn_s": 0.0}))
+    assert pipeline.on_message(TrackerFrames.one("ephys", 0, 1.0, 5.0, 5.0)) == []      # frames from the spike source
+    assert pipeline.on_message(SpikeBatch("elsewhere", 0, [1.0], [1])) == []             # spikes from nobody we know
+    assert pipeline.counters["unknown_source"] == 2
+    assert pipeline.on_message(Heartbeat("tracker", 0, 1.0)) == []                       # a position source is alive
+    assert pipeline.counters["unknown_source"] == 2 and pipeline.spike_watermark_s == -np.inf
+    pipeline.on_message(Heartbeat("ephys", 1, 2.0))
+    assert pipeline.spike_watermark_s == 2.0
+    out = pipeline.on_message(ControlCommand("anyone", 0, "start_learning"))
+    assert [n.kind for n in out] == ["state"] and pipeline.state == "learning"
+    pipeline.on_message(TrackerFrames.one("tracker", 1, 2.0, 5.0, 6.0))
+    assert pipeline.tracked.position_at(2.0) == (5.0, 6.0)
+
+
+def test_a_restarted_spike_source_starts_its_steps_afresh_disarmed(session_messages):
+    config, messages = session_messages
+    pipeline, _ = _run(config, messages)
+    assert pipeline.bank.armed and pipeline.spike_watermark_s > 150
+    out = pipeline.on_message(SpikeBatch("ephys", 0, [0.2], [101]))
+    assert [n.kind for n in out if isinstance(n, Notice)][:2] == ["source_restart", "disarmed"]
+    assert not pipeline.bank.armed and pipeline.spike_watermark_s == 0.2

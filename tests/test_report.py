@@ -29,7 +29,8 @@ import tomli_w
 from PIL import Image
 
 from decoder.config import parse_config
-from decoder.session.pipeline import Pipeline, StepOutput
+from decoder.session.outputs import StepOutput
+from decoder.session.pipeline import Pipeline
 from rig_adapters.offline import report, report_data
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import CHANNEL_EVENTS, CHANNEL_RIG, Ingest

@@ -2,16 +2,20 @@
 
 Every kernel ``name`` is compiled with numba and has a twin ``name_numpy``
 with the same signature and the same result. Tests use the twins as the
-reference; ``bench/decoder.py`` uses them as the baseline. Kernels write into
+reference; ``bench/decoder.py`` uses them as the baseline. Four steps of the
+decoding have a numpy form only (``poisson_log_likelihood_numpy``,
+``predict_grid_numpy``, ``posterior_from_log_numpy``,
+``posterior_summary_numpy``): production runs them fused inside
+:func:`decode_step`, and they stay as the parts of its twin, each checked
+against an outside reference. Kernels write into
 caller-owned ``out`` (and ``scratch``) arrays so that the decoding loop
 allocates nothing large per step but the posterior it hands out; a twin takes
 the same arguments even where numpy needs no scratch space, so that the two
 are interchangeable.
 
 :func:`decode_step` is what the decoder calls: one window from check to
-summaries in one call, with the arithmetic of the separate kernels (which
-remain, each checked against an outside reference) and an incremental
-log-likelihood. Its twin composes the separate twins.
+summaries in one call, with the arithmetic of the separate steps and an
+incremental log-likelihood. Its twin composes the separate twins.
 
 Bins are flattened as in ``decoder.space.environments`` (row-major for a grid:
 ``bin = iy * nx + ix``). Posterior vectors hold exactly 0 outside the valid
@@ -40,7 +44,7 @@ PROB_FLOOR = 1e-300
 #: spikes point and the product has underflowed; the caller must fall back.
 MIN_EVIDENCE = 1e-300
 
-#: Bins per block of ``poisson_log_likelihood`` (8 KiB of float64).
+#: Bins per block of the log-likelihood sums (8 KiB of float64).
 _LIKELIHOOD_BLOCK = 1024
 
 #: Value buckets per refinement pass of ``hpd_size``.
@@ -137,14 +141,6 @@ def _sum(a):
     s = 0.0
     for j in range(a.shape[0]):
         s += a[j]
-    return s
-
-
-@numba.njit(cache=True, fastmath={"reassoc"})
-def _dot(a, b):
-    s = 0.0
-    for j in range(a.shape[0]):
-        s += a[j] * b[j]
     return s
 
 
@@ -259,15 +255,15 @@ def _add_weighted_rows(out, log_rate, rows, weights, n):
             k += 1
 
 
-@numba.njit(cache=True)
-def poisson_log_likelihood(fired_rows, fired_counts, log_rate, expected_total, out):
-    """Log-likelihood of every bin for one window of spike counts.
+def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, out):
+    """Log-likelihood of every bin for one window of spike counts (a step of :func:`decode_step_numpy`).
 
     Under the independent-Poisson model the log-likelihood of position ``x``
     is ``sum_i n_i log(lambda_i(x)) - W sum_i lambda_i(x)`` up to terms that do
     not depend on ``x`` (``-sum_i log n_i!`` and ``sum_i n_i log W``). Only the
     units that fired are touched; the silent units enter through
-    ``expected_total``.
+    ``expected_total``. :func:`decode_step` computes the same sums in place,
+    updated from the previous window's.
 
     Parameters
     ----------
@@ -293,14 +289,6 @@ def poisson_log_likelihood(fired_rows, fired_counts, log_rate, expected_total, o
     neuronal population activity by reconstruction: unified framework with
     application to hippocampal place cells. J Neurophysiol 79:1017-1044.
     """
-    for j in range(out.shape[0]):
-        out[j] = -expected_total[j]
-    _add_weighted_rows(out, log_rate, fired_rows, fired_counts, fired_rows.shape[0])
-    return out
-
-
-def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, out):
-    """Numpy twin of :func:`poisson_log_likelihood`."""
     out[:] = fired_counts @ log_rate[fired_rows] - expected_total
     return out
 
@@ -310,9 +298,8 @@ def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_to
 # ---------------------------------------------------------------------------
 
 
-@numba.njit(cache=True)
-def posterior_from_log(log_like, prior, valid, out):
-    """Normalise ``prior * exp(log_like)`` over the valid bins.
+def posterior_from_log_numpy(log_like, prior, valid, out):
+    """Normalise ``prior * exp(log_like)`` over the valid bins (a step of :func:`decode_step_numpy`).
 
     The log-likelihood is shifted by its maximum over the valid bins before
     exponentiation (the log-sum-exp device), so no weight overflows. Weights
@@ -337,19 +324,6 @@ def posterior_from_log(log_like, prior, valid, out):
         is: the scaled evidence fell below ``MIN_EVIDENCE``. ``out`` is then
         meaningless and the caller must use another prior.
     """
-    # The same steps as decode_step's: best valid bin, weights, normalisation.
-    total = _weigh(log_like, _max_where(log_like, valid), prior, valid, out)
-    if not total >= MIN_EVIDENCE:
-        return False
-    inv = 1.0 / total
-    for j in range(out.shape[0]):
-        v = out[j] * inv
-        out[j] = v if v >= PROB_FLOOR else 0.0
-    return True
-
-
-def posterior_from_log_numpy(log_like, prior, valid, out):
-    """Numpy twin of :func:`posterior_from_log`."""
     best = log_like[valid].max()
     d = np.where(valid, log_like - best, -np.inf)
     keep = d > LOG_WEIGHT_FLOOR
@@ -522,7 +496,7 @@ def _symmetric_filter(src, kernel_1d, step, dst):
 
 @numba.njit(cache=True)
 def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch):
-    """The random-walk step of :func:`predict_grid` for a ``p`` that is 0 outside rows ``y0..y1``.
+    """The random-walk step of :func:`predict_grid_numpy` for a ``p`` that is 0 outside rows ``y0..y1``.
 
     Only the rows ``y0 - r .. y1 + r`` (``r`` the kernel's reach) can receive
     mass; nothing of ``out`` outside them is written, and callers treat it
@@ -538,7 +512,7 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
         Current posterior, 0 outside rows ``y0..y1`` and outside the valid
         bins. May be the same array as ``out``.
     ny, nx, kernel_1d, mask_f, inv_norm
-        As in :func:`predict_grid` (``kernel_1d`` symmetric).
+        As in :func:`predict_grid_numpy` (``kernel_1d`` symmetric).
     y0, y1 : int
         Inclusive, ``0 <= y0 <= y1 < ny``.
     out : ndarray, shape (ny * nx,), float64
@@ -589,16 +563,16 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
     return out_y0, out_y1
 
 
-@numba.njit(cache=True)
-def predict_grid(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
-    """One random-walk step on a grid arena: ``mask * conv(p / conv(mask))``.
+def predict_grid_numpy(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
+    """One random-walk step on a grid arena: ``mask * conv(p / conv(mask))`` (a step of :func:`decode_step_numpy`).
 
     This applies the transition ``T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k``
     (from bin ``i`` to bin ``j``) without forming it: ``K`` is the separable
     kernel, ``m`` the valid-bin mask, and ``inv_norm = 1 / conv(m)`` on valid
     bins (0 elsewhere) is precomputed. Only the rows around the non-zero
-    values of ``p``, grown by the kernel's reach, are convolved: a posterior
-    is mostly zero far from its peak.
+    values of ``p``, grown by the kernel's reach, are convolved inside
+    :func:`decode_step` (:func:`_predict_grid_rows`): a posterior is mostly
+    zero far from its peak.
 
     Parameters
     ----------
@@ -615,27 +589,12 @@ def predict_grid(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
         ``1 / conv(mask_f)`` on valid bins, 0 elsewhere.
     out, scratch : ndarray, shape (ny * nx,), float64
         ``out`` receives the prediction (sums to ``p.sum()``); ``scratch``
-        is not used (the twin's signature).
+        is not used.
 
     Returns
     -------
     out : ndarray, shape (ny * nx,)
     """
-    y0, y1 = _support_rows(p, nx, 0, ny - 1)
-    if y1 < y0:
-        out[:] = 0.0
-        return out
-    reach = kernel_1d.shape[0] // 2
-    # Zeros, not np.empty: padding that is never written must hold numbers.
-    grid_scratch = np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach))
-    y0, y1 = _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch)
-    out[: y0 * nx] = 0.0
-    out[(y1 + 1) * nx :] = 0.0
-    return out
-
-
-def predict_grid_numpy(p, ny, nx, kernel_1d, mask_f, inv_norm, out, scratch):
-    """Numpy twin of :func:`predict_grid`."""
     with np.errstate(under="ignore"):
         convolve_separable_numpy(p * inv_norm, ny, nx, kernel_1d, out, scratch)
         out *= mask_f
@@ -844,9 +803,8 @@ def hpd_size_numpy(p, mass, scratch):
     return int(np.count_nonzero(p >= desc[i]))
 
 
-@numba.njit(cache=True)
-def posterior_summary(p, centers_x_cm, centers_y_cm):
-    """Maximum a posteriori bin, its probability and the posterior mean.
+def posterior_summary_numpy(p, centers_x_cm, centers_y_cm):
+    """Maximum a posteriori bin, its probability and the posterior mean (a step of :func:`decode_step_numpy`).
 
     Parameters
     ----------
@@ -862,17 +820,6 @@ def posterior_summary(p, centers_x_cm, centers_y_cm):
     peak_prob : float
     mean_x_cm, mean_y_cm : float
     """
-    best = 0
-    peak = -1.0
-    for j in range(p.shape[0]):
-        if p[j] > peak:
-            peak = p[j]
-            best = j
-    return best, peak, _dot(p, centers_x_cm), _dot(p, centers_y_cm)
-
-
-def posterior_summary_numpy(p, centers_x_cm, centers_y_cm):
-    """Numpy twin of :func:`posterior_summary`."""
     best = int(np.argmax(p))
     return best, float(p[best]), float(p @ centers_x_cm), float(p @ centers_y_cm)
 
@@ -981,7 +928,7 @@ def _update_log_likelihood(now, last, log_rate, expected_total, state, rows, wei
 
 @numba.njit(cache=True, fastmath={"reassoc"})
 def _weigh(log_like, best, prior, valid, out):
-    """The unnormalised posterior of :func:`posterior_from_log`; returns its sum."""
+    """The unnormalised posterior of :func:`posterior_from_log_numpy`; returns its sum."""
     total = 0.0
     for j in range(out.shape[0]):
         d = log_like[j] - best
@@ -1042,9 +989,9 @@ def decode_step(
 ):
     """One window decoded: check, likelihood, prior, posterior and its summaries in one call.
 
-    The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood`,
-    :func:`predict_grid` or :func:`predict_dense`, :func:`posterior_from_log`,
-    :func:`posterior_summary`, :func:`hpd_size` and :func:`zone_mass` in turn,
+    The same arithmetic as :func:`first_bad_entry`, :func:`poisson_log_likelihood_numpy`,
+    :func:`predict_grid_numpy` or :func:`predict_dense`, :func:`posterior_from_log_numpy`,
+    :func:`posterior_summary_numpy`, :func:`hpd_size` and :func:`zone_mass` in turn,
     with three economies: the log-likelihood of the previous window is
     updated where counts changed instead of recomputed (see
     ``LIKELIHOOD_REFRESH_STEPS``); on a grid the prediction, the
@@ -1074,7 +1021,7 @@ def decode_step(
     ny, nx : int
         Grid shape (``1, n_bins`` for an environment that is not a grid).
     kernel_1d, mask_f, inv_norm : ndarray, float64
-        The random walk on a grid, as in :func:`predict_grid` (any 1-D
+        The random walk on a grid, as in :func:`predict_grid_numpy` (any 1-D
         arrays for other kinds).
     transition : ndarray, shape (n_bins, n_bins), float64
         The dense transition, as in :func:`predict_dense` (any 2-D array for
@@ -1272,7 +1219,7 @@ def decode_window_step(
 ):
     """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
 
-    The same numbers, bit for bit, as counting the window first (``binning.window_counts``)
+    The same numbers, bit for bit, as counting the window first (as the twin does, with numpy)
     and passing its rows and counts to :func:`decode_step`: a unit's count is
     a sum of ones either way. Counting here saves the decoding loop a call
     and two arrays per step.

@@ -52,7 +52,7 @@ MAX_COUNT = 1e6
 PRIORS = ("uniform", "state_space")
 BACKENDS = ("numba", "numpy")
 
-_KERNEL_NAMES = ("convolve_separable", "predict_grid", "predict_dense", "decode_step", "decode_window_step")
+_KERNEL_NAMES = ("convolve_separable", "decode_step", "decode_window_step")
 
 _INT64 = np.dtype(np.int64)
 _FLOAT64 = np.dtype(np.float64)
@@ -153,8 +153,7 @@ class RandomWalk:
     >>> from decoder.space.environments import LinearTrack
     >>> track = LinearTrack((0, 0), (100, 0), bin_cm=10)
     >>> walk = RandomWalk(track, track.valid_mask, sd_cm=10.0)
-    >>> p = np.zeros(10); p[0] = 1.0
-    >>> bool(np.isclose(walk.predict(p).sum(), 1.0))
+    >>> bool(np.allclose(walk.dense_matrix().sum(axis=1), 1.0))
     True
     """
 
@@ -201,29 +200,6 @@ class RandomWalk:
         out[rows] = weighted[rows] / norm[rows, np.newaxis]
         return out
 
-    def predict(self, p: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
-        """Move a posterior one step: ``(p @ T)``.
-
-        Parameters
-        ----------
-        p : ndarray of float64, shape (n_bins,)
-            Distribution over bins, 0 outside the valid bins.
-        out : ndarray of float64, shape (n_bins,), optional
-            Where to write the result.
-
-        Returns
-        -------
-        ndarray of float64, shape (n_bins,)
-            The predicted distribution; sums to ``p.sum()``.
-        """
-        if out is None:
-            out = np.empty(self.environment.n_bins)
-        if self._transition is not None:
-            return self._k.predict_dense(p, self._transition, out)
-        return self._k.predict_grid(
-            p, self._ny, self._nx, self._kernel_1d, self._mask_f, self._inv_norm, out, self._scratch
-        )
-
     def dense_matrix(self) -> np.ndarray:
         """The transition matrix ``T`` (from row bin to column bin), plain numpy.
 
@@ -240,7 +216,7 @@ class RandomWalk:
             return self._transition.copy()
         n = self.environment.n_bins
         if n > MAX_DENSE_GRID_BINS:
-            raise ValueError(f"a dense transition of {n} bins would need {n * n * 8 / 1e9:.1f} GB; use predict()")
+            raise ValueError(f"a dense transition of {n} bins would need {n * n * 8 / 1e9:.1f} GB; a grid arena is predicted by convolution instead (decode_step)")
         reach = self._kernel_1d.size // 2
 
         def axis_kernel(size: int) -> np.ndarray:

@@ -82,7 +82,11 @@ class ClockFit:
         Returns
         -------
         float or ndarray of float64, shape (n,)
+            The same IEEE arithmetic either way, element by element.
         """
+        if type(t_other) is float:
+            # One tracker frame at a time is the usual case: no numpy round trip.
+            return self.offset_s + (1.0 + self.drift_ppm * 1e-6) * t_other
         if type(t_other) is not np.ndarray or t_other.dtype != np.float64:
             t_other = np.asarray(t_other, dtype=np.float64)
         return self.offset_s + (1.0 + self.drift_ppm * 1e-6) * t_other

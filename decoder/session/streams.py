@@ -1,7 +1,8 @@
-"""Per-source sequence numbers and message counts: gaps, duplicates, restarts."""
+"""Per-source sequence numbers and message counts (gaps, duplicates, restarts), and the spike stream's watermark."""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 
@@ -64,3 +65,41 @@ class StreamHealth:
 
     def summary(self) -> dict[str, dict]:
         return {name: vars(h).copy() for name, h in self.sources.items()}
+
+
+#: A message whose timestamps run further ahead of the spike stream's
+#: watermark than this (s) is refused: a corrupt clock would otherwise close
+#: thousands of steps at once and leave every later spike "late".
+MAX_TIME_JUMP_S = 30.0
+
+
+class SpikeWatermark:
+    """The session's data time: the newest timestamp or heartbeat of the spike stream.
+
+    Parameters
+    ----------
+    max_jump_s : float
+        A time further than this past a known watermark is refused.
+
+    Attributes
+    ----------
+    t_s : float
+        The watermark (s); ``-inf`` before the first data.
+    """
+
+    def __init__(self, max_jump_s: float = MAX_TIME_JUMP_S) -> None:
+        self.max_jump_s = float(max_jump_s)
+        self.t_s = -math.inf
+
+    def advance(self, newest_s: float) -> bool:
+        """Move to ``newest_s`` if it is later; False, unchanged, when it jumps too far ahead."""
+        t = self.t_s
+        if newest_s > t:
+            if newest_s > t + self.max_jump_s and t != -math.inf:
+                return False
+            self.t_s = newest_s
+        return True
+
+    def reset(self) -> None:
+        """Forget the watermark (a restarted source may restart its clock)."""
+        self.t_s = -math.inf

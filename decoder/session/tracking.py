@@ -42,12 +42,13 @@ class TrackHistory:
     def __len__(self) -> int:
         return len(self._t)
 
-    def add(self, t_s: np.ndarray, xy_cm: np.ndarray) -> None:
-        """Append frames (t_s (n,), xy_cm (n, 2)); lost frames (NaN) are skipped.
+    def add(self, t_s: list[float], xy_cm: list[list[float]]) -> None:
+        """Append frames: times (n,) and positions (n, 2) as Python floats (``ndarray.tolist()``).
 
-        Frames not newer than the newest one held are counted and dropped.
+        Lost frames (NaN) are skipped; frames not newer than the newest one
+        held are counted and dropped.
         """
-        for t, (x, y) in zip(t_s.tolist(), xy_cm.tolist()):
+        for t, (x, y) in zip(t_s, xy_cm):
             self.add_one(t, x, y)
 
     def add_one(self, t_s: float, x_cm: float, y_cm: float) -> None:

@@ -44,7 +44,8 @@ import numpy as np
 import zmq
 
 from decoder.config import ExperimentConfig
-from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from decoder.session.outputs import LearningProgress, Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import (
     CHANNEL_CONTROL,

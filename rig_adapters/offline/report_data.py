@@ -21,7 +21,8 @@ import numpy as np
 
 from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import ModelFileError, PlaceModel
-from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from decoder.session.outputs import LearningProgress, Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, INITIAL_MODEL_SIDECAR
 from rig_adapters.sessions.replay import replay_session, session_config
 from rig_adapters.sessions.summary import LatencySeries

@@ -17,7 +17,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from decoder.config import ExperimentConfig, load_config
-from decoder.session.pipeline import LearningProgress, Notice, Pipeline, StepOutput
+from decoder.session.outputs import LearningProgress, Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import PlaceModel
 from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest
 from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, LogFormatError, LogRecord, iter_records

@@ -27,7 +27,8 @@ import stat
 import numpy as np
 
 from decoder.messages import ControlCommand, MessageError
-from decoder.session.pipeline import Notice, Pipeline, StepOutput
+from decoder.session.outputs import Notice, StepOutput
+from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
 

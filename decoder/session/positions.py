@@ -1,0 +1,116 @@
+"""Where the animal is on data time: tracked and true positions, brought onto the spike clock.
+
+Tracker (and, on a simulated rig, truth) frames come stamped on their own
+source's clock. A source announced on the spike source's clock, or either of
+them unannounced, is taken to share it (PROTOCOL.md); any other waits for its
+clock fit from sync pulses (:class:`~decoder.session.clock.ClockAligner`),
+its frames held until then, so that no frame is placed on a guessed time.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from decoder.config import SourceSettings
+from decoder.encoding.place_model import PlaceModel
+from decoder.messages import SyncPulse, TrackerFrames
+from decoder.session.clock import ClockAligner, ClockFit
+from decoder.session.tracking import TrackHistory
+
+#: Tracker frames held while waiting for the first clock fit; beyond it
+#: frames are dropped (counted as ``frames_dropped_unaligned``).
+MAX_PENDING_FRAMES = 5000
+
+
+class Positions:
+    """Tracked and true position histories on the spike clock.
+
+    Parameters
+    ----------
+    sources : SourceSettings
+        Which source is the spike clock, the tracker and the truth.
+    counters : dict of str to int
+        The session's counters; ``frames_dropped_unaligned`` is counted here.
+
+    Attributes
+    ----------
+    tracked, truth : TrackHistory
+        Frames of the tracker and of the truth source, on the spike clock.
+    clock : ClockAligner
+        One clock fit per source from the sync pulses.
+    pending : list of TrackerFrames
+        Frames waiting for their source's first clock fit, in arrival order.
+    """
+
+    def __init__(self, sources: SourceSettings, counters: dict[str, int]) -> None:
+        self._spike_source = sources.spikes
+        self._truth_source = sources.truth
+        self.counters = counters
+        self.clock = ClockAligner(sources.spikes, tolerance_s=sources.clock_tolerance_s)
+        self.tracked = TrackHistory()
+        self.truth = TrackHistory()
+        self.pending: list[TrackerFrames] = []
+        self._clock_of: dict[str, str] = {}
+
+    def announce(self, source: str, clock: str) -> None:
+        """Note which clock ``source`` stamps its messages on."""
+        self._clock_of[source] = clock
+
+    def forget_clock(self, source: str) -> None:
+        """A restarted source may restart its clock: its clock fit no longer holds."""
+        self.clock.forget(source)
+
+    def add_frames(self, msg: TrackerFrames, learner: PlaceModel | None) -> None:
+        """Frames into their history on the spike clock, or held until their clock is fitted.
+
+        Parameters
+        ----------
+        msg : TrackerFrames
+            From the tracker or the truth source.
+        learner : PlaceModel or None
+            The model learning, given the tracked frames on the spike clock too (None when not learning).
+        """
+        fit = self._fit(msg.source)
+        if fit is None:
+            if len(self.pending) >= MAX_PENDING_FRAMES:
+                self.counters["frames_dropped_unaligned"] += msg.t_s.size
+            else:
+                self.pending.append(msg)
+            return
+        self._apply(msg, fit, learner)
+
+    def add_sync(self, msg: SyncPulse, learner: PlaceModel | None) -> None:
+        """A sync pulse; held frames whose clocks are all fitted now go in, in arrival order.
+
+        Raises
+        ------
+        ClockMismatchError
+            When the pulse disagrees with the source's clock fit (the caller disarms).
+        """
+        self.clock.add_pulse(msg.source, msg.pulse_id, msg.t_s)
+        if self.pending and all(self._fit(m.source) is not None for m in self.pending):
+            held, self.pending = self.pending, []
+            for frames in held:
+                self._apply(frames, self._fit(frames.source), learner)
+
+    def _fit(self, source: str) -> ClockFit | bool | None:
+        """True when ``source`` runs on the spike clock, its clock fit when aligned, else None."""
+        spikes = self._clock_of.get(self._spike_source)
+        other = self._clock_of.get(source)
+        if spikes is None or other is None or spikes == other:
+            return True
+        return self.clock.fit(source)
+
+    def _apply(self, msg: TrackerFrames, fit: ClockFit | bool, learner: PlaceModel | None) -> None:
+        # Frames read one way, as Python floats: nearly every message carries one frame, and
+        # numpy's per-call cost on one-element arrays was most of the work.
+        t_ref = msg.t_s.tolist()
+        if fit is not True:
+            to_reference = fit.to_reference
+            t_ref = [to_reference(t) for t in t_ref]
+        history = self.truth if msg.source == self._truth_source else self.tracked
+        add_one = history.add_one
+        for t, (x, y) in zip(t_ref, msg.xy_cm.tolist()):
+            add_one(t, x, y)
+        if learner is not None and history is self.tracked:
+            learner.update_frames(np.array(t_ref), msg.xy_cm)

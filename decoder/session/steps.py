@@ -1,0 +1,118 @@
+"""The decoding steps of a session: which close when, the spikes they count, and their decoding.
+
+Steps end at whole multiples of the step length on the spike clock,
+``t_k = k * step_s``, so that a live run and its replay close the same steps
+whatever the first message was. Step ``k`` closes once the spike stream's
+watermark (its newest timestamp or heartbeat) has passed ``t_k`` by the
+allowed lateness; the window of step ``k`` is ``(t_k - window_s, t_k]``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from decoder.inference.binning import SpikeWindow
+from decoder.inference.decoding import BayesDecoder, DecodedStep
+
+#: Steps closed by one message at most; beyond it the schedule skips ahead
+#: (counted as ``steps_skipped``), so one message can never stall the loop.
+MAX_STEPS_PER_MESSAGE = 500
+
+
+class StepSchedule:
+    """Which decoding steps a watermark closes.
+
+    Parameters
+    ----------
+    step_s : float
+        Step length (s); step ``k`` ends at ``k * step_s``.
+    allowed_lateness_s : float
+        How far past a step's end the watermark must be before it closes.
+    """
+
+    def __init__(self, step_s: float, allowed_lateness_s: float) -> None:
+        self.step_s = float(step_s)
+        self.allowed_lateness_s = float(allowed_lateness_s)
+        self.next_k: int | None = None
+
+    def start_at(self, t_s: float) -> None:
+        """Make the first step the first one ending after ``t_s``."""
+        self.next_k = math.floor(t_s / self.step_s) + 1
+
+    def step_end_s(self, k: int) -> float:
+        return k * self.step_s
+
+    def stop(self) -> None:
+        """No step is due until the next :meth:`start_at` (the spike clock restarted)."""
+        self.next_k = None
+
+    def due(self, watermark_s: float) -> list[int]:
+        """Steps that close at this watermark, in order; each is returned once."""
+        if self.next_k is None:
+            return []
+        last_k = math.floor((watermark_s - self.allowed_lateness_s) / self.step_s + 1e-9)
+        if last_k < self.next_k:
+            return []
+        ks = list(range(self.next_k, last_k + 1))
+        self.next_k = last_k + 1
+        return ks
+
+
+class DecodingSteps:
+    """Spike intake and step decoding for one installed model.
+
+    Parameters
+    ----------
+    decoder : BayesDecoder
+    unit_ids : ndarray of int64, shape (n_units,)
+        The unit of each decoder row.
+    schedule : StepSchedule
+        The session's schedule; kept across models.
+    counters : dict of str to int
+        The session's counters: ``unknown_units``, ``late_spikes`` and
+        ``steps_skipped`` are counted here.
+    """
+
+    def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, schedule: StepSchedule,
+                 counters: dict[str, int]) -> None:
+        ids = np.asarray(unit_ids, np.int64)
+        # Sorted for the compiled lookup; should a model name a unit twice, its last row takes the spikes.
+        self._known_ids, last_in_reversed = np.unique(ids[::-1], return_index=True)
+        self._row_of_known = (ids.size - 1 - last_in_reversed).astype(np.int64)
+        self.decoder = decoder
+        self.schedule = schedule
+        self.counters = counters
+        self.n_units = int(ids.size)
+        self.window = SpikeWindow(self.n_units, decoder.window_s)
+
+    def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
+        """Hold a batch of spikes (``t_s`` sorted, shape (n,) each) for the steps still to close."""
+        next_k = self.schedule.next_k
+        closed_until_s = self.schedule.step_end_s(next_k - 1) if next_k is not None else -math.inf
+        n_unknown, n_late = self.window.add_units(t_s, unit_ids, self._known_ids, self._row_of_known, closed_until_s)
+        if n_unknown:
+            self.counters["unknown_units"] += n_unknown
+        if n_late:
+            self.counters["late_spikes"] += n_late
+
+    def due(self, watermark_s: float) -> list[int]:
+        """The steps this watermark closes, at most ``MAX_STEPS_PER_MESSAGE`` (the newest)."""
+        ks = self.schedule.due(watermark_s)
+        if len(ks) > MAX_STEPS_PER_MESSAGE:
+            self.counters["steps_skipped"] += len(ks) - MAX_STEPS_PER_MESSAGE
+            ks = ks[-MAX_STEPS_PER_MESSAGE:]
+            # The skipped steps break the filter's chain of priors.
+            self.decoder.reset()
+        return ks
+
+    def decode(self, k: int) -> tuple[float, DecodedStep]:
+        """Decode step ``k``: its end time (s) and the decoder's output."""
+        t_s = self.schedule.step_end_s(k)
+        return t_s, self.window.decode(self.decoder, t_s)
+
+    def restart(self) -> None:
+        """Start afresh after the spike source restarted: no prior, no held spikes."""
+        self.decoder.reset()
+        self.window = SpikeWindow(self.n_units, self.window.window_s)
