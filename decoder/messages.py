@@ -579,12 +579,16 @@ CONTROL_COMMANDS = (
 
 #: Most arguments one control command may carry.
 MAX_CONTROL_ARGS = 64
+#: Longest string argument of a control command, in characters (a file path, a reason).
+MAX_ARG_CHARS = 4096
 
 
 def _plain_value(value: Any) -> bool:
-    """Whether a control argument is a plain value: nil, bool, number in range, or string."""
-    if value is None or type(value) in (bool, float, str):
+    """Whether a control argument is a plain value: nil, bool, number in range, or a string not too long."""
+    if value is None or type(value) in (bool, float):
         return True
+    if type(value) is str:
+        return len(value) <= MAX_ARG_CHARS
     return type(value) is int and _INT64_MIN <= value <= _INT64_MAX
 
 
@@ -595,8 +599,9 @@ class ControlCommand:
     Control commands are recorded and replayed like any input, so that a
     replay passes through the same session states at the same data time.
     ``stall`` is raised by the shell's watchdog when a stream goes quiet.
-    ``args`` maps names to plain values (None, bool, int, float, str), so
-    that nothing a requester sends can be nested or unbounded.
+    ``args`` maps names to plain values (None, bool, int, float, str of at
+    most :data:`MAX_ARG_CHARS`), so that nothing a requester sends can be
+    nested or unbounded.
     """
 
     source: str
