@@ -50,15 +50,16 @@ EXTENSION_PREFIX = "x_"
 
 @dataclass(frozen=True)
 class _Keys:
-    """The keys of one input kind: those it must have, and every one it may have."""
+    """The keys of one input kind: those it must have (in the order errors name them), and every one it may have."""
 
     required: tuple[str, ...]
+    required_set: frozenset[str]
     allowed: frozenset[str]
 
 
 def _keys(required: tuple[str, ...], optional: tuple[str, ...] = ()) -> _Keys:
     envelope = ("v", "k", "src", "seq")
-    return _Keys(envelope + required, frozenset(envelope + required + optional + ("iw",)))
+    return _Keys(envelope + required, frozenset(envelope + required), frozenset(envelope + required + optional + ("iw",)))
 
 
 #: Every key of every input kind (PROTOCOL.md, sections 2, 3 and 5).
@@ -86,7 +87,7 @@ def _read_envelope(m: dict, kinds: tuple[str, ...]) -> str:
     if spec is not None and type(v) is int and v == PROTOCOL_VERSION and k in kinds:
         keys = m.keys()
         width = m.get("iw", 4)
-        if keys <= spec.allowed and all(key in m for key in spec.required) and type(width) is int and width in _INT_BY_WIDTH:
+        if keys <= spec.allowed and spec.required_set <= keys and type(width) is int and width in _INT_BY_WIDTH:
             return k
     # Something is off, or the frame carries a rig's own keys: look key by key.
     k = read_kind(m, kinds)
