@@ -286,7 +286,9 @@ def _is_ready_vector(arr: Any, dtype: np.dtype) -> bool:
 
 def _check_source_seq(msg: Any) -> None:
     """Check a message's ``source`` and ``seq`` where they stand; ``seq`` becomes a Python int."""
-    _name("source", msg.source)
+    source = msg.source
+    if type(source) is not str or not 0 < len(source) <= 64:
+        _name("source", source)
     seq = msg.seq
     if type(seq) is not int or not 0 <= seq <= _INT64_MAX:
         object.__setattr__(msg, "seq", _count("seq", seq))

@@ -79,17 +79,8 @@ _F64_THREE = struct.Struct("<3d")
 _INT32 = np.iinfo(np.int32)
 
 
-def _read_envelope(m: dict, kinds: tuple[str, ...]) -> str:
-    """The kind of an input frame whose version, keys and integer width are right."""
-    k = m.get("k")
-    spec = INPUT_KEYS.get(k) if type(k) is str else None
-    v = m.get("v")
-    if spec is not None and type(v) is int and v == PROTOCOL_VERSION and k in kinds:
-        keys = m.keys()
-        width = m.get("iw", 4)
-        if keys <= spec.allowed and spec.required_set <= keys and type(width) is int and width in _INT_BY_WIDTH:
-            return k
-    # Something is off, or the frame carries a rig's own keys: look key by key.
+def _check_envelope(m: dict, kinds: tuple[str, ...]) -> str:
+    """The kind of an input frame, its version, keys and integer width checked key by key; a ProtocolError names the first fault."""
     k = read_kind(m, kinds)
     spec = INPUT_KEYS[k]
     for key in m:
@@ -185,11 +176,26 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
 
 
 def _read(m: dict, kinds: tuple[str, ...]) -> InputMessage:
-    kind = _read_envelope(m, kinds)
+    """The typed message of an input map whose kind is one of ``kinds``."""
+    k = m.get("k")
+    spec = INPUT_KEYS.get(k) if type(k) is str else None
+    v = m.get("v")
+    # The usual frame, checked in a few set operations: right version and
+    # kind, no key outside its kind's, a valid width if any. The readers
+    # index every required key, so a missing one raises KeyError, and
+    # _check_envelope then names it.
+    if not (
+        spec is not None and type(v) is int and v == PROTOCOL_VERSION and k in kinds and m.keys() <= spec.allowed
+        and ("iw" not in m or (type(m["iw"]) is int and m["iw"] in _INT_BY_WIDTH))
+    ):
+        k = _check_envelope(m, kinds)
     try:
-        return _INPUT_READERS[kind](m)
+        return _INPUT_READERS[k](m)
     except MessageError as exc:
-        raise ProtocolError(exc.reason, f"in a {kind!r} message, {exc.detail}") from None
+        raise ProtocolError(exc.reason, f"in a {k!r} message, {exc.detail}") from None
+    except KeyError:
+        _check_envelope(m, kinds)
+        raise
 
 
 def decode(data: bytes) -> InputMessage:
