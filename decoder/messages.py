@@ -368,7 +368,8 @@ class SpikeBatch:
                 u = _read_only(u.astype(_I64))
             else:
                 u = _vector("unit_id", u, np.int64)
-        _same_length("unit_id", u, t.size, "t_s")
+        if u.size != t.size:
+            _same_length("unit_id", u, t.size, "t_s")
         if not finite_non_decreasing(t):
             if not np.isfinite(t).all():
                 raise MessageError("bad_time", "t_s holds a NaN or infinite time; times are finite seconds")

@@ -80,23 +80,6 @@ class ProtocolError(ValueError):
         return f"{self.reason}: {self.detail}"
 
 
-def unpack_small(data: Any) -> dict | None:
-    """The map in a small ``bytes`` frame, or None for anything else (then :func:`unpack` names why).
-
-    The usual frame (a heartbeat, a spike batch, a frame) is small, and
-    msgpack bounds every length by the frame's own size when not told
-    otherwise, tighter than our limits for a frame this small; passing them
-    all costs more than unpacking a heartbeat.
-    """
-    if type(data) is not bytes or len(data) > SMALL_FRAME_BYTES:
-        return None
-    try:
-        m = msgpack.unpackb(data, max_ext_len=0)
-    except Exception:  # noqa: BLE001 - unpack() reads the bytes again to name the error
-        return None
-    return m if type(m) is dict else None
-
-
 def unpack(data: Any, max_bytes: int, limits: dict) -> dict:
     """The one MessagePack map a frame holds, or a ProtocolError naming what is wrong."""
     if type(data) is bytes:
@@ -110,6 +93,9 @@ def unpack(data: Any, max_bytes: int, limits: dict) -> dict:
         raise ProtocolError("oversized", f"the frame has {n_bytes} bytes, more than the limit of {max_bytes}")
     try:
         if n_bytes <= SMALL_FRAME_BYTES:
+            # msgpack bounds every length by the frame's own size when not told
+            # otherwise, tighter than our limits for a frame this small; passing
+            # them all costs more than unpacking a heartbeat.
             obj = msgpack.unpackb(data, max_ext_len=0)
         else:
             obj = msgpack.unpackb(data, raw=False, strict_map_key=True, **limits)

@@ -16,6 +16,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+import msgpack
 import numpy as np
 
 from decoder.messages import (
@@ -34,11 +35,11 @@ from rig_adapters.wire.framing import (
     INPUT_LIMITS,
     MAX_FRAME_BYTES,
     PROTOCOL_VERSION,
+    SMALL_FRAME_BYTES,
     ProtocolError,
     pack,
     read_kind,
     unpack,
-    unpack_small,
 )
 
 #: Input kinds, rig -> placeloop.
@@ -104,14 +105,16 @@ def _array(m: dict, key: str, wire: np.dtype) -> np.ndarray | list:
     """An array sent as bin of ``wire`` values (read in place) or as a list (checked by the message)."""
     value = m[key]
     if type(value) is bytes:
-        if len(value) % wire.itemsize:
+        # Every value takes at least a byte: a bin of at most MAX_BATCH bytes needs no count.
+        if len(value) > MAX_BATCH and len(value) // wire.itemsize > MAX_BATCH:
+            raise ProtocolError("oversized", f"{key!r} holds more than {MAX_BATCH} values")
+        try:
+            return np.frombuffer(value, wire)
+        except ValueError:  # numpy refuses a length that is not a whole number of values
             raise ProtocolError(
                 "bad_array",
                 f"{key!r} has {len(value)} bytes, not a whole number of {wire.itemsize}-byte values",
-            )
-        if len(value) // wire.itemsize > MAX_BATCH:
-            raise ProtocolError("oversized", f"{key!r} holds more than {MAX_BATCH} values")
-        return np.frombuffer(value, wire)
+            ) from None
     if type(value) is list:
         return value
     if type(value) is str:
@@ -175,29 +178,6 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
 }
 
 
-def _read(m: dict, kinds: tuple[str, ...]) -> InputMessage:
-    """The typed message of an input map whose kind is one of ``kinds``."""
-    k = m.get("k")
-    spec = INPUT_KEYS.get(k) if type(k) is str else None
-    v = m.get("v")
-    # The usual frame, checked in a few set operations: right version and
-    # kind, no key outside its kind's, a valid width if any. The readers
-    # index every required key, so a missing one raises KeyError, and
-    # _check_envelope then names it.
-    if not (
-        spec is not None and type(v) is int and v == PROTOCOL_VERSION and k in kinds and m.keys() <= spec.allowed
-        and ("iw" not in m or (type(m["iw"]) is int and m["iw"] in _INT_BY_WIDTH))
-    ):
-        k = _check_envelope(m, kinds)
-    try:
-        return _INPUT_READERS[k](m)
-    except MessageError as exc:
-        raise ProtocolError(exc.reason, f"in a {k!r} message, {exc.detail}") from None
-    except KeyError:
-        _check_envelope(m, kinds)
-        raise
-
-
 def decode(data: bytes) -> InputMessage:
     """Read one input frame into a typed message, validating everything once.
 
@@ -221,10 +201,35 @@ def decode(data: bytes) -> InputMessage:
     >>> decode(encode(Heartbeat(source="ephys", seq=4, t_s=12.5)))
     Heartbeat(source='ephys', seq=4, t_s=12.5)
     """
-    m = unpack_small(data)
-    if m is None:
+    m = None
+    if type(data) is bytes and len(data) <= SMALL_FRAME_BYTES:
+        # The usual small frame, with msgpack's own limits (see framing.unpack);
+        # bytes that fail here are unpacked again by unpack(), only to name the fault.
+        try:
+            m = msgpack.unpackb(data, max_ext_len=0)
+        except Exception:  # noqa: BLE001
+            m = None
+    if type(m) is not dict:
         m = unpack(data, MAX_FRAME_BYTES, INPUT_LIMITS)
-    return _read(m, INPUT_KINDS)
+    k = m.get("k")
+    spec = INPUT_KEYS.get(k) if type(k) is str else None
+    v = m.get("v")
+    # The usual frame, checked in a few set operations: right version, a
+    # known kind, no key outside its kind's, a valid width if any. The
+    # readers index every required key, so a missing one raises KeyError,
+    # and _check_envelope then names it.
+    if not (
+        spec is not None and type(v) is int and v == PROTOCOL_VERSION and m.keys() <= spec.allowed
+        and ("iw" not in m or (type(m["iw"]) is int and m["iw"] in _INT_BY_WIDTH))
+    ):
+        k = _check_envelope(m, INPUT_KINDS)
+    try:
+        return _INPUT_READERS[k](m)
+    except MessageError as exc:
+        raise ProtocolError(exc.reason, f"in a {k!r} message, {exc.detail}") from None
+    except KeyError:
+        _check_envelope(m, INPUT_KINDS)
+        raise
 
 
 # --------------------------------------------------------------------------
@@ -341,4 +346,6 @@ def encode_control_request(command: str, args: dict | None = None, *, source: st
 
 def decode_control_request(data: bytes) -> ControlCommand:
     """Read a control request; any other kind is refused with ``unknown_kind``."""
-    return _read(unpack(data, MAX_FRAME_BYTES, INPUT_LIMITS), ("control",))
+    read_kind(unpack(data, MAX_FRAME_BYTES, INPUT_LIMITS), ("control",))
+    # Requests are rare: the bytes are unpacked once more by the one reader of every input.
+    return decode(data)
