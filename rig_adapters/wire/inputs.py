@@ -148,7 +148,7 @@ def _read_frames(m: dict) -> TrackerFrames:
     ):
         # A tracker sends one frame per message: read it as floats, no arrays.
         t_s, x_cm, y_cm = _F64_THREE.unpack(t + x + y)
-        return TrackerFrames.one(m["src"], m["seq"], t_s, x_cm, y_cm, q[0] if q else None)
+        return TrackerFrames.one(m["src"], m["seq"], t_s, x_cm, y_cm, None if q is None else q[0])
     return TrackerFrames.from_columns(
         m["src"], m["seq"], _array(m, "t", _F64), _array(m, "x", _F64), _array(m, "y", _F64),
         _array(m, "hd", _F64) if "hd" in m else None,
