@@ -54,13 +54,12 @@ class _Keys:
     """The keys of one input kind: those it must have (in the order errors name them), and every one it may have."""
 
     required: tuple[str, ...]
-    required_set: frozenset[str]
     allowed: frozenset[str]
 
 
 def _keys(required: tuple[str, ...], optional: tuple[str, ...] = ()) -> _Keys:
     envelope = ("v", "k", "src", "seq")
-    return _Keys(envelope + required, frozenset(envelope + required), frozenset(envelope + required + optional + ("iw",)))
+    return _Keys(envelope + required, frozenset(envelope + required + optional + ("iw",)))
 
 
 #: Every key of every input kind (PROTOCOL.md, sections 2, 3 and 5).
