@@ -5,8 +5,13 @@ the pipeline never sees bytes. Every message carries the name of its source
 and that source's sequence number, so that gaps can be counted, and its
 timestamps are acquisition (data) time in float seconds on the source's clock.
 
-Arrays are validated once, in the constructors below, so that the core can
-trust them: right dtype, one dimension, equal lengths, finite times.
+Values are validated once, in the constructors below, so that the core can
+trust them: right dtype, one dimension, equal lengths, finite times, integers
+inside the signed 64-bit range. A refusal is a :class:`MessageError` whose
+``reason`` is one of :data:`REASONS`, the fixed categories the shell counts,
+and whose ``detail`` describes the offending value through :func:`describe`,
+which stays short whatever the value (a list nested a thousand deep, a map of
+a thousand entries, an integer of a thousand digits).
 """
 
 from __future__ import annotations
@@ -25,10 +30,29 @@ MAX_BATCH = 200_000
 
 SOURCE_KINDS = ("spikes", "tracker", "sync", "control")
 
+#: Every reason a message can be refused for, on the wire or in a constructor;
+#: the shell keeps one counter each (PROTOCOL.md, section 10).
+REASONS = (
+    "oversized",
+    "not_msgpack",
+    "not_a_map",
+    "bad_version",
+    "unknown_kind",
+    "missing_field",
+    "unknown_field",
+    "bad_field",
+    "bad_array",
+    "length_mismatch",
+    "bad_time",
+)
+
 _F64 = np.dtype(np.float64)
 _I64 = np.dtype(np.int64)
 _I32 = np.dtype(np.int32)
-_U8 = np.dtype(np.uint8)
+_INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
+#: Plain Python types a list of numbers may hold (bool is an int in Python, not here).
+_NUMBER_TYPES = (int, float, np.integer, np.floating)
+_NOT_NUMBERS = (bool, np.bool_)
 
 
 def _read_only(arr: np.ndarray) -> np.ndarray:
@@ -41,31 +65,191 @@ SINGLE_FRAME_QUALITY = tuple(_read_only(np.array([value], np.uint8)) for value i
 
 
 class MessageError(ValueError):
-    """A message that is well-formed on the wire but makes no sense as data."""
+    """A message whose values make no sense as data.
+
+    Parameters
+    ----------
+    reason : str
+        One of :data:`REASONS`, the category the shell counts it under.
+    detail : str
+        What was wrong and how to fix it, for a person; bounded in length.
+    """
+
+    def __init__(self, reason: str, detail: str) -> None:
+        assert reason in REASONS, reason
+        super().__init__(reason, detail)
+        self.reason = reason
+        self.detail = detail
+
+    def __str__(self) -> str:
+        return f"{self.reason}: {self.detail}"
+
+
+# --------------------------------------------------------------------------
+# Describing a value in an error message
+
+
+#: Longest description :func:`describe` returns, in characters.
+DESCRIBE_MAX_CHARS = 80
+#: Items of a list, or entries of a map, that :func:`describe` shows.
+_DESCRIBE_ITEMS = 4
+
+
+def _describe_leaf(value: Any, max_chars: int) -> str:
+    """One value without looking inside it: containers by kind and size."""
+    if value is None or isinstance(value, (bool, np.bool_, float, np.floating)):
+        return repr(value)
+    if isinstance(value, (int, np.integer)):
+        # repr of a 5000-digit integer raises (Python's int-to-str limit) and
+        # would be unreadable anyway.
+        bits = int(value).bit_length()
+        return repr(int(value)) if bits <= 64 else f"an integer of {bits} bits"
+    if isinstance(value, str):
+        text = repr(value[:max_chars])
+        return text if len(value) <= max_chars else text[:-1] + "...'"
+    if isinstance(value, (bytes, bytearray, memoryview)):
+        return f"{memoryview(value).nbytes} bytes"
+    if isinstance(value, (list, tuple)):
+        return f"[{len(value)} items]"
+    if isinstance(value, dict):
+        return f"{{{len(value)} entries}}"
+    if isinstance(value, np.ndarray):
+        return f"an array of shape {value.shape} and dtype {value.dtype}"
+    return f"a {type(value).__name__}"
+
+
+def describe(value: Any, max_chars: int = DESCRIBE_MAX_CHARS) -> str:
+    """A short description of any value, for an error message built from rig input.
+
+    Looks one level into a list or map (at most a few items, each described
+    without looking further) and never recurses, so that no value, however
+    deep or large, can make an error message raise or grow without bound.
+
+    Parameters
+    ----------
+    value : any
+    max_chars : int
+        Longest description returned.
+
+    Returns
+    -------
+    str
+        At most ``max_chars`` characters.
+
+    Examples
+    --------
+    >>> describe([1, "a", [2, [3]]])
+    "[1, 'a', [2 items]]"
+    """
+    if isinstance(value, (list, tuple)):
+        shown = ", ".join(_describe_leaf(item, 20) for item in value[:_DESCRIBE_ITEMS])
+        more = f", ... ({len(value)} items)" if len(value) > _DESCRIBE_ITEMS else ""
+        text = f"[{shown}{more}]"
+    elif isinstance(value, dict):
+        entries = []
+        for n, (key, item) in enumerate(value.items()):
+            if n == _DESCRIBE_ITEMS:
+                entries.append(f"... ({len(value)} entries)")
+                break
+            entries.append(f"{_describe_leaf(key, 20)}: {_describe_leaf(item, 20)}")
+        text = "{" + ", ".join(entries) + "}"
+    else:
+        text = _describe_leaf(value, max_chars)
+    return text if len(text) <= max_chars else text[: max_chars - 3] + "..."
+
+
+# --------------------------------------------------------------------------
+# Scalars and arrays
+
+
+def _count(name: str, value: Any) -> int:
+    """A non-negative integer inside the signed 64-bit range (sequence numbers, pulse ids)."""
+    if type(value) is int and 0 <= value <= _INT64_MAX:
+        return value
+    if isinstance(value, _NOT_NUMBERS) or not isinstance(value, (int, np.integer)) or not 0 <= value <= _INT64_MAX:
+        raise MessageError("bad_field", f"{name} must be an integer from 0 to 2**63 - 1, got {describe(value)}")
+    return int(value)
+
+
+def _real(name: str, value: Any) -> float:
+    """A number as a Python float (NaN and infinities included); other types are refused."""
+    if type(value) is float:
+        return value
+    if isinstance(value, _NOT_NUMBERS) or not isinstance(value, _NUMBER_TYPES):
+        raise MessageError("bad_field", f"{name} must be a number, got {describe(value)}")
+    try:
+        return float(value)
+    except OverflowError:
+        raise MessageError("bad_field", f"{name} is beyond the range of a float64, got {describe(value)}") from None
+
+
+def _time(name: str, value: Any) -> float:
+    t = _real(name, value)
+    if not math.isfinite(t):
+        raise MessageError("bad_time", f"{name} must be a finite time in seconds, got {t!r}")
+    return t
+
+
+def _name(name: str, value: Any) -> str:
+    if type(value) is not str or not value or len(value) > 64:
+        raise MessageError("bad_field", f"{name} must be a non-empty name of at most 64 characters, got {describe(value)}")
+    return value
+
+
+def _array_from_list(name: str, values: list | tuple, integers: bool) -> np.ndarray:
+    """A flat list of numbers as int64 (all Python ints, range-checked first) or float64."""
+    if not values:
+        return np.zeros(0, np.int64 if integers else np.float64)
+    types = set(map(type, values))
+    if not all(issubclass(t, _NUMBER_TYPES) and not issubclass(t, _NOT_NUMBERS) for t in types):
+        raise MessageError("bad_array", f"{name} must be a flat list of numbers, got {describe(values)}")
+    try:
+        if integers and all(issubclass(t, (int, np.integer)) for t in types):
+            # Checked before numpy sees them: numpy reads a mix of -1 and
+            # 2**64 - 1 as float64, which a cast to int64 would then wrap.
+            if min(values) < _INT64_MIN or max(values) > _INT64_MAX:
+                raise MessageError("bad_field", f"{name} holds an integer beyond the signed 64-bit range")
+            return np.array(values, dtype=np.int64)
+        return np.array(values, dtype=np.float64)
+    except OverflowError:
+        raise MessageError("bad_field", f"{name} holds a number beyond the range of a float64") from None
 
 
 def _vector(name: str, values: Any, dtype: Any) -> np.ndarray:
-    arr = np.asarray(values)
+    """A read-only, contiguous 1-D array of ``dtype`` (float64 or int64), or a MessageError."""
+    dtype = np.dtype(dtype)
+    integers = dtype.kind == "i"
+    if isinstance(values, (list, tuple)):
+        arr = _array_from_list(name, values, integers)
+    elif isinstance(values, np.ndarray):
+        arr = values
+    else:
+        raise MessageError("bad_array", f"{name} must be an array or a list of numbers, got {describe(values)}")
     if arr.ndim != 1:
-        raise MessageError(f"{name} must be one-dimensional, got shape {arr.shape}")
+        raise MessageError("bad_array", f"{name} must be one-dimensional, got shape {arr.shape}")
     if arr.size > MAX_BATCH:
-        raise MessageError(f"{name} has {arr.size} elements, more than the limit of {MAX_BATCH}")
-    if np.dtype(dtype).kind == "i" and arr.dtype.kind == "f":
-        # Checked before the cast, which would warn on NaN and wrap infinities.
-        if not np.all(np.isfinite(arr)) or not np.array_equal(arr, np.round(arr)):
-            raise MessageError(f"{name} must hold whole numbers")
-    try:
-        out = arr.astype(dtype, casting="same_kind" if arr.dtype.kind == np.dtype(dtype).kind else "unsafe")
-    except (TypeError, ValueError) as exc:
-        raise MessageError(f"{name} cannot be read as {np.dtype(dtype).name}: {exc}") from None
-    out = np.ascontiguousarray(out)
+        raise MessageError("oversized", f"{name} has {arr.size} elements, more than the limit of {MAX_BATCH}")
+    if arr.dtype.kind not in "iuf":
+        raise MessageError("bad_array", f"{name} must hold numbers, got dtype {arr.dtype}")
+    if integers and arr.size:
+        if arr.dtype.kind == "f":
+            # Checked before the cast, which would warn on NaN and wrap what lies beyond int64.
+            if not (np.all(np.isfinite(arr)) and np.array_equal(arr, np.round(arr))):
+                raise MessageError("bad_field", f"{name} must hold whole numbers")
+            if arr.min() < -(2.0**63) or arr.max() >= 2.0**63:
+                raise MessageError("bad_field", f"{name} holds a value beyond the signed 64-bit range")
+        elif arr.dtype.kind == "u" and arr.max() > _INT64_MAX:
+            raise MessageError("bad_field", f"{name} holds a value beyond the signed 64-bit range")
+    out = np.ascontiguousarray(arr, dtype=dtype)
+    if out is values and out.flags.writeable:
+        out = out.copy()  # never freeze the caller's own array
     out.setflags(write=False)
     return out
 
 
-def _finite_times(name: str, t_s: np.ndarray) -> None:
-    if not np.isfinite(t_s).all():
-        raise MessageError(f"{name} holds a NaN or infinite timestamp")
+def _same_length(name: str, arr: np.ndarray, n: int, of: str) -> None:
+    if arr.size != n:
+        raise MessageError("length_mismatch", f"{name} has {arr.size} values but {of} has {n}")
 
 
 @numba.njit(cache=True)
@@ -100,26 +284,18 @@ def _is_ready_vector(arr: Any, dtype: np.dtype) -> bool:
     )
 
 
-def _source(source: Any) -> str:
-    if type(source) is not str or not source or len(source) > 64:
-        raise MessageError(f"source must be a non-empty name of at most 64 characters, got {source!r}")
-    return source
-
-
 def _check_source_seq(msg: Any) -> None:
     """Check a message's ``source`` and ``seq`` where they stand; ``seq`` becomes a Python int."""
-    _source(msg.source)
+    source = msg.source
+    if type(source) is not str or not 0 < len(source) <= 64:
+        _name("source", source)
     seq = msg.seq
-    if type(seq) is not int or seq < 0:
-        object.__setattr__(msg, "seq", _seq(seq))
+    if type(seq) is not int or not 0 <= seq <= _INT64_MAX:
+        object.__setattr__(msg, "seq", _count("seq", seq))
 
 
-def _seq(seq: Any) -> int:
-    if type(seq) is int and seq >= 0:
-        return seq
-    if isinstance(seq, bool) or not isinstance(seq, (int, np.integer)) or seq < 0:
-        raise MessageError(f"seq must be a non-negative integer, got {seq!r}")
-    return int(seq)
+# --------------------------------------------------------------------------
+# The messages
 
 
 @dataclass(frozen=True, slots=True)
@@ -151,17 +327,17 @@ class SourceAnnounce:
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
-        if self.kind not in SOURCE_KINDS:
-            raise MessageError(f"kind must be one of {SOURCE_KINDS}, got {self.kind!r}")
-        if not isinstance(self.clock, str) or not self.clock:
-            raise MessageError(f"clock must be a non-empty name, got {self.clock!r}")
-        rate = float(self.sample_rate_hz)
-        if not np.isfinite(rate) or rate <= 0:
-            raise MessageError(f"sample_rate_hz must be positive, got {self.sample_rate_hz!r}")
+        if type(self.kind) is not str or self.kind not in SOURCE_KINDS:
+            raise MessageError("bad_field", f"kind must be one of {SOURCE_KINDS}, got {describe(self.kind)}")
+        if type(self.clock) is not str or not self.clock:
+            raise MessageError("bad_field", f"clock must be a non-empty name, got {describe(self.clock)}")
+        rate = _real("sample_rate_hz", self.sample_rate_hz)
+        if not (math.isfinite(rate) and rate > 0):
+            raise MessageError("bad_field", f"sample_rate_hz must be a positive rate in Hz, got {rate!r}")
         object.__setattr__(self, "sample_rate_hz", rate)
         ids = _vector("unit_ids", self.unit_ids, np.int64)
         if np.unique(ids).size != ids.size:
-            raise MessageError("unit_ids holds a repeated id")
+            raise MessageError("bad_field", "unit_ids holds a repeated id")
         object.__setattr__(self, "unit_ids", ids)
 
 
@@ -187,19 +363,70 @@ class SpikeBatch:
         t = self.t_s if _is_ready_vector(self.t_s, _F64) else _vector("t_s", self.t_s, np.float64)
         u = self.unit_id
         if not _is_ready_vector(u, _I64):
-            if type(u) is np.ndarray and u.dtype == _I32 and u.ndim == 1:
+            if type(u) is np.ndarray and u.dtype == _I32 and u.ndim == 1 and u.size <= MAX_BATCH:
                 # Ids come off the wire as int32: widening is always exact.
-                u = u.astype(_I64)
-                u.setflags(write=False)
+                u = _read_only(u.astype(_I64))
             else:
                 u = _vector("unit_id", u, np.int64)
-        if t.size != u.size:
-            raise MessageError(f"t_s has {t.size} spikes but unit_id has {u.size}")
+        if u.size != t.size:
+            _same_length("unit_id", u, t.size, "t_s")
         if not finite_non_decreasing(t):
-            _finite_times("t_s", t)
-            raise MessageError("spike times within a batch must not decrease")
+            if not np.isfinite(t).all():
+                raise MessageError("bad_time", "t_s holds a NaN or infinite time; times are finite seconds")
+            raise MessageError("bad_time", "spike times within a batch must not decrease")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "unit_id", u)
+
+
+def stored_frame(t_s: Any, x_cm: Any, y_cm: Any, quality: Any = None) -> tuple[float, float, float, int]:
+    """The rule for one tracker frame: what a frame (t, x, y, quality) is stored as.
+
+    A frame is lost when a coordinate is NaN or its quality is 0; it is then
+    stored with NaN coordinates and quality 0. Without a quality a seen frame
+    gets 1. This is the only place the rule is written: :class:`TrackerFrames`
+    applies it to each frame of a batch and to the single frame of
+    :meth:`TrackerFrames.one`.
+
+    Parameters
+    ----------
+    t_s : float
+        Frame time, s; must be finite.
+    x_cm, y_cm : float
+        Position, cm; NaN where the tracker lost the animal, never infinite.
+    quality : int, optional
+        0 (lost) to 255 (most confident).
+
+    Returns
+    -------
+    (t_s, x_cm, y_cm, quality) : (float, float, float, int)
+
+    Raises
+    ------
+    MessageError
+        ``bad_time`` for a NaN or infinite time, ``bad_field`` for an
+        infinite coordinate, a quality outside 0..255 or a value that is not
+        a number.
+
+    Examples
+    --------
+    >>> stored_frame(1.5, 10.0, float("nan"), 7)
+    (1.5, nan, nan, 0)
+    """
+    if not (type(t_s) is float and type(x_cm) is float and type(y_cm) is float):
+        t_s, x_cm, y_cm = _real("t_s", t_s), _real("x_cm", x_cm), _real("y_cm", y_cm)
+    if not math.isfinite(t_s):
+        raise MessageError("bad_time", f"a frame time must be finite seconds, got {t_s!r}")
+    if math.isinf(x_cm) or math.isinf(y_cm):
+        raise MessageError("bad_field", "a frame holds an infinite coordinate; send NaN for a lost frame")
+    if quality is None:
+        quality = 1
+    elif type(quality) is not int or not 0 <= quality <= 255:
+        if isinstance(quality, _NOT_NUMBERS) or not isinstance(quality, (int, np.integer)) or not 0 <= quality <= 255:
+            raise MessageError("bad_field", f"a frame's quality must be an integer from 0 to 255, got {describe(quality)}")
+        quality = int(quality)
+    if quality == 0 or x_cm != x_cm or y_cm != y_cm:
+        return t_s, math.nan, math.nan, 0
+    return t_s, x_cm, y_cm, quality
 
 
 @dataclass(frozen=True, slots=True)
@@ -215,8 +442,9 @@ class TrackerFrames:
     head_dir_rad : ndarray of float64, shape (n,) or None
         Head direction, NaN where unknown.
     quality : ndarray of uint8, shape (n,)
-        0 for a lost frame, 1..255 for increasing confidence. A frame with
-        quality 0 or a NaN coordinate is treated as lost.
+        0 for a lost frame, 1..255 for increasing confidence. Each frame is
+        stored by :func:`stored_frame`: a frame with quality 0 or a NaN
+        coordinate is lost, NaN with quality 0.
     """
 
     source: str
@@ -228,107 +456,83 @@ class TrackerFrames:
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
-        if not self._take_one_frame():
-            self._take_frames()
+        xy = self.xy_cm
+        if not (type(xy) is np.ndarray and xy.ndim == 2 and xy.shape[1] == 2 and xy.dtype.kind in "iuf"):
+            if isinstance(xy, (list, tuple)) and not all(type(row) in (list, tuple) for row in xy):
+                raise MessageError("bad_array", f"xy_cm must be a list of (x, y) pairs, got {describe(xy)}")
+            try:
+                xy = np.asarray(xy, dtype=np.float64)
+            except (TypeError, ValueError, OverflowError):
+                raise MessageError("bad_array", f"xy_cm must be an (n, 2) array of numbers, got {describe(xy)}") from None
+            if xy.ndim != 2 or xy.shape[1] != 2:
+                raise MessageError("bad_array", f"xy_cm must have shape (n, 2), got {xy.shape}")
+        self._take_columns(self.t_s, xy[:, 0], xy[:, 1], self.head_dir_rad, self.quality)
+
+    @classmethod
+    def from_columns(cls, source: str, seq: int, t_s: Any, x_cm: Any, y_cm: Any,
+                     head_dir_rad: Any = None, quality: Any = None) -> TrackerFrames:
+        """Frames from one array (or list) per quantity, as the wire carries them.
+
+        Parameters
+        ----------
+        t_s, x_cm, y_cm : array_like of float, shape (n,)
+        head_dir_rad : array_like of float, shape (n,), optional
+        quality : array_like of int, shape (n,), optional
+        """
+        self = object.__new__(cls)
+        object.__setattr__(self, "source", source)
+        object.__setattr__(self, "seq", seq)
+        _check_source_seq(self)
+        self._take_columns(t_s, x_cm, y_cm, head_dir_rad, quality)
+        return self
 
     @classmethod
     def one(cls, source: str, seq: int, t_s: float, x_cm: float, y_cm: float,
             quality: int | None = None) -> TrackerFrames:
-        """One frame from Python scalars: what the constructor makes of 1-element arrays, for less.
+        """One frame from scalars: :func:`stored_frame` on the frame, without arrays to check.
 
         A tracker sends one frame per message, 30 to 60 times a second, and
-        the wire reader has the values as floats already; building the
-        message from them skips the array checks. Values the one-frame path
-        does not take (an infinite coordinate, a bad quality, ...) go through
-        the constructor, which raises its usual :class:`MessageError`.
+        the wire reader has the values as floats already.
         """
-        if not (
-            type(t_s) is float and type(x_cm) is float and type(y_cm) is float and math.isfinite(t_s)
-            and not math.isinf(x_cm) and not math.isinf(y_cm)
-            and (quality is None or (type(quality) is int and 0 <= quality <= 255))
-        ):
-            q = None if quality is None else np.array([quality])
-            return cls(source, seq, np.array([t_s], np.float64), np.array([[x_cm, y_cm]], np.float64), None, q)
+        t_s, x_cm, y_cm, quality = stored_frame(t_s, x_cm, y_cm, quality)
         self = object.__new__(cls)
-        object.__setattr__(self, "source", _source(source))
-        object.__setattr__(self, "seq", _seq(seq))
+        object.__setattr__(self, "source", _name("source", source))
+        object.__setattr__(self, "seq", _count("seq", seq))
         object.__setattr__(self, "head_dir_rad", None)
-        self._store_one(t_s, x_cm, y_cm, quality)
-        return self
-
-    def _take_one_frame(self) -> bool:
-        """Store a single float64 frame through :meth:`_store_one`; False if not that case.
-
-        Anything unusual (other dtypes, several frames, head direction, an
-        invalid value) goes to ``_take_frames``, which gives the same result
-        and the error messages.
-        """
-        t, xy, q = self.t_s, self.xy_cm, self.quality
-        if not (
-            type(t) is np.ndarray and t.shape == (1,) and t.dtype == _F64
-            and type(xy) is np.ndarray and xy.shape == (1, 2) and xy.dtype == _F64
-            and self.head_dir_rad is None
-            and (q is None or (type(q) is np.ndarray and q.shape == (1,) and q.dtype == _U8))
-        ):
-            return False
-        t_s, x, y = t.item(0), xy.item(0), xy.item(1)
-        if not math.isfinite(t_s) or math.isinf(x) or math.isinf(y):
-            return False
-        self._store_one(t_s, x, y, None if q is None else q.item(0))
-        return True
-
-    def _store_one(self, t_s: float, x_cm: float, y_cm: float, quality: int | None) -> None:
-        """Store one checked frame (finite time, finite or NaN coordinates, quality 0..255 or None)."""
-        seen = x_cm == x_cm and y_cm == y_cm
-        if quality is None:
-            quality = 1 if seen else 0
-        if quality == 0 or not seen:
-            x_cm = y_cm = math.nan
-            quality = 0
-        # One read-only buffer for time and position: numpy's constructors cost more than the checks.
-        txy = np.array((t_s, x_cm, y_cm))
-        txy.setflags(write=False)
+        # One read-only buffer for time and position: numpy's constructors cost more than the rule.
+        txy = _read_only(np.array((t_s, x_cm, y_cm)))
         object.__setattr__(self, "t_s", txy[:1])
         object.__setattr__(self, "xy_cm", txy[1:].reshape(1, 2))
         object.__setattr__(self, "quality", SINGLE_FRAME_QUALITY[quality])
+        return self
 
-    def _take_frames(self) -> None:
-        t = _vector("t_s", self.t_s, np.float64)
-        _finite_times("t_s", t)
-        if t.size > 1 and np.any(np.diff(t) <= 0):
-            raise MessageError("frame times within a message must increase")
-        xy = np.asarray(self.xy_cm, dtype=np.float64)
-        if xy.shape != (t.size, 2):
-            raise MessageError(f"xy_cm must have shape ({t.size}, 2), got {xy.shape}")
-        if np.any(np.isinf(xy)):
-            raise MessageError("xy_cm holds an infinite coordinate; send NaN for a lost frame")
-        xy = np.ascontiguousarray(xy)
-        if self.quality is None:
-            q = np.where(np.all(np.isfinite(xy), axis=1), 1, 0).astype(np.uint8)
-        else:
-            q = _vector("quality", self.quality, np.int64)
-            if q.size != t.size or np.any((q < 0) | (q > 255)):
-                raise MessageError("quality must give one value in 0..255 per frame")
-            q = q.astype(np.uint8)
-        lost = (q == 0) | ~np.all(np.isfinite(xy), axis=1)
-        if np.any(lost):
-            xy = xy.copy()
-            xy[lost] = np.nan
-            q = q.copy()
-            q[lost] = 0
-        xy.setflags(write=False)
-        q.setflags(write=False)
+    def _take_columns(self, t_s: Any, x_cm: Any, y_cm: Any, head_dir_rad: Any, quality: Any) -> None:
+        """Check the columns' shapes, store every frame by :func:`stored_frame`, and the head direction."""
+        t = _vector("t_s", t_s, np.float64)
+        x = _vector("x_cm", x_cm, np.float64)
+        y = _vector("y_cm", y_cm, np.float64)
+        _same_length("x_cm", x, t.size, "t_s")
+        _same_length("y_cm", y, t.size, "t_s")
+        q = [None] * t.size
+        if quality is not None:
+            q_arr = _vector("quality", quality, np.int64)
+            _same_length("quality", q_arr, t.size, "t_s")
+            q = q_arr.tolist()
+        frames = [stored_frame(*frame) for frame in zip(t.tolist(), x.tolist(), y.tolist(), q)]
+        times = [frame[0] for frame in frames]
+        if any(later <= earlier for earlier, later in zip(times, times[1:])):
+            raise MessageError("bad_time", "frame times within a message must increase")
+        stored = np.array(frames, dtype=np.float64).reshape(t.size, 4)
         hd = None
-        if self.head_dir_rad is not None:
-            hd = _vector("head_dir_rad", self.head_dir_rad, np.float64)
-            if hd.size != t.size:
-                raise MessageError("head_dir_rad must give one value per frame")
+        if head_dir_rad is not None:
+            hd = _vector("head_dir_rad", head_dir_rad, np.float64)
+            _same_length("head_dir_rad", hd, t.size, "t_s")
             if np.any(np.isinf(hd)):
-                raise MessageError("head_dir_rad holds an infinite angle; send NaN where unknown")
-        object.__setattr__(self, "t_s", t)
-        object.__setattr__(self, "xy_cm", xy)
+                raise MessageError("bad_field", "head_dir_rad holds an infinite angle; send NaN where unknown")
+        object.__setattr__(self, "t_s", _read_only(np.ascontiguousarray(stored[:, 0])))
+        object.__setattr__(self, "xy_cm", _read_only(np.ascontiguousarray(stored[:, 1:3])))
         object.__setattr__(self, "head_dir_rad", hd)
-        object.__setattr__(self, "quality", q)
+        object.__setattr__(self, "quality", _read_only(stored[:, 3].astype(np.uint8)))
 
 
 @dataclass(frozen=True, slots=True)
@@ -342,12 +546,9 @@ class Heartbeat:
     def __post_init__(self) -> None:
         _check_source_seq(self)
         t = self.t_s
-        # Half of all messages are heartbeats: a float, the usual type, needs no conversion.
-        if type(t) is not float:
-            t = float(t)
-            object.__setattr__(self, "t_s", t)
-        if not math.isfinite(t):
-            raise MessageError("heartbeat t_s must be finite")
+        # Half of all messages are heartbeats: a finite float, the usual case, is taken as it is.
+        if type(t) is not float or not math.isfinite(t):
+            object.__setattr__(self, "t_s", _time("t_s", t))
 
 
 @dataclass(frozen=True, slots=True)
@@ -364,11 +565,8 @@ class SyncPulse:
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
-        t = float(self.t_s)
-        if not math.isfinite(t):
-            raise MessageError("sync t_s must be finite")
-        object.__setattr__(self, "t_s", t)
-        object.__setattr__(self, "pulse_id", _seq(self.pulse_id))
+        object.__setattr__(self, "t_s", _time("t_s", self.t_s))
+        object.__setattr__(self, "pulse_id", _count("pulse_id", self.pulse_id))
 
 
 CONTROL_COMMANDS = (
@@ -382,6 +580,20 @@ CONTROL_COMMANDS = (
     "stall",
 )
 
+#: Most arguments one control command may carry.
+MAX_CONTROL_ARGS = 64
+#: Longest string argument of a control command, in characters (a file path, a reason).
+MAX_ARG_CHARS = 4096
+
+
+def _plain_value(value: Any) -> bool:
+    """Whether a control argument is a plain value: nil, bool, number in range, or a string not too long."""
+    if value is None or type(value) in (bool, float):
+        return True
+    if type(value) is str:
+        return len(value) <= MAX_ARG_CHARS
+    return type(value) is int and _INT64_MIN <= value <= _INT64_MAX
+
 
 @dataclass(frozen=True, slots=True)
 class ControlCommand:
@@ -390,6 +602,9 @@ class ControlCommand:
     Control commands are recorded and replayed like any input, so that a
     replay passes through the same session states at the same data time.
     ``stall`` is raised by the shell's watchdog when a stream goes quiet.
+    ``args`` maps names to plain values (None, bool, int, float, str of at
+    most :data:`MAX_ARG_CHARS`), so that nothing a requester sends can be
+    nested or unbounded.
     """
 
     source: str
@@ -399,10 +614,17 @@ class ControlCommand:
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
-        if self.command not in CONTROL_COMMANDS:
-            raise MessageError(f"command must be one of {CONTROL_COMMANDS}, got {self.command!r}")
-        if not isinstance(self.args, dict):
-            raise MessageError("args must be a map")
+        if type(self.command) is not str or self.command not in CONTROL_COMMANDS:
+            raise MessageError("bad_field", f"command must be one of {CONTROL_COMMANDS}, got {describe(self.command)}")
+        args = self.args
+        if not isinstance(args, dict) or len(args) > MAX_CONTROL_ARGS:
+            raise MessageError("bad_field", f"args must be a map of at most {MAX_CONTROL_ARGS} entries, got {describe(args)}")
+        for key, value in args.items():
+            if type(key) is not str or not _plain_value(value):
+                raise MessageError(
+                    "bad_field",
+                    f"args must map names to plain values (nil, bool, number, string), got {describe(key)}: {describe(value)}",
+                )
 
 
 InputMessage = SourceAnnounce | SpikeBatch | TrackerFrames | Heartbeat | SyncPulse | ControlCommand

@@ -183,9 +183,22 @@ def test_decode_accepts_a_zmq_frame_buffer():
     assert decode(zmq.Frame(data)) == Heartbeat("ephys", 1, 2.0)
 
 
-def test_unknown_keys_are_ignored():
-    # PROTOCOL.md section 2: rigs may add their own keys
+def test_a_rigs_own_keys_are_ignored():
+    # PROTOCOL.md section 2: rigs may add their own keys, prefixed x_
     assert decode(pack(VALID_MAPS["heartbeat"] | {"x_myrig_temp_c": 36.6})) == Heartbeat("ephys", 9, 12.5)
+    assert decode(pack(VALID_MAPS["heartbeat"] | {"x_nested": [[[1]]], "iw": 8})) == Heartbeat("ephys", 9, 12.5)
+
+
+@pytest.mark.parametrize("kind", list(VALID_MAPS))
+def test_unknown_keys_are_refused(kind):
+    # PROTOCOL.md section 2: a key the kind does not have, without the x_ prefix, is refused and counted
+    assert reason_of(pack(VALID_MAPS[kind] | {"temp_c": 36.6})) == "unknown_field"
+    assert reason_of(pack(VALID_MAPS[kind] | {"hd ": [0.0, 0.0]})) == "unknown_field"
+
+
+def test_keys_of_another_kind_are_unknown():
+    assert reason_of(pack(spikes_map(hd=[0.0, 0.0, 0.0]))) == "unknown_field"
+    assert reason_of(pack(VALID_MAPS["heartbeat"] | {"pulse": 3})) == "unknown_field"
 
 
 # ----------------------------------------------------------------- bad input
@@ -257,6 +270,11 @@ def test_units_are_optional_for_a_tracker_announce():
         ("spikes", "seq", True),
         ("spikes", "iw", 3),
         ("spikes", "iw", [4]),
+        ("spikes", "iw", True),
+        ("heartbeat", "iw", 16),
+        ("frames", "iw", "8"),
+        ("spikes", "seq", 2**64 - 1),
+        ("sync", "pulse", 2**63),
         ("announce", "role", "camera"),
         ("announce", "rate_hz", "30k"),
         ("announce", "rate_hz", 0),
@@ -268,6 +286,8 @@ def test_units_are_optional_for_a_tracker_announce():
         ("heartbeat", "t", "12.5"),
         ("control", "cmd", "self_destruct"),
         ("control", "args", [1, 2]),
+        ("control", "args", {"path": ["nested", ["list"]]}),
+        ("control", "args", {"n": 2**64 - 1}),
         ("frames", "q", [0, 256]),
         ("frames", "x", [float("inf"), 1.0]),
         ("frames", "y", [1.0, float("-inf")]),
@@ -286,6 +306,7 @@ def test_wrong_types_and_ranges_are_bad_fields(kind, key, value):
         [0.1, "a", 0.3],
         [[0.1], [0.2], [0.3]],
         [0.1, None, 0.3],
+        [0.1, True, 0.3],                    # MessagePack true is no number here
         {"0": 0.1},
         7.0,
     ],
@@ -294,8 +315,26 @@ def test_malformed_arrays(value):
     assert reason_of(pack(spikes_map(t=value))) == "bad_array"
 
 
-def test_unit_ids_beyond_int64_are_bad_arrays():
-    assert reason_of(pack(spikes_map(t=[0.1], u=[2**64 - 1]))) == "bad_array"
+@pytest.mark.parametrize(
+    "u",
+    [
+        [2**64 - 1],            # msgpack uint 64 (MessagePack spec): beyond int64, numpy would read it as uint64
+        [-1, 2**64 - 1],        # numpy reads this mix as float64, and a cast to int64 would wrap
+        [1.0, 2.0**63],         # a whole float just past int64's largest value, 2**63 - 1
+        [-(2.0**64)],
+    ],
+)
+def test_unit_ids_beyond_int64_are_refused_never_wrapped(u):
+    # int64 holds -2**63 .. 2**63 - 1 (two's complement, 64 bits): anything outside is refused, not wrapped
+    m = spikes_map(t=[0.1] * len(u), u=u)
+    assert reason_of(pack(m)) == "bad_field"
+    assert reason_of(pack(VALID_MAPS["announce"] | {"units": u})) == "bad_field"
+
+
+def test_the_largest_int64_unit_id_is_kept_exactly():
+    # the int64 range's own ends (two's complement, 64 bits) are valid ids and stay exact
+    ids = [-(2**63), 2**63 - 1]
+    assert decode(pack(spikes_map(t=[0.1, 0.2], u=ids))).unit_id.tolist() == ids
 
 
 @pytest.mark.parametrize(
@@ -663,24 +702,6 @@ def test_single_bad_frame_as_bin_keeps_its_reason(t, x, reason):
 
 
 @pytest.mark.parametrize(
-    "m",
-    [
-        VALID_MAPS["heartbeat"],
-        spikes_map(t=np.array([0.001, 0.002, 0.002]).tobytes(), u=np.array([3, 7, 3], np.int32).tobytes()),
-        spikes_map(t=np.array([0.5]).tobytes(), u=np.array([2**40], np.int64).tobytes(), iw=8),
-        spikes_map(t=b"", u=b""),
-        frames_map(t=struct.pack("<d", 1.0), x=struct.pack("<d", 3.0), y=struct.pack("<d", 4.0), q=b"\x05"),
-    ],
-)
-def test_the_quick_reader_gives_what_the_general_reader_gives(m):
-    # The usual heartbeat, spike batch and single frame take protocol._quick; the
-    # general readers are the reference for what the message must hold.
-    from rig_adapters.wire.protocol import _INPUT_DECODERS
-
-    assert_same(decode(pack(m)), _INPUT_DECODERS[m["k"]](msgpack.unpackb(pack(m))))
-
-
-@pytest.mark.parametrize(
     "m, reason",
     [
         (VALID_MAPS["heartbeat"] | {"t": float("inf")}, "bad_time"),
@@ -691,5 +712,5 @@ def test_the_quick_reader_gives_what_the_general_reader_gives(m):
         (spikes_map(t=np.array([0.2]).tobytes(), u=np.array([3, 7], np.int32).tobytes()), "length_mismatch"),
     ],
 )
-def test_what_the_quick_reader_refuses_keeps_its_reason(m, reason):
+def test_bin_arrays_and_floats_refused_with_their_reason(m, reason):
     assert reason_of(pack(m)) == reason
