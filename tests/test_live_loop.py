@@ -104,7 +104,8 @@ def _bad_frames():
     inf_frame = msgpack.packb({"v": 1, "k": "frames", "src": "tracker", "seq": 10**6, "t": [1.0],
                                "x": [float("inf")], "y": [1.0]})
     return [
-        (os.urandom(64), "not_msgpack"),
+        # 0xc1 is the one byte the MessagePack specification never uses: not a value, whatever follows.
+        (b"\xc1" + os.urandom(63), "not_msgpack"),
         (msgpack.packb([1, 2, 3]), "not_a_map"),
         (wrong_version, "bad_version"),
         (msgpack.packb({"v": 1, "k": "teleport", "src": "ephys", "seq": 1}), "unknown_kind"),

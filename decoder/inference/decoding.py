@@ -200,6 +200,30 @@ class RandomWalk:
         out[rows] = weighted[rows] / norm[rows, np.newaxis]
         return out
 
+    def predict(self, p: np.ndarray) -> np.ndarray:
+        """Move a posterior one step, ``p @ T``, with the plain numpy twins.
+
+        The decoder's compiled step predicts inside ``decode_step``; this is
+        the reference path that the offline filter and calibration use.
+
+        Parameters
+        ----------
+        p : ndarray of float64, shape (n_bins,)
+            Distribution over bins, 0 outside the valid bins.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_bins,)
+            The predicted distribution; sums to ``p.sum()``.
+        """
+        p = np.ascontiguousarray(p, dtype=np.float64)
+        out = np.empty(self.environment.n_bins)
+        if self._transition is not None:
+            return _kernels.predict_dense_numpy(p, self._transition, out)
+        return _kernels.predict_grid_numpy(
+            p, self._ny, self._nx, self._kernel_1d, self._mask_f, self._inv_norm, out, self._scratch
+        )
+
     def dense_matrix(self) -> np.ndarray:
         """The transition matrix ``T`` (from row bin to column bin), plain numpy.
 

@@ -26,7 +26,7 @@ import stat
 
 import numpy as np
 
-from decoder.messages import ControlCommand, MessageError
+from decoder.messages import ControlCommand
 from decoder.session.outputs import Notice, StepOutput
 from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import ModelFileError, PlaceModel
