@@ -1,1 +1,1 @@
-"""placeloop's pure core: environments, place model, decoding, binning, zones, triggers, pipeline."""
+"""placeloop's pure core: typed messages in; decoded steps, events and notices out (space, inference, encoding, session)."""

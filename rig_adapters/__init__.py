@@ -1,1 +1,1 @@
-"""placeloop's shell: wire protocol, ZeroMQ ingest and publish, recorder, simulated rig, CLI."""
+"""placeloop's shell: the wire, the live loop, recorded sessions, offline tools, the simulated rig, the monitor, the command."""

@@ -1,0 +1,1 @@
+"""Models learned in the session: the place model, its file, its cross-validation and readiness, the movement model and calibration."""

@@ -1,0 +1,1 @@
+"""The live monitor: a local web page fed by the loop's state stream."""

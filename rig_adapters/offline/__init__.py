@@ -1,0 +1,1 @@
+"""Tools over recorded sessions: parameter sweeps and the HTML report."""

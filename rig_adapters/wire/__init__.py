@@ -1,0 +1,1 @@
+"""The wire: MessagePack bytes to typed messages and back, and ingest into the pipeline (PROTOCOL.md)."""
