@@ -26,13 +26,27 @@ from pathlib import Path
 
 from decoder.config import ConfigError, load_config
 from rig_adapters.console import CAUTION, setup_logging
-from rig_adapters.monitor import server as monitor_server
-from rig_adapters.offline import report, sweep
 
 log = logging.getLogger("placeloop")
 
 #: Subcommands handed whole to a module's own ``main(argv)``.
-DELEGATED = {"monitor": monitor_server.main, "sweep": sweep.main, "report": report.main}
+DELEGATED = ("monitor", "sweep", "report")
+
+
+def _delegated_main(name: str):
+    """The ``main(argv)`` of a subcommand that parses its own options.
+
+    Imported on demand: ``placeloop run`` must not pay for matplotlib, dask
+    and aiohttp in its memory and start-up time.
+    """
+    if name == "monitor":
+        from rig_adapters.monitor.server import main
+    elif name == "sweep":
+        from rig_adapters.offline.sweep import main
+    else:
+        from rig_adapters.offline.report import main
+    return main
+
 
 RUN_DESCRIPTION = """\
 The decoder's live loop: rig in, decoding, trigger events out.
@@ -301,7 +315,7 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     if argv[:1] and argv[0] in DELEGATED:
         # These subcommands parse their own options.
-        return DELEGATED[argv[0]](argv[1:])
+        return _delegated_main(argv[0])(argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
     setup_logging(args.verbose)
