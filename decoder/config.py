@@ -292,9 +292,9 @@ class SessionSettings:
     false_margin_cm: float = 10.0
     #: Data time may jump at most this far past the spike stream's newest time (s). A spike-source
     #: message beyond it is refused (counter ``time_jumps``) instead of moving the session's clock,
-    #: and a tracker frame beyond it is dropped (``frames_dropped_ahead``); ten refused spike-source
-    #: messages in a row that agree with each other mean the clock truly moved: the session follows
-    #: it and the triggers disarm. A rig sends a heartbeat at least once per decoding step
+    #: and a tracker frame beyond it is dropped (``frames_dropped_ahead``); refused spike-source
+    #: messages in a row that agree with each other (``decoder.session.streams.RESYNC_AFTER_MESSAGES``)
+    #: mean the clock truly moved: the session follows it and the triggers disarm. A rig sends a heartbeat at least once per decoding step
     #: (PROTOCOL.md), so seconds without data time moving mean an outage or a corrupt stamp.
     max_time_jump_s: float = 5.0
 
