@@ -290,12 +290,20 @@ class SessionSettings:
     cross_validate: bool = True
     #: An event counts as false when the true (or tracked) position is farther than this from its zone (cm).
     false_margin_cm: float = 10.0
+    #: Data time may jump at most this far past the spike stream's newest time (s). A spike-source
+    #: message beyond it is refused (counter ``time_jumps``) instead of moving the session's clock,
+    #: and a tracker frame beyond it is dropped (``frames_dropped_ahead``); refused spike-source
+    #: messages in a row that agree with each other (``decoder.session.streams.RESYNC_AFTER_MESSAGES``)
+    #: mean the clock truly moved: the session follows it and the triggers disarm. A rig sends a heartbeat at least once per decoding step
+    #: (PROTOCOL.md), so seconds without data time moving mean an outage or a corrupt stamp.
+    max_time_jump_s: float = 5.0
 
     def __post_init__(self) -> None:
         if self.learn_s < 0:
             raise ConfigError(f"[session] learn_s must be >= 0, got {self.learn_s}")
         if self.false_margin_cm < 0:
             raise ConfigError(f"[session] false_margin_cm must be >= 0, got {self.false_margin_cm}")
+        _positive("session", max_time_jump_s=self.max_time_jump_s)
 
 
 @dataclass(frozen=True)

@@ -231,6 +231,11 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
     assert summary["input"]["bad_messages"] == len(bad)
     # The status polls were answered without a sequence number: no gap on the control stream.
     assert summary["input"]["sources"]["control"]["gaps"] == 0
+    # Rejected frames whose envelope was readable are counted for their source, apart from gaps:
+    # the ones numbered 10**6 took that number, and the next good frame carried on from before it.
+    sources = summary["input"]["sources"]
+    assert sources["ephys"]["rejected"] >= 5 and sources["tracker"]["rejected"] == 1
+    assert sources["ephys"]["gaps"] < 1000 and sources["ephys"]["resyncs"] >= 1
     assert summary["input"]["control_refused"] == {}
     # Each bad message is logged with its reason.
     assert stderr.count("bad rig message") + stderr.count("refused a control command") == len(bad)

@@ -5,8 +5,10 @@ clocks, counters, determinism). The one figure of merit, the decoding error,
 is a sanity bound only.
 """
 
+import copy
 import dataclasses
 
+import msgpack
 import numpy as np
 import pytest
 import tomli_w
@@ -15,6 +17,7 @@ from decoder.config import parse_config
 from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.streams import RESYNC_AFTER_MESSAGES
 from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
 
 CONFIG = {
@@ -101,7 +104,8 @@ def test_duplicated_and_unknown_inputs_are_counted_not_used(session_messages):
     extra.insert(spikes[-1], unknown)
     pipeline, _ = _run(config, extra)
     assert pipeline.counters["unknown_units"] == 1
-    assert pipeline.health.total_gaps > 0   # the jump in seq is a gap
+    # Its seq jumps by 10**9 and the next batch carries on from before: one bad number, no lost data.
+    assert pipeline.health.total_gaps == 0 and pipeline.health.sources["ephys"].resyncs == 1
 
 
 def test_a_time_jump_is_refused_and_does_not_run_away(session_messages):
@@ -215,3 +219,127 @@ def test_a_restarted_spike_source_starts_its_steps_afresh_disarmed(session_messa
     out = pipeline.on_message(SpikeBatch("ephys", 0, [0.2], [101]))
     assert [n.kind for n in out if isinstance(n, Notice)][:2] == ["source_restart", "disarmed"]
     assert not pipeline.bank.armed and pipeline.spike_watermark_s == 0.2
+
+
+# -- streams that jump (issue 17, item 4) and what a gap means (item 6) --------------
+# Facts of the trade behind these checks (common practice): a ZeroMQ PUB/SUB link over TCP
+# delivers one publisher's messages in order or not at all, so a sequence number out of line
+# is a lost message (a gap) or a corrupt number; and a clock that stamps acquisition data
+# never leaps ahead by seconds between two messages sent milliseconds apart.
+
+
+def _index(messages, kind, source, after_s):
+    return next(i for i, m in enumerate(messages) if isinstance(m, kind) and m.source == source
+                and np.size(m.t_s) and np.min(m.t_s) > after_s)
+
+
+def _steps(outputs):
+    return [o for o in outputs if isinstance(o, StepOutput)]
+
+
+def test_a_spike_batch_whose_seq_jumps_by_a_million_resynchronises(session_messages):
+    config, messages = session_messages
+    clean, clean_out = _run(config, messages)
+    i = _index(messages, SpikeBatch, "ephys", 140.0)
+    # One corrupt number: the source carries on from before it.
+    corrupt = messages[:i] + [dataclasses.replace(messages[i], seq=messages[i].seq + 10**6)] + messages[i + 1:]
+    pipeline, outputs = _run(config, corrupt)
+    assert pipeline.digest == clean.digest and len(_steps(outputs)) == len(_steps(clean_out))
+    assert pipeline.bank.armed
+    h = pipeline.health.sources["ephys"]
+    assert (h.gaps, h.resyncs, h.stale) == (0, 1, 0)
+    # A source that really moved its numbering on: the numbers skipped are a gap, nothing is dropped.
+    shifted = messages[:i] + [dataclasses.replace(m, seq=m.seq + 10**6) if m.source == "ephys" else m
+                              for m in messages[i:]]
+    pipeline, outputs = _run(config, shifted)
+    assert pipeline.digest == clean.digest
+    assert pipeline.health.sources["ephys"].gaps == 10**6 and pipeline.counters["stale_messages"] == 0
+
+
+def test_a_tracker_frame_stamped_1000_s_ahead_is_dropped_and_counted(session_messages):
+    config, messages = session_messages
+    _, clean_out = _run(config, messages)
+    i = _index(messages, TrackerFrames, "tracker", 140.0)
+    frame = messages[i]
+    bogus = dataclasses.replace(frame, t_s=frame.t_s + 1000.0)
+    pipeline, outputs = _run(config, messages[:i] + [bogus] + messages[i + 1:])
+    assert pipeline.counters["frames_dropped_ahead"] == frame.t_s.size
+    assert pipeline.counters["time_jumps"] == 0           # the spike stream's clock never moved
+    assert pipeline.spike_watermark_s < 200
+    # The tracked position is known after it as before: one frame lost, not the rest of the session.
+    tracked = np.array([np.isfinite(s.tracked_xy_cm).all() for s in _steps(outputs)])
+    clean_tracked = np.array([np.isfinite(s.tracked_xy_cm).all() for s in _steps(clean_out)])
+    assert tracked[-1] and tracked.sum() >= clean_tracked.sum() - 2
+
+
+def test_a_heartbeat_29_s_ahead_is_refused_and_decoding_goes_on(session_messages):
+    config, messages = session_messages
+    clean, clean_out = _run(config, messages)
+    i = _index(messages, Heartbeat, "ephys", 140.0)
+    bogus = dataclasses.replace(messages[i], t_s=messages[i].t_s + 29.0)
+    pipeline, outputs = _run(config, messages[:i] + [bogus] + messages[i + 1:])
+    assert pipeline.counters["time_jumps"] == 1 and pipeline.counters["steps_skipped"] == 0
+    assert config.session.max_time_jump_s < 29.0
+    # The steps it would have closed close at the next message: none is lost.
+    assert [s.k for s in _steps(outputs)] == [s.k for s in _steps(clean_out)]
+    assert pipeline.bank.armed
+
+
+def test_a_spike_clock_that_stays_ahead_is_followed_and_the_triggers_disarm(session_messages):
+    config, messages = session_messages
+    i = _index(messages, SpikeBatch, "ephys", 140.0)
+    later = []
+    for m in messages[i:]:
+        if m.source == "ephys" and isinstance(m, (SpikeBatch, Heartbeat)):
+            m = dataclasses.replace(m, t_s=m.t_s + 100.0)
+        later.append(m)
+    pipeline, outputs = _run(config, messages[:i] + later)
+    notices = [o for o in outputs if isinstance(o, Notice) and o.kind in ("time_jump", "disarmed")]
+    assert [n.kind for n in notices] == ["time_jump", "disarmed"]
+    assert notices[1].detail == {"reason": "time_jump"}
+    assert not pipeline.bank.armed and pipeline.bank.status()["disarm_reason"] == "time_jump"
+    assert pipeline.counters["time_jumps"] == RESYNC_AFTER_MESSAGES - 1     # refused until they agreed
+    # Decoding goes on, on the new clock (the session's data end at 160 s, now stamped 260 s).
+    assert pipeline.spike_watermark_s > 250.0 and _steps(outputs)[-1].t_s > 250.0
+
+
+def test_a_rejected_frame_is_no_gap_and_a_lost_one_is(session_messages):
+    config, messages = session_messages
+    tracker = [i for i, m in enumerate(messages) if isinstance(m, TrackerFrames) and m.source == "tracker"]
+    rejected, lost = tracker[len(tracker) // 2], tracker[len(tracker) // 2 + 10]
+    pipeline = Pipeline(config)
+    for i, msg in enumerate(messages):
+        if i == rejected:
+            assert pipeline.count_bad_message("bad_time", msg.source, msg.seq) == []
+        elif i != lost:
+            pipeline.on_message(msg)
+    h = pipeline.health.summary()["tracker"]
+    assert (h["gaps"], h["rejected"]) == (1, 1)
+    assert pipeline.counters["bad_messages"] == 1 and pipeline.bad_reasons == {"bad_time": 1}
+
+
+def test_rejected_rig_bytes_are_counted_per_source_apart_from_gaps():
+    from rig_adapters.wire import protocol
+    from rig_adapters.wire.ingest import Ingest
+
+    ingest = Ingest(Pipeline(_config(session={"learn_s": 0.0})))
+    frames = [protocol.encode(TrackerFrames.one("tracker", s, 1.0 + s / 50, 5.0, 5.0)) for s in range(4)]
+    nan_time = msgpack.unpackb(frames[1])
+    nan_time["t"] = np.array([np.nan]).tobytes()
+    for payload in (frames[0], msgpack.packb(nan_time), frames[2], b"\xc1", frames[3]):
+        ingest.rig_bytes(payload)
+    h = ingest.pipeline.health.summary()["tracker"]
+    assert (h["gaps"], h["rejected"], h["messages"]) == (0, 1, 3)
+    assert ingest.pipeline.counters["bad_messages"] == 2     # the NaN time and the unreadable byte
+
+
+def test_a_model_that_fails_to_install_leaves_the_old_one(session_messages):
+    config, messages = session_messages
+    pipeline, _ = _run(config, messages)
+    model, steps, state, digest = pipeline.model, pipeline.steps, pipeline.state, pipeline.digest
+    broken = copy.copy(model)
+    broken.visited_mask_ = np.zeros_like(model.visited_mask_)   # a model that never saw the animal
+    with pytest.raises(ValueError, match="no bin is valid"):
+        pipeline.install_model(broken, pipeline.spike_watermark_s, loaded=True)
+    assert pipeline.model is model and pipeline.steps is steps and pipeline.state == state
+    assert not pipeline.model_is_loaded and pipeline.bank.armed and pipeline.digest == digest

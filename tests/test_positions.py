@@ -9,6 +9,7 @@ from decoder.config import SourceSettings
 from decoder.messages import SyncPulse, TrackerFrames
 from decoder.session.clock import ClockMismatchError
 from decoder.session.positions import MAX_PENDING_FRAMES, Positions
+from decoder.session.streams import SpikeWatermark
 
 SOURCES = SourceSettings(spikes="ephys", tracker="tracker", truth="truth")
 
@@ -23,8 +24,9 @@ class Learner:
         self.frames.append((np.array(t_s), np.array(xy_cm)))
 
 
-def _positions():
-    return Positions(SOURCES, {"frames_dropped_unaligned": 0})
+def _positions(watermark=None):
+    watermark = SpikeWatermark(max_jump_s=5.0) if watermark is None else watermark
+    return Positions(SOURCES, {"frames_dropped_unaligned": 0, "frames_dropped_ahead": 0}, watermark)
 
 
 def _sync(positions, source, seq, pulse_id, t_s, learner=None):
@@ -84,3 +86,22 @@ def test_a_pulse_off_the_fit_raises_and_a_forgotten_clock_holds_frames_again():
     positions.forget_clock("tracker")
     positions.add_frames(TrackerFrames.one("tracker", 9, 4.0, 1.0, 1.0), None)
     assert len(positions.pending) == 1
+
+
+def test_frames_too_far_past_the_spike_clock_are_dropped_not_poisoning_the_rest():
+    # A frame stamped 1000 s ahead would otherwise be the newest frame, and every later
+    # frame "out of order" (issue 17); times are on the spike clock after alignment.
+    watermark = SpikeWatermark(max_jump_s=5.0)
+    positions, learner = _positions(watermark), Learner()
+    positions.add_frames(TrackerFrames.one("tracker", 0, 1000.0, 1.0, 1.0), learner)   # before any spike: no clock yet
+    assert positions.tracked.newest_t_s == 1000.0
+    positions, learner = _positions(watermark), Learner()
+    watermark.advance(10.0)
+    positions.add_frames(TrackerFrames("tracker", 0, [10.0, 14.0, 1010.0], [[1.0, 1.0], [2.0, 2.0], [3.0, 3.0]]),
+                         learner)
+    positions.add_frames(TrackerFrames.one("tracker", 1, 1010.02, 3.0, 3.0), learner)
+    positions.add_frames(TrackerFrames.one("tracker", 2, 14.5, 4.0, 4.0), learner)
+    assert positions.counters["frames_dropped_ahead"] == 2
+    assert positions.tracked.position_at(14.6) == (4.0, 4.0) and positions.tracked.out_of_order == 0
+    # The learning model is given the kept frames only.
+    assert [f[0].tolist() for f in learner.frames] == [[10.0, 14.0], [14.5]]

@@ -87,6 +87,7 @@ class Pipeline:
             "unknown_units": 0,
             "late_spikes": 0,
             "frames_dropped_unaligned": 0,
+            "frames_dropped_ahead": 0,
             "clock_mismatch": 0,
             "steps_skipped": 0,
             "decode_steps": 0,
@@ -96,11 +97,11 @@ class Pipeline:
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
         self.health = StreamHealth()
-        self.watermark = SpikeWatermark()
+        self.watermark = SpikeWatermark(config.session.max_time_jump_s)
         self._spike_source = config.sources.spikes
         self._has_truth = bool(config.sources.truth)
         self._position_sources = (config.sources.tracker, config.sources.truth)
-        self.positions = Positions(config.sources, self.counters)
+        self.positions = Positions(config.sources, self.counters, self.watermark)
         self.tracked = self.positions.tracked   # the shell reads the tracked position from here
         self.schedule = StepSchedule(config.decoder.step_s, config.decoder.allowed_lateness_s)
         self.steps: DecodingSteps | None = None
@@ -153,10 +154,26 @@ class Pipeline:
             return out
         return self._handlers[type(msg)](msg)
 
-    def count_bad_message(self, reason: str) -> None:
-        """Count a message the shell could not decode (the shell logs why)."""
+    def count_bad_message(self, reason: str, source: str | None = None, seq: int | None = None) -> list[Output]:
+        """Count a message the shell could not decode or would not take (the shell logs why).
+
+        Parameters
+        ----------
+        reason : str
+            The counter's category (one of ``decoder.messages.REASONS``).
+        source, seq : str and int, optional
+            The frame's source and sequence number, when its envelope was
+            readable: the frame took that number, so it is counted as rejected
+            for its source and not as a gap; a rejected frame numbered 0 still
+            says its source restarted.
+        """
         self.counters["bad_messages"] += 1
         self.bad_reasons[reason] = self.bad_reasons.get(reason, 0) + 1
+        if source is None or seq is None:
+            return []
+        if self.health.note_rejected(source, seq) == "restart":
+            return self._on_restart(source)
+        return []
 
     # -- one handler per message type --------------------------------------------
 
@@ -203,19 +220,27 @@ class Pipeline:
     def _on_spike_time(self, newest_s: float, batch: SpikeBatch | None) -> list[Output]:
         """The spike stream moved on to ``newest_s``: the plan, the spikes, then the steps that closed."""
         previous = self.watermark.t_s
-        if not self.watermark.advance(newest_s):
+        moved = self.watermark.advance(newest_s)
+        if moved == "refused":
             self.counters["time_jumps"] += 1
             log.warning(
-                "refused a message from %r: its time %.3f s jumps %.1f s past the stream (limit %.0f s)",
+                "refused a message from %r: its time %.3f s jumps %.1f s past the stream (limit %g s, "
+                "[session] max_time_jump_s)",
                 self._spike_source, newest_s, newest_s - previous, self.watermark.max_jump_s,
             )
             return []
         now = self.watermark.t_s
-        if previous == -math.inf and now != -math.inf:
+        resync: list[Output] = []
+        if moved == "resync":
+            resync = self._on_time_resync(previous, now)
+            previous = now
+        elif previous == -math.inf and now != -math.inf:
             self.schedule.start_at(now)
         if self.state == "learning" and self._learn_started_s is None:
             self._learn_started_s = now
         out = self._run_plan() if not self._plan_done else []
+        if resync:
+            out = resync + out
         if batch is not None and batch.t_s.size:
             if self.state == "learning":
                 self.model.update_spikes(batch.t_s, batch.unit_id)
@@ -245,6 +270,17 @@ class Pipeline:
             self.bank.disarm(t, "source_restart")
             out.append(Notice("disarmed", t, {"reason": "source_restart"}))
         return out
+
+    def _on_time_resync(self, previous_s: float, now_s: float) -> list[Output]:
+        """The spike stream's clock truly jumped: decoding starts afresh at ``now_s``, disarmed."""
+        log.warning("the spike stream's time stayed %.1f s past the session's clock (%.3f s): following it, "
+                    "triggers disarmed", now_s - previous_s, previous_s)
+        self.schedule.start_at(now_s)
+        if self.steps is not None:
+            self.steps.restart()
+        self.bank.disarm(now_s, "time_jump")
+        return [Notice("time_jump", now_s, {"from_s": previous_s, "to_s": now_s}),
+                Notice("disarmed", now_s, {"reason": "time_jump"})]
 
     def _frame_learner(self) -> PlaceModel | None:
         return self.model if self.state == "learning" else None
@@ -329,8 +365,7 @@ class Pipeline:
     def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False) -> list[Notice]:
         """Decode with ``model`` from the next step on (triggers stay disarmed)."""
         d = self.config.decoder
-        self.model = model
-        self.model_is_loaded = loaded
+        # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
         decoder = BayesDecoder(
             model.rate_maps_hz_,
             self.environment,
@@ -341,7 +376,10 @@ class Pipeline:
             zone_masks=self._zone_masks,
             rate_floor_hz=self.config.model.rate_floor_hz,
         )
-        self.steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters)
+        steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters)
+        self.model = model
+        self.model_is_loaded = loaded
+        self.steps = steps
         self.state = "decoding"
         self.bank.disarm(t_s, "new_model")
         if self.watermark.t_s != -math.inf:

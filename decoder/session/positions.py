@@ -9,12 +9,15 @@ its frames held until then, so that no frame is placed on a guessed time.
 
 from __future__ import annotations
 
+from bisect import bisect_right
+
 import numpy as np
 
 from decoder.config import SourceSettings
 from decoder.encoding.place_model import PlaceModel
 from decoder.messages import SyncPulse, TrackerFrames
 from decoder.session.clock import ClockAligner, ClockFit
+from decoder.session.streams import SpikeWatermark
 from decoder.session.tracking import TrackHistory
 
 #: Tracker frames held while waiting for the first clock fit; beyond it
@@ -30,7 +33,12 @@ class Positions:
     sources : SourceSettings
         Which source is the spike clock, the tracker and the truth.
     counters : dict of str to int
-        The session's counters; ``frames_dropped_unaligned`` is counted here.
+        The session's counters; ``frames_dropped_unaligned`` and
+        ``frames_dropped_ahead`` are counted here.
+    watermark : SpikeWatermark
+        The spike stream's data time: a frame further past it than its
+        time-jump limit is dropped, so that one corrupt stamp cannot hide
+        every later frame as out of order.
 
     Attributes
     ----------
@@ -42,10 +50,11 @@ class Positions:
         Frames waiting for their source's first clock fit, in arrival order.
     """
 
-    def __init__(self, sources: SourceSettings, counters: dict[str, int]) -> None:
+    def __init__(self, sources: SourceSettings, counters: dict[str, int], watermark: SpikeWatermark) -> None:
         self._spike_source = sources.spikes
         self._truth_source = sources.truth
         self.counters = counters
+        self.watermark = watermark
         self.clock = ClockAligner(sources.spikes, tolerance_s=sources.clock_tolerance_s)
         self.tracked = TrackHistory()
         self.truth = TrackHistory()
@@ -108,9 +117,18 @@ class Positions:
         if fit is not True:
             to_reference = fit.to_reference
             t_ref = [to_reference(t) for t in t_ref]
+        xy = msg.xy_cm
+        latest_s = self.watermark.latest_s()
+        if t_ref and t_ref[-1] > latest_s:
+            # Times within a message are sorted (decoder.messages): the frames to drop are the last ones.
+            keep = bisect_right(t_ref, latest_s)
+            self.counters["frames_dropped_ahead"] += len(t_ref) - keep
+            if keep == 0:
+                return
+            t_ref, xy = t_ref[:keep], xy[:keep]
         history = self.truth if msg.source == self._truth_source else self.tracked
         add_one = history.add_one
-        for t, (x, y) in zip(t_ref, msg.xy_cm.tolist()):
+        for t, (x, y) in zip(t_ref, xy.tolist()):
             add_one(t, x, y)
         if learner is not None and history is self.tracked:
-            learner.update_frames(np.array(t_ref), msg.xy_cm)
+            learner.update_frames(np.array(t_ref), xy)

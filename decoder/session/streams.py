@@ -1,4 +1,4 @@
-"""Per-source sequence numbers and message counts (gaps, duplicates, restarts), and the spike stream's watermark."""
+"""Per-source sequence numbers and message counts (gaps, rejected, duplicates, restarts), and the spike stream's watermark."""
 
 from __future__ import annotations
 
@@ -8,14 +8,26 @@ from dataclasses import dataclass, field
 
 @dataclass
 class SourceHealth:
-    """What one source has sent so far."""
+    """What one source has sent so far.
+
+    ``gaps`` counts sequence numbers never seen: messages sent and not
+    received. ``rejected`` counts frames that arrived but broke the protocol;
+    they took a number, so they are no gap.
+    """
 
     messages: int = 0
     last_seq: int = -1
     gaps: int = 0
+    rejected: int = 0
     stale: int = 0
     restarts: int = 0
+    resyncs: int = 0
     last_data_t_s: float = float("-inf")
+    #: The last number before an unconfirmed jump forward (-1: the jump was the
+    #: first number seen); None once the source has continued after the jump.
+    jumped_from: int | None = None
+    #: Gaps the unconfirmed jump added, taken back if the source resynchronises.
+    jump_gaps: int = 0
 
 
 @dataclass
@@ -23,37 +35,75 @@ class StreamHealth:
     """Sequence-number bookkeeping for every source.
 
     A source numbers its messages 0, 1, 2, ... A jump forward is a gap (the
-    missing messages are counted); a number not above the last one is a
-    duplicate or out-of-order message and is dropped; a return to 0 is a
-    restarted publisher.
+    missing numbers are counted); a return to 0 is a restarted publisher; a
+    number not above the last one is a duplicate or out-of-order message and
+    is dropped, except right after a jump: a number that carries on from
+    before the jump says the jump was one corrupt number, and the count
+    resynchronises to it, so one bad number can never silence a stream.
     """
 
     sources: dict[str, SourceHealth] = field(default_factory=dict)
 
     def accept(self, source: str, seq: int) -> str:
-        """Classify a message: ``"ok"``, ``"gap"``, ``"restart"`` or ``"stale"`` (drop it)."""
+        """Classify a message: ``"ok"``, ``"gap"``, ``"resync"``, ``"restart"`` or ``"stale"`` (drop it)."""
         health = self.sources.get(source)
-        if health is None:
-            health = self.sources[source] = SourceHealth()
-        elif seq == health.last_seq + 1 and seq > 0:
+        if health is not None and seq == health.last_seq + 1 and seq > 0:
             # The next number in line: by far the usual case.
             health.last_seq = seq
             health.messages += 1
+            health.jumped_from = None
             return "ok"
-        verdict = "ok"
-        if health.last_seq >= 0:
-            if seq == 0 and health.last_seq > 0:
-                health.restarts += 1
-                verdict = "restart"
-            elif seq <= health.last_seq:
-                health.stale += 1
-                return "stale"
-            elif seq > health.last_seq + 1:
-                health.gaps += seq - health.last_seq - 1
-                verdict = "gap"
-        health.last_seq = seq
-        health.messages += 1
+        verdict = self._classify(source, seq)
+        if verdict == "stale":
+            self.sources[source].stale += 1
+        else:
+            self.sources[source].messages += 1
         return verdict
+
+    def note_rejected(self, source: str, seq: int) -> str:
+        """A frame from ``source`` numbered ``seq`` was rejected: it took its number, so it is no gap.
+
+        Returns the same verdict as :meth:`accept`; a ``"restart"`` still means
+        the source restarted (the caller acts on it), whatever else the frame
+        held. A rejected frame is counted as rejected only, never as stale.
+        """
+        verdict = self._classify(source, seq)
+        self.sources[source].rejected += 1
+        return verdict
+
+    def _classify(self, source: str, seq: int) -> str:
+        health = self.sources.get(source)
+        if health is None:
+            # The first number seen sets the baseline, unconfirmed until the next one follows it.
+            self.sources[source] = SourceHealth(last_seq=seq, jumped_from=-1)
+            return "ok"
+        last = health.last_seq
+        if seq == last + 1:
+            health.last_seq = seq
+            health.jumped_from = None
+            return "ok"
+        if seq > last + 1:
+            health.jumped_from = last
+            health.jump_gaps = seq - last - 1
+            health.gaps += health.jump_gaps
+            health.last_seq = seq
+            return "gap"
+        if seq == 0 and last > 0:
+            health.restarts += 1
+            health.last_seq = 0
+            health.jumped_from = None
+            return "restart"
+        before = health.jumped_from
+        if before is not None and before < seq < last:
+            # The number carries on from before the jump: the jump was one bad number,
+            # on a message that took one of the numbers between (the likelier single fault).
+            health.gaps += (max(seq - before - 2, 0) if before >= 0 else 0) - health.jump_gaps
+            health.resyncs += 1
+            health.last_seq = seq
+            health.jumped_from = None
+            health.jump_gaps = 0
+            return "resync"
+        return "stale"
 
     @property
     def total_gaps(self) -> int:
@@ -63,14 +113,19 @@ class StreamHealth:
     def total_stale(self) -> int:
         return sum(h.stale for h in self.sources.values())
 
+    @property
+    def total_rejected(self) -> int:
+        return sum(h.rejected for h in self.sources.values())
+
     def summary(self) -> dict[str, dict]:
-        return {name: vars(h).copy() for name, h in self.sources.items()}
+        """Per source: ``messages``, ``last_seq``, ``gaps``, ``rejected``, ``stale``, ``restarts``, ``resyncs``."""
+        keep = ("messages", "last_seq", "gaps", "rejected", "stale", "restarts", "resyncs", "last_data_t_s")
+        return {name: {k: getattr(h, k) for k in keep} for name, h in self.sources.items()}
 
 
-#: A message whose timestamps run further ahead of the spike stream's
-#: watermark than this (s) is refused: a corrupt clock would otherwise close
-#: thousands of steps at once and leave every later spike "late".
-MAX_TIME_JUMP_S = 30.0
+#: Refused messages in a row, each within the limit of the one before, after
+#: which the stream has truly moved on: the watermark follows it (resync).
+RESYNC_AFTER_MESSAGES = 10
 
 
 class SpikeWatermark:
@@ -79,7 +134,9 @@ class SpikeWatermark:
     Parameters
     ----------
     max_jump_s : float
-        A time further than this past a known watermark is refused.
+        A time further than this past a known watermark is refused (``[session]
+        max_time_jump_s``), unless
+        :data:`RESYNC_AFTER_MESSAGES` such times in a row agree with each other.
 
     Attributes
     ----------
@@ -87,19 +144,34 @@ class SpikeWatermark:
         The watermark (s); ``-inf`` before the first data.
     """
 
-    def __init__(self, max_jump_s: float = MAX_TIME_JUMP_S) -> None:
+    def __init__(self, max_jump_s: float) -> None:
         self.max_jump_s = float(max_jump_s)
         self.t_s = -math.inf
+        self._run_t_s = -math.inf   # newest time of the current run of refused times
+        self._run_n = 0
 
-    def advance(self, newest_s: float) -> bool:
-        """Move to ``newest_s`` if it is later; False, unchanged, when it jumps too far ahead."""
+    def advance(self, newest_s: float) -> str:
+        """Move to ``newest_s`` if later: ``"ok"``, ``"refused"`` (too far ahead, unchanged) or ``"resync"`` (moved after a run of refusals)."""
         t = self.t_s
-        if newest_s > t:
-            if newest_s > t + self.max_jump_s and t != -math.inf:
-                return False
-            self.t_s = newest_s
-        return True
+        if newest_s <= t + self.max_jump_s or t == -math.inf:
+            if newest_s > t:
+                self.t_s = newest_s
+            self._run_n = 0
+            return "ok"
+        run_t = self._run_t_s
+        self._run_n = self._run_n + 1 if self._run_n and run_t <= newest_s <= run_t + self.max_jump_s else 1
+        self._run_t_s = newest_s
+        if self._run_n < RESYNC_AFTER_MESSAGES:
+            return "refused"
+        self.t_s = newest_s
+        self._run_n = 0
+        return "resync"
+
+    def latest_s(self) -> float:
+        """The latest time another stream's data may carry (s): ``inf`` before the first spike-stream data."""
+        return self.t_s + self.max_jump_s if self.t_s != -math.inf else math.inf
 
     def reset(self) -> None:
         """Forget the watermark (a restarted source may restart its clock)."""
         self.t_s = -math.inf
+        self._run_n = 0

@@ -114,6 +114,26 @@ def unpack(data: Any, max_bytes: int, limits: dict) -> dict:
     return obj
 
 
+def readable_envelope(data: Any) -> tuple[str, int] | None:
+    """The source and sequence number of a rejected frame, when its envelope is readable; else None.
+
+    A frame refused for anything past its envelope (a bad array, a NaN time)
+    still took its number from its source: stream health counts it as
+    rejected, not as a gap. Only read on the rejection path, so a good frame
+    is unpacked once. The rules are those of the messages' constructors
+    (``decoder.messages``): a name of 1 to 64 characters, a number in 0..2**63 - 1.
+    """
+    try:
+        m = unpack(data, MAX_FRAME_BYTES, INPUT_LIMITS)
+    except Exception:  # noqa: BLE001 - a frame too broken to unpack has no envelope
+        return None
+    source, seq, version = m.get("src"), m.get("seq"), m.get("v")
+    if (type(version) is int and version == PROTOCOL_VERSION and type(source) is str and 0 < len(source) <= 64
+            and type(seq) is int and 0 <= seq < 2**63):
+        return source, seq
+    return None
+
+
 def read_kind(m: dict, kinds: tuple[str, ...]) -> str:
     """Check the version ``v`` and return the kind ``k``, one of ``kinds``."""
     v = m.get("v")

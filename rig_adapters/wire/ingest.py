@@ -31,6 +31,7 @@ from decoder.session.outputs import Notice, StepOutput
 from decoder.session.pipeline import Pipeline
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
+from rig_adapters.wire.framing import readable_envelope
 
 log = logging.getLogger(__name__)
 
@@ -111,19 +112,23 @@ class Ingest:
         try:
             msg = protocol.decode(payload)
         except protocol.ProtocolError as exc:
-            self.pipeline.count_bad_message(exc.reason)
             log.warning("bad rig message (%s): %s", exc.reason, exc.detail)
-            return []
+            return self._rejected(exc.reason, payload)
         except Exception as exc:  # noqa: BLE001 - the loop's edge: no frame may end it
-            self.pipeline.count_bad_message("bad_field")
             log.warning("bad rig message (bad_field): the codec failed on it (%s)", _describe(exc))
-            return []
+            return self._rejected("bad_field", payload)
         if type(msg) is ControlCommand:
             # Control belongs on the control socket; a rig cannot arm the loop.
-            self.pipeline.count_bad_message("unknown_kind")
             log.warning("refused a control command that came on the rig stream from %r", msg.source)
-            return []
+            return self.pipeline.count_bad_message("unknown_kind", msg.source, msg.seq)
         return self.pipeline.on_message(msg)
+
+    def _rejected(self, reason: str, payload: bytes) -> list[StepOutput | Notice]:
+        """Count a rejected rig frame, as rejected for its source when its envelope is readable (no gap)."""
+        envelope = readable_envelope(payload)
+        if envelope is None:
+            return self.pipeline.count_bad_message(reason)
+        return self.pipeline.count_bad_message(reason, *envelope)
 
     # -- control ---------------------------------------------------------------------
 
