@@ -435,7 +435,8 @@ def test_readiness_reports_coverage_time_and_tuned_units(foraging_model):
     as_dict = dict(ready)
     assert as_dict["n_tuned_units"] == ready.n_tuned_units
     assert set(as_dict) == {
-        "coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units", "median_cv_error_cm"
+        "coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units", "median_cv_error_cm",
+        "walk_sd_cm_per_sqrt_s",
     }
 
 
