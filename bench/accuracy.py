@@ -164,7 +164,7 @@ def _placeloop(config: ExperimentConfig, log_dir: pathlib.Path, rec: Recorded) -
 
     def on_output(out: object) -> None:
         if isinstance(out, Notice) and out.kind == "fitted":
-            fitted.update(out.data["readiness"].get("filter", {}))
+            fitted.update(out.detail["readiness"].get("filter", {}))
         if isinstance(out, StepOutput):
             times.append(out.t_s)
             map_xy.append(out.step.map_xy_cm)
@@ -238,18 +238,27 @@ def _textbook(config: ExperimentConfig, rec: Recorded, test_t_s: np.ndarray) -> 
 
 
 def run_session(name: str, path: pathlib.Path, seed: int, work: pathlib.Path, test_s: float,
-                method: str = "sliding_window", temperature: float = 1.0) -> dict:
-    config = load_config(path)
-    decoder = dataclasses.replace(config.decoder, method=method, likelihood_temperature=temperature)
-    config = dataclasses.replace(config, decoder=decoder)
-    until_s = config.session.learn_s + test_s
+                methods: tuple[str, ...] = ("sliding_window",), temperature: float = 1.0) -> list[dict]:
+    """Record the session once, replay it once per method; one row per method."""
+    recorded_config = load_config(path)
+    until_s = recorded_config.session.learn_s + test_s
     log_dir = work / name
     started = time.perf_counter()
-    record_simulated_session(config, log_dir, until_s, seed=seed)
+    record_simulated_session(recorded_config, log_dir, until_s, seed=seed)
     record_s = time.perf_counter() - started
     rec = Recorded(log_dir)
-    ours = _placeloop(config, log_dir, rec)
-    theirs = _textbook(config, rec, ours["t_s"])
+    rows = []
+    for method in methods:
+        decoder = dataclasses.replace(recorded_config.decoder, method=method, likelihood_temperature=temperature)
+        config = dataclasses.replace(recorded_config, decoder=decoder)
+        ours = _placeloop(config, log_dir, rec)
+        theirs = _textbook(config, rec, ours["t_s"])
+        rows.append(_row(name, path, seed, config, test_s, method, ours, theirs, record_s))
+    return rows
+
+
+def _row(name: str, path: pathlib.Path, seed: int, config: ExperimentConfig, test_s: float, method: str,
+         ours: dict, theirs: dict, record_s: float) -> dict:
     return {
         "name": name,
         "method": method,
@@ -288,11 +297,10 @@ def main(argv: list[str] | None = None) -> int:
     started = time.perf_counter()
     rows = []
     with tempfile.TemporaryDirectory(prefix="placeloop-accuracy-") as tmp:
-        for method in args.methods:
-            for name, path, seed in chosen:
-                rows.append(run_session(name, path, seed, pathlib.Path(tmp) / method, args.test_s, method,
-                                        args.temperature))
-                print(f"{method} {name}: done in {time.perf_counter() - started:.0f} s", file=sys.stderr)
+        for name, path, seed in chosen:
+            rows.extend(run_session(name, path, seed, pathlib.Path(tmp), args.test_s, tuple(args.methods),
+                                    args.temperature))
+            print(f"{name}: done in {time.perf_counter() - started:.0f} s", file=sys.stderr)
     out = {
         "sessions": rows,
         "ratio_worst": {m: max(r["ratio"] for r in rows if r["method"] == m) for m in args.methods},
