@@ -43,10 +43,11 @@ PROB_FLOOR = 1e-300
 #: ``UNIFORM_CUTOFF * eps / n_valid`` are stored as 0, so that the next
 #: prediction and the summaries cover only the rows where the posterior
 #: lives rather than the whole arena. The mass dropped is at most
-#: ``UNIFORM_CUTOFF * eps`` per step, a thousandth of what the uniform jump
-#: itself spreads over every bin at the next step, so the filter's prior
-#: differs from the exact one by at most that much in total variation
-#: (tests/test_kernels.py compares it with the reference filter).
+#: ``UNIFORM_CUTOFF * eps`` per step, a thousandth of what the jump spreads
+#: over the bins at the next step; since every valid bin's prior holds at
+#: least ``eps / n_valid`` from the jump, no prior value moves by more than
+#: a relative ~``UNIFORM_CUTOFF`` (tests/test_decoding.py compares the step
+#: with the reference filter, ``decoder.inference.filtering``).
 UNIFORM_CUTOFF = 1e-3
 
 #: If prior times likelihood (scaled so that the best valid bin has
