@@ -1,7 +1,10 @@
 """Tests of decoder.inference.decoding: BayesDecoder and RandomWalk against outside references.
 
 References used: scipy.stats.poisson (likelihood), hmmlearn.hmm.PoissonHMM
-(forward pass of the state-space filter), closed-form posteriors. Rate maps
+(forward pass of the state-space filter), closed-form posteriors, and the
+reference filter ``decoder.inference.filtering.filter_posteriors`` (itself
+checked against hmmlearn and brute-force Bayes in tests/test_filtering.py)
+for the uniform jump and the temperature. Rate maps
 here are small hand-made or random arrays, not data.
 """
 
@@ -14,7 +17,9 @@ import pytest
 from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
+from decoder.inference import _kernels
 from decoder.inference.decoding import BayesDecoder, DecodedStep, RandomWalk
+from decoder.inference.filtering import filter_posteriors
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 
 BACKENDS = ["numba", "numpy"]
@@ -295,6 +300,84 @@ def test_underflowing_state_space_prior_falls_back_to_uniform_and_is_counted(bac
     assert np.all(np.isfinite(far.posterior)) and far.map_xy_cm[0] > 180
 
 
+# -- uniform jump and temperature ---------------------------------------------------------
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+@pytest.mark.parametrize(
+    "environment",
+    [Arena.rectangle(120, 80, bin_cm=4), TrackGraph([[0, 0], [0, 60], [-40, 60]], [(0, 1), (1, 2)], bin_cm=5)],
+    ids=["grid", "graph"],
+)
+@pytest.mark.parametrize("eps, temperature", [(1e-3, 1.0), (5e-3, 2.5)])
+def test_jump_and_temperature_follow_the_reference_filter(environment, backend, eps, temperature):
+    n_units, step_s, steps = 30, 0.02, 300
+    rng = np.random.default_rng(21)
+    # Narrow random fields on a low background (not data), so the posterior lives on a few rows.
+    centres = environment.bin_centers_cm
+    field = centres[rng.integers(0, environment.n_bins, n_units)]
+    dist2 = ((centres[None, :, :] - field[:, None, :]) ** 2).sum(axis=2)
+    rates = 0.2 + 40.0 * np.exp(-0.5 * dist2 / 8.0**2)
+    visited = environment.valid_mask.copy()
+    visited[np.flatnonzero(visited)[:3]] = False
+    dec = BayesDecoder(
+        rates, environment, visited, window_s=step_s, prior="state_space", random_walk_sd_cm=4.0,
+        uniform_weight=eps, likelihood_temperature=temperature, backend=backend,
+    )
+    # The spikes come from a bin that wanders, then jumps across the environment at step 150.
+    path = np.concatenate([np.full(150, np.flatnonzero(visited)[5]), np.full(150, np.flatnonzero(visited)[-5])])
+    counts = rng.poisson(step_s * rates[:, path].T)
+    post = filter_posteriors(counts, rates, step_s, dec.transition, uniform_weight=eps, temperature=temperature)
+    worst = 0.0
+    for t in range(steps):
+        rows = np.flatnonzero(counts[t])
+        step = dec.decode(rows, counts[t, rows])
+        worst = max(worst, float(np.abs(step.posterior - post[t]).sum()))
+    # Source: the reference filter (Brown et al. 1998 with a uniform jump, tested against hmmlearn).
+    # The live step stores values below c * eps / n_valid as 0 (c = UNIFORM_CUTOFF). Every valid
+    # bin's prior holds at least eps / n_valid, and what was dropped adds at most c * eps / n_valid
+    # times a column sum of the walk (about 1) to it, so each prior value, and each posterior
+    # value, is off by a relative ~c: an L1 distance of about 2c at most, reached when the spikes
+    # jump to where the posterior had been cut (step 150; observed 2.3e-4 there, 1e-8 elsewhere).
+    assert worst < _kernels.UNIFORM_CUTOFF
+    assert dec.underflow_resets == 0
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_a_jump_lets_the_prior_follow_spikes_that_point_far_away(backend):
+    track = LinearTrack((0, 0), (200, 0), bin_cm=2)
+    x = track.bin_centers_cm[:, 0]
+    rates = np.vstack([np.where(x < 10, 50.0, 0.0), np.where(x > 190, 50.0, 0.0)])
+    dec = BayesDecoder(
+        rates, track, track.valid_mask, 1.0, prior="state_space", random_walk_sd_cm=2.0, uniform_weight=1e-3,
+        backend=backend,
+    )
+    dec.decode(np.array([0]), np.array([120]))
+    far = dec.decode(np.array([1]), np.array([120]))
+    # Source: the filter's definition — with a uniform jump every valid bin keeps prior mass
+    # 1e-3 / 100, so the spikes that underflowed the plain walk (test above) are followed
+    # without a fallback: the posterior is the reference filter's.
+    assert dec.underflow_resets == 0 and far.map_xy_cm[0] > 180
+    counts = np.array([[120, 0], [0, 120]])
+    with np.errstate(under="ignore"):  # the reference's far tail is e^-1022, below a double's range
+        reference = filter_posteriors(counts, rates, 1.0, dec.transition, uniform_weight=1e-3)
+    np.testing.assert_allclose(far.posterior, reference[1], rtol=1e-9, atol=1e-12)
+
+
+def test_temperature_one_and_no_jump_change_no_bit():
+    arena = Arena.rectangle(60, 40, bin_cm=4)
+    rates = _random_rates(22, 8, arena.n_bins)
+    plain = BayesDecoder(rates, arena, arena.valid_mask, 0.2, prior="state_space")
+    explicit = BayesDecoder(
+        rates, arena, arena.valid_mask, 0.2, prior="state_space", uniform_weight=0.0, likelihood_temperature=1.0
+    )
+    for counts in np.random.default_rng(23).poisson(0.5, (40, 8)):
+        rows = np.flatnonzero(counts)
+        # Source: IEEE 754 — dividing by 1.0 and adding no jump leave every number as it was.
+        np.testing.assert_array_equal(plain.decode(rows, counts[rows]).posterior,
+                                      explicit.decode(rows, counts[rows]).posterior)
+
+
 # -- validation ---------------------------------------------------------------------------
 
 
@@ -344,6 +427,9 @@ def test_bad_counts_are_refused_with_a_clear_message_and_no_state_change(rows, c
         (dict(zone_masks=np.ones((1, 9), bool)), "zone_masks must be"),
         (dict(rate_floor_hz=-1.0), "rate_floor_hz must be a positive"),
         (dict(backend="gpu"), "backend must be one of"),
+        (dict(uniform_weight=1.0), r"uniform_weight must be a probability in \[0, 1\)"),
+        (dict(uniform_weight=-0.1), "uniform_weight must be a probability"),
+        (dict(likelihood_temperature=0.0), "likelihood_temperature must be a positive"),
         (dict(rate_maps_hz=np.full((2, 10), 1e308)), "infinite expected spike count"),
     ],
 )

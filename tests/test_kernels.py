@@ -316,7 +316,7 @@ def _sliding_windows(rng: np.random.Generator, rates: np.ndarray, n_steps: int, 
         yield rows, counts[rows].astype(np.float64)
 
 
-def _step_arguments(rng: np.random.Generator, n_units: int, kind: int):
+def _step_arguments(rng: np.random.Generator, n_units: int, kind: int, uniform_weight: float = 0.0):
     ny, nx = _GRID
     n_bins = ny * nx
     # Random bumps on a random background (not data): a posterior that covers a few rows.
@@ -339,6 +339,8 @@ def _step_arguments(rng: np.random.Generator, n_units: int, kind: int):
         0.2 * rates.sum(axis=0),
         valid,
         mask_f.copy(),
+        uniform_weight,
+        uniform_weight / valid.sum(),
         kind,
         ny,
         nx,
@@ -380,15 +382,20 @@ class _StepState:
 
 def _new_state(model) -> _StepState:
     ny, nx = _GRID
-    r = model[8].size // 2
+    r = model[10].size // 2
     return _StepState(model[1].shape[0], ny * nx, (2 * ny + 2 * r) * (nx + 2 * r), 2)
 
 
-@pytest.mark.parametrize("kind", [K.NO_TRANSITION, K.GRID_TRANSITION], ids=["uniform", "grid"])
-def test_decode_step_with_incremental_likelihood_matches_the_exact_numpy_twin_over_a_long_run(kind):
+@pytest.mark.parametrize(
+    "kind, uniform_weight",
+    [(K.NO_TRANSITION, 0.0), (K.GRID_TRANSITION, 0.0), (K.GRID_TRANSITION, 1e-3)],
+    ids=["uniform", "grid", "grid-with-jump"],
+)
+def test_decode_step_with_incremental_likelihood_matches_the_exact_numpy_twin_over_a_long_run(kind, uniform_weight):
     rng = np.random.default_rng(12)
     n_units = 200
-    rates, model = _step_arguments(rng, n_units, kind)
+    rates, model = _step_arguments(rng, n_units, kind, uniform_weight)
+    floor = K._prob_floor(uniform_weight, model[6])
     fast, slow = _new_state(model), _new_state(model)
     updates_seen = 0
     worst_drift = 0.0
@@ -411,8 +418,9 @@ def test_decode_step_with_incremental_likelihood_matches_the_exact_numpy_twin_ov
         assert drift <= bound
         # Source: the numpy twin. A log-likelihood off by d changes each normalised posterior
         # value by a factor within exp(+-2d), d < 1e-11 here, so rtol=1e-9 is generous; values
-        # within that of PROB_FLOOR may be floored in one and not the other, hence atol.
-        np.testing.assert_allclose(a, b, rtol=1e-9, atol=2 * K.PROB_FLOOR)
+        # within that of the floor (PROB_FLOOR, or UNIFORM_CUTOFF of the uniform jump's level)
+        # may be floored in one and not the other, hence atol.
+        np.testing.assert_allclose(a, b, rtol=1e-9, atol=2 * floor)
         assert (status_a, map_a, spikes_a) == (status_b, map_b, spikes_b)
         # The HPD count changes only if a cumulative sum lands within ~1e-11 of 95%.
         assert hpd_a == hpd_b
@@ -422,7 +430,7 @@ def test_decode_step_with_incremental_likelihood_matches_the_exact_numpy_twin_ov
     assert updates_seen == K.LIKELIHOOD_REFRESH_STEPS
     assert worst_drift < 1e-10
     if kind == K.GRID_TRANSITION:
-        assert fewest_rows + 2 * (model[8].size // 2) < _GRID[0]
+        assert fewest_rows + 2 * (model[10].size // 2) < _GRID[0]
 
 
 def test_decode_step_is_deterministic_and_refuses_bad_entries_without_touching_its_state():

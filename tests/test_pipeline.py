@@ -169,6 +169,12 @@ def test_config_validation_names_the_problem():
         _config(rules=[{"name": "r", "zone": "nowhere"}])
     with pytest.raises(ValueError, match="unknown key"):
         _config(decoder={"windw_s": 0.2})
+    with pytest.raises(ValueError, match="method must be 'sliding_window' or 'filter'"):
+        _config(decoder={"method": "smoother"})
+    with pytest.raises(ValueError, match="set prior = 'state_space'"):
+        _config(decoder={"method": "filter", "prior": "uniform"})
+    with pytest.raises(ValueError, match="likelihood_temperature must be a positive"):
+        _config(decoder={"method": "filter", "likelihood_temperature": 0.0})
     for name in ("ephys", "tracker"):
         with pytest.raises(ValueError, match="truth must name a third source"):
             _config(sources={"spikes": "ephys", "tracker": "tracker", "truth": name})
@@ -343,3 +349,22 @@ def test_a_model_that_fails_to_install_leaves_the_old_one(session_messages):
         pipeline.install_model(broken, pipeline.spike_watermark_s, loaded=True)
     assert pipeline.model is model and pipeline.steps is steps and pipeline.state == state
     assert not pipeline.model_is_loaded and pipeline.bank.armed and pipeline.digest == digest
+
+
+def test_the_filter_method_decodes_each_spike_once_with_the_learned_movement(session_messages):
+    _, messages = session_messages
+    config = _config(decoder={**CONFIG["decoder"], "method": "filter", "likelihood_temperature": 1.5})
+    pipeline, outputs = _run(config, messages)
+    dec = pipeline.steps.decoder
+    movement = pipeline.model.movement_model(0.025)
+    # Source: the setting's definition — windows of step_s, the walk and jump of the movement
+    # model learned from this session's frames, the configured temperature.
+    assert dec.window_s == 0.025 and dec.likelihood_temperature == 1.5
+    assert dec.random_walk_sd_cm == movement.walk_sd_cm(4.0)
+    assert dec.uniform_weight == movement.uniform_weight > 0
+    assert pipeline.readiness["filter"]["walk_sd_cm"] == dec.random_walk_sd_cm
+    assert np.isfinite(pipeline.readiness["walk_sd_cm_per_sqrt_s"])
+    steps = [o for o in outputs if isinstance(o, StepOutput)]
+    assert abs(len(steps) - 40.0 / 0.025) <= 2 and dec.underflow_resets == 0
+    # Sanity bound on invented cells, as for the sliding window above.
+    assert pipeline.errors.percentile(50) < 12.0

@@ -435,7 +435,8 @@ def test_readiness_reports_coverage_time_and_tuned_units(foraging_model):
     as_dict = dict(ready)
     assert as_dict["n_tuned_units"] == ready.n_tuned_units
     assert set(as_dict) == {
-        "coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units", "median_cv_error_cm"
+        "coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units", "median_cv_error_cm",
+        "walk_sd_cm_per_sqrt_s",
     }
 
 
@@ -696,3 +697,79 @@ def test_tuned_count_so_far_on_a_coarser_grid_is_close_and_keeps_counting(short_
     # Sanity bound on invented cells: 4 cm bins under a 5 cm Gaussian call nearly
     # the same units tuned as the 2 cm maps do.
     assert abs(model.n_tuned_units_so_far() - model.readiness().n_tuned_units) <= 2
+
+
+# -- movement model ------------------------------------------------------------------------
+
+
+def _brownian_session(sd_cm_per_sqrt_s: float, minutes: float, seed: int):
+    """Frames of a 2-D Brownian walk at 50 Hz in a 400 cm box (invented), and one unit's spikes."""
+    rng = np.random.default_rng(seed)
+    dt = 0.02
+    n = int(minutes * 60 / dt)
+    steps = rng.normal(0.0, sd_cm_per_sqrt_s * np.sqrt(dt), (n, 2))
+    xy = 200.0 + np.cumsum(steps, axis=0)
+    # Fold back at the walls (rarely reached at this spread).
+    xy = np.abs(np.mod(xy, 800.0) - 400.0)
+    t = np.arange(n) * dt
+    spikes = np.sort(rng.uniform(0, t[-1], 2000))
+    return t, xy, spikes
+
+
+def test_the_walk_learned_at_fit_grows_like_brownian_motion():
+    arena = Arena.rectangle(400, 400, bin_cm=10)
+    sd = 12.0
+    t, xy, spikes = _brownian_session(sd, 10.0, seed=31)
+    model = PlaceModel(arena, min_occupancy_s=0.0)
+    for start in range(0, t.size, 50):
+        model.update_frames(t[start : start + 50], xy[start : start + 50])
+    model.update_spikes(spikes, np.zeros(spikes.size, np.int64))
+    model.fit()
+    # Source: Brownian motion (Einstein 1905): the displacement variance per axis grows as
+    # sigma^2 * lag, so the walk's variance per second is sigma^2. 30,000 frames at 25 lags
+    # estimate it within a few per cent (sampling error of a variance from ~30,000 steps, ~1 %,
+    # plus the trimming's correction, exact for Gaussian steps).
+    assert model.walk_variance_cm2_per_s_ == pytest.approx(sd**2, rel=0.05)
+    assert model.readiness().walk_sd_cm_per_sqrt_s == pytest.approx(sd, rel=0.03)
+    movement = model.movement_model(0.02)
+    # Source: the same law at a 20 ms step: s.d. sigma * sqrt(0.02 s); the jump is the
+    # movement module's default rate of 0.05 per s.
+    assert movement.sd_cm == pytest.approx(sd * np.sqrt(0.02), rel=0.03)
+    assert movement.uniform_weight == pytest.approx(1 - np.exp(-0.05 * 0.02), rel=1e-12)
+
+
+def test_the_movement_frames_are_bounded_and_the_newest(monkeypatch):
+    from decoder.encoding import online_counts
+
+    monkeypatch.setattr(online_counts, "_MAX_MOVEMENT_FRAMES", 500)
+    arena = Arena.rectangle(400, 400, bin_cm=10)
+    t, xy, _ = _brownian_session(12.0, 1.0, seed=32)
+    model = PlaceModel(arena)
+    for start in range(0, t.size, 64):
+        model.update_frames(t[start : start + 64], xy[start : start + 64])
+    kept_t, kept_xy = model.movement_frames()
+    # Source: the buffer's contract — whole batches, the newest, about the cap and never
+    # one batch more.
+    assert 500 <= kept_t.size < 500 + 64
+    np.testing.assert_array_equal(kept_t, t[-kept_t.size :])
+    np.testing.assert_array_equal(kept_xy, xy[-kept_t.size :])
+
+
+def test_a_model_without_movement_says_so():
+    arena = Arena.rectangle(400, 400, bin_cm=10)
+    model = PlaceModel(arena)
+    with pytest.raises(ValueError, match="no learned movement model"):
+        model.movement_model(0.02)
+
+
+def test_the_learned_walk_survives_save_and_load(tmp_path):
+    arena = Arena.rectangle(400, 400, bin_cm=10)
+    t, xy, spikes = _brownian_session(12.0, 3.0, seed=33)
+    model = PlaceModel(arena, min_occupancy_s=0.0)
+    model.update_frames(t, xy)
+    model.update_spikes(spikes, np.zeros(spikes.size, np.int64))
+    model.fit()
+    model.save(tmp_path / "m.npz")
+    loaded = PlaceModel.load(tmp_path / "m.npz")
+    # Source: the file's contract — what was learned reads back unchanged.
+    assert loaded.walk_variance_cm2_per_s_ == model.walk_variance_cm2_per_s_

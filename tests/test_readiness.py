@@ -65,5 +65,5 @@ def test_no_coarser_grid_on_a_track_or_below_twice_the_bin():
 def test_readiness_reads_as_a_mapping_of_its_fields():
     r = Readiness(0.5, 12.0, np.array([3]), np.array([40]), 1)
     assert list(r) == ["coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units",
-                       "median_cv_error_cm"]
-    assert dict(r)["running_time_s"] == 12.0 and r["median_cv_error_cm"] is None and len(r) == 6
+                       "median_cv_error_cm", "walk_sd_cm_per_sqrt_s"]
+    assert dict(r)["running_time_s"] == 12.0 and r["median_cv_error_cm"] is None and len(r) == 7

@@ -36,6 +36,7 @@ counted, as are spikes of unknown units and spikes outside the environment.
 
 from __future__ import annotations
 
+import collections
 import logging
 import math
 from typing import Any
@@ -64,6 +65,10 @@ _MAX_PENDING_SPIKES = 1_000_000
 #: than its share of a batch, and any batching gives the same sums (see
 #: ``OnlineCounts._flush``).
 _FRAME_BATCH = 64
+
+#: Most recent tracked frames kept for learning the movement model at fit
+#: time: 30 minutes at 50 Hz, 2 MB.
+_MAX_MOVEMENT_FRAMES = 90_000
 
 #: Unit ids below this are looked up in a table rather than a dict.
 _MAX_UNIT_TABLE = 1 << 20
@@ -200,6 +205,10 @@ class OnlineCounts:
         self._cv_xy = np.zeros((0, 2))
         self._cv_fold = np.zeros(0, dtype=np.int64)
         self._cv_pairs: list[tuple[np.ndarray, np.ndarray]] = []
+        # The newest valid frames (at most _MAX_MOVEMENT_FRAMES, in whole
+        # batches), for the movement model; all frames, running or not.
+        self._move_batches: collections.deque[tuple[np.ndarray, np.ndarray]] = collections.deque()
+        self._n_move_frames = 0
         # Arrivals not yet worked in (see _flush): seen frames, the number of
         # frames held after each update_frames call that added any, and spike
         # batches with their total size.
@@ -422,12 +431,34 @@ class OnlineCounts:
         self._fbin = np.concatenate([self._fbin, bins])
         self._iv_status = np.concatenate([self._iv_status, np.zeros(len(t), np.int8)])
         self._iv_fold = np.concatenate([self._iv_fold, np.zeros(len(t), np.int64)])
+        self._keep_movement_frames(t, xy)
         self._settle_intervals()
         horizons = None
         if len(calls) > 1 and self._pend_t.size:
             horizons = self._horizons_after(m0 + np.asarray(calls), n_final0)
         self._release_spikes(horizons)
         self._trim_history()
+
+    def _keep_movement_frames(self, t: np.ndarray, xy: np.ndarray) -> None:
+        self._move_batches.append((t, xy))
+        self._n_move_frames += len(t)
+        while self._n_move_frames - len(self._move_batches[0][0]) >= _MAX_MOVEMENT_FRAMES:
+            self._n_move_frames -= len(self._move_batches.popleft()[0])
+
+    def movement_frames(self) -> tuple[np.ndarray, np.ndarray]:
+        """The newest tracked frames kept for the movement model (about ``_MAX_MOVEMENT_FRAMES``).
+
+        Returns
+        -------
+        t_s : ndarray of float64, shape (n,)
+            Frame times, strictly increasing, data time.
+        xy_cm : ndarray of float64, shape (n, 2)
+        """
+        self._flush()
+        if not self._move_batches:
+            return np.zeros(0), np.zeros((0, 2))
+        t, xy = (np.concatenate(parts) for parts in zip(*self._move_batches))
+        return t, xy
 
     def _horizons_after(self, ends: np.ndarray, n_final0: int) -> np.ndarray:
         """Settled horizon after each of a run of calls, ``ends`` frames into the history.

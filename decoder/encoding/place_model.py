@@ -26,6 +26,7 @@ from decoder.encoding.model_file import (
     read_model_file,
     write_model_file,
 )
+from decoder.encoding.movement import MovementModel, default_uniform_weight
 from decoder.encoding.online_counts import OnlineCounts
 from decoder.encoding.readiness import Readiness, coarse_tuning_grid, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
@@ -100,6 +101,11 @@ class PlaceModel(OnlineCounts):
         Occupancy-weighted mean of each map, Hz.
     field_size_ : ndarray, shape (n_units,)
         Size of the field around each peak (20% of peak), cm² in an arena, cm on a track.
+    walk_variance_cm2_per_s_ : float
+        Variance of the movement model's random walk per second of data,
+        cm² (``MovementModel.from_tracking`` on the newest half hour of
+        tracked frames; its variance per step is linear in the step). NaN
+        when the frames could not tell (too few, or no movement).
     counters_ : dict of str to int
         What was received and what was dropped, and why.
 
@@ -182,11 +188,47 @@ class PlaceModel(OnlineCounts):
         self.peak_rate_hz_ = rates.max(axis=1, initial=0.0)
         self.mean_rate_hz_ = rates @ (occ_visited / occ_visited.sum())
         self.field_size_ = field_size(rates, self.environment, visited)
+        self.walk_variance_cm2_per_s_ = self._learn_walk_variance()
         logger.info(
             "fitted %d units on %d visited bins from %.1f s of running",
             len(self.unit_ids_), int(visited.sum()), occupancy.sum(),
         )
         return self
+
+    def _learn_walk_variance(self) -> float:
+        t, xy = self.movement_frames()
+        try:
+            # Over a step of 1 s the walk's s.d. squared is its variance per second.
+            return MovementModel.from_tracking(t, xy, 1.0, environment=self.environment).sd_cm ** 2
+        except ValueError as exc:
+            logger.warning("no movement model learned: %s", exc)
+            return math.nan
+
+    def movement_model(self, step_s: float) -> MovementModel:
+        """The learned movement model for decoding steps of ``step_s``.
+
+        Parameters
+        ----------
+        step_s : float
+
+        Returns
+        -------
+        MovementModel
+            S.d. ``sqrt(walk_variance_cm2_per_s_ * step_s)`` and the default
+            uniform jump, ``movement.default_uniform_weight(step_s)``.
+
+        Raises
+        ------
+        ValueError
+            When the model is not fitted or learned no movement model.
+        """
+        variance = getattr(self, "walk_variance_cm2_per_s_", math.nan)
+        if not variance > 0:
+            raise ValueError(
+                "the place model has no learned movement model (not fitted, too few tracked frames, or saved "
+                "without one); fit it again on a session with tracking"
+            )
+        return MovementModel(math.sqrt(variance * step_s), default_uniform_weight(step_s), step_s)
 
     def readiness(self, *, with_cv_error: bool = False) -> Readiness:
         """Summarise coverage, running time and tuning so far, without changing the fit.
@@ -224,6 +266,7 @@ class PlaceModel(OnlineCounts):
             spikes_per_unit=counts.sum(axis=1),
             n_tuned_units=n_tuned,
             median_cv_error_cm=cv,
+            walk_sd_cm_per_sqrt_s=math.sqrt(getattr(self, "walk_variance_cm2_per_s_", math.nan)),
         )
 
 
@@ -356,6 +399,7 @@ class PlaceModel(OnlineCounts):
             "t0_s": self._t0,
             "running_s": self._running_s,
             "fitted": fitted,
+            "walk_variance_cm2_per_s": getattr(self, "walk_variance_cm2_per_s_", math.nan) if fitted else math.nan,
         }
         if self._cv_pairs:
             sample, row = (np.concatenate(parts) for parts in zip(*self._cv_pairs))
@@ -421,6 +465,8 @@ class PlaceModel(OnlineCounts):
         if header["fitted"]:
             for name in cls._LEARNED:
                 setattr(model, name, arrays[name.rstrip("_")])
+            # Files written before the movement model was learned have none.
+            model.walk_variance_cm2_per_s_ = float(header.get("walk_variance_cm2_per_s", math.nan))
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
         return model

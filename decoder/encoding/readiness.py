@@ -7,6 +7,7 @@ seconds live here beside it, so that the threshold is written once.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -44,6 +45,10 @@ class Readiness(Mapping):
     median_cv_error_cm : float or None
         Cross-validated median decoding error, cm, when asked for; NaN
         while there is too little data.
+    walk_sd_cm_per_sqrt_s : float
+        S.d. of the learned movement model's random walk over 1 s, cm
+        (over a step of ``step_s`` it is this times ``sqrt(step_s)``); NaN
+        before a fit or when the tracking could not tell.
     """
 
     coverage: float
@@ -52,6 +57,7 @@ class Readiness(Mapping):
     spikes_per_unit: np.ndarray
     n_tuned_units: int
     median_cv_error_cm: float | None = None
+    walk_sd_cm_per_sqrt_s: float = math.nan
 
     def __getitem__(self, key: str) -> Any:
         if key not in self.__dataclass_fields__:

@@ -39,6 +39,17 @@ LOG_WEIGHT_FLOOR = -700.0
 #: Normalised posterior values below this are stored as 0, for the same reason.
 PROB_FLOOR = 1e-300
 
+#: With a uniform jump of weight ``eps`` in the prior, posterior values below
+#: ``UNIFORM_CUTOFF * eps / n_valid`` are stored as 0, so that the next
+#: prediction and the summaries cover only the rows where the posterior
+#: lives rather than the whole arena. The mass dropped is at most
+#: ``UNIFORM_CUTOFF * eps`` per step, a thousandth of what the jump spreads
+#: over the bins at the next step; since every valid bin's prior holds at
+#: least ``eps / n_valid`` from the jump, no prior value moves by more than
+#: a relative ~``UNIFORM_CUTOFF`` (tests/test_decoding.py compares the step
+#: with the reference filter, ``decoder.inference.filtering``).
+UNIFORM_CUTOFF = 1e-3
+
 #: If prior times likelihood (scaled so that the best valid bin has
 #: likelihood 1) sums to less than this, the prior has no mass where the
 #: spikes point and the product has underflowed; the caller must fall back.
@@ -298,13 +309,13 @@ def poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_to
 # ---------------------------------------------------------------------------
 
 
-def posterior_from_log_numpy(log_like, prior, valid, out):
+def posterior_from_log_numpy(log_like, prior, valid, out, prob_floor=PROB_FLOOR):
     """Normalise ``prior * exp(log_like)`` over the valid bins (a step of :func:`decode_step_numpy`).
 
     The log-likelihood is shifted by its maximum over the valid bins before
     exponentiation (the log-sum-exp device), so no weight overflows. Weights
     more than ``-LOG_WEIGHT_FLOOR`` nats below the best bin, and normalised
-    values below ``PROB_FLOOR``, are set to 0.
+    values below ``prob_floor``, are set to 0.
 
     Parameters
     ----------
@@ -316,6 +327,8 @@ def posterior_from_log_numpy(log_like, prior, valid, out):
         Bins the animal can occupy; at least one must be True.
     out : ndarray, shape (n_bins,), float64
         Receives the posterior: sums to 1, exactly 0 outside ``valid``.
+    prob_floor : float, default ``PROB_FLOOR``
+        Normalised values below it are stored as 0 (see ``UNIFORM_CUTOFF``).
 
     Returns
     -------
@@ -334,7 +347,7 @@ def posterior_from_log_numpy(log_like, prior, valid, out):
         if not total >= MIN_EVIDENCE:
             return False
         v = w / total
-    out[:] = np.where(v >= PROB_FLOOR, v, 0.0)
+    out[:] = np.where(v >= prob_floor, v, 0.0)
     return True
 
 
@@ -940,20 +953,45 @@ def _weigh(log_like, best, prior, valid, out):
 
 
 @numba.njit(cache=True, fastmath={"reassoc"})
-def _normalise(out, total, centers_x_cm, centers_y_cm):
-    """Divide by ``total`` (values below ``PROB_FLOOR`` become 0); return the new sum and the mean centre."""
+def _normalise(out, total, centers_x_cm, centers_y_cm, prob_floor):
+    """Divide by ``total`` (values below ``prob_floor`` become 0); return the new sum and the mean centre."""
     inv = 1.0 / total
     s = 0.0
     mean_x = 0.0
     mean_y = 0.0
     for j in range(out.shape[0]):
         v = out[j] * inv
-        v = v if v >= PROB_FLOOR else 0.0
+        v = v if v >= prob_floor else 0.0
         out[j] = v
         s += v
         mean_x += v * centers_x_cm[j]
         mean_y += v * centers_y_cm[j]
     return s, mean_x, mean_y
+
+
+@numba.njit(cache=True, fastmath={"reassoc"})
+def _mix_uniform(predicted, j0, j1, uniform_weight, uniform_level, valid):
+    """``predicted = (1 - uniform_weight) * predicted + uniform_level`` on the valid bins, 0 elsewhere.
+
+    ``predicted`` is read on bins ``j0..j1 - 1`` only and taken as 0 outside
+    them (where :func:`_predict_grid_rows` writes nothing).
+    """
+    keep = 1.0 - uniform_weight
+    for j in range(predicted.shape[0]):
+        if not valid[j]:
+            predicted[j] = 0.0
+        elif j0 <= j < j1:
+            predicted[j] = keep * predicted[j] + uniform_level
+        else:
+            predicted[j] = uniform_level
+
+
+@numba.njit(cache=True)
+def _prob_floor(uniform_weight, uniform_level):
+    """Normalised posterior values below this are stored as 0 (see ``UNIFORM_CUTOFF``)."""
+    if uniform_weight == 0.0:
+        return PROB_FLOOR
+    return max(PROB_FLOOR, UNIFORM_CUTOFF * uniform_level)
 
 
 @numba.njit(cache=True)
@@ -965,6 +1003,8 @@ def decode_step(
     expected_total,
     valid,
     uniform,
+    uniform_weight,
+    uniform_level,
     transition_kind,
     ny,
     nx,
@@ -997,8 +1037,9 @@ def decode_step(
     ``LIKELIHOOD_REFRESH_STEPS``); on a grid the prediction, the
     exponentials and the summaries cover only the rows the prior can reach
     (the previous posterior's non-zero rows grown by the random walk's
-    reach), outside which the posterior is exactly 0; and one call replaces
-    a dozen.
+    reach), outside which the posterior is exactly 0 (with a uniform jump
+    every bin is weighed, and the rows carried to the next step are those
+    above the ``UNIFORM_CUTOFF``); and one call replaces a dozen.
 
     Parameters
     ----------
@@ -1016,6 +1057,13 @@ def decode_step(
         Bins decoded over; at least one.
     uniform : ndarray, shape (n_bins,), float64
         1.0 on valid bins, 0.0 elsewhere: the flat prior.
+    uniform_weight : float
+        Probability per step of a jump to a uniformly drawn valid bin, in
+        [0, 1): the prior is ``(1 - uniform_weight) * prediction +
+        uniform_level`` on the valid bins (with a transition and a previous
+        posterior). 0 gives the plain random walk.
+    uniform_level : float
+        ``uniform_weight / n_valid``.
     transition_kind : int
         ``NO_TRANSITION``, ``GRID_TRANSITION`` or ``DENSE_TRANSITION``.
     ny, nx : int
@@ -1086,15 +1134,15 @@ def decode_step(
         now[fired_rows[i]] += fired_counts[i]
         n_spikes += fired_counts[i]
     return _decode_counts(
-        n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
-        transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
-        log_like, previous, predicted, scratch, grid_scratch, out,
+        n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx,
+        kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state,
+        unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
     )
 
 
 @numba.njit(cache=True)
 def _decode_counts(
-    n_spikes, log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
+    n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
     transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
     log_like, previous, predicted, scratch, grid_scratch, out,
 ):
@@ -1118,6 +1166,10 @@ def _decode_counts(
     elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
         predict_dense(previous[:n_bins], transition, predicted)
         prior = predicted
+    if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
+        # The uniform jump gives every valid bin prior mass: weigh them all.
+        _mix_uniform(predicted, y0 * nx, (y1 + 1) * nx, uniform_weight, uniform_level, valid)
+        y0, y1 = 0, ny - 1
 
     post = out[:n_bins]
     status = STEP_OK
@@ -1131,7 +1183,9 @@ def _decode_counts(
         total = _weigh(log_like, best, uniform, valid, post)
     post[:j0] = 0.0
     post[j1:] = 0.0
-    total, mean_x, mean_y = _normalise(post[j0:j1], total, centers_x_cm[j0:j1], centers_y_cm[j0:j1])
+    total, mean_x, mean_y = _normalise(
+        post[j0:j1], total, centers_x_cm[j0:j1], centers_y_cm[j0:j1], _prob_floor(uniform_weight, uniform_level)
+    )
     y0, y1 = _support_rows(post, nx, y0, y1)
     if transition_kind != NO_TRANSITION:
         state[STATE_HAS_PREVIOUS] = 1
@@ -1161,6 +1215,8 @@ def decode_step_numpy(
     expected_total,
     valid,
     uniform,
+    uniform_weight,
+    uniform_level,
     transition_kind,
     ny,
     nx,
@@ -1196,9 +1252,11 @@ def decode_step_numpy(
         prior = predict_grid_numpy(previous[:n_bins], ny, nx, kernel_1d, mask_f, inv_norm, predicted, scratch)
     elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
         prior = predict_dense_numpy(previous[:n_bins], transition, predicted)
+    if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
+        prior = np.where(valid, (1.0 - uniform_weight) * prior + uniform_level, 0.0)
     post = out[:n_bins]
     status = STEP_OK
-    if not posterior_from_log_numpy(log_like, prior, valid, post):
+    if not posterior_from_log_numpy(log_like, prior, valid, post, _prob_floor(uniform_weight, uniform_level)):
         status = STEP_UNDERFLOW
         posterior_from_log_numpy(log_like, uniform, valid, post)
     if transition_kind != NO_TRANSITION:
@@ -1214,7 +1272,7 @@ def decode_step_numpy(
 @numba.njit(cache=True)
 def decode_window_step(
     held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
-    transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
+    uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
     zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
 ):
     """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
@@ -1257,8 +1315,8 @@ def decode_window_step(
     for i in range(lo, hi):
         now[held_rows[i]] += 1.0
     status, map_bin, n_hpd, n_spikes, peak = _decode_counts(
-        float(hi - lo), log_rate, expected_total, valid, uniform, transition_kind, ny, nx, kernel_1d, mask_f,
-        inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
+        float(hi - lo), log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny,
+        nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
         unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
     )
     return status, map_bin, n_hpd, n_spikes, peak, lo

@@ -264,6 +264,12 @@ class BayesDecoder:
     posterior moved one step by a :class:`RandomWalk`. Should that prior
     have no mass where the spikes point (the product underflows), the window
     is decoded with the uniform prior instead and ``underflow_resets`` counts it.
+    With ``uniform_weight > 0`` the walk is mixed with a jump to anywhere, so
+    the prior has mass everywhere and that cannot happen; with
+    ``likelihood_temperature > 1`` every window's log-likelihood is divided
+    by it, which widens the posterior of overdispersed, correlated counts
+    (``decoder.encoding.calibration``). Both together, with windows that do
+    not overlap, are the filter of ``decoder.inference.filtering.filter_posteriors``.
 
     Parameters
     ----------
@@ -279,6 +285,14 @@ class BayesDecoder:
     prior : {"uniform", "state_space"}, default "uniform"
     random_walk_sd_cm : float, default 3.0
         S.d. of the random walk per decoded window (cm), for ``"state_space"``.
+    uniform_weight : float, default 0.0
+        Probability per window of a jump to a uniformly drawn valid bin, in
+        [0, 1), for ``"state_space"``: the prior is ``(1 - uniform_weight)``
+        times the moved posterior plus ``uniform_weight / n_valid`` on every
+        valid bin. Posterior values below ``_kernels.UNIFORM_CUTOFF *
+        uniform_weight / n_valid`` are then stored as 0.
+    likelihood_temperature : float, default 1.0
+        The log-likelihood is divided by it (> 0; > 1 widens the posterior).
     zone_masks : ndarray of bool, shape (n_zones, n_bins), optional
         Bins of each target zone; the posterior mass in each is reported.
     rate_floor_hz : float, default 0.01
@@ -319,6 +333,8 @@ class BayesDecoder:
         *,
         prior: str = "uniform",
         random_walk_sd_cm: float = 3.0,
+        uniform_weight: float = 0.0,
+        likelihood_temperature: float = 1.0,
         zone_masks: np.ndarray | None = None,
         rate_floor_hz: float = 0.01,
         backend: str = "numba",
@@ -331,6 +347,14 @@ class BayesDecoder:
         self.prior = prior
         self.random_walk_sd_cm = _positive_finite("random_walk_sd_cm", random_walk_sd_cm)
         self.rate_floor_hz = _positive_finite("rate_floor_hz", rate_floor_hz)
+        self.likelihood_temperature = _positive_finite("likelihood_temperature", likelihood_temperature)
+        if (
+            isinstance(uniform_weight, bool)
+            or not isinstance(uniform_weight, (int, float, np.integer, np.floating))
+            or not 0 <= uniform_weight < 1
+        ):
+            raise ValueError(f"uniform_weight must be a probability in [0, 1), got {uniform_weight!r}")
+        self.uniform_weight = float(uniform_weight)
         self.backend = backend
         self._k = _kernel_set(backend)
 
@@ -355,9 +379,12 @@ class BayesDecoder:
         self.n_units, self.n_bins = rates.shape
         floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
         floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
-        self._log_rate = np.ascontiguousarray(np.log(floored))
+        # Both terms of the log-likelihood are linear in them, so dividing
+        # here tempers every window, and the in-place updates stay exact.
+        # (Dividing by 1.0 changes no bit.)
+        self._log_rate = np.ascontiguousarray(np.log(floored) / self.likelihood_temperature)
         with np.errstate(over="ignore"):
-            self._expected_total = self.window_s * floored.sum(axis=0)
+            self._expected_total = self.window_s * floored.sum(axis=0) / self.likelihood_temperature
         if not np.all(np.isfinite(self._expected_total)):
             raise ValueError(
                 "rate_maps_hz sum to an infinite expected spike count; check the units (Hz) of the maps"
@@ -407,6 +434,8 @@ class BayesDecoder:
             self._expected_total,
             self._valid,
             self._uniform,
+            self.uniform_weight,
+            self.uniform_weight / float(valid.sum()),
             kind,
             ny,
             nx,

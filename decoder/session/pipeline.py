@@ -29,7 +29,6 @@ import numpy as np
 
 from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import PlaceModel
-from decoder.inference.decoding import BayesDecoder
 from decoder.messages import (
     ControlCommand,
     Heartbeat,
@@ -45,7 +44,7 @@ from decoder.session.judge import StepJudge
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
 from decoder.session.scoring import ErrorHistogram, VisitScore
-from decoder.session.steps import DecodingSteps, StepSchedule
+from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder
 from decoder.session.streams import SpikeWatermark, StreamHealth
 from decoder.session.triggers import SessionCapError, StepInput, TriggerBank
 from decoder.space.zones import zone_masks
@@ -353,29 +352,29 @@ class Pipeline:
             name: float((mask & learned).sum() / mask.sum()) for name, mask in zip(self.zone_names, self._zone_masks)
         }
         self.readiness = readiness
+        installed = self.install_model(self.model, t_s)
+        if self.config.decoder.method == "filter":
+            dec = self.steps.decoder
+            readiness["filter"] = {
+                "step_s": dec.window_s,
+                "walk_sd_cm": dec.random_walk_sd_cm,
+                "uniform_weight": dec.uniform_weight,
+                "likelihood_temperature": dec.likelihood_temperature,
+            }
         notices = [Notice("fitted", t_s, {"readiness": readiness})]
         for name, covered in readiness["zone_coverage"].items():
             if covered < ZONE_COVERAGE_WARNING:
                 log.warning("zone %r: only %.0f%% of its bins are in the learned map; learn longer before arming",
                             name, 100 * covered)
                 notices.append(Notice("zone_not_learned", t_s, {"zone": name, "coverage": covered}))
-        notices.extend(self.install_model(self.model, t_s))
+        notices.extend(installed)
         return notices
 
     def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False) -> list[Notice]:
         """Decode with ``model`` from the next step on (triggers stay disarmed)."""
         d = self.config.decoder
         # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
-        decoder = BayesDecoder(
-            model.rate_maps_hz_,
-            self.environment,
-            model.visited_mask_,
-            window_s=d.window_s,
-            prior=d.prior,
-            random_walk_sd_cm=d.random_walk_sd_cm,
-            zone_masks=self._zone_masks,
-            rate_floor_hz=self.config.model.rate_floor_hz,
-        )
+        decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz)
         steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters)
         self.model = model
         self.model_is_loaded = loaded

@@ -9,16 +9,66 @@ allowed lateness; the window of step ``k`` is ``(t_k - window_s, t_k]``.
 
 from __future__ import annotations
 
+import logging
 import math
 
 import numpy as np
 
+from decoder.config import DecoderSettings
+from decoder.encoding.movement import default_uniform_weight
+from decoder.encoding.place_model import PlaceModel
 from decoder.inference.binning import SpikeWindow
 from decoder.inference.decoding import BayesDecoder, DecodedStep
+from decoder.space.environments import Environment
+
+logger = logging.getLogger(__name__)
 
 #: Steps closed by one message at most; beyond it the schedule skips ahead
 #: (counted as ``steps_skipped``), so one message can never stall the loop.
 MAX_STEPS_PER_MESSAGE = 500
+
+
+def build_decoder(model: PlaceModel, environment: Environment, settings: DecoderSettings,
+                  zone_masks: np.ndarray, rate_floor_hz: float) -> BayesDecoder:
+    """The session's decoder for a fitted model, as ``settings.method`` asks.
+
+    ``"sliding_window"``: windows of ``window_s`` with ``settings.prior`` and
+    ``random_walk_sd_cm``. ``"filter"``: windows of ``step_s`` (each spike
+    counted once), the model's learned movement (walk s.d. for the
+    environment's bins, uniform jump) and ``likelihood_temperature``. A model
+    without a learned movement model (saved by an earlier version) falls
+    back to ``random_walk_sd_cm`` and the default jump, with a warning.
+
+    Parameters
+    ----------
+    model : PlaceModel
+        Fitted.
+    environment : Environment
+    settings : DecoderSettings
+    zone_masks : ndarray of bool, shape (n_zones, n_bins)
+    rate_floor_hz : float
+
+    Returns
+    -------
+    BayesDecoder
+    """
+    common = dict(zone_masks=zone_masks, rate_floor_hz=rate_floor_hz, prior=settings.prior)
+    if settings.method == "sliding_window":
+        return BayesDecoder(model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.window_s,
+                            random_walk_sd_cm=settings.random_walk_sd_cm, **common)
+    try:
+        movement = model.movement_model(settings.step_s)
+        walk_sd_cm = movement.walk_sd_cm(environment.bin_cm)
+        uniform_weight = movement.uniform_weight
+    except ValueError as exc:
+        logger.warning("%s; the filter uses random_walk_sd_cm = %g cm instead", exc, settings.random_walk_sd_cm)
+        walk_sd_cm = settings.random_walk_sd_cm
+        uniform_weight = default_uniform_weight(settings.step_s)
+    return BayesDecoder(
+        model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
+        random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight,
+        likelihood_temperature=settings.likelihood_temperature, **common,
+    )
 
 
 class StepSchedule:
