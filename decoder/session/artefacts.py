@@ -1,0 +1,163 @@
+"""Spike sanity: spikes no neuron could have fired are left out of learning and decoding.
+
+Two guards, both on data time, both over a short history carried from one
+spike batch to the next:
+
+* **Per-unit rate ceiling.** A neuron's absolute refractory period, about
+  1-2 ms (common practice; the usual ISI-violation criterion of spike-sorting
+  quality metrics uses a similar bound), caps its instantaneous rate. A unit
+  whose ``ceiling_hz * window_s + 1`` spikes fall within less than one window
+  (mean ISI under ``1 / ceiling_hz``) is a noise transient on its channel: all
+  of those spikes are flagged. With the defaults (500 Hz, i.e. a 2 ms
+  refractory period; 10 ms window) that is 6 spikes within 10 ms. A place
+  cell's complex-spike burst, 2-6 spikes at 3-6 ms ISI (common practice),
+  puts at most 4 spikes in any 10 ms and passes untouched. A lone short ISI
+  is not flagged: sorted units carry a few such violations, and dropping
+  them would gain nothing.
+* **Population-burst guard.** A motion or electrical artefact reaches every
+  channel in the same instant. When at least ``max(population_min_units,
+  ceil(population_fraction * units seen))`` distinct units fire within
+  ``population_window_s`` (defaults 4 units, 50 %, 0.5 ms), every spike in
+  that window is flagged. A sharp-wave ripple recruits many cells, but spread
+  over ~50-100 ms with each cell firing a spike or two (common practice), so
+  only a few percent of the units fall in any one 0.5 ms: it stays far below
+  half of them.
+
+A spike flagged by both guards is counted once, under ``unit_rate``.
+Spikes of earlier batches were already handed on and are never recalled: a
+transient that starts at the very end of one batch may pass its first
+``ceiling_hz * window_s`` spikes, the rest are caught.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+#: The reasons a spike is flagged, as counted in :attr:`SpikeSanity.counts`.
+REASONS = ("unit_rate", "population")
+
+
+class SpikeSanity:
+    """Flags artefact spikes, batch by batch.
+
+    Parameters
+    ----------
+    ceiling_hz : float, default 500.0
+        Per-unit instantaneous-rate ceiling (Hz): 1 / an absolute refractory
+        period of 2 ms (common practice). 0 turns the per-unit guard off.
+    window_s : float, default 0.010
+        Window over which a unit's rate is held to the ceiling (s).
+    population_fraction : float, default 0.5
+        Fraction of the units seen so far that, firing within
+        ``population_window_s``, make a population artefact. 0 turns the
+        population guard off.
+    population_window_s : float, default 0.0005
+        The instant of a population artefact (s).
+    population_min_units : int, default 4
+        At least this many distinct units make a population artefact, so that
+        a session with few units does not flag chance coincidences.
+
+    Attributes
+    ----------
+    counts : dict of str to int
+        Flagged spikes so far, by reason (``REASONS``).
+    """
+
+    def __init__(self, ceiling_hz: float = 500.0, window_s: float = 0.010, population_fraction: float = 0.5,
+                 population_window_s: float = 0.0005, population_min_units: int = 4) -> None:
+        if ceiling_hz < 0 or not math.isfinite(ceiling_hz):
+            raise ValueError(f"the per-unit rate ceiling must be a finite rate >= 0 Hz (0 = off), got {ceiling_hz}")
+        if not window_s > 0 or not population_window_s > 0:
+            raise ValueError(f"artefact windows must be > 0 s, got {window_s} and {population_window_s}")
+        if not 0 <= population_fraction <= 1:
+            raise ValueError(f"the population fraction must lie in [0, 1] (0 = off), got {population_fraction}")
+        if population_min_units < 2:
+            raise ValueError(f"a population artefact needs at least 2 units, got {population_min_units}")
+        self.ceiling_hz = ceiling_hz
+        self.window_s = window_s
+        self.population_fraction = population_fraction
+        self.population_window_s = population_window_s
+        self.population_min_units = population_min_units
+        # Spikes allowed within one window; one more within less than a window is a transient.
+        self._max_in_window = int(math.floor(ceiling_hz * window_s + 1e-9)) if ceiling_hz > 0 else 0
+        self._horizon_s = max(window_s if ceiling_hz > 0 else 0.0,
+                              population_window_s if population_fraction > 0 else 0.0)
+        self._units_seen: set[int] = set()
+        self._t = np.empty(0)
+        self._u = np.empty(0, np.int64)
+        self.counts = dict.fromkeys(REASONS, 0)
+
+    def keep(self, t_s: np.ndarray, unit_id: np.ndarray) -> np.ndarray:
+        """The spikes of one batch to hand on; the others are counted in ``counts``.
+
+        Parameters
+        ----------
+        t_s : ndarray of float64, shape (n,)
+            Spike times (s, data time), non-decreasing.
+        unit_id : ndarray of int64, shape (n,)
+
+        Returns
+        -------
+        keep : ndarray of bool, shape (n,)
+        """
+        n = t_s.size
+        if n == 0 or self._horizon_s == 0.0:
+            return np.ones(n, bool)
+        self._units_seen.update(unit_id.tolist())
+        t = np.concatenate((self._t, t_s))
+        u = np.concatenate((self._u, unit_id))
+        n_old = self._t.size
+        by_rate = self._unit_rate_flags(t, u)[n_old:] if self._max_in_window else np.zeros(n, bool)
+        by_population = (self._population_flags(t, u)[n_old:] if self.population_fraction > 0
+                         else np.zeros(n, bool))
+        newest = t_s[-1]
+        recent = (t > newest - self._horizon_s) & (t <= newest)
+        self._t, self._u = t[recent], u[recent]
+        flagged = by_rate | by_population
+        n_rate = int(np.count_nonzero(by_rate))
+        if n_rate:
+            self.counts["unit_rate"] += n_rate
+        n_pop = int(np.count_nonzero(flagged)) - n_rate
+        if n_pop:
+            self.counts["population"] += n_pop
+        return ~flagged
+
+    def _unit_rate_flags(self, t: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Spikes in any run of ``_max_in_window + 1`` spikes of one unit spanning less than a window."""
+        m = self._max_in_window
+        flags = np.zeros(t.size, bool)
+        if t.size <= m:
+            return flags
+        order = np.lexsort((t, u))
+        ts, us = t[order], u[order]
+        dense = (us[m:] == us[:-m]) & (ts[m:] - ts[:-m] < self.window_s)
+        if not dense.any():
+            return flags
+        flag_sorted = np.zeros(t.size, bool)
+        for k in range(m + 1):
+            flag_sorted[k:k + dense.size] |= dense
+        flags[order] = flag_sorted
+        return flags
+
+    def _population_flags(self, t: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Spikes in any window of ``population_window_s`` where enough distinct units fire."""
+        flags = np.zeros(t.size, bool)
+        if t.size < self.population_min_units:
+            return flags
+        order = np.argsort(t, kind="stable")
+        ts, us = t[order], u[order]
+        end = np.searchsorted(ts, ts + self.population_window_s, side="right")
+        # Enough spikes is necessary for enough units: only those few windows count units.
+        candidates = np.flatnonzero(end - np.arange(ts.size) >= self.population_min_units)
+        if candidates.size == 0:
+            return flags
+        needed = max(self.population_min_units, math.ceil(self.population_fraction * len(self._units_seen)))
+        flag_sorted = np.zeros(t.size, bool)
+        for i in candidates:
+            j = end[i]
+            if j - i >= needed and np.unique(us[i:j]).size >= needed:
+                flag_sorted[i:j] = True
+        flags[order] = flag_sorted
+        return flags
