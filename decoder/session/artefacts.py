@@ -38,6 +38,10 @@ import numpy as np
 #: The reasons a spike is flagged, as counted in :attr:`SpikeSanity.counts`.
 REASONS = ("unit_rate", "population")
 
+#: Times closer than this count as equal (s): far below one sample at 30 kHz (33 µs), so spikes at
+#: exactly the refractory bound are not flagged for a rounding error.
+TIME_TOLERANCE_S = 1e-6
+
 
 class SpikeSanity:
     """Flags artefact spikes, batch by batch.
@@ -132,7 +136,7 @@ class SpikeSanity:
             return flags
         order = np.lexsort((t, u))
         ts, us = t[order], u[order]
-        dense = (us[m:] == us[:-m]) & (ts[m:] - ts[:-m] < self.window_s)
+        dense = (us[m:] == us[:-m]) & (ts[m:] - ts[:-m] < self.window_s - TIME_TOLERANCE_S)
         if not dense.any():
             return flags
         flag_sorted = np.zeros(t.size, bool)
