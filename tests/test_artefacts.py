@@ -17,7 +17,7 @@ import pytest
 
 from decoder.config import ConfigError
 from decoder.messages import SpikeBatch
-from decoder.session.artefacts import SpikeSanity
+from decoder.session.artefacts import SpikeSanity, artefact_flags, artefact_flags_numpy
 from decoder.session.outputs import StepOutput
 from decoder.session.pipeline import Pipeline
 from test_pipeline import _config, _messages
@@ -101,6 +101,26 @@ def test_the_unit_rule_matches_its_definition_on_random_trains():
         sanity = SpikeSanity(population_fraction=0.0)
         flagged = ~sanity.keep(t, u)
         assert np.array_equal(flagged, _brute_force_unit_rate(t, u, 5, 0.010))
+
+
+def test_the_kernel_matches_its_numpy_twin():
+    # The numpy twin, itself checked against the rule's definition above, is the reference.
+    rng = np.random.default_rng(11)
+    for trial in range(200):
+        n = int(rng.integers(0, 150))
+        t = np.sort(rng.uniform(0.0, 0.05, n))
+        u = rng.integers(0, int(rng.integers(1, 12)), n).astype(np.int64)
+        if trial % 3 == 0 and n:
+            # Ties and a transient: equal times happen at a 30 kHz sampling clock.
+            t = np.round(t * 30_000) / 30_000
+            u[: n // 2] = 0
+        min_units = int(rng.choice([0, 2, 3, 4]))
+        max_in_window = int(rng.choice([0, 3, 5]))
+        args = (t, u, max_in_window, 0.010, 0.0005, min_units)
+        kernel, twin = artefact_flags(*args), artefact_flags_numpy(*args)
+        assert np.array_equal(kernel, twin)
+        if max_in_window and not min_units:
+            assert np.array_equal(twin > 0, _brute_force_unit_rate(t, u, max_in_window, 0.010))
 
 
 # -- the population-burst guard -------------------------------------------------
