@@ -228,9 +228,10 @@ class SpikeSanity:
             unsorted = np.empty_like(flags)
             unsorted[order] = flags
             flags = unsorted
+        # t is sorted: the history is the slice of the last horizon up to this batch's newest spike.
         newest = t_s[-1]
-        recent = (t > newest - self._horizon_s) & (t <= newest)
-        self._t, self._u = t[recent], u[recent]
+        lo, hi = np.searchsorted(t, (newest - self._horizon_s, newest), side="right")
+        self._t, self._u = t[lo:hi], u[lo:hi]
         flags = flags[n_old:]
         if not flags.any():
             return np.ones(n, bool)
