@@ -25,8 +25,9 @@ spike batch to the next:
 
 A spike flagged by both guards is counted once, under ``unit_rate``.
 The rules run in one small numba kernel, :func:`artefact_flags`; its numpy
-twin :func:`artefact_flags_numpy` is the tests' reference (a batch of a few
-spikes costs ~30 µs in numpy calls, ~2 µs in the kernel).
+twin :func:`artefact_flags_numpy` is the tests' reference (measured on the
+2-core machine, for a batch of 5-20 spikes with its history: the twin ~25 µs,
+the kernel under 2 µs).
 Spikes of earlier batches were already handed on and are never recalled: a
 transient that starts at the very end of one batch may pass its first
 ``ceiling_hz * window_s`` spikes, the rest are caught.
