@@ -316,13 +316,40 @@ class SessionSettings:
     #: mean the clock truly moved: the session follows it and the triggers disarm. A rig sends a heartbeat at least once per decoding step
     #: (PROTOCOL.md), so seconds without data time moving mean an outage or a corrupt stamp.
     max_time_jump_s: float = 5.0
+    #: Spike sanity (``decoder.session.artefacts``): per-unit instantaneous-rate ceiling (Hz), 1 / an
+    #: absolute refractory period of 2 ms (common practice). A unit firing more than
+    #: ``artefact_ceiling_hz * artefact_window_s`` spikes plus one within less than
+    #: ``artefact_window_s`` is a noise transient: those spikes are left out of learning and
+    #: decoding and counted (``artefact_spikes``). 0 turns this guard off.
+    artefact_ceiling_hz: float = 500.0
+    #: The window over which a unit is held to ``artefact_ceiling_hz`` (s); 10 ms passes a place
+    #: cell's complex-spike burst (2-6 spikes at 3-6 ms ISI, common practice).
+    artefact_window_s: float = 0.010
+    #: Population-burst guard: this fraction of the units seen so far firing within
+    #: ``artefact_population_window_s`` is a motion or electrical artefact; all those spikes are left
+    #: out. A sharp-wave ripple spreads its spikes over ~100 ms (common practice), far below it. 0 = off.
+    artefact_population_fraction: float = 0.5
+    #: The instant of a population artefact (s).
+    artefact_population_window_s: float = 0.0005
+    #: A population artefact takes at least this many distinct units, so few units never coincide by chance.
+    artefact_population_min_units: int = 4
 
     def __post_init__(self) -> None:
         if self.learn_s < 0:
             raise ConfigError(f"[session] learn_s must be >= 0, got {self.learn_s}")
         if self.false_margin_cm < 0:
             raise ConfigError(f"[session] false_margin_cm must be >= 0, got {self.false_margin_cm}")
-        _positive("session", max_time_jump_s=self.max_time_jump_s)
+        _positive("session", max_time_jump_s=self.max_time_jump_s, artefact_window_s=self.artefact_window_s,
+                  artefact_population_window_s=self.artefact_population_window_s)
+        if not 0 <= self.artefact_ceiling_hz < math.inf:
+            raise ConfigError(f"[session] artefact_ceiling_hz must be a rate >= 0 Hz (0 turns the guard off), "
+                              f"got {self.artefact_ceiling_hz}")
+        if not 0 <= self.artefact_population_fraction <= 1:
+            raise ConfigError(f"[session] artefact_population_fraction must lie in [0, 1] (0 turns the guard "
+                              f"off), got {self.artefact_population_fraction}")
+        if not (isinstance(self.artefact_population_min_units, int) and self.artefact_population_min_units >= 2):
+            raise ConfigError(f"[session] artefact_population_min_units must be an integer >= 2, "
+                              f"got {self.artefact_population_min_units!r}")
 
 
 @dataclass(frozen=True)

@@ -21,6 +21,7 @@ model decodes every step; triggers may be armed).
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 from collections.abc import Callable
@@ -38,6 +39,7 @@ from decoder.messages import (
     SyncPulse,
     TrackerFrames,
 )
+from decoder.session.artefacts import SpikeSanity
 from decoder.session.clock import ClockMismatchError
 from decoder.session.digest import StepDigest
 from decoder.session.judge import StepJudge
@@ -92,10 +94,14 @@ class Pipeline:
             "decode_steps": 0,
             "events": 0,
             "false_events": 0,
+            "artefact_spikes": 0,
         }
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
         self.health = StreamHealth()
+        s = config.session
+        self.spike_sanity = SpikeSanity(s.artefact_ceiling_hz, s.artefact_window_s, s.artefact_population_fraction,
+                                        s.artefact_population_window_s, s.artefact_population_min_units)
         self.watermark = SpikeWatermark(config.session.max_time_jump_s)
         self._spike_source = config.sources.spikes
         self._has_truth = bool(config.sources.truth)
@@ -180,6 +186,12 @@ class Pipeline:
         if msg.source != self._spike_source:
             return self._off_spike_source(msg)
         t = msg.t_s
+        if t.size:
+            # Before learning and decoding alike; the recorder already holds the raw batch.
+            keep = self.spike_sanity.keep(t, msg.unit_id)
+            if not keep.all():
+                self.counters["artefact_spikes"] += int(keep.size - np.count_nonzero(keep))
+                msg = dataclasses.replace(msg, t_s=t[keep], unit_id=msg.unit_id[keep])
         return self._on_spike_time(t.item(-1) if t.size else -math.inf, msg)
 
     def _on_heartbeat(self, msg: Heartbeat) -> list[Output]:
@@ -468,6 +480,7 @@ class Pipeline:
             "data_time_s": t if math.isfinite(t) else None,
             "counters": dict(self.counters),
             "bad_reasons": dict(self.bad_reasons),
+            "artefact_reasons": dict(self.spike_sanity.counts),
             "sources": self.health.summary(),
             "triggers": self.bank.status(),
             "readiness": self.readiness,

@@ -147,6 +147,7 @@ def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
             "gaps": pipeline.health.total_gaps,
             "stale_messages": c["stale_messages"],
             "unknown_units": c["unknown_units"],
+            "artefact_spikes": {"total": c["artefact_spikes"], **pipeline.spike_sanity.counts},
             "late_spikes": c["late_spikes"],
             "time_jumps": c["time_jumps"],
             "clock_mismatch": c["clock_mismatch"],
