@@ -142,6 +142,36 @@ def artefact_flags_numpy(t_s, unit_id, max_in_window, window_s, population_windo
     return flags
 
 
+@numba.njit(cache=True)
+def _flag_batch_in_order(hist_t, hist_u, t_s, unit_id, max_in_window, window_s, population_window_s, min_units,
+                         horizon_s):
+    """One batch that follows its history in time: its flags, the history kept, the flagged counts.
+
+    The same arithmetic as the Python path of :meth:`SpikeSanity.keep` (concatenate, flag, keep the
+    spikes of the last ``horizon_s`` up to the batch's newest), in one compiled call: a spike batch
+    arrives every few ms and numpy's per-call costs were most of the guard's time.
+    """
+    n_old = hist_t.size
+    n = t_s.size
+    t = np.empty(n_old + n)
+    u = np.empty(n_old + n, np.int64)
+    t[:n_old] = hist_t
+    t[n_old:] = t_s
+    u[:n_old] = hist_u
+    u[n_old:] = unit_id
+    flags = artefact_flags(t, u, max_in_window, window_s, population_window_s, min_units)
+    lo = np.searchsorted(t, t_s[n - 1] - horizon_s, side="right")
+    batch_flags = flags[n_old:]
+    n_rate = 0
+    n_population = 0
+    for f in batch_flags:
+        if f == BY_UNIT_RATE:
+            n_rate += 1
+        elif f == BY_POPULATION:
+            n_population += 1
+    return batch_flags, t[lo:].copy(), u[lo:].copy(), n_rate, n_population
+
+
 class SpikeSanity:
     """Flags artefact spikes, batch by batch.
 
@@ -210,25 +240,26 @@ class SpikeSanity:
             return np.ones(n, bool)
         self._units_seen.update(unit_id.tolist())
         n_old = self._t.size
-        if n_old:
-            t = np.concatenate((self._t, t_s))
-            u = np.concatenate((self._u, unit_id))
-        else:
-            t, u = t_s, unit_id
-        order = None
-        if n_old and self._t[-1] > t_s[0]:
-            # A batch older than the last one (a late batch or a restarted clock): sort the history in.
-            order = np.argsort(t, kind="stable")
-            t, u = t[order], u[order]
         min_units = 0
         if self.population_fraction > 0:
             min_units = max(self.population_min_units,
                             math.ceil(self.population_fraction * len(self._units_seen)))
-        flags = artefact_flags(t, u, self._max_in_window, self.window_s, self.population_window_s, min_units)
-        if order is not None:
-            unsorted = np.empty_like(flags)
-            unsorted[order] = flags
-            flags = unsorted
+        if not n_old or self._t[-1] <= t_s[0]:
+            flags, self._t, self._u, n_rate, n_population = _flag_batch_in_order(
+                self._t, self._u, t_s, unit_id, self._max_in_window, self.window_s, self.population_window_s,
+                min_units, self._horizon_s)
+            if not (n_rate or n_population):
+                return np.ones(n, bool)
+            self.counts["unit_rate"] += n_rate
+            self.counts["population"] += n_population
+            return flags == KEPT
+        # A batch older than the last one (a late batch or a restarted clock): sort the history in.
+        t = np.concatenate((self._t, t_s))
+        u = np.concatenate((self._u, unit_id))
+        order = np.argsort(t, kind="stable")
+        t, u = t[order], u[order]
+        flags = np.empty(t.size, np.int8)
+        flags[order] = artefact_flags(t, u, self._max_in_window, self.window_s, self.population_window_s, min_units)
         # t is sorted: the history is the slice of the last horizon up to this batch's newest spike.
         newest = t_s[-1]
         lo, hi = np.searchsorted(t, (newest - self._horizon_s, newest), side="right")
