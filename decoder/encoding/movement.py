@@ -37,12 +37,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from scipy import optimize, stats
 
-from decoder.inference.decoding import TRUNCATE_SD
+from decoder.inference.decoding import TRUNCATE_SD, positive_finite
 from decoder.space.environments import Environment
 
 #: Default probability per second of a jump to anywhere (uniform over the
@@ -75,14 +74,6 @@ _TRIMMED_NORMAL_VARIANCE = 1.0 - 2.0 * stats.norm.isf(TRIM_FRACTION / 2) * stats
 ) / (1.0 - TRIM_FRACTION)
 
 
-def _positive(name: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
-        raise ValueError(f"{name} must be a positive number, got {value!r}")
-    if not (math.isfinite(value) and value > 0):
-        raise ValueError(f"{name} must be a positive, finite number, got {value!r}")
-    return float(value)
-
-
 def default_uniform_weight(step_s: float) -> float:
     """Uniform mixing weight per step for ``UNIFORM_RATE_PER_S`` jumps per second.
 
@@ -95,7 +86,7 @@ def default_uniform_weight(step_s: float) -> float:
     float
         ``1 - exp(-UNIFORM_RATE_PER_S * step_s)``; about 1e-3 at 20 ms.
     """
-    return -math.expm1(-UNIFORM_RATE_PER_S * _positive("step_s", step_s))
+    return -math.expm1(-UNIFORM_RATE_PER_S * positive_finite("step_s", step_s))
 
 
 @dataclass(frozen=True)
@@ -127,8 +118,8 @@ class MovementModel:
     step_s: float
 
     def __post_init__(self) -> None:
-        _positive("sd_cm", self.sd_cm)
-        _positive("step_s", self.step_s)
+        positive_finite("sd_cm", self.sd_cm)
+        positive_finite("step_s", self.step_s)
         w = self.uniform_weight
         if isinstance(w, bool) or not isinstance(w, (int, float, np.integer, np.floating)) or not 0 <= w < 1:
             raise ValueError(f"uniform_weight must be a probability in [0, 1), got {w!r}")
@@ -175,8 +166,8 @@ class MovementModel:
             too few valid frames (fewer than ``MIN_DISPLACEMENTS``
             displacements at one frame's lag) to estimate the walk.
         """
-        step_s = _positive("step_s", step_s)
-        horizon_s = _positive("horizon_s", horizon_s)
+        step_s = positive_finite("step_s", step_s)
+        horizon_s = positive_finite("horizon_s", horizon_s)
         t = np.asarray(times_s, dtype=np.float64)
         xy = np.asarray(xy_cm, dtype=np.float64)
         if t.ndim != 1 or xy.shape != (t.size, 2):
@@ -236,7 +227,7 @@ class MovementModel:
         float
             S.d. in cm, for ``RandomWalk(..., sd_cm=...)``.
         """
-        bin_cm = _positive("bin_cm", bin_cm)
+        bin_cm = positive_finite("bin_cm", bin_cm)
         b = bin_cm / self.sd_cm
         # Integral over a uniform start in the bin of the normal mass beyond either edge.
         leave = 2.0 / b * (stats.norm.pdf(0.0) - stats.norm.pdf(b) + b * stats.norm.cdf(-b))

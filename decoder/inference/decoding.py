@@ -65,7 +65,8 @@ def _kernel_set(backend: str) -> SimpleNamespace:
     return SimpleNamespace(**{name: getattr(_kernels, name + suffix) for name in _KERNEL_NAMES})
 
 
-def _positive_finite(name: str, value: Any) -> float:
+def positive_finite(name: str, value: Any) -> float:
+    """``value`` as a float; ValueError naming ``name`` unless it is a positive, finite number."""
     if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
         raise ValueError(f"{name} must be a positive number, got {value!r}")
     if not (math.isfinite(value) and value > 0):
@@ -162,7 +163,7 @@ class RandomWalk:
     ) -> None:
         self.environment = environment
         self.valid_mask = _bin_mask("valid_mask", valid_mask, environment.n_bins) & environment.valid_mask
-        self.sd_cm = _positive_finite("sd_cm", sd_cm)
+        self.sd_cm = positive_finite("sd_cm", sd_cm)
         self.backend = backend
         self._k = _kernel_set(backend)
         self._mask_f = self.valid_mask.astype(np.float64)
@@ -341,13 +342,13 @@ class BayesDecoder:
     ) -> None:
         n_bins = environment.n_bins
         self.environment = environment
-        self.window_s = _positive_finite("window_s", window_s)
+        self.window_s = positive_finite("window_s", window_s)
         if prior not in PRIORS:
             raise ValueError(f"prior must be one of {PRIORS}, got {prior!r}")
         self.prior = prior
-        self.random_walk_sd_cm = _positive_finite("random_walk_sd_cm", random_walk_sd_cm)
-        self.rate_floor_hz = _positive_finite("rate_floor_hz", rate_floor_hz)
-        self.likelihood_temperature = _positive_finite("likelihood_temperature", likelihood_temperature)
+        self.random_walk_sd_cm = positive_finite("random_walk_sd_cm", random_walk_sd_cm)
+        self.rate_floor_hz = positive_finite("rate_floor_hz", rate_floor_hz)
+        self.likelihood_temperature = positive_finite("likelihood_temperature", likelihood_temperature)
         if (
             isinstance(uniform_weight, bool)
             or not isinstance(uniform_weight, (int, float, np.integer, np.floating))

@@ -11,8 +11,8 @@ not the centre of a window.
 
 It is the reference the tests and the calibration (``decoder.encoding.calibration``)
 use; the decoding loop's fused kernel (``_kernels.decode_step``) computes
-the same filter one step at a time, with ``uniform_weight = 0`` and
-``temperature = 1`` as it stands.
+the same filter one step at a time (``[decoder] method = "filter"``), with
+a relative cut-off on the posterior when ``uniform_weight > 0``.
 
 :func:`hpd_contains` says whether a bin lies inside a posterior's
 highest-posterior-density region, the test behind coverage figures.
