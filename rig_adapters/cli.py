@@ -10,6 +10,9 @@ Subcommands::
     placeloop monitor   a live web page of the decoding, served on loopback
     placeloop sweep     replay sessions over a grid of settings; the trade-off front
     placeloop report    a self-contained HTML report of a session
+    placeloop import    an NWB recording as a session log
+    placeloop export    a session as NWB, or its decoded steps and events as tables
+    placeloop bridge    LSL streams republished on the wire protocol (placeloop bridge lsl)
 """
 
 from __future__ import annotations
@@ -30,7 +33,7 @@ from rig_adapters.console import CAUTION, setup_logging
 log = logging.getLogger("placeloop")
 
 #: Subcommands handed whole to a module's own ``main(argv)``.
-DELEGATED = ("monitor", "sweep", "report")
+DELEGATED = ("monitor", "sweep", "report", "import", "export", "bridge")
 
 
 def _delegated_main(name: str):
@@ -43,6 +46,12 @@ def _delegated_main(name: str):
         from rig_adapters.monitor.server import main
     elif name == "sweep":
         from rig_adapters.offline.sweep import main
+    elif name == "import":
+        from rig_adapters.exchange.commands import import_main as main
+    elif name == "export":
+        from rig_adapters.exchange.commands import export_main as main
+    elif name == "bridge":
+        from rig_adapters.lsl.command import main
     else:
         from rig_adapters.offline.report import main
     return main
@@ -300,6 +309,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub.add_parser("monitor", help="live web page of the decoding (placeloop monitor --help for its options)")
     sub.add_parser("sweep", help="replay sessions over a grid of settings (placeloop sweep --help)")
     sub.add_parser("report", help="one self-contained HTML report of a session (placeloop report --help)")
+    sub.add_parser("import", help="an NWB recording as a session log (placeloop import --help)")
+    sub.add_parser("export", help="a session as NWB, Parquet or CSV (placeloop export --help)")
+    sub.add_parser("bridge", help="LSL streams onto the wire protocol (placeloop bridge lsl --help)")
 
     p = sub.add_parser("control", help="send a command to a running loop")
     p.add_argument("command", choices=["start-learning", "stop-learning", "fit", "load-model", "arm", "disarm",

@@ -23,8 +23,9 @@ LAYERS = [
     ["rig_adapters.console"],
     ["rig_adapters.wire"],
     ["rig_adapters.sessions"],
+    ["rig_adapters.exchange"],
     ["rig_adapters.sim"],
-    ["rig_adapters.live"],
+    ["rig_adapters.live", "rig_adapters.lsl"],
     ["rig_adapters.offline", "rig_adapters.monitor"],
     ["rig_adapters.cli"],
 ]

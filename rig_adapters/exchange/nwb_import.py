@@ -190,7 +190,7 @@ def _toml_value(value) -> str:
     return repr(float(value))
 
 
-def config_skeleton(recording: NwbRecording, environment: dict, learn: list, learn_source: str) -> str:
+def config_skeleton(recording: NwbRecording, environment: dict, learn: list, learn_source: str, arm: bool) -> str:
     """The TOML config written beside an imported log: valid as it stands, to be completed by the user."""
     env_lines = "\n".join(f"{k} = {_toml_value(v)}" for k, v in environment.items())
     parts = ", ".join(f"{a:g}-{b:g} s" for a, b in learn)
@@ -203,7 +203,8 @@ def config_skeleton(recording: NwbRecording, environment: dict, learn: list, lea
 # size and the bin size below. Check them against the real apparatus.
 #
 # The learning part ({learn_source}: {parts}) is in the log as control requests
-# (start_learning, stop_learning, fit), as an experiment script sends them; [session] learn_s stays 0.
+# (start_learning, stop_learning, fit{", arm" if arm else ""}), as an experiment script sends them; [session] learn_s
+# stays 0. A replay never drives hardware; an armed replay shows which events the rules would have fired.
 
 [environment]  # GUESSED
 {env_lines}
@@ -226,7 +227,7 @@ learn_s = 0.0
 
 
 def session_messages(recording: NwbRecording, start_s: float, stop_s: float, learn: list,
-                     batch_s: float = BATCH_S):
+                     batch_s: float = BATCH_S, arm: bool = True):
     """The recording's messages as a live rig sends them, as ``(t_end_s, messages)`` chunks.
 
     Parameters
@@ -239,6 +240,8 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
         requests land on them exactly.
     batch_s : float
         Data time per spike batch and heartbeat (s).
+    arm : bool
+        Arm the triggers right after the fit, as a script choosing zones in a replay would.
 
     Yields
     ------
@@ -261,7 +264,7 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
     commands: dict[float, list[str]] = {}
     for i, (a, b) in enumerate(learn):
         commands.setdefault(a, []).append("start_learning")
-        commands.setdefault(b, []).append("fit" if i == len(learn) - 1 else "stop_learning")
+        commands.setdefault(b, []).extend(["fit", "arm"][: 1 + arm] if i == len(learn) - 1 else ["stop_learning"])
     first = math.floor(start_s / batch_s) * batch_s
     grid = first + batch_s * np.arange(1, int(math.ceil((stop_s - first) / batch_s)) + 1)
     edges = np.unique(np.concatenate([grid[grid < stop_s], [stop_s], list(commands)]))
@@ -296,7 +299,7 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
 def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = None, head_direction: str | None = None,
                cm_per_unit: float | None = None, start_s: float | None = None, stop_s: float | None = None,
                learn_s: tuple[float, float] | None = None, learn_epoch: str | None = None,
-               learn_trials: tuple[int, int] | None = None, batch_s: float = BATCH_S) -> ImportResult:
+               learn_trials: tuple[int, int] | None = None, batch_s: float = BATCH_S, arm: bool = True) -> ImportResult:
     """Write the session log of an NWB recording, with a config skeleton beside it.
 
     Parameters are those of ``placeloop import`` (see :func:`read_recording`
@@ -330,7 +333,7 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
     learn, learn_source = learning_intervals(recording, start, stop, learn_s, learn_epoch, learn_trials)
     in_range = (recording.frame_t_s >= start) & (recording.frame_t_s < stop)
     environment = guess_environment(recording.frame_xy_cm[in_range], recording.position_dims)
-    text = config_skeleton(recording, environment, learn, learn_source)
+    text = config_skeleton(recording, environment, learn, learn_source, arm)
     parse_config(text, "the config skeleton")  # a skeleton that does not load is a bug here, not the user's
     notes = list(recording.notes)
     if recording.has_waveforms:
@@ -346,10 +349,12 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
         "range_s": [start, stop],
         "learn_intervals_s": [list(p) for p in learn],
         "learn_source": learn_source,
+        "armed_after_fit": arm,
+        "subject": recording.subject,
         "guessed": ["environment"],
         "notes": notes,
     }
-    chunks = session_messages(recording, start, stop, learn, batch_s)
+    chunks = session_messages(recording, start, stop, learn, batch_s, arm)
     write_session_log(log_dir, text, chunks, metadata, recording.session_start_wall_s)
     n_spikes = int(np.count_nonzero((recording.spike_t_s >= start) & (recording.spike_t_s < stop)))
     return ImportResult(Path(log_dir), start, stop, tuple(learn), learn_source, environment,

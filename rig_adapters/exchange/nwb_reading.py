@@ -27,7 +27,7 @@ import numpy as np
 
 log = logging.getLogger(__name__)
 
-__all__ = ["NwbImportError", "NwbRecording", "read_recording", "require_pynwb", "LENGTH_UNITS_CM"]
+__all__ = ["NwbImportError", "NwbRecording", "read_recording", "require_pynwb", "LENGTH_UNITS_CM", "SUBJECT_FIELDS"]
 
 #: Length units a SpatialSeries may name, as centimetres per unit (lower case, after the conversion factor).
 LENGTH_UNITS_CM = {
@@ -80,6 +80,8 @@ class NwbRecording:
     position_dims : int
         1 for a linear series, 2 for a planar one.
     epochs, trials : list of (start_s, stop_s, tags)
+    subject : dict
+        The file's subject fields that are set (``subject_id``, ``species``, ``sex``, ``age``, ...), as text.
     has_waveforms : bool
         The Units table holds waveform features (for clusterless decoding, not imported yet).
     notes : list of str
@@ -101,6 +103,7 @@ class NwbRecording:
     position_dims: int
     epochs: list = field(default_factory=list)
     trials: list = field(default_factory=list)
+    subject: dict = field(default_factory=dict)
     has_waveforms: bool = False
     notes: list = field(default_factory=list)
 
@@ -163,7 +166,7 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
             session_start_wall_s=start.timestamp(), unit_ids=unit_ids, spike_t_s=spike_t, spike_unit=spike_unit,
             frame_t_s=frame_t, frame_xy_cm=xy, frame_head_rad=head, position_name=pos_name,
             head_direction_name=head_name, position_dims=dims, epochs=_intervals(nwb.epochs),
-            trials=_intervals(nwb.trials), has_waveforms=has_waveforms, notes=notes,
+            trials=_intervals(nwb.trials), subject=_subject(nwb.subject), has_waveforms=has_waveforms, notes=notes,
         )
     finally:
         io.close()
@@ -306,6 +309,22 @@ def _head_direction(series, name: str, frame_t: np.ndarray, path: Path) -> np.nd
     frame_dt = float(np.median(np.diff(frame_t))) if frame_t.size > 1 else math.inf
     close = np.abs(t[nearest] - frame_t) <= frame_dt
     out[close] = angle[nearest[close]]
+    return out
+
+
+#: Subject fields carried from an imported file into the session log and on into an export.
+SUBJECT_FIELDS = ("subject_id", "species", "sex", "age", "date_of_birth", "strain", "genotype", "description",
+                  "weight")
+
+
+def _subject(subject) -> dict:
+    if subject is None:
+        return {}
+    out = {}
+    for name in SUBJECT_FIELDS:
+        value = getattr(subject, name, None)
+        if value is not None:
+            out[name] = value.isoformat() if hasattr(value, "isoformat") else str(value)
     return out
 
 
