@@ -1,0 +1,105 @@
+"""``placeloop bridge lsl``: its options, the caution, and the report it prints."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import signal
+import sys
+from pathlib import Path
+
+from decoder.config import is_loopback_endpoint
+from rig_adapters.console import CAUTION, setup_logging
+
+__all__ = ["main", "build_parser"]
+
+DESCRIPTION = """\
+Subscribe to Lab Streaming Layer streams and republish them on placeloop's
+wire protocol, for `placeloop run --rig` to connect to.
+
+  spikes    one integer channel, one sample per spike: the unit id, stamped with the spike's time
+  position  two or three float channels, x, y[, heading in rad], at the tracker's rate; cm unless
+            the stream's channel metadata names another length (or --cm-per-unit)
+
+Streams are chosen by NAME, name=NAME, type=TYPE or source_id=ID. Every LSL
+timestamp is mapped onto this machine's LSL clock with LSL's own clock-offset
+estimates; both sources announce that clock, so no sync pulses are needed.
+Lost frames, late or reordered samples, silent streams and closed outlets are
+counted and reported at the end (and in --report). LSL finds streams on the
+network; set LSLAPICFG to a config with ResolveScope = machine to keep it to
+this machine.
+
+Example:
+  placeloop bridge lsl --spikes type=spikes --position "name=overhead camera" --pub tcp://127.0.0.1:5770 &
+  placeloop run --config rig.toml --model session1.npz --rig tcp://127.0.0.1:5770 --dry-run"""
+
+
+class _Formatter(argparse.ArgumentDefaultsHelpFormatter, argparse.RawDescriptionHelpFormatter):
+    """Defaults shown beside every option; the description kept as written."""
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="placeloop bridge lsl", description=DESCRIPTION, epilog=CAUTION,
+                                formatter_class=_Formatter)
+    p.add_argument("--spikes", default="type=spikes", help="the LSL spike stream")
+    p.add_argument("--position", default="type=position", help="the LSL position stream")
+    p.add_argument("--lfp", default=None, help="an LSL LFP stream (not available yet)")
+    p.add_argument("--marks", default=None, help="an LSL stream of spike marks (not available yet)")
+    p.add_argument("--pub", default="tcp://127.0.0.1:5770", help="bind the wire protocol's PUB socket here")
+    p.add_argument("--allow-remote", action="store_true", help="allow --pub on an interface other than loopback")
+    p.add_argument("--cm-per-unit", type=float, default=None,
+                   help="position scale in cm per unit, over the stream's own unit metadata")
+    p.add_argument("--holdback-s", type=float, default=0.02,
+                   help="heartbeats run this far behind the clock, the time LSL takes to deliver a sample (s)")
+    p.add_argument("--heartbeat-s", type=float, default=0.01, help="heartbeat interval (s)")
+    p.add_argument("--resolve-timeout-s", type=float, default=10.0, help="how long to look for each stream (s)")
+    p.add_argument("--stall-s", type=float, default=2.0, help="report a stream silent this long (s)")
+    p.add_argument("--rejoin-s", type=float, default=5.0,
+                   help="after a stream's outlet closed, look for it again this long before stopping (s)")
+    p.add_argument("--duration-s", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--report", default=None, help="write the JSON report here at the end")
+    p.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``placeloop bridge lsl [options]``."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv[:1] != ["lsl"]:
+        print("error: placeloop bridge has one kind today: placeloop bridge lsl --help", file=sys.stderr)
+        return 2
+    args = build_parser().parse_args(argv[1:])
+    setup_logging(args.verbose)
+    print(CAUTION, file=sys.stderr)
+    if args.lfp or args.marks:
+        what = "LFP" if args.lfp else "marks"
+        print(f"error: bridging {what} is not available yet: the wire protocol carries no {what} message in this "
+              "version; bridge the spike and position streams without it", file=sys.stderr)
+        return 2
+    if not args.allow_remote and not is_loopback_endpoint(args.pub):
+        print(f"error: --pub {args.pub} is not on loopback; pass --allow-remote to publish on another interface",
+              file=sys.stderr)
+        return 2
+    import zmq
+
+    from rig_adapters.lsl.bridge import BridgeError, LslBridge
+
+    try:
+        bridge = LslBridge(args.spikes, args.position, args.pub, holdback_s=args.holdback_s,
+                           heartbeat_s=args.heartbeat_s, resolve_timeout_s=args.resolve_timeout_s,
+                           stall_s=args.stall_s, rejoin_s=args.rejoin_s, cm_per_unit=args.cm_per_unit)
+
+        def _stop(signum, frame):
+            bridge.stop_requested = True
+
+        signal.signal(signal.SIGTERM, _stop)
+        signal.signal(signal.SIGINT, _stop)
+        report = bridge.run(duration_s=args.duration_s)
+    except (BridgeError, OSError, zmq.ZMQError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    text = json.dumps(report, indent=2)
+    if args.report:
+        Path(args.report).write_text(text)
+    print(text)
+    return 0
