@@ -81,7 +81,8 @@ def prepared(tmp_path_factory):
     work = tmp_path_factory.mktemp("lsl")
     arena = load_config(ARENA)
     session = SimulatedSession(arena.environment, SimulationSettings.from_dict(arena.simulation), seed=5)
-    learning = arena.source_text.replace("learn_s = 180.0", f"learn_s = {LEARN_S - 1}")
+    # No cross-validation at the fit: its figure is not checked here, and it costs seconds.
+    learning = arena.source_text.replace("learn_s = 180.0", f"learn_s = {LEARN_S - 1}\ncross_validate = false")
     chunks = ((c.t_end_s, c.messages) for c in session.chunks(until_s=LEARN_S))
     write_session_log(work / "learning", learning, chunks, {"simulated": True}, 1e9)
     fitted = replay_session(work / "learning")

@@ -112,7 +112,9 @@ def round_trip(simulated, tmp_path_factory):
     log_dir = tmp / "imported"
     assert cli.main(["import", str(recording), "--out", str(log_dir)]) == 0
     config = tmp / "with_zone.toml"
-    config.write_text((log_dir / "config.toml").read_text() + ZONES)
+    # The skeleton plus a zone and its rule, as the user completes it; no cross-validation (seconds per replay).
+    skeleton = (log_dir / "config.toml").read_text()
+    config.write_text(skeleton.replace("learn_s = 0.0", "learn_s = 0.0\ncross_validate = false") + ZONES)
     summary = tmp / "replay.json"
     assert cli.main(["replay", str(log_dir), "--config", str(config), "--summary", str(summary)]) == 0
     out = tmp / "decoded.nwb"
@@ -154,6 +156,7 @@ def test_nwbinspector_finds_nothing_critical_in_the_export(round_trip):
         assert nwb.session_start_time == START
         assert "[environment]" in nwb.notes and "goal_reward" in nwb.notes
         assert json.loads(nwb.data_collection)["readiness"]["n_tuned_units"] >= 1
+        assert "cross_validate = false" in nwb.notes
 
 
 def test_the_export_reads_back_to_the_same_numbers_as_the_tables(round_trip):

@@ -151,6 +151,13 @@ def export_main(argv: list[str] | None = None) -> int:
     from rig_adapters.sessions.replay import session_config
 
     log_path = Path(args.log)
+    out = Path(args.out)
+    taken = [out] if args.format == "nwb" else [out / f"steps.{args.format}", out / f"events.{args.format}"]
+    for path in taken:
+        if path.exists():
+            # Said before the replay, which takes a while; the writers refuse too.
+            print(f"error: {path} exists already; choose a new name", file=sys.stderr)
+            return 2
     try:
         config = load_config(args.config) if args.config else session_config(
             log_path if log_path.is_dir() else log_path.parent)
