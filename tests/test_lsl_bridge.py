@@ -69,7 +69,7 @@ def _run_config(ports: dict) -> str:
 
 @pytest.fixture(scope="module")
 def prepared(tmp_path_factory):
-    """A model learned from the first LEARN_S of a simulated session, the next SEGMENT_S of it, and its direct replay."""
+    """A model learned from the first LEARN_S of a simulated session, the next SEGMENT_S, and its direct replay."""
     from decoder.config import load_config, parse_config
     from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
     from rig_adapters.exchange.session_writing import write_session_log
@@ -163,6 +163,14 @@ def test_the_bridge_names_what_it_cannot_find_and_what_is_not_there_yet(prepared
     assert result["remote_rc"] == 2 and "not on loopback" in result["remote_err"]
 
 
+def test_a_missing_pylsl_says_what_to_install(monkeypatch):
+    from rig_adapters.lsl.bridge import BridgeError, require_pylsl
+
+    monkeypatch.setitem(sys.modules, "pylsl", None)
+    with pytest.raises(BridgeError, match=r"pip install 'placeloop\[lsl\]'"):
+        require_pylsl()
+
+
 # -- the scenarios, run as a script inside the namespace -----------------------------------------------------
 
 
@@ -230,7 +238,8 @@ def _session_scenario(work: Path, ports: dict) -> dict:
     # Nothing is pushed until the loop has heard an announcement (the bridge repeats them every 4 s), so the
     # outlets are silent for a while: --stall-s keeps the heartbeats going meanwhile.
     bridge = _placeloop("bridge", "lsl", "--spikes", f"name={SPIKES_NAME}", "--position", f"name={POSITION_NAME}",
-                        "--pub", rig, "--rejoin-s", "1", "--stall-s", "20", "--report", str(work / "bridge_report.json"))
+                        "--pub", rig, "--rejoin-s", "1", "--stall-s", "20",
+                        "--report", str(work / "bridge_report.json"))
     time.sleep(6.0)
     t0 = pylsl.local_clock() + 0.05
     st, su, ft, fxy = seg["spikes_t"], seg["spikes_u"], seg["frames_t"], seg["frames_xy"]

@@ -23,7 +23,7 @@ nwbinspector = pytest.importorskip("nwbinspector")
 pq = pytest.importorskip("pyarrow.parquet")
 
 from pynwb import NWBHDF5IO, NWBFile  # noqa: E402
-from pynwb.behavior import CompassDirection, Position, SpatialSeries  # noqa: E402
+from pynwb.behavior import Position, SpatialSeries  # noqa: E402
 from pynwb.file import Subject  # noqa: E402
 from pynwb.testing.mock.behavior import mock_CompassDirection, mock_SpatialSeries  # noqa: E402
 from pynwb.testing.mock.file import mock_NWBFile  # noqa: E402
@@ -33,7 +33,7 @@ from decoder.messages import SpikeBatch, TrackerFrames  # noqa: E402
 from rig_adapters import cli  # noqa: E402
 from rig_adapters.exchange.nwb_import import guess_environment, import_nwb, learning_intervals  # noqa: E402
 from rig_adapters.exchange.nwb_reading import NwbImportError, read_recording  # noqa: E402
-from rig_adapters.sessions.recorder import iter_records, read_log  # noqa: E402
+from rig_adapters.sessions.recorder import read_log  # noqa: E402
 from rig_adapters.sim.settings import SimulationSettings  # noqa: E402
 from rig_adapters.sim.simulation import SimulatedSession  # noqa: E402
 from rig_adapters.wire import protocol  # noqa: E402
@@ -86,7 +86,7 @@ def _write(nwb, path):
 
 
 def _recording_in_metres(sim, path, waveforms=False):
-    """A file as an acquisition pipeline writes it, with pynwb's documented API: Units, behavior/Position in metres, epochs."""
+    """A file as an acquisition pipeline writes it, with pynwb's API: Units, behavior/Position in metres, epochs."""
     nwb = NWBFile(session_description="round arena foraging (invented scenario)", identifier="arena-m1-d2",
                   session_start_time=START)
     nwb.subject = Subject(subject_id="m1", species="Mus musculus", sex="F", age="P84D")
@@ -337,6 +337,12 @@ def test_a_missing_extra_says_what_to_install(monkeypatch, tmp_path):
     monkeypatch.setitem(__import__("sys").modules, "pynwb", None)
     with pytest.raises(NwbImportError, match=r"pip install 'placeloop\[nwb\]'"):
         read_recording(tmp_path / "x.nwb")
+
+
+def test_a_missing_table_library_says_what_to_install(monkeypatch, round_trip, tmp_path, capsys):
+    monkeypatch.setitem(__import__("sys").modules, "pyarrow", None)
+    assert cli.main(["export", str(round_trip["log"]), "--format", "csv", "--out", str(tmp_path / "t")]) == 2
+    assert "pip install 'placeloop[nwb]'" in capsys.readouterr().err
 
 
 def test_export_refuses_to_overwrite(round_trip, capsys):

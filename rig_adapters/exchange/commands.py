@@ -87,7 +87,8 @@ def build_import_parser() -> argparse.ArgumentParser:
                    help="leave the triggers disarmed after the fit (by default the log arms them, so that a "
                         "replay shows the events the rules would fire; a replay never drives hardware)")
     p.add_argument("--marks", action="store_true", help="import waveform features as marks (not available yet)")
-    p.add_argument("--lfp", default=None, metavar="SERIES", help="import this ElectricalSeries as LFP (not available yet)")
+    p.add_argument("--lfp", default=None, metavar="SERIES",
+                   help="import this ElectricalSeries as LFP (not available yet)")
     p.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
     return p
 
@@ -147,7 +148,8 @@ def export_main(argv: list[str] | None = None) -> int:
     setup_logging(args.verbose)
     from rig_adapters.exchange.decoded import decoded_session
     from rig_adapters.exchange.nwb_export import write_nwb
-    from rig_adapters.exchange.tables import write_tables
+    from rig_adapters.exchange.nwb_reading import require_pynwb
+    from rig_adapters.exchange.tables import require_pyarrow, write_tables
     from rig_adapters.sessions.replay import session_config
 
     log_path = Path(args.log)
@@ -159,6 +161,11 @@ def export_main(argv: list[str] | None = None) -> int:
             print(f"error: {path} exists already; choose a new name", file=sys.stderr)
             return 2
     try:
+        # A missing extra is said before the replay, which takes a while.
+        if args.format == "nwb":
+            require_pynwb()
+        else:
+            require_pyarrow()
         config = load_config(args.config) if args.config else session_config(
             log_path if log_path.is_dir() else log_path.parent)
         overrides = parse_settings(args.set)

@@ -66,9 +66,9 @@ class ImportResult:
     notes: tuple[str, ...]
 
 
-def learning_intervals(recording: NwbRecording, start_s: float, stop_s: float, learn_s: tuple[float, float] | None = None,
-                       learn_epoch: str | None = None, learn_trials: tuple[int, int] | None = None
-                       ) -> tuple[list[tuple[float, float]], str]:
+def learning_intervals(recording: NwbRecording, start_s: float, stop_s: float,
+                       learn_s: tuple[float, float] | None = None, learn_epoch: str | None = None,
+                       learn_trials: tuple[int, int] | None = None) -> tuple[list[tuple[float, float]], str]:
     """The part of the session to learn from, clipped to ``[start_s, stop_s]``.
 
     At most one of the choices may be given. Without any: the file's first
@@ -318,7 +318,8 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
         If ``log_dir`` exists.
     """
     if Path(log_dir).exists():
-        raise FileExistsError(f"{log_dir} exists already; placeloop never overwrites a session. Choose a new directory.")
+        raise FileExistsError(f"{log_dir} exists already; placeloop never overwrites a session. "
+                              "Choose a new directory.")
     if not (isinstance(batch_s, (int, float)) and 0 < batch_s <= 1):
         raise NwbImportError(f"batch_s must be a positive number of seconds up to 1, got {batch_s!r}")
     recording = read_recording(path, position=position, head_direction=head_direction, cm_per_unit=cm_per_unit)

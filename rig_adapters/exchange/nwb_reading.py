@@ -207,7 +207,7 @@ def _containers(nwb, kind: str):
 
 
 def _pick_series(nwb, kind: str, wanted: str | None, path: Path, required: bool):
-    """The one spatial series of a ``kind`` container, or the one named ``wanted`` (``series`` or ``container/series``)."""
+    """The one spatial series of the ``kind`` containers, or the one named ``wanted`` (``series`` or ``box/series``)."""
     found = {}
     for container in _containers(nwb, kind):
         for name, series in container.spatial_series.items():

@@ -16,7 +16,7 @@ import numpy as np
 
 from rig_adapters.exchange.decoded import EVENT_COLUMNS, DecodedSession
 
-__all__ = ["TABLE_FORMATS", "write_tables"]
+__all__ = ["TABLE_FORMATS", "require_pyarrow", "write_tables"]
 
 TABLE_FORMATS = ("parquet", "csv")
 
@@ -24,17 +24,14 @@ _INTEGER_COLUMNS = {"n_spikes", "event_id"}
 _BOOL_COLUMNS = {"armed", "far_from_zone"}
 
 
-class TablesUnavailable(ImportError):
-    """pyarrow is not installed."""
-
-
-def _arrow():
+def require_pyarrow():
+    """pyarrow with its CSV and Parquet writers, or an ImportError saying what to install."""
     try:
         import pyarrow
         import pyarrow.csv
         import pyarrow.parquet
     except ImportError:
-        raise TablesUnavailable("table export needs pyarrow: pip install 'placeloop[nwb]'") from None
+        raise ImportError("table export needs pyarrow: pip install 'placeloop[nwb]'") from None
     return pyarrow
 
 
@@ -70,7 +67,7 @@ def write_tables(decoded: DecodedSession, out_dir: str | Path, fmt: str = "parqu
     """
     if fmt not in TABLE_FORMATS:
         raise ValueError(f"table format must be one of {TABLE_FORMATS}, got {fmt!r}")
-    pa = _arrow()
+    pa = require_pyarrow()
     out_dir = Path(out_dir)
     targets = [out_dir / f"steps.{fmt}", out_dir / f"events.{fmt}"]
     for path in targets:
