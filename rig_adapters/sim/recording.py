@@ -5,11 +5,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from decoder.config import ExperimentConfig
-from rig_adapters.sessions.recorder import CONFIG_SIDECAR, SessionRecorder
+from rig_adapters.exchange.session_writing import write_session_log
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import SimulatedSession
-from rig_adapters.wire import protocol
-from rig_adapters.wire.ingest import CHANNEL_RIG
 
 
 def record_simulated_session(config: ExperimentConfig, log_dir: str | Path, until_s: float, seed: int = 7,
@@ -26,7 +24,7 @@ def record_simulated_session(config: ExperimentConfig, log_dir: str | Path, unti
     config : ExperimentConfig
         Needs a ``[simulation]`` table (may be empty: defaults apply).
     log_dir : path
-        A new session directory.
+        A new session directory (it must not exist yet; it appears complete or not at all).
     until_s : float
         Simulated seconds.
     seed : int
@@ -37,12 +35,5 @@ def record_simulated_session(config: ExperimentConfig, log_dir: str | Path, unti
         The session directory.
     """
     session = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=seed)
-    with SessionRecorder(log_dir, flush_interval_s=1.0, fsync="never",
-                         metadata={"simulated": True, "seed": seed}) as recorder:
-        recorder.write_sidecar(CONFIG_SIDECAR, config.source_text.encode())
-        for chunk in session.chunks(until_s=until_s):
-            wall = wall_start_s + chunk.t_end_s
-            for msg in chunk.messages:
-                recorder.record_input(protocol.encode(msg), wall, CHANNEL_RIG)
-            recorder.maybe_flush(wall)
-    return Path(log_dir)
+    chunks = ((chunk.t_end_s, chunk.messages) for chunk in session.chunks(until_s=until_s))
+    return write_session_log(log_dir, config.source_text, chunks, {"simulated": True, "seed": seed}, wall_start_s)
