@@ -119,7 +119,11 @@ def test_heading_tuning_of_a_von_mises_curve():
     kappa, mu_deg = 4.0, 123.0
     theta = np.radians(ring.bin_centers_deg)
     curve = 30.0 * np.exp(kappa * (np.cos(theta - np.radians(mu_deg)) - 1.0))
-    fig = heading_tuning(curve[None, :], ring, ring.valid_mask, np.array([400]))
+    flat = np.full(ring.n_bins, 5.0)
+    fig = heading_tuning(np.stack([curve, flat]), ring, ring.valid_mask, np.array([400, 400]))
+    # An untuned unit: no mean vector (Fisher 1993), a width of the whole turn, no Rayleigh significance.
+    assert fig.mean_vector_length[1] == pytest.approx(0.0, abs=1e-12)
+    assert fig.tuning_width_deg[1] == 360.0 and fig.rayleigh_p[1] > 0.99
     assert fig.preferred_direction_deg[0] == pytest.approx(mu_deg, abs=1e-6)
     # Source: the von Mises mean resultant length I1(k)/I0(k) (Fisher 1993, eq. 3.4x; scipy.special),
     # the curve sampled at 1-degree bins (error far below 1e-6).

@@ -55,7 +55,10 @@ def mean_resultant(angles_rad: np.ndarray, weights: np.ndarray | None = None, ax
     Fisher NI (1993) Statistical Analysis of Circular Data. Cambridge University Press, section 2.3.
     """
     theta = np.asarray(angles_rad, dtype=np.float64)
-    w = np.ones_like(theta) if weights is None else np.broadcast_to(np.asarray(weights, np.float64), theta.shape)
+    if weights is None:
+        w = np.ones_like(theta)
+    else:
+        theta, w = np.broadcast_arrays(theta, np.asarray(weights, np.float64))
     total = w.sum(axis=axis)
     with np.errstate(invalid="ignore", divide="ignore"):
         c = (w * np.cos(theta)).sum(axis=axis) / total
