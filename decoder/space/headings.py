@@ -124,6 +124,9 @@ class HeadingRing(Environment):
     bin_centers_cm : ndarray of float64, shape (n_bins, 2)
         ``RING_RADIUS_CM * (cos, sin)`` of each bin's central heading.
     bin_centers_deg : ndarray of float64, shape (n_bins,)
+    linear_edges_cm : ndarray of float64, shape (n_bins + 1,)
+        Bin edges in degrees of heading (:meth:`linearize`'s unit), 0 to 360,
+        as a track's are in cm along it.
     bin_size : float
         The bin width in degrees.
 
@@ -151,6 +154,7 @@ class HeadingRing(Environment):
         self.n_bins = max(4, math.ceil(360.0 / width - 1e-9))
         self.bin_cm = 360.0 / self.n_bins
         self.bin_size = self.bin_cm
+        self.linear_edges_cm = freeze(np.arange(self.n_bins + 1) * self.bin_cm)
         self.bin_centers_deg = freeze((np.arange(self.n_bins) + 0.5) * self.bin_cm)
         self.bin_centers_cm = freeze(heading_points_cm(np.radians(self.bin_centers_deg)))
         self.valid_mask = freeze(np.ones(self.n_bins, dtype=bool))
