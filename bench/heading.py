@@ -21,7 +21,10 @@ Figures: ``median_error_deg`` (placeloop), ``textbook_median_error_deg``,
 ``ratio`` (their quotient), ``events``, ``events_out_of_arc`` (events of
 rules that do not ask for the head to face away, fired while the true
 heading was more than 45 degrees outside the arc), and the decoding step's
-p50 and p99 in ms. The data are simulated: the figures measure the decoders
+p50 and p99 in ms. Beside them, the spike-time shuffle's verdict on each
+unit over the learning part, against the simulation's cell types, and the
+units whose fitted tuning curve passes the Rayleigh test at p < 0.001.
+The data are simulated: the figures measure the decoders
 on a generator with known truth, not on any animal.
 """
 
@@ -50,6 +53,7 @@ if str(_HERE.parent) not in sys.path:
 import numpy as np  # noqa: E402
 
 from decoder.config import load_config, with_overrides  # noqa: E402
+from decoder.encoding.heading_metrics import tuned_against_shuffle  # noqa: E402
 from decoder.messages import SpikeBatch, TrackerFrames  # noqa: E402
 from decoder.space.headings import HeadingRing, angle_difference_deg, heading_of_point  # noqa: E402
 from rig_adapters.sessions.replay import replay_session  # noqa: E402
@@ -154,6 +158,20 @@ def run(decode_s: float, seed: int) -> dict:
         textbook[f"{int(window * 1000)}ms"] = float(np.median(err))
     best = min(textbook.values())
 
+    # Tuned or not by the spike-time shuffle, over the learning part, against the simulation's cell types.
+    shuffle_rng = np.random.default_rng(seed)
+    learning = frame_t < learn_s
+    kind_of = dict(zip(truth.unit_ids.tolist(), truth.cell_type))
+    shuffle = {"tuned_hd_cells": 0, "hd_cells": 0, "tuned_untuned_cells": 0, "untuned_cells": 0}
+    for uid in unit_ids.tolist():
+        times = spike_t[(spike_u == uid) & (spike_t < learn_s)]
+        tuned = tuned_against_shuffle(times, frame_t[learning], frame_hd[learning], shuffle_rng)[0]
+        key = "hd_cells" if kind_of[uid] == "head_direction" else "untuned_cells"
+        shuffle[key] += 1
+        shuffle["tuned_" + key] += int(tuned)
+    model = result.pipeline.model
+    rayleigh = int(np.sum(model.heading_tuning_.rayleigh_p < 0.001)) if model.heading_tuning_ is not None else None
+
     decode_ms = np.asarray(result.latency.decode_ms.values, float)
     median = float(np.median(ours))
     return {
@@ -174,6 +192,8 @@ def run(decode_s: float, seed: int) -> dict:
         "events_out_of_arc": out_of_arc,
         "false_events": result.summary["triggers"]["false_count"],
         "frames_heading_unknown": result.summary["input"].get("frames_heading_unknown"),
+        "shuffle_test": shuffle,
+        "units_rayleigh_p_below_0_001": rayleigh,
         "step_p50_ms": float(np.percentile(decode_ms, 50)),
         "step_p99_ms": float(np.percentile(decode_ms, 99)),
         "replay_wall_s": replay_wall_s,
