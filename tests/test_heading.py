@@ -261,3 +261,29 @@ def test_simulated_head_turning_and_the_heading_pipeline_end_to_end(tmp_path):
     assert first.summary["input"]["frames_heading_unknown"] > 0
     tuning = first.pipeline.model.heading_tuning_
     assert tuning is not None and np.sum(tuning.rayleigh_p < 0.001) >= 25
+
+
+def test_place_model_on_a_ring_fits_heading_figures_and_keeps_them_through_its_file(tmp_path):
+    # Invented data (a sanity bound): a head turning at 60 deg/s, one unit firing near 90 degrees.
+    from decoder.encoding.place_model import PlaceModel
+
+    ring = HeadingRing(6.0)
+    model = PlaceModel(ring, min_speed_cm_s=0.0, smooth_cm=6.0, min_occupancy_s=0.05)
+    t = np.arange(0.0, 120.0, 0.02)
+    hd = np.radians(60.0 * t)
+    near = np.abs(np.mod(np.degrees(hd) - 90.0 + 180.0, 360.0) - 180.0) < 15.0
+    spikes = t[near][::2] + 0.005
+    # Frames and spikes interleaved second by second, as a session delivers them.
+    for start in range(120):
+        in_second = (t >= start) & (t < start + 1)
+        model.update_frames(t[in_second], heading_points_cm(hd[in_second]))
+        batch = spikes[(spikes >= start) & (spikes < start + 1)]
+        model.update_spikes(batch, np.full(batch.size, 7))
+    fitted = model.fit().heading_tuning_
+    assert model.counters_["spikes_placed"] >= 240
+    # The unit fires within 15 degrees of 90: its preferred direction is 90 within a bin (common practice).
+    assert abs(fitted.preferred_direction_deg[0] - 90.0) < 6.0 and fitted.rayleigh_p[0] < 1e-10
+    model.save(tmp_path / "ring.npz")
+    loaded = PlaceModel.load(tmp_path / "ring.npz")
+    assert Environment.from_dict(loaded.environment.to_dict()) == ring
+    np.testing.assert_allclose(loaded.heading_tuning_.mean_vector_length, fitted.mean_vector_length)

@@ -112,7 +112,7 @@ class PlaceModel(OnlineCounts):
     heading_tuning_ : HeadingTuning or None
         On a heading ring, each unit's preferred direction, mean vector
         length, tuning width and Rayleigh p (``decoder.encoding.heading_metrics``);
-        None elsewhere. Recomputed by :meth:`fit`, not stored in the model file.
+        None elsewhere. Recomputed by :meth:`fit` and on loading, not stored in the model file.
 
     Examples
     --------
@@ -194,14 +194,18 @@ class PlaceModel(OnlineCounts):
         self.mean_rate_hz_ = rates @ (occ_visited / occ_visited.sum())
         self.field_size_ = field_size(rates, self.environment, visited)
         self.walk_variance_cm2_per_s_ = self._learn_walk_variance()
-        self.heading_tuning_: HeadingTuning | None = None
-        if isinstance(self.environment, HeadingRing):
-            self.heading_tuning_ = heading_tuning(rates, self.environment, visited, counts.sum(axis=1))
+        self.heading_tuning_ = self._heading_tuning(counts)
         logger.info(
             "fitted %d units on %d visited bins from %.1f s of running",
             len(self.unit_ids_), int(visited.sum()), occupancy.sum(),
         )
         return self
+
+    def _heading_tuning(self, counts: np.ndarray) -> HeadingTuning | None:
+        """Head-direction figures of the fitted maps on a heading ring; None elsewhere."""
+        if not isinstance(self.environment, HeadingRing):
+            return None
+        return heading_tuning(self.rate_maps_hz_, self.environment, self.visited_mask_, counts.sum(axis=1))
 
     def _learn_walk_variance(self) -> float:
         t, xy = self.movement_frames()
@@ -477,4 +481,5 @@ class PlaceModel(OnlineCounts):
             model.walk_variance_cm2_per_s_ = float(header.get("walk_variance_cm2_per_s", math.nan))
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
+            model.heading_tuning_ = model._heading_tuning(model._totals()[0])
         return model
