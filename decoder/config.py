@@ -92,10 +92,13 @@ class TriggerRule:
         Decoding steps in a row the condition must hold before the rule fires.
     min_speed_cm_s, max_speed_cm_s : float or None
         Inclusive bounds on the tracked speed; None leaves that side open.
+        On a heading ring, the tracked angular head speed in deg/s.
     tracked : {"any", "inside", "outside"}, default "any"
         Where the tracked animal must be relative to the same zone.
         ``"outside"`` serves experiments that act on a non-local
-        representation (decoded in the zone while the animal is elsewhere).
+        representation (decoded in the zone while the animal is elsewhere;
+        on a heading ring, the decoded heading in the arc while the head
+        faces away from it).
     """
 
     name: str
@@ -190,7 +193,9 @@ def _positive(where: str, **values: float) -> None:
 class ModelSettings:
     """How the place model learns (see ``decoder.encoding.place_model.PlaceModel``)."""
 
-    #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s.
+    #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s. On a heading ring
+    #: this is the angular head speed (deg/s), and 0 keeps every frame: head-direction cells fire
+    #: whether the head turns or not (common practice).
     min_speed_cm_s: float = 3.0
     #: Gaussian smoothing of occupancy and spike counts, s.d. in cm.
     smooth_cm: float = 4.0
