@@ -32,7 +32,7 @@ from typing import Any
 import numpy as np
 import tomli_w
 
-from decoder.space.environments import Arena, Environment, LinearTrack, TrackGraph
+from decoder.space.environments import Arena, Environment, HeadingRing, LinearTrack, TrackGraph
 from decoder.space.zones import zone_from_dict
 
 
@@ -92,10 +92,13 @@ class TriggerRule:
         Decoding steps in a row the condition must hold before the rule fires.
     min_speed_cm_s, max_speed_cm_s : float or None
         Inclusive bounds on the tracked speed; None leaves that side open.
+        On a heading ring, the tracked angular head speed in deg/s.
     tracked : {"any", "inside", "outside"}, default "any"
         Where the tracked animal must be relative to the same zone.
         ``"outside"`` serves experiments that act on a non-local
-        representation (decoded in the zone while the animal is elsewhere).
+        representation (decoded in the zone while the animal is elsewhere;
+        on a heading ring, the decoded heading in the arc while the head
+        faces away from it).
     """
 
     name: str
@@ -190,7 +193,9 @@ def _positive(where: str, **values: float) -> None:
 class ModelSettings:
     """How the place model learns (see ``decoder.encoding.place_model.PlaceModel``)."""
 
-    #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s.
+    #: Frames slower than this do not count (cm/s); common practice 2-5 cm/s. On a heading ring
+    #: this is the angular head speed (deg/s), and 0 keeps every frame: head-direction cells fire
+    #: whether the head turns or not (common practice).
     min_speed_cm_s: float = 3.0
     #: Gaussian smoothing of occupancy and spike counts, s.d. in cm.
     smooth_cm: float = 4.0
@@ -280,8 +285,14 @@ class SourceSettings:
     truth: str = ""
     #: Largest allowed disagreement between sync pulses and the clock fit (s).
     clock_tolerance_s: float = 0.004
+    #: What of a tracker frame is decoded and scored: "position" (x, y in cm) or "heading" (``hd``,
+    #: as a point on the heading ring, ``decoder.space.headings``). Follows from [environment]: a
+    #: heading ring decodes the heading, any other kind the position; leave it unset.
+    tracked_value: str = "position"
 
     def __post_init__(self) -> None:
+        if self.tracked_value not in ("position", "heading"):
+            raise ConfigError(f"[sources] tracked_value must be 'position' or 'heading', got {self.tracked_value!r}")
         if not self.spikes or not self.tracker or self.spikes == self.tracker:
             raise ConfigError("[sources] spikes and tracker must be two different, non-empty source names")
         if self.truth in (self.spikes, self.tracker):
@@ -443,7 +454,11 @@ def build_environment(table: dict) -> Environment:
     ``kind`` is one of ``rectangle`` (width_cm, height_cm, origin_cm),
     ``circle`` (center_cm, radius_cm), ``polygon`` (vertices_cm),
     ``linear_track`` (start_cm, end_cm, max_distance_cm) or ``graph``
-    (nodes_cm, edges, max_distance_cm); all take ``bin_cm``.
+    (nodes_cm, edges, max_distance_cm), which take ``bin_cm``; or
+    ``heading_ring`` (``bin_deg``, default 6), head direction decoded over
+    a ring where every length in cm of the other tables (``smooth_cm``,
+    ``random_walk_sd_cm``, ``false_margin_cm``, speeds in cm/s) reads as
+    degrees of heading (deg/s for speeds).
     """
     table = dict(table or {})
     kind = table.pop("kind", None)
@@ -453,6 +468,7 @@ def build_environment(table: dict) -> Environment:
         "polygon": lambda t: Arena.polygon(**t),
         "linear_track": lambda t: LinearTrack(**t),
         "graph": lambda t: TrackGraph(**{**t, "edges": [tuple(e) for e in t.get("edges", [])]}),
+        "heading_ring": lambda t: HeadingRing(**t),
     }
     if kind not in builders:
         raise ConfigError(f"[environment] kind must be one of {sorted(builders)}, got {kind!r}")
@@ -495,11 +511,16 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
         if rule.zone not in names:
             raise ConfigError(f"[[rules]] {rule.name!r} names zone {rule.zone!r}, which is not among {names}")
         rules.append(rule)
+    sources = _from_table(SourceSettings, doc.get("sources"), "sources")
+    tracked_value = "heading" if isinstance(environment, HeadingRing) else "position"
+    if "tracked_value" in doc.get("sources", {}) and sources.tracked_value != tracked_value:
+        raise ConfigError(f"[sources] tracked_value = {sources.tracked_value!r} contradicts [environment]: "
+                          f"this environment decodes the {tracked_value}; remove the key")
     return ExperimentConfig(
         environment=environment,
         model=_from_table(ModelSettings, doc.get("model"), "model"),
         decoder=_from_table(DecoderSettings, doc.get("decoder"), "decoder"),
-        sources=_from_table(SourceSettings, doc.get("sources"), "sources"),
+        sources=dataclasses.replace(sources, tracked_value=tracked_value),
         session=_from_table(SessionSettings, doc.get("session"), "session"),
         safety=_from_table(SafetyCaps, doc.get("safety"), "safety"),
         zones=tuple(zones),

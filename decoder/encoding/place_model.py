@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 
 from decoder.encoding.cross_validation import CrossValidatedError, held_out_error
+from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
 from decoder.encoding.model_file import (
     FORMAT_NAME,
     FORMAT_VERSION,
@@ -30,7 +31,7 @@ from decoder.encoding.movement import MovementModel, default_uniform_weight
 from decoder.encoding.online_counts import OnlineCounts
 from decoder.encoding.readiness import Readiness, coarse_tuning_grid, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
-from decoder.space.environments import Environment
+from decoder.space.environments import Environment, HeadingRing
 
 logger = logging.getLogger(__name__)
 
@@ -108,6 +109,10 @@ class PlaceModel(OnlineCounts):
         when the frames could not tell (too few, or no movement).
     counters_ : dict of str to int
         What was received and what was dropped, and why.
+    heading_tuning_ : HeadingTuning or None
+        On a heading ring, each unit's preferred direction, mean vector
+        length, tuning width and Rayleigh p (``decoder.encoding.heading_metrics``);
+        None elsewhere. Recomputed by :meth:`fit` and on loading, not stored in the model file.
 
     Examples
     --------
@@ -189,11 +194,18 @@ class PlaceModel(OnlineCounts):
         self.mean_rate_hz_ = rates @ (occ_visited / occ_visited.sum())
         self.field_size_ = field_size(rates, self.environment, visited)
         self.walk_variance_cm2_per_s_ = self._learn_walk_variance()
+        self.heading_tuning_ = self._heading_tuning(counts)
         logger.info(
             "fitted %d units on %d visited bins from %.1f s of running",
             len(self.unit_ids_), int(visited.sum()), occupancy.sum(),
         )
         return self
+
+    def _heading_tuning(self, counts: np.ndarray) -> HeadingTuning | None:
+        """Head-direction figures of the fitted maps on a heading ring; None elsewhere."""
+        if not isinstance(self.environment, HeadingRing):
+            return None
+        return heading_tuning(self.rate_maps_hz_, self.environment, self.visited_mask_, counts.sum(axis=1))
 
     def _learn_walk_variance(self) -> float:
         t, xy = self.movement_frames()
@@ -469,4 +481,5 @@ class PlaceModel(OnlineCounts):
             model.walk_variance_cm2_per_s_ = float(header.get("walk_variance_cm2_per_s", math.nan))
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
+            model.heading_tuning_ = model._heading_tuning(model._totals()[0])
         return model

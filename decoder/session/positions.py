@@ -5,6 +5,12 @@ source's clock. A source announced on the spike source's clock, or either of
 them unannounced, is taken to share it (PROTOCOL.md); any other waits for its
 clock fit from sync pulses (:class:`~decoder.session.clock.ClockAligner`),
 its frames held until then, so that no frame is placed on a guessed time.
+
+When the session decodes head direction (``[sources] tracked_value =
+"heading"``, set by a heading ring), a frame's place in these histories is
+its heading ``hd`` as a point on the ring (``decoder.space.headings``): a
+frame without a heading (no ``hd``, NaN, or a lost frame) is an unknown
+heading, counted as ``frames_heading_unknown``.
 """
 
 from __future__ import annotations
@@ -19,6 +25,7 @@ from decoder.messages import SyncPulse, TrackerFrames
 from decoder.session.clock import ClockAligner, ClockFit
 from decoder.session.streams import SpikeWatermark
 from decoder.session.tracking import TrackHistory
+from decoder.space.headings import heading_points_cm
 
 #: Tracker frames held while waiting for the first clock fit; beyond it
 #: frames are dropped (counted as ``frames_dropped_unaligned``).
@@ -56,8 +63,11 @@ class Positions:
         self.counters = counters
         self.watermark = watermark
         self.clock = ClockAligner(sources.spikes, tolerance_s=sources.clock_tolerance_s)
-        self.tracked = TrackHistory()
-        self.truth = TrackHistory()
+        self._heading = sources.tracked_value == "heading"
+        if self._heading:
+            counters.setdefault("frames_heading_unknown", 0)
+        self.tracked = TrackHistory(on_ring=self._heading)
+        self.truth = TrackHistory(on_ring=self._heading)
         self.pending: list[TrackerFrames] = []
         self._clock_of: dict[str, str] = {}
 
@@ -117,7 +127,7 @@ class Positions:
         if fit is not True:
             to_reference = fit.to_reference
             t_ref = [to_reference(t) for t in t_ref]
-        xy = msg.xy_cm
+        xy = self._heading_points(msg) if self._heading else msg.xy_cm
         latest_s = self.watermark.latest_s()
         if t_ref and t_ref[-1] > latest_s:
             # Times within a message are sorted (decoder.messages): the frames to drop are the last ones.
@@ -132,3 +142,13 @@ class Positions:
             add_one(t, x, y)
         if learner is not None and history is self.tracked:
             learner.update_frames(np.array(t_ref), xy)
+
+    def _heading_points(self, msg: TrackerFrames) -> np.ndarray:
+        """The frames' headings as ring points (n, 2); NaN where the frame is lost or its heading unknown."""
+        n = msg.t_s.size
+        if msg.head_dir_rad is None:
+            self.counters["frames_heading_unknown"] += n
+            return np.full((n, 2), np.nan)
+        hd = np.where(msg.quality > 0, msg.head_dir_rad, np.nan)
+        self.counters["frames_heading_unknown"] += int(np.count_nonzero(np.isnan(hd)))
+        return heading_points_cm(hd)

@@ -1,4 +1,4 @@
-"""The tracked position over recent data time: lookup and running speed."""
+"""The tracked position over recent data time: lookup and running speed (angular head speed on a heading ring)."""
 
 from __future__ import annotations
 
@@ -24,9 +24,15 @@ class TrackHistory:
         few mm at 50 Hz alone reads as tens of cm/s (common practice).
     max_age_s : float
         A position older than this at the time asked is unknown (NaN).
+    on_ring : bool
+        Positions are headings on the heading ring (``decoder.space.headings``):
+        the speed is the angular head speed, the shortest turn between the
+        two frames' headings over their interval (deg/s).
     """
 
-    def __init__(self, keep_s: float = 5.0, speed_window_s: float = 0.25, max_age_s: float = 0.25) -> None:
+    def __init__(self, keep_s: float = 5.0, speed_window_s: float = 0.25, max_age_s: float = 0.25,
+                 on_ring: bool = False) -> None:
+        self.on_ring = bool(on_ring)
         self.keep_s = float(keep_s)
         self.speed_window_s = float(speed_window_s)
         self.max_age_s = float(max_age_s)
@@ -93,5 +99,11 @@ class TrackHistory:
         j = bisect_left(t, t_i - self.speed_window_s, 0, i)
         x_i, y_i = self._x[i], self._y[i]
         dt = t_i - t[j]
-        speed = math.hypot(x_i - self._x[j], y_i - self._y[j]) / dt if dt > 0 else math.nan
-        return x_i, y_i, speed
+        if not dt > 0:
+            return x_i, y_i, math.nan
+        x_j, y_j = self._x[j], self._y[j]
+        if self.on_ring:
+            # The angle between the two heading vectors, however far the head turned past a half turn.
+            turn = math.degrees(abs(math.atan2(x_j * y_i - y_j * x_i, x_j * x_i + y_j * y_i)))
+            return x_i, y_i, turn / dt
+        return x_i, y_i, math.hypot(x_i - x_j, y_i - y_j) / dt

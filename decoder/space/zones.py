@@ -1,7 +1,8 @@
 """Target zones: the places where a decoded or tracked position counts as "in".
 
 A zone is a named region in the arena's frame (a circle, a rectangle, a
-polygon) or, on a linear track or track graph, an interval of linear position.
+polygon), on a linear track or track graph an interval of linear position,
+or on a heading ring an arc of headings (:class:`ArcZone`).
 Each zone answers two questions:
 
 * ``contains(xy_cm)`` -- which of these positions are inside? Used on the
@@ -33,6 +34,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from decoder.space.headings import HeadingRing
+
 _POLYGON_CHUNK = 16_384
 
 __all__ = [
@@ -41,6 +44,7 @@ __all__ = [
     "RectangleZone",
     "PolygonZone",
     "IntervalZone",
+    "ArcZone",
     "zone_from_dict",
     "zone_masks",
 ]
@@ -386,7 +390,75 @@ class IntervalZone(Zone):
         return {"kind": self.kind, "name": self.name, "start_cm": self.start_cm, "end_cm": self.end_cm}
 
 
-_KINDS: dict[str, type[Zone]] = {cls.kind: cls for cls in (CircleZone, RectangleZone, PolygonZone, IntervalZone)}
+@dataclass(frozen=True)
+class ArcZone(Zone):
+    """An arc of headings on a :class:`~decoder.space.headings.HeadingRing`: ``centre_deg ± half_width_deg``.
+
+    Headings are the directions of ring points from the ring's centre
+    (``decoder.space.headings``), so ``contains`` takes the same ``(n, 2)``
+    points as every other zone. Both ends are inside.
+
+    Parameters
+    ----------
+    name : str
+    center_deg : float
+        Direction of the arc's middle, degrees counter-clockwise from +x;
+        any finite value, taken modulo 360.
+    half_width_deg : float
+        In (0, 180]; 180 is the whole ring.
+
+    Examples
+    --------
+    >>> from decoder.space.headings import heading_points_cm
+    >>> arc = ArcZone("facing_goal", center_deg=350.0, half_width_deg=30.0)
+    >>> arc.contains(heading_points_cm(np.radians([10.0, 50.0, np.nan]))).tolist()
+    [True, False, False]
+    """
+
+    kind: ClassVar[str] = "arc"
+    name: str
+    center_deg: float
+    half_width_deg: float
+
+    def __post_init__(self) -> None:
+        name = _check_name(self.name)
+        center = _finite(name, "center_deg", self.center_deg) % 360.0
+        half = _finite(name, "half_width_deg", self.half_width_deg)
+        if not 0.0 < half <= 180.0:
+            raise ValueError(f"zone {name!r}: half_width_deg must lie in (0, 180] degrees, got {self.half_width_deg!r}")
+        object.__setattr__(self, "center_deg", center)
+        object.__setattr__(self, "half_width_deg", half)
+
+    def _contains_finite(self, xy: np.ndarray) -> np.ndarray:
+        at_centre = (xy[:, 0] == 0.0) & (xy[:, 1] == 0.0)
+        deg = np.degrees(np.arctan2(xy[:, 1], xy[:, 0]))
+        off = np.abs(np.mod(deg - self.center_deg + 180.0, 360.0) - 180.0)
+        return (off <= self.half_width_deg) & ~at_centre
+
+    def contains_point(self, x_cm: float, y_cm: float, environment: Any = None) -> bool:
+        # Scalar arithmetic, the same operations as _contains_finite, for the pipeline's per-step question.
+        x, y = float(x_cm), float(y_cm)
+        if not (math.isfinite(x) and math.isfinite(y)) or (x == 0.0 and y == 0.0):
+            return False
+        off = abs((math.degrees(math.atan2(y, x)) - self.center_deg + 180.0) % 360.0 - 180.0)
+        return off <= self.half_width_deg
+
+    def bin_mask(self, environment: Any) -> np.ndarray:
+        if not isinstance(environment, HeadingRing):
+            raise ValueError(
+                f"zone {self.name!r} is an arc of headings and needs a heading ring "
+                f"([environment] kind = \"heading_ring\"), not a {type(environment).__name__}"
+            )
+        return super().bin_mask(environment)
+
+    def to_dict(self) -> dict:
+        return {"kind": self.kind, "name": self.name, "center_deg": self.center_deg,
+                "half_width_deg": self.half_width_deg}
+
+
+_KINDS: dict[str, type[Zone]] = {
+    cls.kind: cls for cls in (CircleZone, RectangleZone, PolygonZone, IntervalZone, ArcZone)
+}
 
 
 def zone_from_dict(d: dict) -> Zone:
@@ -395,7 +467,7 @@ def zone_from_dict(d: dict) -> Zone:
     Parameters
     ----------
     d : dict
-        ``{"kind": "circle" | "rectangle" | "polygon" | "interval", "name": ..., <fields>}``.
+        ``{"kind": "circle" | "rectangle" | "polygon" | "interval" | "arc", "name": ..., <fields>}``.
 
     Returns
     -------

@@ -50,7 +50,7 @@ import zmq.asyncio
 from aiohttp import WSMsgType, web
 
 from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
-from decoder.space.environments import Arena, TrackGraph
+from decoder.space.environments import RING_RADIUS_CM, Arena, HeadingRing, TrackGraph
 from rig_adapters.wire import protocol
 from rig_adapters.console import setup_logging
 
@@ -136,8 +136,8 @@ def environment_payload(config: ExperimentConfig) -> dict:
     Returns
     -------
     dict
-        ``kind`` ("arena" or "track"), ``bin_cm``, ``n_bins``, ``hpd_unit``
-        ("cm²" or "cm"), the environment's ``to_dict()`` under
+        ``kind`` ("arena", "track" or "ring"), ``bin_cm``, ``n_bins``, ``hpd_unit``
+        ("cm²", "cm" or "deg"), the environment's ``to_dict()`` under
         ``environment``, the zones' ``to_dict()`` under ``zones``, and:
 
         - an arena: ``grid_shape`` [ny, nx], ``x_edges_cm`` (nx + 1),
@@ -145,7 +145,10 @@ def environment_payload(config: ExperimentConfig) -> dict:
           row-major bin order, ``outline_cm`` the closed boundary ring;
         - a track or graph: ``linear_edges_cm`` (n_bins + 1),
           ``total_length_cm``, ``edge_starts_cm`` (linear position where
-          each edge begins), ``outline_cm`` one [[x, y], [x, y]] per edge.
+          each edge begins), ``outline_cm`` one [[x, y], [x, y]] per edge;
+        - a heading ring: ``bin_edges_deg`` (n_bins + 1) and
+          ``ring_radius_cm``, the radius of the ring its points lie on
+          (``decoder.space.headings``).
     """
     env = config.environment
     out: dict[str, Any] = {
@@ -153,7 +156,7 @@ def environment_payload(config: ExperimentConfig) -> dict:
         "n_bins": env.n_bins,
         "environment": env.to_dict(),
         "zones": [z.to_dict() for z in config.zones],
-        "hpd_unit": "cm²" if env.ndim_spatial == 2 else "cm",
+        "hpd_unit": "cm²" if env.ndim_spatial == 2 else ("deg" if isinstance(env, HeadingRing) else "cm"),
     }
     if isinstance(env, Arena):
         out.update(
@@ -172,8 +175,11 @@ def environment_payload(config: ExperimentConfig) -> dict:
             edge_starts_cm=np.concatenate([[0.0], np.cumsum(env.edge_lengths_cm)[:-1]]).tolist(),
             outline_cm=[seg.tolist() for seg in env.outline_cm()],
         )
+    elif isinstance(env, HeadingRing):
+        out.update(kind="ring", bin_edges_deg=env.linear_edges_cm.tolist(), ring_radius_cm=RING_RADIUS_CM)
     else:
-        raise ValueError(f"the monitor cannot draw a {type(env).__name__}; use an Arena, LinearTrack or TrackGraph")
+        raise ValueError(f"the monitor cannot draw a {type(env).__name__}; use an Arena, LinearTrack, TrackGraph "
+                         "or HeadingRing")
     return out
 
 

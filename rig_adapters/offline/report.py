@@ -183,6 +183,13 @@ def _header_section(record: SessionRecord) -> str:
         entry("spatially tuned units at fit", "session.readiness.n_tuned_units"),
         entry("cross-validated median error at fit", "session.readiness.median_cv_error_cm", "cm"),
     ]
+    if "heading_median_error_deg" in s.get("decode", {}):
+        # On a heading ring the errors above are degrees of heading (decoder.space.headings).
+        decoding[2:4] = [
+            entry("median heading error", "decode.heading_median_error_deg", "deg"),
+            entry("90th percentile heading error", "decode.heading_p90_error_deg", "deg"),
+        ]
+        decoding.append(entry("frames without a heading", "input.frames_heading_unknown"))
     behaviour = [
         entry("events", "triggers.count"),
         entry("events with the animal far from the zone", "triggers.false_count"),
@@ -292,7 +299,28 @@ def _rate_map_section(record: SessionRecord) -> str:
             + _image(rate_maps(model, order), "rate maps of the best units", "No units to draw.")
             + "<details><summary>Every unit's figures</summary><table><tr><th>unit</th><th>information "
               "(bits/spike)</th><th>information (bits/s)</th><th>peak rate (Hz)</th><th>sparsity</th>"
-              f"<th>field size ({unit})</th></tr>{rows}</table></details></section>")
+              f"<th>field size ({unit})</th></tr>{rows}</table></details>"
+            + _heading_table(model, order) + "</section>")
+
+
+def _heading_table(model, order) -> str:
+    """Head-direction figures of every unit on a heading ring (``PlaceModel.heading_tuning_``); empty elsewhere."""
+    tuning = getattr(model, "heading_tuning_", None)
+    if tuning is None:
+        return ""
+    rows = "".join(
+        f"<tr><td>{int(model.unit_ids_[i])}</td>"
+        f'<td class="num">{format_figure(tuning.preferred_direction_deg[i])}</td>'
+        f'<td class="num">{format_figure(tuning.mean_vector_length[i])}</td>'
+        f'<td class="num">{format_figure(tuning.tuning_width_deg[i])}</td>'
+        f'<td class="num">{format_figure(tuning.rayleigh_p[i])}</td></tr>'
+        for i in order
+    )
+    return ("<details open><summary>Head-direction figures</summary><p class=\"note\">Preferred direction and "
+            "mean vector length of each tuning curve (Fisher 1993), width at half the peak, and the Rayleigh "
+            "test's p for the unit's spikes (Zar 1999).</p><table><tr><th>unit</th><th>preferred direction "
+            "(deg)</th><th>mean vector length</th><th>tuning width (deg)</th><th>Rayleigh p</th></tr>"
+            f"{rows}</table></details>")
 
 
 def _sweep_section(sweep: dict, path: Path) -> str:

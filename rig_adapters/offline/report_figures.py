@@ -21,7 +21,7 @@ from matplotlib.lines import Line2D
 
 from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import PlaceModel
-from decoder.space.environments import Environment
+from decoder.space.environments import Environment, HeadingRing
 from rig_adapters.offline.report_data import (
     SWEEP_LABELS,
     SWEEP_X_FIGURE,
@@ -53,6 +53,25 @@ def is_arena(env: Environment) -> bool:
     return env.grid_shape is not None
 
 
+def _linear_label(env: Environment) -> str:
+    """The axis label of linear position: degrees of heading on a heading ring, cm along a track."""
+    return "heading (deg)" if isinstance(env, HeadingRing) else "linear position (cm)"
+
+
+def _unwrapped_lines(env: Environment):
+    """Linear position of positions (n, 2); on a heading ring NaN where a line would cross 0/360 deg."""
+    if not isinstance(env, HeadingRing):
+        return env.linearize
+
+    def heading_deg(xy: np.ndarray) -> np.ndarray:
+        deg = env.linearize(xy)
+        # A turn through 0/360 would draw a line across the whole axis: leave that segment out.
+        deg[1:][np.abs(np.diff(deg)) > 180.0] = np.nan
+        return deg
+
+    return heading_deg
+
+
 def _linear_bin_centres_cm(env: Environment) -> np.ndarray:
     edges = env.linear_edges_cm
     return 0.5 * (edges[:-1] + edges[1:])
@@ -72,7 +91,7 @@ def positions_over_time(trace: SessionTrace, env: Environment, has_truth: bool) 
     if is_arena(env):
         coords = [("x (cm)", lambda xy: xy[:, 0]), ("y (cm)", lambda xy: xy[:, 1])]
     else:
-        coords = [("linear position (cm)", env.linearize)]
+        coords = [(_linear_label(env), _unwrapped_lines(env))]
     views = [(trace.step_arrays(), "")]
     # Minutes of data squeeze single crossings into a few pixels; the start shows them step by step.
     if trace.last_step_s - trace.first_step_s > 2 * trace.excerpt_s:
@@ -212,7 +231,7 @@ def event_posteriors(trace: SessionTrace, config: ExperimentConfig) -> str | Non
     fig = Figure(figsize=(1.9 * ncols + 1.0, (1.9 if arena else 1.5) * nrows + 0.8))
     xlim, ylim = _panel_limits(env)
     panels = _small_multiples(fig, len(events), ncols, xlim, ylim or (0.0, 1.05),
-                              "x (cm)" if arena else "linear position (cm)",
+                              "x (cm)" if arena else _linear_label(env),
                               "y (cm)" if arena else "posterior / its peak", None if arena else (0.0, 1.0),
                               hspace=0.35 if arena else 0.9)
     cmap = _viridis_with_grey()
@@ -328,7 +347,7 @@ def rate_maps(model: PlaceModel, order: np.ndarray) -> str | None:
     fig = Figure(figsize=(1.55 * ncols + 1.0, (1.65 if arena else 1.3) * nrows + 0.4))
     xlim, ylim = _panel_limits(env)
     panels = _small_multiples(fig, rows.size, ncols, xlim, ylim or (0.0, 1.05),
-                              "x (cm)" if arena else "linear position (cm)",
+                              "x (cm)" if arena else _linear_label(env),
                               "y (cm)" if arena else "rate / peak (Hz/Hz)", None if arena else (0.0, 1.0),
                               hspace=0.35 if arena else 0.9)
     cmap = _viridis_with_grey()

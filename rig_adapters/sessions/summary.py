@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from decoder.session.pipeline import Pipeline
+from decoder.space.headings import HeadingRing
 
 
 class LatencySeries:
@@ -120,10 +121,16 @@ class LatencyLog:
 
 
 def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
-    """Summary figures shared by live runs and replays."""
+    """Summary figures shared by live runs and replays.
+
+    On a heading ring the decoding error is the shortest turn between the
+    decoded and the true heading, so the errors in cm are degrees; the
+    summary says so once more under ``heading_median_error_deg`` and
+    ``heading_p90_error_deg``, and counts frames without a heading.
+    """
     errors = pipeline.errors
     c = pipeline.counters
-    return {
+    summary = {
         "decode": {
             "steps": c["decode_steps"],
             "median_error_cm": errors.percentile(50),
@@ -155,6 +162,11 @@ def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
         },
         "session": {"state": pipeline.state, "readiness": jsonable(pipeline.readiness)},
     }
+    if isinstance(pipeline.environment, HeadingRing):
+        summary["decode"]["heading_median_error_deg"] = errors.percentile(50)
+        summary["decode"]["heading_p90_error_deg"] = errors.percentile(90)
+        summary["input"]["frames_heading_unknown"] = c.get("frames_heading_unknown", 0)
+    return summary
 
 
 def json_float(x: float):

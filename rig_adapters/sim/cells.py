@@ -19,7 +19,7 @@ import numpy as np
 from decoder.space.environments import Environment, LinearTrack, TrackGraph
 from rig_adapters.sim.settings import SimulationSettings
 
-CELL_TYPES = ("place", "grid", "nonspatial", "interneuron")
+CELL_TYPES = ("place", "grid", "nonspatial", "interneuron", "head_direction")
 
 #: Gain ``a`` and threshold ``b`` of the exponential transfer function of the
 #: grid-cell cosine model (Solstad, Moser & Einevoll 2006; values from memory).
@@ -73,6 +73,10 @@ class GroundTruth:
         Peak of the second field over that of the first; NaN without one.
     spatial_depth : ndarray of float64, shape (n_units,)
         Depth of an interneuron's spatial modulation; NaN for other cells.
+    preferred_heading_rad, heading_kappa : ndarray of float64, shape (n_units,) or None
+        A head-direction cell's preferred direction and von Mises
+        concentration (``rig_adapters.sim.heading``); NaN for other cells,
+        None in a session without head-direction cells.
     """
 
     unit_ids: np.ndarray
@@ -91,6 +95,8 @@ class GroundTruth:
     second_center_cm: np.ndarray
     second_peak_fraction: np.ndarray
     spatial_depth: np.ndarray
+    preferred_heading_rad: np.ndarray | None = None
+    heading_kappa: np.ndarray | None = None
     _type_code: np.ndarray = dataclasses.field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -165,7 +171,9 @@ def rate_of_pairs(truth: GroundTruth, rows: np.ndarray, xy: np.ndarray) -> np.nd
     with ``s`` the sum of the three cosines, which is 3 on a vertex and never
     below -3/2, where the rate is 0 (Solstad, Moser & Einevoll 2006,
     Hippocampus 16:1026). Non-spatial cell: ``peak``. Interneuron:
-    ``peak · (1 + depth · (2 bump - 1))``.
+    ``peak · (1 + depth · (2 bump - 1))``. Head-direction cell, at a point
+    of the heading ring: ``baseline + peak · exp(κ (cos(θ - μ) - 1))``, a
+    von Mises tuning curve of the heading ``θ``.
     """
     rate = np.zeros(rows.size)
     kinds = truth._type_code[rows]
@@ -208,6 +216,13 @@ def rate_of_pairs(truth: GroundTruth, rows: np.ndarray, xy: np.ndarray) -> np.nd
         d2 = np.sum((xy[inter] - truth.field_center_cm[r]) ** 2, axis=1)
         bump = np.exp(-0.5 * d2 / truth.field_sigma_cm[r] ** 2)
         rate[inter] = truth.peak_rate_hz[r] * (1.0 + truth.spatial_depth[r] * (2.0 * bump - 1.0))
+    heading = kinds == 4
+    if np.any(heading):
+        # xy is a point on the heading ring (decoder.space.headings); its direction is the heading.
+        r = rows[heading]
+        theta = np.arctan2(xy[heading, 1], xy[heading, 0])
+        tuning = np.exp(truth.heading_kappa[r] * (np.cos(theta - truth.preferred_heading_rad[r]) - 1.0))
+        rate[heading] = truth.baseline_rate_hz[r] + truth.peak_rate_hz[r] * tuning
     return rate
 
 

@@ -132,17 +132,20 @@ def _fmt(x, spec=".1f") -> str:
 def format_summary(s: dict) -> str:
     d, t, lat, inp = s["decode"], s["triggers"], s["latency_ms"], s["input"]
     ready = (s.get("session") or {}).get("readiness") or {}
+    # A heading session measures its errors in degrees of heading (decoder.space.headings).
+    unit, far = ("deg", "the true heading was far from the arc") if "heading_median_error_deg" in d else (
+        "cm", "the animal was far from the zone")
     lines = [
         "",
         "placeloop demo summary",
         "----------------------",
         f"learning   coverage {_fmt(ready.get('coverage'), '.0%')}, spatially tuned units "
-        f"{ready.get('n_tuned_units', 'n/a')}, cross-validated error {_fmt(ready.get('median_cv_error_cm'))} cm",
+        f"{ready.get('n_tuned_units', 'n/a')}, cross-validated error {_fmt(ready.get('median_cv_error_cm'))} {unit}",
         f"zones      share of each zone in the learned map: "
         f"{', '.join(f'{z} {c:.0%}' for z, c in (ready.get('zone_coverage') or {}).items()) or 'n/a'}",
-        f"decoding   {d['steps']} steps, median error {_fmt(d['median_error_cm'])} cm "
-        f"(90th percentile {_fmt(d.get('p90_error_cm'))} cm)",
-        f"triggers   {t['count']} events, {t['false_count']} while the animal was far from the zone; "
+        f"decoding   {d['steps']} steps, median error {_fmt(d['median_error_cm'])} {unit} "
+        f"(90th percentile {_fmt(d.get('p90_error_cm'))} {unit})",
+        f"triggers   {t['count']} events, {t['false_count']} while {far}; "
         f"stand-in received {s.get('standin', {}).get('events_received', 'n/a')}",
         f"latency    added p50 {_fmt(lat['p50'], '.2f')} ms, p99 {_fmt(lat['p99'], '.2f')} ms, "
         f"max {_fmt(lat['max'], '.2f')} ms",

@@ -148,14 +148,39 @@ class SimulationSettings:
     #: Standard deviation of such an outlier's displacement on each axis (cm).
     tracker_outlier_cm: float = 15.0
 
+    # -- head direction (rig_adapters.sim.heading): used when the environment is a heading ring --
+    #: Number of head-direction cells (von Mises tuning to the head's direction).
+    n_head_direction_cells: int = 0
+    #: Peak rate of a head-direction cell at its preferred direction (Hz), a range; 10-60 Hz in
+    #: anterior thalamus and postsubiculum of the rat (common practice; Taube 1995, J Neurosci 15:70,
+    #: range from memory).
+    hd_peak_hz: tuple[float, float] = (15.0, 50.0)
+    #: Background rate of a head-direction cell away from its preferred direction (Hz); below
+    #: about 1 Hz (from memory).
+    hd_baseline_hz: float = 0.5
+    #: Full width at half maximum of the tuning curve (degrees), a range; directional firing ranges
+    #: of about 60-150 degrees base to base put the half-maximum width near 40-90 degrees (from memory).
+    hd_tuning_fwhm_deg: tuple[float, float] = (45.0, 90.0)
+    #: Standard deviation of the angular head velocity (deg/s): a foraging rat turns its head at
+    #: 0-400 deg/s, most of the time below 150 deg/s (from memory).
+    angular_velocity_sd_deg_s: float = 90.0
+    #: Correlation time of the angular head velocity (s), an Ornstein-Uhlenbeck process (from memory).
+    angular_velocity_tau_s: float = 0.3
+    #: Standard deviation of the tracker's heading noise (degrees); a two-LED or pose tracker
+    #: jitters by a few degrees (from memory).
+    heading_noise_deg: float = 3.0
+    #: Probability that a seen frame carries no heading (one of the two markers hidden), sent as NaN.
+    heading_unknown_prob: float = 0.02
+
     _RANGES: ClassVar[tuple[str, ...]] = (
         "pause_duration_s", "end_pause_s", "place_field_fwhm_cm", "place_peak_hz", "grid_spacing_cm",
         "grid_peak_hz", "nonspatial_rate_hz", "dropout_duration_s", "sync_interval_s", "burst_spikes",
         "burst_isi_s", "elongation_aspect", "second_field_peak_fraction", "interneuron_rate_hz",
-        "interneuron_spatial_depth",
+        "interneuron_spatial_depth", "hd_peak_hz", "hd_tuning_fwhm_deg",
     )
     _COUNTS: ClassVar[tuple[str, ...]] = (
         "n_place_cells", "n_grid_cells", "n_nonspatial_cells", "units_per_tetrode", "n_interneurons",
+        "n_head_direction_cells",
     )
     _FLAGS: ClassVar[tuple[str, ...]] = ("position_heartbeats",)
 
@@ -179,25 +204,31 @@ class SimulationSettings:
         positive = ("tick_s", "mean_speed_cm_s", "velocity_tau_s", "wall_margin_cm", "pause_interval_s",
                     "acquisition_rate_hz", "tracker_rate_hz", "dropout_interval_s", "place_field_fwhm_cm",
                     "grid_spacing_cm", "sync_interval_s", "theta_hz", "gain_interval_s",
-                    "interneuron_field_fwhm_cm")
+                    "interneuron_field_fwhm_cm", "hd_tuning_fwhm_deg", "angular_velocity_tau_s")
         for name in positive:
             low = getattr(self, name)[0] if name in self._RANGES else getattr(self, name)
             if not low > 0:
                 raise ValueError(f"{name} must be positive, got {getattr(self, name)!r}")
         for name in ("min_wall_distance_cm", "end_stop_cm", "lap_speed_cv", "track_lateral_sd_cm",
                      "place_baseline_hz", "refractory_s", "tracker_offset_s", "tracker_noise_cm", "sync_jitter_s",
-                     "gain_cv", "tracker_outlier_cm"):
+                     "gain_cv", "tracker_outlier_cm", "hd_baseline_hz", "angular_velocity_sd_deg_s",
+                     "heading_noise_deg"):
             if getattr(self, name) < 0:
                 raise ValueError(f"{name} must be >= 0, got {getattr(self, name)!r}")
         if self.units_per_tetrode < 1 or self.units_per_tetrode > 99:
             raise ValueError(
                 f"units_per_tetrode must be 1..99 (ids are 100 * tetrode + k), got {self.units_per_tetrode}"
             )
-        if self.n_place_cells + self.n_grid_cells + self.n_nonspatial_cells + self.n_interneurons == 0:
+        if (self.n_place_cells + self.n_grid_cells + self.n_nonspatial_cells + self.n_interneurons
+                + self.n_head_direction_cells == 0):
             raise ValueError(
                 "the simulation needs at least one cell; set n_place_cells, n_grid_cells, "
-                "n_nonspatial_cells or n_interneurons"
+                "n_nonspatial_cells, n_interneurons or n_head_direction_cells"
             )
+        if not 0 <= self.heading_unknown_prob < 1:
+            raise ValueError(f"heading_unknown_prob must lie in [0, 1), got {self.heading_unknown_prob}")
+        if self.hd_tuning_fwhm_deg[1] >= 360.0:
+            raise ValueError(f"hd_tuning_fwhm_deg must stay below 360 degrees, got {self.hd_tuning_fwhm_deg}")
         for name in ("theta_depth", "burst_prob", "elongated_fraction", "double_field_fraction"):
             if not 0 <= getattr(self, name) <= 1:
                 raise ValueError(f"{name} must lie in [0, 1], got {getattr(self, name)}")

@@ -48,8 +48,9 @@ from typing import Any
 import numpy as np
 
 from decoder.messages import Heartbeat, InputMessage, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
-from decoder.space.environments import Environment
+from decoder.space.environments import Environment, HeadingRing
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
+from rig_adapters.sim.heading import HeadTurning, draw_heading_cells, tracked_heading, true_heading
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
@@ -108,8 +109,13 @@ class SimulatedSession:
         self.settings = settings
         self._rng = np.random.default_rng(seed)
         rng = self._rng
-        self._motion = trajectory_for(environment, settings, rng)
-        self._truth = draw_cells(environment, settings, rng)
+        # On a heading ring the session's "position" is the heading as a ring point (rig_adapters.sim.heading).
+        self._heading = isinstance(environment, HeadingRing)
+        if self._heading:
+            self._motion, self._truth = HeadTurning(environment, settings, rng), draw_heading_cells(settings, rng)
+        else:
+            self._motion = trajectory_for(environment, settings, rng)
+            self._truth = draw_cells(environment, settings, rng)
         self._trains = SpikeTrains(self._truth, settings, rng)
         self._drift = 1.0 + settings.tracker_drift_ppm * 1e-6
         self._seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, TRUTH_SOURCE: 0}
@@ -214,7 +220,7 @@ class SimulatedSession:
         ephys.append((t1, self._message(Heartbeat, SPIKE_SOURCE, t_s=t1)))
 
         tracker: list[tuple[float, InputMessage]] = []
-        frame_t_acq, frame_t_trk, frame_xy, frame_q = self._tracker_frames(t0, t1, position)
+        frame_t_acq, frame_t_trk, frame_xy, frame_q, frame_hd = self._tracker_frames(t0, t1, position)
         if pulse_t is not None:
             pulse_trk_t = float(self._truth.tracker_time_s(pulse_t)) + self._rng.normal(0.0, s.sync_jitter_s)
             # Jitter must not carry the pulse past the chunk's end, where a
@@ -226,14 +232,14 @@ class SimulatedSession:
         before = int(np.searchsorted(frame_t_trk, pulse_trk_t, side="left"))
         if before > 0:
             msg = self._message(TrackerFrames, TRACKER_SOURCE, t_s=frame_t_trk[:before], xy_cm=frame_xy[:before],
-                                quality=frame_q[:before])
+                                head_dir_rad=None if frame_hd is None else frame_hd[:before], quality=frame_q[:before])
             tracker.append((float(frame_t_acq[0]), msg))
         if pulse_t is not None:
             msg = self._message(SyncPulse, TRACKER_SOURCE, t_s=pulse_trk_t, pulse_id=pulse_id)
             tracker.append(((pulse_trk_t - s.tracker_offset_s) / self._drift, msg))
         if before < frame_t_trk.size:
             msg = self._message(TrackerFrames, TRACKER_SOURCE, t_s=frame_t_trk[before:], xy_cm=frame_xy[before:],
-                                quality=frame_q[before:])
+                                head_dir_rad=None if frame_hd is None else frame_hd[before:], quality=frame_q[before:])
             tracker.append((float(frame_t_acq[before]), msg))
         if s.position_heartbeats:
             tracker.append((t1, self._message(Heartbeat, TRACKER_SOURCE, t_s=float(self._truth.tracker_time_s(t1)))))
@@ -242,8 +248,11 @@ class SimulatedSession:
         j0, j1 = self._next_truth, int(math.ceil(t1 * s.tracker_rate_hz - 1e-9))
         if j1 > j0:
             t = np.arange(j0, j1) / s.tracker_rate_hz
-            xy = position(t)
-            msg = self._message(TrackerFrames, TRUTH_SOURCE, t_s=t, xy_cm=xy, quality=np.full(t.size, 255))
+            xy, hd = position(t), None
+            if self._heading:
+                xy, hd = true_heading(xy)
+            msg = self._message(TrackerFrames, TRUTH_SOURCE, t_s=t, xy_cm=xy, head_dir_rad=hd,
+                                quality=np.full(t.size, 255))
             truth.append((float(t[0]), msg))
         self._next_truth = max(j1, j0)
         if s.position_heartbeats:
@@ -269,6 +278,8 @@ class SimulatedSession:
             NaN for a lost frame.
         quality : ndarray of int64, shape (n,)
             0 for a lost frame.
+        hd_rad : ndarray of float64, shape (n,), or None
+            The tracked heading on a heading ring (NaN where unknown); None elsewhere.
         """
         s = self.settings
         per_acq_s = s.tracker_rate_hz * self._drift
@@ -288,4 +299,7 @@ class SimulatedSession:
             xy[astray] += self._rng.normal(0.0, s.tracker_outlier_cm, (int(np.count_nonzero(astray)), 2))
         xy[lost] = np.nan
         quality = np.where(lost, 0, FRAME_QUALITY)
-        return t_acq, t_trk, xy, quality
+        hd = None
+        if self._heading:
+            xy, hd = tracked_heading(position(t_acq), lost, s, self._rng)
+        return t_acq, t_trk, xy, quality, hd

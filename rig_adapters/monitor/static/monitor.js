@@ -64,6 +64,9 @@ window.__monitorState = { packets: 0, ready: false };
 
 function $(id) { return document.getElementById(id); }
 
+// Errors on a heading ring are shortest turns in degrees (decoder/space/headings.py), elsewhere cm.
+function errorUnit() { return model.env && model.env.kind === "ring" ? "deg" : "cm"; }
+
 function fmt(x, digits = 1, unit = "") {
   if (x === null || x === undefined || !Number.isFinite(x)) return "—";
   return x.toFixed(digits) + (unit ? " " + unit : "");
@@ -304,6 +307,62 @@ function drawEventRing(ctx, map) {
   ctx.restore();
 }
 
+// ---------------------------------------------------------------- the heading ring
+
+// A heading ring (decoder/space/headings.py): each heading bin a sector of a wheel coloured by its
+// posterior, the arcs of the zones outside it, and the tracked, decoded (MAP) and mean headings as
+// markers on it. Points arrive as ring points in cm (radius ring_radius_cm); the page scales them.
+function drawRing(ctx, w, h) {
+  const env = model.env, f = model.frame;
+  ctx.clearRect(0, 0, w, h);
+  const cx = 58 + (w - 58 - 84) / 2, cy = h / 2, outer = Math.max(40, Math.min(w - 58 - 84, h - 40) / 2 - 20);
+  const inner = outer * 0.62, R = env.ring_radius_cm;
+  // Headings run counter-clockwise from +x (east), as the tracker sends them; the canvas's y grows downwards.
+  const at = (deg, r) => [cx + r * Math.cos(deg * Math.PI / 180), cy - r * Math.sin(deg * Math.PI / 180)];
+  const edges = env.bin_edges_deg, n = edges.length - 1;
+  for (let b = 0; b < n; b++) {
+    const q = model.post && model.post.length === n ? model.post[b] : 0;
+    ctx.beginPath();
+    ctx.arc(cx, cy, outer, -edges[b] * Math.PI / 180, -edges[b + 1] * Math.PI / 180, true);
+    ctx.arc(cx, cy, inner, -edges[b + 1] * Math.PI / 180, -edges[b] * Math.PI / 180, false);
+    ctx.closePath();
+    ctx.fillStyle = `rgb(${LUT[q * 3]},${LUT[q * 3 + 1]},${LUT[q * 3 + 2]})`;
+    ctx.fill();
+  }
+  ctx.save();
+  ctx.lineWidth = 2; ctx.strokeStyle = INK;
+  for (const r of [inner, outer]) { ctx.beginPath(); ctx.arc(cx, cy, r, 0, 2 * Math.PI); ctx.stroke(); }
+  ctx.font = FONT; ctx.fillStyle = MUTED; ctx.textAlign = "center"; ctx.textBaseline = "middle";
+  for (const deg of [0, 90, 180, 270]) ctx.fillText(deg + "°", ...at(deg, inner - 14));
+  ctx.font = "bold " + FONT;
+  for (const z of env.zones) {
+    if (z.kind !== "arc") continue;
+    const a0 = z.center_deg - z.half_width_deg, a1 = z.center_deg + z.half_width_deg;
+    ctx.beginPath();
+    ctx.arc(cx, cy, outer + 5, -a0 * Math.PI / 180, -a1 * Math.PI / 180, true);
+    ctx.lineWidth = 6; ctx.strokeStyle = EVENT; ctx.stroke();
+    const [lx, ly] = at(z.center_deg, outer + 30);
+    ctx.lineWidth = 3; ctx.strokeStyle = "#fff"; ctx.strokeText(z.name, lx, ly);
+    ctx.fillStyle = INK; ctx.fillText(z.name, lx, ly);
+  }
+  ctx.restore();
+  const map = (p) => [cx + (p[0] / R) * (inner + outer) / 2, cy - (p[1] / R) * (inner + outer) / 2];
+  if (f) {
+    // The posterior mean lies inside the ring: its distance from the centre is the mean resultant length.
+    if (f.mean_xy_cm) {
+      const [mx, my] = [cx + (f.mean_xy_cm[0] / R) * inner, cy - (f.mean_xy_cm[1] / R) * inner];
+      ctx.save(); ctx.lineWidth = 3; ctx.strokeStyle = MEAN;
+      ctx.beginPath(); ctx.moveTo(cx, cy); ctx.lineTo(mx, my); ctx.stroke(); ctx.restore();
+      marker(ctx, "mean", mx, my, 5);
+    }
+    if (f.map_xy_cm && f.post_kind === "posterior") marker(ctx, "decoded", ...map(f.map_xy_cm), 7);
+    if (f.tracked_xy_cm && f.tracked_xy_cm[0] !== null) marker(ctx, "tracked", ...map(f.tracked_xy_cm), 6);
+  }
+  drawEventRing(ctx, map);
+  const label = f && f.post_kind === "occupancy" ? "occupancy, fraction of time per bin" : "posterior probability per bin";
+  drawColourBar(ctx, w - 70, 12, 14, Math.min(h - 56, 260), f ? f.post_max || 0 : 0, label);
+}
+
 // ---------------------------------------------------------------- the track strip
 
 function drawTrack(ctx, w, h) {
@@ -403,7 +462,7 @@ function drawErrorTrace(ctx, w, h) {
   tr.forEach(([t, e], i) => (i ? ctx.lineTo(sx(t), sy(e)) : ctx.moveTo(sx(t), sy(e))));
   ctx.stroke();
   ctx.restore();
-  drawAxes(ctx, box, [tMin, tMax], [0, eMax], sx, sy, "data time (s), median per second", "error (cm)",
+  drawAxes(ctx, box, [tMin, tMax], [0, eMax], sx, sy, "data time (s), median per second", `error (${errorUnit()})`,
     { xfmt: (v) => v.toFixed(0) });
 }
 
@@ -488,9 +547,9 @@ function updatePanels(h) {
   }));
 
   const st = f.stats;
-  $("fig-err-roll").textContent = fmt(h.rolling_error_cm, 1, "cm");
-  $("fig-err-session").textContent = fmt(h.session_error_cm, 1, "cm");
-  $("fig-err-now").textContent = fmt(st.error_cm, 1, "cm");
+  $("fig-err-roll").textContent = fmt(h.rolling_error_cm, 1, errorUnit());
+  $("fig-err-session").textContent = fmt(h.session_error_cm, 1, errorUnit());
+  $("fig-err-now").textContent = fmt(st.error_cm, 1, errorUnit());
   $("fig-lat-p50").textContent = fmt(st.latency_p50_ms, 2, "ms");
   $("fig-lat-p99").textContent = fmt(st.latency_p99_ms, 2, "ms");
   $("fig-lat-now").textContent = fmt(st.added_ms, 2, "ms");
@@ -510,7 +569,7 @@ function updatePanels(h) {
   const r = model.readiness || {};
   $("fig-coverage").textContent = Number.isFinite(r.coverage) ? `${(100 * r.coverage).toFixed(0)} %` : "—";
   $("fig-units").textContent = fmt(r.n_spatial_units, 0);
-  $("fig-cv").textContent = fmt(r.cv_error_cm, 1, "cm");
+  $("fig-cv").textContent = fmt(r.cv_error_cm, 1, errorUnit());
   $("fig-learn-t").textContent = fmt(r.learn_elapsed_s, 0, "s");
   $("coverage-bar").style.width = `${Math.round(100 * Math.min(1, r.coverage || 0))}%`;
   $("learn-status").textContent = f.state === "learning" ? "learning now" : (Number.isFinite(r.cv_error_cm) ? "model fitted" : "—");
@@ -621,6 +680,7 @@ function render() {
   if (model.dirty || performance.now() - model.lastEventAt < EVENT_FLASH_MS + 100) {
     model.dirty = false;
     if (model.env.kind === "arena") drawArena(ui.map.ctx, ui.map.w, ui.map.h);
+    else if (model.env.kind === "ring") drawRing(ui.map.ctx, ui.map.w, ui.map.h);
     else drawTrack(ui.map.ctx, ui.map.w, ui.map.h);
     drawErrorTrace(ui.err.ctx, ui.err.w, ui.err.h);
     drawLatencyHist(ui.lat.ctx, ui.lat.w, ui.lat.h);
