@@ -116,13 +116,14 @@ def cmd_run(args: argparse.Namespace) -> int:
             recorder.write_sidecar(INITIAL_MODEL_SIDECAR, Path(args.model).read_bytes())
     ttl = None
     if config.ttl.device:
-        from rig_adapters.live.ttl import TtlLine
+        from rig_adapters.live.ttl import TtlDevice
 
         try:
-            ttl = TtlLine(config.ttl.device, config.ttl.baud, config.ttl.pulse_byte)
+            ttl = TtlDevice.from_settings(config.ttl, [rule.name for rule in config.rules])
         except OSError as exc:
             print(f"error: {exc}", file=sys.stderr)
             return 2
+        print(f"TTL on {config.ttl.device}: " + ("; ".join(ttl.describe()) or "no rule drives it"), file=sys.stderr)
     loop = LiveLoop(config, pipeline, recorder=recorder, ttl=ttl, dry_run=args.dry_run)
 
     def _stop(signum, frame):
