@@ -430,7 +430,7 @@ class TtlSettings:
     #: Byte written to the device for each event (the device turns it into a pulse), 0..255.
     pulse_byte: int = 0x31
     #: drive = "line": the modem-control line pulsed for each event. Many USB-serial adapters
-    #: invert it at the pin (asserted = low); check the polarity on a scope in a dry run.
+    #: invert it at the pin (asserted = low); check the polarity on a scope before an animal is connected.
     line: TtlModemLine = "rts"
     #: drive = "line": how long each pulse holds the line asserted (s), at most 1 s; the live loop
     #: lowers the line on the wall clock, late by at most the handling of one message.
@@ -511,6 +511,16 @@ class ExperimentConfig:
         return tuple(z.name for z in self.zones)
 
 
+#: Each ``[environment] kind`` and what builds it; the other keys of the table are its arguments.
+ENVIRONMENT_KINDS = {
+    "rectangle": Arena.rectangle,
+    "circle": Arena.circle,
+    "polygon": Arena.polygon,
+    "linear_track": LinearTrack,
+    "graph": TrackGraph,
+}
+
+
 def build_environment(table: dict) -> Environment:
     """Build the environment described by an ``[environment]`` table.
 
@@ -521,20 +531,13 @@ def build_environment(table: dict) -> Environment:
     """
     table = dict(table or {})
     kind = table.pop("kind", None)
-    builders = {
-        "rectangle": lambda t: Arena.rectangle(**t),
-        "circle": lambda t: Arena.circle(**t),
-        "polygon": lambda t: Arena.polygon(**t),
-        "linear_track": lambda t: LinearTrack(**t),
-        "graph": lambda t: TrackGraph(**{**t, "edges": [tuple(e) for e in t.get("edges", [])]}),
-    }
-    if kind not in builders:
-        raise ConfigError(f"[environment] kind must be one of {sorted(builders)}, got {kind!r}")
+    if kind not in ENVIRONMENT_KINDS:
+        raise ConfigError(f"[environment] kind must be one of {sorted(ENVIRONMENT_KINDS)}, got {kind!r}")
+    if kind == "graph":
+        table["edges"] = [tuple(e) for e in table.get("edges", [])]
     try:
-        return builders[kind](table)
-    except TypeError as exc:
-        raise ConfigError(f"[environment] ({kind}): {exc}") from None
-    except ValueError as exc:
+        return ENVIRONMENT_KINDS[kind](**table)
+    except (TypeError, ValueError) as exc:
         raise ConfigError(f"[environment] ({kind}): {exc}") from None
 
 

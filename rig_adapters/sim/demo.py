@@ -26,6 +26,9 @@ import tomllib
 from pathlib import Path
 
 import tomli_w
+import zmq
+
+from rig_adapters.wire import protocol
 
 #: How long the simulated rig waits for the decoder to subscribe (s): the decoder loads its
 #: kernels first, which takes about a minute on a machine whose numba cache is still empty.
@@ -39,8 +42,12 @@ def free_loopback_port() -> int:
 
 
 def demo_config_text(config_path: str | Path, learn_s: float | None, ports: dict[str, int]) -> str:
-    """The config the demo runs: the given file, plus the automatic plan and free loopback ports."""
+    """The config the demo runs: the given file, plus the automatic plan and free loopback ports.
+
+    The ``[ttl]`` table is left out: a demo drives no hardware, whatever config it is given.
+    """
     doc = tomllib.loads(Path(config_path).read_text())
+    doc.pop("ttl", None)
     session = dict(doc.get("session", {}))
     if learn_s is not None:
         session["learn_s"] = float(learn_s)
@@ -54,6 +61,27 @@ def demo_config_text(config_path: str | Path, learn_s: float | None, ports: dict
         "control": f"tcp://127.0.0.1:{ports['control']}",
     }
     return tomli_w.dumps(doc)
+
+
+#: The decoder stops after this many wall-clock seconds without rig input.
+IDLE_EXIT_WALL_S = 3.0
+
+
+def _end_of_input(control_port: int, data_s: float) -> None:
+    """Say that the simulated rig has finished, and disarm before the stall watchdog takes the silence for a fault."""
+    sock = zmq.Context.instance().socket(zmq.REQ)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.RCVTIMEO, 5000)
+    try:
+        sock.connect(f"tcp://127.0.0.1:{control_port}")
+        sock.send(protocol.encode_control_request("disarm"))
+        sock.recv()
+    except zmq.ZMQError:
+        pass  # the decoder has stopped already; its own exit status tells
+    finally:
+        sock.close()
+    print(f"demo: the simulated rig finished its {data_s:.0f} s of data (a clean end of input); triggers "
+          f"disarmed; the decoder stops after {IDLE_EXIT_WALL_S:g} s without input", file=sys.stderr)
 
 
 def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: str | None,
@@ -80,7 +108,7 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
                                    f"tcp://127.0.0.1:{ports['events']}", "--out", str(events_out)], env=env,
                                   preexec_fn=others)
         run_cmd = [py, "-m", "rig_adapters.cli", "run", "--config", str(cfg), "--summary", str(summary),
-                   "--idle-exit-s", "3"]
+                   "--idle-wall-s", str(IDLE_EXIT_WALL_S)]
         if log_dir:
             run_cmd += ["--log", str(log_dir)]
         if loop_cpu is not None:
@@ -97,6 +125,8 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
               f"{decode_s:.0f} s of closed loop at {speed:g}x", file=sys.stderr)
         try:
             rig_rc = rig.wait()
+            if rig_rc == 0:
+                _end_of_input(ports["control"], duration_s)
             decoder_rc = decoder.wait(timeout=120)
         except (KeyboardInterrupt, subprocess.TimeoutExpired):
             for proc in (rig, decoder):
