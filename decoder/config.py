@@ -1,8 +1,9 @@
 """Experiment configuration: TOML read into frozen dataclasses.
 
-Every option is documented once, beside its field, with its unit. Defaults
-and validation live here and nowhere else; a bad value raises
-:class:`ConfigError` naming the table, the key and what was expected.
+Every option is documented once, in the ``#:`` comment above its field, with
+its unit (docs/CONFIG.md is generated from them). Defaults and validation
+live here and nowhere else; a bad value raises :class:`ConfigError` naming
+the table, the key and what was expected.
 
 A config file has these tables (all optional but ``[environment]``)::
 
@@ -15,7 +16,7 @@ A config file has these tables (all optional but ``[environment]``)::
     [[zones]]       target zones                   -> decoder.space.zones
     [[rules]]       trigger rules                  -> TriggerRule
     [endpoints]     ZeroMQ endpoints (shell only)  -> EndpointSettings
-    [ttl]           serial TTL output (shell only) -> TtlSettings
+    [ttl]           serial TTL output (shell only) -> TtlSettings; [[ttl.outputs]] per rule -> TtlOutput
     [simulation]    the simulated rig (shell only), read by rig_adapters.sim.simulation
 """
 

@@ -70,9 +70,9 @@ CONTROL_COMMANDS = ("start-learning", "stop-learning", "fit", "load-model", "arm
 DEMO_DESCRIPTION = """\
 The whole closed loop on the simulated rig: three processes over loopback ZeroMQ, as on a rig.
 The simulated rig publishes spikes, tracker frames and sync pulses at --speed times real time;
-the decoder (placeloop run) learns, fits, arms the triggers (trigger arming) and decodes every
-step; a stimulator stand-in subscribes to the events. Nothing outside this machine is driven:
-the config's [ttl] table is dropped. A summary is printed at the end."""
+the decoder (placeloop run) learns, fits, arms the triggers and decodes every step; a
+stimulator stand-in subscribes to the events. Nothing outside this machine is driven: the
+config's [ttl] table is dropped. A summary is printed at the end."""
 
 RUN_DESCRIPTION = """\
 The decoder's live loop: rig in, decoding, trigger events out (and TTL pulses, per [ttl]).
@@ -120,6 +120,15 @@ def _with_endpoints(config, rig=None, events=None, state=None, control=None):
 def _error(message: str, status: int) -> int:
     print(f"error: {message}", file=sys.stderr)
     return status
+
+
+def _write_summary(path: str, summary: dict) -> int:
+    """Write the JSON summary; the exit status (EXIT_FILE, said why, if it cannot be written)."""
+    try:
+        Path(path).write_text(json.dumps(summary, indent=2))
+    except OSError as exc:
+        return _error(f"the summary could not be written to {path}: {exc}", EXIT_FILE)
+    return EXIT_OK
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -198,7 +207,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                 status = _error(f"the session log could not be completed: {exc}", EXIT_FILE)
     summary = loop.summary()
     if args.summary:
-        Path(args.summary).write_text(json.dumps(jsonable(summary), indent=2))
+        status = _write_summary(args.summary, jsonable(summary)) or status
     print(json.dumps({"decode": summary["decode"], "triggers": {"count": summary["triggers"]["count"]}}),
           file=sys.stderr)
     return status
@@ -288,14 +297,12 @@ def cmd_replay(args: argparse.Namespace) -> int:
           f"({s['triggers']['false_count']} far from the zone); zone entries {b['entries']}: {b['hits']} hit, "
           f"{b['misses']} missed, {b['false_events']} false; behavioural latency p50 {b['latency_ms']['p50']} ms")
     print(f"digest {s['decode']['digest']}")
-    if args.summary:
-        Path(args.summary).write_text(json.dumps(jsonable(s), indent=2))
-    return EXIT_OK
+    return _write_summary(args.summary, jsonable(s)) if args.summary else EXIT_OK
 
 
 def cmd_config(args: argparse.Namespace) -> int:
     if args.reference:
-        from rig_adapters.config_reference import reference
+        from rig_adapters.offline.config_reference import reference
 
         sys.stdout.write(reference())
     elif args.scenarios:
@@ -350,12 +357,14 @@ def build_parser() -> argparse.ArgumentParser:
                  DEMO_DESCRIPTION, "  placeloop demo --summary demo.json\n"
                  "  placeloop demo --config linear_track_2m --speed 8 --log sessions/demo-track", caution=True)
     _config_option(p, DEFAULT_SCENARIO)
-    p.add_argument("--speed", type=float, default=4.0, help="simulated (data) seconds per wall-clock second")
-    p.add_argument("--learn-data-s", type=float, default=None,
+    p.add_argument("--speed", type=float, metavar="X", default=4.0,
+                   help="simulated (data) seconds per wall-clock second")
+    p.add_argument("--learn-data-s", type=float, metavar="S", default=None,
                    help="data seconds of learning before the fit (default: the config's [session] learn_s, "
                         "else 180)")
     p.add_argument("--learn-s", dest="learn_data_s", type=float, action=_Renamed, new="--learn-data-s")
-    p.add_argument("--decode-data-s", type=float, default=120.0, help="data seconds of closed loop after the fit")
+    p.add_argument("--decode-data-s", type=float, metavar="S", default=120.0,
+                   help="data seconds of closed loop after the fit")
     p.add_argument("--decode-s", dest="decode_data_s", type=float, action=_Renamed, new="--decode-data-s")
     p.add_argument("--log", default=None, metavar="DIR", help="keep the session log in this new directory")
     p.add_argument("--summary", default=None, metavar="FILE", help="write the JSON summary here")
@@ -378,10 +387,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="bind the control REP socket here (default: [endpoints] control)")
     p.add_argument("--log", default=None, metavar="DIR", help="record the session log in this new directory")
     p.add_argument("--summary", default=None, metavar="FILE", help="write the JSON summary here at the end")
-    p.add_argument("--wall-s", type=float, default=None,
+    p.add_argument("--wall-s", type=float, metavar="S", default=None,
                    help="stop after this many wall-clock seconds (default: run until stopped)")
     p.add_argument("--duration-s", dest="wall_s", type=float, action=_Renamed, new="--wall-s")
-    p.add_argument("--idle-wall-s", type=float, default=None,
+    p.add_argument("--idle-wall-s", type=float, metavar="S", default=None,
                    help="stop after this many wall-clock seconds without rig input (default: never)")
     p.add_argument("--idle-exit-s", dest="idle_wall_s", type=float, action=_Renamed, new="--idle-wall-s")
     p.add_argument("--dry-run", action="store_true",
@@ -411,9 +420,9 @@ def build_parser() -> argparse.ArgumentParser:
     _config_option(p, DEFAULT_SCENARIO)
     p.add_argument("--pub", default=None, metavar="ENDPOINT",
                    help="bind the rig's PUB socket here (default: the config's first [endpoints] rig)")
-    p.add_argument("--speed", type=float, default=1.0,
+    p.add_argument("--speed", type=float, metavar="X", default=1.0,
                    help="data seconds per wall-clock second; 0 sends as fast as possible")
-    p.add_argument("--data-s", type=float, default=600.0, help="data seconds to send")
+    p.add_argument("--data-s", type=float, metavar="S", default=600.0, help="data seconds to send")
     p.add_argument("--duration-s", dest="data_s", type=float, action=_Renamed, new="--data-s")
     p.add_argument("--seed", type=int, default=7, help="seed of the simulated animal and cells")
     p.set_defaults(func=cmd_sim)
@@ -429,7 +438,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the loop's config; its [endpoints] control is where the command goes")
     p.add_argument("--endpoint", default=None, metavar="ENDPOINT",
                    help=f"send here instead (default: the config's [endpoints] control, else {DEFAULT_CONTROL})")
-    p.add_argument("--timeout-wall-s", type=float, default=10.0, help="wall-clock seconds to wait for the reply")
+    p.add_argument("--timeout-wall-s", type=float, metavar="S", default=10.0,
+                   help="wall-clock seconds to wait for the reply")
     p.add_argument("--timeout-s", dest="timeout_wall_s", type=float, action=_Renamed, new="--timeout-wall-s")
     p.set_defaults(func=cmd_control)
 

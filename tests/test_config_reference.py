@@ -16,7 +16,7 @@ import pytest
 
 from decoder.config import ENVIRONMENT_KINDS, ExperimentConfig, load_config
 from decoder.space.zones import Zone
-from rig_adapters.config_reference import field_docs, reference
+from rig_adapters.offline.config_reference import field_docs, reference
 from rig_adapters.sim.settings import SimulationSettings
 
 ROOT = Path(__file__).resolve().parent.parent

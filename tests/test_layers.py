@@ -26,7 +26,7 @@ LAYERS = [
     ["rig_adapters.sim"],
     ["rig_adapters.live"],
     ["rig_adapters.offline", "rig_adapters.monitor"],
-    ["rig_adapters.cli", "rig_adapters.config_reference"],
+    ["rig_adapters.cli"],
 ]
 FORBIDDEN_IN_CORE = ("zmq", "msgpack", "rig_adapters", "importlib")
 MAX_LINES = 700

@@ -54,11 +54,14 @@ def test_each_rule_writes_its_own_byte_through_a_pseudo_terminal(pty):
                                                   {"rule": "east_reward", "byte": 0x42}]},
                      ["west_reward", "east_reward", "probe"])
     try:
-        assert device.pulse("east_reward") and device.pulse("west_reward") and device.pulse("east_reward")
+        for rule in ("east_reward", "west_reward", "east_reward"):
+            device.pulse(rule)
         # A rule left out of [[ttl.outputs]] drives nothing.
         assert device.pulse("probe") is False
         assert read_all() == b"BAB"
-        assert (device.pulses, device.failures) == (3, 0)
+        # A write can be reported as timed out after its byte went out when the machine is loaded
+        # (the module's docstring); every pulse is either counted sent or counted failed.
+        assert device.pulses + device.failures == 3
     finally:
         device.close()
 
@@ -67,7 +70,8 @@ def test_without_outputs_every_rule_writes_the_table_byte(pty):
     path, read_all = pty
     device = _device({"device": path, "pulse_byte": 0x31}, ["a", "b"])
     try:
-        assert device.pulse("a") and device.pulse("b")
+        device.pulse("a")
+        device.pulse("b")
         assert read_all() == b"11"
     finally:
         device.close()
@@ -173,3 +177,19 @@ def test_the_live_loop_drives_each_rules_byte_for_the_events_it_publishes(pty):
     assert loop.events_sent >= 2 and len(rules) == loop.events_sent
     assert read_all() == bytes(0x57 if r == "west_reward" else 0x45 for r in rules)
     assert np.unique(rules).size == 2, "the scenario should fire both rules"
+
+
+def test_the_loop_wakes_for_a_line_due_to_go_low():
+    config = parse_config(tomli_w.dumps({**BASE, "ttl": {"device": "loop://", "drive": "line", "pulse_s": 0.004}}))
+    device = TtlDevice.from_settings(config.ttl, [r.name for r in config.rules])
+    loop = LiveLoop(config, Pipeline(config), ttl=device, publish_state=False)
+    try:
+        assert loop._poll_ms() == 10
+        assert device.pulse("west_reward")
+        assert loop._poll_ms() <= 4
+        time.sleep(0.005)
+        assert loop._poll_ms() == 0
+        device.service()
+        assert not device.port.cts and loop._poll_ms() == 10
+    finally:
+        device.close()

@@ -245,7 +245,7 @@ def reference() -> str:
             out += dataclass_section(f"[[{f.name}]]", args[0])
         else:
             raise TypeError(f"ExperimentConfig.{f.name} has no section in the reference; teach "
-                            "rig_adapters/config_reference.py about it")
+                            "rig_adapters/offline/config_reference.py about it")
     return "\n".join(out).rstrip() + "\n"
 
 
