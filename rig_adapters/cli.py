@@ -208,8 +208,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     summary = loop.summary()
     if args.summary:
         status = _write_summary(args.summary, jsonable(summary)) or status
-    print(json.dumps({"decode": summary["decode"], "triggers": {"count": summary["triggers"]["count"]}}),
-          file=sys.stderr)
+    print(json.dumps({"decode": summary["decode"], "triggers": {"count": summary["triggers"]["count"]},
+                      **({"ttl": summary["ttl"]} if "ttl" in summary else {})}), file=sys.stderr)
     return status
 
 

@@ -176,6 +176,7 @@ def test_the_live_loop_drives_each_rules_byte_for_the_events_it_publishes(pty):
         device.close()
     assert loop.events_sent >= 2 and len(rules) == loop.events_sent
     assert read_all() == bytes(0x57 if r == "west_reward" else 0x45 for r in rules)
+    assert sum(loop.summary()["ttl"].values()) == loop.events_sent
     assert np.unique(rules).size == 2, "the scenario should fire both rules"
 
 

@@ -460,11 +460,14 @@ class LiveLoop:
         """The session summary (the JSON written by ``--summary``).
 
         Beyond the figures a replay shares, ``triggers`` says whether this
-        was a dry run and how many events were published or withheld, and
+        was a dry run and how many events were published or withheld,
         ``input.control_refused`` counts refused control requests by reason
-        (apart from ``input.bad_messages``, which is rig data only).
+        (apart from ``input.bad_messages``, which is rig data only), and
+        ``ttl``, with a TTL device, the pulses started and the writes failed.
         """
         summary = session_summary(self.pipeline, self.latency)
         summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld)
         summary["input"]["control_refused"] = dict(self.ingest.control_refused)
+        if self.ttl is not None:
+            summary["ttl"] = {"pulses": self.ttl.pulses, "failures": self.ttl.failures}
         return summary
