@@ -43,11 +43,15 @@ def test_the_installed_package_finds_its_scenarios_from_any_directory(wheel, tmp
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
     probe = ("import rig_adapters, decoder.config as c; from rig_adapters.console import config_path, scenarios; "
+             "from rig_adapters.offline.config_reference import reference; "
              "print(rig_adapters.__file__); print(len(scenarios())); "
-             "print(c.load_config(config_path('round_arena_goal')).rules[0].name)")
+             "print(c.load_config(config_path('round_arena_goal')).rules[0].name); "
+             "open('CONFIG.md', 'w').write(reference())")
     out = subprocess.run([sys.executable, "-c", probe], cwd=elsewhere, capture_output=True, text=True, timeout=120,
                          env={"PYTHONPATH": str(site), "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr
+    # The reference reads the installed sources: the same text as from the checkout.
+    assert (elsewhere / "CONFIG.md").read_text() == (ROOT / "docs" / "CONFIG.md").read_text()
     where, count, rule = out.stdout.split()
     assert where.startswith(str(site)), f"imported {where}, not the unpacked wheel"
     assert int(count) == len(list((ROOT / "configs").glob("*.toml")))
