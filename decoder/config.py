@@ -1,8 +1,9 @@
 """Experiment configuration: TOML read into frozen dataclasses.
 
-Every option is documented once, beside its field, with its unit. Defaults
-and validation live here and nowhere else; a bad value raises
-:class:`ConfigError` naming the table, the key and what was expected.
+Every option is documented once, in the ``#:`` comment above its field, with
+its unit (docs/CONFIG.md is generated from them). Defaults and validation
+live here and nowhere else; a bad value raises :class:`ConfigError` naming
+the table, the key and what was expected.
 
 A config file has these tables (all optional but ``[environment]``)::
 
@@ -15,7 +16,7 @@ A config file has these tables (all optional but ``[environment]``)::
     [[zones]]       target zones                   -> decoder.space.zones
     [[rules]]       trigger rules                  -> TriggerRule
     [endpoints]     ZeroMQ endpoints (shell only)  -> EndpointSettings
-    [ttl]           serial TTL output (shell only) -> TtlSettings
+    [ttl]           serial TTL output (shell only) -> TtlSettings; [[ttl.outputs]] per rule -> TtlOutput
     [simulation]    the simulated rig (shell only), read by rig_adapters.sim.simulation
 """
 
@@ -27,7 +28,7 @@ import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal, get_args
 
 import numpy as np
 import tomli_w
@@ -42,8 +43,11 @@ class ConfigError(ValueError):
 
 # -- trigger rules and the caps beneath them ([[rules]], [safety]) -------------------------
 
-MODES = ("mass", "map")
-TRACKED = ("any", "inside", "outside")
+Mode = Literal["mass", "map"]
+Tracked = Literal["any", "inside", "outside"]
+MODES = get_args(Mode)
+TRACKED = get_args(Tracked)
+
 
 def _positive_int(owner: str, field_name: str, value: Any) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
@@ -75,40 +79,28 @@ def _optional_speed(owner: str, field_name: str, value: Any) -> float | None:
 
 @dataclass(frozen=True)
 class TriggerRule:
-    """When one zone should produce an event.
+    """When one zone should produce an event (one ``[[rules]]`` entry)."""
 
-    Parameters
-    ----------
-    name : str
-        Unique within a bank; written into every event.
-    zone : str
-        Name of the zone; must be one of the bank's ``zone_names``.
-    mode : {"mass", "map"}, default "mass"
-        ``"mass"``: posterior mass in the zone ``>= min_mass``.
-        ``"map"``: the maximum a posteriori bin lies in the zone.
-    min_mass : float, default 0.8
-        In (0, 1]; used by ``mode="mass"``.
-    consecutive_steps : int, default 3
-        Decoding steps in a row the condition must hold before the rule fires.
-    min_speed_cm_s, max_speed_cm_s : float or None
-        Inclusive bounds on the tracked speed; None leaves that side open.
-        On a heading ring, the tracked angular head speed in deg/s.
-    tracked : {"any", "inside", "outside"}, default "any"
-        Where the tracked animal must be relative to the same zone.
-        ``"outside"`` serves experiments that act on a non-local
-        representation (decoded in the zone while the animal is elsewhere;
-        on a heading ring, the decoded heading in the arc while the head
-        faces away from it).
-    """
-
+    #: Unique among the rules; written into every event.
     name: str
+    #: Name of the zone; must be one of the ``[[zones]]`` names.
     zone: str
-    mode: str = "mass"
+    #: "mass": the posterior mass in the zone is at least min_mass. "map": the maximum a
+    #: posteriori bin lies in the zone.
+    mode: Mode = "mass"
+    #: Least posterior mass in the zone, in (0, 1]; used by mode = "mass".
     min_mass: float = 0.8
+    #: Decoding steps in a row the condition must hold before the rule fires.
     consecutive_steps: int = 3
+    #: Least tracked running speed (cm/s), inclusive; unset leaves this side open. On a heading
+    #: ring, the tracked angular head speed in deg/s.
     min_speed_cm_s: float | None = None
+    #: Greatest tracked running speed (cm/s), inclusive; unset leaves this side open.
     max_speed_cm_s: float | None = None
-    tracked: str = "any"
+    #: Where the tracked animal must be relative to the same zone. "outside" serves experiments
+    #: that act on a non-local representation (decoded in the zone while the animal is elsewhere;
+    #: on a heading ring, the decoded heading in the arc while the head faces away from it).
+    tracked: Tracked = "any"
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name.strip():
@@ -139,24 +131,17 @@ class TriggerRule:
 
 @dataclass(frozen=True)
 class SafetyCaps:
-    """Limits beneath every rule; none can be switched off.
+    """Limits beneath every rule; none can be switched off."""
 
-    Parameters
-    ----------
-    refractory_s : float, default 2.0
-        Least data time between two events of any rule.
-    max_per_minute : int, default 10
-        Most events in any 60 s of data time (sliding window).
-    max_per_session : int, default 200
-        Most events in the life of the bank; reaching it disarms the bank for good.
-    stall_limit_s : float, default 1.0
-        Largest tolerated lag of the slowest input stream behind data time;
-        beyond it the bank disarms itself (reason ``"stall"``).
-    """
-
+    #: Least data time between two events of any rule (s).
     refractory_s: float = 2.0
+    #: Most events in any 60 s of data time (sliding window).
     max_per_minute: int = 10
+    #: Most events in the life of the trigger bank; reaching it disarms the triggers for good.
     max_per_session: int = 200
+    #: Largest tolerated lag of the slowest input stream behind data time (s); beyond it the
+    #: triggers disarm themselves (reason "stall"). The live loop also disarms when the rig has
+    #: been silent this long on the wall clock.
     stall_limit_s: float = 1.0
 
     def __post_init__(self) -> None:
@@ -227,6 +212,10 @@ class ModelSettings:
         }
 
 
+Method = Literal["sliding_window", "filter"]
+Prior = Literal["uniform", "state_space"]
+
+
 @dataclass(frozen=True)
 class DecoderSettings:
     """The decoding step (see ``decoder.inference.decoding.BayesDecoder``)."""
@@ -241,13 +230,13 @@ class DecoderSettings:
     #: the movement model learned from the session's own tracking at fit time, mixed with a
     #: small uniform jump (0.05 per s) so the filter can leave a wrong estimate, and the
     #: likelihood is divided by likelihood_temperature. Needs prior = "state_space".
-    method: str = "sliding_window"
+    method: Method = "sliding_window"
     #: Length of the spike-count window (s); 0.2 for behaviour, 0.02 for fast events.
     window_s: float = 0.2
     #: The window moves by this much each step (s); steps end at multiples of it.
     step_s: float = 0.02
     #: "uniform" or "state_space" (causal random-walk filter).
-    prior: str = "state_space"
+    prior: Prior = "state_space"
     #: S.d. of the random walk per step (cm), for the state-space prior.
     random_walk_sd_cm: float = 3.0
     #: For method = "filter": the log-likelihood of each step is divided by this (>= 1
@@ -260,10 +249,10 @@ class DecoderSettings:
     def __post_init__(self) -> None:
         _positive("decoder", window_s=self.window_s, step_s=self.step_s,
                   random_walk_sd_cm=self.random_walk_sd_cm, likelihood_temperature=self.likelihood_temperature)
-        if self.method not in ("sliding_window", "filter"):
-            raise ConfigError(f"[decoder] method must be 'sliding_window' or 'filter', got {self.method!r}")
-        if self.prior not in ("uniform", "state_space"):
-            raise ConfigError(f"[decoder] prior must be 'uniform' or 'state_space', got {self.prior!r}")
+        if self.method not in get_args(Method):
+            raise ConfigError(f"[decoder] method must be one of {get_args(Method)}, got {self.method!r}")
+        if self.prior not in get_args(Prior):
+            raise ConfigError(f"[decoder] prior must be one of {get_args(Prior)}, got {self.prior!r}")
         if self.method == "filter" and self.prior != "state_space":
             raise ConfigError("[decoder] method = 'filter' is the state-space filter; set prior = 'state_space'")
         if self.step_s > self.window_s:
@@ -409,20 +398,105 @@ def is_loopback_endpoint(endpoint: str) -> bool:
     return is_loopback_host(endpoint[len("tcp://"):].rsplit(":", 1)[0])
 
 
+TtlDrive = Literal["byte", "line"]
+TtlModemLine = Literal["rts", "dtr"]
+
+#: Longest TTL pulse placeloop times itself (s); a longer output belongs to the device's own timer.
+MAX_TTL_PULSE_S = 1.0
+
+
+@dataclass(frozen=True)
+class TtlOutput:
+    """What one rule drives on the TTL device (one ``[[ttl.outputs]]`` entry)."""
+
+    #: Name of the rule whose events this output follows; one of the ``[[rules]]`` names.
+    rule: str
+    #: drive = "byte": the byte written for this rule's events, 0..255; unset uses [ttl] pulse_byte.
+    byte: int | None = None
+    #: drive = "line": the modem-control line this rule pulses; unset uses [ttl] line.
+    line: TtlModemLine | None = None
+    #: drive = "line": how long this rule's pulse holds the line (s); unset uses [ttl] pulse_s.
+    pulse_s: float | None = None
+
+
 @dataclass(frozen=True)
 class TtlSettings:
-    """Optional TTL pulse through a serial device for each event."""
+    """Optional TTL pulses through a serial device, one per event.
+
+    Two set-ups: ``drive = "byte"`` writes one byte per event to a device (a
+    microcontroller on USB serial, say) that turns it into a pulse of its own
+    width; ``drive = "line"`` raises a modem-control line (RTS or DTR) of a
+    plain USB-serial adapter for ``pulse_s``. With no ``[[ttl.outputs]]``
+    every rule drives the table's byte or line; with outputs, only the rules
+    listed drive anything, each its own byte or line (two reward ports, say).
+    """
 
     #: pyserial URL or device path, e.g. "/dev/ttyACM0" or "loop://"; empty for none.
     device: str = ""
     #: Baud rate of the device.
     baud: int = 115200
-    #: Byte written to the device for each event (the device turns it into a pulse).
+    #: "byte": one byte per event, the device shapes the pulse. "line": placeloop holds an
+    #: adapter's modem-control line asserted for pulse_s.
+    drive: TtlDrive = "byte"
+    #: Byte written to the device for each event (the device turns it into a pulse), 0..255.
     pulse_byte: int = 0x31
+    #: drive = "line": the modem-control line pulsed for each event. Many USB-serial adapters
+    #: invert it at the pin (asserted = low); check the polarity on a scope before an animal is connected.
+    line: TtlModemLine = "rts"
+    #: drive = "line": how long each pulse holds the line asserted (s), at most 1 s; the live loop
+    #: lowers the line on the wall clock, late by at most the handling of one message.
+    pulse_s: float = 0.01
+    #: Per-rule outputs ([[ttl.outputs]]); empty: every rule drives the settings above.
+    outputs: tuple[TtlOutput, ...] = ()
 
     def __post_init__(self) -> None:
-        if not 0 <= self.pulse_byte <= 255:
-            raise ConfigError(f"[ttl] pulse_byte must be 0..255, got {self.pulse_byte}")
+        if self.drive not in get_args(TtlDrive):
+            raise ConfigError(f"[ttl] drive must be one of {get_args(TtlDrive)}, got {self.drive!r}")
+        for key in ("pulse_byte", "line", "pulse_s"):
+            _check_ttl_value("[ttl]", key, getattr(self, key))
+        outputs = []
+        for i, table in enumerate(self.outputs):
+            where = f"[[ttl.outputs]] #{i + 1}"
+            out = table if isinstance(table, TtlOutput) else _from_table(TtlOutput, table,
+                                                                         f"[ttl.outputs] #{i + 1}")
+            if not isinstance(out.rule, str) or not out.rule:
+                raise ConfigError(f"{where}: rule must name one of the [[rules]], got {out.rule!r}")
+            unused = ("line", "pulse_s") if self.drive == "byte" else ("byte",)
+            for key in ("byte", "line", "pulse_s"):
+                value = getattr(out, key)
+                if value is not None and key in unused:
+                    raise ConfigError(f"{where} ({out.rule!r}) sets {key}, which drive = {self.drive!r} does not "
+                                      "use: with 'byte' a rule chooses its byte (the device sets the pulse width), "
+                                      "with 'line' its line and pulse_s")
+                if value is not None:
+                    _check_ttl_value(where, key, value)
+            outputs.append(out)
+        if len({o.rule for o in outputs}) != len(outputs):
+            raise ConfigError(f"[[ttl.outputs]] names each rule at most once, got {[o.rule for o in outputs]}")
+        object.__setattr__(self, "outputs", tuple(outputs))
+
+    def route(self, rule: str) -> TtlOutput | None:
+        """What ``rule`` drives, every unset key filled from the table; None if it drives nothing."""
+        found = [o for o in self.outputs if o.rule == rule] if self.outputs else [TtlOutput(rule=rule)]
+        if not found:
+            return None
+        if self.drive == "byte":
+            return TtlOutput(rule, byte=self.pulse_byte if found[0].byte is None else found[0].byte)
+        return TtlOutput(rule, line=found[0].line or self.line,
+                         pulse_s=self.pulse_s if found[0].pulse_s is None else found[0].pulse_s)
+
+
+def _check_ttl_value(where: str, key: str, value: Any) -> None:
+    """The one rule for each TTL key, in [ttl] and in [[ttl.outputs]]."""
+    if key == "line":
+        if value not in get_args(TtlModemLine):
+            raise ConfigError(f"{where} line must be one of {get_args(TtlModemLine)}, got {value!r}")
+    elif key == "pulse_s":
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value <= MAX_TTL_PULSE_S:
+            raise ConfigError(f"{where} pulse_s must be a pulse length in (0, {MAX_TTL_PULSE_S}] s, got {value!r}; "
+                              "a longer output belongs to the device's own timer")
+    elif isinstance(value, bool) or not isinstance(value, int) or not 0 <= value <= 255:
+        raise ConfigError(f"{where} {key} must be a byte value 0..255 (0x31 is the character '1'), got {value!r}")
 
 
 @dataclass(frozen=True)
@@ -448,6 +522,17 @@ class ExperimentConfig:
         return tuple(z.name for z in self.zones)
 
 
+#: Each ``[environment] kind`` and what builds it; the other keys of the table are its arguments.
+ENVIRONMENT_KINDS = {
+    "rectangle": Arena.rectangle,
+    "circle": Arena.circle,
+    "polygon": Arena.polygon,
+    "linear_track": LinearTrack,
+    "graph": TrackGraph,
+    "heading_ring": HeadingRing,
+}
+
+
 def build_environment(table: dict) -> Environment:
     """Build the environment described by an ``[environment]`` table.
 
@@ -462,21 +547,13 @@ def build_environment(table: dict) -> Environment:
     """
     table = dict(table or {})
     kind = table.pop("kind", None)
-    builders = {
-        "rectangle": lambda t: Arena.rectangle(**t),
-        "circle": lambda t: Arena.circle(**t),
-        "polygon": lambda t: Arena.polygon(**t),
-        "linear_track": lambda t: LinearTrack(**t),
-        "graph": lambda t: TrackGraph(**{**t, "edges": [tuple(e) for e in t.get("edges", [])]}),
-        "heading_ring": lambda t: HeadingRing(**t),
-    }
-    if kind not in builders:
-        raise ConfigError(f"[environment] kind must be one of {sorted(builders)}, got {kind!r}")
+    if kind not in ENVIRONMENT_KINDS:
+        raise ConfigError(f"[environment] kind must be one of {sorted(ENVIRONMENT_KINDS)}, got {kind!r}")
+    if kind == "graph":
+        table["edges"] = [tuple(e) for e in table.get("edges", [])]
     try:
-        return builders[kind](table)
-    except TypeError as exc:
-        raise ConfigError(f"[environment] ({kind}): {exc}") from None
-    except ValueError as exc:
+        return ENVIRONMENT_KINDS[kind](**table)
+    except (TypeError, ValueError) as exc:
         raise ConfigError(f"[environment] ({kind}): {exc}") from None
 
 
@@ -516,6 +593,11 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
     if "tracked_value" in doc.get("sources", {}) and sources.tracked_value != tracked_value:
         raise ConfigError(f"[sources] tracked_value = {sources.tracked_value!r} contradicts [environment]: "
                           f"this environment decodes the {tracked_value}; remove the key")
+    ttl = _from_table(TtlSettings, doc.get("ttl"), "ttl")
+    rule_names = [r.name for r in rules]
+    for output in ttl.outputs:
+        if output.rule not in rule_names:
+            raise ConfigError(f"[[ttl.outputs]] names rule {output.rule!r}, which is not among {rule_names}")
     return ExperimentConfig(
         environment=environment,
         model=_from_table(ModelSettings, doc.get("model"), "model"),
@@ -526,7 +608,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
         zones=tuple(zones),
         rules=tuple(rules),
         endpoints=_from_table(EndpointSettings, doc.get("endpoints"), "endpoints"),
-        ttl=_from_table(TtlSettings, doc.get("ttl"), "ttl"),
+        ttl=ttl,
         simulation=dict(doc.get("simulation", {})),
         source_text=text,
     )

@@ -24,7 +24,7 @@ import zmq
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
 from rig_adapters.live.loop import LiveLoop
-from rig_adapters.live.ttl import TtlLine
+from rig_adapters.live.ttl import TtlDevice as TtlLine
 from rig_adapters.sessions.recorder import read_log
 from rig_adapters.sessions.replay import replay_session
 from rig_adapters.sim.demo import free_loopback_port

@@ -85,8 +85,8 @@ class LiveLoop:
     pipeline : Pipeline
     recorder : SessionRecorder or None
         Session log; every input and every event goes to it.
-    ttl : rig_adapters.live.ttl.TtlLine or None
-        A serial line for TTL pulses.
+    ttl : rig_adapters.live.ttl.TtlDevice or None
+        A serial device for TTL pulses; each event pulses its rule's output.
     publish_state : bool
         Send a state frame per step (for monitors).
     dry_run : bool
@@ -173,7 +173,7 @@ class LiveLoop:
         last_input = started
         try:
             while not self.stop_requested:
-                ready = dict(poller.poll(timeout=10))
+                ready = dict(poller.poll(timeout=self._poll_ms()))
                 if self.rig in ready:
                     n = self._drain_rig()
                     if n:
@@ -181,6 +181,8 @@ class LiveLoop:
                 if self.control in ready:
                     self._serve_control()
                 now = time.monotonic()
+                if self.ttl is not None:
+                    self.ttl.service(now)
                 self._watchdog(now)
                 if self.recorder is not None:
                     self.recorder.maybe_flush(time.time())
@@ -194,6 +196,13 @@ class LiveLoop:
             if self.recorder is not None:
                 self.recorder.flush()
 
+    def _poll_ms(self) -> int:
+        """How long a poll may wait (ms): 10, or less when a TTL line is due to go low sooner."""
+        due = self.ttl.next_due_s() if self.ttl is not None else None
+        if due is None:
+            return 10
+        return max(0, min(10, math.ceil((due - time.monotonic()) * 1e3)))
+
     def _drain_rig(self) -> int:
         n = 0
         while n < DRAIN_LIMIT:
@@ -204,6 +213,9 @@ class LiveLoop:
             recv_wall_s = time.time()
             n += 1
             self.handle_rig_bytes(payload, recv_wall_s)
+            if self.ttl is not None:
+                # A long drain must not hold a TTL line past its pulse length.
+                self.ttl.service()
         return n
 
     def handle_rig_bytes(self, payload: bytes, recv_wall_s: float) -> None:
@@ -264,7 +276,7 @@ class LiveLoop:
         self.events.send(payload)
         sent_wall_s = time.time()
         if self.ttl is not None:
-            self.ttl.pulse()
+            self.ttl.pulse(event.rule)
         self.events_sent += 1
         self.latency.event_ms.append((sent_wall_s - recv_wall_s) * 1e3)
         if self.recorder is not None:
@@ -448,11 +460,14 @@ class LiveLoop:
         """The session summary (the JSON written by ``--summary``).
 
         Beyond the figures a replay shares, ``triggers`` says whether this
-        was a dry run and how many events were published or withheld, and
+        was a dry run and how many events were published or withheld,
         ``input.control_refused`` counts refused control requests by reason
-        (apart from ``input.bad_messages``, which is rig data only).
+        (apart from ``input.bad_messages``, which is rig data only), and
+        ``ttl``, with a TTL device, the pulses started and the writes failed.
         """
         summary = session_summary(self.pipeline, self.latency)
         summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld)
         summary["input"]["control_refused"] = dict(self.ingest.control_refused)
+        if self.ttl is not None:
+            summary["ttl"] = {"pulses": self.ttl.pulses, "failures": self.ttl.failures}
         return summary

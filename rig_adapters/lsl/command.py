@@ -50,13 +50,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--cm-per-unit", type=float, default=None,
                    help="position scale in cm per unit, over the stream's own unit metadata")
     p.add_argument("--holdback-s", type=float, default=0.02,
-                   help="heartbeats run this far behind the clock, the time LSL takes to deliver a sample (s)")
-    p.add_argument("--heartbeat-s", type=float, default=0.01, help="heartbeat interval (s)")
-    p.add_argument("--resolve-timeout-s", type=float, default=10.0, help="how long to look for each stream (s)")
-    p.add_argument("--stall-s", type=float, default=2.0, help="report a stream silent this long (s)")
+                   help="heartbeats run this far behind the clock, the time LSL takes to deliver a sample (s of data time)")
+    p.add_argument("--heartbeat-s", type=float, default=0.01, help="heartbeat interval (s of data time)")
+    p.add_argument("--resolve-timeout-s", type=float, default=10.0, help="how long to look for each stream (wall-clock s)")
+    p.add_argument("--stall-s", type=float, default=2.0, help="report a stream silent this long (wall-clock s)")
     p.add_argument("--rejoin-s", type=float, default=5.0,
-                   help="after a stream's outlet closed, look for it again this long before stopping (s)")
-    p.add_argument("--duration-s", type=float, default=None, help="stop after this many seconds")
+                   help="after a stream's outlet closed, look for it again this long before stopping (wall-clock s)")
+    p.add_argument("--duration-s", type=float, default=None, help="stop after this many wall-clock seconds")
     p.add_argument("--report", default=None, help="write the JSON report here at the end")
     p.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
     return p

@@ -26,6 +26,9 @@ import tomllib
 from pathlib import Path
 
 import tomli_w
+import zmq
+
+from rig_adapters.wire import protocol
 
 #: How long the simulated rig waits for the decoder to subscribe (s): the decoder loads its
 #: kernels first, which takes about a minute on a machine whose numba cache is still empty.
@@ -39,8 +42,12 @@ def free_loopback_port() -> int:
 
 
 def demo_config_text(config_path: str | Path, learn_s: float | None, ports: dict[str, int]) -> str:
-    """The config the demo runs: the given file, plus the automatic plan and free loopback ports."""
+    """The config the demo runs: the given file, plus the automatic plan and free loopback ports.
+
+    The ``[ttl]`` table is left out: a demo drives no hardware, whatever config it is given.
+    """
     doc = tomllib.loads(Path(config_path).read_text())
+    doc.pop("ttl", None)
     session = dict(doc.get("session", {}))
     if learn_s is not None:
         session["learn_s"] = float(learn_s)
@@ -54,6 +61,62 @@ def demo_config_text(config_path: str | Path, learn_s: float | None, ports: dict
         "control": f"tcp://127.0.0.1:{ports['control']}",
     }
     return tomli_w.dumps(doc)
+
+
+#: The decoder stops after this many wall-clock seconds without rig input.
+IDLE_EXIT_WALL_S = 3.0
+
+#: The decoder has reached the end of the rig's data when its data time is this close to it (s).
+END_OF_DATA_SLACK_S = 0.5
+
+#: How long the demo waits for the decoder after the rig has finished (wall-clock s).
+DECODER_WAIT_S = 120.0
+
+
+def _request(control_port: int, command: str) -> dict | None:
+    """One control request to the demo's decoder; None if it does not answer within 5 s."""
+    sock = zmq.Context.instance().socket(zmq.REQ)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.RCVTIMEO, 5000)
+    try:
+        sock.connect(f"tcp://127.0.0.1:{control_port}")
+        sock.send(protocol.encode_control_request(command))
+        return protocol.decode_control_reply(sock.recv())
+    except zmq.ZMQError:
+        return None
+    finally:
+        sock.close()
+
+
+def _follow_to_end_of_data(control_port: int, data_s: float, speed: float, rig: subprocess.Popen,
+                           decoder: subprocess.Popen) -> None:
+    """Follow the decoder's data time; at the end of the rig's data, disarm and say the input ended cleanly.
+
+    After its last message the simulated rig falls silent, and the loop's
+    stall watchdog would take that for a fault (an ERROR line, "rig silent")
+    one stall limit later. The decoder's own data time says when it has
+    worked through the last message, backlog included; then the demo disarms
+    first. Status requests are spaced by half the wall time left (at most
+    1 s), so a long demo sends few of them (each is recorded in the log).
+    """
+    rig_ended_s = None
+    while decoder.poll() is None:
+        reply = _request(control_port, "status")
+        t_s = ((reply or {}).get("status") or {}).get("data_time_s")
+        if t_s is not None and t_s >= data_s - END_OF_DATA_SLACK_S:
+            if (_request(control_port, "disarm") or {}).get("ok"):
+                print(f"demo: the simulated rig finished its {data_s:.0f} s of data (a clean end of input); "
+                      f"triggers disarmed; the decoder stops after {IDLE_EXIT_WALL_S:g} s without input",
+                      file=sys.stderr)
+            return
+        if rig.poll() is not None:
+            if rig.returncode != 0:
+                return
+            rig_ended_s = rig_ended_s or time.monotonic()
+            if time.monotonic() - rig_ended_s > DECODER_WAIT_S:
+                return
+        left_s = (data_s - t_s) / speed if t_s is not None and speed > 0 else 1.0
+        time.sleep(min(max(left_s / 2, 0.05), 1.0))
 
 
 def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: str | None,
@@ -80,7 +143,7 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
                                    f"tcp://127.0.0.1:{ports['events']}", "--out", str(events_out)], env=env,
                                   preexec_fn=others)
         run_cmd = [py, "-m", "rig_adapters.cli", "run", "--config", str(cfg), "--summary", str(summary),
-                   "--idle-exit-s", "3"]
+                   "--idle-wall-s", str(IDLE_EXIT_WALL_S)]
         if log_dir:
             run_cmd += ["--log", str(log_dir)]
         if loop_cpu is not None:
@@ -96,8 +159,9 @@ def run_demo(config_path: str, speed: float, log_dir: str | None, summary_path: 
         print(f"demo: rig, decoder and stimulator stand-in started; {learn:.0f} s of learning then "
               f"{decode_s:.0f} s of closed loop at {speed:g}x", file=sys.stderr)
         try:
+            _follow_to_end_of_data(ports["control"], duration_s, speed, rig, decoder)
             rig_rc = rig.wait()
-            decoder_rc = decoder.wait(timeout=120)
+            decoder_rc = decoder.wait(timeout=DECODER_WAIT_S)
         except (KeyboardInterrupt, subprocess.TimeoutExpired):
             for proc in (rig, decoder):
                 if proc.poll() is None:
