@@ -16,12 +16,12 @@ import math
 
 import numpy as np
 
-#: Data time of spikes kept (s): the newest minute and a half of learning.
-#: At 20 ms steps that is 4,500 held-out steps; ``calibration`` uses at most
+#: Data time of spikes kept (s): the newest minute of learning. At 20 ms
+#: steps that is 3,000 held-out steps; the place model uses at most
 #: ``MAX_CALIBRATION_STEPS`` of them.
-HELD_OUT_S = 90.0
+HELD_OUT_S = 60.0
 
-#: Most spikes kept; 300 units at 30 Hz over ``HELD_OUT_S`` is 810,000.
+#: Most spikes kept; 300 units at 30 Hz over ``HELD_OUT_S`` is 540,000.
 MAX_HELD_OUT_SPIKES = 1_000_000
 
 #: Chunks of arrivals are merged into one array once this many are held.

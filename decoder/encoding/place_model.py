@@ -37,10 +37,10 @@ from decoder.space.environments import Environment
 
 logger = logging.getLogger(__name__)
 
-#: Most held-out steps the temperature is fitted on: the newest 90 s at 20 ms
-#: steps. Each of the fit's eight passes decodes them all, which takes well
-#: under a second on the benchmark's sessions (bench/accuracy.py).
-MAX_CALIBRATION_STEPS = 4_500
+#: Most held-out steps the temperature is fitted on: the newest minute at 20 ms
+#: steps. Each of the fit's eight passes decodes them all (bench/decoder.py
+#: times the whole fit).
+MAX_CALIBRATION_STEPS = 3_000
 
 __all__ = [
     "PlaceModel",
