@@ -268,7 +268,8 @@ class DecoderSettings:
         if self.prior not in ("uniform", "state_space"):
             raise ConfigError(f"[decoder] prior must be 'uniform' or 'state_space', got {self.prior!r}")
         if self.method == "filter" and self.prior != "state_space":
-            raise ConfigError("[decoder] method = 'filter' is the state-space filter; set prior = 'state_space'")
+            raise ConfigError("[decoder] method = 'filter' (the default) is the state-space filter; set prior = "
+                              "'state_space', or method = 'sliding_window' to decode each window with a uniform prior")
         if self.step_s > self.window_s:
             raise ConfigError(f"[decoder] step_s ({self.step_s}) must not exceed window_s ({self.window_s})")
         if not 0 <= self.allowed_lateness_s <= 1.0:
