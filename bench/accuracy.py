@@ -24,9 +24,10 @@ on (``configs/accuracy_open_arena.toml``, ``accuracy_linear_track.toml``,
    where the animal runs (at standstill every shift fits alike).
 
 Placeloop is replayed once per decoding method asked for (``--methods``;
-by default the shipped ``sliding_window`` and the ``filter``, with
-``--temperature`` as its ``likelihood_temperature``), each scored the same
-way; the filter's learned walk and jump are reported beside it.
+by default the shipped ``filter`` and the ``sliding_window``), each scored
+the same way. The filter's likelihood temperature is fitted at fit time
+from the learning part, as shipped, unless ``--temperature`` sets one; its
+learned walk, jump and temperature are reported beside it.
 
 ``ratio`` is placeloop's median error over the textbook's best median;
 ``ratio_worst`` the largest over sessions, per method. The sessions are simulated
@@ -238,7 +239,7 @@ def _textbook(config: ExperimentConfig, rec: Recorded, test_t_s: np.ndarray) -> 
 
 
 def run_session(name: str, path: pathlib.Path, seed: int, work: pathlib.Path, test_s: float,
-                methods: tuple[str, ...] = ("sliding_window",), temperature: float = 1.0) -> list[dict]:
+                methods: tuple[str, ...] = ("filter",), temperature: float | None = None) -> list[dict]:
     """Record the session once, replay it once per method; one row per method."""
     recorded_config = load_config(path)
     until_s = recorded_config.session.learn_s + test_s
@@ -290,8 +291,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--sessions", nargs="+", choices=[s[0] for s in SESSIONS], help="only these sessions")
     parser.add_argument("--test-s", type=float, default=TEST_S, help=f"test part (s), default {TEST_S:g}")
     parser.add_argument("--methods", nargs="+", choices=("sliding_window", "filter"),
-                        default=["sliding_window", "filter"], help="decoding methods to replay with")
-    parser.add_argument("--temperature", type=float, default=1.0, help="the filter's likelihood_temperature")
+                        default=["filter", "sliding_window"], help="decoding methods to replay with")
+    parser.add_argument("--temperature", type=float, default=None,
+                        help="the filter's likelihood_temperature (default: fitted at fit time, as shipped)")
     args = parser.parse_args(argv)
     chosen = [s for s in SESSIONS if not args.sessions or s[0] in args.sessions]
     started = time.perf_counter()
@@ -319,7 +321,7 @@ def main(argv: list[str] | None = None) -> int:
         if r["filter"]:
             f = r["filter"]
             print(f"filter {r['name']}: walk s.d. {f['walk_sd_cm']:.2f} cm per {f['step_s'] * 1e3:.0f} ms step, "
-                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:g}")
+                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:.3g}")
     worst = ", ".join(f"{m} {v:.3f}" for m, v in out["ratio_worst"].items())
     print(f"ratio_worst {worst} (bar <= 0.8); wall {out['wall_s']} s")
     if args.json:

@@ -3,9 +3,12 @@
 Run ``python bench/decoder.py --json out/decoder.json`` (``--quick`` for a
 short run). For 50, 300 and 1000 units on a 200-bin linear track, a
 2,500-bin and a 10,000-bin arena, with the uniform and the state-space
-prior, the numba decoder and the same decoder on the numpy twins decode the
-same windows in the same run; the table gives per-step latency (median and
-99th percentile, after warm-up) and the ratio of the medians.
+prior over sliding windows (``[decoder] method = "sliding_window"``) and
+as the filter (``method = "filter"``, the default: non-overlapping 20 ms
+bins, a uniform jump, a likelihood temperature), the numba decoder and the
+same decoder on the numpy twins decode the same steps in the same run; the
+table gives per-step latency (median and 99th percentile, after warm-up)
+and the ratio of the medians.
 
 Spikes are simulated, for timing only: place-cell-like Gaussian rate maps
 with mean rates of 0.5-2 Hz over the environment, a smooth random walk for
@@ -18,10 +21,12 @@ zone, with a per-unit background rate on top of the place fields so that
 about 100 units fire per window. Its figure feeds the replay benchmark
 (``bench/replay.py``), which holds the replay's own target.
 
-Two more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
+Three more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
 take 30 simulated minutes (tracker at 50 Hz, 300 units) through its update
-methods and fit them, and the time for a fresh Python process, with numba's
-on-disk cache warm, to import the decoder and decode its first windows.
+methods and fit them, the time it then takes to fit the filter's likelihood
+temperature for 20 ms steps (``PlaceModel.likelihood_temperature``), and the
+time for a fresh Python process, with numba's on-disk cache warm, to import
+the decoder and decode its first windows.
 """
 
 from __future__ import annotations
@@ -52,10 +57,16 @@ from decoder.space.zones import CircleZone, zone_masks  # noqa: E402
 WINDOW_S = 0.2
 STEP_S = 0.02
 RANDOM_WALK_SD_CM = 3.0
+#: The filter case: walk s.d. per 20 ms step (about what a rat's tracked
+#: movement gives, bench/accuracy.py), the default jump and a typical
+#: fitted temperature.
+FILTER_WALK_SD_CM, FILTER_UNIFORM_WEIGHT, FILTER_TEMPERATURE = 1.7, 1e-3, 2.0
+KINDS = ("uniform", "state_space", "filter")
 BACKGROUND_HZ = 0.05
 TARGET_UNITS, TARGET_BINS = 300, 10_000
 TARGET_P99_MS, TARGET_RATIO = 0.5, 3.0
 TARGET_FIT_S, TARGET_WARM_START_S = 5.0, 2.0
+TARGET_TEMPERATURE_FIT_S = 5.0
 
 ENVIRONMENTS = {
     200: lambda: LinearTrack((0, 0), (400, 0), bin_cm=2.0),
@@ -115,10 +126,10 @@ def trajectory(
 
 
 def window_counts(
-    env: Environment, rates: np.ndarray, n_steps: int, rng: np.random.Generator
+    env: Environment, rates: np.ndarray, n_steps: int, rng: np.random.Generator, window_s: float = WINDOW_S
 ) -> list[tuple[np.ndarray, np.ndarray]]:
-    """Spike counts of ``n_steps`` windows of ``WINDOW_S`` moved by ``STEP_S``."""
-    per_window = round(WINDOW_S / STEP_S)
+    """Spike counts of ``n_steps`` windows of ``window_s`` moved by ``STEP_S``."""
+    per_window = round(window_s / STEP_S)
     xy = trajectory(env, n_steps + per_window, STEP_S, rng)
     bins = env.bin_index(xy)
     step_counts = rng.poisson(rates[:, bins].T * STEP_S)
@@ -155,29 +166,35 @@ def time_steps(decoder: BayesDecoder, windows: list, warmup: int) -> tuple[np.nd
     return wall * 1e3, cpu * 1e3
 
 
-def run_case(env: Environment, n_units: int, prior: str, n_steps: int, warmup: int, seed: int) -> dict:
+def run_case(env: Environment, n_units: int, kind: str, n_steps: int, warmup: int, seed: int) -> dict:
+    """One case; ``kind`` is a prior of the sliding window (``"uniform"``, ``"state_space"``) or ``"filter"``."""
     rng = np.random.default_rng(seed)
     rates = place_maps(env, n_units, rng)
-    windows = window_counts(env, rates, n_steps + warmup, rng)
-    return time_backends(env, rates, windows, prior, warmup)
+    windows = window_counts(env, rates, n_steps + warmup, rng, STEP_S if kind == "filter" else WINDOW_S)
+    return time_backends(env, rates, windows, kind, warmup)
+
+
+def _decoder(env: Environment, rates: np.ndarray, kind: str, zones: np.ndarray | None, backend: str) -> BayesDecoder:
+    """The decoder of a case, as ``decoder.session.steps.build_decoder`` makes it for that method."""
+    if kind == "filter":
+        return BayesDecoder(
+            rates, env, env.valid_mask, STEP_S, prior="state_space", random_walk_sd_cm=FILTER_WALK_SD_CM,
+            uniform_weight=FILTER_UNIFORM_WEIGHT, likelihood_temperature=FILTER_TEMPERATURE, zone_masks=zones,
+            backend=backend,
+        )
+    return BayesDecoder(
+        rates, env, env.valid_mask, WINDOW_S, prior=kind, random_walk_sd_cm=RANDOM_WALK_SD_CM, zone_masks=zones,
+        backend=backend,
+    )
 
 
 def time_backends(
-    env: Environment, rates: np.ndarray, windows: list, prior: str, warmup: int, zones: np.ndarray | None = None
+    env: Environment, rates: np.ndarray, windows: list, kind: str, warmup: int, zones: np.ndarray | None = None
 ) -> dict:
     """Per-step latency of the numba decoder and of the same decoder on the numpy twins."""
-    result = {"units": rates.shape[0], "bins": env.n_bins, "prior": prior}
+    result = {"units": rates.shape[0], "bins": env.n_bins, "prior": kind}
     for backend in ("numba", "numpy"):
-        decoder = BayesDecoder(
-            rates,
-            env,
-            env.valid_mask,
-            WINDOW_S,
-            prior=prior,
-            random_walk_sd_cm=RANDOM_WALK_SD_CM,
-            zone_masks=zones,
-            backend=backend,
-        )
+        decoder = _decoder(env, rates, kind, zones, backend)
         wall_ms, cpu_ms = time_steps(decoder, windows, warmup)
         result[f"{backend}_p50_ms"] = float(np.median(wall_ms))
         result[f"{backend}_p99_ms"] = float(np.percentile(wall_ms, 99))
@@ -197,8 +214,8 @@ def replay_case(n_steps: int, warmup: int, seed: int) -> dict:
     return time_backends(env, rates, windows, "state_space", warmup, zones)
 
 
-def fit_time_s(minutes: float, n_units: int, seed: int) -> float:
-    """Seconds to feed ``minutes`` of 50 Hz frames and spikes to a PlaceModel and fit it."""
+def fit_time_s(minutes: float, n_units: int, seed: int) -> tuple[float, float]:
+    """Seconds to feed ``minutes`` of 50 Hz frames and spikes to a PlaceModel and fit it, then its temperature."""
     env = ENVIRONMENTS[2_500]()
     rng = np.random.default_rng(seed)
     rates = place_maps(env, n_units, rng)
@@ -222,7 +239,9 @@ def fit_time_s(minutes: float, n_units: int, seed: int) -> float:
         model.update_frames(frame_t, frame_xy)
         model.update_spikes(spike_t, spike_unit)
     model.fit()
-    return time.perf_counter() - t0
+    t1 = time.perf_counter()
+    model.likelihood_temperature(STEP_S)
+    return t1 - t0, time.perf_counter() - t1
 
 
 WARM_START_SCRIPT = """
@@ -253,7 +272,7 @@ def warm_start_s(root: pathlib.Path) -> float:
 
 def print_table(cases: list[dict]) -> None:
     head = (
-        f"{'units':>6} {'bins':>6} {'prior':>12} {'fired':>6} {'numba p50':>10} {'numba p99':>10} "
+        f"{'units':>6} {'bins':>6} {'kind':>12} {'fired':>6} {'numba p50':>10} {'numba p99':>10} "
         f"{'(cpu p99)':>10} {'numpy p50':>10} {'numpy p99':>10} {'ratio':>6}"
     )
     print(head)
@@ -294,9 +313,9 @@ def main(argv: list[str] | None = None) -> int:
         env = make_env()
         assert env.n_bins == n_bins
         for n_units in unit_counts:
-            for prior in ("uniform", "state_space"):
+            for kind in KINDS:
                 seed += 1
-                cases.append(run_case(env, n_units, prior, n_steps, warmup, seed))
+                cases.append(run_case(env, n_units, kind, n_steps, warmup, seed))
     replay = replay_case(max(n_steps, 2000), warmup, seed=77)
     load_after = os.getloadavg()
     print_table(cases)
@@ -310,15 +329,17 @@ def main(argv: list[str] | None = None) -> int:
         f"({os.cpu_count()} cores)"
     )
 
-    fit_s = fit_time_s(fit_minutes, 300, seed=99)
+    fit_s, temperature_s = fit_time_s(fit_minutes, 300, seed=99)
     print(
-        f"PlaceModel, {fit_minutes:g} simulated min at 50 Hz, 300 units, 2,500 bins: updates + fit {fit_s:.2f} s"
+        f"PlaceModel, {fit_minutes:g} simulated min at 50 Hz, 300 units, 2,500 bins: updates + fit {fit_s:.2f} s, "
+        f"then the likelihood temperature for 20 ms steps {temperature_s:.2f} s"
     )
     warm_s = warm_start_s(_HERE.parent)
     print(f"fresh process to first decoded windows with a warm cache: {warm_s:.2f} s")
 
-    target = next(
-        c for c in cases if (c["units"], c["bins"], c["prior"]) == (TARGET_UNITS, TARGET_BINS, "state_space")
+    target, target_filter = (
+        next(c for c in cases if (c["units"], c["bins"], c["prior"]) == (TARGET_UNITS, TARGET_BINS, kind))
+        for kind in ("state_space", "filter")
     )
     checks = [
         (
@@ -330,6 +351,16 @@ def main(argv: list[str] | None = None) -> int:
             target["numba_cpu_p99_ms"] <= TARGET_P99_MS,
         ),
         (f"... and >= {TARGET_RATIO:g}x the numpy twin at the median", target["ratio_p50"] >= TARGET_RATIO),
+        (
+            f"{TARGET_UNITS} units x {TARGET_BINS} bins, filter: numba p99 <= {TARGET_P99_MS} ms",
+            target_filter["numba_p99_ms"] <= TARGET_P99_MS,
+        ),
+        (
+            f"... counting CPU time only: numba p99 <= {TARGET_P99_MS} ms",
+            target_filter["numba_cpu_p99_ms"] <= TARGET_P99_MS,
+        ),
+        (f"... and >= {TARGET_RATIO:g}x the numpy twin at the median", target_filter["ratio_p50"] >= TARGET_RATIO),
+        (f"temperature fit < {TARGET_TEMPERATURE_FIT_S:g} s", temperature_s < TARGET_TEMPERATURE_FIT_S),
         (f"30 min fit < {TARGET_FIT_S:g} s", fit_s < TARGET_FIT_S if not args.quick else None),
         (f"warm start < {TARGET_WARM_START_S:g} s", warm_s < TARGET_WARM_START_S),
     ]
@@ -342,11 +373,14 @@ def main(argv: list[str] | None = None) -> int:
             "cases": cases,
             "replay_case": replay,
             "fit_s_30min_300units": None if args.quick else fit_s,
+            "temperature_fit_s": temperature_s,
             "warm_start_s": warm_s,
             "settings": {
                 "window_s": WINDOW_S,
                 "step_s": STEP_S,
                 "random_walk_sd_cm": RANDOM_WALK_SD_CM,
+                "filter": {"walk_sd_cm": FILTER_WALK_SD_CM, "uniform_weight": FILTER_UNIFORM_WEIGHT,
+                           "likelihood_temperature": FILTER_TEMPERATURE},
                 "timed_steps": n_steps,
                 "warmup_steps": warmup,
                 "fit_minutes": fit_minutes,

@@ -220,41 +220,50 @@ Prior = Literal["uniform", "state_space"]
 class DecoderSettings:
     """The decoding step (see ``decoder.inference.decoding.BayesDecoder``)."""
 
-    #: "sliding_window" or "filter".
+    #: "filter" (the default) or "sliding_window".
+    #: "filter": the causal state-space filter over non-overlapping bins of step_s, each
+    #: spike counted once, so the posterior at a step's end is the position then (window_s
+    #: and random_walk_sd_cm are not used). Its random walk is the movement model learned
+    #: from the session's own tracking at fit time, mixed with a small uniform jump (0.05
+    #: per s) so the filter can leave a wrong estimate; its likelihood is divided by
+    #: likelihood_temperature, fitted at fit time so that the 95 % HPD region holds the
+    #: position in 95 % of held-out learning steps. Needs prior = "state_space".
     #: "sliding_window": each step decodes the overlapping window of window_s that ends
     #: there, with the prior below. Every spike is counted window_s / step_s times (10 at
     #: the defaults), so with the state-space prior this is not a proper filter and the
-    #: posterior mass (zone mass, HPD size) is not calibrated: it is overconfident.
-    #: "filter": the causal state-space filter over non-overlapping bins of step_s, each
-    #: spike counted once (window_s and random_walk_sd_cm are not used). Its random walk is
-    #: the movement model learned from the session's own tracking at fit time, mixed with a
-    #: small uniform jump (0.05 per s) so the filter can leave a wrong estimate, and the
-    #: likelihood is divided by likelihood_temperature. Needs prior = "state_space".
-    method: Method = "sliding_window"
-    #: Length of the spike-count window (s); 0.2 for behaviour, 0.02 for fast events.
+    #: posterior mass (zone mass, HPD size) is not calibrated: it is overconfident, and
+    #: the estimate trails the animal by about half a window.
+    method: Method = "filter"
+    #: Length of the spike-count window (s) of method = "sliding_window"; 0.2 for
+    #: behaviour, 0.02 for fast events.
     window_s: float = 0.2
-    #: The window moves by this much each step (s); steps end at multiples of it.
+    #: Steps end at multiples of this (s); the filter's bins are this long, the sliding
+    #: window moves by this much.
     step_s: float = 0.02
     #: "uniform" or "state_space" (causal random-walk filter).
     prior: Prior = "state_space"
-    #: S.d. of the random walk per step (cm), for the state-space prior.
+    #: S.d. of the random walk per step (cm), for method = "sliding_window" with the
+    #: state-space prior.
     random_walk_sd_cm: float = 3.0
-    #: For method = "filter": the log-likelihood of each step is divided by this (>= 1
+    #: For method = "filter": the log-likelihood of each step is divided by this (> 1
     #: widens the posterior of overdispersed, correlated counts; 1 is the plain Poisson
-    #: model). Fitting it automatically from the learning data is not wired in yet.
-    likelihood_temperature: float = 1.0
+    #: model). Unset (the default): fitted from the learning data at fit time
+    #: (decoder.encoding.calibration) and saved with the model; set it only to override.
+    likelihood_temperature: float | None = None
     #: A step closes when the spike stream's data time passes its end by this much (s).
     allowed_lateness_s: float = 0.005
 
     def __post_init__(self) -> None:
-        _positive("decoder", window_s=self.window_s, step_s=self.step_s,
-                  random_walk_sd_cm=self.random_walk_sd_cm, likelihood_temperature=self.likelihood_temperature)
+        _positive("decoder", window_s=self.window_s, step_s=self.step_s, random_walk_sd_cm=self.random_walk_sd_cm)
+        if self.likelihood_temperature is not None:
+            _positive("decoder", likelihood_temperature=self.likelihood_temperature)
         if self.method not in get_args(Method):
             raise ConfigError(f"[decoder] method must be one of {get_args(Method)}, got {self.method!r}")
         if self.prior not in get_args(Prior):
             raise ConfigError(f"[decoder] prior must be one of {get_args(Prior)}, got {self.prior!r}")
         if self.method == "filter" and self.prior != "state_space":
-            raise ConfigError("[decoder] method = 'filter' is the state-space filter; set prior = 'state_space'")
+            raise ConfigError("[decoder] method = 'filter' (the default) is the state-space filter; set prior = "
+                              "'state_space', or method = 'sliding_window' to decode each window with a uniform prior")
         if self.step_s > self.window_s:
             raise ConfigError(f"[decoder] step_s ({self.step_s}) must not exceed window_s ({self.window_s})")
         if not 0 <= self.allowed_lateness_s <= 1.0:

@@ -14,6 +14,7 @@ import pytest
 import tomli_w
 
 from decoder.config import parse_config
+from decoder.encoding.place_model import PlaceModel
 from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
@@ -368,3 +369,23 @@ def test_the_filter_method_decodes_each_spike_once_with_the_learned_movement(ses
     assert abs(len(steps) - 40.0 / 0.025) <= 2 and dec.underflow_resets == 0
     # Sanity bound on invented cells, as for the sliding window above.
     assert pipeline.errors.percentile(50) < 12.0
+
+
+def test_the_filter_fits_its_temperature_at_fit_time_and_the_model_file_keeps_it(session_messages, tmp_path):
+    config, messages = session_messages
+    assert config.decoder.method == "filter" and config.decoder.likelihood_temperature is None   # the defaults
+    pipeline, _ = _run(config, messages)
+    fit = pipeline.model.temperature_fits_[0.025]
+    # Source: the setting's definition — unset, the decoder takes the temperature fitted for its step,
+    # and the readiness figures report it; the fit decoded held-out learning steps with a tracked position.
+    assert pipeline.steps.decoder.likelihood_temperature == fit.temperature >= 1.0
+    assert pipeline.readiness["filter"]["likelihood_temperature"] == fit.temperature
+    assert 0 < fit.n_steps <= 3000 and fit.coverage_at_1 <= fit.coverage
+    path = tmp_path / "model.npz"
+    pipeline.model.save(path)
+    loaded = PlaceModel.load(path)
+    assert loaded.temperature_fits_ == pipeline.model.temperature_fits_
+    assert loaded.likelihood_temperature(0.025) == fit.temperature
+    # A loaded model has no held-out spikes: another step cannot be fitted, and says why.
+    with pytest.raises(ValueError, match="no held-out learning steps"):
+        loaded.likelihood_temperature(0.01)

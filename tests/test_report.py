@@ -142,6 +142,8 @@ def test_every_section_is_there_and_the_page_is_well_formed(session):
     assert all(img.get("alt") for img in page.images)
     # The cautions go with the output (common practice for software that drives reward and stimulation).
     assert "no hardware interlock" in session["html"] and "animal-use protocol" in session["html"]
+    # The settings say which method decoded (the config names none: the default, the filter).
+    assert "method filter: bins of 0.025 s" in session["html"]
 
 
 def test_every_image_is_an_inline_png_that_decodes(session):

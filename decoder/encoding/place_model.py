@@ -18,8 +18,10 @@ from typing import Any
 
 import numpy as np
 
-from decoder.encoding.cross_validation import CrossValidatedError, held_out_error
+from decoder.encoding.calibration import TemperatureFit, fit_temperature
+from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
+from decoder.encoding.held_out import HeldOutSpikes
 from decoder.encoding.model_file import (
     FORMAT_NAME,
     FORMAT_VERSION,
@@ -31,9 +33,15 @@ from decoder.encoding.movement import MovementModel, default_uniform_weight
 from decoder.encoding.online_counts import OnlineCounts
 from decoder.encoding.readiness import Readiness, coarse_tuning_grid, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
+from decoder.inference.decoding import RandomWalk
 from decoder.space.environments import Environment, HeadingRing
 
 logger = logging.getLogger(__name__)
+
+#: Most held-out steps the temperature is fitted on: the newest minute at 20 ms
+#: steps. Each of the fit's eight passes decodes them all (bench/decoder.py
+#: times the whole fit).
+MAX_CALIBRATION_STEPS = 3_000
 
 __all__ = [
     "PlaceModel",
@@ -107,6 +115,10 @@ class PlaceModel(OnlineCounts):
         cm² (``MovementModel.from_tracking`` on the newest half hour of
         tracked frames; its variance per step is linear in the step). NaN
         when the frames could not tell (too few, or no movement).
+    temperature_fits_ : dict of float to TemperatureFit
+        The likelihood temperature fitted for each decoding step (s) asked
+        of :meth:`likelihood_temperature` since the last :meth:`fit`, and
+        saved with the model.
     counters_ : dict of str to int
         What was received and what was dropped, and why.
     heading_tuning_ : HeadingTuning or None
@@ -127,6 +139,16 @@ class PlaceModel(OnlineCounts):
     >>> model.counters_["spikes_placed"]
     2
     """
+
+    def __init__(self, environment: Environment, **settings: Any) -> None:
+        super().__init__(environment, **settings)
+        self._held_out = HeldOutSpikes()
+        self.temperature_fits_: dict[float, TemperatureFit] = {}
+
+    def update_spikes(self, t_s: Any, unit_ids: Any) -> None:
+        """Add spikes; see :meth:`OnlineCounts.update_spikes`. The newest are also kept for calibration."""
+        super().update_spikes(t_s, unit_ids)
+        self._held_out.add(t_s, unit_ids)
 
     # ------------------------------------------------------------------
     # Estimation
@@ -195,6 +217,7 @@ class PlaceModel(OnlineCounts):
         self.field_size_ = field_size(rates, self.environment, visited)
         self.walk_variance_cm2_per_s_ = self._learn_walk_variance()
         self.heading_tuning_ = self._heading_tuning(counts)
+        self.temperature_fits_ = {}
         logger.info(
             "fitted %d units on %d visited bins from %.1f s of running",
             len(self.unit_ids_), int(visited.sum()), occupancy.sum(),
@@ -241,6 +264,89 @@ class PlaceModel(OnlineCounts):
                 "without one); fit it again on a session with tracking"
             )
         return MovementModel(math.sqrt(variance * step_s), default_uniform_weight(step_s), step_s)
+
+    def likelihood_temperature(self, step_s: float) -> float:
+        """The likelihood temperature for decoding steps of ``step_s``, fitted on first asking.
+
+        The fit (:mod:`decoder.encoding.calibration`) decodes the newest
+        held-out steps of the learning period, at most
+        ``MAX_CALIBRATION_STEPS`` of them, each block of ``cv_block_s`` with
+        the maps of the folds that did not see it, with this model's
+        movement model, and chooses the temperature whose 95 % HPD regions
+        hold the tracked position as often as their mass says. It is kept in
+        :attr:`temperature_fits_` (and in the model file).
+
+        Parameters
+        ----------
+        step_s : float
+
+        Returns
+        -------
+        float
+            The fitted temperature (>= 1).
+
+        Raises
+        ------
+        ValueError
+            When the model is not fitted, has no movement model, or holds no
+            held-out steps with a tracked position (a model loaded from a
+            file keeps only the temperatures fitted before it was saved).
+        """
+        step_s = float(step_s)
+        if step_s not in self.temperature_fits_:
+            self.temperature_fits_[step_s] = self._fit_temperature(step_s)
+        return self.temperature_fits_[step_s].temperature
+
+    def _fit_temperature(self, step_s: float) -> TemperatureFit:
+        if not hasattr(self, "rate_maps_hz_"):
+            raise ValueError("the place model is not fitted; fit it before asking for its likelihood temperature")
+        movement = self.movement_model(step_s)
+        env, rates, visited = self.environment, self.rate_maps_hz_, self.visited_mask_
+        ends, counts = self._held_out.step_counts(step_s, self.unit_ids_)
+        ends, counts = ends[-MAX_CALIBRATION_STEPS:], counts[-MAX_CALIBRATION_STEPS:]
+        true_bins = self._tracked_bins(ends)
+        if ends.size < 2 or not np.any(true_bins >= 0):
+            raise ValueError(
+                "no held-out learning steps with a tracked position to fit the likelihood temperature on "
+                "(a loaded model keeps only the temperatures fitted before it was saved); learn again"
+            )
+        block = cv_block(ends, self._t0, self.cv_block_s).astype(np.int64)
+        # Contiguous runs of one block, each with the maps of the folds that did not see it;
+        # a single run is cut in two, since the fit wants two sequences at least.
+        cuts = np.flatnonzero(np.diff(block)) + 1
+        if cuts.size == 0:
+            cuts = np.array([ends.size // 2])
+        fold_maps, fold_counts, fold_bins, maps_of_fold = [], [], [], {}
+        for run in np.split(np.arange(ends.size), cuts):
+            fold = int(block[run[0]] % self.cv_folds)
+            if fold not in maps_of_fold:
+                fold_rates, fold_visited = self._rate_maps(*self._totals(exclude_fold=fold))
+                # Bins the other folds never reached keep the full maps, rather
+                # than a floor rate that would draw the posterior there.
+                maps_of_fold[fold] = np.where(fold_visited, fold_rates, rates)
+            fold_maps.append(maps_of_fold[fold])
+            fold_counts.append(counts[run])
+            fold_bins.append(true_bins[run])
+        walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
+        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk,
+                              uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz)
+        logger.info(
+            "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps",
+            fit.temperature, step_s, fit.coverage, fit.coverage_at_1, fit.n_steps,
+        )
+        return fit
+
+    def _tracked_bins(self, t_s: np.ndarray) -> np.ndarray:
+        """Tracked bin at each time (linear between valid frames); -1 in a tracking gap or off the bins."""
+        frame_t, frame_xy = self.movement_frames()
+        ok = np.all(np.isfinite(frame_xy), axis=1)
+        frame_t, frame_xy = frame_t[ok], frame_xy[ok]
+        if frame_t.size < 2:
+            return np.full(t_s.size, -1, np.int64)
+        after = np.clip(np.searchsorted(frame_t, t_s), 1, frame_t.size - 1)
+        gap = (frame_t[after] - frame_t[after - 1] > self.max_frame_gap_s) | (t_s < frame_t[0]) | (t_s > frame_t[-1])
+        xy = np.column_stack([np.interp(t_s, frame_t, frame_xy[:, i]) for i in (0, 1)])
+        return np.where(gap, -1, self.environment.bin_index(xy))
 
     def readiness(self, *, with_cv_error: bool = False) -> Readiness:
         """Summarise coverage, running time and tuning so far, without changing the fit.
@@ -412,6 +518,7 @@ class PlaceModel(OnlineCounts):
             "running_s": self._running_s,
             "fitted": fitted,
             "walk_variance_cm2_per_s": getattr(self, "walk_variance_cm2_per_s_", math.nan) if fitted else math.nan,
+            "temperature_fits": [{"step_s": step_s, **vars(fit)} for step_s, fit in self.temperature_fits_.items()],
         }
         if self._cv_pairs:
             sample, row = (np.concatenate(parts) for parts in zip(*self._cv_pairs))
@@ -479,6 +586,9 @@ class PlaceModel(OnlineCounts):
                 setattr(model, name, arrays[name.rstrip("_")])
             # Files written before the movement model was learned have none.
             model.walk_variance_cm2_per_s_ = float(header.get("walk_variance_cm2_per_s", math.nan))
+            model.temperature_fits_ = {
+                float(fit.pop("step_s")): TemperatureFit(**fit) for fit in header.get("temperature_fits", [])
+            }
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
             model.heading_tuning_ = model._heading_tuning(model._totals()[0])

@@ -35,9 +35,12 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     ``"sliding_window"``: windows of ``window_s`` with ``settings.prior`` and
     ``random_walk_sd_cm``. ``"filter"``: windows of ``step_s`` (each spike
     counted once), the model's learned movement (walk s.d. for the
-    environment's bins, uniform jump) and ``likelihood_temperature``. A model
-    without a learned movement model (saved by an earlier version) falls
-    back to ``random_walk_sd_cm`` and the default jump, with a warning.
+    environment's bins, uniform jump) and ``settings.likelihood_temperature``,
+    or, where that is unset, the model's temperature fitted for ``step_s``
+    (``PlaceModel.likelihood_temperature``; fitted here on first use, right
+    after the model's fit). A model without a learned movement model (saved
+    by an earlier version) falls back to ``random_walk_sd_cm`` and the
+    default jump, one that cannot fit a temperature to 1, each with a warning.
 
     Parameters
     ----------
@@ -64,10 +67,16 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         logger.warning("%s; the filter uses random_walk_sd_cm = %g cm instead", exc, settings.random_walk_sd_cm)
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
+    temperature = settings.likelihood_temperature
+    if temperature is None:
+        try:
+            temperature = model.likelihood_temperature(settings.step_s)
+        except ValueError as exc:
+            logger.warning("%s; the filter uses likelihood_temperature = 1 (the plain Poisson model)", exc)
+            temperature = 1.0
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
-        random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight,
-        likelihood_temperature=settings.likelihood_temperature, **common,
+        random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature, **common,
     )
 
 

@@ -182,6 +182,7 @@ def _header_section(record: SessionRecord) -> str:
         entry("coverage at fit (fraction of bins)", "session.readiness.coverage"),
         entry("spatially tuned units at fit", "session.readiness.n_tuned_units"),
         entry("cross-validated median error at fit", "session.readiness.median_cv_error_cm", "cm"),
+        entry("filter's likelihood temperature", "session.readiness.filter.likelihood_temperature"),
     ]
     if "heading_median_error_deg" in s.get("decode", {}):
         # On a heading ring the errors above are degrees of heading (decoder.space.headings).
@@ -236,14 +237,24 @@ def _damage_banner(record: SessionRecord) -> str:
             f"{html.escape(where)}; everything below covers the session only up to there.</div>")
 
 
+def _decoder_line(d) -> str:
+    """Which method decoded, with the settings it uses."""
+    lateness = f"allowed lateness {format_figure(d.allowed_lateness_s)} s"
+    if d.method == "filter":
+        temperature = ("fitted at fit time" if d.likelihood_temperature is None
+                       else f"set to {format_figure(d.likelihood_temperature)}")
+        return (f"method filter: bins of {format_figure(d.step_s)} s, each spike counted once, the movement learned "
+                f"from the session's tracking, likelihood temperature {temperature}; {lateness}")
+    return (f"method sliding_window: window {format_figure(d.window_s)} s moved by {format_figure(d.step_s)} s, prior "
+            f"{d.prior}, random walk s.d. {format_figure(d.random_walk_sd_cm)} cm; {lateness}")
+
+
 def _settings_section(record: SessionRecord) -> str:
     c = record.config
     env = c.environment
     items = [
         ("environment", f"{type(env).__name__}, {env.n_bins} bins of {format_figure(env.bin_cm)} cm"),
-        ("decoder", f"window {format_figure(c.decoder.window_s)} s, step {format_figure(c.decoder.step_s)} s, prior "
-                    f"{c.decoder.prior}, random walk s.d. {format_figure(c.decoder.random_walk_sd_cm)} cm, allowed lateness "
-                    f"{format_figure(c.decoder.allowed_lateness_s)} s"),
+        ("decoder", _decoder_line(c.decoder)),
         ("zones", ", ".join(f"{z.name} ({z.kind})" for z in c.zones) or "none"),
         ("rules", ", ".join(f"{r.name} → {r.zone}" for r in c.rules) or "none"),
         ("model", record.model_source),
