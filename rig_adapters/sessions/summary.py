@@ -154,6 +154,7 @@ def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
             "sources": pipeline.health.summary(),
         },
         "session": {"state": pipeline.state, "readiness": jsonable(pipeline.readiness)},
+        "ripples": pipeline.ripples.status(),
     }
 
 
