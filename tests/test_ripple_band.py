@@ -78,3 +78,12 @@ def test_group_delay_matches_scipy_group_delay():
 def test_a_band_above_half_the_rate_is_refused_with_a_reason():
     with pytest.raises(ValueError, match="half the sample rate"):
         design_ripple_band(400.0, (150.0, 250.0), 2)
+
+
+def test_compiled_median_and_mad_match_numpy():
+    from decoder.signals._kernels import median_and_mad, median_and_mad_numpy
+
+    values = np.random.default_rng(2).rayleigh(3.0, 6001)
+    # Reference: numpy.median, directly and through the twin.
+    assert median_and_mad(values) == pytest.approx(median_and_mad_numpy(values), rel=1e-12)
+    assert median_and_mad(values)[0] == np.median(values)

@@ -91,7 +91,7 @@ class RippleStream:
         self.tracked = tracked
         self.detector: RippleDetector | None = None
         self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
-                                              "lfp_shape_changes", "ripples", "ripples_moving")}
+                                              "lfp_shape_changes", "ripples", "ripples_moving", "events")}
         self._next_s = math.nan
         self._hash = hashlib.sha256()
 
@@ -163,6 +163,7 @@ class RippleStream:
         else:
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
             events = tuple(self.bank.ripple(t, xy, speed, lag))
+            self.counters["events"] += len(events)
         h = self._hash
         h.update(struct.pack("<ddd?", d.onset_s, d.detected_s, d.peak_sd, moving))
         for ev in events:

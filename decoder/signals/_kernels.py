@@ -90,3 +90,16 @@ def ripple_chunk_numpy(x, sos, zi, tail, inv_two_sin, centre, inv_spread, y, env
     env[...] = np.sqrt(ext[1:-1] ** 2 + q**2)
     z[...] = ((env - centre) * inv_spread).mean(axis=1)
     tail[...] = ext[-2:]
+
+
+@numba.njit(cache=True)
+def median_and_mad(values):
+    """Median and median absolute deviation of ``values`` (n,) float64, n >= 1; one compiled call."""
+    centre = np.median(values)
+    return centre, np.median(np.abs(values - centre))
+
+
+def median_and_mad_numpy(values):
+    """Numpy twin of :func:`median_and_mad`."""
+    centre = np.median(values)
+    return centre, np.median(np.abs(values - centre))

@@ -38,7 +38,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from decoder.signals._kernels import ripple_chunk
+from decoder.signals._kernels import median_and_mad, ripple_chunk
 from decoder.signals.ripple_band import RippleBand
 
 __all__ = ["RippleDetection", "RippleDetector", "MAD_TO_SD"]
@@ -155,7 +155,8 @@ class RippleDetector:
         self._hold_samples = int(round(hold_s * self.rate_hz))
         self._settle_samples = int(round(settle_s * self.rate_hz))
         self._stride = max(1, int(round(self.rate_hz / baseline_rate_hz)))
-        self._buffer = np.zeros((max(2, int(baseline_window_s * self.rate_hz / self._stride)), self.n_channels))
+        # Channel-major, so that one channel's history is contiguous for its median.
+        self._buffer = np.zeros((self.n_channels, max(2, int(baseline_window_s * self.rate_hz / self._stride))))
         self._warm_up_rows = max(2, int(warm_up_s * self.rate_hz / self._stride))
         self.centre_ = np.zeros(self.n_channels)
         self.spread_ = np.full(self.n_channels, np.inf)
@@ -269,9 +270,9 @@ class RippleDetector:
             keep &= z < self.threshold_sd
         if not keep.any():
             return
-        cap = self._buffer.shape[0]
+        cap = self._buffer.shape[1]
         for row in env[keep]:
-            self._buffer[self._rows % cap] = row
+            self._buffer[:, self._rows % cap] = row
             self._rows += 1
         if not self.ready_:
             if self._rows >= self._warm_up_rows:
@@ -284,9 +285,8 @@ class RippleDetector:
         self._refresh_channel = (self._refresh_channel + 1) % self.n_channels
 
     def _refresh(self, c: int) -> None:
-        values = self._buffer[: min(self._rows, self._buffer.shape[0]), c]
-        centre = float(np.median(values))
-        spread = MAD_TO_SD * float(np.median(np.abs(values - centre)))
+        centre, mad = median_and_mad(self._buffer[c, : min(self._rows, self._buffer.shape[1])])
+        spread = MAD_TO_SD * mad
         self.centre_[c] = centre
         self.spread_[c] = spread
         self._inv_spread[c] = 1.0 / spread if spread > 0 else 0.0
