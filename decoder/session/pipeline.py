@@ -231,7 +231,10 @@ class Pipeline:
         if msg.source != self.config.ripples.source:
             self.counters["unknown_source"] += 1
             return []
-        return self.ripples.take(msg, self.watermark.t_s)
+        out = self.ripples.take(msg, self.watermark.t_s)
+        for ripple in out:
+            self.counters["events"] += len(ripple.events)
+        return out
 
     def _on_announce(self, msg: SourceAnnounce) -> list[Output]:
         self.announced[msg.source] = msg
