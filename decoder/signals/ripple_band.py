@@ -1,11 +1,11 @@
 """The ripple band: a causal band-pass run chunk by chunk, its state carried across chunks.
 
 A Butterworth band-pass designed with ``scipy.signal.butter`` as second-order
-sections and run with ``scipy.signal.sosfilt``, whose ``zi`` state carries
+sections; the detector's compiled kernel (``_kernels.ripple_chunk``) runs it
+in the form and state layout of ``scipy.signal.sosfilt``, the state carried
 from one chunk to the next, so that a signal filtered in chunks of any size
-equals the whole signal filtered at once (to rounding;
-``tests/test_ripple_band.py`` checks it against ``sosfilt`` on the whole
-signal).
+equals the whole signal filtered at once by ``sosfilt`` (to rounding;
+``tests/test_ripple_band.py`` checks it).
 
 Group delay is what an online detector pays for the filter: the envelope of
 the output lags the zero-phase envelope by about the group delay at the
@@ -15,7 +15,7 @@ it, and ``bench/ripples.py`` reports it.
 References
 ----------
 S. Butterworth (1930), "On the theory of filter amplifiers", Wireless
-Engineer 7:536-541 (the maximally flat design ``scipy.signal.butter`` makes).
+Engineer 7:536-541 (the maximally flat design ``scipy.signal.butter`` makes; citation from memory).
 """
 
 from __future__ import annotations
@@ -78,7 +78,7 @@ def group_delay_s(sos: np.ndarray, freq_hz: float, rate_hz: float) -> float:
 
 
 class RippleBand:
-    """The ripple band-pass of every channel, run chunk by chunk.
+    """The ripple band-pass of every channel: its sections and the state carried from chunk to chunk.
 
     Parameters
     ----------
@@ -99,8 +99,8 @@ class RippleBand:
     Examples
     --------
     >>> band = RippleBand(1500.0, 4)
-    >>> band.filter(np.zeros((3, 4))).shape
-    (3, 4)
+    >>> band.sos_.shape, band.zi_.shape
+    ((2, 6), (2, 2, 4))
     """
 
     def __init__(self, rate_hz: float, n_channels: int, band_hz: tuple[float, float] = (150.0, 250.0),
@@ -111,20 +111,6 @@ class RippleBand:
         self.order = order
         self.sos_ = design_ripple_band(self.rate_hz, band_hz, order)
         self.zi_ = np.zeros((self.sos_.shape[0], 2, self.n_channels))
-
-    def filter(self, x: np.ndarray) -> np.ndarray:
-        """Filter the next samples, carrying the state on.
-
-        Parameters
-        ----------
-        x : ndarray of float64, shape (n_samples, n_channels)
-
-        Returns
-        -------
-        ndarray of float64, shape (n_samples, n_channels)
-        """
-        y, self.zi_ = signal.sosfilt(self.sos_, x, axis=0, zi=self.zi_)
-        return y
 
     def reset(self) -> None:
         """Forget the past (after a gap in the signal): the filter starts from rest."""

@@ -57,7 +57,8 @@ from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
 __all__ = [
-    "ACQUISITION_CLOCK", "FRAME_QUALITY", "LFP_SOURCE", "SPIKE_SOURCE", "TRACKER_CLOCK", "TRACKER_SOURCE", "TRUTH_SOURCE",
+    "ACQUISITION_CLOCK", "FRAME_QUALITY", "LFP_SOURCE", "SPIKE_SOURCE", "TRACKER_CLOCK", "TRACKER_SOURCE",
+    "TRUTH_SOURCE",
     "Chunk", "SimulatedSession", "SimulationSettings",
 ]
 
