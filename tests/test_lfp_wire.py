@@ -97,6 +97,12 @@ def test_gaps_overlaps_and_changes_of_rate_or_channels_are_counted_and_never_tri
     assert p.bank.n_events == 0
 
 
+def test_a_rate_too_low_for_the_ripple_band_is_refused_not_fatal():
+    p = _pipeline()
+    assert p.on_message(LfpChunk("lfp", 0, 0.0, 400.0, np.zeros((3, 2), np.float32))) == []
+    assert p.ripples.counters["lfp_unusable"] == 1 and p.ripples.detector is None
+
+
 def test_an_lfp_chunk_from_another_source_is_counted_as_unknown():
     p = _pipeline()
     p.on_message(LfpChunk("probe2", 0, 0.0, RATE_HZ, np.zeros((3, 2), np.float32)))

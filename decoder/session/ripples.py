@@ -11,7 +11,9 @@ that is counted and never reaches the detector as if it were continuous:
 * an overlap (the chunk begins earlier: repeated or reordered data):
   refused, ``lfp_overlaps``;
 * another sample rate or channel count: refused, ``lfp_rate_changes`` or
-  ``lfp_shape_changes``; a source that restarts its sequence numbers starts
+  ``lfp_shape_changes``; a first chunk the ``[ripples]`` settings cannot
+  work with (a rate too low for the band, fewer channels than
+  ``min_channels``): refused, ``lfp_unusable``; a source that restarts its sequence numbers starts
   a new stream (:meth:`RippleStream.restart`).
 
 A detection while the tracked animal moves faster than ``max_speed_cm_s`` is
@@ -91,7 +93,8 @@ class RippleStream:
         self.tracked = tracked
         self.detector: RippleDetector | None = None
         self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
-                                              "lfp_shape_changes", "ripples", "ripples_moving", "events")}
+                                              "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
+                                              "events")}
         self._next_s = math.nan
         self._hash = hashlib.sha256()
 
@@ -106,7 +109,11 @@ class RippleStream:
         """
         det = self.detector
         if det is None:
-            det = self.detector = RippleDetector(chunk.rate_hz, chunk.n_channels, **self.settings.detector_kwargs())
+            try:
+                det = RippleDetector(chunk.rate_hz, chunk.n_channels, **self.settings.detector_kwargs())
+            except ValueError as exc:  # a rate too low for the band, fewer channels than min_channels
+                return self._refuse("lfp_unusable", f"{exc}; check the source against [ripples]")
+            self.detector = det
         elif chunk.rate_hz != det.rate_hz:
             return self._refuse("lfp_rate_changes", f"sample rate {chunk.rate_hz:g} Hz, not {det.rate_hz:g} Hz")
         elif chunk.n_channels != det.n_channels:
