@@ -15,6 +15,7 @@ A config file has these tables (all optional but ``[environment]``)::
     [safety]        caps beneath every rule        -> SafetyCaps
     [[zones]]       target zones                   -> decoder.space.zones
     [[rules]]       trigger rules                  -> TriggerRule
+    [ripples]       online ripple detection        -> RippleSettings
     [endpoints]     ZeroMQ endpoints (shell only)  -> EndpointSettings
     [ttl]           serial TTL output (shell only) -> TtlSettings; [[ttl.outputs]] per rule -> TtlOutput
     [simulation]    the simulated rig (shell only), read by rig_adapters.sim.simulation
@@ -47,6 +48,9 @@ Mode = Literal["mass", "map"]
 Tracked = Literal["any", "inside", "outside"]
 MODES = get_args(Mode)
 TRACKED = get_args(Tracked)
+RuleKind = Literal["zone", "ripple"]
+#: What a rule acts on: a zone judged at each decoding step, or each detected ripple.
+RULE_KINDS = get_args(RuleKind)
 
 
 def _positive_int(owner: str, field_name: str, value: Any) -> int:
@@ -79,12 +83,12 @@ def _optional_speed(owner: str, field_name: str, value: Any) -> float | None:
 
 @dataclass(frozen=True)
 class TriggerRule:
-    """When one zone should produce an event (one ``[[rules]]`` entry)."""
+    """When one zone should produce an event, or what to do at each detected ripple (one ``[[rules]]`` entry)."""
 
     #: Unique among the rules; written into every event.
     name: str
-    #: Name of the zone; must be one of the ``[[zones]]`` names.
-    zone: str
+    #: Name of the zone; must be one of the ``[[zones]]`` names (empty for kind = "ripple").
+    zone: str = ""
     #: "mass": the posterior mass in the zone is at least min_mass. "map": the maximum a
     #: posteriori bin lies in the zone.
     mode: Mode = "mass"
@@ -101,12 +105,21 @@ class TriggerRule:
     #: that act on a non-local representation (decoded in the zone while the animal is elsewhere;
     #: on a heading ring, the decoded heading in the arc while the head faces away from it).
     tracked: Tracked = "any"
+    #: "zone": judged at each decoding step on its zone. "ripple": one event for each ripple
+    #: the [ripples] detector reports (disrupting every ripple); no zone, the speed bounds
+    #: apply, the other conditions do not.
+    kind: RuleKind = "zone"
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name.strip():
             raise ValueError(f"a trigger rule needs a non-empty name, got {self.name!r}")
         owner = f"trigger rule {self.name!r}"
-        if not isinstance(self.zone, str) or not self.zone.strip():
+        if self.kind not in RULE_KINDS:
+            raise ValueError(f"{owner}: kind must be one of {RULE_KINDS}, got {self.kind!r}")
+        if self.kind == "ripple" and self.zone:
+            raise ValueError(f"{owner}: a ripple rule acts on every detected ripple and has no zone; "
+                             f"leave zone out, got {self.zone!r}")
+        if self.kind == "zone" and (not isinstance(self.zone, str) or not self.zone.strip()):
             raise ValueError(f"{owner}: zone must be the non-empty name of a zone, got {self.zone!r}")
         if self.mode not in MODES:
             raise ValueError(f"{owner}: mode must be one of {MODES}, got {self.mode!r}")
@@ -152,6 +165,70 @@ class SafetyCaps:
         object.__setattr__(self, "max_per_session", _positive_int(owner, "max_per_session", self.max_per_session))
 
 
+
+@dataclass(frozen=True)
+class RippleSettings:
+    """Online sharp-wave ripple detection (``decoder.signals.ripple_detector``), the ``[ripples]`` table.
+
+    Off while ``source`` is empty. Every field but ``source`` and
+    ``max_speed_cm_s`` is passed to ``RippleDetector`` under its own name.
+    """
+
+    #: Source name of the LFP stream; its clock must be the spike source's. Empty: no detection.
+    source: str = ""
+    #: Ripple band (Hz); 150-250 Hz is common practice.
+    band_hz: tuple[float, float] = (150.0, 250.0)
+    #: Butterworth order of the band-pass's prototype (sections); a low order keeps the group delay short.
+    filter_order: int = 2
+    #: Onset threshold on the channels' mean robust z-score of the envelope (s.d. above the median).
+    threshold_sd: float = 3.5
+    #: An event ends when the mean z-score falls below this.
+    end_sd: float = 1.0
+    #: The mean z-score must stay above the threshold this long before a detection (s).
+    min_duration_s: float = 0.002
+    #: Channels that must each be above ``channel_sd`` at the detection (multi-channel agreement).
+    min_channels: int = 1
+    #: The per-channel z-score for agreement.
+    channel_sd: float = 2.0
+    #: The baseline (median and MAD of the envelope outside events) covers the newest this-many s.
+    baseline_window_s: float = 60.0
+    #: Seconds of baseline before the first detection.
+    warm_up_s: float = 10.0
+    #: A ripple detected while the tracked speed is above this (cm/s) is counted, not acted on;
+    #: immobility below about 4 cm/s is common practice. inf turns the condition off; an unknown
+    #: speed (NaN) never satisfies it.
+    max_speed_cm_s: float = 4.0
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.source, str):
+            raise ConfigError(f"[ripples] source must be a source name, got {self.source!r}")
+        try:
+            low, high = (float(v) for v in self.band_hz)
+        except (TypeError, ValueError):
+            raise ConfigError(f"[ripples] band_hz must be a pair [low, high] in Hz, got {self.band_hz!r}") from None
+        if not 0 < low < high:
+            raise ConfigError(f"[ripples] band_hz must satisfy 0 < low < high, got {self.band_hz!r}")
+        object.__setattr__(self, "band_hz", (low, high))
+        for name in ("filter_order", "min_channels"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                raise ConfigError(f"[ripples] {name} must be a whole number of at least 1, got {value!r}")
+        _positive("ripples", threshold_sd=self.threshold_sd, baseline_window_s=self.baseline_window_s,
+                  warm_up_s=self.warm_up_s)
+        if not self.end_sd < self.threshold_sd:
+            raise ConfigError(f"[ripples] end_sd ({self.end_sd}) must lie below threshold_sd ({self.threshold_sd})")
+        if not 0 <= self.min_duration_s <= 0.1:
+            raise ConfigError(f"[ripples] min_duration_s must lie within 0..0.1 s, got {self.min_duration_s!r}")
+        if self.warm_up_s > self.baseline_window_s:
+            raise ConfigError(f"[ripples] warm_up_s ({self.warm_up_s}) must not exceed baseline_window_s")
+        if not self.max_speed_cm_s >= 0:
+            raise ConfigError(f"[ripples] max_speed_cm_s must be a speed >= 0 cm/s (inf for none), "
+                              f"got {self.max_speed_cm_s!r}")
+
+    def detector_kwargs(self) -> dict[str, Any]:
+        """The ``RippleDetector`` keyword arguments this table sets."""
+        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
+                if f.name not in ("source", "max_speed_cm_s")}
 
 def _from_table(cls, table: dict | None, where: str):
     """Build dataclass ``cls`` from a TOML table, rejecting unknown keys."""
@@ -522,6 +599,7 @@ class ExperimentConfig:
     rules: tuple[TriggerRule, ...] = ()
     endpoints: EndpointSettings = field(default_factory=EndpointSettings)
     ttl: TtlSettings = field(default_factory=TtlSettings)
+    ripples: RippleSettings = field(default_factory=RippleSettings)
     #: The raw ``[simulation]`` table, read by the simulated rig.
     simulation: dict = field(default_factory=dict)
     #: The raw TOML text, stored beside a session log.
@@ -573,7 +651,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{where} is not valid TOML: {exc}") from None
     known = {"environment", "model", "decoder", "sources", "session", "safety", "zones",
-             "rules", "endpoints", "ttl", "simulation"}
+             "rules", "endpoints", "ttl", "simulation", "ripples"}
     unknown = sorted(set(doc) - known)
     if unknown:
         raise ConfigError(f"{where} has unknown table(s) {unknown}; known tables are {sorted(known)}")
@@ -594,7 +672,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
     rules = []
     for i, rule_table in enumerate(doc.get("rules", [])):
         rule = _from_table(TriggerRule, rule_table, f"[rules] #{i + 1}")
-        if rule.zone not in names:
+        if rule.kind == "zone" and rule.zone not in names:
             raise ConfigError(f"[[rules]] {rule.name!r} names zone {rule.zone!r}, which is not among {names}")
         rules.append(rule)
     sources = _from_table(SourceSettings, doc.get("sources"), "sources")
@@ -618,6 +696,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
         rules=tuple(rules),
         endpoints=_from_table(EndpointSettings, doc.get("endpoints"), "endpoints"),
         ttl=ttl,
+        ripples=_from_table(RippleSettings, doc.get("ripples"), "ripples"),
         simulation=dict(doc.get("simulation", {})),
         source_text=text,
     )
@@ -723,6 +802,7 @@ _SETTING_TABLES: dict[str, set | None] = {
     "sources": {f.name for f in dataclasses.fields(SourceSettings)},
     "session": {f.name for f in dataclasses.fields(SessionSettings)},
     "safety": {f.name for f in dataclasses.fields(SafetyCaps)},
+    "ripples": {f.name for f in dataclasses.fields(RippleSettings)},
     # Geometry keys depend on the kind; build_environment names a wrong one.
     "environment": None,
 }

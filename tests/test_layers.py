@@ -17,6 +17,7 @@ LAYERS = [
     ["decoder.messages"],
     ["decoder.space"],
     ["decoder.inference"],
+    ["decoder.signals"],
     ["decoder.encoding"],
     ["decoder.config"],
     ["decoder.session"],

@@ -45,10 +45,12 @@ from decoder.session.digest import StepDigest
 from decoder.session.judge import StepJudge
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
+from decoder.session.ripples import RippleOutput, RippleStream
 from decoder.session.scoring import ErrorHistogram, VisitScore
 from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder
 from decoder.session.streams import SpikeWatermark, StreamHealth
 from decoder.session.triggers import SessionCapError, StepInput, TriggerBank
+from decoder.signals.lfp_chunk import LfpChunk
 from decoder.space.zones import zone_masks
 
 log = logging.getLogger(__name__)
@@ -63,7 +65,7 @@ TUNING_REPORT_S = 15.0
 #: Below this fraction of its bins in the learned map, a zone gets a warning at fitting time.
 ZONE_COVERAGE_WARNING = 0.8
 
-Output = StepOutput | LearningProgress | Notice
+Output = StepOutput | LearningProgress | Notice | RippleOutput
 
 
 class Pipeline:
@@ -113,6 +115,7 @@ class Pipeline:
         self.zone_names = config.zone_names()
         self._zone_masks = zone_masks(config.zones, self.environment)
         self.bank = TriggerBank(config.rules, self.zone_names, config.safety)
+        self.ripples = RippleStream(config.ripples, self.bank, self.positions.tracked)
         self.judge = StepJudge(self.environment, config.zones, self._zone_masks, config.rules,
                                config.session.false_margin_cm)
         self.errors = ErrorHistogram()
@@ -135,6 +138,7 @@ class Pipeline:
             SyncPulse: self._on_sync,
             SourceAnnounce: self._on_announce,
             ControlCommand: self.on_control,
+            LfpChunk: self._on_lfp,
         }
         if model is not None:
             self.install_model(model, t_s=-math.inf)
@@ -223,6 +227,15 @@ class Pipeline:
             return [Notice("clock_mismatch", t, {"why": str(exc)})]
         return []
 
+    def _on_lfp(self, msg: LfpChunk) -> list[Output]:
+        if msg.source != self.config.ripples.source:
+            self.counters["unknown_source"] += 1
+            return []
+        out = self.ripples.take(msg, self.watermark.t_s)
+        for ripple in out:
+            self.counters["events"] += len(ripple.events)
+        return out
+
     def _on_announce(self, msg: SourceAnnounce) -> list[Output]:
         self.announced[msg.source] = msg
         self.positions.announce(msg.source, msg.clock)
@@ -271,6 +284,8 @@ class Pipeline:
         out: list[Output] = [Notice("source_restart", self.watermark.t_s, {"source": source})]
         log.warning("source %r restarted its sequence numbers", source)
         self.positions.forget_clock(source)
+        if source == self.config.ripples.source:
+            self.ripples.restart()
         if source == self._spike_source:
             # Steps start afresh on the new clock, disarmed.
             t = self.watermark.t_s
@@ -485,4 +500,5 @@ class Pipeline:
             "triggers": self.bank.status(),
             "readiness": self.readiness,
             "digest": self.digest,
+            "ripples": self.ripples.status(),
         }

@@ -50,6 +50,13 @@ How one step is judged (all times are data time, float seconds)
    step. When the session cap is reached the bank disarms itself with
    reason ``"session_cap"`` and cannot be armed again.
 
+Ripple rules (``kind = "ripple"``) are not judged on decoding steps: each
+ripple the detector reports is one entry, judged by ``TriggerBank.ripple``,
+whose would-be event (one per ripple: the first ripple rule whose speed bounds hold)
+meets the same caps in the same order, the same stall guard on the LFP
+stream's lag, and the same counters. Arming marks nothing spent for them: a
+ripple detected after arming is always a new entry.
+
 Examples
 --------
 >>> rule = TriggerRule("feeder", zone="goal", min_mass=0.5, consecutive_steps=2)
@@ -266,14 +273,16 @@ class TriggerBank:
         if len(set(zone_names)) != len(zone_names):
             raise ValueError(f"zone_names must be unique, got {list(zone_names)}")
         for rule in rules:
-            if rule.zone not in zone_names:
+            if rule.kind == "zone" and rule.zone not in zone_names:
                 raise ValueError(
                     f"trigger rule {rule.name!r} refers to zone {rule.zone!r}, "
                     f"which is not among the zones {list(zone_names)}"
                 )
-        self.rules = rules
         self.zone_names = zone_names
         self.caps = caps
+        self._ripple_rules = tuple(r for r in rules if r.kind == "ripple")
+        rules = tuple(r for r in rules if r.kind == "zone")
+        self.rules = rules
         self._zone_index = tuple(zone_names.index(r.zone) for r in rules)
         self._states = tuple(_RuleState() for _ in rules)
         self._recent_t_s: deque[float] = deque()
@@ -398,8 +407,56 @@ class TriggerBank:
             "n_time_reversals": self.n_time_reversals,
             "counters": dict(self.counters),
             "caps": asdict(self.caps),
-            "rules": [r.name for r in self.rules],
+            "rules": [r.name for r in self.rules + self._ripple_rules],
         }
+
+    @property
+    def has_ripple_rules(self) -> bool:
+        return bool(self._ripple_rules)
+
+    def ripple(self, t_s: float, tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float,
+               stream_lag_s: float) -> list[TriggerEvent]:
+        """Judge one detected ripple; return the event it makes (zero or one).
+
+        Parameters
+        ----------
+        t_s : float
+            Data time of the detection (the end of the LFP chunk that completed it).
+        tracked_xy_cm : ndarray of float64, shape (2,)
+            Tracked position at ``t_s``; NaN when unknown.
+        tracked_speed_cm_s : float
+            NaN when unknown; never satisfies a speed bound.
+        stream_lag_s : float
+            How far the LFP lags behind the session's data time; beyond
+            ``caps.stall_limit_s`` (or NaN) an armed bank disarms (``"stall"``).
+
+        Notes
+        -----
+        Detections and decoding steps interleave on data time only roughly
+        (each closes when its own stream gets there), so a detection never
+        counts as the clock going back: it leaves the step history alone.
+        """
+        t = float(t_s)
+        if not math.isfinite(t):
+            raise ValueError(f"a ripple's t_s must be a finite data time, got {t_s!r}")
+        if self.armed and not (stream_lag_s <= self.caps.stall_limit_s):
+            self.n_stalls += 1
+            self.disarm(t, "stall")
+        while self._recent_t_s and self._recent_t_s[0] <= t - _MINUTE_S:
+            self._recent_t_s.popleft()
+        for rule in self._ripple_rules:
+            speed = tracked_speed_cm_s
+            if rule.min_speed_cm_s is not None and not speed >= rule.min_speed_cm_s:
+                continue
+            if rule.max_speed_cm_s is not None and not speed <= rule.max_speed_cm_s:
+                continue
+            reason = self._suppression(t)
+            if reason is not None:
+                self.counters[reason] += 1
+                logger.debug("ripple rule %r would fire at t=%.3f s; suppressed (%s)", rule.name, t, reason)
+                return []
+            return [self._record(rule.name, "", t, math.nan, tracked_xy_cm, False)]
+        return []
 
     def _rebase(self, t: float) -> None:
         logger.warning("data time went back from %.3f s to %.3f s", self._last_t_s, t)
@@ -441,19 +498,24 @@ class TriggerBank:
         return None
 
     def _emit(self, rule: TriggerRule, zi: int, step: StepInput) -> TriggerEvent:
+        return self._record(rule.name, rule.zone, step.t_s, float(step.zone_mass[zi]), step.tracked_xy_cm,
+                            bool(step.map_zone[zi]))
+
+    def _record(self, rule: str, zone: str, t_s: float, zone_mass: float, tracked_xy_cm: np.ndarray,
+                map_in_zone: bool) -> TriggerEvent:
         self.n_events += 1
-        self._last_event_t_s = step.t_s
-        self._recent_t_s.append(step.t_s)
+        self._last_event_t_s = t_s
+        self._recent_t_s.append(t_s)
         event = TriggerEvent(
             event_id=self.n_events,
-            rule=rule.name,
-            zone=rule.zone,
-            t_s=step.t_s,
-            zone_mass=float(step.zone_mass[zi]),
-            tracked_xy_cm=(float(step.tracked_xy_cm[0]), float(step.tracked_xy_cm[1])),
-            map_in_zone=bool(step.map_zone[zi]),
+            rule=rule,
+            zone=zone,
+            t_s=t_s,
+            zone_mass=zone_mass,
+            tracked_xy_cm=(float(tracked_xy_cm[0]), float(tracked_xy_cm[1])),
+            map_in_zone=map_in_zone,
         )
-        logger.info("event %d: rule %r, zone %r, t=%.3f s", event.event_id, rule.name, rule.zone, step.t_s)
+        logger.info("event %d: rule %r, zone %r, t=%.3f s", event.event_id, rule, zone, t_s)
         if self.n_events >= self.caps.max_per_session:
-            self.disarm(step.t_s, "session_cap")
+            self.disarm(t_s, "session_cap")
         return event

@@ -38,6 +38,7 @@ import logging
 import math
 import tempfile
 import time
+from types import SimpleNamespace
 from pathlib import Path
 
 import numpy as np
@@ -46,6 +47,7 @@ import zmq
 from decoder.config import ExperimentConfig
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.ripples import RippleOutput
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import (
     CHANNEL_CONTROL,
@@ -59,6 +61,9 @@ from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
 from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
 
 log = logging.getLogger(__name__)
+
+#: What an event frame says of the decoded position when no step decoded one (a ripple event).
+_NO_STEP = SimpleNamespace(map_xy_cm=(math.nan, math.nan), mean_xy_cm=(math.nan, math.nan))
 
 #: Input queued in the SUB socket before ZeroMQ drops: minutes of a 1000-unit
 #: rig at 100 batches/s, enough to ride out a model fit.
@@ -241,6 +246,10 @@ class LiveLoop:
                 if self.publish_state:
                     self._send_learning(out)
                 continue
+            if isinstance(out, RippleOutput):
+                for event in out.events:
+                    self._send_event(out, event, False, recv_wall_s, decoded_wall_s)
+                continue
             for event, is_false in zip(out.events, out.false_events):
                 self._send_event(out, event, is_false, recv_wall_s, decoded_wall_s)
             if self.publish_state:
@@ -250,7 +259,10 @@ class LiveLoop:
         if steps:
             self.latency.added_ms.append((time.time() - recv_wall_s) * 1e3)
 
-    def _send_event(self, out: StepOutput, event, is_false: bool, recv_wall_s: float, decoded_wall_s: float) -> None:
+    def _send_event(self, out: StepOutput | RippleOutput, event, is_false: bool, recv_wall_s: float,
+                    decoded_wall_s: float) -> None:
+        # A ripple event has no decoded position.
+        decoded = out.step if isinstance(out, StepOutput) else _NO_STEP
         payload = protocol.encode_event(
             source=self.name,
             seq=self.events_sent,
@@ -258,8 +270,8 @@ class LiveLoop:
             zone=event.zone,
             rule=event.rule,
             t_s=out.t_s,
-            map_xy_cm=out.step.map_xy_cm,
-            mean_xy_cm=out.step.mean_xy_cm,
+            map_xy_cm=decoded.map_xy_cm,
+            mean_xy_cm=decoded.mean_xy_cm,
             zone_mass=float(event.zone_mass),
             tracked_xy_cm=out.tracked_xy_cm,
             wall_received_s=recv_wall_s,

@@ -94,6 +94,8 @@ def type_name(hint: typing.Any) -> str:
         return f"array of {len(args)} {type_name(args[0])}s"
     if origin is collections.abc.Sequence:
         return _array_of(type_name(args[0]))
+    if dataclasses.is_dataclass(hint):
+        return "table"
     names = {bool: "boolean", int: "integer", float: "number", str: "string", dict: "table", typing.Any: "array"}
     return names.get(hint, str(hint))
 
@@ -237,6 +239,10 @@ def reference() -> str:
             out += dataclass_section("[simulation]", SimulationSettings,
                                      "Read by the simulated rig only (`placeloop sim`, `placeloop demo`); "
                                      "a real rig's config leaves it out.")
+            for sub in dataclasses.fields(SimulationSettings):
+                nested = [a for a in typing.get_args(_hints(SimulationSettings)[sub.name]) if dataclasses.is_dataclass(a)]
+                if nested:
+                    out += dataclass_section(f"[simulation.{sub.name}]", nested[0])
         elif f.name == "source_text":
             continue
         elif dataclasses.is_dataclass(hint):

@@ -19,6 +19,7 @@ from pathlib import Path
 from decoder.config import ExperimentConfig, load_config
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.ripples import RippleOutput
 from decoder.encoding.place_model import PlaceModel
 from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest
 from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, LogFormatError, LogRecord, iter_records
@@ -59,7 +60,7 @@ def session_config(log_dir: str | Path) -> ExperimentConfig:
 
 def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
                    model: PlaceModel | None = None, keep_steps: bool = False,
-                   on_output: Callable[[StepOutput | LearningProgress | Notice], None] | None = None,
+                   on_output: Callable[[StepOutput | LearningProgress | Notice | RippleOutput], None] | None = None,
                    realtime: bool = False, on_record: Callable[[LogRecord], None] | None = None,
                    keep_latency_samples: bool = False) -> ReplayResult:
     """Feed a recorded session through the pipeline.
@@ -76,7 +77,7 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     keep_steps : bool
         Keep every StepOutput (memory grows with the session).
     on_output : callable, optional
-        Called with every output (step, learning progress, notice) as it
+        Called with every output (step, learning progress, notice, ripple) as it
         comes, for callers that keep only what they need (the report).
     realtime : bool
         Pace the replay by the recorded receive times instead of running as

@@ -161,6 +161,7 @@ def session_summary(pipeline: Pipeline, latency: LatencyLog) -> dict:
             "sources": pipeline.health.summary(),
         },
         "session": {"state": pipeline.state, "readiness": jsonable(pipeline.readiness)},
+        "ripples": pipeline.ripples.status(),
     }
     if isinstance(pipeline.environment, HeadingRing):
         summary["decode"]["heading_median_error_deg"] = errors.percentile(50)

@@ -217,4 +217,9 @@ def format_summary(s: dict) -> str:
         f"replay     digest {d['digest'][:16]}…",
         f"wall time  {s.get('demo', {}).get('wall_s', 0):.0f} s",
     ]
+    ripples = s.get("ripples") or {}
+    if ripples.get("source"):
+        c = ripples["counters"]
+        lines.insert(-2, f"ripples    {c['ripples']} detected ({c['ripples_moving']} while moving), {c['events']} "
+                         f"ripple events; {c['lfp_chunks']} LFP chunks, {c['lfp_gaps']} gaps")
     return "\n".join(lines)

@@ -17,6 +17,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from rig_adapters.sim.lfp import LfpSettings
+
 
 @dataclass(frozen=True)
 class SimulationSettings:
@@ -147,6 +149,9 @@ class SimulationSettings:
     tracker_outlier_prob: float = 0.0
     #: Standard deviation of such an outlier's displacement on each axis (cm).
     tracker_outlier_cm: float = 15.0
+    #: The simulated LFP (``rig_adapters.sim.lfp``), the ``[simulation.lfp]`` table; none without it.
+    #: It is sent by the source ``"lfp"`` on the acquisition clock.
+    lfp: LfpSettings | None = None
 
     # -- head direction (rig_adapters.sim.heading): used when the environment is a heading ring --
     #: Number of head-direction cells (von Mises tuning to the head's direction).
@@ -187,6 +192,9 @@ class SimulationSettings:
     def __post_init__(self) -> None:
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
+            if f.name == "lfp":
+                self._take_lfp(value)
+                continue
             if f.name in self._FLAGS:
                 if not isinstance(value, bool):
                     raise ValueError(f"{f.name} must be true or false, got {value!r}")
@@ -269,6 +277,19 @@ class SimulationSettings:
             raise ValueError(
                 f"tick_s ({self.tick_s}) must be a whole number of acquisition samples at {self.acquisition_rate_hz} Hz"
             )
+
+    def _take_lfp(self, value: Any) -> None:
+        if value is None or isinstance(value, LfpSettings):
+            lfp = value
+        elif isinstance(value, Mapping):
+            lfp = LfpSettings.from_dict(value)
+        else:
+            raise ValueError(f"lfp must be a table of LFP settings, got {value!r}")
+        if lfp is not None:
+            per_tick = self.tick_s / lfp.chunk_s
+            if abs(per_tick - round(per_tick)) > 1e-6:
+                raise ValueError(f"lfp.chunk_s ({lfp.chunk_s}) must divide tick_s ({self.tick_s}) into whole chunks")
+        object.__setattr__(self, "lfp", lfp)
 
     @staticmethod
     def _read_range(name: str, value: Any) -> tuple[float, float]:

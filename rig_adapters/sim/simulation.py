@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import heapq
 import math
+from collections import deque
 from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
@@ -48,18 +49,23 @@ from typing import Any
 import numpy as np
 
 from decoder.messages import Heartbeat, InputMessage, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
+from decoder.signals.lfp_chunk import LfpChunk
 from decoder.space.environments import Environment, HeadingRing
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
 from rig_adapters.sim.heading import HeadTurning, draw_heading_cells, tracked_heading, true_heading
+from rig_adapters.sim.lfp import LfpSynth
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
 __all__ = [
-    "ACQUISITION_CLOCK", "FRAME_QUALITY", "SPIKE_SOURCE", "TRACKER_CLOCK", "TRACKER_SOURCE", "TRUTH_SOURCE",
+    "ACQUISITION_CLOCK", "FRAME_QUALITY", "LFP_SOURCE", "SPIKE_SOURCE", "TRACKER_CLOCK", "TRACKER_SOURCE",
+    "TRUTH_SOURCE",
     "Chunk", "SimulatedSession", "SimulationSettings",
 ]
 
 SPIKE_SOURCE = "ephys"
+#: The LFP source (with ``[simulation.lfp]``): chunks on the acquisition clock, not announced.
+LFP_SOURCE = "lfp"
 TRACKER_SOURCE = "tracker"
 TRUTH_SOURCE = "truth"
 ACQUISITION_CLOCK = "acquisition"
@@ -70,6 +76,8 @@ FRAME_QUALITY = 200
 
 #: Longest step of the motion integrator (s); chunks are cut into steps this short or shorter.
 _MOTION_STEP_S = 0.01
+#: The simulated LFP follows the speed over this window (s): theta while running, ripples at rest.
+_LFP_SPEED_WINDOW_S = 0.25
 
 
 @dataclass(frozen=True)
@@ -126,6 +134,10 @@ class SimulatedSession:
         self._pulse_id = 1
         self._next_pulse_s = rng.uniform(*settings.sync_interval_s)
         self._dropout = self._next_dropout(0.0)
+        # Its own generator: turning the LFP on changes no other draw of the session.
+        self.lfp = LfpSynth(settings.lfp, [seed, 14]) if settings.lfp is not None else None
+        self._seq[LFP_SOURCE] = 0
+        self._lfp_path: deque[tuple[float, np.ndarray]] = deque()
 
     def ground_truth(self) -> GroundTruth:
         """The cells' fields and the tracker's clock, as drawn for this session."""
@@ -258,8 +270,36 @@ class SimulatedSession:
         if s.position_heartbeats:
             truth.append((t1, self._message(Heartbeat, TRUTH_SOURCE, t_s=t1)))
 
-        merged = heapq.merge(ephys, tracker, truth, key=lambda item: item[0])
+        lfp = self._lfp_chunks(t0, t1, path_xy) if self.lfp is not None else []
+        merged = heapq.merge(ephys, tracker, truth, lfp, key=lambda item: item[0])
         return Chunk(t1, tuple(msg for _, msg in merged))
+
+    def _lfp_chunks(self, t0: float, t1: float, path_xy: np.ndarray) -> list[tuple[float, InputMessage]]:
+        """The tick's LFP as chunks of ``lfp.chunk_s``, each keyed by its end (when a rig could send it)."""
+        s = self.settings.lfp
+        # Speed over the last quarter second, as a tracker would measure it: the path's
+        # sideways wander makes the speed over one motion step meaningless.
+        recent = self._lfp_path
+        recent.append((t1, path_xy[-1]))
+        while len(recent) > 1 and recent[0][0] < t1 - _LFP_SPEED_WINDOW_S:
+            recent.popleft()
+        (ta, xa), (tb, xb) = recent[0], recent[-1]
+        speed_cm_s = float(np.hypot(*(xb - xa)) / (tb - ta)) if tb > ta else 0.0
+        n0, n1 = int(round(t0 * s.rate_hz)), int(round(t1 * s.rate_hz))
+        t = np.arange(n0, n1) / s.rate_hz
+        x = self.lfp.block(np.full(t.size, speed_cm_s))
+        if s.sample_format == "int16":
+            x = np.clip(np.round(x / s.uv_per_count), -32768, 32767).astype(np.int16)
+            scale = s.uv_per_count
+        else:
+            x, scale = x.astype(np.float32), 1.0
+        out = []
+        step = s.samples_per_chunk
+        for i in range(0, x.shape[0], step):
+            msg = self._message(LfpChunk, LFP_SOURCE, t_s=float(t[i]), rate_hz=s.rate_hz, samples=x[i:i + step],
+                                uv_per_count=scale)
+            out.append(((n0 + min(i + step, t.size)) / s.rate_hz, msg))
+        return out
 
     def _next_dropout(self, after_s: float) -> tuple[float, float]:
         start = after_s + self._rng.exponential(self.settings.dropout_interval_s)

@@ -50,7 +50,8 @@ def main(argv: list[str] | None = None) -> int:
                 continue
             event["arrived_wall_s"] = arrived
             received.append(event)
-            print(f"stand-in: would pulse for event {event.get('event_id')} in zone {event.get('zone')!r}",
+            print(f"stand-in: would pulse for event {event.get('event_id')} (rule {event.get('rule')!r}, "
+                  f"zone {event.get('zone')!r})",
                   file=sys.stderr)
     finally:
         sub.close()

@@ -31,6 +31,7 @@ from decoder.messages import (
     TrackerFrames,
     describe,
 )
+from decoder.signals.lfp_chunk import MAX_LFP_CHANNELS, LfpChunk
 from rig_adapters.wire.framing import (
     INPUT_LIMITS,
     MAX_FRAME_BYTES,
@@ -43,7 +44,8 @@ from rig_adapters.wire.framing import (
 )
 
 #: Input kinds, rig -> placeloop.
-INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control")
+INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control",
+               "lfp")
 
 #: The prefix of a rig's own keys, which every reader ignores (PROTOCOL.md, section 2).
 EXTENSION_PREFIX = "x_"
@@ -70,6 +72,7 @@ INPUT_KEYS = {
     "heartbeat": _keys(("t",)),
     "sync": _keys(("t", "pulse")),
     "control": _keys(("cmd",), ("args",)),
+    "lfp": _keys(("t", "rate_hz", "ch", "fmt", "s"), ("uv",)),
 }
 
 _F64 = np.dtype("<f8")
@@ -167,6 +170,39 @@ def _read_control(m: dict) -> ControlCommand:
     return ControlCommand(m["src"], m["seq"], m["cmd"], m.get("args", {}))
 
 
+# -- LFP (PROTOCOL.md, section "LFP") ------------------------------------------------
+
+#: Sample formats of an ``lfp`` frame: wire name -> little-endian dtype.
+LFP_FORMATS = {"i16": np.dtype("<i2"), "f32": np.dtype("<f4")}
+
+
+def _read_lfp(m: dict) -> LfpChunk:
+    fmt, n_channels = m["fmt"], m["ch"]
+    wire = LFP_FORMATS.get(fmt) if type(fmt) is str else None
+    if wire is None:
+        raise ProtocolError("bad_field", f"'fmt' must be one of {sorted(LFP_FORMATS)}, got {describe(fmt)}")
+    if type(n_channels) is not int or not 1 <= n_channels <= MAX_LFP_CHANNELS:
+        raise ProtocolError("bad_field", f"'ch' must be a channel count from 1 to {MAX_LFP_CHANNELS}, "
+                                         f"got {describe(n_channels)}")
+    if fmt == "i16" and "uv" not in m:
+        raise ProtocolError("missing_field", "an 'lfp' message of format 'i16' needs 'uv', the µV per count")
+    if type(m["s"]) is not bytes:
+        raise ProtocolError("bad_array", "'s' must be bin: the samples as little-endian values, sample-major")
+    flat = _array(m, "s", wire)
+    if flat.size == 0 or flat.size % n_channels:
+        raise ProtocolError("length_mismatch", f"'s' holds {flat.size} values, not a whole number (>= 1) of "
+                                               f"samples of {n_channels} channels")
+    return LfpChunk(m["src"], m["seq"], m["t"], m["rate_hz"], flat.reshape(-1, n_channels), m.get("uv", 1.0))
+
+
+def _encode_lfp(msg: LfpChunk) -> dict:
+    fmt = "i16" if msg.samples.dtype.kind == "i" else "f32"
+    return _head("lfp", msg) | {
+        "t": msg.t_s, "rate_hz": msg.rate_hz, "ch": msg.n_channels, "fmt": fmt, "uv": msg.uv_per_count,
+        "s": np.ascontiguousarray(msg.samples, dtype=LFP_FORMATS[fmt]).tobytes(),
+    }
+
+
 _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "announce": _read_announce,
     "spikes": _read_spikes,
@@ -174,6 +210,7 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "heartbeat": _read_heartbeat,
     "sync": _read_sync,
     "control": _read_control,
+    "lfp": _read_lfp,
 }
 
 
@@ -297,6 +334,7 @@ _INPUT_ENCODERS: dict[type, Callable[[Any], dict]] = {
     Heartbeat: _encode_heartbeat,
     SyncPulse: _encode_sync,
     ControlCommand: _encode_control,
+    LfpChunk: _encode_lfp,
 }
 
 

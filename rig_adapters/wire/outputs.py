@@ -51,12 +51,12 @@ _EVENT_FIELDS = (
     _Field("source", "src", "name"),
     _Field("seq", "seq", "count"),
     _Field("event_id", "id", "count"),
-    _Field("zone", "zone", "name"),
+    _Field("zone", "zone", "zone"),
     _Field("rule", "rule", "name"),
     _Field("t_s", "t", "time"),
     _Field("map_xy_cm", "map", "xy"),
     _Field("mean_xy_cm", "mean", "xy"),
-    _Field("zone_mass", "mass", "real"),
+    _Field("zone_mass", "mass", "mass"),
     _Field("tracked_xy_cm", "pos", "xy"),
     _Field("wall_received_s", "rx_wall", "time"),
     _Field("wall_decoded_s", "dec_wall", "time"),
@@ -97,6 +97,16 @@ def _check_value(f: _Field, value: Any) -> Any:
         if not isinstance(value, str) or not value:
             raise bad("a non-empty string")
         return value
+    if f.type == "zone":
+        # Empty for an event of a ripple rule, which has no zone (PROTOCOL.md, section 8).
+        if not isinstance(value, str):
+            raise bad("a zone name, or empty for a ripple event")
+        return value
+    if f.type == "mass":
+        # NaN for an event of a ripple rule, which no decoding step made.
+        if not number(value) or math.isinf(value):
+            raise bad("a posterior mass, NaN for a ripple event")
+        return float(value)
     if f.type == "count":
         if not isinstance(value, (int, np.integer)) or isinstance(value, (bool, np.bool_)) or value < 0:
             raise bad("a non-negative integer")

@@ -1,0 +1,178 @@
+"""The session's LFP stream: chunks checked for continuity, ripples detected, ripple rules judged.
+
+One LFP source (``[ripples] source``) on the spike source's clock. The first
+chunk fixes the stream's sample rate and channel count; after it, each chunk
+must begin where the previous one ended (within half a sample). What breaks
+that is counted and never reaches the detector as if it were continuous:
+
+* a gap (the chunk begins later): counted under ``lfp_gaps``; the detector
+  restarts its filter and lets it settle before it detects again, so the
+  step in the signal cannot pass for a ripple;
+* an overlap (the chunk begins earlier: repeated or reordered data):
+  refused, ``lfp_overlaps``;
+* another sample rate or channel count: refused, ``lfp_rate_changes`` or
+  ``lfp_shape_changes``; a first chunk the ``[ripples]`` settings cannot
+  work with (a rate too low for the band, fewer channels than
+  ``min_channels``): refused, ``lfp_unusable``; a source that restarts its sequence numbers starts
+  a new stream (:meth:`RippleStream.restart`).
+
+A detection while the tracked animal moves faster than ``max_speed_cm_s`` is
+counted (``ripples_moving``) and reported, but judged by no rule.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import math
+import struct
+from typing import NamedTuple
+
+import numpy as np
+
+from decoder.config import RippleSettings
+from decoder.session.tracking import TrackHistory
+from decoder.session.triggers import TriggerBank, TriggerEvent
+from decoder.signals.lfp_chunk import LfpChunk
+from decoder.signals.ripple_detector import RippleDetection, RippleDetector
+
+log = logging.getLogger(__name__)
+
+#: Largest misalignment of a chunk's first sample that still counts as continuous, in samples.
+_CONTINUITY_SAMPLES = 0.5
+
+
+class RippleOutput(NamedTuple):
+    """One detected ripple and what it triggered.
+
+    Attributes
+    ----------
+    t_s : float
+        Data time of the detection (``detection.detected_s``).
+    detection : RippleDetection
+    tracked_xy_cm : ndarray, shape (2,)
+        Tracked position at ``t_s``; NaN when unknown.
+    tracked_speed_cm_s : float
+    moving : bool
+        Whether the animal was faster than ``[ripples] max_speed_cm_s`` (or
+        its speed unknown), so that no rule judged the ripple.
+    events : tuple of TriggerEvent
+    armed : bool
+    """
+
+    t_s: float
+    detection: RippleDetection
+    tracked_xy_cm: np.ndarray
+    tracked_speed_cm_s: float
+    moving: bool
+    events: tuple[TriggerEvent, ...]
+    armed: bool
+
+
+class RippleStream:
+    """The LFP source's chunks into ripple detections and ripple events.
+
+    Parameters
+    ----------
+    settings : RippleSettings
+    bank : TriggerBank
+        The session's one bank: ripple rules meet the same caps as every rule.
+    tracked : TrackHistory
+        Tracked position and speed at a data time.
+
+    Attributes
+    ----------
+    counters : dict of str to int
+    detector : RippleDetector or None
+        Made at the first chunk, from its rate and channel count.
+    """
+
+    def __init__(self, settings: RippleSettings, bank: TriggerBank, tracked: TrackHistory) -> None:
+        self.settings = settings
+        self.bank = bank
+        self.tracked = tracked
+        self.detector: RippleDetector | None = None
+        self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
+                                              "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
+                                              "events")}
+        self._next_s = math.nan
+        self._hash = hashlib.sha256()
+
+    def take(self, chunk: LfpChunk, watermark_s: float) -> list[RippleOutput]:
+        """Check one chunk's continuity, detect, and judge each ripple.
+
+        Parameters
+        ----------
+        chunk : LfpChunk
+        watermark_s : float
+            The session's data time (the spike stream's), for the LFP's lag.
+        """
+        det = self.detector
+        if det is None:
+            try:
+                det = RippleDetector(chunk.rate_hz, chunk.n_channels, **self.settings.detector_kwargs())
+            except ValueError as exc:  # a rate too low for the band, fewer channels than min_channels
+                return self._refuse("lfp_unusable", f"{exc}; check the source against [ripples]")
+            self.detector = det
+        elif chunk.rate_hz != det.rate_hz:
+            return self._refuse("lfp_rate_changes", f"sample rate {chunk.rate_hz:g} Hz, not {det.rate_hz:g} Hz")
+        elif chunk.n_channels != det.n_channels:
+            return self._refuse("lfp_shape_changes", f"{chunk.n_channels} channels, not {det.n_channels}")
+        elif not math.isnan(self._next_s):
+            off = (chunk.t_s - self._next_s) * det.rate_hz
+            if off < -_CONTINUITY_SAMPLES:
+                return self._refuse("lfp_overlaps", f"it begins {-off:.1f} samples before the previous one ended")
+            if off > _CONTINUITY_SAMPLES:
+                self.counters["lfp_gaps"] += 1
+                log.warning("LFP gap of %.1f samples before t=%.4f s: the ripple filter restarts", off, chunk.t_s)
+                det.restart()
+        self._next_s = chunk.end_s
+        self.counters["lfp_chunks"] += 1
+        out = []
+        for d in det.process(chunk.t_s, chunk.samples_uv()):
+            out.append(self._judge(d, watermark_s))
+        return out
+
+    def restart(self) -> None:
+        """The source restarted: the next chunk starts a new stream (rate and channels may differ)."""
+        self.detector = None
+        self._next_s = math.nan
+
+    @property
+    def digest(self) -> str:
+        """Hex SHA-256 over every detection and ripple event, in order: a replay must reproduce it."""
+        return self._hash.hexdigest()
+
+    def status(self) -> dict:
+        det = self.detector
+        return {
+            "source": self.settings.source,
+            "counters": dict(self.counters),
+            "baseline_ready": bool(det is not None and det.ready_),
+            "digest": self.digest,
+        }
+
+    def _refuse(self, counter: str, why: str) -> list[RippleOutput]:
+        self.counters[counter] += 1
+        log.warning("refused an LFP chunk from %r: %s", self.settings.source, why)
+        return []
+
+    def _judge(self, d: RippleDetection, watermark_s: float) -> RippleOutput:
+        t = d.detected_s
+        x, y, speed = self.tracked.at_xy(t)
+        xy = np.array((x, y))
+        self.counters["ripples"] += 1
+        limit = self.settings.max_speed_cm_s
+        moving = limit != math.inf and not speed <= limit
+        events: tuple[TriggerEvent, ...] = ()
+        if moving:
+            self.counters["ripples_moving"] += 1
+        else:
+            lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
+            events = tuple(self.bank.ripple(t, xy, speed, lag))
+            self.counters["events"] += len(events)
+        h = self._hash
+        h.update(struct.pack("<ddd?", d.onset_s, d.detected_s, d.peak_sd, moving))
+        for ev in events:
+            h.update(f"{ev.event_id}|{ev.rule}|{ev.t_s!r}".encode())
+        return RippleOutput(t, d, xy, speed, moving, events, self.bank.armed)
