@@ -96,8 +96,8 @@ class SpikeWindow:
     """
 
     def __init__(self, n_units: int, window_s: float) -> None:
-        if n_units < 1:
-            raise ValueError(f"n_units must be >= 1, got {n_units}")
+        if n_units < 0:
+            raise ValueError(f"n_units must be >= 0, got {n_units}")
         if not window_s > 0:
             raise ValueError(f"window_s must be positive, got {window_s}")
         self.n_units = int(n_units)

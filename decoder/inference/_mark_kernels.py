@@ -1,0 +1,194 @@
+"""Numerical kernels of clusterless decoding (waveform marks), each with a plain numpy twin.
+
+The marked point-process model (Kloosterman et al. 2014; Deng et al. 2015)
+gives each spike with mark ``m`` (its amplitudes on the channels of its
+electrode group) and each position ``x`` the intensity
+
+    lambda(x, m) = sum_i K_m(m - m_i) G(x, x_i) / occ(x)
+
+over the group's encoding spikes ``i`` (marks ``m_i`` at positions
+``x_i``), with ``K_m`` a Gaussian product kernel in mark space, ``G`` the
+Gaussian smoothing over position and ``occ`` the smoothed occupancy in
+seconds; a window of marked spikes ``k`` then has the log-likelihood
+``sum_k log lambda(x, m_k) - window_s * sum_g Lambda_g(x)``, where
+``Lambda_g`` is the group's ground-process rate. The kernels here give the
+first sum; ``decoder.encoding.mark_model`` builds their arrays at fit time.
+
+How the work stays bounded: each group's encoding spikes are sorted by
+their first channel, so only those within ``cutoff_sd`` kernel widths on it
+are visited (a binary search finds them), and of those only the ones within
+``cutoff_sd`` widths on every channel are weighed (the Gaussian has fallen
+below ``exp(-cutoff_sd**2 / 2)`` of its peak beyond); the weights are summed
+per position bin, spread to the neighbouring bins by the sparse smoothing
+operator, and only the bins so reached get a logarithm: elsewhere the
+intensity is the floor. Marks are float32 (amplitudes in uV carry far fewer
+than 7 significant digits); sums are float64.
+
+References
+----------
+Kloosterman F, Layton SP, Chen Z, Wilson MA (2014). Bayesian decoding using
+unsorted spikes in the rat hippocampus. J Neurophysiol 111:217-227.
+
+Deng X, Liu DF, Kay K, Frank LM, Eden UT (2015). Clusterless decoding of
+position from multiunit activity using a marked point process filter.
+Neural Comput 27:1438-1460.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+
+@numba.njit(cache=True)
+def _first_at_least(keys, lo, hi, value):
+    """First index in ``lo..hi`` with ``keys[i] >= value`` (``hi`` if none); ``keys`` ascending there."""
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if keys[mid] < value:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@numba.njit(cache=True)
+def mark_log_intensity_sum(
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
+    spread_start, spread_bins, spread_weights, bin_scale, group_scale, group_log_floor, valid, weights, lists, out,
+):
+    """Sum over a window's marked spikes of ``log max(lambda(x, m), floor)`` at every bin, into ``out``.
+
+    Parameters
+    ----------
+    spike_groups : ndarray, shape (k,), int64
+        Model row of each spike's group (``0..n_groups-1``).
+    spike_marks : ndarray, shape (k, n_channels_max), float32
+        Marks in uV, the group's channels first (the rest ignored).
+    group_start : ndarray, shape (n_groups + 1,), int64
+        Group ``g`` owns encoding spikes ``group_start[g]:group_start[g + 1]``.
+    group_channels : ndarray, shape (n_groups,), int64
+        Channels of each group.
+    enc_marks : ndarray, shape (n_enc, n_channels_max), float32
+        Encoding marks in uV, ascending on channel 0 within each group.
+    enc_bins : ndarray, shape (n_enc,), int64
+        Position bin of each encoding spike.
+    inv_bandwidth_uv : float
+        1 / the mark kernel's s.d. (uV), the same on every channel.
+    cutoff_sd : float
+        Encoding spikes further than this many s.d. on any channel weigh 0.
+    spread_start, spread_bins, spread_weights : ndarray, int64, int64, float64
+        The position smoothing by source bin: bin ``b`` spreads to
+        ``spread_bins[spread_start[b]:spread_start[b + 1]]`` with those weights.
+    bin_scale : ndarray, shape (n_bins,), float64
+        The mark kernel's normalisation over the smoothed occupancy (s) of each bin.
+    group_scale : ndarray, shape (n_groups,), float64
+        Spikes placed over spikes kept, per group (reservoir sampling).
+    group_log_floor : ndarray, shape (n_groups,), float64
+        Natural log of the least intensity of a spike of each group.
+    valid : ndarray, shape (n_bins,), bool
+    weights : ndarray, shape (2, n_bins), float64
+        Scratch, all 0 on entry and on return.
+    lists : ndarray, shape (4, n_bins), int64
+        Scratch; rows 2 and 3 all 0 on entry and on return.
+    out : ndarray, shape (n_bins,), float64
+        Receives the sum (overwritten).
+
+    Returns
+    -------
+    int
+        Encoding spikes weighed (the work done).
+    """
+    n_bins = out.shape[0]
+    k = spike_groups.shape[0]
+    floor_sum = 0.0
+    for s in range(k):
+        floor_sum += group_log_floor[spike_groups[s]]
+    for j in range(n_bins):
+        out[j] = floor_sum if valid[j] else 0.0
+    width = cutoff_sd / inv_bandwidth_uv
+    cut2 = cutoff_sd * cutoff_sd
+    hist, acc = weights[0], weights[1]
+    sources, targets, is_source, is_target = lists[0], lists[1], lists[2], lists[3]
+    weighed = 0
+    for s in range(k):
+        g = spike_groups[s]
+        nch = group_channels[g]
+        hi = group_start[g + 1]
+        i = _first_at_least(enc_marks[:, 0], group_start[g], hi, spike_marks[s, 0] - width)
+        top = spike_marks[s, 0] + width
+        n_sources = 0
+        while i < hi and enc_marks[i, 0] <= top:
+            d2 = 0.0
+            for c in range(nch):
+                z = (enc_marks[i, c] - spike_marks[s, c]) * inv_bandwidth_uv
+                d2 += z * z
+                if z * z > cut2:
+                    d2 = -1.0
+                    break
+            if d2 >= 0.0:
+                weighed += 1
+                b = enc_bins[i]
+                if is_source[b] == 0:
+                    is_source[b] = 1
+                    sources[n_sources] = b
+                    n_sources += 1
+                hist[b] += math.exp(-0.5 * d2)
+            i += 1
+        scale = group_scale[g]
+        log_floor = group_log_floor[g]
+        n_targets = 0
+        for q in range(n_sources):
+            b = sources[q]
+            w = hist[b] * scale
+            hist[b] = 0.0
+            is_source[b] = 0
+            for e in range(spread_start[b], spread_start[b + 1]):
+                t = spread_bins[e]
+                if is_target[t] == 0:
+                    is_target[t] = 1
+                    targets[n_targets] = t
+                    n_targets += 1
+                acc[t] += w * spread_weights[e]
+        for q in range(n_targets):
+            t = targets[q]
+            if valid[t]:
+                lam = acc[t] * bin_scale[t]
+                if lam > 0.0:
+                    v = math.log(lam)
+                    if v > log_floor:
+                        out[t] += v - log_floor
+            acc[t] = 0.0
+            is_target[t] = 0
+    return weighed
+
+
+def mark_log_intensity_sum_numpy(
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
+    spread_start, spread_bins, spread_weights, bin_scale, group_scale, group_log_floor, valid, weights, lists, out,
+):
+    """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
+
+    ``weights`` and ``lists`` are not needed.
+    """
+    n_bins = out.shape[0]
+    lengths = np.diff(spread_start)
+    source_of = np.repeat(np.arange(n_bins), lengths)
+    out[:] = 0.0
+    weighed = 0
+    for s in range(spike_groups.shape[0]):
+        g = spike_groups[s]
+        nch = group_channels[g]
+        enc = enc_marks[group_start[g]:group_start[g + 1], :nch]
+        z = (enc - spike_marks[s, :nch]).astype(np.float64) * inv_bandwidth_uv
+        near = np.all(z * z <= cutoff_sd * cutoff_sd, axis=1)
+        weighed += int(near.sum())
+        d2 = (z[near] ** 2).sum(axis=1)
+        hist = np.bincount(enc_bins[group_start[g]:group_start[g + 1]][near], weights=np.exp(-0.5 * d2),
+                           minlength=n_bins) * group_scale[g]
+        lam = np.bincount(spread_bins, weights=hist[source_of] * spread_weights, minlength=n_bins) * bin_scale
+        with np.errstate(divide="ignore"):
+            out += np.where(valid, np.maximum(np.log(lam), group_log_floor[g]), 0.0)
+    return weighed
