@@ -316,6 +316,11 @@ class SourceAnnounce:
         the frame rate for a tracker).
     unit_ids : ndarray of int64, shape (n_units,)
         The units a spike source will send; empty for other kinds.
+    group_ids : ndarray of int64, shape (n_groups,)
+        The electrode groups (tetrodes, shank segments) whose marked spikes
+        a spike source will send (:class:`MarkedSpikes`); empty for none.
+    group_channels : ndarray of int64, shape (n_groups,)
+        Channels of each group, 1 to :data:`MAX_MARK_CHANNELS`: the width of its marks.
     """
 
     source: str
@@ -324,6 +329,8 @@ class SourceAnnounce:
     clock: str
     sample_rate_hz: float
     unit_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    group_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    group_channels: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
@@ -339,6 +346,12 @@ class SourceAnnounce:
         if np.unique(ids).size != ids.size:
             raise MessageError("bad_field", "unit_ids holds a repeated id")
         object.__setattr__(self, "unit_ids", ids)
+        groups, channels = _vector("group_ids", self.group_ids, np.int64), _vector("group_channels", self.group_channels, np.int64)
+        _same_length("group_channels", channels, groups.size, "group_ids")
+        if np.unique(groups).size != groups.size or (channels.size and not 1 <= channels.min() <= channels.max() <= MAX_MARK_CHANNELS):
+            raise MessageError("bad_field", f"group_ids must not repeat, group_channels be 1 to {MAX_MARK_CHANNELS} each")
+        object.__setattr__(self, "group_ids", groups)
+        object.__setattr__(self, "group_channels", channels)
 
 
 @dataclass(frozen=True, slots=True)
@@ -376,6 +389,61 @@ class SpikeBatch:
             raise MessageError("bad_time", "spike times within a batch must not decrease")
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "unit_id", u)
+
+
+# --------------------------------------------------------------------------
+# Marked spikes (clusterless decoding)
+
+#: Most channels of one electrode group: a 64-site shank segment.
+MAX_MARK_CHANNELS = 64
+
+#: Largest mark magnitude taken, uV: far beyond any extracellular spike.
+MAX_MARK_UV = 1e5
+
+
+@dataclass(frozen=True, slots=True)
+class MarkedSpikes:
+    """Threshold crossings with their waveform marks, in acquisition-time order, unsorted.
+
+    Parameters
+    ----------
+    t_s : ndarray of float64, shape (n,)
+        Spike times, non-decreasing within the batch.
+    group_id : ndarray of int64, shape (n,)
+        The electrode group of each spike.
+    marks_uv : ndarray of float32, shape (n, n_channels)
+        Each spike's mark on its group's channels (peak amplitudes, uV), one
+        width for the batch (1 to :data:`MAX_MARK_CHANNELS`), finite, at most
+        :data:`MAX_MARK_UV` in magnitude. The pipeline checks the width
+        against the group's announced channels.
+    """
+
+    source: str
+    seq: int
+    t_s: np.ndarray
+    group_id: np.ndarray
+    marks_uv: np.ndarray
+
+    def __post_init__(self) -> None:
+        _check_source_seq(self)
+        t = self.t_s if _is_ready_vector(self.t_s, _F64) else _vector("t_s", self.t_s, np.float64)
+        g = self.group_id
+        g = _read_only(g.astype(_I64)) if type(g) is np.ndarray and g.dtype == _I32 else _vector("group_id", g, np.int64)
+        _same_length("group_id", g, t.size, "t_s")
+        m = self.marks_uv
+        if not (type(m) is np.ndarray and m.ndim == 2 and m.dtype.kind in "iuf" and m.shape[0] == t.size):
+            raise MessageError("bad_array", f"marks_uv must be an array of {t.size} spikes by channels, got {describe(m)}")
+        if not 1 <= m.shape[1] <= MAX_MARK_CHANNELS or m.size > 4 * MAX_BATCH:
+            raise MessageError("bad_field", f"marks have {m.shape[1]} channels; a group has 1 to {MAX_MARK_CHANNELS}")
+        with np.errstate(over="ignore"):  # beyond float32 becomes inf, refused just below
+            m = _read_only(np.array(m, dtype=np.float32, order="C"))
+        if m.size and not (np.isfinite(m).all() and np.abs(m).max() <= MAX_MARK_UV):
+            raise MessageError("bad_field", f"marks_uv holds a NaN, infinite or beyond {MAX_MARK_UV:g} uV amplitude")
+        if not finite_non_decreasing(t):
+            raise MessageError("bad_time", "t_s must hold finite spike times that do not decrease within a batch")
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "group_id", g)
+        object.__setattr__(self, "marks_uv", m)
 
 
 def stored_frame(t_s: Any, x_cm: Any, y_cm: Any, quality: Any = None) -> tuple[float, float, float, int]:
@@ -627,4 +695,4 @@ class ControlCommand:
                 )
 
 
-InputMessage = SourceAnnounce | SpikeBatch | TrackerFrames | Heartbeat | SyncPulse | ControlCommand
+InputMessage = SourceAnnounce | SpikeBatch | MarkedSpikes | TrackerFrames | Heartbeat | SyncPulse | ControlCommand

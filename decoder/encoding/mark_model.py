@@ -43,21 +43,20 @@ from decoder.encoding.model_file import read_model_file, write_model_file
 from decoder.encoding.spatial_metrics import skaggs_information
 from decoder.inference import _mark_kernels
 from decoder.inference.decoding import positive_finite
+from decoder.messages import MAX_MARK_CHANNELS
 from decoder.space.environments import Environment
 
 logger = logging.getLogger(__name__)
-
-#: Most channels of one electrode group (a 64-site shank segment at most).
-MAX_CHANNELS = 64
 
 #: Name written into a mark model file's header.
 FILE_FORMAT = "placeloop.mark_model"
 
 #: A group is spatially informative above this many bits per spike (Skaggs
-#: information of its ground process); a mix of several place cells on one
-#: tetrode carries less than any of them alone (common practice for single
-#: units is 0.2-0.5 bits/spike; the lower figure here is our own choice).
-INFORMATIVE_BITS_PER_SPIKE = 0.1
+#: information of its ground process). The ground process mixes every cell
+#: of the tetrode, whose fields average out, so it carries far less than any
+#: one place cell (0.2-0.5 bits/spike is common for single units); the
+#: figure here is our own choice, from simulated tetrodes of five place cells.
+INFORMATIVE_BITS_PER_SPIKE = 0.01
 
 #: Smoothing weights below this fraction of a source bin's largest are
 #: dropped from the sparse operator (a Gaussian cut at 5.3 s.d.).
@@ -151,8 +150,8 @@ class MarkModel:
     def add_group(self, group_id: int, n_channels: int) -> None:
         """Learn a group of ``n_channels`` channels (known groups keep theirs: ValueError if it differs)."""
         group_id, n_channels = int(group_id), int(n_channels)
-        if not 1 <= n_channels <= MAX_CHANNELS:
-            raise ValueError(f"group {group_id}: a group has 1 to {MAX_CHANNELS} channels, got {n_channels}")
+        if not 1 <= n_channels <= MAX_MARK_CHANNELS:
+            raise ValueError(f"group {group_id}: a group has 1 to {MAX_MARK_CHANNELS} channels, got {n_channels}")
         row = self._row.get(group_id)
         if row is not None:
             if self._channels[row] != n_channels:

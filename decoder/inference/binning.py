@@ -170,7 +170,8 @@ class SpikeWindow:
         self._row[:held] = row
         self._start, self._stop = 0, held
 
-    def decode(self, decoder: BayesDecoder, t_end_s: float) -> DecodedStep:
+    def decode(self, decoder: BayesDecoder, t_end_s: float, mark_log_like: np.ndarray | None = None,
+               mark_expected: np.ndarray | None = None) -> DecodedStep:
         """Decode the window ``(t_end_s - window_s, t_end_s]`` and forget the spikes before it.
 
         For a caller whose windows only move forward, as decoding steps do:
@@ -182,11 +183,14 @@ class SpikeWindow:
             With the same ``window_s``; counts and decodes the window in one
             call (:meth:`~decoder.inference.decoding.BayesDecoder.decode_held`).
         t_end_s : float
+        mark_log_like, mark_expected : ndarray of float64, shape (n_bins,), optional
+            The window's terms from waveform marks, passed on to the decoder.
 
         Returns
         -------
         DecodedStep
         """
-        step, first = decoder.decode_held(self._t, self._row, self._start, self._stop, t_end_s)
+        step, first = decoder.decode_held(self._t, self._row, self._start, self._stop, t_end_s, mark_log_like,
+                                          mark_expected)
         self._start = first
         return step

@@ -17,6 +17,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from rig_adapters.sim.marks import MarkSimulation
 
 @dataclass(frozen=True)
 class SimulationSettings:
@@ -147,6 +148,9 @@ class SimulationSettings:
     tracker_outlier_prob: float = 0.0
     #: Standard deviation of such an outlier's displacement on each axis (cm).
     tracker_outlier_cm: float = 15.0
+    #: The ``[simulation.marks]`` table: tetrodes that send marked spikes
+    #: (:class:`rig_adapters.sim.marks.MarkSimulation`); empty for sorted spikes only.
+    marks: Any = None
 
     _RANGES: ClassVar[tuple[str, ...]] = (
         "pause_duration_s", "end_pause_s", "place_field_fwhm_cm", "place_peak_hz", "grid_spacing_cm",
@@ -162,7 +166,10 @@ class SimulationSettings:
     def __post_init__(self) -> None:
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
-            if f.name in self._FLAGS:
+            if f.name == "marks":
+                if not isinstance(value, MarkSimulation):
+                    object.__setattr__(self, "marks", MarkSimulation.from_dict(value))
+            elif f.name in self._FLAGS:
                 if not isinstance(value, bool):
                     raise ValueError(f"{f.name} must be true or false, got {value!r}")
             elif f.name in self._RANGES:

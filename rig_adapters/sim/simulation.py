@@ -47,9 +47,12 @@ from typing import Any
 
 import numpy as np
 
-from decoder.messages import Heartbeat, InputMessage, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
+from decoder.messages import (
+    Heartbeat, InputMessage, MarkedSpikes, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames,
+)
 from decoder.space.environments import Environment
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
+from rig_adapters.sim.marks import Tetrodes
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
@@ -111,6 +114,8 @@ class SimulatedSession:
         self._motion = trajectory_for(environment, settings, rng)
         self._truth = draw_cells(environment, settings, rng)
         self._trains = SpikeTrains(self._truth, settings, rng)
+        # Marks draw from their own generator: a session without them is unchanged.
+        self.tetrodes = Tetrodes(settings.marks, self._truth.unit_ids, seed) if settings.marks is not None else None
         self._drift = 1.0 + settings.tracker_drift_ppm * 1e-6
         self._seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, TRUTH_SOURCE: 0}
         self._announced = False
@@ -134,9 +139,14 @@ class SimulatedSession:
 
     def _announcements(self) -> tuple[InputMessage, ...]:
         s = self.settings
+        units, groups = self._truth.unit_ids, np.zeros(0, np.int64)
+        if self.tetrodes is not None:
+            groups = self.tetrodes.group_ids
+            units = self.tetrodes.sorted_unit_ids if s.marks.send == "both" else np.zeros(0, np.int64)
         return (
             self._message(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=ACQUISITION_CLOCK,
-                          sample_rate_hz=s.acquisition_rate_hz, unit_ids=self._truth.unit_ids),
+                          sample_rate_hz=s.acquisition_rate_hz, unit_ids=units, group_ids=groups,
+                          group_channels=np.full(groups.size, s.marks.channels if groups.size else 0)),
             self._message(SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock=TRACKER_CLOCK,
                           sample_rate_hz=s.tracker_rate_hz),
             self._message(SourceAnnounce, TRUTH_SOURCE, kind="tracker", clock=ACQUISITION_CLOCK,
@@ -201,16 +211,16 @@ class SimulatedSession:
         ephys: list[tuple[float, InputMessage]] = []
         spike_samples, spike_units = self._trains.spikes(self._tick - 1, s0, s1, position)
         spike_t = spike_samples / fs
+        if self.tetrodes is not None:
+            spike_t, spike_units = self.tetrodes.with_multi_unit(spike_t, spike_units, t0, t1)
         pulse_ephys_t = math.floor(pulse_t * fs) / fs if pulse_t is not None else math.inf
         before = int(np.searchsorted(spike_t, pulse_ephys_t, side="left"))
         if before > 0:
-            msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=spike_t[:before], unit_id=spike_units[:before])
-            ephys.append((float(spike_t[0]), msg))
+            ephys.extend(self._spike_messages(spike_t[:before], spike_units[:before]))
         if pulse_t is not None:
             ephys.append((pulse_ephys_t, self._message(SyncPulse, SPIKE_SOURCE, t_s=pulse_ephys_t, pulse_id=pulse_id)))
         if before < spike_t.size:
-            msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=spike_t[before:], unit_id=spike_units[before:])
-            ephys.append((float(spike_t[before]), msg))
+            ephys.extend(self._spike_messages(spike_t[before:], spike_units[before:]))
         ephys.append((t1, self._message(Heartbeat, SPIKE_SOURCE, t_s=t1)))
 
         tracker: list[tuple[float, InputMessage]] = []
@@ -251,6 +261,21 @@ class SimulatedSession:
 
         merged = heapq.merge(ephys, tracker, truth, key=lambda item: item[0])
         return Chunk(t1, tuple(msg for _, msg in merged))
+
+    def _spike_messages(self, t: np.ndarray, units: np.ndarray) -> list[tuple[float, InputMessage]]:
+        """A non-empty run of spikes as the spike source sends it: a spike batch, marked spikes, or both."""
+        if self.tetrodes is None:
+            return [(float(t[0]), self._message(SpikeBatch, SPIKE_SOURCE, t_s=t, unit_id=units))]
+        out = []
+        if self.settings.marks.send == "both":
+            sorted_ = np.isin(units, self.tetrodes.sorted_unit_ids)
+            if sorted_.any():
+                msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=t[sorted_], unit_id=units[sorted_])
+                out.append((float(t[0]), msg))
+        t_m, groups, marks, _ = self.tetrodes.marks(t, units)
+        if t_m.size:
+            out.append((float(t[0]), self._message(MarkedSpikes, SPIKE_SOURCE, t_s=t_m, group_id=groups, marks_uv=marks)))
+        return out
 
     def _next_dropout(self, after_s: float) -> tuple[float, float]:
         start = after_s + self._rng.exponential(self.settings.dropout_interval_s)

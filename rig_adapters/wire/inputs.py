@@ -21,9 +21,11 @@ import numpy as np
 
 from decoder.messages import (
     MAX_BATCH,
+    MAX_MARK_CHANNELS,
     ControlCommand,
     Heartbeat,
     InputMessage,
+    MarkedSpikes,
     MessageError,
     SourceAnnounce,
     SpikeBatch,
@@ -43,7 +45,7 @@ from rig_adapters.wire.framing import (
 )
 
 #: Input kinds, rig -> placeloop.
-INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control")
+INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control", "marks")
 
 #: The prefix of a rig's own keys, which every reader ignores (PROTOCOL.md, section 2).
 EXTENSION_PREFIX = "x_"
@@ -64,15 +66,17 @@ def _keys(required: tuple[str, ...], optional: tuple[str, ...] = ()) -> _Keys:
 
 #: Every key of every input kind (PROTOCOL.md, sections 2, 3 and 5).
 INPUT_KEYS = {
-    "announce": _keys(("role", "clock", "rate_hz"), ("units",)),
+    "announce": _keys(("role", "clock", "rate_hz"), ("units", "groups", "channels")),
     "spikes": _keys(("t", "u")),
     "frames": _keys(("t", "x", "y"), ("hd", "q")),
     "heartbeat": _keys(("t",)),
     "sync": _keys(("t", "pulse")),
     "control": _keys(("cmd",), ("args",)),
+    "marks": _keys(("t", "g", "ch", "m")),
 }
 
 _F64 = np.dtype("<f8")
+_F32 = np.dtype("<f4")
 _U8 = np.dtype("<u1")
 _INT_BY_WIDTH = {4: np.dtype("<i4"), 8: np.dtype("<i8")}
 _F64_THREE = struct.Struct("<3d")
@@ -132,7 +136,11 @@ def _read_announce(m: dict) -> SourceAnnounce:
         raise ProtocolError("missing_field", "an 'announce' of role 'spikes' needs the key 'units'; see PROTOCOL.md")
     else:
         units = np.zeros(0, np.int64)
-    return SourceAnnounce(m["src"], m["seq"], role, m["clock"], m["rate_hz"], units)
+    if ("groups" in m) != ("channels" in m):
+        raise ProtocolError("missing_field", "an 'announce' with 'groups' needs 'channels' too, and the reverse")
+    groups = _array(m, "groups", _INT_BY_WIDTH[m.get("iw", 4)]) if "groups" in m else np.zeros(0, np.int64)
+    channels = _array(m, "channels", _INT_BY_WIDTH[m.get("iw", 4)]) if "channels" in m else np.zeros(0, np.int64)
+    return SourceAnnounce(m["src"], m["seq"], role, m["clock"], m["rate_hz"], units, groups, channels)
 
 
 def _read_spikes(m: dict) -> SpikeBatch:
@@ -167,6 +175,37 @@ def _read_control(m: dict) -> ControlCommand:
     return ControlCommand(m["src"], m["seq"], m["cmd"], m.get("args", {}))
 
 
+# -- marked spikes (clusterless decoding; PROTOCOL.md, "Marked spikes") --------
+
+
+def _read_marks(m: dict) -> MarkedSpikes:
+    width = m["ch"]
+    if type(width) is not int or not 1 <= width <= MAX_MARK_CHANNELS:
+        raise ProtocolError("bad_field", f"'ch' (channels per mark) must be an integer from 1 to {MAX_MARK_CHANNELS}, "
+                                         f"got {describe(width)}")
+    flat = _array(m, "m", _F32)
+    if type(flat) is list:
+        if not all(type(v) in (int, float) for v in flat):
+            raise ProtocolError("bad_array", f"'m' must be bin of float32 or a flat list of numbers, got {describe(flat)}")
+        try:
+            flat = np.array(flat, dtype=np.float64)
+        except OverflowError:
+            raise ProtocolError("bad_field", "'m' holds a number beyond the range of a float64") from None
+    if flat.size % width:
+        raise ProtocolError("length_mismatch", f"'m' holds {flat.size} values, not a whole number of {width}-channel marks")
+    return MarkedSpikes(m["src"], m["seq"], _array(m, "t", _F64), _array(m, "g", _INT_BY_WIDTH[m.get("iw", 4)]),
+                        flat.reshape(-1, width))
+
+
+def _encode_marks(msg: MarkedSpikes) -> dict:
+    groups, width = _int_bin(msg.group_id)
+    out = _head("marks", msg) | {"t": _f64_bin(msg.t_s), "g": groups, "ch": int(msg.marks_uv.shape[1]),
+                                 "m": np.ascontiguousarray(msg.marks_uv, dtype=_F32).tobytes()}
+    if width != 4:
+        out["iw"] = width
+    return out
+
+
 _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "announce": _read_announce,
     "spikes": _read_spikes,
@@ -174,6 +213,7 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "heartbeat": _read_heartbeat,
     "sync": _read_sync,
     "control": _read_control,
+    "marks": _read_marks,
 }
 
 
@@ -253,6 +293,14 @@ def _head(kind: str, msg: InputMessage) -> dict:
 def _encode_announce(msg: SourceAnnounce) -> dict:
     units, width = _int_bin(msg.unit_ids)
     out = _head("announce", msg) | {"role": msg.kind, "clock": msg.clock, "rate_hz": msg.sample_rate_hz, "units": units}
+    if msg.group_ids.size:
+        out["groups"], group_width = _int_bin(msg.group_ids)
+        out["channels"], _ = _int_bin(msg.group_channels)
+        width = max(width, group_width)
+        if width != 4:
+            out["units"], out["groups"], out["channels"] = (
+                np.ascontiguousarray(v, dtype=_INT_BY_WIDTH[8]).tobytes()
+                for v in (msg.unit_ids, msg.group_ids, msg.group_channels))
     if width != 4:
         out["iw"] = width
     return out
@@ -297,6 +345,7 @@ _INPUT_ENCODERS: dict[type, Callable[[Any], dict]] = {
     Heartbeat: _encode_heartbeat,
     SyncPulse: _encode_sync,
     ControlCommand: _encode_control,
+    MarkedSpikes: _encode_marks,
 }
 
 
