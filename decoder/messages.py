@@ -316,11 +316,6 @@ class SourceAnnounce:
         the frame rate for a tracker).
     unit_ids : ndarray of int64, shape (n_units,)
         The units a spike source will send; empty for other kinds.
-    group_ids : ndarray of int64, shape (n_groups,)
-        The electrode groups (tetrodes, shank segments) whose marked spikes
-        a spike source will send (:class:`MarkedSpikes`); empty for none.
-    group_channels : ndarray of int64, shape (n_groups,)
-        Channels of each group, 1 to :data:`MAX_MARK_CHANNELS`: the width of its marks.
     """
 
     source: str
@@ -329,8 +324,6 @@ class SourceAnnounce:
     clock: str
     sample_rate_hz: float
     unit_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
-    group_ids: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
-    group_channels: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
 
     def __post_init__(self) -> None:
         _check_source_seq(self)
@@ -346,12 +339,6 @@ class SourceAnnounce:
         if np.unique(ids).size != ids.size:
             raise MessageError("bad_field", "unit_ids holds a repeated id")
         object.__setattr__(self, "unit_ids", ids)
-        groups, channels = _vector("group_ids", self.group_ids, np.int64), _vector("group_channels", self.group_channels, np.int64)
-        _same_length("group_channels", channels, groups.size, "group_ids")
-        if np.unique(groups).size != groups.size or (channels.size and not 1 <= channels.min() <= channels.max() <= MAX_MARK_CHANNELS):
-            raise MessageError("bad_field", f"group_ids must not repeat, group_channels be 1 to {MAX_MARK_CHANNELS} each")
-        object.__setattr__(self, "group_ids", groups)
-        object.__setattr__(self, "group_channels", channels)
 
 
 @dataclass(frozen=True, slots=True)
@@ -391,13 +378,9 @@ class SpikeBatch:
         object.__setattr__(self, "unit_id", u)
 
 
-# --------------------------------------------------------------------------
-# Marked spikes (clusterless decoding)
-
-#: Most channels of one electrode group: a 64-site shank segment.
+# Marked spikes (clusterless decoding). Most channels of one electrode group
+# (a 64-site shank segment), and the largest mark taken (uV), far beyond any spike.
 MAX_MARK_CHANNELS = 64
-
-#: Largest mark magnitude taken, uV: far beyond any extracellular spike.
 MAX_MARK_UV = 1e5
 
 
@@ -405,17 +388,11 @@ MAX_MARK_UV = 1e5
 class MarkedSpikes:
     """Threshold crossings with their waveform marks, in acquisition-time order, unsorted.
 
-    Parameters
-    ----------
-    t_s : ndarray of float64, shape (n,)
-        Spike times, non-decreasing within the batch.
-    group_id : ndarray of int64, shape (n,)
-        The electrode group of each spike.
-    marks_uv : ndarray of float32, shape (n, n_channels)
-        Each spike's mark on its group's channels (peak amplitudes, uV), one
-        width for the batch (1 to :data:`MAX_MARK_CHANNELS`), finite, at most
-        :data:`MAX_MARK_UV` in magnitude. The pipeline checks the width
-        against the group's announced channels.
+    ``t_s`` (n,) float64 s, non-decreasing; ``group_id`` (n,) int64, the
+    electrode group of each spike; ``marks_uv`` (n, n_channels) float32, each
+    spike's mark on its group's channels (peak amplitudes, uV): one width per
+    batch (1 to :data:`MAX_MARK_CHANNELS`), finite, at most :data:`MAX_MARK_UV`
+    in magnitude. The pipeline checks the width against the group's announcement.
     """
 
     source: str
@@ -444,6 +421,29 @@ class MarkedSpikes:
         object.__setattr__(self, "t_s", t)
         object.__setattr__(self, "group_id", g)
         object.__setattr__(self, "marks_uv", m)
+
+
+@dataclass(frozen=True, slots=True)
+class GroupAnnounce:
+    """A spike source says which electrode groups it sends marked spikes of, and each one's channels.
+
+    ``group_ids`` (n_groups,) int64 without repeats; ``group_channels``
+    (n_groups,) int64, 1 to :data:`MAX_MARK_CHANNELS` each: the width of the group's marks.
+    """
+
+    source: str
+    seq: int
+    group_ids: np.ndarray
+    group_channels: np.ndarray
+
+    def __post_init__(self) -> None:
+        _check_source_seq(self)
+        groups, channels = _vector("group_ids", self.group_ids, np.int64), _vector("group_channels", self.group_channels, np.int64)
+        _same_length("group_channels", channels, groups.size, "group_ids")
+        if np.unique(groups).size != groups.size or (channels.size and not 1 <= channels.min() <= channels.max() <= MAX_MARK_CHANNELS):
+            raise MessageError("bad_field", f"group_ids must not repeat and group_channels be 1 to {MAX_MARK_CHANNELS} each")
+        object.__setattr__(self, "group_ids", groups)
+        object.__setattr__(self, "group_channels", channels)
 
 
 def stored_frame(t_s: Any, x_cm: Any, y_cm: Any, quality: Any = None) -> tuple[float, float, float, int]:
@@ -695,4 +695,5 @@ class ControlCommand:
                 )
 
 
-InputMessage = SourceAnnounce | SpikeBatch | MarkedSpikes | TrackerFrames | Heartbeat | SyncPulse | ControlCommand
+InputMessage = (SourceAnnounce | SpikeBatch | MarkedSpikes | GroupAnnounce | TrackerFrames | Heartbeat | SyncPulse
+                | ControlCommand)

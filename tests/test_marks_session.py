@@ -13,7 +13,7 @@ import pytest
 import tomli_w
 
 from decoder.config import parse_config
-from decoder.messages import MarkedSpikes, MessageError, SourceAnnounce
+from decoder.messages import GroupAnnounce, MarkedSpikes, MessageError
 from decoder.session.outputs import StepOutput
 from decoder.session.pipeline import Pipeline
 from rig_adapters.sessions.replay import replay_session
@@ -66,7 +66,7 @@ def test_marks_and_announced_groups_round_trip():
     back = decode(encode(msg))
     np.testing.assert_array_equal(back.marks_uv, msg.marks_uv)
     assert back.marks_uv.dtype == np.float32 and back.group_id.tolist() == [3, 7]
-    ann = SourceAnnounce("ephys", 0, "spikes", "acq", 3e4, [], [3, 7], [4, 2])
+    ann = GroupAnnounce("ephys", 0, [3, 7], [4, 2])
     back = decode(encode(ann))
     assert back.group_ids.tolist() == [3, 7] and back.group_channels.tolist() == [4, 2]
 
@@ -94,13 +94,20 @@ def test_bad_marks_are_refused_with_a_reason(over, reason):
     assert err.value.reason == reason
 
 
-def test_announce_with_groups_but_no_channels_is_refused():
-    frame = msgpack.packb({"v": 1, "k": "announce", "src": "ephys", "seq": 0, "role": "spikes", "clock": "acq",
-                           "rate_hz": 3e4, "units": [], "groups": [1, 2]})
-    with pytest.raises(ProtocolError, match="channels"):
-        decode(frame)
+@pytest.mark.parametrize("over, reason", [
+    ({"ch": [4]}, "length_mismatch"),
+    ({"g": [1, 1]}, "bad_field"),
+    ({"ch": [4, 0]}, "bad_field"),
+    ({"ch": [4, 65]}, "bad_field"),
+    ({"units": [1]}, "unknown_field"),
+])
+def test_bad_group_announcements_are_refused_with_a_reason(over, reason):
+    frame = {"v": 1, "k": "groups", "src": "ephys", "seq": 0, "g": [1, 2], "ch": [4, 4]}
+    with pytest.raises(ProtocolError) as err:
+        decode(msgpack.packb({**frame, **over}))
+    assert err.value.reason == reason
     with pytest.raises(MessageError):
-        SourceAnnounce("ephys", 0, "spikes", "acq", 3e4, [], [1, 1], [4, 4])
+        GroupAnnounce("ephys", 0, [1, 1], [4, 4])
 
 
 # -- the pipeline -------------------------------------------------------------
@@ -142,7 +149,7 @@ def test_bad_marks_are_counted_and_never_crash_or_trigger(marks_session):
     bad = [
         MarkedSpikes("ephys", seq, np.array([t + 0.001]), np.array([999]), np.ones((1, 4)) * 80),       # unknown group
         MarkedSpikes("ephys", seq + 1, np.array([t + 0.002]), np.array([1]), np.ones((1, 3)) * 80),     # wrong width
-        SourceAnnounce("ephys", seq + 2, "spikes", "acquisition", 3e4, [], [1], [2]),                   # group changes
+        GroupAnnounce("ephys", seq + 2, [1], [2]),                                                      # group changes
         MarkedSpikes("ephys", seq + 3, np.array([t + 0.003]), np.array([1]), np.ones((1, 2)) * 80),     # its new width
     ]
     for msg in bad:

@@ -19,7 +19,7 @@ import numpy as np
 
 from decoder.config import MarkSettings, SessionSettings
 from decoder.encoding.mark_model import MarkModel
-from decoder.messages import MarkedSpikes, SourceAnnounce
+from decoder.messages import GroupAnnounce, MarkedSpikes
 from decoder.session.artefacts import SpikeSanity
 from decoder.session.tracking import TrackHistory
 from decoder.space.environments import Environment
@@ -73,7 +73,7 @@ class MarkStream:
 
     # -- checks --------------------------------------------------------------
 
-    def announce(self, msg: SourceAnnounce) -> None:
+    def announce(self, msg: GroupAnnounce) -> None:
         """Take the groups a source announced; a known group keeps its channel count."""
         for gid, n in zip(msg.group_ids.tolist(), msg.group_channels.tolist()):
             known = self.channels.get(gid)

@@ -33,6 +33,7 @@ from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.place_model import PlaceModel
 from decoder.messages import (
     ControlCommand,
+    GroupAnnounce,
     Heartbeat,
     InputMessage,
     MarkedSpikes,
@@ -138,6 +139,7 @@ class Pipeline:
         self._handlers: dict[type, Callable[[InputMessage], list[Output]]] = {
             SpikeBatch: self._on_spikes,
             MarkedSpikes: self._on_marks,
+            GroupAnnounce: self._on_groups,
             Heartbeat: self._on_heartbeat,
             TrackerFrames: self._on_frames,
             SyncPulse: self._on_sync,
@@ -243,7 +245,12 @@ class Pipeline:
     def _on_announce(self, msg: SourceAnnounce) -> list[Output]:
         self.announced[msg.source] = msg
         self.positions.announce(msg.source, msg.clock)
-        if self.marks is not None and msg.source == self._spike_source:
+        return []
+
+    def _on_groups(self, msg: GroupAnnounce) -> list[Output]:
+        if msg.source != self._spike_source:
+            self.counters["unknown_source"] += 1
+        elif self.marks is not None:
             self.marks.announce(msg)
         return []
 

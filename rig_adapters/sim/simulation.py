@@ -48,7 +48,7 @@ from typing import Any
 import numpy as np
 
 from decoder.messages import (
-    Heartbeat, InputMessage, MarkedSpikes, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames,
+    GroupAnnounce, Heartbeat, InputMessage, MarkedSpikes, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames,
 )
 from decoder.space.environments import Environment
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
@@ -139,14 +139,17 @@ class SimulatedSession:
 
     def _announcements(self) -> tuple[InputMessage, ...]:
         s = self.settings
-        units, groups = self._truth.unit_ids, np.zeros(0, np.int64)
+        units = self._truth.unit_ids
+        if self.tetrodes is not None:
+            units = self.tetrodes.sorted_unit_ids if s.marks.send == "both" else np.zeros(0, np.int64)
+        out = [self._message(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=ACQUISITION_CLOCK,
+                             sample_rate_hz=s.acquisition_rate_hz, unit_ids=units)]
         if self.tetrodes is not None:
             groups = self.tetrodes.group_ids
-            units = self.tetrodes.sorted_unit_ids if s.marks.send == "both" else np.zeros(0, np.int64)
+            out.append(self._message(GroupAnnounce, SPIKE_SOURCE, group_ids=groups,
+                                     group_channels=np.full(groups.size, s.marks.channels)))
         return (
-            self._message(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=ACQUISITION_CLOCK,
-                          sample_rate_hz=s.acquisition_rate_hz, unit_ids=units, group_ids=groups,
-                          group_channels=np.full(groups.size, s.marks.channels if groups.size else 0)),
+            *out,
             self._message(SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock=TRACKER_CLOCK,
                           sample_rate_hz=s.tracker_rate_hz),
             self._message(SourceAnnounce, TRUTH_SOURCE, kind="tracker", clock=ACQUISITION_CLOCK,

@@ -23,6 +23,7 @@ from decoder.messages import (
     MAX_BATCH,
     MAX_MARK_CHANNELS,
     ControlCommand,
+    GroupAnnounce,
     Heartbeat,
     InputMessage,
     MarkedSpikes,
@@ -45,7 +46,7 @@ from rig_adapters.wire.framing import (
 )
 
 #: Input kinds, rig -> placeloop.
-INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control", "marks")
+INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control", "marks", "groups")
 
 #: The prefix of a rig's own keys, which every reader ignores (PROTOCOL.md, section 2).
 EXTENSION_PREFIX = "x_"
@@ -66,13 +67,14 @@ def _keys(required: tuple[str, ...], optional: tuple[str, ...] = ()) -> _Keys:
 
 #: Every key of every input kind (PROTOCOL.md, sections 2, 3 and 5).
 INPUT_KEYS = {
-    "announce": _keys(("role", "clock", "rate_hz"), ("units", "groups", "channels")),
+    "announce": _keys(("role", "clock", "rate_hz"), ("units",)),
     "spikes": _keys(("t", "u")),
     "frames": _keys(("t", "x", "y"), ("hd", "q")),
     "heartbeat": _keys(("t",)),
     "sync": _keys(("t", "pulse")),
     "control": _keys(("cmd",), ("args",)),
     "marks": _keys(("t", "g", "ch", "m")),
+    "groups": _keys(("g", "ch")),
 }
 
 _F64 = np.dtype("<f8")
@@ -136,11 +138,7 @@ def _read_announce(m: dict) -> SourceAnnounce:
         raise ProtocolError("missing_field", "an 'announce' of role 'spikes' needs the key 'units'; see PROTOCOL.md")
     else:
         units = np.zeros(0, np.int64)
-    if ("groups" in m) != ("channels" in m):
-        raise ProtocolError("missing_field", "an 'announce' with 'groups' needs 'channels' too, and the reverse")
-    groups = _array(m, "groups", _INT_BY_WIDTH[m.get("iw", 4)]) if "groups" in m else np.zeros(0, np.int64)
-    channels = _array(m, "channels", _INT_BY_WIDTH[m.get("iw", 4)]) if "channels" in m else np.zeros(0, np.int64)
-    return SourceAnnounce(m["src"], m["seq"], role, m["clock"], m["rate_hz"], units, groups, channels)
+    return SourceAnnounce(m["src"], m["seq"], role, m["clock"], m["rate_hz"], units)
 
 
 def _read_spikes(m: dict) -> SpikeBatch:
@@ -197,6 +195,20 @@ def _read_marks(m: dict) -> MarkedSpikes:
                         flat.reshape(-1, width))
 
 
+def _read_groups(m: dict) -> GroupAnnounce:
+    width = _INT_BY_WIDTH[m.get("iw", 4)]
+    return GroupAnnounce(m["src"], m["seq"], _array(m, "g", width), _array(m, "ch", width))
+
+
+def _encode_groups(msg: GroupAnnounce) -> dict:
+    groups, width = _int_bin(msg.group_ids)
+    # Channel counts are small; they share the ids' width, which the one 'iw' key declares.
+    out = _head("groups", msg) | {"g": groups, "ch": np.ascontiguousarray(msg.group_channels, _INT_BY_WIDTH[width]).tobytes()}
+    if width != 4:
+        out["iw"] = width
+    return out
+
+
 def _encode_marks(msg: MarkedSpikes) -> dict:
     groups, width = _int_bin(msg.group_id)
     out = _head("marks", msg) | {"t": _f64_bin(msg.t_s), "g": groups, "ch": int(msg.marks_uv.shape[1]),
@@ -214,6 +226,7 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "sync": _read_sync,
     "control": _read_control,
     "marks": _read_marks,
+    "groups": _read_groups,
 }
 
 
@@ -293,14 +306,6 @@ def _head(kind: str, msg: InputMessage) -> dict:
 def _encode_announce(msg: SourceAnnounce) -> dict:
     units, width = _int_bin(msg.unit_ids)
     out = _head("announce", msg) | {"role": msg.kind, "clock": msg.clock, "rate_hz": msg.sample_rate_hz, "units": units}
-    if msg.group_ids.size:
-        out["groups"], group_width = _int_bin(msg.group_ids)
-        out["channels"], _ = _int_bin(msg.group_channels)
-        width = max(width, group_width)
-        if width != 4:
-            out["units"], out["groups"], out["channels"] = (
-                np.ascontiguousarray(v, dtype=_INT_BY_WIDTH[8]).tobytes()
-                for v in (msg.unit_ids, msg.group_ids, msg.group_channels))
     if width != 4:
         out["iw"] = width
     return out
@@ -346,6 +351,7 @@ _INPUT_ENCODERS: dict[type, Callable[[Any], dict]] = {
     SyncPulse: _encode_sync,
     ControlCommand: _encode_control,
     MarkedSpikes: _encode_marks,
+    GroupAnnounce: _encode_groups,
 }
 
 
