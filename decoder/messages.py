@@ -410,8 +410,9 @@ class MarkedSpikes:
         m = self.marks_uv
         if not (type(m) is np.ndarray and m.ndim == 2 and m.dtype.kind in "iuf" and m.shape[0] == t.size):
             raise MessageError("bad_array", f"marks_uv must be an array of {t.size} spikes by channels, got {describe(m)}")
-        if not 1 <= m.shape[1] <= MAX_MARK_CHANNELS or m.size > 4 * MAX_BATCH:
-            raise MessageError("bad_field", f"marks have {m.shape[1]} channels; a group has 1 to {MAX_MARK_CHANNELS}")
+        if m.size > MAX_BATCH or not 1 <= m.shape[1] <= MAX_MARK_CHANNELS:
+            raise MessageError("oversized" if m.size > MAX_BATCH else "bad_field", f"marks_uv holds {m.size} values of "
+                               f"{m.shape[1]} channels; at most {MAX_BATCH} values of 1 to {MAX_MARK_CHANNELS} channels")
         with np.errstate(over="ignore"):  # beyond float32 becomes inf, refused just below
             m = _read_only(np.array(m, dtype=np.float32, order="C"))
         if m.size and not (np.isfinite(m).all() and np.abs(m).max() <= MAX_MARK_UV):
