@@ -35,11 +35,16 @@ def _fitted(env, rng, n_groups=2, n_spikes=400, channels=4, bandwidth_uv=15.0, s
     return model.fit(occupancy, env.valid_mask), occupancy
 
 
-@pytest.mark.parametrize("env", [LinearTrack((0, 0), (200, 0), bin_cm=5), Arena.rectangle(60, 40, bin_cm=4)],
-                         ids=["track", "arena"])
-def test_compiled_kernel_matches_its_numpy_twin(env):
+@pytest.mark.parametrize("env, by_grid", [
+    (LinearTrack((0, 0), (200, 0), bin_cm=5), False),
+    (Arena.rectangle(40, 32, bin_cm=4), False),     # too small for the kernel's reach: spread bin by bin
+    (Arena.rectangle(100, 80, bin_cm=4), True),     # separable convolution on the grid
+    (Arena.circle((50, 50), 50, bin_cm=4), True),
+], ids=["track", "small-arena", "arena", "round-arena"])
+def test_compiled_kernel_matches_its_numpy_twin(env, by_grid):
     rng = np.random.default_rng(1)
     model, _ = _fitted(env, rng)
+    assert (model.grid_nx_ > 0) == by_grid
     rows = rng.integers(0, 2, 30)
     marks = (60 + 40 * rng.random((30, 4))).astype(np.float32)
     fast, slow = np.empty(env.n_bins), np.empty(env.n_bins)
@@ -49,7 +54,7 @@ def test_compiled_kernel_matches_its_numpy_twin(env):
     assert n_fast == n_slow
     np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-9)  # same sums in another order
     # The scratch is left as it was found, so the next call starts clean.
-    assert not scratch[0].any() and not scratch[1][2:].any()
+    assert not scratch[0][:2].any() and not scratch[1][2:].any()
 
 
 def test_mark_density_of_one_bin_matches_sklearn_kernel_density():

@@ -58,10 +58,6 @@ FILE_FORMAT = "placeloop.mark_model"
 #: figure here is our own choice, from simulated tetrodes of five place cells.
 INFORMATIVE_BITS_PER_SPIKE = 0.01
 
-#: Smoothing weights below this fraction of a source bin's largest are
-#: dropped from the sparse operator (a Gaussian cut at 5.3 s.d.).
-_SPREAD_CUTOFF = 1e-6
-
 #: Rows of the identity smoothed at once while building the operator.
 _SPREAD_CHUNK = 256
 
@@ -245,12 +241,34 @@ class MarkModel:
             impulses[np.arange(hi - lo), np.arange(lo, hi)] = 1.0
             smoothed, _ = env._smooth_masked(impulses, ones, self.smooth_cm)
             for row in smoothed:
-                keep = np.flatnonzero(row > _SPREAD_CUTOFF * row.max())
+                keep = np.flatnonzero(row)
                 targets.append(keep)
                 weights.append(row[keep])
                 starts.append(starts[-1] + keep.size)
         return (np.asarray(starts, np.int64), np.concatenate(targets).astype(np.int64),
                 np.concatenate(weights).astype(np.float64))
+
+    def _grid_kernel(self) -> tuple[int, np.ndarray]:
+        """``(nx, kernel_1d)`` of a grid arena's separable smoothing, read off its own response to one bin; ``(0, [])`` otherwise.
+
+        The response of a grid arena to a unit at a bin far enough from the
+        edges is ``outer(k, k)``, so ``k`` is its central row over the square
+        root of its centre.
+        """
+        env = self.environment
+        if env.grid_shape is None:
+            return 0, np.zeros(0)
+        ny, nx = env.grid_shape
+        r = int(4.0 * self.smooth_cm / env.bin_cm + 0.5)  # scipy's gaussian_filter1d reach at truncate=4
+        if 2 * r + 1 > min(ny, nx):
+            return 0, np.zeros(0)
+        size = 2 * r + 1
+        impulse = np.zeros(size * size)
+        impulse[r * size + r] = 1.0
+        probe = type(env).rectangle(size * env.bin_cm, size * env.bin_cm, bin_cm=env.bin_cm)
+        response, _ = probe._smooth_masked(impulse[np.newaxis], np.ones(size * size), self.smooth_cm)
+        centre_row = response[0].reshape(size, size)[r]
+        return nx, centre_row / math.sqrt(centre_row[r])
 
     def _norm(self, n_channels: int) -> float:
         """Peak density of the product kernel, 1 / ((2 pi)^(c/2) bandwidth^c), in uV^-c."""
@@ -278,6 +296,7 @@ class MarkModel:
         if self.n_groups == 0:
             raise ValueError("no electrode group has been announced; a marks source announces its groups first")
         self.spread_ = self._spread_operator()
+        self.grid_nx_, self.kernel_1d_ = self._grid_kernel()
         start, targets, weights = self.spread_
         source_of = np.repeat(np.arange(env.n_bins), np.diff(start))
 
@@ -327,7 +346,7 @@ class MarkModel:
     def scratch(self) -> tuple[np.ndarray, np.ndarray]:
         """The two scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
         n = self.environment.n_bins
-        return np.zeros((2, n)), np.zeros((4, n), np.int64)
+        return np.zeros((3, n)), np.zeros((4, n), np.int64)
 
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
                           scratch: tuple[np.ndarray, np.ndarray], backend: str = "numba") -> int:
@@ -351,7 +370,8 @@ class MarkModel:
                   else _mark_kernels.mark_log_intensity_sum_numpy)
         start, targets, weights = self.spread_
         return kernel(rows, marks_uv, self.group_start_, self.group_channels_, self.enc_marks_, self.enc_bins_,
-                      1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.bin_scale_,
+                      1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
+                      self.bin_scale_,
                       self.group_scale_, self.group_log_floor_, self.valid_mask_, scratch[0], scratch[1], out)
 
     # -- readiness -----------------------------------------------------------

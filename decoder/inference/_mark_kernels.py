@@ -57,7 +57,8 @@ def _first_at_least(keys, lo, hi, value):
 @numba.njit(cache=True)
 def mark_log_intensity_sum(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
-    spread_start, spread_bins, spread_weights, bin_scale, group_scale, group_log_floor, valid, weights, lists, out,
+    spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
+    weights, lists, out,
 ):
     """Sum over a window's marked spikes of ``log max(lambda(x, m), floor)`` at every bin, into ``out``.
 
@@ -82,6 +83,15 @@ def mark_log_intensity_sum(
     spread_start, spread_bins, spread_weights : ndarray, int64, int64, float64
         The position smoothing by source bin: bin ``b`` spreads to
         ``spread_bins[spread_start[b]:spread_start[b + 1]]`` with those weights.
+    grid_nx : int
+        Columns of a grid arena (bins row-major), or 0.
+    kernel_1d : ndarray, shape (2 r + 1,), float64
+        On a grid arena (``grid_nx > 0``), the smoothing is this kernel along
+        each axis in turn, zero beyond the grid: the same operator as the
+        spread arrays (which then go unused), applied by convolution over
+        the rows and columns the spike's source bins reach, which costs less
+        than spreading bin by bin once a spike weighs more than a few
+        hundred bins.
     bin_scale : ndarray, shape (n_bins,), float64
         The mark kernel's normalisation over the smoothed occupancy (s) of each bin.
     group_scale : ndarray, shape (n_groups,), float64
@@ -89,8 +99,8 @@ def mark_log_intensity_sum(
     group_log_floor : ndarray, shape (n_groups,), float64
         Natural log of the least intensity of a spike of each group.
     valid : ndarray, shape (n_bins,), bool
-    weights : ndarray, shape (2, n_bins), float64
-        Scratch, all 0 on entry and on return.
+    weights : ndarray, shape (3, n_bins), float64
+        Scratch, rows 0 and 1 all 0 on entry and on return.
     lists : ndarray, shape (4, n_bins), int64
         Scratch; rows 2 and 3 all 0 on entry and on return.
     out : ndarray, shape (n_bins,), float64
@@ -139,6 +149,11 @@ def mark_log_intensity_sum(
             i += 1
         scale = group_scale[g]
         log_floor = group_log_floor[g]
+        if grid_nx > 0:
+            if n_sources:
+                _convolve_and_log(sources, n_sources, scale, grid_nx, kernel_1d, bin_scale, log_floor, valid,
+                                  hist, acc, weights[2], is_source, out)
+            continue
         n_targets = 0
         for q in range(n_sources):
             b = sources[q]
@@ -165,13 +180,56 @@ def mark_log_intensity_sum(
     return weighed
 
 
+@numba.njit(cache=True)
+def _convolve_and_log(sources, n_sources, scale, nx, kernel_1d, bin_scale, log_floor, valid, hist, acc, tmp,
+                      is_source, out):
+    """The grid path of :func:`mark_log_intensity_sum` for one spike: smooth its source weights, add the logs, clean up."""
+    n_bins = out.shape[0]
+    ny = n_bins // nx
+    r = kernel_1d.shape[0] // 2
+    y0, y1, x0, x1 = ny, -1, nx, -1
+    for q in range(n_sources):
+        b = sources[q]
+        y, x = b // nx, b % nx
+        y0, y1, x0, x1 = min(y0, y), max(y1, y), min(x0, x), max(x1, x)
+    # Along x over the source rows, into tmp; then along y into acc, over the reach of both.
+    xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
+    ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
+    for y in range(y0, y1 + 1):
+        row = y * nx
+        for x in range(xa, xb + 1):
+            s = 0.0
+            for k in range(max(-r, x0 - x), min(r, x1 - x) + 1):
+                s += kernel_1d[k + r] * hist[row + x + k]
+            tmp[row + x] = s
+    for y in range(ya, yb + 1):
+        for x in range(xa, xb + 1):
+            s = 0.0
+            for k in range(max(-r, y0 - y), min(r, y1 - y) + 1):
+                s += kernel_1d[k + r] * tmp[(y + k) * nx + x]
+            j = y * nx + x
+            if valid[j] and s > 0.0:
+                lam = s * scale * bin_scale[j]
+                if lam > 0.0:
+                    v = math.log(lam)
+                    if v > log_floor:
+                        out[j] += v - log_floor
+    # tmp is read only where this call wrote it; hist and the flags go back to 0.
+    for q in range(n_sources):
+        hist[sources[q]] = 0.0
+        is_source[sources[q]] = 0
+
+
 def mark_log_intensity_sum_numpy(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
-    spread_start, spread_bins, spread_weights, bin_scale, group_scale, group_log_floor, valid, weights, lists, out,
+    spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
+    weights, lists, out,
 ):
     """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
 
-    ``weights`` and ``lists`` are not needed.
+    The smoothing is always the spread arrays (the same operator as the
+    grid's kernel); ``grid_nx``, ``kernel_1d``, ``weights`` and ``lists``
+    are not needed.
     """
     n_bins = out.shape[0]
     lengths = np.diff(spread_start)
