@@ -320,11 +320,23 @@ class MarkModel:
         self.group_start_ = np.concatenate([[0], np.cumsum(self._kept)]).astype(np.int64)
         self.enc_marks_ = np.zeros((int(self.group_start_[-1]), width), np.float32)
         self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int64)
+        # Buckets of channel 0, cutoff_sd kernel widths wide, sorted on channel 1 within (the kernel's index).
+        bucket_w = self.cutoff_sd * self.bandwidth_uv
+        self.group_min0_uv_ = np.zeros(self.n_groups)
+        counts, group_bucket = [], [0]
         for g in range(self.n_groups):
-            order = np.argsort(self._marks[g][:, 0], kind="stable")
+            marks = self._marks[g]
+            min0 = float(marks[:, 0].min()) if len(marks) else 0.0
+            bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / bucket_w).astype(np.int64)
+            order = np.lexsort((marks[:, 1 if self._channels[g] > 1 else 0], bucket))
             lo, hi = self.group_start_[g], self.group_start_[g + 1]
-            self.enc_marks_[lo:hi, : self._channels[g]] = self._marks[g][order]
+            self.enc_marks_[lo:hi, : self._channels[g]] = marks[order]
             self.enc_bins_[lo:hi] = self._bins[g][order]
+            self.group_min0_uv_[g] = min0
+            counts.append(np.bincount(bucket, minlength=1))
+            group_bucket.append(group_bucket[-1] + counts[-1].size)
+        self.group_bucket_ = np.asarray(group_bucket, np.int64)
+        self.bucket_start_ = np.concatenate([[0], np.cumsum(np.concatenate(counts))]).astype(np.int64)
         placed = np.array([c.sum() for c in self._placed_counts], np.float64)
         kept = np.maximum(np.asarray(self._kept, np.float64), 1.0)
         norms = np.array([self._norm(c) for c in self._channels])
@@ -346,7 +358,7 @@ class MarkModel:
     def scratch(self) -> tuple[np.ndarray, np.ndarray]:
         """The two scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
         n = self.environment.n_bins
-        return np.zeros((3, n)), np.zeros((4, n), np.int64)
+        return np.zeros((4, n)), np.zeros((4, n), np.int64)
 
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
                           scratch: tuple[np.ndarray, np.ndarray], backend: str = "numba") -> int:
@@ -370,7 +382,7 @@ class MarkModel:
                   else _mark_kernels.mark_log_intensity_sum_numpy)
         start, targets, weights = self.spread_
         return kernel(rows, marks_uv, self.group_start_, self.group_channels_, self.enc_marks_, self.enc_bins_,
-                      1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
+                      self.bucket_start_, self.group_bucket_, self.group_min0_uv_, 1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
                       self.bin_scale_,
                       self.group_scale_, self.group_log_floor_, self.valid_mask_, scratch[0], scratch[1], out)
 

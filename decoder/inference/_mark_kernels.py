@@ -14,9 +14,11 @@ seconds; a window of marked spikes ``k`` then has the log-likelihood
 ``Lambda_g`` is the group's ground-process rate. The kernels here give the
 first sum; ``decoder.encoding.mark_model`` builds their arrays at fit time.
 
-How the work stays bounded: each group's encoding spikes are sorted by
-their first channel, so only those within ``cutoff_sd`` kernel widths on it
-are visited (a binary search finds them), and of those only the ones within
+How the work stays bounded: each group's encoding spikes are kept in
+buckets of their first channel, ``cutoff_sd`` kernel widths wide, and
+sorted on their second channel within a bucket, so only those within
+``cutoff_sd`` widths on both are visited (at most three buckets, and a
+binary search in each), and of those only the ones within
 ``cutoff_sd`` widths on every channel are weighed (the Gaussian has fallen
 below ``exp(-cutoff_sd**2 / 2)`` of its peak beyond); the weights are summed
 per position bin, spread to the neighbouring bins by the sparse smoothing
@@ -56,7 +58,8 @@ def _first_at_least(keys, lo, hi, value):
 
 @numba.njit(cache=True)
 def mark_log_intensity_sum(
-    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, bucket_start, group_bucket, group_min0_uv,
+    inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
     weights, lists, out,
 ):
@@ -73,9 +76,18 @@ def mark_log_intensity_sum(
     group_channels : ndarray, shape (n_groups,), int64
         Channels of each group.
     enc_marks : ndarray, shape (n_enc, n_channels_max), float32
-        Encoding marks in uV, ascending on channel 0 within each group.
+        Encoding marks in uV, in buckets of channel 0 (below) and ascending
+        on channel 1 (channel 0 for a one-channel group) within each bucket.
     enc_bins : ndarray, shape (n_enc,), int64
         Position bin of each encoding spike.
+    bucket_start : ndarray, shape (n_buckets + 1,), int64
+        Bucket ``u`` holds encoding spikes ``bucket_start[u]:bucket_start[u + 1]``.
+    group_bucket : ndarray, shape (n_groups + 1,), int64
+        Group ``g`` owns buckets ``group_bucket[g]:group_bucket[g + 1]``; its
+        bucket ``u`` holds channel 0 in ``[min0 + u w, min0 + (u + 1) w)`` with
+        ``w = cutoff_sd`` kernel s.d.
+    group_min0_uv : ndarray, shape (n_groups,), float64
+        The least channel-0 mark of each group.
     inv_bandwidth_uv : float
         1 / the mark kernel's s.d. (uV), the same on every channel.
     cutoff_sd : float
@@ -99,7 +111,7 @@ def mark_log_intensity_sum(
     group_log_floor : ndarray, shape (n_groups,), float64
         Natural log of the least intensity of a spike of each group.
     valid : ndarray, shape (n_bins,), bool
-    weights : ndarray, shape (3, n_bins), float64
+    weights : ndarray, shape (4, n_bins), float64
         Scratch, rows 0 and 1 all 0 on entry and on return.
     lists : ndarray, shape (4, n_bins), int64
         Scratch; rows 2 and 3 all 0 on entry and on return.
@@ -123,36 +135,49 @@ def mark_log_intensity_sum(
     hist, acc = weights[0], weights[1]
     sources, targets, is_source, is_target = lists[0], lists[1], lists[2], lists[3]
     weighed = 0
+    multiplied = 0
+    if grid_nx > 0:
+        weights[3, :] = 1.0
     for s in range(k):
         g = spike_groups[s]
         nch = group_channels[g]
-        hi = group_start[g + 1]
-        i = _first_at_least(enc_marks[:, 0], group_start[g], hi, spike_marks[s, 0] - width)
-        top = spike_marks[s, 0] + width
+        key = 1 if nch > 1 else 0
+        # Only the buckets of channel 0 within reach, and in each the run within reach on the key channel.
+        first, n_buckets = group_bucket[g], group_bucket[g + 1] - group_bucket[g]
+        u_lo = max(0, int(math.floor((spike_marks[s, 0] - width - group_min0_uv[g]) / width)))
+        u_hi = min(n_buckets - 1, int(math.floor((spike_marks[s, 0] + width - group_min0_uv[g]) / width)))
+        low, top = spike_marks[s, key] - width, spike_marks[s, key] + width
         n_sources = 0
-        while i < hi and enc_marks[i, 0] <= top:
-            d2 = 0.0
-            for c in range(nch):
-                z = (enc_marks[i, c] - spike_marks[s, c]) * inv_bandwidth_uv
-                d2 += z * z
-                if z * z > cut2:
-                    d2 = -1.0
-                    break
-            if d2 >= 0.0:
-                weighed += 1
-                b = enc_bins[i]
-                if is_source[b] == 0:
-                    is_source[b] = 1
-                    sources[n_sources] = b
-                    n_sources += 1
-                hist[b] += math.exp(-0.5 * d2)
-            i += 1
+        for u in range(u_lo, u_hi + 1):
+            hi = bucket_start[first + u + 1]
+            i = _first_at_least(enc_marks[:, key], bucket_start[first + u], hi, low)
+            while i < hi and enc_marks[i, key] <= top:
+                d2 = 0.0
+                for c in range(nch):
+                    z = (enc_marks[i, c] - spike_marks[s, c]) * inv_bandwidth_uv
+                    d2 += z * z
+                    if z * z > cut2:
+                        d2 = -1.0
+                        break
+                if d2 >= 0.0:
+                    weighed += 1
+                    b = enc_bins[i]
+                    if is_source[b] == 0:
+                        is_source[b] = 1
+                        sources[n_sources] = b
+                        n_sources += 1
+                    hist[b] += math.exp(-0.5 * d2)
+                i += 1
         scale = group_scale[g]
         log_floor = group_log_floor[g]
         if grid_nx > 0:
             if n_sources:
-                _convolve_and_log(sources, n_sources, scale, grid_nx, kernel_1d, bin_scale, log_floor, valid,
-                                  hist, acc, weights[2], is_source, out)
+                _convolve_and_multiply(sources, n_sources, scale, grid_nx, kernel_1d, bin_scale, log_floor, valid,
+                                       hist, acc, weights[2], weights[3], is_source)
+                multiplied += 1
+                if multiplied == _SPIKES_PER_LOG:
+                    _flush_products(weights[3], valid, out)
+                    multiplied = 0
             continue
         n_targets = 0
         for q in range(n_sources):
@@ -177,59 +202,93 @@ def mark_log_intensity_sum(
                         out[t] += v - log_floor
             acc[t] = 0.0
             is_target[t] = 0
+    if multiplied:
+        _flush_products(weights[3], valid, out)
     return weighed
 
 
+#: On the grid path, the intensity ratios of this many spikes are multiplied
+#: before one logarithm per bin: each ratio lies in [1, lambda_max / floor],
+#: at most ~1e12 for any realistic model, so 16 of them stay far below the
+#: largest double (1.8e308), and the logarithms cost a sixteenth.
+_SPIKES_PER_LOG = 16
+
+
 @numba.njit(cache=True)
-def _convolve_and_log(sources, n_sources, scale, nx, kernel_1d, bin_scale, log_floor, valid, hist, acc, tmp,
-                      is_source, out):
-    """The grid path of :func:`mark_log_intensity_sum` for one spike: smooth its source weights, add the logs, clean up."""
-    n_bins = out.shape[0]
+def _flush_products(product, valid, out):
+    """``out += log(product)`` on the valid bins, and ``product`` back to 1."""
+    for j in range(out.shape[0]):
+        if valid[j]:
+            out[j] += math.log(product[j])
+        product[j] = 1.0
+
+
+@numba.njit(cache=True, fastmath={"contract", "reassoc"})
+def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, log_floor, valid, hist, pad, tmp,
+                           product, is_source):
+    """The grid path of :func:`mark_log_intensity_sum` for one spike.
+
+    Smooths the spike's source weights over the rows and columns they reach
+    (each pass a sum of shifted rows, which the compiler vectorises), then
+    multiplies ``max(lambda / floor, 1)`` into ``product``; hist and the
+    flags go back to 0.
+    """
+    n_bins = product.shape[0]
     ny = n_bins // nx
     r = kernel_1d.shape[0] // 2
+    floor = math.exp(log_floor)
     y0, y1, x0, x1 = ny, -1, nx, -1
     for q in range(n_sources):
         b = sources[q]
         y, x = b // nx, b % nx
         y0, y1, x0, x1 = min(y0, y), max(y1, y), min(x0, x), max(x1, x)
-    # Along x over the source rows, into tmp; then along y into acc, over the reach of both.
     xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
     ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
+    width = xb - xa + 1
+    # Along x, row by row: pad holds the row's sources with r zeros each side.
     for y in range(y0, y1 + 1):
         row = y * nx
-        for x in range(xa, xb + 1):
-            s = 0.0
-            for k in range(max(-r, x0 - x), min(r, x1 - x) + 1):
-                s += kernel_1d[k + r] * hist[row + x + k]
-            tmp[row + x] = s
+        for i in range(width + 2 * r):
+            x = xa + i - r
+            pad[i] = hist[row + x] if x0 <= x <= x1 else 0.0
+        for i in range(width):
+            tmp[row + xa + i] = 0.0
+        for k in range(2 * r + 1):
+            w = kernel_1d[k]
+            for i in range(width):
+                tmp[row + xa + i] += w * pad[i + k]
+    # Along y, into pad (one output row at a time), then the ratio into the product.
     for y in range(ya, yb + 1):
-        for x in range(xa, xb + 1):
-            s = 0.0
-            for k in range(max(-r, y0 - y), min(r, y1 - y) + 1):
-                s += kernel_1d[k + r] * tmp[(y + k) * nx + x]
-            j = y * nx + x
-            if valid[j] and s > 0.0:
-                lam = s * scale * bin_scale[j]
-                if lam > 0.0:
-                    v = math.log(lam)
-                    if v > log_floor:
-                        out[j] += v - log_floor
-    # tmp is read only where this call wrote it; hist and the flags go back to 0.
+        for i in range(width):
+            pad[i] = 0.0
+        for k in range(max(-r, y0 - y), min(r, y1 - y) + 1):
+            w = kernel_1d[k + r]
+            src = (y + k) * nx + xa
+            for i in range(width):
+                pad[i] += w * tmp[src + i]
+        row = y * nx + xa
+        for i in range(width):
+            lam = pad[i] * scale * bin_scale[row + i]
+            if lam > floor:
+                product[row + i] *= lam / floor
+    for i in range(width + 2 * r):
+        pad[i] = 0.0
     for q in range(n_sources):
         hist[sources[q]] = 0.0
         is_source[sources[q]] = 0
 
 
 def mark_log_intensity_sum_numpy(
-    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, inv_bandwidth_uv, cutoff_sd,
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, bucket_start, group_bucket, group_min0_uv,
+    inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
     weights, lists, out,
 ):
     """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
 
     The smoothing is always the spread arrays (the same operator as the
-    grid's kernel); ``grid_nx``, ``kernel_1d``, ``weights`` and ``lists``
-    are not needed.
+    grid's kernel); the buckets, ``grid_nx``, ``kernel_1d``, ``weights`` and
+    ``lists`` are not needed.
     """
     n_bins = out.shape[0]
     lengths = np.diff(spread_start)
