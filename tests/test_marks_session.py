@@ -173,3 +173,10 @@ def test_a_session_without_the_marks_table_ignores_marks_but_follows_their_clock
     pipeline, outputs = _run(plain, messages[:2000])
     assert pipeline.marks is None
     assert pipeline.watermark.t_s > 5.0  # the marks alone moved the spike clock (no heartbeats are dropped here)
+
+
+def test_marks_enabled_but_no_groups_announced_decodes_the_sorted_units():
+    config = _config(simulation={**CONFIG["simulation"], "marks": {}})   # a rig of sorted units only
+    pipeline, outputs = _run(config, _messages(config, 70.0))
+    assert pipeline.state == "decoding" and pipeline.steps.n_units > 0 and pipeline.steps.marks is None
+    assert "marks" not in pipeline.readiness

@@ -147,9 +147,16 @@ class MarkStream:
                 self._pending[0] = (t[n:], g[n:], m[n:])
                 return
 
-    def fit(self, occupancy_s: np.ndarray, valid_mask: np.ndarray, tracked: TrackHistory) -> MarkModel:
-        """Fit the mark model learned so far on the place model's occupancy and bins (ValueError if impossible)."""
+    def fit(self, occupancy_s: np.ndarray, valid_mask: np.ndarray, tracked: TrackHistory) -> MarkModel | None:
+        """Fit the mark model learned so far on the place model's occupancy and bins (ValueError if impossible).
+
+        None when the source announced no group: the session decodes its sorted units alone.
+        """
         self.settle(tracked, tracked.newest_t_s)
+        if self.learning.n_groups == 0:
+            log.warning("[marks] is enabled but the spike source announced no electrode group ('groups', "
+                        "PROTOCOL.md); decoding without marks")
+            return None
         return self.learning.fit(occupancy_s, valid_mask)
 
     # -- decoding ------------------------------------------------------------
