@@ -524,6 +524,7 @@ class Pipeline:
             "counters": dict(self.counters),
             "bad_reasons": dict(self.bad_reasons),
             "artefact_reasons": dict(self.spike_sanity.counts),
+            "mark_artefact_reasons": dict(self.marks.sanity.counts) if self.marks is not None else {},
             "sources": self.health.summary(),
             "triggers": self.bank.status(),
             "readiness": self.readiness,
