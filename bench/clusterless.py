@@ -8,7 +8,9 @@ for a short run). Two parts, each measured in the same run as its baseline:
    2,000 spikes/s in total (2.4 million spikes, 20,000 kept per tetrode by
    reservoir sampling), 20 ms steps of the state-space filter with its
    uniform jump: every step the window's marked spikes (40 on average) go
-   through the mark kernel and the fused decoding step. The compiled path
+   through the mark kernel and the fused decoding step. ``--merge-sd``
+   compresses the encoding marks at fit (``[marks] merge_sd``, kernel
+   density compression, Sodkomkham et al. 2016); by default they are not. The compiled path
    and the numpy twins decode the same steps; the figures are the per-step
    p50 and p99, their ratio, and the memory of the fitted model. The spikes
    are invented for timing only: five place cells and some multi-unit
@@ -52,6 +54,8 @@ from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings  # 
 N_GROUPS, CHANNELS, CELLS_PER_GROUP = 32, 4, 5
 TOTAL_RATE_HZ, LEARN_S, STEP_S = 2000.0, 1200.0, 0.02
 KEEP_PER_GROUP = 20_000
+#: Kernel density compression of the encoding marks ([marks] merge_sd), in kernel s.d.
+MERGE_SD = 0.0
 TARGET_P99_MS, TARGET_RATIO, TARGET_MODEL_MB = 5.0, 10.0, 500.0
 
 
@@ -69,10 +73,10 @@ def _draw_spikes(rng, centers_cm, amplitudes_uv, n, xy_cm=None):
     return xy, marks.astype(np.float32)
 
 
-def step_benchmark(n_steps: int, n_numpy_steps: int, seed: int = 1) -> dict:
+def step_benchmark(n_steps: int, n_numpy_steps: int, merge_sd: float = MERGE_SD, seed: int = 1) -> dict:
     rng = np.random.default_rng(seed)
     env = Arena.rectangle(100, 100, bin_cm=2.0)
-    model = MarkModel(env, bandwidth_uv=20.0, smooth_cm=5.0, max_spikes_per_group=KEEP_PER_GROUP)
+    model = MarkModel(env, bandwidth_uv=20.0, smooth_cm=5.0, max_spikes_per_group=KEEP_PER_GROUP, merge_sd=merge_sd)
     per_group = int(TOTAL_RATE_HZ * LEARN_S / N_GROUPS)
     groups = []
     t0 = time.perf_counter()
@@ -89,7 +93,8 @@ def step_benchmark(n_steps: int, n_numpy_steps: int, seed: int = 1) -> dict:
     occupancy = np.full(env.n_bins, LEARN_S / env.n_bins)
     model.fit(occupancy, env.valid_mask)
     learn_fit_s = time.perf_counter() - t0
-    model_bytes = sum(a.nbytes for a in (model.enc_marks_, model.enc_bins_, *model.spread_, model.kernel_1d_,
+    model_bytes = sum(a.nbytes for a in (model.enc_marks_, model.enc_bins_, model.enc_weights_, *model.spread_,
+                                         model.kernel_1d_,
                                          model.bin_scale_, model.ground_rate_hz_, model.ground_total_hz_))
     model_bytes += sum(m.nbytes + b.nbytes for m, b in zip(model._marks, model._bins))
 
@@ -125,7 +130,8 @@ def step_benchmark(n_steps: int, n_numpy_steps: int, seed: int = 1) -> dict:
     slow = run("numpy", n_numpy_steps)
     return {
         "n_bins": env.n_bins, "groups": N_GROUPS, "channels": CHANNELS, "spikes_per_s": TOTAL_RATE_HZ,
-        "learned_spikes": per_group * N_GROUPS, "kept_spikes": int(model.group_start_[-1]),
+        "learned_spikes": per_group * N_GROUPS, "kept_spikes": sum(model._kept), "merge_sd": merge_sd,
+        "encoding_kernels": int(model.group_start_[-1]),
         "learn_and_fit_s": round(learn_fit_s, 2),
         "steps": n_steps, "numpy_steps": n_numpy_steps,
         "step_p50_ms": float(np.percentile(fast, 50)), "step_p99_ms": float(np.percentile(fast, 99)),
@@ -138,7 +144,7 @@ def step_benchmark(n_steps: int, n_numpy_steps: int, seed: int = 1) -> dict:
 ACCURACY_CONFIG = {
     "environment": {"kind": "rectangle", "width_cm": 80.0, "height_cm": 80.0, "bin_cm": 4.0},
     "model": {"smooth_cm": 5.0, "cv_folds": 2},
-    "marks": {"enabled": True},
+    "marks": {"enabled": True, "merge_sd": MERGE_SD},
     "decoder": {"method": "filter", "step_s": 0.02, "prior": "state_space"},
     "sources": {"truth": "truth"},
     "session": {"learn_s": 300.0, "cross_validate": False},
@@ -179,8 +185,11 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--json", type=pathlib.Path, help="write the figures here")
     parser.add_argument("--quick", action="store_true", help="fewer steps and a shorter session")
+    parser.add_argument("--merge-sd", type=float, default=MERGE_SD, help="kernel density compression, kernel s.d.")
     args = parser.parse_args(argv)
-    steps = step_benchmark(n_steps=200 if args.quick else 1000, n_numpy_steps=10 if args.quick else 30)
+    ACCURACY_CONFIG["marks"]["merge_sd"] = args.merge_sd
+    steps = step_benchmark(n_steps=200 if args.quick else 1000, n_numpy_steps=10 if args.quick else 30,
+                           merge_sd=args.merge_sd)
     print(f"step   p50 {steps['step_p50_ms']:.2f} ms, p99 {steps['step_p99_ms']:.2f} ms (target <= {TARGET_P99_MS}); "
           f"numpy twin p50 {steps['numpy_p50_ms']:.1f} ms: {steps['ratio_p50']:.1f}x (target >= {TARGET_RATIO}); "
           f"model {steps['model_mb']:.1f} MB (target <= {TARGET_MODEL_MB})")

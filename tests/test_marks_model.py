@@ -175,3 +175,37 @@ def test_decoder_takes_mark_terms_and_tempers_them():
             dec.decode([], [], ll, None)
         with pytest.raises(ValueError, match="NaN or infinite"):
             dec.decode([], [], np.full(10, np.nan), expected)
+
+
+def test_compression_matches_its_twin_and_keeps_the_likelihood_close():
+    """Kernel density compression (Sodkomkham et al. 2016): fewer kernels, the same total weight, a close likelihood."""
+    from decoder.inference import _mark_kernels as MK
+    env = Arena.rectangle(100, 80, bin_cm=4)
+    rng = np.random.default_rng(8)
+    plain, _ = _fitted(env, rng, n_spikes=3000)
+    merged = MarkModel(env, bandwidth_uv=15.0, smooth_cm=6.0, merge_sd=0.5)
+    for g in range(2):
+        merged.add_group(10 + g, 4)
+        merged._marks[g], merged._bins[g], merged._kept[g] = plain._marks[g], plain._bins[g], plain._kept[g]
+        merged._placed_counts[g] = plain._placed_counts[g]
+    occupancy = np.where(env.valid_mask, 1.0, 0.0)
+    plain.fit(occupancy, env.valid_mask)
+    merged.fit(occupancy, env.valid_mask)
+    assert merged.enc_weights_.sum() == plain.enc_weights_.sum() == 6000
+    assert merged.enc_marks_.shape[0] < plain.enc_marks_.shape[0]
+    order = np.argsort(plain._bins[0], kind="stable")
+    marks, bins = plain._marks[0][order], plain._bins[0][order]
+    outs = []
+    for kernel in (MK.merge_marks, MK.merge_marks_numpy):
+        c, b, w = np.empty_like(marks), np.empty_like(bins), np.empty(len(bins))
+        m = kernel(marks, bins, 1 / 15.0, 0.5, c, b, w)
+        outs.append((c[:m], b[:m], w[:m]))
+    for a, b in zip(*outs):
+        np.testing.assert_allclose(a, b, rtol=1e-6)  # float32 centres
+    rows = np.array([0, 1, 0])
+    query = (60 + 40 * rng.random((3, 4))).astype(np.float32)
+    ll_plain, ll_merged = np.empty(env.n_bins), np.empty(env.n_bins)
+    plain.log_intensity_sum(rows, query, ll_plain, plain.scratch())
+    merged.log_intensity_sum(rows, query, ll_merged, merged.scratch())
+    # Merging within half a kernel width moves each kernel by at most that: a bound of our own choosing.
+    assert np.max(np.abs(ll_merged - ll_plain)) < 0.3

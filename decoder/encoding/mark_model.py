@@ -83,6 +83,11 @@ class MarkModel:
         intensity as ``rate_floor_hz`` times the kernel's peak density.
     seed : int, default 13
         Seed of the reservoir sampling.
+    merge_sd : float, default 0.0
+        Kernel density compression at fit time: encoding marks of one
+        position bin within this many kernel s.d. of each other become one
+        weighted kernel (Sodkomkham et al. 2016), which cuts the work per
+        decoded spike several-fold at a small bias; 0 keeps every mark.
 
     Attributes
     ----------
@@ -108,7 +113,7 @@ class MarkModel:
 
     def __init__(self, environment: Environment, *, bandwidth_uv: float = 20.0, smooth_cm: float = 4.0,
                  min_speed_cm_s: float = 3.0, max_spikes_per_group: int = 20_000, cutoff_sd: float = 4.0,
-                 rate_floor_hz: float = 0.01, seed: int = 13) -> None:
+                 rate_floor_hz: float = 0.01, seed: int = 13, merge_sd: float = 0.0) -> None:
         self.environment = environment
         self.bandwidth_uv = positive_finite("bandwidth_uv", bandwidth_uv)
         self.smooth_cm = positive_finite("smooth_cm", smooth_cm)
@@ -121,6 +126,9 @@ class MarkModel:
             raise ValueError(f"max_spikes_per_group must be a positive integer, got {max_spikes_per_group!r}")
         self.max_spikes_per_group = max_spikes_per_group
         self.seed = int(seed)
+        if not (isinstance(merge_sd, (int, float)) and math.isfinite(merge_sd) and merge_sd >= 0):
+            raise ValueError(f"merge_sd must be a finite number >= 0, got {merge_sd!r}")
+        self.merge_sd = float(merge_sd)
         self._row: dict[int, int] = {}
         self._ids: list[int] = []
         self._channels: list[int] = []
@@ -317,21 +325,36 @@ class MarkModel:
         self.group_ids_ = np.asarray(self._ids, np.int64)
         self.group_channels_ = np.asarray(self._channels, np.int64)
         width = int(self.group_channels_.max())
-        self.group_start_ = np.concatenate([[0], np.cumsum(self._kept)]).astype(np.int64)
+        kept_marks, kept_bins, kept_weights = [], [], []
+        for g in range(self.n_groups):
+            marks, bins, weights = self._marks[g], self._bins[g], np.ones(len(self._bins[g]))
+            if self.merge_sd > 0 and len(bins):
+                order = np.argsort(bins, kind="stable")
+                marks, bins = marks[order], bins[order]
+                centres, centre_bins, weights = np.empty_like(marks), np.empty_like(bins), np.empty(len(bins))
+                m = _mark_kernels.merge_marks(marks, bins, 1.0 / self.bandwidth_uv, self.merge_sd, centres, centre_bins,
+                                              weights)
+                marks, bins, weights = centres[:m], centre_bins[:m], weights[:m]
+            kept_marks.append(marks)
+            kept_bins.append(bins)
+            kept_weights.append(weights)
+        self.group_start_ = np.concatenate([[0], np.cumsum([len(b) for b in kept_bins])]).astype(np.int64)
         self.enc_marks_ = np.zeros((int(self.group_start_[-1]), width), np.float32)
         self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int64)
+        self.enc_weights_ = np.zeros(int(self.group_start_[-1]))
         # Buckets of channel 0, cutoff_sd kernel widths wide, sorted on channel 1 within (the kernel's index).
         bucket_w = self.cutoff_sd * self.bandwidth_uv
         self.group_min0_uv_ = np.zeros(self.n_groups)
         counts, group_bucket = [], [0]
         for g in range(self.n_groups):
-            marks = self._marks[g]
+            marks = kept_marks[g]
             min0 = float(marks[:, 0].min()) if len(marks) else 0.0
             bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / bucket_w).astype(np.int64)
             order = np.lexsort((marks[:, 1 if self._channels[g] > 1 else 0], bucket))
             lo, hi = self.group_start_[g], self.group_start_[g + 1]
             self.enc_marks_[lo:hi, : self._channels[g]] = marks[order]
-            self.enc_bins_[lo:hi] = self._bins[g][order]
+            self.enc_bins_[lo:hi] = kept_bins[g][order]
+            self.enc_weights_[lo:hi] = kept_weights[g][order]
             self.group_min0_uv_[g] = min0
             counts.append(np.bincount(bucket, minlength=1))
             group_bucket.append(group_bucket[-1] + counts[-1].size)
@@ -345,8 +368,8 @@ class MarkModel:
         occ_visited = np.where(usable, occupancy_s, 0.0)
         with np.errstate(invalid="ignore", divide="ignore"):
             self.info_bits_per_spike_ = np.atleast_1d(skaggs_information(ground, occ_visited)[0])
-        logger.info("fitted marks of %d groups (%d spikes kept) on %d bins",
-                    self.n_groups, int(self.group_start_[-1]), int(usable.sum()))
+        logger.info("fitted marks of %d groups (%d spikes kept, %d kernels) on %d bins",
+                    self.n_groups, sum(self._kept), int(self.group_start_[-1]), int(usable.sum()))
         return self
 
     # -- decoding ------------------------------------------------------------
@@ -382,7 +405,7 @@ class MarkModel:
                   else _mark_kernels.mark_log_intensity_sum_numpy)
         start, targets, weights = self.spread_
         return kernel(rows, marks_uv, self.group_start_, self.group_channels_, self.enc_marks_, self.enc_bins_,
-                      self.bucket_start_, self.group_bucket_, self.group_min0_uv_, 1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
+                      self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, 1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
                       self.bin_scale_,
                       self.group_scale_, self.group_log_floor_, self.valid_mask_, scratch[0], scratch[1], out)
 
@@ -403,7 +426,7 @@ class MarkModel:
     def _settings(self) -> dict[str, Any]:
         return {"bandwidth_uv": self.bandwidth_uv, "smooth_cm": self.smooth_cm, "min_speed_cm_s": self.min_speed_cm_s,
                 "max_spikes_per_group": self.max_spikes_per_group, "cutoff_sd": self.cutoff_sd,
-                "rate_floor_hz": self.rate_floor_hz, "seed": self.seed}
+                "rate_floor_hz": self.rate_floor_hz, "seed": self.seed, "merge_sd": self.merge_sd}
 
     def save(self, path: str | os.PathLike) -> None:
         """Write the learned spikes (not the fit: :meth:`fit` rebuilds it) to one ``.npz`` file, atomically."""

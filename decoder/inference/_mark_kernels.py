@@ -58,8 +58,8 @@ def _first_at_least(keys, lo, hi, value):
 
 @numba.njit(cache=True)
 def mark_log_intensity_sum(
-    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, bucket_start, group_bucket, group_min0_uv,
-    inv_bandwidth_uv, cutoff_sd,
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
+    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
     weights, lists, out,
 ):
@@ -80,6 +80,8 @@ def mark_log_intensity_sum(
         on channel 1 (channel 0 for a one-channel group) within each bucket.
     enc_bins : ndarray, shape (n_enc,), int64
         Position bin of each encoding spike.
+    enc_weights : ndarray, shape (n_enc,), float64
+        Spikes each encoding mark stands for (1, or more after :func:`merge_marks`).
     bucket_start : ndarray, shape (n_buckets + 1,), int64
         Bucket ``u`` holds encoding spikes ``bucket_start[u]:bucket_start[u + 1]``.
     group_bucket : ndarray, shape (n_groups + 1,), int64
@@ -166,7 +168,7 @@ def mark_log_intensity_sum(
                         is_source[b] = 1
                         sources[n_sources] = b
                         n_sources += 1
-                    hist[b] += math.exp(-0.5 * d2)
+                    hist[b] += enc_weights[i] * math.exp(-0.5 * d2)
                 i += 1
         scale = group_scale[g]
         log_floor = group_log_floor[g]
@@ -279,8 +281,8 @@ def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, 
 
 
 def mark_log_intensity_sum_numpy(
-    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, bucket_start, group_bucket, group_min0_uv,
-    inv_bandwidth_uv, cutoff_sd,
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
+    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
     weights, lists, out,
 ):
@@ -303,9 +305,94 @@ def mark_log_intensity_sum_numpy(
         near = np.all(z * z <= cutoff_sd * cutoff_sd, axis=1)
         weighed += int(near.sum())
         d2 = (z[near] ** 2).sum(axis=1)
-        hist = np.bincount(enc_bins[group_start[g]:group_start[g + 1]][near], weights=np.exp(-0.5 * d2),
+        own = slice(group_start[g], group_start[g + 1])
+        hist = np.bincount(enc_bins[own][near], weights=enc_weights[own][near] * np.exp(-0.5 * d2),
                            minlength=n_bins) * group_scale[g]
         lam = np.bincount(spread_bins, weights=hist[source_of] * spread_weights, minlength=n_bins) * bin_scale
         with np.errstate(divide="ignore"):
             out += np.where(valid, np.maximum(np.log(lam), group_log_floor[g]), 0.0)
     return weighed
+
+
+@numba.njit(cache=True)
+def merge_marks(marks, bins, inv_bandwidth_uv, merge_sd, centres, centre_bins, centre_weights):
+    """Kernel density compression of one group's encoding marks (Sodkomkham et al. 2016).
+
+    In bin order, each mark joins the first component of its own position
+    bin within ``merge_sd`` kernel s.d. of it (its centre moves to the
+    weighted mean) or starts a new one; the density becomes a weighted sum
+    of far fewer kernels, changed by at most ~``merge_sd**2 / 2`` of a kernel
+    width where marks merged.
+
+    Parameters
+    ----------
+    marks : ndarray, shape (n, c), float32
+        Marks in uV, ordered by ``bins``.
+    bins : ndarray, shape (n,), int64
+        Position bin of each mark, non-decreasing.
+    inv_bandwidth_uv, merge_sd : float
+    centres, centre_bins, centre_weights : ndarray, shapes (n, c), (n,), (n,); float32, int64, float64
+        Receive the components (the first ``m``).
+
+    Returns
+    -------
+    int
+        ``m``, the number of components.
+
+    References
+    ----------
+    Sodkomkham D, Ciliberti D, Wilson MA, Fukui K, Moriyama K, Numao M,
+    Kloosterman F (2016). Kernel density compression for real-time Bayesian
+    encoding/decoding of unsorted hippocampal spikes. Knowl-Based Syst
+    94:1-12.
+    """
+    n, c = marks.shape
+    limit = merge_sd * merge_sd
+    m = 0
+    first_of_bin = 0
+    for p in range(n):
+        if p == 0 or bins[p] != bins[p - 1]:
+            first_of_bin = m
+        joined = False
+        for q in range(first_of_bin, m):
+            d2 = 0.0
+            for k in range(c):
+                z = (np.float64(marks[p, k]) - np.float64(centres[q, k])) * inv_bandwidth_uv
+                d2 += z * z
+            if d2 <= limit:
+                w = centre_weights[q]
+                for k in range(c):
+                    centres[q, k] = (centres[q, k] * w + marks[p, k]) / (w + 1.0)
+                centre_weights[q] = w + 1.0
+                joined = True
+                break
+        if not joined:
+            for k in range(c):
+                centres[m, k] = marks[p, k]
+            centre_bins[m] = bins[p]
+            centre_weights[m] = 1.0
+            m += 1
+    return m
+
+
+def merge_marks_numpy(marks, bins, inv_bandwidth_uv, merge_sd, centres, centre_bins, centre_weights):
+    """Numpy twin of :func:`merge_marks` (the same greedy pass, each candidate test vectorised)."""
+    m = 0
+    first_of_bin = 0
+    for p in range(marks.shape[0]):
+        if p == 0 or bins[p] != bins[p - 1]:
+            first_of_bin = m
+        if m > first_of_bin:
+            z = (marks[p].astype(np.float64) - centres[first_of_bin:m].astype(np.float64)) * inv_bandwidth_uv
+            close = np.flatnonzero((z * z).sum(axis=1) <= merge_sd * merge_sd)
+            if close.size:
+                q = first_of_bin + close[0]
+                w = centre_weights[q]
+                centres[q] = (centres[q].astype(np.float64) * w + marks[p].astype(np.float64)) / (w + 1.0)
+                centre_weights[q] = w + 1.0
+                continue
+        centres[m] = marks[p]
+        centre_bins[m] = bins[p]
+        centre_weights[m] = 1.0
+        m += 1
+    return m

@@ -63,7 +63,8 @@ class MarkStream:
                                   session.artefact_population_min_units)
         self._model_kwargs = dict(bandwidth_uv=settings.bandwidth_uv, smooth_cm=smooth_cm,
                                   min_speed_cm_s=min_speed_cm_s, max_spikes_per_group=settings.max_spikes_per_group,
-                                  cutoff_sd=settings.cutoff_sd, rate_floor_hz=rate_floor_hz, seed=settings.seed)
+                                  cutoff_sd=settings.cutoff_sd, rate_floor_hz=rate_floor_hz, seed=settings.seed,
+                                  merge_sd=settings.merge_sd)
         self.learning: MarkModel | None = None
         self._pending: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self._n_pending = 0
