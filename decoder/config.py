@@ -348,6 +348,41 @@ class DecoderSettings:
 
 
 @dataclass(frozen=True)
+class MarkSettings:
+    """Clusterless decoding from waveform marks (see ``decoder.encoding.mark_model.MarkModel``)."""
+
+    #: Learn and decode the spike source's marked spikes (PROTOCOL.md, "Marked spikes").
+    enabled: bool = False
+    #: S.d. of the Gaussian kernel in mark space on every channel (uV).
+    bandwidth_uv: float = 20.0
+    #: Encoding spikes kept per electrode group (reservoir sampling); bounds memory and work.
+    max_spikes_per_group: int = 20_000
+    #: Encoding spikes further than this many kernel s.d. on any channel weigh 0.
+    cutoff_sd: float = 4.0
+    #: Seed of the reservoir sampling, so that a replay keeps the same spikes.
+    seed: int = 13
+    #: Kernel density compression at fit: a position bin's marks within this many kernel
+    #: s.d. of each other become one weighted kernel (0 keeps every mark); 0.5-1 cuts the
+    #: work per spike several-fold (Sodkomkham et al. 2016, Knowl-Based Syst 94:1).
+    merge_sd: float = 0.0
+    #: Per-group rate ceiling (Hz) over the session's artefact window; a tetrode's
+    #: multi-unit rate stays well below it (common practice), a noise burst does not.
+    artefact_ceiling_hz: float = 5000.0
+    #: Marked spikes decoded per step at most; beyond, the rest are counted and left out.
+    max_spikes_per_step: int = 2000
+
+    def __post_init__(self) -> None:
+        _positive("marks", bandwidth_uv=self.bandwidth_uv, cutoff_sd=self.cutoff_sd,
+                  artefact_ceiling_hz=self.artefact_ceiling_hz)
+        _positive_int("marks", "max_spikes_per_group", self.max_spikes_per_group)
+        _positive_int("marks", "max_spikes_per_step", self.max_spikes_per_step)
+        if not (isinstance(self.merge_sd, (int, float)) and 0 <= self.merge_sd <= 2):
+            raise ConfigError(f"[marks] merge_sd must be a number of kernel s.d. within 0..2, got {self.merge_sd!r}")
+        if type(self.enabled) is not bool or type(self.seed) is not int:
+            raise ConfigError("[marks] enabled must be true or false and seed an integer")
+
+
+@dataclass(frozen=True)
 class SourceSettings:
     """Which announced source is which stream."""
 
@@ -600,6 +635,7 @@ class ExperimentConfig:
     endpoints: EndpointSettings = field(default_factory=EndpointSettings)
     ttl: TtlSettings = field(default_factory=TtlSettings)
     ripples: RippleSettings = field(default_factory=RippleSettings)
+    marks: MarkSettings = field(default_factory=MarkSettings)
     #: The raw ``[simulation]`` table, read by the simulated rig.
     simulation: dict = field(default_factory=dict)
     #: The raw TOML text, stored beside a session log.
@@ -651,7 +687,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{where} is not valid TOML: {exc}") from None
     known = {"environment", "model", "decoder", "sources", "session", "safety", "zones",
-             "rules", "endpoints", "ttl", "simulation", "ripples"}
+             "rules", "endpoints", "ttl", "simulation", "ripples", "marks"}
     unknown = sorted(set(doc) - known)
     if unknown:
         raise ConfigError(f"{where} has unknown table(s) {unknown}; known tables are {sorted(known)}")
@@ -697,6 +733,7 @@ def parse_config(text: str, where: str = "<config>") -> ExperimentConfig:
         endpoints=_from_table(EndpointSettings, doc.get("endpoints"), "endpoints"),
         ttl=ttl,
         ripples=_from_table(RippleSettings, doc.get("ripples"), "ripples"),
+        marks=_from_table(MarkSettings, doc.get("marks"), "marks"),
         simulation=dict(doc.get("simulation", {})),
         source_text=text,
     )
@@ -803,6 +840,7 @@ _SETTING_TABLES: dict[str, set | None] = {
     "session": {f.name for f in dataclasses.fields(SessionSettings)},
     "safety": {f.name for f in dataclasses.fields(SafetyCaps)},
     "ripples": {f.name for f in dataclasses.fields(RippleSettings)},
+    "marks": {f.name for f in dataclasses.fields(MarkSettings)},
     # Geometry keys depend on the kind; build_environment names a wrong one.
     "environment": None,
 }

@@ -378,6 +378,75 @@ class SpikeBatch:
         object.__setattr__(self, "unit_id", u)
 
 
+# Marked spikes (clusterless decoding). Most channels of one electrode group
+# (a 64-site shank segment), and the largest mark taken (uV), far beyond any spike.
+MAX_MARK_CHANNELS = 64
+MAX_MARK_UV = 1e5
+
+
+@dataclass(frozen=True, slots=True)
+class MarkedSpikes:
+    """Threshold crossings with their waveform marks, in acquisition-time order, unsorted.
+
+    ``t_s`` (n,) float64 s, non-decreasing; ``group_id`` (n,) int64, the
+    electrode group of each spike; ``marks_uv`` (n, n_channels) float32, each
+    spike's mark on its group's channels (peak amplitudes, uV): one width per
+    batch (1 to :data:`MAX_MARK_CHANNELS`), finite, at most :data:`MAX_MARK_UV`
+    in magnitude. The pipeline checks the width against the group's announcement.
+    """
+
+    source: str
+    seq: int
+    t_s: np.ndarray
+    group_id: np.ndarray
+    marks_uv: np.ndarray
+
+    def __post_init__(self) -> None:
+        _check_source_seq(self)
+        t = self.t_s if _is_ready_vector(self.t_s, _F64) else _vector("t_s", self.t_s, np.float64)
+        g = self.group_id
+        g = _read_only(g.astype(_I64)) if type(g) is np.ndarray and g.dtype == _I32 else _vector("group_id", g, np.int64)
+        _same_length("group_id", g, t.size, "t_s")
+        m = self.marks_uv
+        if not (type(m) is np.ndarray and m.ndim == 2 and m.dtype.kind in "iuf" and m.shape[0] == t.size):
+            raise MessageError("bad_array", f"marks_uv must be an array of {t.size} spikes by channels, got {describe(m)}")
+        if m.size > MAX_BATCH or not 1 <= m.shape[1] <= MAX_MARK_CHANNELS:
+            raise MessageError("oversized" if m.size > MAX_BATCH else "bad_field", f"marks_uv holds {m.size} values of "
+                               f"{m.shape[1]} channels; at most {MAX_BATCH} values of 1 to {MAX_MARK_CHANNELS} channels")
+        with np.errstate(over="ignore"):  # beyond float32 becomes inf, refused just below
+            m = _read_only(np.array(m, dtype=np.float32, order="C"))
+        if m.size and not (np.isfinite(m).all() and np.abs(m).max() <= MAX_MARK_UV):
+            raise MessageError("bad_field", f"marks_uv holds a NaN, infinite or beyond {MAX_MARK_UV:g} uV amplitude")
+        if not finite_non_decreasing(t):
+            raise MessageError("bad_time", "t_s must hold finite spike times that do not decrease within a batch")
+        object.__setattr__(self, "t_s", t)
+        object.__setattr__(self, "group_id", g)
+        object.__setattr__(self, "marks_uv", m)
+
+
+@dataclass(frozen=True, slots=True)
+class GroupAnnounce:
+    """A spike source says which electrode groups it sends marked spikes of, and each one's channels.
+
+    ``group_ids`` (n_groups,) int64 without repeats; ``group_channels``
+    (n_groups,) int64, 1 to :data:`MAX_MARK_CHANNELS` each: the width of the group's marks.
+    """
+
+    source: str
+    seq: int
+    group_ids: np.ndarray
+    group_channels: np.ndarray
+
+    def __post_init__(self) -> None:
+        _check_source_seq(self)
+        groups, channels = _vector("group_ids", self.group_ids, np.int64), _vector("group_channels", self.group_channels, np.int64)
+        _same_length("group_channels", channels, groups.size, "group_ids")
+        if np.unique(groups).size != groups.size or (channels.size and not 1 <= channels.min() <= channels.max() <= MAX_MARK_CHANNELS):
+            raise MessageError("bad_field", f"group_ids must not repeat and group_channels be 1 to {MAX_MARK_CHANNELS} each")
+        object.__setattr__(self, "group_ids", groups)
+        object.__setattr__(self, "group_channels", channels)
+
+
 def stored_frame(t_s: Any, x_cm: Any, y_cm: Any, quality: Any = None) -> tuple[float, float, float, int]:
     """The rule for one tracker frame: what a frame (t, x, y, quality) is stored as.
 
@@ -627,4 +696,5 @@ class ControlCommand:
                 )
 
 
-InputMessage = SourceAnnounce | SpikeBatch | TrackerFrames | Heartbeat | SyncPulse | ControlCommand
+InputMessage = (SourceAnnounce | SpikeBatch | MarkedSpikes | GroupAnnounce | TrackerFrames | Heartbeat | SyncPulse
+                | ControlCommand)

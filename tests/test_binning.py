@@ -68,7 +68,7 @@ def test_window_is_half_open_on_the_left():
 
 def test_bad_window_settings_are_refused():
     with pytest.raises(ValueError, match="n_units"):
-        SpikeWindow(0, 0.2)
+        SpikeWindow(-1, 0.2)  # 0 is a window for a marks-only decoder
     with pytest.raises(ValueError, match="window_s"):
         SpikeWindow(3, 0.0)
 

@@ -418,7 +418,7 @@ def test_bad_counts_are_refused_with_a_clear_message_and_no_state_change(rows, c
 @pytest.mark.parametrize(
     ("change", "message"),
     [
-        (dict(rate_maps_hz=np.ones((2, 5))), r"shape \(n_units >= 1, 10\)"),
+        (dict(rate_maps_hz=np.ones((2, 5))), r"shape \(n_units, 10\)"),
         (dict(rate_maps_hz=-np.ones((2, 10))), "row 0 holds a negative"),
         (dict(valid_mask=np.zeros(10, bool)), "no bin is valid"),
         (dict(valid_mask=np.ones(9, bool)), r"shape \(10,\)"),

@@ -366,6 +366,7 @@ class _StepState:
         self.unit_rows = np.empty(n_units, np.int64)
         self.log_like = np.empty(n_bins)
         self.previous = np.zeros(n_bins + 4 + n_zones)
+        self.no_marks = np.zeros((0, n_bins))
         self.after = (np.empty(n_bins), np.empty(n_bins), np.zeros(grid_len))
         self.out_size = n_bins + 4 + n_zones
 
@@ -373,7 +374,7 @@ class _StepState:
         out = np.empty(self.out_size)
         result = kernel(
             rows, counts, *model, self.state, self.unit_counts, self.unit_rows, self.log_like,
-            self.previous, *self.after, out,
+            self.previous, self.no_marks, *self.after, out,
         )  # fmt: skip
         if result[0] < 0:
             self.previous = out

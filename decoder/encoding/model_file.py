@@ -45,7 +45,8 @@ def _json_default(value: Any) -> Any:
     raise TypeError(f"cannot write {type(value).__name__} into a model file header")
 
 
-def write_model_file(path: str | os.PathLike, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> Path:
+def write_model_file(path: str | os.PathLike, header: dict[str, Any], arrays: dict[str, np.ndarray],
+                     format_name: str = FORMAT_NAME) -> Path:
     """Write a header and arrays to one ``.npz`` file, replacing it atomically.
 
     Parameters
@@ -57,6 +58,8 @@ def write_model_file(path: str | os.PathLike, header: dict[str, Any], arrays: di
         plain numbers and lists); the format name and version go first.
     arrays : dict of str to ndarray
         None of them named ``"header"``.
+    format_name : str, default FORMAT_NAME
+        The kind of model in the file (another for the mark model).
 
     Returns
     -------
@@ -64,7 +67,7 @@ def write_model_file(path: str | os.PathLike, header: dict[str, Any], arrays: di
         Where the file now is.
     """
     path = Path(path)
-    header = {"format": FORMAT_NAME, "version": FORMAT_VERSION, **header}
+    header = {"format": format_name, "version": FORMAT_VERSION, **header}
     arrays = {"header": np.array(json.dumps(header, default=_json_default)), **arrays}
     # Written beside the target and renamed, so that a crash mid-write
     # never leaves a half file under the model's name.
@@ -79,7 +82,8 @@ def write_model_file(path: str | os.PathLike, header: dict[str, Any], arrays: di
 
 
 def read_model_file(
-    path: str | os.PathLike, build: Callable[[dict[str, Any], dict[str, np.ndarray]], _Model]
+    path: str | os.PathLike, build: Callable[[dict[str, Any], dict[str, np.ndarray]], _Model],
+    format_name: str = FORMAT_NAME,
 ) -> _Model:
     """Read a file written by :func:`write_model_file` and build the model from it.
 
@@ -90,6 +94,8 @@ def read_model_file(
         ``build(header, arrays)`` makes the model; a ValueError, KeyError or
         TypeError it raises means the parts do not fit together, and is
         reported as a damaged file.
+    format_name : str, default FORMAT_NAME
+        The kind of model the file must hold.
 
     Returns
     -------
@@ -113,7 +119,7 @@ def read_model_file(
                     f"{path} is an .npz archive but not a placeloop place-model file (no header)"
                 )
             header = json.loads(str(npz["header"][()]))
-            if not isinstance(header, dict) or header.get("format") != FORMAT_NAME:
+            if not isinstance(header, dict) or header.get("format") != format_name:
                 raise ModelFileError(f"{path} is an .npz archive but not a placeloop place-model file")
             if header.get("version") != FORMAT_VERSION:
                 raise ModelFileError(

@@ -939,6 +939,13 @@ def _update_log_likelihood(now, last, log_rate, expected_total, state, rows, wei
     last[:] = now
 
 
+@numba.njit(cache=True)
+def _add_mark_terms(log_like, mark_terms):
+    """``mark_terms[2] = log_like + mark_terms[0] - mark_terms[1]`` (the twin's order of operations, bit for bit)."""
+    for j in range(log_like.shape[0]):
+        mark_terms[2, j] = log_like[j] + mark_terms[0, j] - mark_terms[1, j]
+
+
 @numba.njit(cache=True, fastmath={"reassoc"})
 def _weigh(log_like, best, prior, valid, out):
     """The unnormalised posterior of :func:`posterior_from_log_numpy`; returns its sum."""
@@ -1022,6 +1029,7 @@ def decode_step(
     unit_rows,
     log_like,
     previous,
+    mark_terms,
     predicted,
     scratch,
     grid_scratch,
@@ -1094,6 +1102,13 @@ def decode_step(
     previous : ndarray, shape (>= n_bins,), float64
         The last posterior (first ``n_bins`` values), when ``state`` says so;
         read only.
+    mark_terms : ndarray, shape (3, n_bins) or (0, n_bins), float64, writable
+        The window's likelihood from waveform marks (clusterless decoding),
+        or no rows for none: row 0 the sum over the window's marked spikes
+        of ``log lambda(x, m)``, row 1 the marks' expected count (their
+        ground-process rate integrated over the window), both already
+        divided by the likelihood temperature; row 2 is overwritten with the
+        whole log-likelihood, ``log_like + row 0 - row 1``.
     predicted, scratch : ndarray, shape (n_bins,), float64
         Overwritten.
     grid_scratch : ndarray, shape ((2 * ny + len(kernel_1d) - 1) * (nx + len(kernel_1d) - 1),), float64
@@ -1136,7 +1151,7 @@ def decode_step(
     return _decode_counts(
         n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx,
         kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state,
-        unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+        unit_counts, unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
     )
 
 
@@ -1144,7 +1159,7 @@ def decode_step(
 def _decode_counts(
     n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
     transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
-    log_like, previous, predicted, scratch, grid_scratch, out,
+    log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
 ):
     """:func:`decode_step` from the window's counts per unit, already in ``unit_counts[1]`` (checked)."""
     n_bins = log_rate.shape[1]
@@ -1152,6 +1167,11 @@ def _decode_counts(
     _update_log_likelihood(
         now, unit_counts[0], log_rate, expected_total, state, unit_rows, unit_counts[2], log_like
     )
+    # The units' part stays in log_like, updated in place from window to
+    # window; the marks' part is new every window and is added beside it.
+    if mark_terms.shape[0] == 3:
+        _add_mark_terms(log_like, mark_terms)
+        log_like = mark_terms[2]
     best = _max_where(log_like, valid)
 
     # The prior is 0 outside grid rows y0..y1, and so is the posterior; the
@@ -1234,6 +1254,7 @@ def decode_step_numpy(
     unit_rows,
     log_like,
     previous,
+    mark_terms,
     predicted,
     scratch,
     grid_scratch,
@@ -1247,6 +1268,9 @@ def decode_step_numpy(
     unit_counts[0] = np.bincount(fired_rows, weights=fired_counts, minlength=n_units)
     state[STATE_UPDATES] = 0
     poisson_log_likelihood_numpy(fired_rows, fired_counts, log_rate, expected_total, log_like)
+    if mark_terms.shape[0] == 3:
+        mark_terms[2] = log_like + mark_terms[0] - mark_terms[1]
+        log_like = mark_terms[2]
     prior = uniform
     if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
         prior = predict_grid_numpy(previous[:n_bins], ny, nx, kernel_1d, mask_f, inv_norm, predicted, scratch)
@@ -1273,7 +1297,8 @@ def decode_step_numpy(
 def decode_window_step(
     held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
     uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
-    zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+    zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch,
+    out,
 ):
     """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
 
@@ -1317,7 +1342,7 @@ def decode_window_step(
     status, map_bin, n_hpd, n_spikes, peak = _decode_counts(
         float(hi - lo), log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny,
         nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
-        unit_rows, log_like, previous, predicted, scratch, grid_scratch, out,
+        unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
     )
     return status, map_bin, n_hpd, n_spikes, peak, lo
 

@@ -96,8 +96,8 @@ class SpikeWindow:
     """
 
     def __init__(self, n_units: int, window_s: float) -> None:
-        if n_units < 1:
-            raise ValueError(f"n_units must be >= 1, got {n_units}")
+        if n_units < 0:
+            raise ValueError(f"n_units must be >= 0, got {n_units}")
         if not window_s > 0:
             raise ValueError(f"window_s must be positive, got {window_s}")
         self.n_units = int(n_units)
@@ -170,7 +170,8 @@ class SpikeWindow:
         self._row[:held] = row
         self._start, self._stop = 0, held
 
-    def decode(self, decoder: BayesDecoder, t_end_s: float) -> DecodedStep:
+    def decode(self, decoder: BayesDecoder, t_end_s: float, mark_log_like: np.ndarray | None = None,
+               mark_expected: np.ndarray | None = None) -> DecodedStep:
         """Decode the window ``(t_end_s - window_s, t_end_s]`` and forget the spikes before it.
 
         For a caller whose windows only move forward, as decoding steps do:
@@ -182,11 +183,14 @@ class SpikeWindow:
             With the same ``window_s``; counts and decodes the window in one
             call (:meth:`~decoder.inference.decoding.BayesDecoder.decode_held`).
         t_end_s : float
+        mark_log_like, mark_expected : ndarray of float64, shape (n_bins,), optional
+            The window's terms from waveform marks, passed on to the decoder.
 
         Returns
         -------
         DecodedStep
         """
-        step, first = decoder.decode_held(self._t, self._row, self._start, self._stop, t_end_s)
+        step, first = decoder.decode_held(self._t, self._row, self._start, self._stop, t_end_s, mark_log_like,
+                                          mark_expected)
         self._start = first
         return step

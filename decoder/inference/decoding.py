@@ -277,6 +277,8 @@ class BayesDecoder:
     rate_maps_hz : ndarray of float64, shape (n_units, n_bins)
         Firing-rate map of each unit (Hz); must be finite and non-negative
         on the valid bins (other bins are ignored, NaN allowed there).
+        ``n_units`` may be 0 for a decoder that takes its whole likelihood
+        from waveform marks (``mark_log_like`` of :meth:`decode`).
     environment : Environment
     valid_mask : ndarray of bool, shape (n_bins,)
         Bins to decode over, normally the place model's visited bins; it is
@@ -368,9 +370,9 @@ class BayesDecoder:
         self.valid_mask.setflags(write=False)
 
         rates = np.asarray(rate_maps_hz)
-        if rates.ndim != 2 or rates.shape[1] != n_bins or rates.shape[0] == 0 or rates.dtype.kind not in "iuf":
+        if rates.ndim != 2 or rates.shape[1] != n_bins or rates.dtype.kind not in "iuf":
             raise ValueError(
-                f"rate_maps_hz must be a numeric array of shape (n_units >= 1, {n_bins}), "
+                f"rate_maps_hz must be a numeric array of shape (n_units, {n_bins}), "
                 f"got {rates.dtype} of shape {rates.shape}"
             )
         on_valid = rates[:, valid].astype(np.float64)
@@ -465,6 +467,10 @@ class BayesDecoder:
         # like every buffer handed out, so that the kernel compiles once.
         self._previous = np.zeros(self._out_size)
         self._previous.setflags(write=False)
+        # The marks' terms of a window (rows: log-likelihood, expected count,
+        # their sum with the units' part), or no rows for a window without.
+        self._mark_terms = np.zeros((3, n_bins))
+        self._no_marks = np.zeros((0, n_bins))
         self.underflow_resets = 0
 
     def reset(self) -> None:
@@ -519,7 +525,26 @@ class BayesDecoder:
             return ValueError(f"fired_counts holds {count:g} spikes for row {row}, more than {MAX_COUNT:g}")
         return ValueError(f"fired_counts must hold whole numbers of spikes, got {count:g} for row {row}")
 
-    def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray) -> DecodedStep:
+    def _marks(self, mark_log_like: np.ndarray | None, mark_expected: np.ndarray | None) -> np.ndarray:
+        """The kernel's ``mark_terms`` for a window: the marks' two terms, tempered, or no rows."""
+        if mark_log_like is None and mark_expected is None:
+            return self._no_marks
+        terms = self._mark_terms
+        for row, name, value in ((0, "mark_log_like", mark_log_like), (1, "mark_expected", mark_expected)):
+            arr = np.asarray(value, dtype=np.float64) if value is not None else None
+            if arr is None or arr.shape != (self.n_bins,):
+                raise ValueError(
+                    f"{name} must be a float array of shape ({self.n_bins},) given together with the other; "
+                    f"got {None if arr is None else arr.shape}"
+                )
+            if not np.all(np.isfinite(arr[self._valid])):
+                raise ValueError(f"{name} holds a NaN or infinite value on a valid bin; floor the intensities")
+            # Tempered like the units' terms, whose rates were divided at construction.
+            np.divide(arr, self.likelihood_temperature, out=terms[row])
+        return terms
+
+    def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray, mark_log_like: np.ndarray | None = None,
+               mark_expected: np.ndarray | None = None) -> DecodedStep:
         """Decode one window.
 
         Parameters
@@ -528,6 +553,15 @@ class BayesDecoder:
             Model rows (``0..n_units-1``) of the units that fired; repeats add up.
         fired_counts : ndarray of int or float, shape (k,)
             Their spike counts in the window (whole numbers, >= 0).
+        mark_log_like : ndarray of float64, shape (n_bins,), optional
+            The window's log-likelihood from other encoding models, added to
+            the units' Poisson terms before the prior: for waveform marks
+            the sum over the window's marked spikes of ``log lambda(x, m)``
+            (``decoder.encoding.mark_model``). Finite on the valid bins.
+        mark_expected : ndarray of float64, shape (n_bins,), optional
+            Its expected-count term, subtracted: the marks' ground-process
+            rate integrated over the window. Given with ``mark_log_like``.
+            Both are divided by ``likelihood_temperature`` like the units' terms.
 
         Returns
         -------
@@ -554,16 +588,18 @@ class BayesDecoder:
         replays are.
         """
         rows, counts = self._read_counts(fired_rows, fired_counts)
+        marks = self._marks(mark_log_like, mark_expected)
         buf = np.empty(self._out_size)
         status, map_bin, n_hpd, n_spikes, peak = self._k.decode_step(
-            rows, counts, *self._args_before, self._previous, *self._args_after, buf
+            rows, counts, *self._args_before, self._previous, marks, *self._args_after, buf
         )
         if status >= 0:
             raise self._bad_entry(rows, counts, status)
         return self._step(buf, status, map_bin, n_hpd, n_spikes, peak)
 
     def decode_held(self, held_t_s: np.ndarray, held_rows: np.ndarray, start: int, stop: int,
-                    t_end_s: float) -> tuple[DecodedStep, int]:
+                    t_end_s: float, mark_log_like: np.ndarray | None = None,
+                    mark_expected: np.ndarray | None = None) -> tuple[DecodedStep, int]:
         """Count and decode the window ``(t_end_s - window_s, t_end_s]`` of held spikes, in one call.
 
         The same step, bit for bit, as counting the window's spikes per row
@@ -579,6 +615,8 @@ class BayesDecoder:
         start, stop : int
             The held part of the arrays.
         t_end_s : float
+        mark_log_like, mark_expected : ndarray of float64, shape (n_bins,), optional
+            The window's terms from waveform marks, as in :meth:`decode`.
 
         Returns
         -------
@@ -593,10 +631,11 @@ class BayesDecoder:
             For a spike of the window whose row is out of range (the
             decoder's state is then unchanged).
         """
+        marks = self._marks(mark_log_like, mark_expected)
         buf = np.empty(self._out_size)
         status, map_bin, n_hpd, n_spikes, peak, first = self._k.decode_window_step(
             held_t_s, held_rows, start, stop, t_end_s, self.window_s,
-            *self._args_before, self._previous, *self._args_after, buf,
+            *self._args_before, self._previous, marks, *self._args_after, buf,
         )
         if status >= 0:
             raise ValueError(

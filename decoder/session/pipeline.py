@@ -29,11 +29,14 @@ from collections.abc import Callable
 import numpy as np
 
 from decoder.config import ExperimentConfig
+from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.place_model import PlaceModel
 from decoder.messages import (
     ControlCommand,
+    GroupAnnounce,
     Heartbeat,
     InputMessage,
+    MarkedSpikes,
     SourceAnnounce,
     SpikeBatch,
     SyncPulse,
@@ -43,6 +46,7 @@ from decoder.session.artefacts import SpikeSanity
 from decoder.session.clock import ClockMismatchError
 from decoder.session.digest import StepDigest
 from decoder.session.judge import StepJudge
+from decoder.session.marks import MarkStream
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
 from decoder.session.ripples import RippleOutput, RippleStream
@@ -105,6 +109,10 @@ class Pipeline:
         self.spike_sanity = SpikeSanity(s.artefact_ceiling_hz, s.artefact_window_s, s.artefact_population_fraction,
                                         s.artefact_population_window_s, s.artefact_population_min_units)
         self.watermark = SpikeWatermark(config.session.max_time_jump_s)
+        m = config.model
+        # Marked spikes are learned and decoded only where the config asks (clusterless decoding).
+        self.marks = (MarkStream(config.marks, s, self.environment, m.smooth_cm, m.min_speed_cm_s, m.rate_floor_hz,
+                                 self.counters) if config.marks.enabled else None)
         self._spike_source = config.sources.spikes
         self._has_truth = bool(config.sources.truth)
         self._position_sources = (config.sources.tracker, config.sources.truth)
@@ -133,6 +141,8 @@ class Pipeline:
         # The one dispatch table: each message type has one handler.
         self._handlers: dict[type, Callable[[InputMessage], list[Output]]] = {
             SpikeBatch: self._on_spikes,
+            MarkedSpikes: self._on_marks,
+            GroupAnnounce: self._on_groups,
             Heartbeat: self._on_heartbeat,
             TrackerFrames: self._on_frames,
             SyncPulse: self._on_sync,
@@ -198,12 +208,21 @@ class Pipeline:
                 msg = dataclasses.replace(msg, t_s=t[keep], unit_id=msg.unit_id[keep])
         return self._on_spike_time(t.item(-1) if t.size else -math.inf, msg)
 
+    def _on_marks(self, msg: MarkedSpikes) -> list[Output]:
+        if msg.source != self._spike_source:
+            return self._off_spike_source(msg)
+        newest = msg.t_s.item(-1) if msg.t_s.size else -math.inf
+        if self.marks is None:
+            # Marks the config does not decode still move the spike source's clock.
+            return self._on_spike_time(newest, None)
+        return self._on_spike_time(newest, None, self.marks.accept(msg))
+
     def _on_heartbeat(self, msg: Heartbeat) -> list[Output]:
         if msg.source != self._spike_source:
             return self._off_spike_source(msg)
         return self._on_spike_time(msg.t_s, None)
 
-    def _off_spike_source(self, msg: SpikeBatch | Heartbeat) -> list[Output]:
+    def _off_spike_source(self, msg: SpikeBatch | MarkedSpikes | Heartbeat) -> list[Output]:
         # A position source's heartbeat says only that it is alive; anything else is unknown here.
         if msg.source not in self._position_sources:
             self.counters["unknown_source"] += 1
@@ -241,8 +260,16 @@ class Pipeline:
         self.positions.announce(msg.source, msg.clock)
         return []
 
-    def _on_spike_time(self, newest_s: float, batch: SpikeBatch | None) -> list[Output]:
-        """The spike stream moved on to ``newest_s``: the plan, the spikes, then the steps that closed."""
+    def _on_groups(self, msg: GroupAnnounce) -> list[Output]:
+        if msg.source != self._spike_source:
+            self.counters["unknown_source"] += 1
+        elif self.marks is not None:
+            self.marks.announce(msg)
+        return []
+
+    def _on_spike_time(self, newest_s: float, batch: SpikeBatch | None,
+                       marks: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> list[Output]:
+        """The spike stream moved on to ``newest_s``: the plan, the spikes (or marked spikes), then the steps that closed."""
         previous = self.watermark.t_s
         moved = self.watermark.advance(newest_s)
         if moved == "refused":
@@ -270,6 +297,11 @@ class Pipeline:
                 self.model.update_spikes(batch.t_s, batch.unit_id)
             elif self.state == "decoding":
                 self.steps.take_spikes(batch.t_s, batch.unit_id)
+        if marks is not None:
+            if self.state == "learning":
+                self.marks.learn(marks, self.positions.tracked)
+            elif self.state == "decoding":
+                self.steps.take_marks(marks)
         if self.state == "decoding":
             steps = [self._decode_step(k, previous) for k in self.steps.due(now)]
             if not out:
@@ -356,6 +388,8 @@ class Pipeline:
         if self.model is None or self.model_is_loaded:
             self.model = PlaceModel(self.environment, unit_ids=unit_ids, **self.config.model.place_model_kwargs())
             self.model_is_loaded = False
+            if self.marks is not None:
+                self.marks.start_learning()
         self.state = "learning"
         # Learning time counts from the first data if no data has come yet.
         self._learn_started_s = t_s if math.isfinite(t_s) else None
@@ -366,8 +400,11 @@ class Pipeline:
         """Fit the model learnt so far and start decoding with it."""
         if self.model is None or self.model_is_loaded:
             return [Notice("refused", t_s, {"command": "fit", "why": "nothing has been learnt"})]
+        mark_model = None
         try:
             self.model.fit()
+            if self.marks is not None:
+                mark_model = self.marks.fit(self.model.occupancy_s_, self.model.visited_mask_, self.positions.tracked)
         except ValueError as exc:
             log.error("fitting failed: %s", exc)
             return [Notice("refused", t_s, {"command": "fit", "why": str(exc)})]
@@ -378,8 +415,10 @@ class Pipeline:
         readiness["zone_coverage"] = {
             name: float((mask & learned).sum() / mask.sum()) for name, mask in zip(self.zone_names, self._zone_masks)
         }
+        if mark_model is not None:
+            readiness["marks"] = mark_model.readiness()
         self.readiness = readiness
-        installed = self.install_model(self.model, t_s)
+        installed = self.install_model(self.model, t_s, mark_model=mark_model)
         if self.config.decoder.method == "filter":
             dec = self.steps.decoder
             readiness["filter"] = {
@@ -397,12 +436,16 @@ class Pipeline:
         notices.extend(installed)
         return notices
 
-    def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False) -> list[Notice]:
-        """Decode with ``model`` from the next step on (triggers stay disarmed)."""
+    def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False,
+                      mark_model: MarkModel | None = None) -> list[Notice]:
+        """Decode with ``model`` (and ``mark_model``'s marked spikes) from the next step on (triggers stay disarmed)."""
         d = self.config.decoder
         # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
         decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz)
-        steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters)
+        marks = self.marks if mark_model is not None else None
+        steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters, marks)
+        if self.marks is not None:
+            self.marks.install(mark_model, decoder.window_s)
         self.model = model
         self.model_is_loaded = loaded
         self.steps = steps
@@ -496,6 +539,7 @@ class Pipeline:
             "counters": dict(self.counters),
             "bad_reasons": dict(self.bad_reasons),
             "artefact_reasons": dict(self.spike_sanity.counts),
+            "mark_artefact_reasons": dict(self.marks.sanity.counts) if self.marks is not None else {},
             "sources": self.health.summary(),
             "triggers": self.bank.status(),
             "readiness": self.readiness,

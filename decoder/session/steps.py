@@ -19,6 +19,7 @@ from decoder.encoding.movement import default_uniform_weight
 from decoder.encoding.place_model import PlaceModel
 from decoder.inference.binning import SpikeWindow
 from decoder.inference.decoding import BayesDecoder, DecodedStep
+from decoder.session.marks import MarkStream
 from decoder.space.environments import Environment
 
 logger = logging.getLogger(__name__)
@@ -132,10 +133,12 @@ class DecodingSteps:
     counters : dict of str to int
         The session's counters: ``unknown_units``, ``late_spikes`` and
         ``steps_skipped`` are counted here.
+    marks : MarkStream, optional
+        The session's marked spikes, when a mark model decodes beside the units.
     """
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, schedule: StepSchedule,
-                 counters: dict[str, int]) -> None:
+                 counters: dict[str, int], marks: MarkStream | None = None) -> None:
         ids = np.asarray(unit_ids, np.int64)
         # Sorted for the compiled lookup; should a model name a unit twice, its last row takes the spikes.
         self._known_ids, last_in_reversed = np.unique(ids[::-1], return_index=True)
@@ -145,6 +148,7 @@ class DecodingSteps:
         self.counters = counters
         self.n_units = int(ids.size)
         self.window = SpikeWindow(self.n_units, decoder.window_s)
+        self.marks = marks
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
         """Hold a batch of spikes (``t_s`` sorted, shape (n,) each) for the steps still to close."""
@@ -155,6 +159,12 @@ class DecodingSteps:
             self.counters["unknown_units"] += n_unknown
         if n_late:
             self.counters["late_spikes"] += n_late
+
+    def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
+        """Hold a batch of checked marked spikes (times, groups, marks) for the steps still to close."""
+        if self.marks is not None:
+            next_k = self.schedule.next_k
+            self.marks.take(batch, self.schedule.step_end_s(next_k - 1) if next_k is not None else -math.inf)
 
     def due(self, watermark_s: float) -> list[int]:
         """The steps this watermark closes, at most ``MAX_STEPS_PER_MESSAGE`` (the newest)."""
@@ -169,9 +179,13 @@ class DecodingSteps:
     def decode(self, k: int) -> tuple[float, DecodedStep]:
         """Decode step ``k``: its end time (s) and the decoder's output."""
         t_s = self.schedule.step_end_s(k)
-        return t_s, self.window.decode(self.decoder, t_s)
+        if self.marks is None:
+            return t_s, self.window.decode(self.decoder, t_s)
+        return t_s, self.window.decode(self.decoder, t_s, *self.marks.terms(t_s))
 
     def restart(self) -> None:
         """Start afresh after the spike source restarted: no prior, no held spikes."""
         self.decoder.reset()
         self.window = SpikeWindow(self.n_units, self.window.window_s)
+        if self.marks is not None:
+            self.marks.restart()

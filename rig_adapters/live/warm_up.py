@@ -9,7 +9,8 @@ pipeline of its own makes every kernel ready (and cached for the next run),
 so ``placeloop run`` does it before it opens its sockets, and the sweep's
 fork server does it before it forks its workers. The kernels' argument
 types do not depend on the arena, the prior or the model's size, so this one
-session covers them all.
+session covers them all; its spike source sends sorted units and marked
+spikes both, so the clusterless kernels are ready too.
 """
 
 from __future__ import annotations
@@ -51,10 +52,16 @@ name = "warm"
 zone = "corner"
 min_mass = 0.5
 
+[marks]
+enabled = true
+
 [simulation]
 n_place_cells = 16
 n_grid_cells = 2
 n_nonspatial_cells = 2
+
+[simulation.marks]
+send = "both"
 """
 
 

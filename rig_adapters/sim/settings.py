@@ -18,6 +18,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from rig_adapters.sim.lfp import LfpSettings
+from rig_adapters.sim.marks import MarkSimulation
 
 
 @dataclass(frozen=True)
@@ -177,6 +178,11 @@ class SimulationSettings:
     #: Probability that a seen frame carries no heading (one of the two markers hidden), sent as NaN.
     heading_unknown_prob: float = 0.02
 
+    # -- waveform marks (rig_adapters.sim.marks) --
+    #: The ``[simulation.marks]`` table: tetrodes that send marked spikes
+    #: (:class:`rig_adapters.sim.marks.MarkSimulation`); empty for sorted spikes only.
+    marks: MarkSimulation | None = None
+
     _RANGES: ClassVar[tuple[str, ...]] = (
         "pause_duration_s", "end_pause_s", "place_field_fwhm_cm", "place_peak_hz", "grid_spacing_cm",
         "grid_peak_hz", "nonspatial_rate_hz", "dropout_duration_s", "sync_interval_s", "burst_spikes",
@@ -195,7 +201,10 @@ class SimulationSettings:
             if f.name == "lfp":
                 self._take_lfp(value)
                 continue
-            if f.name in self._FLAGS:
+            if f.name == "marks":
+                if not isinstance(value, MarkSimulation):
+                    object.__setattr__(self, "marks", MarkSimulation.from_dict(value))
+            elif f.name in self._FLAGS:
                 if not isinstance(value, bool):
                     raise ValueError(f"{f.name} must be true or false, got {value!r}")
             elif f.name in self._RANGES:

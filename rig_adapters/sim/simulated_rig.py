@@ -33,7 +33,7 @@ from pathlib import Path
 import zmq
 
 from decoder.config import is_loopback_endpoint, load_config
-from decoder.messages import SpikeBatch, TrackerFrames
+from decoder.messages import MarkedSpikes, SpikeBatch, TrackerFrames
 from rig_adapters.wire import protocol
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import TRACKER_SOURCE, SimulatedSession
@@ -202,7 +202,7 @@ def run_rig(
                         sent_all = False
                         break
                     messages += 1
-                    if isinstance(msg, SpikeBatch):
+                    if isinstance(msg, (SpikeBatch, MarkedSpikes)):
                         spikes += msg.t_s.size
                     elif isinstance(msg, TrackerFrames) and msg.source == TRACKER_SOURCE:
                         frames += msg.t_s.size

@@ -48,12 +48,15 @@ from typing import Any
 
 import numpy as np
 
-from decoder.messages import Heartbeat, InputMessage, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames
+from decoder.messages import (
+    GroupAnnounce, Heartbeat, InputMessage, MarkedSpikes, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames,
+)
 from decoder.signals.lfp_chunk import LfpChunk
 from decoder.space.environments import Environment, HeadingRing
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
 from rig_adapters.sim.heading import HeadTurning, draw_heading_cells, tracked_heading, true_heading
 from rig_adapters.sim.lfp import LfpSynth
+from rig_adapters.sim.marks import Tetrodes
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
@@ -125,6 +128,8 @@ class SimulatedSession:
             self._motion = trajectory_for(environment, settings, rng)
             self._truth = draw_cells(environment, settings, rng)
         self._trains = SpikeTrains(self._truth, settings, rng)
+        # Marks draw from their own generator: a session without them is unchanged.
+        self.tetrodes = Tetrodes(settings.marks, self._truth.unit_ids, seed) if settings.marks is not None else None
         self._drift = 1.0 + settings.tracker_drift_ppm * 1e-6
         self._seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, TRUTH_SOURCE: 0}
         self._announced = False
@@ -152,9 +157,17 @@ class SimulatedSession:
 
     def _announcements(self) -> tuple[InputMessage, ...]:
         s = self.settings
+        units = self._truth.unit_ids
+        if self.tetrodes is not None:
+            units = self.tetrodes.sorted_unit_ids if s.marks.send == "both" else np.zeros(0, np.int64)
+        out = [self._message(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=ACQUISITION_CLOCK,
+                             sample_rate_hz=s.acquisition_rate_hz, unit_ids=units)]
+        if self.tetrodes is not None:
+            groups = self.tetrodes.group_ids
+            out.append(self._message(GroupAnnounce, SPIKE_SOURCE, group_ids=groups,
+                                     group_channels=np.full(groups.size, s.marks.channels)))
         return (
-            self._message(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=ACQUISITION_CLOCK,
-                          sample_rate_hz=s.acquisition_rate_hz, unit_ids=self._truth.unit_ids),
+            *out,
             self._message(SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock=TRACKER_CLOCK,
                           sample_rate_hz=s.tracker_rate_hz),
             self._message(SourceAnnounce, TRUTH_SOURCE, kind="tracker", clock=ACQUISITION_CLOCK,
@@ -219,16 +232,16 @@ class SimulatedSession:
         ephys: list[tuple[float, InputMessage]] = []
         spike_samples, spike_units = self._trains.spikes(self._tick - 1, s0, s1, position)
         spike_t = spike_samples / fs
+        if self.tetrodes is not None:
+            spike_t, spike_units = self.tetrodes.with_multi_unit(spike_t, spike_units, t0, t1)
         pulse_ephys_t = math.floor(pulse_t * fs) / fs if pulse_t is not None else math.inf
         before = int(np.searchsorted(spike_t, pulse_ephys_t, side="left"))
         if before > 0:
-            msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=spike_t[:before], unit_id=spike_units[:before])
-            ephys.append((float(spike_t[0]), msg))
+            ephys.extend(self._spike_messages(spike_t[:before], spike_units[:before]))
         if pulse_t is not None:
             ephys.append((pulse_ephys_t, self._message(SyncPulse, SPIKE_SOURCE, t_s=pulse_ephys_t, pulse_id=pulse_id)))
         if before < spike_t.size:
-            msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=spike_t[before:], unit_id=spike_units[before:])
-            ephys.append((float(spike_t[before]), msg))
+            ephys.extend(self._spike_messages(spike_t[before:], spike_units[before:]))
         ephys.append((t1, self._message(Heartbeat, SPIKE_SOURCE, t_s=t1)))
 
         tracker: list[tuple[float, InputMessage]] = []
@@ -299,6 +312,21 @@ class SimulatedSession:
             msg = self._message(LfpChunk, LFP_SOURCE, t_s=float(t[i]), rate_hz=s.rate_hz, samples=x[i:i + step],
                                 uv_per_count=scale)
             out.append(((n0 + min(i + step, t.size)) / s.rate_hz, msg))
+        return out
+
+    def _spike_messages(self, t: np.ndarray, units: np.ndarray) -> list[tuple[float, InputMessage]]:
+        """A non-empty run of spikes as the spike source sends it: a spike batch, marked spikes, or both."""
+        if self.tetrodes is None:
+            return [(float(t[0]), self._message(SpikeBatch, SPIKE_SOURCE, t_s=t, unit_id=units))]
+        out = []
+        if self.settings.marks.send == "both":
+            sorted_ = np.isin(units, self.tetrodes.sorted_unit_ids)
+            if sorted_.any():
+                msg = self._message(SpikeBatch, SPIKE_SOURCE, t_s=t[sorted_], unit_id=units[sorted_])
+                out.append((float(t[0]), msg))
+        t_m, groups, marks, _ = self.tetrodes.marks(t, units)
+        if t_m.size:
+            out.append((float(t[0]), self._message(MarkedSpikes, SPIKE_SOURCE, t_s=t_m, group_id=groups, marks_uv=marks)))
         return out
 
     def _next_dropout(self, after_s: float) -> tuple[float, float]:

@@ -21,9 +21,12 @@ import numpy as np
 
 from decoder.messages import (
     MAX_BATCH,
+    MAX_MARK_CHANNELS,
     ControlCommand,
+    GroupAnnounce,
     Heartbeat,
     InputMessage,
+    MarkedSpikes,
     MessageError,
     SourceAnnounce,
     SpikeBatch,
@@ -44,8 +47,7 @@ from rig_adapters.wire.framing import (
 )
 
 #: Input kinds, rig -> placeloop.
-INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control",
-               "lfp")
+INPUT_KINDS = ("announce", "spikes", "frames", "heartbeat", "sync", "control", "lfp", "marks", "groups")
 
 #: The prefix of a rig's own keys, which every reader ignores (PROTOCOL.md, section 2).
 EXTENSION_PREFIX = "x_"
@@ -73,9 +75,12 @@ INPUT_KEYS = {
     "sync": _keys(("t", "pulse")),
     "control": _keys(("cmd",), ("args",)),
     "lfp": _keys(("t", "rate_hz", "ch", "fmt", "s"), ("uv",)),
+    "marks": _keys(("t", "g", "ch", "m")),
+    "groups": _keys(("g", "ch")),
 }
 
 _F64 = np.dtype("<f8")
+_F32 = np.dtype("<f4")
 _U8 = np.dtype("<u1")
 _INT_BY_WIDTH = {4: np.dtype("<i4"), 8: np.dtype("<i8")}
 _F64_THREE = struct.Struct("<3d")
@@ -203,6 +208,51 @@ def _encode_lfp(msg: LfpChunk) -> dict:
     }
 
 
+# -- marked spikes (clusterless decoding; PROTOCOL.md, "Marked spikes") --------
+
+
+def _read_marks(m: dict) -> MarkedSpikes:
+    width = m["ch"]
+    if type(width) is not int or not 1 <= width <= MAX_MARK_CHANNELS:
+        raise ProtocolError("bad_field", f"'ch' (channels per mark) must be an integer from 1 to {MAX_MARK_CHANNELS}, "
+                                         f"got {describe(width)}")
+    flat = _array(m, "m", _F32)
+    if type(flat) is list:
+        if not all(type(v) in (int, float) for v in flat):
+            raise ProtocolError("bad_array", f"'m' must be bin of float32 or a flat list of numbers, got {describe(flat)}")
+        try:
+            flat = np.array(flat, dtype=np.float64)
+        except OverflowError:
+            raise ProtocolError("bad_field", "'m' holds a number beyond the range of a float64") from None
+    if flat.size % width:
+        raise ProtocolError("length_mismatch", f"'m' holds {flat.size} values, not a whole number of {width}-channel marks")
+    return MarkedSpikes(m["src"], m["seq"], _array(m, "t", _F64), _array(m, "g", _INT_BY_WIDTH[m.get("iw", 4)]),
+                        flat.reshape(-1, width))
+
+
+def _read_groups(m: dict) -> GroupAnnounce:
+    width = _INT_BY_WIDTH[m.get("iw", 4)]
+    return GroupAnnounce(m["src"], m["seq"], _array(m, "g", width), _array(m, "ch", width))
+
+
+def _encode_groups(msg: GroupAnnounce) -> dict:
+    groups, width = _int_bin(msg.group_ids)
+    # Channel counts are small; they share the ids' width, which the one 'iw' key declares.
+    out = _head("groups", msg) | {"g": groups, "ch": np.ascontiguousarray(msg.group_channels, _INT_BY_WIDTH[width]).tobytes()}
+    if width != 4:
+        out["iw"] = width
+    return out
+
+
+def _encode_marks(msg: MarkedSpikes) -> dict:
+    groups, width = _int_bin(msg.group_id)
+    out = _head("marks", msg) | {"t": _f64_bin(msg.t_s), "g": groups, "ch": int(msg.marks_uv.shape[1]),
+                                 "m": np.ascontiguousarray(msg.marks_uv, dtype=_F32).tobytes()}
+    if width != 4:
+        out["iw"] = width
+    return out
+
+
 _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "announce": _read_announce,
     "spikes": _read_spikes,
@@ -211,6 +261,8 @@ _INPUT_READERS: dict[str, Callable[[dict], InputMessage]] = {
     "sync": _read_sync,
     "control": _read_control,
     "lfp": _read_lfp,
+    "marks": _read_marks,
+    "groups": _read_groups,
 }
 
 
@@ -335,6 +387,8 @@ _INPUT_ENCODERS: dict[type, Callable[[Any], dict]] = {
     SyncPulse: _encode_sync,
     ControlCommand: _encode_control,
     LfpChunk: _encode_lfp,
+    MarkedSpikes: _encode_marks,
+    GroupAnnounce: _encode_groups,
 }
 
 

@@ -1,0 +1,398 @@
+"""Numerical kernels of clusterless decoding (waveform marks), each with a plain numpy twin.
+
+The marked point-process model (Kloosterman et al. 2014; Deng et al. 2015)
+gives each spike with mark ``m`` (its amplitudes on the channels of its
+electrode group) and each position ``x`` the intensity
+
+    lambda(x, m) = sum_i K_m(m - m_i) G(x, x_i) / occ(x)
+
+over the group's encoding spikes ``i`` (marks ``m_i`` at positions
+``x_i``), with ``K_m`` a Gaussian product kernel in mark space, ``G`` the
+Gaussian smoothing over position and ``occ`` the smoothed occupancy in
+seconds; a window of marked spikes ``k`` then has the log-likelihood
+``sum_k log lambda(x, m_k) - window_s * sum_g Lambda_g(x)``, where
+``Lambda_g`` is the group's ground-process rate. The kernels here give the
+first sum; ``decoder.encoding.mark_model`` builds their arrays at fit time.
+
+How the work stays bounded: each group's encoding spikes are kept in
+buckets of their first channel, ``cutoff_sd`` kernel widths wide, and
+sorted on their second channel within a bucket, so only those within
+``cutoff_sd`` widths on both are visited (at most three buckets, and a
+binary search in each), and of those only the ones within
+``cutoff_sd`` widths on every channel are weighed (the Gaussian has fallen
+below ``exp(-cutoff_sd**2 / 2)`` of its peak beyond); the weights are summed
+per position bin, spread to the neighbouring bins by the sparse smoothing
+operator, and only the bins so reached get a logarithm: elsewhere the
+intensity is the floor. Marks are float32 (amplitudes in uV carry far fewer
+than 7 significant digits); sums are float64.
+
+References
+----------
+Kloosterman F, Layton SP, Chen Z, Wilson MA (2014). Bayesian decoding using
+unsorted spikes in the rat hippocampus. J Neurophysiol 111:217-227.
+
+Deng X, Liu DF, Kay K, Frank LM, Eden UT (2015). Clusterless decoding of
+position from multiunit activity using a marked point process filter.
+Neural Comput 27:1438-1460.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+
+@numba.njit(cache=True)
+def _first_at_least(keys, lo, hi, value):
+    """First index in ``lo..hi`` with ``keys[i] >= value`` (``hi`` if none); ``keys`` ascending there."""
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if keys[mid] < value:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@numba.njit(cache=True)
+def mark_log_intensity_sum(
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
+    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
+    spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
+    weights, lists, out,
+):
+    """Sum over a window's marked spikes of ``log max(lambda(x, m), floor)`` at every bin, into ``out``.
+
+    Parameters
+    ----------
+    spike_groups : ndarray, shape (k,), int64
+        Model row of each spike's group (``0..n_groups-1``).
+    spike_marks : ndarray, shape (k, n_channels_max), float32
+        Marks in uV, the group's channels first (the rest ignored).
+    group_start : ndarray, shape (n_groups + 1,), int64
+        Group ``g`` owns encoding spikes ``group_start[g]:group_start[g + 1]``.
+    group_channels : ndarray, shape (n_groups,), int64
+        Channels of each group.
+    enc_marks : ndarray, shape (n_enc, n_channels_max), float32
+        Encoding marks in uV, in buckets of channel 0 (below) and ascending
+        on channel 1 (channel 0 for a one-channel group) within each bucket.
+    enc_bins : ndarray, shape (n_enc,), int64
+        Position bin of each encoding spike.
+    enc_weights : ndarray, shape (n_enc,), float64
+        Spikes each encoding mark stands for (1, or more after :func:`merge_marks`).
+    bucket_start : ndarray, shape (n_buckets + 1,), int64
+        Bucket ``u`` holds encoding spikes ``bucket_start[u]:bucket_start[u + 1]``.
+    group_bucket : ndarray, shape (n_groups + 1,), int64
+        Group ``g`` owns buckets ``group_bucket[g]:group_bucket[g + 1]``; its
+        bucket ``u`` holds channel 0 in ``[min0 + u w, min0 + (u + 1) w)`` with
+        ``w = cutoff_sd`` kernel s.d.
+    group_min0_uv : ndarray, shape (n_groups,), float64
+        The least channel-0 mark of each group.
+    inv_bandwidth_uv : float
+        1 / the mark kernel's s.d. (uV), the same on every channel.
+    cutoff_sd : float
+        Encoding spikes further than this many s.d. on any channel weigh 0.
+    spread_start, spread_bins, spread_weights : ndarray, int64, int64, float64
+        The position smoothing by source bin: bin ``b`` spreads to
+        ``spread_bins[spread_start[b]:spread_start[b + 1]]`` with those weights.
+    grid_nx : int
+        Columns of a grid arena (bins row-major), or 0.
+    kernel_1d : ndarray, shape (2 r + 1,), float64
+        On a grid arena (``grid_nx > 0``), the smoothing is this kernel along
+        each axis in turn, zero beyond the grid: the same operator as the
+        spread arrays (which then go unused), applied by convolution over
+        the rows and columns the spike's source bins reach, which costs less
+        than spreading bin by bin once a spike weighs more than a few
+        hundred bins.
+    bin_scale : ndarray, shape (n_bins,), float64
+        The mark kernel's normalisation over the smoothed occupancy (s) of each bin.
+    group_scale : ndarray, shape (n_groups,), float64
+        Spikes placed over spikes kept, per group (reservoir sampling).
+    group_log_floor : ndarray, shape (n_groups,), float64
+        Natural log of the least intensity of a spike of each group.
+    valid : ndarray, shape (n_bins,), bool
+    weights : ndarray, shape (4, n_bins), float64
+        Scratch, rows 0 and 1 all 0 on entry and on return.
+    lists : ndarray, shape (4, n_bins), int64
+        Scratch; rows 2 and 3 all 0 on entry and on return.
+    out : ndarray, shape (n_bins,), float64
+        Receives the sum (overwritten).
+
+    Returns
+    -------
+    int
+        Encoding spikes weighed (the work done).
+    """
+    n_bins = out.shape[0]
+    k = spike_groups.shape[0]
+    floor_sum = 0.0
+    for s in range(k):
+        floor_sum += group_log_floor[spike_groups[s]]
+    for j in range(n_bins):
+        out[j] = floor_sum if valid[j] else 0.0
+    width = cutoff_sd / inv_bandwidth_uv
+    cut2 = cutoff_sd * cutoff_sd
+    hist, acc = weights[0], weights[1]
+    sources, targets, is_source, is_target = lists[0], lists[1], lists[2], lists[3]
+    weighed = 0
+    multiplied = 0
+    if grid_nx > 0:
+        weights[3, :] = 1.0
+    for s in range(k):
+        g = spike_groups[s]
+        nch = group_channels[g]
+        key = 1 if nch > 1 else 0
+        # Only the buckets of channel 0 within reach, and in each the run within reach on the key channel.
+        first, n_buckets = group_bucket[g], group_bucket[g + 1] - group_bucket[g]
+        u_lo = max(0, int(math.floor((spike_marks[s, 0] - width - group_min0_uv[g]) / width)))
+        u_hi = min(n_buckets - 1, int(math.floor((spike_marks[s, 0] + width - group_min0_uv[g]) / width)))
+        low, top = spike_marks[s, key] - width, spike_marks[s, key] + width
+        n_sources = 0
+        for u in range(u_lo, u_hi + 1):
+            hi = bucket_start[first + u + 1]
+            i = _first_at_least(enc_marks[:, key], bucket_start[first + u], hi, low)
+            while i < hi and enc_marks[i, key] <= top:
+                d2 = 0.0
+                for c in range(nch):
+                    z = (enc_marks[i, c] - spike_marks[s, c]) * inv_bandwidth_uv
+                    d2 += z * z
+                    if z * z > cut2:
+                        d2 = -1.0
+                        break
+                if d2 >= 0.0:
+                    weighed += 1
+                    b = enc_bins[i]
+                    if is_source[b] == 0:
+                        is_source[b] = 1
+                        sources[n_sources] = b
+                        n_sources += 1
+                    hist[b] += enc_weights[i] * math.exp(-0.5 * d2)
+                i += 1
+        scale = group_scale[g]
+        log_floor = group_log_floor[g]
+        if grid_nx > 0:
+            if n_sources:
+                _convolve_and_multiply(sources, n_sources, scale, grid_nx, kernel_1d, bin_scale, log_floor, valid,
+                                       hist, acc, weights[2], weights[3], is_source)
+                multiplied += 1
+                if multiplied == _SPIKES_PER_LOG:
+                    _flush_products(weights[3], valid, out)
+                    multiplied = 0
+            continue
+        n_targets = 0
+        for q in range(n_sources):
+            b = sources[q]
+            w = hist[b] * scale
+            hist[b] = 0.0
+            is_source[b] = 0
+            for e in range(spread_start[b], spread_start[b + 1]):
+                t = spread_bins[e]
+                if is_target[t] == 0:
+                    is_target[t] = 1
+                    targets[n_targets] = t
+                    n_targets += 1
+                acc[t] += w * spread_weights[e]
+        for q in range(n_targets):
+            t = targets[q]
+            if valid[t]:
+                lam = acc[t] * bin_scale[t]
+                if lam > 0.0:
+                    v = math.log(lam)
+                    if v > log_floor:
+                        out[t] += v - log_floor
+            acc[t] = 0.0
+            is_target[t] = 0
+    if multiplied:
+        _flush_products(weights[3], valid, out)
+    return weighed
+
+
+#: On the grid path, the intensity ratios of this many spikes are multiplied
+#: before one logarithm per bin: each ratio lies in [1, lambda_max / floor],
+#: at most ~1e12 for any realistic model, so 16 of them stay far below the
+#: largest double (1.8e308), and the logarithms cost a sixteenth.
+_SPIKES_PER_LOG = 16
+
+
+@numba.njit(cache=True)
+def _flush_products(product, valid, out):
+    """``out += log(product)`` on the valid bins, and ``product`` back to 1."""
+    for j in range(out.shape[0]):
+        if valid[j]:
+            out[j] += math.log(product[j])
+        product[j] = 1.0
+
+
+@numba.njit(cache=True, fastmath={"contract", "reassoc"})
+def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, log_floor, valid, hist, pad, tmp,
+                           product, is_source):
+    """The grid path of :func:`mark_log_intensity_sum` for one spike.
+
+    Smooths the spike's source weights over the rows and columns they reach
+    (each pass a sum of shifted rows, which the compiler vectorises), then
+    multiplies ``max(lambda / floor, 1)`` into ``product``; hist and the
+    flags go back to 0.
+    """
+    n_bins = product.shape[0]
+    ny = n_bins // nx
+    r = kernel_1d.shape[0] // 2
+    floor = math.exp(log_floor)
+    y0, y1, x0, x1 = ny, -1, nx, -1
+    for q in range(n_sources):
+        b = sources[q]
+        y, x = b // nx, b % nx
+        y0, y1, x0, x1 = min(y0, y), max(y1, y), min(x0, x), max(x1, x)
+    xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
+    ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
+    width = xb - xa + 1
+    # Along x, row by row: pad holds the row's sources with r zeros each side.
+    for y in range(y0, y1 + 1):
+        row = y * nx
+        for i in range(width + 2 * r):
+            x = xa + i - r
+            pad[i] = hist[row + x] if x0 <= x <= x1 else 0.0
+        for i in range(width):
+            tmp[row + xa + i] = 0.0
+        for k in range(2 * r + 1):
+            w = kernel_1d[k]
+            for i in range(width):
+                tmp[row + xa + i] += w * pad[i + k]
+    # Along y, into pad (one output row at a time), then the ratio into the product.
+    for y in range(ya, yb + 1):
+        for i in range(width):
+            pad[i] = 0.0
+        for k in range(max(-r, y0 - y), min(r, y1 - y) + 1):
+            w = kernel_1d[k + r]
+            src = (y + k) * nx + xa
+            for i in range(width):
+                pad[i] += w * tmp[src + i]
+        row = y * nx + xa
+        for i in range(width):
+            lam = pad[i] * scale * bin_scale[row + i]
+            if lam > floor:
+                product[row + i] *= lam / floor
+    for i in range(width + 2 * r):
+        pad[i] = 0.0
+    for q in range(n_sources):
+        hist[sources[q]] = 0.0
+        is_source[sources[q]] = 0
+
+
+def mark_log_intensity_sum_numpy(
+    spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
+    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
+    spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
+    weights, lists, out,
+):
+    """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
+
+    The smoothing is always the spread arrays (the same operator as the
+    grid's kernel); the buckets, ``grid_nx``, ``kernel_1d``, ``weights`` and
+    ``lists`` are not needed.
+    """
+    n_bins = out.shape[0]
+    lengths = np.diff(spread_start)
+    source_of = np.repeat(np.arange(n_bins), lengths)
+    out[:] = 0.0
+    weighed = 0
+    for s in range(spike_groups.shape[0]):
+        g = spike_groups[s]
+        nch = group_channels[g]
+        enc = enc_marks[group_start[g]:group_start[g + 1], :nch]
+        z = (enc - spike_marks[s, :nch]).astype(np.float64) * inv_bandwidth_uv
+        near = np.all(z * z <= cutoff_sd * cutoff_sd, axis=1)
+        weighed += int(near.sum())
+        d2 = (z[near] ** 2).sum(axis=1)
+        own = slice(group_start[g], group_start[g + 1])
+        hist = np.bincount(enc_bins[own][near], weights=enc_weights[own][near] * np.exp(-0.5 * d2),
+                           minlength=n_bins) * group_scale[g]
+        lam = np.bincount(spread_bins, weights=hist[source_of] * spread_weights, minlength=n_bins) * bin_scale
+        with np.errstate(divide="ignore"):
+            out += np.where(valid, np.maximum(np.log(lam), group_log_floor[g]), 0.0)
+    return weighed
+
+
+@numba.njit(cache=True)
+def merge_marks(marks, bins, inv_bandwidth_uv, merge_sd, centres, centre_bins, centre_weights):
+    """Kernel density compression of one group's encoding marks (Sodkomkham et al. 2016).
+
+    In bin order, each mark joins the first component of its own position
+    bin within ``merge_sd`` kernel s.d. of it (its centre moves to the
+    weighted mean) or starts a new one; the density becomes a weighted sum
+    of far fewer kernels, changed by at most ~``merge_sd**2 / 2`` of a kernel
+    width where marks merged.
+
+    Parameters
+    ----------
+    marks : ndarray, shape (n, c), float32
+        Marks in uV, ordered by ``bins``.
+    bins : ndarray, shape (n,), int64
+        Position bin of each mark, non-decreasing.
+    inv_bandwidth_uv, merge_sd : float
+    centres, centre_bins, centre_weights : ndarray, shapes (n, c), (n,), (n,); float32, int64, float64
+        Receive the components (the first ``m``).
+
+    Returns
+    -------
+    int
+        ``m``, the number of components.
+
+    References
+    ----------
+    Sodkomkham D, Ciliberti D, Wilson MA, Fukui K, Moriyama K, Numao M,
+    Kloosterman F (2016). Kernel density compression for real-time Bayesian
+    encoding/decoding of unsorted hippocampal spikes. Knowl-Based Syst
+    94:1-12.
+    """
+    n, c = marks.shape
+    limit = merge_sd * merge_sd
+    m = 0
+    first_of_bin = 0
+    for p in range(n):
+        if p == 0 or bins[p] != bins[p - 1]:
+            first_of_bin = m
+        joined = False
+        for q in range(first_of_bin, m):
+            d2 = 0.0
+            for k in range(c):
+                z = (np.float64(marks[p, k]) - np.float64(centres[q, k])) * inv_bandwidth_uv
+                d2 += z * z
+            if d2 <= limit:
+                w = centre_weights[q]
+                for k in range(c):
+                    centres[q, k] = (centres[q, k] * w + marks[p, k]) / (w + 1.0)
+                centre_weights[q] = w + 1.0
+                joined = True
+                break
+        if not joined:
+            for k in range(c):
+                centres[m, k] = marks[p, k]
+            centre_bins[m] = bins[p]
+            centre_weights[m] = 1.0
+            m += 1
+    return m
+
+
+def merge_marks_numpy(marks, bins, inv_bandwidth_uv, merge_sd, centres, centre_bins, centre_weights):
+    """Numpy twin of :func:`merge_marks` (the same greedy pass, each candidate test vectorised)."""
+    m = 0
+    first_of_bin = 0
+    for p in range(marks.shape[0]):
+        if p == 0 or bins[p] != bins[p - 1]:
+            first_of_bin = m
+        if m > first_of_bin:
+            z = (marks[p].astype(np.float64) - centres[first_of_bin:m].astype(np.float64)) * inv_bandwidth_uv
+            close = np.flatnonzero((z * z).sum(axis=1) <= merge_sd * merge_sd)
+            if close.size:
+                q = first_of_bin + close[0]
+                w = centre_weights[q]
+                centres[q] = (centres[q].astype(np.float64) * w + marks[p].astype(np.float64)) / (w + 1.0)
+                centre_weights[q] = w + 1.0
+                continue
+        centres[m] = marks[p]
+        centre_bins[m] = bins[p]
+        centre_weights[m] = 1.0
+        m += 1
+    return m
