@@ -170,7 +170,7 @@ def test_config_validation_names_the_problem():
         _config(rules=[{"name": "r", "zone": "nowhere"}])
     with pytest.raises(ValueError, match="unknown key"):
         _config(decoder={"windw_s": 0.2})
-    with pytest.raises(ValueError, match="method must be 'sliding_window' or 'filter'"):
+    with pytest.raises(ValueError, match="method must be one of \\('sliding_window', 'filter'\\)"):
         _config(decoder={"method": "smoother"})
     with pytest.raises(ValueError, match="set prior = 'state_space'"):
         _config(decoder={"method": "filter", "prior": "uniform"})

@@ -1,0 +1,106 @@
+"""Trigger rules and the caps beneath them: the ``[[rules]]`` and ``[safety]`` tables."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, get_args
+
+from decoder.config.checks import (
+    _optional_speed,
+    _positive_int,
+    _positive_seconds,
+)
+
+# -- trigger rules and the caps beneath them ([[rules]], [safety]) -------------------------
+
+Mode = Literal["mass", "map"]
+Tracked = Literal["any", "inside", "outside"]
+MODES = get_args(Mode)
+TRACKED = get_args(Tracked)
+RuleKind = Literal["zone", "ripple"]
+#: What a rule acts on: a zone judged at each decoding step, or each detected ripple.
+RULE_KINDS = get_args(RuleKind)
+
+
+@dataclass(frozen=True)
+class TriggerRule:
+    """When one zone should produce an event, or what to do at each detected ripple (one ``[[rules]]`` entry)."""
+
+    #: Unique among the rules; written into every event.
+    name: str
+    #: Name of the zone; must be one of the ``[[zones]]`` names (empty for kind = "ripple").
+    zone: str = ""
+    #: "mass": the posterior mass in the zone is at least min_mass. "map": the maximum a
+    #: posteriori bin lies in the zone.
+    mode: Mode = "mass"
+    #: Least posterior mass in the zone, in (0, 1]; used by mode = "mass".
+    min_mass: float = 0.8
+    #: Decoding steps in a row the condition must hold before the rule fires.
+    consecutive_steps: int = 3
+    #: Least tracked running speed (cm/s), inclusive; unset leaves this side open. On a heading
+    #: ring, the tracked angular head speed in deg/s.
+    min_speed_cm_s: float | None = None
+    #: Greatest tracked running speed (cm/s), inclusive; unset leaves this side open.
+    max_speed_cm_s: float | None = None
+    #: Where the tracked animal must be relative to the same zone. "outside" serves experiments
+    #: that act on a non-local representation (decoded in the zone while the animal is elsewhere;
+    #: on a heading ring, the decoded heading in the arc while the head faces away from it).
+    tracked: Tracked = "any"
+    #: "zone": judged at each decoding step on its zone. "ripple": one event for each ripple
+    #: the [ripples] detector reports (disrupting every ripple); no zone, the speed bounds
+    #: apply, the other conditions do not.
+    kind: RuleKind = "zone"
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.name, str) or not self.name.strip():
+            raise ValueError(f"a trigger rule needs a non-empty name, got {self.name!r}")
+        owner = f"trigger rule {self.name!r}"
+        if self.kind not in RULE_KINDS:
+            raise ValueError(f"{owner}: kind must be one of {RULE_KINDS}, got {self.kind!r}")
+        if self.kind == "ripple" and self.zone:
+            raise ValueError(f"{owner}: a ripple rule acts on every detected ripple and has no zone; "
+                             f"leave zone out, got {self.zone!r}")
+        if self.kind == "zone" and (not isinstance(self.zone, str) or not self.zone.strip()):
+            raise ValueError(f"{owner}: zone must be the non-empty name of a zone, got {self.zone!r}")
+        if self.mode not in MODES:
+            raise ValueError(f"{owner}: mode must be one of {MODES}, got {self.mode!r}")
+        if self.tracked not in TRACKED:
+            raise ValueError(f"{owner}: tracked must be one of {TRACKED}, got {self.tracked!r}")
+        try:
+            min_mass = float(self.min_mass)
+        except (TypeError, ValueError):
+            raise ValueError(f"{owner}: min_mass must be a number in (0, 1], got {self.min_mass!r}") from None
+        if not (0.0 < min_mass <= 1.0):
+            raise ValueError(f"{owner}: min_mass must be in (0, 1], got {self.min_mass!r}")
+        object.__setattr__(self, "min_mass", min_mass)
+        steps = _positive_int(owner, "consecutive_steps", self.consecutive_steps)
+        object.__setattr__(self, "consecutive_steps", steps)
+        lo = _optional_speed(owner, "min_speed_cm_s", self.min_speed_cm_s)
+        hi = _optional_speed(owner, "max_speed_cm_s", self.max_speed_cm_s)
+        if lo is not None and hi is not None and lo > hi:
+            raise ValueError(f"{owner}: min_speed_cm_s ({lo}) must not exceed max_speed_cm_s ({hi})")
+        object.__setattr__(self, "min_speed_cm_s", lo)
+        object.__setattr__(self, "max_speed_cm_s", hi)
+
+
+@dataclass(frozen=True)
+class SafetyCaps:
+    """Limits beneath every rule; none can be switched off."""
+
+    #: Least data time between two events of any rule (s).
+    refractory_s: float = 2.0
+    #: Most events in any 60 s of data time (sliding window).
+    max_per_minute: int = 10
+    #: Most events in the life of the trigger bank; reaching it disarms the triggers for good.
+    max_per_session: int = 200
+    #: Largest tolerated lag of the slowest input stream behind data time (s); beyond it the
+    #: triggers disarm themselves (reason "stall"). The live loop also disarms when the rig has
+    #: been silent this long on the wall clock.
+    stall_limit_s: float = 1.0
+
+    def __post_init__(self) -> None:
+        owner = "safety caps"
+        object.__setattr__(self, "refractory_s", _positive_seconds(owner, "refractory_s", self.refractory_s))
+        object.__setattr__(self, "stall_limit_s", _positive_seconds(owner, "stall_limit_s", self.stall_limit_s))
+        object.__setattr__(self, "max_per_minute", _positive_int(owner, "max_per_minute", self.max_per_minute))
+        object.__setattr__(self, "max_per_session", _positive_int(owner, "max_per_session", self.max_per_session))
