@@ -101,7 +101,8 @@ def test_duplicated_and_unknown_inputs_are_counted_not_used(session_messages):
     # Spikes from a unit the model does not know are counted and dropped.
     unknown = SpikeBatch("ephys", 10**9, [150.0001], [999999])
     extra = list(messages)
-    extra.insert(spikes[-1], unknown)
+    # Where the stream is at 150 s: a batch ten seconds late would be refused as a clock set back.
+    extra.insert(next(i for i in spikes if messages[i].t_s[0] > 150.0001), unknown)
     pipeline, _ = _run(config, extra)
     assert pipeline.counters["unknown_units"] == 1
     # Its seq jumps by 10**9 and the next batch carries on from before: one bad number, no lost data.

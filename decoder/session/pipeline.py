@@ -98,7 +98,9 @@ class Pipeline:
         }
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
-        self.health = StreamHealth()
+        # The session's own streams are tracked whatever else comes (ingest numbers commands as "control").
+        self.health = StreamHealth(reserved=frozenset((config.sources.spikes, config.sources.tracker,
+                                                       config.sources.truth, "control")))
         s = config.session
         self.spike_sanity = SpikeSanity(s.artefact_ceiling_hz, s.artefact_window_s, s.artefact_population_fraction,
                                         s.artefact_population_window_s, s.artefact_population_min_units)
@@ -149,6 +151,10 @@ class Pipeline:
     def on_message(self, msg: InputMessage) -> list[Output]:
         """Feed one validated message; return the steps it closed and any notices."""
         verdict = self.health.accept(msg.source, msg.seq)
+        if verdict == "overflow":
+            # Counted in stream health as one of the other sources; no table grows for it.
+            self.counters["unknown_source"] += 1
+            return []
         if verdict == "stale":
             self.counters["stale_messages"] += 1
             log.warning("dropped message %d from %r: sequence number not above the last one", msg.seq, msg.source)
@@ -235,7 +241,7 @@ class Pipeline:
         if moved == "refused":
             self.counters["time_jumps"] += 1
             log.warning(
-                "refused a message from %r: its time %.3f s jumps %.1f s past the stream (limit %g s, "
+                "refused a message from %r: its time %.3f s jumps %+.1f s from the stream's (limit %g s, "
                 "[session] max_time_jump_s)",
                 self._spike_source, newest_s, newest_s - previous, self.watermark.max_jump_s,
             )
