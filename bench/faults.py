@@ -52,7 +52,6 @@ over a simulated hour; no actionable event from a dry run.
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import json
 import os
 import signal
@@ -64,245 +63,33 @@ from pathlib import Path
 
 import msgpack
 import numpy as np
-import tomli_w
-import zmq
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from bench import fault_frames  # noqa: E402
-from decoder.config import parse_config  # noqa: E402
-from decoder.encoding.place_model import PlaceModel  # noqa: E402
-from decoder.messages import Heartbeat, SpikeBatch  # noqa: E402
-from decoder.session.outputs import StepOutput  # noqa: E402
-from decoder.session.pipeline import Pipeline  # noqa: E402
-from rig_adapters.sessions.log_reader import read_log  # noqa: E402
-from rig_adapters.sessions.replay import replay_session  # noqa: E402
-from rig_adapters.sim.demo import free_loopback_port  # noqa: E402
-from rig_adapters.sim.simulation import SPIKE_SOURCE, SimulatedSession, SimulationSettings  # noqa: E402
-from rig_adapters.wire import protocol  # noqa: E402
-from rig_adapters.wire.ingest import CONTROL_ARGS, Ingest  # noqa: E402
-
-#: The probe's experiment (invented): a square arena, one goal zone, 60 simulated cells.
-BASE = {
-    "environment": {"kind": "rectangle", "width_cm": 80.0, "height_cm": 80.0, "bin_cm": 4.0},
-    "model": {"cv_folds": 2, "cv_block_s": 20.0},
-    "decoder": {"window_s": 0.25, "step_s": 0.025, "prior": "state_space", "random_walk_sd_cm": 4.0},
-    "sources": {"truth": "truth"},
-    "safety": {"refractory_s": 1.0, "max_per_minute": 60, "max_per_session": 100_000, "stall_limit_s": 1.0},
-    "zones": [{"kind": "circle", "name": "goal", "center_cm": [60.0, 60.0], "radius_cm": 14.0}],
-    "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
-    "simulation": {"n_place_cells": 50, "n_grid_cells": 5, "n_nonspatial_cells": 5},
-}
-SESSION_SOURCES = {"ephys", "tracker", "truth", "control"}
-
-#: How long the loop may take to subscribe: it loads (or, on an empty numba cache, compiles) its kernels first.
-SUBSCRIBE_WAIT_S = 300.0
-
-#: Frames the bench lets the loop fall behind by before it waits: far below its RCVHWM of 10**6.
-MAX_BACKLOG = 20_000
-
-
-# ----------------------------------------------------------------- the session and the loop under test
-
-def fit_model(tmp: Path, seed: int) -> Path:
-    """Learn 60 simulated seconds in process and save the fitted model (as tests/test_dry_run.py does)."""
-    learn = parse_config(tomli_w.dumps({**BASE, "session": {"learn_s": 60.0, "cross_validate": False}}))
-    sim = SimulatedSession(learn.environment, SimulationSettings.from_dict(learn.simulation), seed=seed)
-    pipeline = Pipeline(learn)
-    for msg in sim.messages(until_s=90.0):
-        pipeline.on_message(msg)
-        if pipeline.state == "decoding":
-            break
-    path = tmp / "model.npz"
-    pipeline.model.save(path)
-    return path
-
-
-def session_messages(seed: int, until_s: float) -> list:
-    config = parse_config(tomli_w.dumps(BASE))
-    sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=seed)
-    return list(sim.messages(until_s=until_s))
-
-
-def spike_time(msg) -> float | None:
-    """The data time a spike-stream message carries (s), or None for other messages."""
-    if msg.source != SPIKE_SOURCE:
-        return None
-    if isinstance(msg, SpikeBatch):
-        return float(msg.t_s[-1]) if msg.t_s.size else None
-    if isinstance(msg, Heartbeat):
-        return float(msg.t_s)
-    return None
-
-
-class LoopUnderTest:
-    """One ``placeloop run`` process and the bench's sockets around it (all on 127.0.0.1)."""
-
-    def __init__(self, tmp: Path, name: str, model: Path, overrides: dict | None = None, dry_run: bool = False,
-                 log: bool = True, idle_exit_s: float = 30.0) -> None:
-        self.dir = tmp / name
-        self.dir.mkdir()
-        self.ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
-        self.ep = {k: f"tcp://127.0.0.1:{p}" for k, p in self.ports.items()}
-        doc = {**BASE, **(overrides or {}), "endpoints": {
-            "rig": [self.ep["rig"]], "events": self.ep["events"], "state": self.ep["state"],
-            "control": self.ep["control"]}}
-        self.config_path = self.dir / "loop.toml"
-        self.config_path.write_text(tomli_w.dumps(doc))
-        self.config = parse_config(tomli_w.dumps(doc))
-        self.log_dir = self.dir / "session" if log else None
-        self.stderr_path = self.dir / "stderr.txt"
-        cmd = [sys.executable, "-m", "rig_adapters.cli", "-v", "run", "--config", str(self.config_path),
-               "--model", str(model), "--summary", str(self.dir / "summary.json"),
-               "--idle-exit-s", str(idle_exit_s)]
-        if self.log_dir is not None:
-            cmd += ["--log", str(self.log_dir)]
-        if dry_run:
-            cmd.append("--dry-run")
-        self.ctx = zmq.Context.instance()
-        self.events_sub = self._sub(self.ep["events"])
-        self.state_sub = self._sub(self.ep["state"])
-        self.rig = None
-        self.bind_rig()
-        with open(self.stderr_path, "w") as err:
-            self.proc = subprocess.Popen(cmd, cwd=ROOT, stderr=err, stdout=subprocess.DEVNULL)
-        self.req = None
-        self.sent = 0
-
-    def _sub(self, endpoint: str) -> zmq.Socket:
-        sock = self.ctx.socket(zmq.SUB)
-        sock.setsockopt(zmq.SUBSCRIBE, b"")
-        sock.setsockopt(zmq.LINGER, 0)
-        sock.setsockopt(zmq.RCVHWM, 0)  # the bench keeps every event and state frame it is sent
-        sock.connect(endpoint)
-        return sock
-
-    def bind_rig(self) -> None:
-        """(Re)open the rig's publisher (:meth:`wait_subscribed` waits for the loop)."""
-        sock = self.ctx.socket(zmq.XPUB)
-        sock.setsockopt(zmq.LINGER, 0)
-        sock.setsockopt(zmq.SNDHWM, 0)  # never drop on the bench's side: pacing bounds the queue
-        deadline = time.monotonic() + 10.0
-        while True:
-            try:
-                sock.bind(self.ep["rig"])
-                break
-            except zmq.ZMQError:
-                if time.monotonic() > deadline:
-                    raise
-                time.sleep(0.05)
-        self.rig = sock
-
-    def wait_subscribed(self, timeout_s: float = SUBSCRIBE_WAIT_S) -> None:
-        deadline = time.monotonic() + timeout_s
-        while not self.rig.poll(200):
-            if self.proc.poll() is not None:
-                raise RuntimeError(f"the loop exited before subscribing:\n{self.stderr()[-3000:]}")
-            if time.monotonic() > deadline:
-                raise RuntimeError("the loop never subscribed to the bench's rig")
-        self.rig.recv()
-
-    def close_rig(self) -> None:
-        self.rig.close(linger=0)
-        self.rig = None
-
-    def send(self, payload: bytes) -> None:
-        self.rig.send(payload)
-        self.sent += 1
-
-    def _socket_for_requests(self) -> zmq.Socket:
-        if self.req is None:
-            self.req = self.ctx.socket(zmq.REQ)
-            self.req.setsockopt(zmq.LINGER, 0)
-            self.req.connect(self.ep["control"])
-        return self.req
-
-    def raw_request(self, *parts: bytes, timeout_s: float = 10.0) -> dict | None:
-        """Send one request (one or more frames); the reply, or None if none came in time."""
-        req = self._socket_for_requests()
-        req.send_multipart(list(parts))
-        if not req.poll(int(timeout_s * 1000)):
-            # A REQ socket without its reply takes no further request: start a new one.
-            req.close(linger=0)
-            self.req = None
-            return None
-        return protocol.decode_control_reply(req.recv())
-
-    def request(self, command: str, args: dict | None = None) -> dict | None:
-        return self.raw_request(protocol.encode_control_request(command, args))
-
-    def status(self) -> dict:
-        reply = self.request("status")
-        if reply is None or not reply["ok"]:
-            raise RuntimeError(f"no status from the loop: {reply}\n{self.stderr()[-3000:]}")
-        return reply["status"]
-
-    @staticmethod
-    def counted(status: dict) -> int:
-        """Rig frames the loop has counted: accepted or stale for a source, or rejected (bad_messages)."""
-        by_source = sum(h["messages"] + h["stale"] for name, h in status["sources"].items() if name != "control")
-        return by_source + status["counters"]["bad_messages"]
-
-    def wait_counted(self, n: int, timeout_s: float = 120.0) -> int:
-        """Wait until the loop has counted ``n`` rig frames (or its count stops moving); the count."""
-        deadline = time.monotonic() + timeout_s
-        last, still_since = -1, time.monotonic()
-        while True:
-            counted = self.counted(self.status())
-            if counted >= n:
-                return counted
-            if counted != last:
-                last, still_since = counted, time.monotonic()
-            elif time.monotonic() - still_since > 5.0 or time.monotonic() > deadline:
-                return counted
-            time.sleep(0.02)
-
-    def drain(self, sock: zmq.Socket) -> list[dict]:
-        out = []
-        while sock.poll(0):
-            out.append(protocol.decode_output(sock.recv()))
-        return out
-
-    def rss_kb(self) -> int:
-        for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
-            if line.startswith("VmRSS:"):
-                return int(line.split()[1])
-        raise RuntimeError("no VmRSS line in /proc")
-
-    def alive(self) -> bool:
-        return self.proc.poll() is None
-
-    def stderr(self) -> str:
-        return self.stderr_path.read_text(errors="replace")
-
-    def stop(self, timeout_s: float = 60.0) -> int:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-            try:
-                self.proc.wait(timeout=timeout_s)
-            except subprocess.TimeoutExpired:
-                self.proc.kill()
-                self.proc.wait()
-        for sock in (self.rig, self.req, self.events_sub, self.state_sub):
-            if sock is not None:
-                sock.close(linger=0)
-        self.rig = self.req = None
-        return self.proc.returncode
-
-
-def paced_send(loop: LoopUnderTest, frames, chunk: int = 2000) -> None:
-    """Send every frame, waiting whenever the loop falls :data:`MAX_BACKLOG` frames behind."""
-    for i, payload in enumerate(frames):
-        loop.send(payload)
-        if i % chunk == chunk - 1:
-            loop.wait_counted(loop.sent - MAX_BACKLOG)
-
-
-def event_keys(events) -> list[tuple]:
-    """Events by what a stimulator acts on: rule, zone and data time (to the microsecond)."""
-    return [(e["rule"], e["zone"], round(float(e["t_s"]), 6)) for e in events]
-
+from bench import fault_frames
+from bench.fault_loop import (
+    BASE,
+    MAX_BACKLOG,
+    SESSION_SOURCES,
+    Loops,
+    LoopUnderTest,
+    event_keys,
+    fit_model,
+    paced_send,
+    send_real_time,
+    session_messages,
+    spike_time,
+    tiled,
+)
+from decoder.encoding.place_model import PlaceModel
+from decoder.messages import Heartbeat
+from decoder.session.outputs import StepOutput
+from decoder.session.pipeline import Pipeline
+from rig_adapters.sessions.log_reader import read_log
+from rig_adapters.sessions.replay import replay_session
+from rig_adapters.wire import protocol
+from rig_adapters.wire.ingest import CONTROL_ARGS, Ingest
 
 # ----------------------------------------------------------------- 1. fuzz
 
@@ -312,7 +99,7 @@ def reference_events(config, model: Path, head: list[bytes], rest: list[bytes]) 
     events = []
     for payload in head:
         ingest.rig_bytes(payload)
-    outputs, reply = ingest.control_bytes(protocol.encode_control_request("arm"))
+    _, reply = ingest.control_bytes(protocol.encode_control_request("arm"))
     assert reply["ok"], reply
     for payload in rest:
         for out in ingest.rig_bytes(payload):
@@ -342,7 +129,7 @@ def fuzz_frames(messages: list, n: int, rng: np.random.Generator, seed: int) -> 
     return frames, {k: len(v) for k, v in parts.items()}
 
 
-def run_fuzz(tmp: Path, model: Path, n_frames: int, session_s: float, seed: int) -> dict:
+def run_fuzz(loops: Loops, n_frames: int, session_s: float, seed: int) -> dict:
     rng = np.random.default_rng(seed)
     messages = session_messages(seed + 100, session_s)
     encoded = [protocol.encode(m) for m in messages]
@@ -350,9 +137,9 @@ def run_fuzz(tmp: Path, model: Path, n_frames: int, session_s: float, seed: int)
     frames, mix = fuzz_frames(messages, n_frames, rng, seed)
     # A spoofed frame per 100 valid ones: the session's own source and number, broken.
     last_seq: dict[str, int] = {}
-    loop = LoopUnderTest(tmp, "fuzz", model, overrides={"safety": {**BASE["safety"], "stall_limit_s": 10.0}})
+    loop = loops.get("fuzz")
+    sent_before = loop.sent
     try:
-        loop.wait_subscribed()
         for payload in encoded[:n_head]:
             loop.send(payload)
         assert loop.wait_counted(loop.sent) == loop.sent, "the loop lost part of the session's head"
@@ -383,18 +170,17 @@ def run_fuzz(tmp: Path, model: Path, n_frames: int, session_s: float, seed: int)
         time.sleep(0.5)
         live = event_keys(e for e in loop.drain(loop.events_sub) if e["kind"] == "event")
         status = loop.status()
-        alive = loop.alive()
     finally:
-        rc = loop.stop()
-    reference = reference_events(loop.config, model, encoded[:n_head], encoded[n_head:])
+        ran_well = loops.done(loop)
+    reference = reference_events(loop.config, loops.model, encoded[:n_head], encoded[n_head:])
     ref = set(reference)
     hostile = len(frames) + spoofed
     return {
         "fuzz_frames": hostile,
         "fuzz_mix": {**mix, "spoofed_session_sources": spoofed, "kept_off_session_sources": len(frames)},
         "fuzz_session_messages": len(encoded),
-        "fuzz_frames_per_s": loop.sent / wall_s,
-        "fuzz_crashes": int(not alive) + int(rc not in (0, -signal.SIGTERM)),
+        "fuzz_frames_per_s": (loop.sent - sent_before) / wall_s,
+        "fuzz_crashes": int(not ran_well),
         "fuzz_uncounted": loop.sent - counted,
         "fuzz_events": len(live),
         "fuzz_reference_events": len(reference),
@@ -459,8 +245,8 @@ def control_cases(tmp: Path, model: Path, seed: int, n_generated: int) -> list[t
         cases.append((f"{cmd}/args_deep", [request(cmd, _deep(1000))]))
         for name in allowed:
             for label, value in bad_values.items():
-                if cmd == "disarm" and label in ("empty", "nul", "long"):
-                    continue  # a string is a valid reason: those would disarm, as asked
+                if cmd in ("disarm", "stall") and label in ("empty", "nul", "long"):
+                    continue  # any string is a valid reason or stream name: those would disarm, as asked
                 cases.append((f"{cmd}/{name}={label}", [request(cmd, {name: value})]))
         for key in ("v", "k", "src", "seq", "cmd"):
             cases.append((f"{cmd}/envelope_{key}_deep", [request(cmd, **{key: _deep(1000)})]))
@@ -482,13 +268,11 @@ def control_cases(tmp: Path, model: Path, seed: int, n_generated: int) -> list[t
     return cases
 
 
-def run_control(tmp: Path, model: Path, seed: int, n_generated: int) -> dict:
-    cases = control_cases(tmp, model, seed, n_generated)
-    loop = LoopUnderTest(tmp, "control", model, log=False, idle_exit_s=600.0)
-    crashes, unanswered, accepted, restarts = [], 0, [], 0
+def run_control(loops: Loops, seed: int, n_generated: int) -> dict:
+    cases = control_cases(loops.tmp, loops.model, seed, n_generated)
+    loop = loops.get("control", log=False, idle_exit_s=600.0)
+    crashes, unanswered, accepted = [], 0, []
     try:
-        loop.wait_subscribed()
-        before = loop.status()
         for name, parts in cases:
             reply = loop.raw_request(*parts, timeout_s=5.0)
             if reply is None:
@@ -500,23 +284,22 @@ def run_control(tmp: Path, model: Path, seed: int, n_generated: int) -> dict:
                 if not loop.alive():
                     break
         after = loop.status()
-        still_decoding = after["state"] == "decoding" and after["sources"] == before["sources"]
     finally:
-        rc = loop.stop()
+        ran_well = loops.done(loop)
     return {
         "control_cases": len(cases),
-        "control_crashes": len(crashes) + int(rc not in (0, -signal.SIGTERM)),
+        "control_crashes": len(crashes) + int(not ran_well),
         "control_crashed_cases": crashes[:20],
         "control_unanswered": unanswered,
         "control_bad_cases_accepted": accepted,
-        "control_model_unchanged": bool(still_decoding),
+        "control_still_decoding": after["state"] == "decoding",
         "control_refused": after["control"]["refused"],
     }
 
 
 # ----------------------------------------------------------------- 3. kill -9 during recording
 
-def run_kill9(tmp: Path, model: Path, runs: int, seed: int) -> dict:
+def run_kill9(loops: Loops, runs: int, seed: int, kill_within_s: float) -> dict:
     rng = np.random.default_rng(seed)
     messages = session_messages(seed + 200, 8.0)
     encoded = [protocol.encode(m) for m in messages]
@@ -524,10 +307,10 @@ def run_kill9(tmp: Path, model: Path, runs: int, seed: int) -> dict:
     step_s = BASE["decoder"]["step_s"]
     flush_s = None
     for run in range(runs):
-        loop = LoopUnderTest(tmp, f"kill9_{run}", model, idle_exit_s=60.0)
+        # Shared (--quick), the loop killed has recorded every earlier part, hostile frames included.
+        loop = loops.take(f"kill9_{run}", idle_exit_s=60.0)
         try:
-            loop.wait_subscribed()
-            kill_after_s = float(rng.uniform(1.0, 6.0))
+            kill_after_s = float(rng.uniform(1.0, kill_within_s))
             started = time.monotonic()
             sent_t = -np.inf
             for msg, payload in zip(messages, encoded):
@@ -569,38 +352,20 @@ def run_kill9(tmp: Path, model: Path, runs: int, seed: int) -> dict:
 
 # ----------------------------------------------------------------- 4. restart, 5. stall
 
-def _send_real_time(loop: LoopUnderTest, messages, encoded, duration_s: float, watch=None) -> float:
-    """Send ``duration_s`` of the session at real time, calling ``watch()`` between messages; the start (monotonic)."""
-    started = time.monotonic()
-    t0 = None
-    for msg, payload in zip(messages, encoded):
-        t = spike_time(msg)
-        if t is not None:
-            t0 = t if t0 is None else t0
-            if t - t0 > duration_s:
-                break
-            while (t - t0) - (time.monotonic() - started) > 0:
-                if watch is not None:
-                    watch()
-                time.sleep(0.001)
-        loop.send(payload)
-    return started
-
-
-def run_restart_and_stall(tmp: Path, model: Path, restarts: int, seed: int) -> dict:
+def run_restart_and_stall(loops: Loops, restarts: int, seed: int) -> dict:
     messages = session_messages(seed + 300, 6.0)
     encoded = [protocol.encode(m) for m in messages]
-    loop = LoopUnderTest(tmp, "restart", model, log=False)
+    loop = loops.get("restart", log=False)
     recoveries, stall_s = [], None
     stall_limit_s = BASE["safety"]["stall_limit_s"]
     try:
-        loop.wait_subscribed()
-        _send_real_time(loop, messages, encoded, 3.0)
+        _, sent = send_real_time(loop, messages, encoded, 3.0)
         reply = loop.request("arm")
         assert reply and reply["ok"], reply
         # 5. stall: the rig goes silent while armed.
-        _send_real_time(loop, messages[len(messages) // 2:], encoded[len(encoded) // 2:], 1.0)
+        send_real_time(loop, messages, encoded, 1.0, start=sent)
         silent_from = time.monotonic()
+        assert loop.status()["armed"], "the loop disarmed before the stall"
         while loop.status()["armed"]:
             if time.monotonic() - silent_from > 10 * stall_limit_s:
                 break
@@ -613,20 +378,18 @@ def run_restart_and_stall(tmp: Path, model: Path, restarts: int, seed: int) -> d
             time.sleep(0.5)
             loop.drain(loop.state_sub)
             loop.bind_rig()
-            decoded_at = []
+            decoded_at: list[float] = []
 
-            def watch():
-                if not decoded_at:
-                    # A step on the new clock: its data time is below the old clock's 4 s.
-                    if any(f["kind"] == "state" and f["state"] == "decoding" and f["t_s"] < 2.0
-                           for f in loop.drain(loop.state_sub)):
-                        decoded_at.append(time.monotonic())
+            def watch(decoded_at=decoded_at):
+                # A step on the new clock: its data time is below the old clock's 4 s.
+                if not decoded_at and any(f["kind"] == "state" and f["state"] == "decoding" and f["t_s"] < 2.0
+                                          for f in loop.drain(loop.state_sub)):
+                    decoded_at.append(time.monotonic())
 
-            first = _send_real_time(loop, messages, encoded, 2.0, watch)
+            first, _ = send_real_time(loop, messages, encoded, 2.0, watch)
             recoveries.append(decoded_at[0] - first if decoded_at else float("inf"))
-        alive = loop.alive()
     finally:
-        loop.stop()
+        ran_well = loops.done(loop)
     step_s = BASE["decoder"]["step_s"]
     return {
         "restart_runs": restarts,
@@ -634,52 +397,19 @@ def run_restart_and_stall(tmp: Path, model: Path, restarts: int, seed: int) -> d
         "restart_recovery_s_max": max(recoveries) if recoveries else None,
         "stall_disarm_s": stall_s,
         "stall_bar_s": stall_limit_s + step_s,
-        "restart_loop_alive": alive,
+        "restart_loop_ran_well": ran_well,
     }
 
 
 # ----------------------------------------------------------------- 6. flood, 7. soak
 
-def tiled(messages: list, tiles: int):
-    """The session repeated ``tiles`` times end to end: times, sync pulse ids and numbers carried on.
-
-    The tracker's clock runs at its own rate (the simulated drift), so its
-    times move on by the tile's length on that clock, from a fit of the
-    tile's own sync pulses (decoder.session.clock.fit_clock).
-    """
-    from decoder.messages import SourceAnnounce, SyncPulse
-    from decoder.session.clock import fit_clock
-
-    length_s = max(spike_time(m) or 0.0 for m in messages)
-    pulses = {}
-    for m in messages:
-        if isinstance(m, SyncPulse):
-            pulses.setdefault(m.pulse_id, {})[m.source] = m.t_s
-    pairs = [(p[SPIKE_SOURCE], p["tracker"]) for p in pulses.values() if len(p) == 2]
-    fit = fit_clock([b for _, b in pairs], [a for a, _ in pairs])   # tracker = offset + slope * ephys
-    tracker_length_s = fit.slope * length_s
-    max_pulse = max(pulses)
-    per_source: dict[str, int] = {}
-    for m in messages:
-        per_source[m.source] = per_source.get(m.source, 0) + 1
-    body = [m for m in messages if not isinstance(m, SourceAnnounce)]
-    yield from messages
-    for k in range(1, tiles):
-        for m in body:
-            shift = tracker_length_s if m.source == "tracker" else length_s
-            fields = {"seq": m.seq + k * (per_source[m.source] - 1), "t_s": m.t_s + k * shift}
-            if isinstance(m, SyncPulse):
-                fields["pulse_id"] = m.pulse_id + k * max_pulse
-            yield dataclasses.replace(m, **fields)
-
-
-def run_flood(tmp: Path, model: Path, seed: int, session_s: float) -> dict:
+def run_flood(loops: Loops, seed: int, session_s: float) -> dict:
     """Ten times the session's rate: the session sent at ten times real time, then drained."""
     messages = session_messages(seed + 400, session_s)
     encoded = [protocol.encode(m) for m in messages]
-    loop = LoopUnderTest(tmp, "flood", model, log=True)
+    loop = loops.get("flood")
+    sent_before = loop.sent
     try:
-        loop.wait_subscribed()
         started = time.monotonic()
         t_first = None
         for msg, payload in zip(messages, encoded):
@@ -696,26 +426,26 @@ def run_flood(tmp: Path, model: Path, seed: int, session_s: float) -> dict:
         status = loop.status()
         last_t = max(spike_time(m) or 0.0 for m in messages)
     finally:
-        loop.stop()
+        ran_well = loops.done(loop)
     return {
         "flood_x_realtime": 10.0,
-        "flood_messages": loop.sent,
+        "flood_messages": loop.sent - sent_before,
         "flood_uncounted": loop.sent - counted,
         "flood_drain_s": drain_s,
         "flood_data_time_behind_s": last_t - (status["data_time_s"] or 0.0),
-        "flood_drained": bool(counted == loop.sent and status["data_time_s"] == last_t),
+        "flood_drained": bool(counted == loop.sent and status["data_time_s"] == last_t and ran_well),
     }
 
 
-def run_soak(tmp: Path, model: Path, seed: int, hours: float) -> dict:
-    tile_s = 120.0
+def run_soak(loops: Loops, seed: int, hours: float, tile_s: float) -> dict:
+    """``hours`` of simulated data as fast as the loop takes it: a session of ``tile_s`` repeated (bench.fault_loop.tiled)."""
     messages = session_messages(seed + 500, tile_s)
     tile_len = max(spike_time(m) or 0.0 for m in messages)
     tiles = int(np.ceil(hours * 3600.0 / tile_len))
-    loop = LoopUnderTest(tmp, "soak", model, log=True, idle_exit_s=60.0)
+    loop = loops.get("soak", idle_exit_s=60.0)
+    sent_before = loop.sent
     samples: list[tuple[float, int]] = []
     try:
-        loop.wait_subscribed()
         reply = None
         started = time.monotonic()
         last_t = 0.0
@@ -733,7 +463,7 @@ def run_soak(tmp: Path, model: Path, seed: int, hours: float) -> dict:
         wall_s = time.monotonic() - started
         status = loop.status()
     finally:
-        loop.stop()
+        ran_well = loops.done(loop)
     t = np.array([s[0] for s in samples])
     rss = np.array([s[1] for s in samples], float)
     # Warm-up: the model installed, the kernels loaded, the first fifth of the run.
@@ -742,8 +472,9 @@ def run_soak(tmp: Path, model: Path, seed: int, hours: float) -> dict:
     return {
         "soak_hours_simulated": (status["data_time_s"] or 0.0) / 3600.0,
         "soak_wall_s": wall_s,
-        "soak_messages": loop.sent,
+        "soak_messages": loop.sent - sent_before,
         "soak_uncounted": loop.sent - counted,
+        "soak_loop_ran_well": ran_well,
         "soak_steps": status["counters"]["decode_steps"],
         "soak_rss_mb_after_warm_up": first / 1024,
         "soak_rss_mb_end": last / 1024,
@@ -753,11 +484,12 @@ def run_soak(tmp: Path, model: Path, seed: int, hours: float) -> dict:
 
 # ----------------------------------------------------------------- 8. dry run beside a consumer
 
-def run_dry_run(tmp: Path, model: Path, seed: int, session_s: float) -> dict:
+def run_dry_run(loops: Loops, seed: int, session_s: float) -> dict:
     messages = session_messages(seed + 600, session_s)
     encoded = [protocol.encode(m) for m in messages]
     n_head = next(i for i, m in enumerate(messages) if (spike_time(m) or 0.0) > 3.0)
-    loop = LoopUnderTest(tmp, "dry_run", model, dry_run=True, idle_exit_s=5.0)
+    # Never shared: the loop runs with --dry-run.
+    loop = LoopUnderTest(loops.tmp, "dry_run", loops.model, dry_run=True, idle_exit_s=5.0)
     standin_out = loop.dir / "standin.json"
     standin = subprocess.Popen([sys.executable, "-m", "rig_adapters.sim.stimulator_standin", "--events",
                                 loop.ep["events"], "--out", str(standin_out)], cwd=ROOT)
@@ -786,10 +518,15 @@ def run_dry_run(tmp: Path, model: Path, seed: int, session_s: float) -> dict:
 
 # ----------------------------------------------------------------- the run
 
-FULL = dict(fuzz_frames=105_000, fuzz_session_s=120.0, control_generated=2000, kill_runs=20, restarts=5,
-            flood_s=30.0, soak_hours=1.0, dry_run_s=40.0)
-QUICK = dict(fuzz_frames=3000, fuzz_session_s=12.0, control_generated=60, kill_runs=2, restarts=1,
-             flood_s=5.0, soak_hours=0.02, dry_run_s=12.0)
+FULL = {"fuzz_frames": 105_000, "fuzz_session_s": 120.0, "control_generated": 2000, "kill_runs": 20, "kill_within_s": 6.0,
+        "restarts": 5, "flood_s": 30.0, "soak_hours": 1.0, "soak_tile_s": 120.0, "dry_run_s": 40.0}
+QUICK = {"fuzz_frames": 2000, "fuzz_session_s": 8.0, "control_generated": 40, "kill_runs": 1, "kill_within_s": 2.0,
+         "restarts": 1, "flood_s": 4.0, "soak_hours": 0.01, "soak_tile_s": 12.0, "dry_run_s": 8.0}
+
+#: The parts in the order they run. With ``--quick`` all but the dry run share one loop, each
+#: picking up its count where the last left it: a restart loses messages on purpose and a kill
+#: ends the loop, so they come last.
+PARTS = ("fuzz", "control", "flood", "soak", "restart", "kill9", "dry_run")
 
 
 def main(argv=None) -> int:
@@ -798,30 +535,33 @@ def main(argv=None) -> int:
     parser.add_argument("--quick", action="store_true", help="a short version of every part (for the test)")
     parser.add_argument("--seed", type=int, default=3)
     parser.add_argument("--only", action="append", default=None,
-                        choices=["fuzz", "control", "kill9", "restart", "flood", "soak", "dry_run"],
+                        choices=PARTS,
                         help="run only these parts (repeatable)")
     args = parser.parse_args(argv)
     size = QUICK if args.quick else FULL
-    parts = args.only or ["fuzz", "control", "kill9", "restart", "flood", "soak", "dry_run"]
+    parts = [p for p in PARTS if p in (args.only or PARTS)]
     result: dict = {"quick": args.quick, "seed": args.seed}
     with tempfile.TemporaryDirectory(prefix="placeloop-faults-") as tmp:
         tmp = Path(tmp)
         started = time.monotonic()
-        model = fit_model(tmp, args.seed)
+        loops = Loops(tmp, fit_model(tmp, args.seed, learn_s=30.0 if args.quick else 60.0), shared=args.quick)
         runs = {
-            "fuzz": lambda: run_fuzz(tmp, model, size["fuzz_frames"], size["fuzz_session_s"], args.seed),
-            "control": lambda: run_control(tmp, model, args.seed, size["control_generated"]),
-            "kill9": lambda: run_kill9(tmp, model, size["kill_runs"], args.seed),
-            "restart": lambda: run_restart_and_stall(tmp, model, size["restarts"], args.seed),
-            "flood": lambda: run_flood(tmp, model, args.seed, size["flood_s"]),
-            "soak": lambda: run_soak(tmp, model, args.seed, size["soak_hours"]),
-            "dry_run": lambda: run_dry_run(tmp, model, args.seed, size["dry_run_s"]),
+            "fuzz": lambda: run_fuzz(loops, size["fuzz_frames"], size["fuzz_session_s"], args.seed),
+            "control": lambda: run_control(loops, args.seed, size["control_generated"]),
+            "flood": lambda: run_flood(loops, args.seed, size["flood_s"]),
+            "soak": lambda: run_soak(loops, args.seed, size["soak_hours"], size["soak_tile_s"]),
+            "restart": lambda: run_restart_and_stall(loops, size["restarts"], args.seed),
+            "kill9": lambda: run_kill9(loops, size["kill_runs"], args.seed, size["kill_within_s"]),
+            "dry_run": lambda: run_dry_run(loops, args.seed, size["dry_run_s"]),
         }
-        for name in parts:
-            part_started = time.monotonic()
-            result.update(runs[name]())
-            result[f"{name}_bench_wall_s"] = time.monotonic() - part_started
-            print(f"faults: {name} done in {time.monotonic() - part_started:.0f} s", file=sys.stderr)
+        try:
+            for name in parts:
+                part_started = time.monotonic()
+                result.update(runs[name]())
+                result[f"{name}_bench_wall_s"] = time.monotonic() - part_started
+                print(f"faults: {name} done in {time.monotonic() - part_started:.0f} s", file=sys.stderr)
+        finally:
+            result["shared_loop_ran_well"] = loops.close()
         result["wall_s"] = time.monotonic() - started
     Path(args.json).parent.mkdir(parents=True, exist_ok=True)
     Path(args.json).write_text(json.dumps(result, indent=2, default=float))
