@@ -258,16 +258,20 @@ class Loops:
     Sharing saves the start of a process per part (about 6 s here) for ``--quick``.
     """
 
-    def __init__(self, tmp: Path, model: Path, shared: bool) -> None:
-        self.tmp, self.model, self.shared = tmp, model, shared
+    def __init__(self, tmp: Path, model: Path, shared: bool, overrides: dict | None = None) -> None:
+        self.tmp, self.model, self.shared, self.overrides = tmp, model, shared, overrides or {}
         self._loop: LoopUnderTest | None = None
+
+    def new(self, name: str, **kwargs) -> LoopUnderTest:
+        """A loop of its own, subscribed."""
+        loop = LoopUnderTest(self.tmp, name, self.model, overrides=self.overrides, **kwargs)
+        loop.wait_subscribed()
+        return loop
 
     def get(self, name: str, **kwargs) -> LoopUnderTest:
         if self.shared and self._loop is not None:
             return self._loop
-        loop = LoopUnderTest(self.tmp, "shared" if self.shared else name, self.model,
-                             **({"idle_exit_s": 600.0} if self.shared else kwargs))
-        loop.wait_subscribed()
+        loop = self.new("shared" if self.shared else name, **({"idle_exit_s": 600.0} if self.shared else kwargs))
         if self.shared:
             self._loop = loop
         return loop

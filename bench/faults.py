@@ -111,15 +111,15 @@ def reference_events(config, model: Path, head: list[bytes], rest: list[bytes]) 
 def fuzz_frames(messages: list, n: int, rng: np.random.Generator, seed: int) -> tuple[list[bytes], dict]:
     """``n`` hostile frames in a shuffled mix, and how many of each kind.
 
-    Hypothesis builds a tenth of them: it takes about 10 ms a frame here, the
-    other generators microseconds.
+    Hypothesis builds a twentieth of them (at least 200): it takes about 10 ms
+    a frame here, the other generators microseconds.
     """
     valid = fault_frames.renamed(messages[:2000])
     templates = [msgpack.unpackb(v, raw=False) for v in valid[:200]]
     parts = {
-        "structured": fault_frames.structured_frames(templates, n // 10, seed),
+        "structured": fault_frames.structured_frames(templates, max(n // 20, 200), seed),
         "random_bytes": fault_frames.random_frames(n * 4 // 10, rng),
-        "mutated": fault_frames.mutated_frames(valid, n * 4 // 10, rng),
+        "mutated": fault_frames.mutated_frames(valid, n * 45 // 100, rng),
     }
     # Valid frames from ever new invented sources: the per-source table must stay bounded.
     n_sources = n - sum(len(p) for p in parts.values())
@@ -131,7 +131,8 @@ def fuzz_frames(messages: list, n: int, rng: np.random.Generator, seed: int) -> 
 
 def run_fuzz(loops: Loops, n_frames: int, session_s: float, seed: int) -> dict:
     rng = np.random.default_rng(seed)
-    messages = session_messages(seed + 100, session_s)
+    # The dry run's session: its animal visits the goal within the first seconds, so that both fire.
+    messages = session_messages(seed + 600, session_s)
     encoded = [protocol.encode(m) for m in messages]
     n_head = next(i for i, m in enumerate(messages) if (spike_time(m) or 0.0) > 3.0)
     frames, mix = fuzz_frames(messages, n_frames, rng, seed)
@@ -488,8 +489,8 @@ def run_dry_run(loops: Loops, seed: int, session_s: float) -> dict:
     messages = session_messages(seed + 600, session_s)
     encoded = [protocol.encode(m) for m in messages]
     n_head = next(i for i, m in enumerate(messages) if (spike_time(m) or 0.0) > 3.0)
-    # Never shared: the loop runs with --dry-run.
-    loop = LoopUnderTest(loops.tmp, "dry_run", loops.model, dry_run=True, idle_exit_s=5.0)
+    # Never shared: the loop runs with --dry-run. The consumers connect first: whatever it published, they would get.
+    loop = LoopUnderTest(loops.tmp, "dry_run", loops.model, overrides=loops.overrides, dry_run=True, idle_exit_s=5.0)
     standin_out = loop.dir / "standin.json"
     standin = subprocess.Popen([sys.executable, "-m", "rig_adapters.sim.stimulator_standin", "--events",
                                 loop.ep["events"], "--out", str(standin_out)], cwd=ROOT)
@@ -520,13 +521,19 @@ def run_dry_run(loops: Loops, seed: int, session_s: float) -> dict:
 
 FULL = {"fuzz_frames": 105_000, "fuzz_session_s": 120.0, "control_generated": 2000, "kill_runs": 20, "kill_within_s": 6.0,
         "restarts": 5, "flood_s": 30.0, "soak_hours": 1.0, "soak_tile_s": 120.0, "dry_run_s": 40.0}
-QUICK = {"fuzz_frames": 2000, "fuzz_session_s": 8.0, "control_generated": 40, "kill_runs": 1, "kill_within_s": 2.0,
-         "restarts": 1, "flood_s": 4.0, "soak_hours": 0.01, "soak_tile_s": 12.0, "dry_run_s": 8.0}
+QUICK = {"fuzz_frames": 2000, "fuzz_session_s": 12.0, "control_generated": 40, "kill_runs": 1, "kill_within_s": 2.0,
+         "restarts": 1, "flood_s": 4.0, "soak_hours": 0.01, "soak_tile_s": 12.0, "dry_run_s": 12.0}
+
+#: With ``--quick``, a goal zone large enough for a few seconds of session to fire in it.
+QUICK_ZONES = {"zones": [{"kind": "circle", "name": "goal", "center_cm": [50.0, 50.0], "radius_cm": 30.0}]}
 
 #: The parts in the order they run. With ``--quick`` all but the dry run share one loop, each
 #: picking up its count where the last left it: a restart loses messages on purpose and a kill
 #: ends the loop, so they come last.
 PARTS = ("fuzz", "control", "flood", "soak", "restart", "kill9", "dry_run")
+
+#: The order of a full run, each part on a loop of its own: the longest, the soak, last.
+FULL_ORDER = ("fuzz", "control", "restart", "flood", "dry_run", "kill9", "soak")
 
 
 def main(argv=None) -> int:
@@ -539,12 +546,13 @@ def main(argv=None) -> int:
                         help="run only these parts (repeatable)")
     args = parser.parse_args(argv)
     size = QUICK if args.quick else FULL
-    parts = [p for p in PARTS if p in (args.only or PARTS)]
+    parts = [p for p in (PARTS if args.quick else FULL_ORDER) if p in (args.only or PARTS)]
     result: dict = {"quick": args.quick, "seed": args.seed}
     with tempfile.TemporaryDirectory(prefix="placeloop-faults-") as tmp:
         tmp = Path(tmp)
         started = time.monotonic()
-        loops = Loops(tmp, fit_model(tmp, args.seed, learn_s=30.0 if args.quick else 60.0), shared=args.quick)
+        loops = Loops(tmp, fit_model(tmp, args.seed, learn_s=30.0 if args.quick else 60.0), shared=args.quick,
+                      overrides=QUICK_ZONES if args.quick else None)
         runs = {
             "fuzz": lambda: run_fuzz(loops, size["fuzz_frames"], size["fuzz_session_s"], args.seed),
             "control": lambda: run_control(loops, args.seed, size["control_generated"]),
@@ -554,17 +562,20 @@ def main(argv=None) -> int:
             "kill9": lambda: run_kill9(loops, size["kill_runs"], args.seed, size["kill_within_s"]),
             "dry_run": lambda: run_dry_run(loops, args.seed, size["dry_run_s"]),
         }
+        out = Path(args.json)
+        out.parent.mkdir(parents=True, exist_ok=True)
         try:
             for name in parts:
                 part_started = time.monotonic()
                 result.update(runs[name]())
                 result[f"{name}_bench_wall_s"] = time.monotonic() - part_started
                 print(f"faults: {name} done in {time.monotonic() - part_started:.0f} s", file=sys.stderr)
+                # Written after every part: a long run stopped early keeps what it measured.
+                out.write_text(json.dumps(result, indent=2, default=float))
         finally:
             result["shared_loop_ran_well"] = loops.close()
         result["wall_s"] = time.monotonic() - started
-    Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-    Path(args.json).write_text(json.dumps(result, indent=2, default=float))
+    out.write_text(json.dumps(result, indent=2, default=float))
     keys = [k for k in ("fuzz_frames", "fuzz_crashes", "fuzz_false_events", "fuzz_uncounted", "control_cases",
                         "control_crashes", "kill9_runs", "kill9_unrecoverable", "kill9_lost_s_max",
                         "restart_recovery_s_max", "stall_disarm_s", "soak_hours_simulated", "soak_rss_growth_pct",

@@ -47,7 +47,7 @@ from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
 from decoder.session.scoring import ErrorHistogram, VisitScore
 from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder
-from decoder.session.streams import SpikeWatermark, StreamHealth
+from decoder.session.streams import CONTROL_STREAM, SpikeWatermark, StreamHealth
 from decoder.session.triggers import SessionCapError, StepInput, TriggerBank
 from decoder.space.zones import zone_masks
 
@@ -98,9 +98,9 @@ class Pipeline:
         }
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
-        # The session's own streams are tracked whatever else comes (ingest numbers commands as "control").
+        # The session's own streams are tracked whatever else comes.
         self.health = StreamHealth(reserved=frozenset((config.sources.spikes, config.sources.tracker,
-                                                       config.sources.truth, "control")))
+                                                       config.sources.truth, CONTROL_STREAM)))
         s = config.session
         self.spike_sanity = SpikeSanity(s.artefact_ceiling_hz, s.artefact_window_s, s.artefact_population_fraction,
                                         s.artefact_population_window_s, s.artefact_population_min_units)

@@ -11,6 +11,10 @@ from dataclasses import dataclass, field
 #: keeps a flood of invented names from growing the session's tables without bound.
 MAX_SOURCES = 256
 
+#: The stream the shell numbers operator commands on (rig_adapters.wire.ingest): no
+#: rig source may use the name, or its numbers could make a command look stale.
+CONTROL_STREAM = "control"
+
 #: The summary's name for every source beyond :data:`MAX_SOURCES`.
 OTHER_SOURCES = "(other sources)"
 
