@@ -310,6 +310,27 @@ def test_a_spike_clock_that_stays_ahead_is_followed_and_the_triggers_disarm(sess
     assert pipeline.spike_watermark_s > 250.0 and _steps(outputs)[-1].t_s > 250.0
 
 
+def test_a_spike_clock_set_back_is_followed_and_the_triggers_disarm(session_messages):
+    # Before issue 17's fix, times 100 s behind left the watermark where it was:
+    # no step closed for the rest of the session while the triggers stayed armed, with no notice.
+    config, messages = session_messages
+    i = _index(messages, SpikeBatch, "ephys", 140.0)
+    later = []
+    for m in messages[i:]:
+        if m.source == "ephys" and isinstance(m, (SpikeBatch, Heartbeat)):
+            m = dataclasses.replace(m, t_s=m.t_s - 100.0)
+        later.append(m)
+    pipeline, outputs = _run(config, messages[:i] + later)
+    notices = [o for o in outputs if isinstance(o, Notice) and o.kind in ("time_jump", "disarmed")]
+    assert [n.kind for n in notices] == ["time_jump", "disarmed"]
+    assert notices[1].detail == {"reason": "time_jump"}
+    # (The trigger bank then also sees its steps' times go back, and says so as its last reason.)
+    assert not pipeline.bank.armed
+    assert pipeline.counters["time_jumps"] == RESYNC_AFTER_MESSAGES - 1
+    # Decoding goes on, on the clock set back (the session's data end at 160 s, now stamped 60 s).
+    assert 55.0 < pipeline.spike_watermark_s < 61.0 and 55.0 < _steps(outputs)[-1].t_s < 61.0
+
+
 def test_a_rejected_frame_is_no_gap_and_a_lost_one_is(session_messages):
     config, messages = session_messages
     tracker = [i for i, m in enumerate(messages) if isinstance(m, TrackerFrames) and m.source == "tracker"]
