@@ -20,7 +20,8 @@ import tomli_w
 import zmq
 
 from decoder.config import parse_config
-from decoder.messages import Heartbeat, SpikeBatch
+from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse
+from decoder.session.clock import fit_clock
 from decoder.session.pipeline import Pipeline
 from rig_adapters.sim.demo import free_loopback_port
 from rig_adapters.sim.simulation import (
@@ -251,7 +252,6 @@ def event_keys(events) -> list[tuple]:
     return [(e["rule"], e["zone"], round(float(e["t_s"]), 6)) for e in events]
 
 
-
 class Loops:
     """Hands each part of the probe its loop: a fresh process per part, or (``shared``) one for all.
 
@@ -269,6 +269,7 @@ class Loops:
         return loop
 
     def get(self, name: str, **kwargs) -> LoopUnderTest:
+        """The part's loop: the shared one (started at the first call), or a fresh one."""
         if self.shared and self._loop is not None:
             return self._loop
         loop = self.new("shared" if self.shared else name, **({"idle_exit_s": 600.0} if self.shared else kwargs))
@@ -291,6 +292,7 @@ class Loops:
         return alive and loop.stop() in (0, -signal.SIGTERM)
 
     def close(self) -> bool:
+        """Stop the shared loop, if any; whether it ran and stopped as it should."""
         if self._loop is None:
             return True
         alive = self._loop.alive()
@@ -305,7 +307,6 @@ def send_real_time(loop: LoopUnderTest, messages, encoded, duration_s: float, wa
     """
     started = time.monotonic()
     t0 = None
-    i = start
     for i in range(start, len(messages)):
         t = spike_time(messages[i])
         if t is not None:
@@ -327,9 +328,6 @@ def tiled(messages: list, tiles: int):
     times move on by the tile's length on that clock, from a fit of the
     tile's own sync pulses (decoder.session.clock.fit_clock).
     """
-    from decoder.messages import SourceAnnounce, SyncPulse
-    from decoder.session.clock import fit_clock
-
     length_s = max(spike_time(m) or 0.0 for m in messages)
     pulses = {}
     for m in messages:

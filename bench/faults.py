@@ -477,6 +477,8 @@ def run_soak(loops: Loops, seed: int, hours: float, tile_s: float) -> dict:
         "soak_uncounted": loop.sent - counted,
         "soak_loop_ran_well": ran_well,
         "soak_steps": status["counters"]["decode_steps"],
+        "soak_counters": {k: status["counters"][k] for k in ("bad_messages", "stale_messages", "time_jumps",
+                                                             "clock_mismatch", "steps_skipped", "events")},
         "soak_rss_mb_after_warm_up": first / 1024,
         "soak_rss_mb_end": last / 1024,
         "soak_rss_growth_pct": 100.0 * (last - first) / first,

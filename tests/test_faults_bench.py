@@ -28,7 +28,7 @@ FIELDS = ("fuzz_frames", "fuzz_crashes", "fuzz_false_events", "fuzz_uncounted", 
 def test_the_quick_fault_probe_finds_nothing(tmp_path):
     out = tmp_path / "faults.json"
     run = subprocess.run([sys.executable, "bench/faults.py", "--quick", "--json", str(out)], cwd=ROOT,
-                         capture_output=True, text=True, timeout=600)
+                         capture_output=True, text=True, timeout=600, check=False)
     assert run.returncode == 0, run.stderr[-3000:]
     result = json.loads(out.read_text())
     assert set(FIELDS) <= set(result)
