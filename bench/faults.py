@@ -270,16 +270,27 @@ def control_cases(tmp: Path, model: Path, seed: int, n_generated: int) -> list[t
 
 
 def run_control(loops: Loops, seed: int, n_generated: int) -> dict:
+    """Every case answered; none of the named (bad) cases accepted; the model in use kept through them.
+
+    Generated requests come after the named ones: some are valid commands
+    (a ``start_learning`` with its arguments intact changes the state, as asked).
+    """
     cases = control_cases(loops.tmp, loops.model, seed, n_generated)
     loop = loops.get("control", log=False, idle_exit_s=600.0)
-    crashes, unanswered, accepted = [], 0, []
+    crashes, unanswered, accepted, generated_accepted = [], 0, [], 0
+    after_named = None
     try:
         for name, parts in cases:
+            generated = name.startswith(("generated/", "random_bytes/"))
+            if generated and after_named is None:
+                after_named = loop.status()
             reply = loop.raw_request(*parts, timeout_s=5.0)
             if reply is None:
                 unanswered += 1
-            elif reply["ok"] and not name.startswith(("generated/", "random_bytes/")):
-                accepted.append(name)
+            elif reply["ok"]:
+                generated_accepted += generated
+                if not generated:
+                    accepted.append(name)
             if reply is None or not loop.alive():
                 crashes.append(name)
                 if not loop.alive():
@@ -293,7 +304,8 @@ def run_control(loops: Loops, seed: int, n_generated: int) -> dict:
         "control_crashed_cases": crashes[:20],
         "control_unanswered": unanswered,
         "control_bad_cases_accepted": accepted,
-        "control_still_decoding": after["state"] == "decoding",
+        "control_generated_accepted": generated_accepted,
+        "control_still_decoding": (after_named or after)["state"] == "decoding",
         "control_refused": after["control"]["refused"],
     }
 
