@@ -313,16 +313,26 @@ def run_control(loops: Loops, seed: int, n_generated: int) -> dict:
 # ----------------------------------------------------------------- 3. kill -9 during recording
 
 def run_kill9(loops: Loops, runs: int, seed: int, kill_within_s: float) -> dict:
+    """Kill -9 while recording at real time; read and replay what is left.
+
+    ``kill9_lost_s`` is the data time sent before the kill minus the data
+    time recovered: on a starved machine it includes what still sat in the
+    socket queues, never received. ``kill9_lost_after_receipt_s`` counts only
+    data the loop had provably received, recorded and decoded before it died
+    (its newest state frame, sent after the recorder took the message that
+    closed the step) and the log did not keep: the recorder's own loss.
+    """
     rng = np.random.default_rng(seed)
     messages = session_messages(seed + 200, 8.0)
     encoded = [protocol.encode(m) for m in messages]
-    lost, unrecoverable, details = [], 0, []
+    lost, lost_received, unrecoverable, details = [], [], 0, []
     step_s = BASE["decoder"]["step_s"]
     flush_s = None
     for run in range(runs):
         # Shared (--quick), the loop killed has recorded every earlier part, hostile frames included.
         loop = loops.take(f"kill9_{run}", idle_exit_s=60.0)
         try:
+            loop.drain(loop.state_sub)
             kill_after_s = float(rng.uniform(1.0, kill_within_s))
             started = time.monotonic()
             sent_t = -np.inf
@@ -340,6 +350,9 @@ def run_kill9(loops: Loops, runs: int, seed: int, kill_within_s: float) -> dict:
                     sent_t = max(sent_t, t)
             os.kill(loop.proc.pid, signal.SIGKILL)
             loop.proc.wait()
+            time.sleep(0.2)  # the state frames it sent before it died, still on their way
+            decoded_t = max((f["t_s"] for f in loop.drain(loop.state_sub)
+                             if f["kind"] == "state" and f["state"] == "decoding"), default=-np.inf)
         finally:
             loop.stop()
         try:
@@ -349,7 +362,9 @@ def run_kill9(loops: Loops, runs: int, seed: int, kill_within_s: float) -> dict:
             flush_s = float(replay.header.get("flush_interval_s", 0.05)) if replay.header else 0.05
             assert np.isfinite(recovered_t), "nothing was recovered"
             lost.append(sent_t - recovered_t)
-            details.append({"records": len(log.records), "lost_s": sent_t - recovered_t, "damage": replay.damage})
+            lost_received.append(max(decoded_t - recovered_t, 0.0))
+            details.append({"records": len(log.records), "lost_s": sent_t - recovered_t,
+                            "lost_after_receipt_s": lost_received[-1], "damage": replay.damage})
         except Exception as exc:  # noqa: BLE001 - an unreadable log is what this part counts
             unrecoverable += 1
             details.append({"error": f"{type(exc).__name__}: {exc}"[:300]})
@@ -358,6 +373,7 @@ def run_kill9(loops: Loops, runs: int, seed: int, kill_within_s: float) -> dict:
         "kill9_unrecoverable": unrecoverable,
         "kill9_lost_s_max": max(lost) if lost else None,
         "kill9_lost_s_median": float(np.median(lost)) if lost else None,
+        "kill9_lost_after_receipt_s_max": max(lost_received) if lost_received else None,
         "kill9_bar_s": (flush_s or 0.05) + step_s,
         "kill9_details": details,
     }
