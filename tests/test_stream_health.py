@@ -169,6 +169,7 @@ def test_sources_beyond_the_cap_share_one_entry_and_the_session_streams_always_g
     assert health.accept("ephys", 0) == "ok" and health.accept("control", 1) == "ok"
     summary = health.summary()
     assert summary[OTHER_SOURCES]["messages"] == 10_000 - 8 and summary[OTHER_SOURCES]["rejected"] == 1
+    assert health.total_rejected == 1
     # Every frame is counted once: a source's own messages, or the others'.
     assert sum(h["messages"] + h["stale"] + h["rejected"] for h in summary.values()) == 10_000 + 1 + 2
 

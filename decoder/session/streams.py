@@ -170,7 +170,7 @@ class StreamHealth:
 
     @property
     def total_rejected(self) -> int:
-        return sum(h.rejected for h in self.sources.values())
+        return sum(h.rejected for h in self.sources.values()) + self.others.rejected
 
     def summary(self) -> dict[str, dict]:
         """Per source: ``messages``, ``last_seq``, ``gaps``, ``rejected``, ``stale``, ``restarts``, ``resyncs``.
