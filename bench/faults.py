@@ -1,13 +1,15 @@
 """The fault probe: hostile input, bad commands, crashes, restarts, stalls and floods against the real loop.
 
-    python bench/faults.py --json out/faults.json [--quick] [--seed 3]
+    python bench/faults.py --json out/faults.json [--quick] [--seed 3] [--only PART ...]
 
-Every part runs ``placeloop run`` as a process of its own, with real ZeroMQ
-sockets on 127.0.0.1 only, decoding with a model fitted in this process first
-on a simulated session (invented data). The bench plays the rig (an XPUB
-socket, so that it knows when the loop has subscribed), the experiment
-script (REQ on the control socket) and the consumers (SUB on the events and
-state sockets).
+Every part runs ``placeloop run`` as a process of its own (with ``--quick``,
+all but the dry run share one), with real ZeroMQ sockets on 127.0.0.1 only,
+decoding with a model fitted in this process first on a simulated session
+(invented data). The bench plays the rig (an XPUB socket, so that it knows
+when the loop has subscribed), the experiment script (REQ on the control
+socket) and the consumers (SUB on the events and state sockets);
+bench/fault_loop.py holds that harness. The JSON is written after every
+part, so a run stopped early keeps what it measured.
 
 1. **fuzz**: a valid simulated session, armed, with hostile frames
    interleaved (bench/fault_frames.py: hypothesis-built maps, random bytes,
@@ -23,19 +25,19 @@ state sockets).
    model files that cannot be used, multipart and oversized requests, and
    hypothesis-built requests; a case crashes if the loop dies or does not
    answer (``control_crashes``).
-3. **kill -9** during recording at real time, ``--kill-runs`` times; the log
-   left behind is read (``read_log``) and replayed (``replay_session``);
+3. **kill -9** during recording at real time, 20 times; the log left behind
+   is read (``read_log``) and replayed (``replay_session``);
    ``kill9_lost_s_max`` is the data time sent before the kill minus the data
    time the replay recovered, against the recorder's flush interval plus one
-   step.
+   step (``kill9_lost_after_receipt_s_max``: only what the loop had received).
 4. **restart**: the rig's publisher closes and binds again, starting its
    numbers and its clock from zero without waiting for the loop to
    reconnect; ``restart_recovery_s_max`` is the wall time from its first
    message to the first state frame of a step on its new clock.
 5. **stall**: the rig goes silent while armed; ``stall_disarm_s`` is the wall
    time from its last message to the status showing the triggers disarmed.
-6. **flood**: ten times the session's message rate (every message sent ten
-   times over, as copies from invented sources), drained: all counted.
+6. **flood**: the session sent at ten times real time, drained: all counted,
+   the data time caught up.
 7. **soak**: at least one simulated hour as fast as the loop takes it;
    ``soak_rss_growth_pct``: the resident set (``/proc/PID/status``) at the
    end against the first sample after warm-up (a fifth of the run).
