@@ -160,6 +160,16 @@ def test_repeated_old_numbers_between_numbers_in_line_are_no_restart():
     assert health.sources["ephys"].restarts == 0 and health.sources["ephys"].stale == 20
 
 
+def test_recent_messages_sent_again_stay_duplicates():
+    # A sender that repeats its last messages (a resent buffer, a test that sends a stretch twice):
+    # their numbers lie above half the count, so however many in a row, they are no restart.
+    health = StreamHealth()
+    for seq in range(200):
+        health.accept("tracker", seq)
+    assert [health.accept("tracker", s) for s in range(150, 200)] == ["stale"] * 50
+    assert health.accept("tracker", 200) == "ok" and health.sources["tracker"].restarts == 0
+
+
 def test_sources_beyond_the_cap_share_one_entry_and_the_session_streams_always_get_in():
     health = StreamHealth(reserved=frozenset({"ephys", "control"}), max_sources=8)
     verdicts = [health.accept(f"bogus{i}", 0) for i in range(10_000)]

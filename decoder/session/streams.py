@@ -18,10 +18,11 @@ CONTROL_STREAM = "control"
 #: The summary's name for every source beyond :data:`MAX_SOURCES`.
 OTHER_SOURCES = "(other sources)"
 
-#: Numbers in a row, each one above the last and all below the source's count,
-#: after which the source is taken to have restarted: a publisher that came back
-#: numbering from 0 while its first messages were lost on the way (a subscriber
-#: reconnects some 100 ms after a publisher binds again).
+#: Numbers in a row, each one above the last and all below half the source's
+#: count, after which the source is taken to have restarted: a publisher that
+#: came back numbering from 0 while its first messages were lost on the way (a
+#: subscriber reconnects some 100 ms after a publisher binds again). Recent
+#: messages sent again lie above half the count: they stay duplicates.
 RESTART_AFTER_MESSAGES = 3
 
 
@@ -62,9 +63,10 @@ class StreamHealth:
     is dropped, except right after a jump: a number that carries on from
     before the jump says the jump was one corrupt number, and the count
     resynchronises to it, so one bad number can never silence a stream.
-    Likewise :data:`RESTART_AFTER_MESSAGES` numbers in a row below the count,
-    with no message in line between them, are a publisher that restarted and
-    lost its first messages: a restart, not a stream dropped for good.
+    Likewise :data:`RESTART_AFTER_MESSAGES` numbers in a row below half the
+    count, with no message in line between them, are a publisher that
+    restarted and lost its first messages: a restart, not a stream dropped for
+    good (numbers above half the count are recent messages sent again).
 
     Parameters
     ----------
@@ -146,6 +148,9 @@ class StreamHealth:
             health.jump_gaps = 0
             health.back_run = 0
             return "resync"
+        if 2 * seq >= last:
+            health.back_run = 0
+            return "stale"
         health.back_run = health.back_run + 1 if health.back_run and seq == health.back_seq + 1 else 1
         health.back_seq = seq
         if health.back_run >= RESTART_AFTER_MESSAGES:
