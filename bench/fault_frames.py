@@ -12,10 +12,11 @@ Three generators, each seeded, none of them touching a socket:
   source first) with bytes flipped, cut, repeated or spliced together.
 
 Throwing generated garbage at a parser is common practice for fuzzing (no
-single published source). Every frame names a source of its own
-(``fuzz...``) or none that can be read, so that the valid session interleaved
-with them must decode to the same events as without them; frames that would
-claim a session source are left out by :func:`keep_off_session`.
+single published source). Frames whose readable envelope would claim one of
+the session's sources are left out (:func:`keep_off_session`), so that the
+valid session interleaved with them must decode to the same events as
+without them; :func:`spoofed_frame` makes the session's own sources' broken
+frames on purpose, numbered so that they take no number from the session.
 """
 
 from __future__ import annotations
