@@ -10,7 +10,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from decoder.session.clock import REFIT_AFTER_PULSES, ClockAligner, ClockMismatchError, fit_clock
+from decoder.session.clock import (
+    REFIT_AFTER_PULSES,
+    ClockAligner,
+    ClockMismatchError,
+    fit_clock,
+)
 
 OFFSET_S = 1234.5678
 DRIFT_PPM = 20.0

@@ -38,7 +38,7 @@ import numpy as np
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["ClockFit", "ClockAligner", "ClockMismatchError", "REFIT_AFTER_PULSES", "fit_clock"]
+__all__ = ["REFIT_AFTER_PULSES", "ClockAligner", "ClockFit", "ClockMismatchError", "fit_clock"]
 
 #: Mismatched pulses in a row, agreeing with one another on a line of their own,
 #: after which a source's clock is taken to have jumped (set back or forward) and
