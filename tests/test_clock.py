@@ -10,7 +10,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from decoder.session.clock import ClockAligner, ClockMismatchError, fit_clock
+from decoder.session.clock import (
+    REFIT_AFTER_PULSES,
+    ClockAligner,
+    ClockMismatchError,
+    fit_clock,
+)
 
 OFFSET_S = 1234.5678
 DRIFT_PPM = 20.0
@@ -200,3 +205,35 @@ def test_add_pulse_rejects_bad_input():
         aligner.add_pulse("tracker", 0, float("nan"))
     with pytest.raises(ValueError, match="pulse_id"):
         aligner.add_pulse("tracker", -1, 0.0)
+
+
+@pytest.mark.parametrize("jump_s", [-100.0, 100.0])
+def test_a_clock_that_jumps_and_stays_is_fitted_afresh(jump_s):
+    # Issue 17: a tracker clock set back (or forward) mismatched every later pulse, and its
+    # frames stayed unaligned for the rest of the session. Like the spike stream's watermark,
+    # the aligner follows a jump once enough pulses in a row agree on it.
+    ref, other = pulse_train(n=30, jitter_s=0.0)
+    aligner = ClockAligner("ephys", tolerance_s=0.002)
+    feed(aligner, ref[:10], other[:10], ids=range(10))
+    for i in range(10, 10 + REFIT_AFTER_PULSES):
+        aligner.add_pulse("ephys", i, ref[i])
+        with pytest.raises(ClockMismatchError):
+            aligner.add_pulse("tracker", i, other[i] + jump_s)
+    assert aligner.counters["refit"] == 1 and aligner.counters["mismatch"] == REFIT_AFTER_PULSES
+    # The pulses after the jump match the new fit, and frames map to the reference clock again.
+    feed(aligner, ref[15:], other[15:] + jump_s, ids=range(15, 30))
+    assert aligner.counters["mismatch"] == REFIT_AFTER_PULSES
+    assert aligner.to_reference("tracker", other[29] + jump_s) == pytest.approx(ref[29], abs=1e-6)
+
+
+def test_mismatches_that_disagree_with_one_another_are_never_followed():
+    ref, other = pulse_train(n=40, jitter_s=0.0)
+    aligner = ClockAligner("ephys", tolerance_s=0.002)
+    feed(aligner, ref[:10], other[:10], ids=range(10))
+    before = aligner.fit("tracker")
+    rng = np.random.default_rng(5)
+    for i in range(10, 40):
+        aligner.add_pulse("ephys", i, ref[i])
+        with pytest.raises(ClockMismatchError):
+            aligner.add_pulse("tracker", i, other[i] + rng.uniform(-50.0, 50.0))  # corrupt stamps, scattered
+    assert aligner.counters["refit"] == 0 and aligner.fit("tracker") == before

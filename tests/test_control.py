@@ -316,3 +316,26 @@ def test_a_failed_bind_closes_the_sockets_opened_before_it(running_loop):
             sock.close()
     # The first loop still answers.
     assert _status(endpoint)["state"] == "decoding"
+
+
+@pytest.mark.parametrize("kind", ["heartbeat", "control_kind", "rejected"])
+def test_a_rig_frame_under_the_control_stream_name_cannot_make_a_command_stale(kind):
+    # Issue 17's fault probe: two rig frames named "control" numbered 10**6 and 10**6 + 1 took the
+    # control stream's numbers, and the operator's next disarm was dropped as stale while its
+    # reply said ok. The name is the stream ingest numbers commands on; a rig may not use it.
+    from decoder.messages import Heartbeat
+    from rig_adapters.wire.ingest import Ingest
+
+    ingest = Ingest(Pipeline(_config(_ports())))
+    for seq in (10**6, 10**6 + 1):
+        if kind == "heartbeat":
+            frame = protocol.encode(Heartbeat("control", seq, 1.0))
+        elif kind == "control_kind":
+            frame = protocol.encode_control_request("arm", source="control", seq=seq)
+        else:
+            frame = msgpack.packb({"v": 1, "k": "heartbeat", "src": "control", "seq": seq, "t": "soon"})
+        ingest.rig_bytes(frame)
+    assert ingest.pipeline.counters["bad_messages"] == 2
+    outputs, reply = ingest.control_bytes(protocol.encode_control_request("disarm", {"reason": "operator"}))
+    assert reply["ok"] and [o.kind for o in outputs] == ["disarmed"]
+    assert ingest.pipeline.health.sources["control"].stale == 0

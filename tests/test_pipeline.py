@@ -102,7 +102,8 @@ def test_duplicated_and_unknown_inputs_are_counted_not_used(session_messages):
     # Spikes from a unit the model does not know are counted and dropped.
     unknown = SpikeBatch("ephys", 10**9, [150.0001], [999999])
     extra = list(messages)
-    extra.insert(spikes[-1], unknown)
+    # Where the stream is at 150 s: a batch ten seconds late would be refused as a clock set back.
+    extra.insert(next(i for i in spikes if messages[i].t_s[0] > 150.0001), unknown)
     pipeline, _ = _run(config, extra)
     assert pipeline.counters["unknown_units"] == 1
     # Its seq jumps by 10**9 and the next batch carries on from before: one bad number, no lost data.
@@ -308,6 +309,27 @@ def test_a_spike_clock_that_stays_ahead_is_followed_and_the_triggers_disarm(sess
     assert pipeline.counters["time_jumps"] == RESYNC_AFTER_MESSAGES - 1     # refused until they agreed
     # Decoding goes on, on the new clock (the session's data end at 160 s, now stamped 260 s).
     assert pipeline.spike_watermark_s > 250.0 and _steps(outputs)[-1].t_s > 250.0
+
+
+def test_a_spike_clock_set_back_is_followed_and_the_triggers_disarm(session_messages):
+    # Before issue 17's fix, times 100 s behind left the watermark where it was:
+    # no step closed for the rest of the session while the triggers stayed armed, with no notice.
+    config, messages = session_messages
+    i = _index(messages, SpikeBatch, "ephys", 140.0)
+    later = []
+    for m in messages[i:]:
+        if m.source == "ephys" and isinstance(m, (SpikeBatch, Heartbeat)):
+            m = dataclasses.replace(m, t_s=m.t_s - 100.0)
+        later.append(m)
+    pipeline, outputs = _run(config, messages[:i] + later)
+    notices = [o for o in outputs if isinstance(o, Notice) and o.kind in ("time_jump", "disarmed")]
+    assert [n.kind for n in notices] == ["time_jump", "disarmed"]
+    assert notices[1].detail == {"reason": "time_jump"}
+    # (The trigger bank then also sees its steps' times go back, and says so as its last reason.)
+    assert not pipeline.bank.armed
+    assert pipeline.counters["time_jumps"] == RESYNC_AFTER_MESSAGES - 1
+    # Decoding goes on, on the clock set back (the session's data end at 160 s, now stamped 60 s).
+    assert 55.0 < pipeline.spike_watermark_s < 61.0 and 55.0 < _steps(outputs)[-1].t_s < 61.0
 
 
 def test_a_rejected_frame_is_no_gap_and_a_lost_one_is(session_messages):

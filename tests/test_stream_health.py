@@ -8,7 +8,13 @@ RFC 3550, section 5.1).
 
 import math
 
-from decoder.session.streams import RESYNC_AFTER_MESSAGES, SpikeWatermark, StreamHealth
+from decoder.session.streams import (
+    OTHER_SOURCES,
+    RESTART_AFTER_MESSAGES,
+    RESYNC_AFTER_MESSAGES,
+    SpikeWatermark,
+    StreamHealth,
+)
 
 
 def test_gaps_duplicates_and_restarts_are_told_apart():
@@ -125,3 +131,66 @@ def test_watermark_never_follows_times_that_disagree_or_are_interrupted():
             assert mark.advance(500.0 + i) == "refused"
         assert mark.advance(10.5) == "ok"
     assert mark.t_s == 10.5
+
+
+def test_a_restarted_publisher_whose_first_messages_were_lost_is_a_restart():
+    # A subscriber reconnects some 100 ms after its publisher binds again; a PUB socket
+    # drops what it sends before then (ZeroMQ guide, "slow joiner"; from memory).
+    # Issue 17's probe: every later message was dropped as stale, decoding silently stopped.
+    health = StreamHealth()
+    for seq in range(500):
+        health.accept("ephys", seq)
+    verdicts = [health.accept("ephys", s) for s in range(7, 7 + RESTART_AFTER_MESSAGES + 2)]
+    assert verdicts == ["stale"] * (RESTART_AFTER_MESSAGES - 1) + ["restart", "ok", "ok"]
+    h = health.sources["ephys"]
+    assert (h.restarts, h.stale, h.gaps) == (1, RESTART_AFTER_MESSAGES - 1, 0)
+
+
+def test_repeated_old_numbers_between_numbers_in_line_are_no_restart():
+    # A second publisher under the same name (a misconfiguration) interleaves old numbers:
+    # each message in line breaks their run, so they stay stale and counted.
+    health = StreamHealth()
+    for seq in range(100):
+        health.accept("ephys", seq)
+    verdicts = []
+    for i in range(20):
+        verdicts.append(health.accept("ephys", 100 + i))
+        verdicts.append(health.accept("ephys", 5 + i))
+    assert verdicts == ["ok", "stale"] * 20
+    assert health.sources["ephys"].restarts == 0 and health.sources["ephys"].stale == 20
+
+
+def test_recent_messages_sent_again_stay_duplicates():
+    # A sender that repeats its last messages (a resent buffer, a test that sends a stretch twice):
+    # their numbers lie above half the count, so however many in a row, they are no restart.
+    health = StreamHealth()
+    for seq in range(200):
+        health.accept("tracker", seq)
+    assert [health.accept("tracker", s) for s in range(150, 200)] == ["stale"] * 50
+    assert health.accept("tracker", 200) == "ok" and health.sources["tracker"].restarts == 0
+
+
+def test_sources_beyond_the_cap_share_one_entry_and_the_session_streams_always_get_in():
+    health = StreamHealth(reserved=frozenset({"ephys", "control"}), max_sources=8)
+    verdicts = [health.accept(f"bogus{i}", 0) for i in range(10_000)]
+    assert verdicts == ["ok"] * 8 + ["overflow"] * (10_000 - 8)
+    assert health.note_rejected("bogus99999", 3) == "overflow"
+    assert len(health.sources) == 8
+    assert health.accept("ephys", 0) == "ok" and health.accept("control", 1) == "ok"
+    summary = health.summary()
+    assert summary[OTHER_SOURCES]["messages"] == 10_000 - 8 and summary[OTHER_SOURCES]["rejected"] == 1
+    assert health.total_rejected == 1
+    # Every frame is counted once: a source's own messages, or the others'.
+    assert sum(h["messages"] + h["stale"] + h["rejected"] for h in summary.values()) == 10_000 + 1 + 2
+
+
+def test_watermark_refuses_a_clock_set_back_and_follows_it_only_if_it_stays():
+    mark = SpikeWatermark(max_jump_s=5.0)
+    mark.advance(1000.0)
+    assert mark.advance(996.0) == "ok" and mark.t_s == 1000.0    # late within the limit, as before
+    assert mark.advance(2.0) == "refused" and mark.t_s == 1000.0
+    assert mark.advance(999.0) == "ok"                           # one bad stamp, then the stream goes on
+    verdicts = [mark.advance(3.0 + 0.01 * i) for i in range(RESYNC_AFTER_MESSAGES)]
+    assert verdicts == ["refused"] * (RESYNC_AFTER_MESSAGES - 1) + ["resync"]
+    assert mark.t_s == 3.0 + 0.01 * (RESYNC_AFTER_MESSAGES - 1)
+    assert mark.advance(-math.inf) == "ok" and mark.t_s == 3.0 + 0.01 * (RESYNC_AFTER_MESSAGES - 1)

@@ -38,7 +38,13 @@ import numpy as np
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["ClockFit", "ClockAligner", "ClockMismatchError", "fit_clock"]
+__all__ = ["REFIT_AFTER_PULSES", "ClockAligner", "ClockFit", "ClockMismatchError", "fit_clock"]
+
+#: Mismatched pulses in a row, agreeing with one another on a line of their own,
+#: after which a source's clock is taken to have jumped (set back or forward) and
+#: is fitted afresh on them: the way the spike stream's watermark follows a
+#: clock that stays where it jumped (decoder.session.streams.SpikeWatermark).
+REFIT_AFTER_PULSES = 5
 
 
 class ClockMismatchError(ValueError):
@@ -172,12 +178,19 @@ class ClockAligner:
         Largest plausible drift; quartz clocks are off by tens of ppm, so a
         fit beyond this means mismatched ids or wrong time units.
 
+    A source whose clock jumps (set back or forward) mismatches every pulse
+    after the jump; once :data:`REFIT_AFTER_PULSES` mismatched pulses in a row
+    lie on one plausible line of their own, the source is fitted afresh on
+    them (counted as ``"refit"``), so its data are aligned again. Each of
+    those pulses still raised ``ClockMismatchError``: the caller has disarmed.
+
     Attributes
     ----------
     counters : dict of str to int
         ``"matched"``, ``"unmatched"`` (dropped without a partner),
-        ``"duplicate"`` (a source repeated a pulse id; ignored) and
-        ``"mismatch"`` (rejected with ``ClockMismatchError``).
+        ``"duplicate"`` (a source repeated a pulse id; ignored),
+        ``"mismatch"`` (rejected with ``ClockMismatchError``) and ``"refit"``
+        (a clock fitted afresh after a jump).
     """
 
     def __init__(
@@ -210,7 +223,8 @@ class ClockAligner:
         self._seen: dict[str, OrderedDict[int, None]] = {}
         self._matched: dict[str, deque[tuple[int, float, float]]] = {}
         self._fits: dict[str, ClockFit] = {}
-        self.counters = {"matched": 0, "unmatched": 0, "duplicate": 0, "mismatch": 0}
+        self._mismatched: dict[str, list[tuple[int, float, float]]] = {}
+        self.counters = {"matched": 0, "unmatched": 0, "duplicate": 0, "mismatch": 0, "refit": 0}
 
     def add_pulse(self, source: str, pulse_id: int, t_s: float) -> None:
         """Record one sync pulse as seen by ``source`` on its own clock.
@@ -271,7 +285,7 @@ class ClockAligner:
         """
         dropped = [source] if source != self.reference_source else list(self._pending)
         for name in dropped:
-            for store in (self._pending, self._seen, self._matched, self._fits):
+            for store in (self._pending, self._seen, self._matched, self._fits, self._mismatched):
                 store.pop(name, None)
         logger.info("clock alignment of %s forgotten", ", ".join(map(repr, dropped)) or repr(source))
 
@@ -340,6 +354,7 @@ class ClockAligner:
             miss = abs(t_ref - float(current.to_reference(t_other)))
             if miss > self.tolerance_s:
                 self.counters["mismatch"] += 1
+                self._follow_jump(source, (pulse_id, t_ref, t_other))
                 raise ClockMismatchError(
                     f"sync pulse {pulse_id} from {source!r} lands {miss * 1e3:.3f} ms away from where the fit "
                     f"against the reference {self.reference_source!r} puts it, beyond the tolerance of "
@@ -367,4 +382,23 @@ class ClockAligner:
                 )
             self._fits[source] = fit
         history.append((pulse_id, t_ref, t_other))
+        self._mismatched.pop(source, None)
         self.counters["matched"] += 1
+
+    def _follow_jump(self, source: str, pair: tuple[int, float, float]) -> None:
+        """Keep a mismatched pair; fit ``source`` afresh once enough of them in a row agree."""
+        run = self._mismatched.setdefault(source, [])
+        run.append(pair)
+        if len(run) < REFIT_AFTER_PULSES:
+            return
+        del run[:-REFIT_AFTER_PULSES]
+        _, refs, others = zip(*run)
+        fit = fit_clock(refs, others)
+        if fit.max_residual_s > self.tolerance_s or abs(fit.drift_ppm) > self.max_drift_ppm:
+            return
+        logger.warning("the clock of %r jumped: fitted afresh on its last %d sync pulses (offset %.6f s)",
+                       source, len(run), fit.offset_s)
+        self._matched[source] = deque(run, maxlen=self.max_pulses)
+        self._fits[source] = fit
+        self._mismatched.pop(source)
+        self.counters["refit"] += 1

@@ -52,7 +52,7 @@ from decoder.session.positions import Positions
 from decoder.session.ripples import RippleOutput, RippleStream
 from decoder.session.scoring import ErrorHistogram, VisitScore
 from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder
-from decoder.session.streams import SpikeWatermark, StreamHealth
+from decoder.session.streams import CONTROL_STREAM, SpikeWatermark, StreamHealth
 from decoder.session.triggers import SessionCapError, StepInput, TriggerBank
 from decoder.signals.lfp_chunk import LfpChunk
 from decoder.space.zones import zone_masks
@@ -104,7 +104,9 @@ class Pipeline:
         }
         self.bad_reasons: dict[str, int] = {}
         self.announced: dict[str, SourceAnnounce] = {}
-        self.health = StreamHealth()
+        # The session's own streams are tracked whatever else comes.
+        self.health = StreamHealth(reserved=frozenset((config.sources.spikes, config.sources.tracker,
+                                                       config.sources.truth, CONTROL_STREAM)))
         s = config.session
         self.spike_sanity = SpikeSanity(s.artefact_ceiling_hz, s.artefact_window_s, s.artefact_population_fraction,
                                         s.artefact_population_window_s, s.artefact_population_min_units)
@@ -163,6 +165,10 @@ class Pipeline:
     def on_message(self, msg: InputMessage) -> list[Output]:
         """Feed one validated message; return the steps it closed and any notices."""
         verdict = self.health.accept(msg.source, msg.seq)
+        if verdict == "overflow":
+            # Counted in stream health as one of the other sources; no table grows for it.
+            self.counters["unknown_source"] += 1
+            return []
         if verdict == "stale":
             self.counters["stale_messages"] += 1
             log.warning("dropped message %d from %r: sequence number not above the last one", msg.seq, msg.source)
@@ -275,7 +281,7 @@ class Pipeline:
         if moved == "refused":
             self.counters["time_jumps"] += 1
             log.warning(
-                "refused a message from %r: its time %.3f s jumps %.1f s past the stream (limit %g s, "
+                "refused a message from %r: its time %.3f s jumps %+.1f s from the stream's (limit %g s, "
                 "[session] max_time_jump_s)",
                 self._spike_source, newest_s, newest_s - previous, self.watermark.max_jump_s,
             )

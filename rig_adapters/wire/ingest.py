@@ -14,7 +14,9 @@ nothing to the session, so ingest renumbers the commands it hands to the
 pipeline on one ``control`` stream (``status`` and ``load_model`` are
 answered here and take no number, so they never show as a gap); the
 watchdog's stall command is recorded as a control request for the same
-reason, so that a replay disarms at the same point of the data.
+reason, so that a replay disarms at the same point of the data. A rig frame
+under the control stream's name is refused: its numbers could otherwise make
+an operator's command look stale, dropped while its reply says ok.
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ import numpy as np
 from decoder.messages import ControlCommand
 from decoder.session.outputs import Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.streams import CONTROL_STREAM
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
 from rig_adapters.wire.framing import readable_envelope
@@ -117,6 +120,10 @@ class Ingest:
         except Exception as exc:  # noqa: BLE001 - the loop's edge: no frame may end it
             log.warning("bad rig message (bad_field): the codec failed on it (%s)", _describe(exc))
             return self._rejected("bad_field", payload)
+        if msg.source == CONTROL_STREAM:
+            # Operator commands are numbered on this stream: a rig frame under its name could make one stale.
+            log.warning("refused a rig message under the control stream's name %r", CONTROL_STREAM)
+            return self.pipeline.count_bad_message("bad_field")
         if type(msg) is ControlCommand:
             # Control belongs on the control socket; a rig cannot arm the loop.
             log.warning("refused a control command that came on the rig stream from %r", msg.source)
@@ -126,7 +133,7 @@ class Ingest:
     def _rejected(self, reason: str, payload: bytes) -> list[StepOutput | Notice]:
         """Count a rejected rig frame, as rejected for its source when its envelope is readable (no gap)."""
         envelope = readable_envelope(payload)
-        if envelope is None:
+        if envelope is None or envelope[0] == CONTROL_STREAM:
             return self.pipeline.count_bad_message(reason)
         return self.pipeline.count_bad_message(reason, *envelope)
 
@@ -160,7 +167,7 @@ class Ingest:
         if cmd.command == "load_model":
             return self._load_model(cmd.args["path"])
         self._control_seq += 1
-        cmd = dataclasses.replace(cmd, source="control", seq=self._control_seq)
+        cmd = dataclasses.replace(cmd, source=CONTROL_STREAM, seq=self._control_seq)
         return self._answer(self.pipeline.on_message(cmd))
 
     def refuse(self, reason: str, why: str) -> tuple[list, dict]:
