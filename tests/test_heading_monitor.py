@@ -115,7 +115,7 @@ def test_page_draws_the_heading_ring_in_headless_chromium(tmp_path):
         stop.set()
         publisher.join(5)
         monitor.terminate()
-        monitor.wait(10)
+        monitor.communicate(timeout=10)  # reads and closes its pipe
         pub.close()
         ctx.term()
     assert not errors, errors
