@@ -108,6 +108,14 @@ the control endpoint of the loop's config (--config), or to --endpoint.
   status                          the session's state and counters
 `arm` lets the rules drive reward and stimulation hardware."""
 
+KEYS_DESCRIPTION = """\
+Make a CurveZMQ key pair for an authenticated link: NAME.key (the secret half, mode 0600; it
+stays on the machine that uses it) and NAME.pub (the public half, to give to the other side).
+Make one pair for the decoder (its .key in [endpoints] curve_secret_key, its .pub to every peer)
+and one per peer (rig publisher, stimulator, control client; each .pub into the directory
+[endpoints] curve_clients). Existing files are never overwritten. The file format is in
+rig_adapters/wire/PROTOCOL.md (authenticated links)."""
+
 CONFIG_DESCRIPTION = """\
 The configuration: the reference of every table and key (generated from the config's own
 definitions; docs/CONFIG.md is its output), the example scenarios installed with placeloop
@@ -147,6 +155,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from rig_adapters.sessions.summary import jsonable
     from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, SessionRecorder
     from rig_adapters.live.warm_up import warm_up
+    from rig_adapters.wire.curve_keys import KeyFileError
 
     print(CAUTION, file=sys.stderr)
     if args.cpu:
@@ -206,6 +215,8 @@ def cmd_run(args: argparse.Namespace) -> int:
         loop.run(duration_s=args.wall_s, idle_exit_s=args.idle_wall_s)
     except OSError as exc:
         return _error(str(exc), EXIT_OPEN)
+    except KeyFileError as exc:
+        return _error(f"[endpoints] CurveZMQ keys: {exc}", EXIT_FILE)
     finally:
         if ttl is not None:
             ttl.close()
@@ -262,22 +273,47 @@ def cmd_control(args: argparse.Namespace) -> int:
         print(CAUTION, file=sys.stderr)
     endpoint = args.endpoint or (load_config(config_path(args.config)).endpoints.control if args.config
                                  else DEFAULT_CONTROL)
+    if bool(args.curve_key) != bool(args.server_key):
+        return _error("an authenticated link needs both --curve-key (this side's .key) and --server-key "
+                      "(the decoder's .pub)", EXIT_USAGE)
     ctx = zmq.Context.instance()
     sock = ctx.socket(zmq.REQ)
     sock.setsockopt(zmq.LINGER, 0)
     sock.setsockopt(zmq.RCVTIMEO, int(args.timeout_wall_s * 1000))
     try:
+        if args.curve_key:
+            from rig_adapters.wire.curve_keys import KeyFileError, client_of
+
+            try:
+                client_of(sock, args.curve_key, args.server_key)
+            except KeyFileError as exc:
+                return _error(str(exc), EXIT_FILE)
         sock.connect(endpoint)
         sock.send(protocol.encode_control_request(command, cmd_args))
         try:
             reply = protocol.decode_control_reply(sock.recv())
         except zmq.Again:
-            return _error(f"no reply from {endpoint} within {args.timeout_wall_s} s; is `placeloop run` up, and is "
-                          "this its config's [endpoints] control?", EXIT_NO_REPLY)
+            return _error(f"no reply from {endpoint} within {args.timeout_wall_s} s; is `placeloop run` up, is "
+                          "this its config's [endpoints] control, and, if that socket is in curve_sockets, are "
+                          "--curve-key and --server-key the right keys?", EXIT_NO_REPLY)
     finally:
         sock.close()
     print(json.dumps(reply, indent=2))
     return EXIT_OK if reply.get("ok") else EXIT_FAILED
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    from rig_adapters.wire.curve_keys import KeyFileError, write_key_pair
+
+    try:
+        secret_path, public_path = write_key_pair(args.dir, args.name)
+    except KeyFileError as exc:
+        return _error(str(exc), EXIT_USAGE)
+    except OSError as exc:
+        return _error(f"the key pair could not be written in {args.dir}: {exc}", EXIT_FILE)
+    print(f"secret key {secret_path} (mode 0600: keep it on this machine)")
+    print(f"public key {public_path} (give it to the other side)")
+    return EXIT_OK
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
@@ -450,7 +486,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--timeout-wall-s", type=float, metavar="S", default=10.0,
                    help="wall-clock seconds to wait for the reply")
     p.add_argument("--timeout-s", dest="timeout_wall_s", type=float, action=_Renamed, new="--timeout-wall-s")
+    p.add_argument("--curve-key", default=None, metavar="FILE",
+                   help="this side's .key (placeloop keys), for a control socket in [endpoints] curve_sockets "
+                        "(default: a plain link)")
+    p.add_argument("--server-key", default=None, metavar="FILE",
+                   help="the decoder's .pub, with --curve-key (default: none)")
     p.set_defaults(func=cmd_control)
+
+    p = _command(sub, "keys", "make a CurveZMQ key pair for an authenticated link", KEYS_DESCRIPTION,
+                 "  placeloop keys decoder --dir keys\n"
+                 "  placeloop keys stimulator --dir keys && cp keys/stimulator.pub keys/clients/")
+    p.add_argument("name", metavar="NAME", help="the key pair's name: NAME.key and NAME.pub")
+    p.add_argument("--dir", default=".", metavar="DIR", help="write the two files into this directory")
+    p.set_defaults(func=cmd_keys)
 
     p = _command(sub, "config", "the configuration reference, the installed scenarios, a config check",
                  CONFIG_DESCRIPTION, "  placeloop config --reference > CONFIG.md\n"
