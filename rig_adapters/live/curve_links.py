@@ -116,8 +116,11 @@ class CurveLinks:
             else:
                 reason = "handshake"
             self.refused[name][reason] += 1
-            log.warning("%s socket: a peer's handshake was refused (%s) on %s", name, reason,
-                        event["endpoint"].decode(errors="replace"))
+            count = self.refused[name][reason]
+            # ZeroMQ retries about ten times a second: the 1st, 10th, 100th ... refusal is logged, not each.
+            if count == 10 ** (len(str(count)) - 1):
+                log.warning("%s socket: a peer's handshake was refused (%s) on %s; %d so far", name, reason,
+                            event["endpoint"].decode(errors="replace"), count)
 
     @property
     def refused_total(self) -> int:
