@@ -208,6 +208,7 @@ def test_a_control_client_without_an_authorised_key_is_refused_counted_and_the_l
     assert _wait_for(lambda: loop.links.refused["control"][reason] > before)
     reply = _status(keys, endpoints["control"], "script")
     assert reply is not None and reply["ok"] and thread.is_alive()
+    assert reply["status"]["links"]["refused"]["control"][reason] > before
 
 
 def test_only_the_authorised_rig_publisher_gets_the_loops_subscription(running_loop):

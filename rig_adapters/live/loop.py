@@ -26,7 +26,8 @@ Sockets (all bound to loopback unless the config allows otherwise):
 - state PUB: one message per decoding step for monitors; SNDHWM is tiny so
   a slow or absent monitor loses frames instead of holding memory or time;
 - control REP: request/reply commands from an experiment-control script;
-  every request gets one reply, a refusal saying why (rig_adapters.wire.ingest).
+  every request gets one reply, a refusal saying why (rig_adapters.wire.ingest);
+  with CurveZMQ links, a ``status`` reply carries the links' counts.
 
 A socket that cannot be opened closes the ones opened before it, so a failed
 start leaves every port free.
@@ -190,7 +191,8 @@ class LiveLoop:
         poller = zmq.Poller()
         poller.register(self.rig, zmq.POLLIN)
         poller.register(self.control, zmq.POLLIN)
-        for monitor in (self.links.monitors if self.links is not None else ()):
+        monitors = list(self.links.monitors) if self.links is not None else []
+        for monitor in monitors:
             poller.register(monitor, zmq.POLLIN)
         started = time.monotonic()
         last_input = started
@@ -203,7 +205,7 @@ class LiveLoop:
                         last_input = time.monotonic()
                 if self.control in ready:
                     self._serve_control()
-                for monitor in (self.links.monitors if self.links is not None else ()):
+                for monitor in monitors:
                     if monitor in ready:
                         self.links.read_monitor(monitor)
                 now = time.monotonic()
@@ -442,6 +444,8 @@ class LiveLoop:
                 if self.recorder is not None:
                     self.recorder.record_input(parts[0], recv_wall_s, CHANNEL_CONTROL)
                 outputs, reply = self.ingest.control_bytes(parts[0])
+                if self.links is not None and reply and "status" in reply:
+                    reply["status"]["links"] = self.links.summary()
                 self._emit(outputs, recv_wall_s, time.time(), 0.0)
             else:
                 # Kept in the log, on a channel a replay does not feed: it was never a request.
