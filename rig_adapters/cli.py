@@ -91,6 +91,8 @@ nothing a stimulator bridge connects to exists, and no TTL line is driven.
 Every event that would have fired is written to the session log (channel
 events_dry_run), counted in the summary (triggers.withheld) and shown
 to monitors on the state stream (stats.dry_run, stats.events_withheld).
+With [endpoints] curve_sockets, those sockets are CurveZMQ links that admit only the peers whose
+keys are listed (placeloop keys; rig_adapters/wire/PROTOCOL.md); refusals are counted.
 Stop it with Ctrl-C or SIGTERM: the triggers stop with it and the log is completed."""
 
 REPLAY_DESCRIPTION = """\
@@ -255,6 +257,8 @@ def cmd_sim(args: argparse.Namespace) -> int:
             "--seed", str(args.seed)]
     if args.pub:
         argv += ["--pub", args.pub]
+    if args.curve_key or args.server_key:
+        argv += ["--curve-key", args.curve_key or "", "--server-key", args.server_key or ""]
     return simulated_rig.main(argv)
 
 
@@ -470,12 +474,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--data-s", type=float, metavar="S", default=600.0, help="data seconds to send")
     p.add_argument("--duration-s", dest="data_s", type=float, action=_Renamed, new="--data-s")
     p.add_argument("--seed", type=int, default=7, help="seed of the simulated animal and cells")
+    p.add_argument("--curve-key", default=None, metavar="FILE",
+                   help="the rig's .key (placeloop keys), for a decoder with rig in [endpoints] curve_sockets "
+                        "(default: a plain link)")
+    p.add_argument("--server-key", default=None, metavar="FILE",
+                   help="the decoder's .pub, with --curve-key (default: none)")
     p.set_defaults(func=cmd_sim)
 
     p = _command(sub, "control", "send one command to a running loop", CONTROL_DESCRIPTION,
                  "  placeloop control status --config my_rig.toml\n"
                  "  placeloop control load-model model.npz --config my_rig.toml\n"
-                 "  placeloop control disarm --endpoint tcp://127.0.0.1:5773", caution=True)
+                 "  placeloop control disarm --endpoint tcp://127.0.0.1:5773\n"
+                 "  placeloop control status --config my_rig.toml --curve-key keys/script.key "
+                 "--server-key keys/decoder.pub", caution=True)
     p.add_argument("command", choices=CONTROL_COMMANDS, metavar="COMMAND",
                    help=f"one of: {', '.join(CONTROL_COMMANDS)}")
     p.add_argument("path", nargs="?", default=None, metavar="MODEL", help="model file, for load-model only")

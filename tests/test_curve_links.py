@@ -195,20 +195,25 @@ def _wait_for(predicate, timeout_s=10.0):
     return predicate()
 
 
-@pytest.mark.parametrize("own, server, reason", [
-    ("outsider", "decoder", "unlisted_key"),
-    ("script", None, "wrong_server_key"),
-    (None, "decoder", "not_curve"),
+@pytest.mark.parametrize("own, server, reasons", [
+    ("outsider", "decoder", ("unlisted_key",)),
+    ("script", None, ("wrong_server_key",)),
+    # libzmq reports a plain peer as a mechanism mismatch, or, when the peer hangs up first, with no detail.
+    (None, "decoder", ("not_curve", "handshake")),
 ])
 def test_a_control_client_without_an_authorised_key_is_refused_counted_and_the_loop_goes_on(
-        running_loop, keys, own, server, reason):
+        running_loop, keys, own, server, reasons):
     loop, endpoints, _, thread = running_loop
-    before = loop.links.refused["control"][reason]
+
+    def refused():
+        return sum(loop.links.refused["control"][reason] for reason in reasons)
+
+    before = refused()
     assert _status(keys, endpoints["control"], own, server, timeout_ms=1000) is None
-    assert _wait_for(lambda: loop.links.refused["control"][reason] > before)
+    assert _wait_for(lambda: refused() > before)
     reply = _status(keys, endpoints["control"], "script")
     assert reply is not None and reply["ok"] and thread.is_alive()
-    assert reply["status"]["links"]["refused"]["control"][reason] > before
+    assert sum(reply["status"]["links"]["refused"]["control"][reason] for reason in reasons) > before
 
 
 def test_only_the_authorised_rig_publisher_gets_the_loops_subscription(running_loop):

@@ -18,7 +18,8 @@ events), read in the loop's own poller, so nothing is shared across threads:
 - ``wrong_server_key``: a client that does not hold the loop's public key
   (the handshake cannot be decrypted);
 - ``not_curve``: a plain ZeroMQ peer, without CURVE at all;
-- ``handshake``: any other failed handshake.
+- ``handshake``: any other failed handshake, and one libzmq reports with
+  no detail (a plain peer that hangs up before the mismatch is reported).
 
 A peer that keeps reconnecting is refused, and counted, once per try.
 """

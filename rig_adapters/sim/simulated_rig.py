@@ -181,7 +181,7 @@ def run_rig(
         Nobody subscribed within ``wait_s``.
     """
     _check_run_args(endpoint, speed, duration_s, seed, allow_remote)
-    if (curve_key is None) != (server_key is None):
+    if bool(curve_key) != bool(server_key):
         raise ValueError("a CurveZMQ link needs both curve_key (this rig's .key) and server_key (the decoder's .pub)")
     config = load_config(config_path)
     settings = SimulationSettings.from_dict(config.simulation)
@@ -196,7 +196,7 @@ def run_rig(
         sock.setsockopt(zmq.SNDHWM, SEND_HWM)
         # Wait (back-pressure) instead of silently dropping when the queue is full.
         sock.setsockopt(zmq.XPUB_NODROP, 1)
-        if curve_key is not None:
+        if curve_key:
             client_of(sock, curve_key, server_key)
         sock.bind(endpoint)
         bound = sock.getsockopt_string(zmq.LAST_ENDPOINT)
