@@ -25,6 +25,7 @@ import zmq
 
 from decoder.config import ConfigError, parse_config
 from decoder.session.pipeline import Pipeline
+from rig_adapters.live.curve_links import plain_network_links
 from rig_adapters.live.loop import LiveLoop
 from rig_adapters.sim.demo import free_loopback_port
 from rig_adapters.sim.simulated_rig import run_rig
@@ -100,6 +101,17 @@ def test_the_config_names_its_curve_sockets_and_needs_both_key_paths():
     with pytest.raises(ConfigError, match="curve_secret_key is needed"):
         parse_config(tomli_w.dumps({**BASE, "endpoints": {"curve_sockets": ["control"], "curve_clients": "c"}}))
     assert parse_config(tomli_w.dumps(BASE)).endpoints.curve_sockets == ()
+
+
+def test_a_plain_link_that_crosses_a_network_is_named_and_a_loopback_or_curve_one_is_not():
+    # 192.0.2.0/24 is TEST-NET-1 (RFC 5737), for documentation; nothing here opens a socket.
+    endpoints = {"rig": ["tcp://127.0.0.1:5770", "tcp://192.0.2.7:5770"], "events": "tcp://192.0.2.1:5771",
+                 "control": "tcp://192.0.2.1:5773", "allow_remote": True,
+                 "curve_sockets": ["control"], "curve_secret_key": "d.key", "curve_clients": "clients"}
+    settings = parse_config(tomli_w.dumps({**BASE, "endpoints": endpoints})).endpoints
+    assert plain_network_links(settings) == [("rig", "tcp://192.0.2.7:5770"), ("events", "tcp://192.0.2.1:5771")]
+    assert plain_network_links(settings, dry_run=True) == [("rig", "tcp://192.0.2.7:5770")]
+    assert plain_network_links(parse_config(tomli_w.dumps(BASE)).endpoints) == []
 
 
 # -- a real loop ------------------------------------------------------------------------------

@@ -32,7 +32,7 @@ import zmq
 from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
-from decoder.config.shell import CURVE_SOCKET_NAMES, EndpointSettings
+from decoder.config.shell import CURVE_SOCKET_NAMES, EndpointSettings, is_loopback_endpoint
 from rig_adapters.wire.curve_keys import as_server, read_authorised, read_key
 
 log = logging.getLogger(__name__)
@@ -43,6 +43,18 @@ _MONITOR_EVENTS = (zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_HANDSHAKE_FAILED_AU
 
 #: Refusal reasons, in the order the summary lists them.
 REFUSAL_REASONS = ("unlisted_key", "wrong_server_key", "not_curve", "handshake")
+
+
+def plain_network_links(settings: EndpointSettings, dry_run: bool = False) -> list[tuple[str, str]]:
+    """The (socket, endpoint) pairs that would cross a network as plain ZeroMQ: not loopback, not CURVE.
+
+    Anyone on that network can read such a link and, unless a firewall
+    stops them, connect to it; the loop warns of each at start.
+    """
+    sockets = {"rig": settings.rig, "events": () if dry_run else (settings.events,),
+               "state": (settings.state,), "control": (settings.control,)}
+    return [(name, endpoint) for name, endpoints in sockets.items() for endpoint in endpoints
+            if name not in settings.curve_sockets and not is_loopback_endpoint(endpoint)]
 
 
 class _AuthorisedKeys:

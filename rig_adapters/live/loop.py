@@ -66,7 +66,7 @@ from rig_adapters.wire.ingest import (
 )
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
 from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
-from rig_adapters.live.curve_links import CurveLinks
+from rig_adapters.live.curve_links import CurveLinks, plain_network_links
 
 log = logging.getLogger(__name__)
 
@@ -139,6 +139,9 @@ class LiveLoop:
 
     def _open_sockets(self) -> None:
         ep = self.config.endpoints
+        for name, endpoint in plain_network_links(ep, self.dry_run):
+            log.warning("the %s socket's link %s crosses a network as plain ZeroMQ: anyone there can read it and "
+                        "may connect to it; list %r in [endpoints] curve_sockets", name, endpoint, name)
         try:
             if ep.curve_sockets:
                 # Keys are read and the ZAP handler started before any socket can take a peer.
