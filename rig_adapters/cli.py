@@ -91,6 +91,8 @@ nothing a stimulator bridge connects to exists, and no TTL line is driven.
 Every event that would have fired is written to the session log (channel
 events_dry_run), counted in the summary (triggers.withheld) and shown
 to monitors on the state stream (stats.dry_run, stats.events_withheld).
+With [endpoints] curve_sockets, those sockets are CurveZMQ links that admit only the peers whose
+keys are listed (placeloop keys; rig_adapters/wire/PROTOCOL.md); refusals are counted.
 Stop it with Ctrl-C or SIGTERM: the triggers stop with it and the log is completed."""
 
 REPLAY_DESCRIPTION = """\
@@ -107,6 +109,14 @@ the control endpoint of the loop's config (--config), or to --endpoint.
   arm, disarm                     trigger arming: let the rules fire, or stop them
   status                          the session's state and counters
 `arm` lets the rules drive reward and stimulation hardware."""
+
+KEYS_DESCRIPTION = """\
+Make a CurveZMQ key pair for an authenticated link: NAME.key (the secret half, mode 0600; it
+stays on the machine that uses it) and NAME.pub (the public half, to give to the other side).
+Make one pair for the decoder (its .key in [endpoints] curve_secret_key, its .pub to every peer)
+and one per peer (rig publisher, stimulator, control client; each .pub into the directory
+[endpoints] curve_clients). Existing files are never overwritten. The file format is in
+rig_adapters/wire/PROTOCOL.md (authenticated links)."""
 
 CONFIG_DESCRIPTION = """\
 The configuration: the reference of every table and key (generated from the config's own
@@ -147,6 +157,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from rig_adapters.sessions.summary import jsonable
     from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, SessionRecorder
     from rig_adapters.live.warm_up import warm_up
+    from rig_adapters.wire.curve_keys import KeyFileError
 
     print(CAUTION, file=sys.stderr)
     if args.cpu:
@@ -206,6 +217,8 @@ def cmd_run(args: argparse.Namespace) -> int:
         loop.run(duration_s=args.wall_s, idle_exit_s=args.idle_wall_s)
     except OSError as exc:
         return _error(str(exc), EXIT_OPEN)
+    except KeyFileError as exc:
+        return _error(f"[endpoints] CurveZMQ keys: {exc}", EXIT_FILE)
     finally:
         if ttl is not None:
             ttl.close()
@@ -244,6 +257,8 @@ def cmd_sim(args: argparse.Namespace) -> int:
             "--seed", str(args.seed)]
     if args.pub:
         argv += ["--pub", args.pub]
+    if args.curve_key or args.server_key:
+        argv += ["--curve-key", args.curve_key or "", "--server-key", args.server_key or ""]
     return simulated_rig.main(argv)
 
 
@@ -262,22 +277,47 @@ def cmd_control(args: argparse.Namespace) -> int:
         print(CAUTION, file=sys.stderr)
     endpoint = args.endpoint or (load_config(config_path(args.config)).endpoints.control if args.config
                                  else DEFAULT_CONTROL)
+    if bool(args.curve_key) != bool(args.server_key):
+        return _error("an authenticated link needs both --curve-key (this side's .key) and --server-key "
+                      "(the decoder's .pub)", EXIT_USAGE)
     ctx = zmq.Context.instance()
     sock = ctx.socket(zmq.REQ)
     sock.setsockopt(zmq.LINGER, 0)
     sock.setsockopt(zmq.RCVTIMEO, int(args.timeout_wall_s * 1000))
     try:
+        if args.curve_key:
+            from rig_adapters.wire.curve_keys import KeyFileError, client_of
+
+            try:
+                client_of(sock, args.curve_key, args.server_key)
+            except KeyFileError as exc:
+                return _error(str(exc), EXIT_FILE)
         sock.connect(endpoint)
         sock.send(protocol.encode_control_request(command, cmd_args))
         try:
             reply = protocol.decode_control_reply(sock.recv())
         except zmq.Again:
-            return _error(f"no reply from {endpoint} within {args.timeout_wall_s} s; is `placeloop run` up, and is "
-                          "this its config's [endpoints] control?", EXIT_NO_REPLY)
+            return _error(f"no reply from {endpoint} within {args.timeout_wall_s} s; is `placeloop run` up, is "
+                          "this its config's [endpoints] control, and, if that socket is in curve_sockets, are "
+                          "--curve-key and --server-key the right keys?", EXIT_NO_REPLY)
     finally:
         sock.close()
     print(json.dumps(reply, indent=2))
     return EXIT_OK if reply.get("ok") else EXIT_FAILED
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    from rig_adapters.wire.curve_keys import KeyFileError, write_key_pair
+
+    try:
+        secret_path, public_path = write_key_pair(args.dir, args.name)
+    except KeyFileError as exc:
+        return _error(str(exc), EXIT_USAGE)
+    except OSError as exc:
+        return _error(f"the key pair could not be written in {args.dir}: {exc}", EXIT_FILE)
+    print(f"secret key {secret_path} (mode 0600: keep it on this machine)")
+    print(f"public key {public_path} (give it to the other side)")
+    return EXIT_OK
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
@@ -434,12 +474,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--data-s", type=float, metavar="S", default=600.0, help="data seconds to send")
     p.add_argument("--duration-s", dest="data_s", type=float, action=_Renamed, new="--data-s")
     p.add_argument("--seed", type=int, default=7, help="seed of the simulated animal and cells")
+    p.add_argument("--curve-key", default=None, metavar="FILE",
+                   help="the rig's .key (placeloop keys), for a decoder with rig in [endpoints] curve_sockets "
+                        "(default: a plain link)")
+    p.add_argument("--server-key", default=None, metavar="FILE",
+                   help="the decoder's .pub, with --curve-key (default: none)")
     p.set_defaults(func=cmd_sim)
 
     p = _command(sub, "control", "send one command to a running loop", CONTROL_DESCRIPTION,
                  "  placeloop control status --config my_rig.toml\n"
                  "  placeloop control load-model model.npz --config my_rig.toml\n"
-                 "  placeloop control disarm --endpoint tcp://127.0.0.1:5773", caution=True)
+                 "  placeloop control disarm --endpoint tcp://127.0.0.1:5773\n"
+                 "  placeloop control status --config my_rig.toml --curve-key keys/script.key "
+                 "--server-key keys/decoder.pub", caution=True)
     p.add_argument("command", choices=CONTROL_COMMANDS, metavar="COMMAND",
                    help=f"one of: {', '.join(CONTROL_COMMANDS)}")
     p.add_argument("path", nargs="?", default=None, metavar="MODEL", help="model file, for load-model only")
@@ -450,7 +497,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--timeout-wall-s", type=float, metavar="S", default=10.0,
                    help="wall-clock seconds to wait for the reply")
     p.add_argument("--timeout-s", dest="timeout_wall_s", type=float, action=_Renamed, new="--timeout-wall-s")
+    p.add_argument("--curve-key", default=None, metavar="FILE",
+                   help="this side's .key (placeloop keys), for a control socket in [endpoints] curve_sockets "
+                        "(default: a plain link)")
+    p.add_argument("--server-key", default=None, metavar="FILE",
+                   help="the decoder's .pub, with --curve-key (default: none)")
     p.set_defaults(func=cmd_control)
+
+    p = _command(sub, "keys", "make a CurveZMQ key pair for an authenticated link", KEYS_DESCRIPTION,
+                 "  placeloop keys decoder --dir keys\n"
+                 "  placeloop keys stimulator --dir keys && cp keys/stimulator.pub keys/clients/")
+    p.add_argument("name", metavar="NAME", help="the key pair's name: NAME.key and NAME.pub")
+    p.add_argument("--dir", default=".", metavar="DIR", help="write the two files into this directory")
+    p.set_defaults(func=cmd_keys)
 
     p = _command(sub, "config", "the configuration reference, the installed scenarios, a config check",
                  CONFIG_DESCRIPTION, "  placeloop config --reference > CONFIG.md\n"

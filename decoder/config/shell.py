@@ -9,6 +9,10 @@ from typing import Any, Literal, get_args
 from decoder.config.checks import ConfigError, _from_table
 
 
+#: The sockets [endpoints] curve_sockets can name.
+CURVE_SOCKET_NAMES = ("rig", "events", "state", "control")
+
+
 @dataclass(frozen=True)
 class EndpointSettings:
     """ZeroMQ endpoints. Loopback unless an interface is named explicitly."""
@@ -23,10 +27,34 @@ class EndpointSettings:
     control: str = "tcp://127.0.0.1:5773"
     #: Set to true to allow binding to an interface other than loopback.
     allow_remote: bool = False
+    #: Sockets run as authenticated, encrypted CurveZMQ links: any of "rig", "events", "state",
+    #: "control"; empty: none (plain ZeroMQ, enough when every peer is on this machine). placeloop
+    #: is the CURVE server on each; a peer without an authorised key is refused and counted.
+    curve_sockets: tuple[str, ...] = ()
+    #: With curve_sockets: placeloop's own secret key file, the .key written by `placeloop keys`
+    #: (mode 0600); its .pub goes to every peer. A relative path is taken from the working directory.
+    curve_secret_key: str = ""
+    #: With curve_sockets: the directory of the authorised peers' public key files (*.pub, from
+    #: `placeloop keys` on each peer); read at start. A relative path is taken from the working directory.
+    curve_clients: str = ""
 
     def __post_init__(self) -> None:
         rig = (self.rig,) if isinstance(self.rig, str) else tuple(self.rig)
         object.__setattr__(self, "rig", rig)
+        curve = (self.curve_sockets,) if isinstance(self.curve_sockets, str) else tuple(self.curve_sockets)
+        object.__setattr__(self, "curve_sockets", curve)
+        unknown = [name for name in curve if name not in CURVE_SOCKET_NAMES]
+        if unknown or len(set(curve)) != len(curve):
+            raise ConfigError(f"[endpoints] curve_sockets names each of {CURVE_SOCKET_NAMES} at most once, "
+                              f"got {list(curve)}")
+        for key in ("curve_secret_key", "curve_clients"):
+            value = getattr(self, key)
+            if not isinstance(value, str):
+                raise ConfigError(f"[endpoints] {key} must be a path (a string), got {value!r}")
+            if curve and not value:
+                raise ConfigError(f"[endpoints] curve_sockets is set, so {key} is needed: "
+                                  + ("the .key file from `placeloop keys`" if key == "curve_secret_key"
+                                     else "the directory of the authorised peers' .pub files"))
         for name in ("events", "state", "control"):
             endpoint = getattr(self, name)
             if not self.allow_remote and not is_loopback_endpoint(endpoint):

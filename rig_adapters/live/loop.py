@@ -26,10 +26,17 @@ Sockets (all bound to loopback unless the config allows otherwise):
 - state PUB: one message per decoding step for monitors; SNDHWM is tiny so
   a slow or absent monitor loses frames instead of holding memory or time;
 - control REP: request/reply commands from an experiment-control script;
-  every request gets one reply, a refusal saying why (rig_adapters.wire.ingest).
+  every request gets one reply, a refusal saying why (rig_adapters.wire.ingest);
+  with CurveZMQ links, a ``status`` reply carries the links' counts.
 
 A socket that cannot be opened closes the ones opened before it, so a failed
 start leaves every port free.
+
+With ``[endpoints] curve_sockets`` the sockets named there are authenticated,
+encrypted CurveZMQ links with the loop as CURVE server
+(rig_adapters.live.curve_links); refused handshakes are counted per socket
+and reason, in the state stream's stats (``links_refused``) and the summary
+(``links``).
 """
 
 from __future__ import annotations
@@ -59,6 +66,7 @@ from rig_adapters.wire.ingest import (
 )
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
 from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
+from rig_adapters.live.curve_links import CurveLinks, plain_network_links
 
 log = logging.getLogger(__name__)
 
@@ -114,6 +122,7 @@ class LiveLoop:
         self.events_sent = 0
         self.events_withheld = 0
         self._sockets: list[zmq.Socket] = []
+        self.links: CurveLinks | None = None
         self.stop_requested = False
         self.name = "placeloop"
         self._state_seq = 0
@@ -130,7 +139,14 @@ class LiveLoop:
 
     def _open_sockets(self) -> None:
         ep = self.config.endpoints
+        for name, endpoint in plain_network_links(ep, self.dry_run):
+            log.warning("the %s socket's link %s crosses a network as plain ZeroMQ: anyone there can read it and "
+                        "may connect to it; list %r in [endpoints] curve_sockets", name, endpoint, name)
         try:
+            if ep.curve_sockets:
+                # Keys are read and the ZAP handler started before any socket can take a peer.
+                self.links = CurveLinks(self.ctx, ep)
+                self.links.start()
             self.rig = self._socket(zmq.SUB, "rig", ep.rig, bind=False, options=(
                 (zmq.RCVHWM, RIG_RCVHWM), (zmq.LINGER, 0), (zmq.SUBSCRIBE, b"")))
             self.events = None
@@ -152,6 +168,8 @@ class LiveLoop:
         self._sockets.append(sock)
         for option, value in options:
             sock.setsockopt(option, value)
+        if self.links is not None and name in self.links.socket_names:
+            self.links.serve(sock, name)
         for endpoint in endpoints:
             verb = "bind" if bind else "connect"
             try:
@@ -162,6 +180,8 @@ class LiveLoop:
         return sock
 
     def _close_sockets(self) -> None:
+        if self.links is not None:
+            self.links.stop()
         for sock in self._sockets:
             sock.close()
         self._sockets.clear()
@@ -174,6 +194,9 @@ class LiveLoop:
         poller = zmq.Poller()
         poller.register(self.rig, zmq.POLLIN)
         poller.register(self.control, zmq.POLLIN)
+        monitors = list(self.links.monitors) if self.links is not None else []
+        for monitor in monitors:
+            poller.register(monitor, zmq.POLLIN)
         started = time.monotonic()
         last_input = started
         try:
@@ -185,6 +208,9 @@ class LiveLoop:
                         last_input = time.monotonic()
                 if self.control in ready:
                     self._serve_control()
+                for monitor in monitors:
+                    if monitor in ready:
+                        self.links.read_monitor(monitor)
                 now = time.monotonic()
                 if self.ttl is not None:
                     self.ttl.service(now)
@@ -378,6 +404,7 @@ class LiveLoop:
                 "dry_run": int(self.dry_run),
                 "events_withheld": self.events_withheld,
                 "control_refused": sum(self.ingest.control_refused.values()),
+                "links_refused": self.links.refused_total if self.links is not None else 0,
                 **rates,
             }
         stats = dict(self._stats)
@@ -420,6 +447,8 @@ class LiveLoop:
                 if self.recorder is not None:
                     self.recorder.record_input(parts[0], recv_wall_s, CHANNEL_CONTROL)
                 outputs, reply = self.ingest.control_bytes(parts[0])
+                if self.links is not None and reply and "status" in reply:
+                    reply["status"]["links"] = self.links.summary()
                 self._emit(outputs, recv_wall_s, time.time(), 0.0)
             else:
                 # Kept in the log, on a channel a replay does not feed: it was never a request.
@@ -475,11 +504,15 @@ class LiveLoop:
         was a dry run and how many events were published or withheld,
         ``input.control_refused`` counts refused control requests by reason
         (apart from ``input.bad_messages``, which is rig data only), and
-        ``ttl``, with a TTL device, the pulses started and the writes failed.
+        ``ttl``, with a TTL device, the pulses started and the writes failed;
+        ``links``, with CurveZMQ sockets, the peers authorised and the
+        handshakes accepted and refused per socket and reason.
         """
         summary = session_summary(self.pipeline, self.latency)
         summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld)
         summary["input"]["control_refused"] = dict(self.ingest.control_refused)
         if self.ttl is not None:
             summary["ttl"] = {"pulses": self.ttl.pulses, "failures": self.ttl.failures}
+        if self.links is not None:
+            summary["links"] = self.links.summary()
         return summary

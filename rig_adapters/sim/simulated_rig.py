@@ -11,7 +11,10 @@ every message of the session encoded by ``rig_adapters.wire.protocol``, each chu
 once the wall clock, scaled by ``--speed``, reaches the chunk's end in data
 time (``--speed 0`` sends as fast as the subscriber takes them). It stops at
 the end of ``--duration-s`` seconds of data, or on SIGTERM or SIGINT, and
-prints a one-line summary to stderr.
+prints a one-line summary to stderr. With ``--curve-key`` and ``--server-key``
+it is a CurveZMQ client of the decoder (whose ``[endpoints] curve_sockets``
+lists ``rig``): its subscriber is admitted only if it holds the decoder's key
+and lists this rig's public key.
 
 The config file needs an ``[environment]`` table (read by
 ``decoder.config``) and may have a ``[simulation]`` table
@@ -35,6 +38,7 @@ import zmq
 from decoder.config import is_loopback_endpoint, load_config
 from decoder.messages import MarkedSpikes, SpikeBatch, TrackerFrames
 from rig_adapters.wire import protocol
+from rig_adapters.wire.curve_keys import client_of
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import TRACKER_SOURCE, SimulatedSession
 
@@ -142,6 +146,8 @@ def run_rig(
     wait_s: float = 10.0,
     allow_remote: bool = False,
     stop: threading.Event | None = None,
+    curve_key: str | Path | None = None,
+    server_key: str | Path | None = None,
 ) -> RigSummary:
     """Publish a simulated session on ``endpoint`` until ``duration_s`` of data or ``stop``.
 
@@ -163,15 +169,20 @@ def run_rig(
         Allow binding an interface other than loopback.
     stop : threading.Event, optional
         Set it (from a signal handler or another thread) to stop early.
+    curve_key, server_key : str or Path, optional
+        Both or neither: this rig's ``.key`` and the decoder's ``.pub``
+        (``placeloop keys``), for a CurveZMQ link.
 
     Raises
     ------
     ValueError
-        A bad argument or config, with what to fix.
+        A bad argument, config or key file, with what to fix.
     NoSubscriberError
         Nobody subscribed within ``wait_s``.
     """
     _check_run_args(endpoint, speed, duration_s, seed, allow_remote)
+    if bool(curve_key) != bool(server_key):
+        raise ValueError("a CurveZMQ link needs both curve_key (this rig's .key) and server_key (the decoder's .pub)")
     config = load_config(config_path)
     settings = SimulationSettings.from_dict(config.simulation)
     session = SimulatedSession(config.environment, settings, seed)
@@ -185,6 +196,8 @@ def run_rig(
         sock.setsockopt(zmq.SNDHWM, SEND_HWM)
         # Wait (back-pressure) instead of silently dropping when the queue is full.
         sock.setsockopt(zmq.XPUB_NODROP, 1)
+        if curve_key:
+            client_of(sock, curve_key, server_key)
         sock.bind(endpoint)
         bound = sock.getsockopt_string(zmq.LAST_ENDPOINT)
         log.info("publishing on %s; waiting up to %g s for a subscriber", bound, wait_s)
@@ -233,6 +246,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=1, help="seed of the simulation (default 1)")
     p.add_argument("--wait-s", type=float, default=10.0, help="how long to wait for a subscriber (default 10)")
     p.add_argument("--allow-remote", action="store_true", help="allow binding an interface other than loopback")
+    p.add_argument("--curve-key", default=None,
+                   help="this rig's .key (placeloop keys) for a CurveZMQ link to the decoder (default: plain)")
+    p.add_argument("--server-key", default=None, help="the decoder's .pub, with --curve-key (default: none)")
     return p
 
 
@@ -250,7 +266,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         endpoint = args.pub if args.pub is not None else load_config(args.config).endpoints.rig[0]
         summary = run_rig(args.config, endpoint, args.speed, args.duration_s, args.seed,
-                          wait_s=args.wait_s, allow_remote=args.allow_remote, stop=stop)
+                          wait_s=args.wait_s, allow_remote=args.allow_remote, stop=stop,
+                          curve_key=args.curve_key, server_key=args.server_key)
     except (ValueError, NoSubscriberError, zmq.ZMQError) as exc:
         print(f"simulated_rig: error: {exc}", file=sys.stderr)
         return 2
