@@ -8,8 +8,10 @@ on (``configs/accuracy_open_arena.toml``, ``accuracy_linear_track.toml``,
 1. The session is written as a session log through the wire protocol
    (``record_simulated_session``) and replayed through the very pipeline a
    live run uses (``replay_session``), with every decoder and model setting
-   at its shipped default. Each decoded step gives its MAP position, dated
-   at the step's end, and its posterior.
+   at its shipped default. Each decoded step gives its decoded position
+   (the point estimate chosen at fit time: the MAP or the posterior mean),
+   dated at the step's end, and its posterior; the MAP and the mean are
+   scored beside it.
 2. The same spikes, tracker frames and sync pulses are read back from the
    log, and the plain numpy textbook decoder (``bench/textbook.py``; Zhang
    et al. 1998) learns rate maps from the learning part and decodes the test
@@ -160,7 +162,7 @@ def _errors_cm(config: ExperimentConfig, decoded_xy: np.ndarray, true_xy: np.nda
 def _placeloop(config: ExperimentConfig, log_dir: pathlib.Path, rec: Recorded) -> dict:
     env = config.environment
     step_s = config.decoder.step_s
-    times, map_xy, covered = [], [], []
+    times, decoded_xy, map_xy, mean_xy, covered = [], [], [], [], []
     fitted = {}
 
     def on_output(out: object) -> None:
@@ -168,16 +170,21 @@ def _placeloop(config: ExperimentConfig, log_dir: pathlib.Path, rec: Recorded) -
             fitted.update(out.detail["readiness"].get("filter", {}))
         if isinstance(out, StepOutput):
             times.append(out.t_s)
+            decoded_xy.append(out.step.decoded_xy_cm)
             map_xy.append(out.step.map_xy_cm)
+            mean_xy.append(out.step.mean_xy_cm)
             true_bin = int(env.bin_index(rec.true_xy_at(np.array([out.t_s])))[0])
             covered.append(in_hpd(out.step.posterior, true_bin))
 
     started = time.perf_counter()
     result = replay_session(log_dir, config, on_output=on_output)
     t = np.array(times)
-    decoded = np.array(map_xy)
-    err = _errors_cm(config, decoded, rec.true_xy_at(t))
+    truth = rec.true_xy_at(t)
+    decoded = np.array(decoded_xy)
+    err = _errors_cm(config, decoded, truth)
     return {
+        "map_median_cm": float(np.nanmedian(_errors_cm(config, np.array(map_xy), truth))),
+        "mean_median_cm": float(np.nanmedian(_errors_cm(config, np.array(mean_xy), truth))),
         "t_s": t,
         "median_cm": float(np.nanmedian(err)),
         "p90_cm": float(np.nanpercentile(err, 90)),
@@ -271,6 +278,8 @@ def _row(name: str, path: pathlib.Path, seed: int, config: ExperimentConfig, tes
         "test_steps": ours["steps"],
         "placeloop_median_cm": round(ours["median_cm"], 3),
         "placeloop_p90_cm": round(ours["p90_cm"], 3),
+        "placeloop_map_median_cm": round(ours["map_median_cm"], 3),
+        "placeloop_mean_median_cm": round(ours["mean_median_cm"], 3),
         "placeloop_summary_median_cm": ours["summary_median_cm"],
         "textbook_best_median_cm": round(theirs["best_median_cm"], 3),
         "textbook_best_p90_cm": round(theirs["best_p90_cm"], 3),
@@ -321,7 +330,9 @@ def main(argv: list[str] | None = None) -> int:
         if r["filter"]:
             f = r["filter"]
             print(f"filter {r['name']}: walk s.d. {f['walk_sd_cm']:.2f} cm per {f['step_s'] * 1e3:.0f} ms step, "
-                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:.3g}")
+                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:.3g}, decodes the "
+                  f"{f['point_estimate']} (test medians: MAP {r['placeloop_map_median_cm']:.2f}, "
+                  f"mean {r['placeloop_mean_median_cm']:.2f} cm)")
     worst = ", ".join(f"{m} {v:.3f}" for m, v in out["ratio_worst"].items())
     print(f"ratio_worst {worst} (bar <= 0.8); wall {out['wall_s']} s")
     if args.json:

@@ -165,3 +165,32 @@ def test_bad_arguments_say_what_is_wrong(walk, rates):
         fit_temperature([rates] * 2, [counts] * 2, [bins, bins[:5]], STEP_S, walk, uniform_weight=EPS)
     with pytest.raises(ValueError, match="no held-out step"):
         fit_temperature([rates] * 2, [counts] * 2, [bins - 1] * 2, STEP_S, walk, uniform_weight=EPS)
+
+
+def test_the_point_estimate_is_the_one_closer_to_the_tracked_position_on_held_out_steps(walk, rates):
+    counts, x = _session(walk, rates, 7, 800)
+    # Tracked positions: each true bin's centre jittered within the bin (4 cm), one in ten lost.
+    xy = ARENA.bin_centers_cm[x] + np.random.default_rng(8).uniform(-2, 2, (x.size, 2))
+    xy[::10] = np.nan
+    bins = np.where(np.isnan(xy[:, 0]), -1, x)
+    halves = (slice(0, 400), slice(400, 800))
+    fit = fit_temperature([rates, rates], [counts[h] for h in halves], [bins[h] for h in halves], STEP_S, walk,
+                          uniform_weight=EPS, fold_true_xy_cm=[xy[h] for h in halves])
+    # Source: an independent computation — the reference filter (decoder.inference.filtering, itself checked
+    # against an HMM library's forward pass) at the fitted temperature, each half from a uniform prior;
+    # MAP = centre of the most probable bin, mean = posterior-weighted centres; medians by numpy.
+    post = np.vstack([filter_posteriors(counts[h], rates, STEP_S, walk, uniform_weight=EPS,
+                                        temperature=fit.temperature) for h in halves])
+    known = bins >= 0
+    map_cm = np.hypot(*(ARENA.bin_centers_cm[post.argmax(axis=1)] - xy).T)[known]
+    mean_cm = np.hypot(*(post @ ARENA.bin_centers_cm - xy).T)[known]
+    assert fit.map_median_cm == pytest.approx(np.median(map_cm), rel=1e-6)
+    assert fit.mean_median_cm == pytest.approx(np.median(mean_cm), rel=1e-6)
+    # Source: the rule documented in decoder.encoding.calibration — the smaller held-out median wins.
+    assert fit.point_estimate == ("mean" if fit.mean_median_cm < fit.map_median_cm else "map")
+    # Without positions the choice is not made: the MAP, as before.
+    assert fit_temperature([rates, rates], [counts[h] for h in halves], [bins[h] for h in halves], STEP_S, walk,
+                           uniform_weight=EPS).point_estimate == "map"
+    with pytest.raises(ValueError, match="fold_true_xy_cm"):
+        fit_temperature([rates, rates], [counts[h] for h in halves], [bins[h] for h in halves], STEP_S, walk,
+                        uniform_weight=EPS, fold_true_xy_cm=[xy[:400], xy[:10]])

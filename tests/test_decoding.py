@@ -71,6 +71,27 @@ def test_uniform_prior_posterior_is_normalised_poisson_product(backend):
     mean = np.average(track.bin_centers_cm, axis=0, weights=direct)
     np.testing.assert_allclose(step.mean_xy_cm, mean, rtol=1e-10)
     assert step.peak_prob == pytest.approx(direct.max() / direct.sum(), rel=1e-10)
+    # The default point estimate is the MAP.
+    np.testing.assert_array_equal(step.decoded_xy_cm, step.map_xy_cm)
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_the_decoded_position_is_the_point_estimate_asked_for(backend):
+    track = LinearTrack((0, 0), (120, 0), bin_cm=5)
+    rates = _random_rates(2, 8, track.n_bins)
+    counts_all = np.array([1, 0, 2, 0, 0, 1, 0, 0])
+    rows = np.flatnonzero(counts_all)
+    steps = {
+        how: BayesDecoder(rates, track, track.valid_mask, window_s=0.3, point_estimate=how, backend=backend).decode(
+            rows, counts_all[rows])
+        for how in ("map", "mean")
+    }
+    # Source: the parameter's definition — the same posterior, reported as its MAP or its mean.
+    np.testing.assert_array_equal(steps["map"].posterior, steps["mean"].posterior)
+    np.testing.assert_array_equal(steps["map"].decoded_xy_cm, steps["map"].map_xy_cm)
+    np.testing.assert_array_equal(steps["mean"].decoded_xy_cm, steps["mean"].mean_xy_cm)
+    with pytest.raises(ValueError, match="point_estimate must be one of"):
+        BayesDecoder(rates, track, track.valid_mask, window_s=0.3, point_estimate="median")
 
 
 @pytest.mark.parametrize("backend", BACKENDS)

@@ -396,18 +396,25 @@ def test_the_filter_method_decodes_each_spike_once_with_the_learned_movement(ses
 def test_the_filter_fits_its_temperature_at_fit_time_and_the_model_file_keeps_it(session_messages, tmp_path):
     config, messages = session_messages
     assert config.decoder.method == "filter" and config.decoder.likelihood_temperature is None   # the defaults
-    pipeline, _ = _run(config, messages)
+    pipeline, outputs = _run(config, messages)
     fit = pipeline.model.temperature_fits_[0.025]
     # Source: the setting's definition — unset, the decoder takes the temperature fitted for its step,
     # and the readiness figures report it; the fit decoded held-out learning steps with a tracked position.
     assert pipeline.steps.decoder.likelihood_temperature == fit.temperature >= 1.0
     assert pipeline.readiness["filter"]["likelihood_temperature"] == fit.temperature
     assert 0 < fit.n_steps <= 3000 and fit.coverage_at_1 <= fit.coverage
+    # The decoded position is the point estimate chosen with the temperature, reported beside it,
+    # and the one the session's error is measured from.
+    assert pipeline.steps.decoder.point_estimate == fit.point_estimate == pipeline.readiness["filter"]["point_estimate"]
+    assert pipeline.readiness["filter"]["held_out_map_median_cm"] == fit.map_median_cm
+    step = [o for o in outputs if isinstance(o, StepOutput) and np.isfinite(o.error_cm)][-1]
+    assert step.error_cm == pytest.approx(np.hypot(*(step.step.decoded_xy_cm - step.true_xy_cm)))
     path = tmp_path / "model.npz"
     pipeline.model.save(path)
     loaded = PlaceModel.load(path)
     assert loaded.temperature_fits_ == pipeline.model.temperature_fits_
     assert loaded.likelihood_temperature(0.025) == fit.temperature
+    assert loaded.point_estimate(0.025) == fit.point_estimate
     # A loaded model has no held-out spikes: another step cannot be fitted, and says why.
     with pytest.raises(ValueError, match="no held-out learning steps"):
         loaded.likelihood_temperature(0.01)

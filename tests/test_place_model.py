@@ -773,3 +773,20 @@ def test_the_learned_walk_survives_save_and_load(tmp_path):
     loaded = PlaceModel.load(tmp_path / "m.npz")
     # Source: the file's contract — what was learned reads back unchanged.
     assert loaded.walk_variance_cm2_per_s_ == model.walk_variance_cm2_per_s_
+
+
+def test_held_out_steps_are_scored_against_a_running_median_of_the_tracked_frames():
+    track = LinearTrack((0, 0), (100, 0), bin_cm=5)
+    model = PlaceModel(track)
+    t = np.arange(0, 2.0, 0.02)
+    xy = np.column_stack([10 + 20 * t, np.zeros(t.size)])
+    xy[50] = (80.0, 0.0)  # one outlier frame at t = 1 s, 50 cm off
+    xy[70] = np.nan  # one lost frame
+    model.update_frames(t, xy)
+    bins, at = model._tracked_at(np.array([1.0, 1.4, 5.0]))
+    # Source: definition of a running median (common practice) — a lone outlier among five frames is
+    # replaced by a neighbour's value; here the straight run at 20 cm/s, 30 cm at 1 s, within a frame.
+    assert at[0, 0] == pytest.approx(30.0, abs=0.4) and bins[0] == track.bin_index(at[:1])[0]
+    assert at[1, 0] == pytest.approx(38.0, abs=0.4)
+    # After the last frame the position is unknown.
+    assert bins[2] == -1 and np.isnan(at[2]).all()

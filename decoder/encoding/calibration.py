@@ -31,6 +31,15 @@ where the true bin has almost no mass, so its optimum follows the tails.
 Coverage rises with ``T`` (a wider posterior covers more) while the
 regions' mass hardly moves, so the fit is a bisection on ``log T``.
 
+The same held-out steps choose the decoded position, the point estimate
+the session scores and shows: the MAP bin's centre or the posterior mean,
+whichever lies closer to the tracked position in the median, at the fitted
+temperature. Where the posterior is broad and round (an open arena) the
+mean averages out the bins' quantisation and the MAP's jumps between
+neighbouring peaks; where it is split between arms or along a track's two
+directions the mean falls between the modes, and the MAP wins. Which one
+wins depends on the session, so the learning data decide.
+
 References
 ----------
 Arlot S, Celisse A (2010). A survey of cross-validation procedures for
@@ -43,7 +52,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -59,6 +68,7 @@ _BISECTION_STEPS = 6
 
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
+
 
 
 @dataclass(frozen=True)
@@ -79,6 +89,13 @@ class TemperatureFit:
         the nominal 0.95, since a region is made of whole bins.
     n_steps : int
         Held-out steps with a known true bin.
+    map_median_cm, mean_median_cm : float
+        Median distance from the tracked position of the MAP bin's centre
+        and of the posterior mean, at ``temperature``, over the held-out
+        steps with a known position; NaN when no positions were given (and
+        in model files written before the choice was made).
+    point_estimate : {"map", "mean"}
+        The one with the smaller median (the MAP on a tie or without positions).
     """
 
     temperature: float
@@ -86,6 +103,9 @@ class TemperatureFit:
     coverage_at_1: float
     region_mass: float
     n_steps: int
+    map_median_cm: float = field(default=math.nan)
+    mean_median_cm: float = field(default=math.nan)
+    point_estimate: str = "map"
 
 
 def blocked_folds(n_steps: int, n_folds: int) -> list[tuple[int, int]]:
@@ -122,6 +142,7 @@ def fit_temperature(
     *,
     uniform_weight: float,
     rate_floor_hz: float = 0.01,
+    fold_true_xy_cm: Sequence[np.ndarray] | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -141,6 +162,11 @@ def fit_temperature(
     uniform_weight : float
         The movement model's uniform jump per step.
     rate_floor_hz : float, default 0.01
+    fold_true_xy_cm : sequence of ndarray, each shape (n_steps_k, 2), optional
+        Tracked position at the end of each step (NaN where unknown): with
+        them the MAP and the posterior mean are scored at the fitted
+        temperature, by ``walk.environment.distance_cm``, and the closer
+        one becomes ``point_estimate``.
 
     Returns
     -------
@@ -179,6 +205,8 @@ def fit_temperature(
     for k, (counts, bins) in enumerate(zip(fold_counts, truths)):
         if bins.shape != (np.shape(counts)[0],):
             raise ValueError(f"fold {k}: {np.shape(counts)[0]} steps of counts but true bins of shape {bins.shape}")
+    if fold_true_xy_cm is not None and [np.shape(xy) for xy in fold_true_xy_cm] != [(b.size, 2) for b in truths]:
+        raise ValueError("fold_true_xy_cm must hold one (n_steps_k, 2) array of positions per fold, like the true bins")
     n_known = int(sum((b >= 0).sum() for b in truths))
     if n_known == 0:
         raise ValueError("no held-out step has a known true bin; the tracker was lost throughout")
@@ -187,8 +215,8 @@ def fit_temperature(
     fired = [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
 
-    def held_out(temperature: float) -> tuple[float, float]:
-        """Coverage of held-out steps, and the mean mass of their HPD regions.
+    def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
+        """Coverage of held-out steps, the mean mass of their HPD regions and, if asked, the points' medians.
 
         Step by step, from the decoder's own HPD size: whole posteriors of
         thousands of steps would take more memory and time than the decoding.
@@ -196,6 +224,7 @@ def fit_temperature(
         part of one bin), so every ``_MASS_EVERY``-th known step estimates it.
         """
         inside, mass, n_mass = 0, 0.0, 0
+        points: list[np.ndarray] = []
         for rates, steps, bins in zip(fold_rate_maps_hz, fired, truths):
             decoder = BayesDecoder(
                 rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
@@ -204,6 +233,8 @@ def fit_temperature(
             )
             for (rows, counts), true_bin in zip(steps, bins.tolist()):
                 step = decoder.decode(rows, counts)
+                if score_points:
+                    points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
                 if true_bin < 0:
                     continue
                 p = step.posterior
@@ -214,10 +245,22 @@ def fit_temperature(
                     n_hpd = round(step.hpd95_size / bin_size)
                     mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
                 n_mass += 1
-        return inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY))
+        figures = (inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY)))
+        if not score_points:
+            return figures
+        decoded, truth = np.array(points), np.concatenate(fold_true_xy_cm)
+        known = np.all(np.isfinite(truth), axis=1)
+        env = walk.environment
+        medians = [float(np.nanmedian(env.distance_cm(decoded[known, i : i + 2], truth[known]))) if known.any()
+                   else math.nan for i in (0, 2)]
+        return (*figures, *medians)
 
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
-        return TemperatureFit(temperature, cov, at_1[0], mass, n_known)
+        if fold_true_xy_cm is None:
+            return TemperatureFit(temperature, cov, at_1[0], mass, n_known)
+        _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
+        choice = "mean" if mean_cm < map_cm else "map"
+        return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice)
 
     at_1 = held_out(1.0)
     if at_1[0] >= at_1[1]:

@@ -17,6 +17,7 @@ import os
 from typing import Any
 
 import numpy as np
+from scipy import ndimage
 
 from decoder.encoding.calibration import TemperatureFit, fit_temperature
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
@@ -42,6 +43,11 @@ logger = logging.getLogger(__name__)
 #: steps. Each of the fit's eight passes decodes them all (bench/decoder.py
 #: times the whole fit).
 MAX_CALIBRATION_STEPS = 3_000
+
+#: Tracked frames in the running median that the held-out steps are scored
+#: against: 5 frames, 100 ms at 50 Hz, shorter than a stride of a running
+#: rat, long enough to drop a lone outlier and halve frame-to-frame jitter.
+TRACKED_MEDIAN_FRAMES = 5
 
 __all__ = [
     "PlaceModel",
@@ -117,7 +123,8 @@ class PlaceModel(OnlineCounts):
         when the frames could not tell (too few, or no movement).
     temperature_fits_ : dict of float to TemperatureFit
         The likelihood temperature fitted for each decoding step (s) asked
-        of :meth:`likelihood_temperature` since the last :meth:`fit`, and
+        of :meth:`likelihood_temperature` since the last :meth:`fit`, with
+        the point estimate chosen beside it (:meth:`point_estimate`), and
         saved with the model.
     counters_ : dict of str to int
         What was received and what was dropped, and why.
@@ -297,6 +304,29 @@ class PlaceModel(OnlineCounts):
             self.temperature_fits_[step_s] = self._fit_temperature(step_s)
         return self.temperature_fits_[step_s].temperature
 
+    def point_estimate(self, step_s: float) -> str:
+        """The decoded position for steps of ``step_s``: ``"map"`` or ``"mean"``, chosen with the temperature.
+
+        :meth:`likelihood_temperature`'s fit scores both on the same
+        held-out steps (``decoder.encoding.calibration``); a model file
+        written before that choice was made says ``"map"``.
+
+        Parameters
+        ----------
+        step_s : float
+
+        Returns
+        -------
+        str
+
+        Raises
+        ------
+        ValueError
+            As :meth:`likelihood_temperature`.
+        """
+        self.likelihood_temperature(step_s)
+        return self.temperature_fits_[float(step_s)].point_estimate
+
     def _fit_temperature(self, step_s: float) -> TemperatureFit:
         if not hasattr(self, "rate_maps_hz_"):
             raise ValueError("the place model is not fitted; fit it before asking for its likelihood temperature")
@@ -304,7 +334,7 @@ class PlaceModel(OnlineCounts):
         env, rates, visited = self.environment, self.rate_maps_hz_, self.visited_mask_
         ends, counts = self._held_out.step_counts(step_s, self.unit_ids_)
         ends, counts = ends[-MAX_CALIBRATION_STEPS:], counts[-MAX_CALIBRATION_STEPS:]
-        true_bins = self._tracked_bins(ends)
+        true_bins, true_xy = self._tracked_at(ends)
         if ends.size < 2 or not np.any(true_bins >= 0):
             raise ValueError(
                 "no held-out learning steps with a tracked position to fit the likelihood temperature on "
@@ -316,7 +346,7 @@ class PlaceModel(OnlineCounts):
         cuts = np.flatnonzero(np.diff(block)) + 1
         if cuts.size == 0:
             cuts = np.array([ends.size // 2])
-        fold_maps, fold_counts, fold_bins, maps_of_fold = [], [], [], {}
+        fold_maps, fold_counts, fold_bins, fold_xy, maps_of_fold = [], [], [], [], {}
         for run in np.split(np.arange(ends.size), cuts):
             fold = int(block[run[0]] % self.cv_folds)
             if fold not in maps_of_fold:
@@ -327,26 +357,38 @@ class PlaceModel(OnlineCounts):
             fold_maps.append(maps_of_fold[fold])
             fold_counts.append(counts[run])
             fold_bins.append(true_bins[run])
+            fold_xy.append(true_xy[run])
         walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
-        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk,
-                              uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz)
+        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, uniform_weight=movement.uniform_weight,
+                              rate_floor_hz=self.rate_floor_hz, fold_true_xy_cm=fold_xy)
         logger.info(
-            "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps",
-            fit.temperature, step_s, fit.coverage, fit.coverage_at_1, fit.n_steps,
+            "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
+            "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f)",
+            fit.temperature, step_s, fit.coverage, fit.coverage_at_1, fit.n_steps, fit.point_estimate,
+            min(fit.map_median_cm, fit.mean_median_cm), fit.map_median_cm, fit.mean_median_cm,
         )
         return fit
 
-    def _tracked_bins(self, t_s: np.ndarray) -> np.ndarray:
-        """Tracked bin at each time (linear between valid frames); -1 in a tracking gap or off the bins."""
+    def _tracked_at(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Tracked bin (n,) and position (n, 2) at each time, linear between valid frames.
+
+        In a tracking gap the bin is -1 and the position NaN; off the bins
+        the bin is -1. The frames are a running median of
+        ``TRACKED_MEDIAN_FRAMES`` valid frames.
+        """
         frame_t, frame_xy = self.movement_frames()
         ok = np.all(np.isfinite(frame_xy), axis=1)
         frame_t, frame_xy = frame_t[ok], frame_xy[ok]
         if frame_t.size < 2:
-            return np.full(t_s.size, -1, np.int64)
+            return np.full(t_s.size, -1, np.int64), np.full((t_s.size, 2), np.nan)
+        # The tracker's jitter and outliers would count as the filter's misses and
+        # push the temperature up: a running median over a few frames removes them.
+        frame_xy = ndimage.median_filter(frame_xy, size=(TRACKED_MEDIAN_FRAMES, 1), mode="nearest")
         after = np.clip(np.searchsorted(frame_t, t_s), 1, frame_t.size - 1)
         gap = (frame_t[after] - frame_t[after - 1] > self.max_frame_gap_s) | (t_s < frame_t[0]) | (t_s > frame_t[-1])
         xy = np.column_stack([np.interp(t_s, frame_t, frame_xy[:, i]) for i in (0, 1)])
-        return np.where(gap, -1, self.environment.bin_index(xy))
+        xy[gap] = np.nan
+        return np.where(gap, -1, self.environment.bin_index(xy)), xy
 
     def readiness(self, *, with_cv_error: bool = False) -> Readiness:
         """Summarise coverage, running time and tuning so far, without changing the fit.

@@ -50,6 +50,7 @@ MAX_DENSE_GRID_BINS = 20_000
 MAX_COUNT = 1e6
 
 PRIORS = ("uniform", "state_space")
+POINT_ESTIMATES = ("map", "mean")
 BACKENDS = ("numba", "numpy")
 
 _KERNEL_NAMES = ("convolve_separable", "decode_step", "decode_window_step")
@@ -106,10 +107,16 @@ class DecodedStep(NamedTuple):
         Posterior mass inside each zone.
     n_spikes : int
         Spikes in the window.
+    decoded_xy_cm : ndarray of float64, shape (2,), read-only
+        The decoded position: ``map_xy_cm`` or ``mean_xy_cm``, as the
+        decoder's ``point_estimate`` says (for the filter chosen at fit time
+        from held-out learning data, ``decoder.encoding.calibration``). The
+        session scores, shows and exports this one; rules about the MAP
+        use ``map_bin``.
 
     Notes
     -----
-    The four arrays are views of one buffer that belongs to this step alone
+    The arrays are views of one buffer that belongs to this step alone
     (the decoder allocates one per window and never writes to it again), so
     a step may be kept for as long as needed. A named tuple rather than a
     frozen dataclass: just as immutable, and built for a fraction of the
@@ -124,6 +131,7 @@ class DecodedStep(NamedTuple):
     peak_prob: float
     zone_mass: np.ndarray
     n_spikes: int
+    decoded_xy_cm: np.ndarray
 
 
 class RandomWalk:
@@ -302,6 +310,9 @@ class BayesDecoder:
         Rates below this are raised to it, so that a spike where a unit never
         fired lowers the likelihood there instead of ruling the bin out
         (common practice).
+    point_estimate : {"map", "mean"}, default "map"
+        Which of the MAP bin's centre and the posterior mean each step
+        reports as its ``decoded_xy_cm``.
     backend : {"numba", "numpy"}, default "numba"
         Compiled kernels, or their plain numpy twins (the benchmark baseline).
 
@@ -340,6 +351,7 @@ class BayesDecoder:
         likelihood_temperature: float = 1.0,
         zone_masks: np.ndarray | None = None,
         rate_floor_hz: float = 0.01,
+        point_estimate: str = "map",
         backend: str = "numba",
     ) -> None:
         n_bins = environment.n_bins
@@ -358,6 +370,11 @@ class BayesDecoder:
         ):
             raise ValueError(f"uniform_weight must be a probability in [0, 1), got {uniform_weight!r}")
         self.uniform_weight = float(uniform_weight)
+        if point_estimate not in POINT_ESTIMATES:
+            raise ValueError(f"point_estimate must be one of {POINT_ESTIMATES}, got {point_estimate!r}")
+        self.point_estimate = point_estimate
+        # Where decoded_xy_cm starts in a step's buffer: the MAP centre, or the mean after it.
+        self._decoded_at = n_bins + (2 if point_estimate == "mean" else 0)
         self.backend = backend
         self._k = _kernel_set(backend)
 
@@ -660,8 +677,9 @@ class BayesDecoder:
         buf.setflags(write=False)
         if self.transition is not None:
             self._previous = buf
-        n = self.n_bins
+        n, d = self.n_bins, self._decoded_at
         # Positional, in field order: keywords cost a microsecond here.
         return DecodedStep(
-            buf[:n], map_bin, buf[n : n + 2], buf[n + 2 : n + 4], n_hpd * self._bin_size, peak, buf[n + 4 :], n_spikes
+            buf[:n], map_bin, buf[n : n + 2], buf[n + 2 : n + 4], n_hpd * self._bin_size, peak, buf[n + 4 :], n_spikes,
+            buf[d : d + 2],
         )

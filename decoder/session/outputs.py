@@ -27,8 +27,9 @@ class StepOutput(NamedTuple):
         (NaN when unknown).
     tracked_speed_cm_s : float
     error_cm : float
-        Distance from the MAP to the true position (or the tracked one
-        without truth); NaN when neither is known.
+        Distance from the decoded position (``step.decoded_xy_cm``: the MAP,
+        or the posterior mean where the fit chose it) to the true position
+        (or the tracked one without truth); NaN when neither is known.
     events : tuple of TriggerEvent
     false_events : tuple of bool
         For each event, whether the animal was farther than the false margin

@@ -51,7 +51,7 @@ from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
 from decoder.session.ripples import RippleOutput, RippleStream
 from decoder.session.scoring import ErrorHistogram, VisitScore
-from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder
+from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder, filter_figures
 from decoder.session.streams import CONTROL_STREAM, SpikeWatermark, StreamHealth
 from decoder.session.triggers import SessionCapError, StepInput, TriggerBank
 from decoder.signals.lfp_chunk import LfpChunk
@@ -426,13 +426,7 @@ class Pipeline:
         self.readiness = readiness
         installed = self.install_model(self.model, t_s, mark_model=mark_model)
         if self.config.decoder.method == "filter":
-            dec = self.steps.decoder
-            readiness["filter"] = {
-                "step_s": dec.window_s,
-                "walk_sd_cm": dec.random_walk_sd_cm,
-                "uniform_weight": dec.uniform_weight,
-                "likelihood_temperature": dec.likelihood_temperature,
-            }
+            readiness["filter"] = filter_figures(self.model, self.steps.decoder)
         notices = [Notice("fitted", t_s, {"readiness": readiness})]
         for name, covered in readiness["zone_coverage"].items():
             if covered < ZONE_COVERAGE_WARNING:
@@ -507,7 +501,7 @@ class Pipeline:
             true_in_zone = judge.zone_flags(x, y)
         else:
             true_xy, true_in_zone = tracked_xy, in_zone_flags
-        error = judge.error_cm(step.map_xy_cm, x, y)
+        error = judge.error_cm(step.decoded_xy_cm, x, y)
         self.errors.add(error)
         map_zone = self._zone_masks[:, step.map_bin] if self._zone_masks.size else np.zeros(0, bool)
         spike_lag = t - previous_watermark_s if previous_watermark_s != -math.inf else 0.0

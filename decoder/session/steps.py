@@ -39,9 +39,11 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     environment's bins, uniform jump) and ``settings.likelihood_temperature``,
     or, where that is unset, the model's temperature fitted for ``step_s``
     (``PlaceModel.likelihood_temperature``; fitted here on first use, right
-    after the model's fit). A model without a learned movement model (saved
+    after the model's fit), and the point estimate chosen with that fit
+    (``PlaceModel.point_estimate``) as the steps' decoded position; the
+    sliding window reports the MAP. A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
-    default jump, one that cannot fit a temperature to 1, each with a warning.
+    default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
 
     Parameters
     ----------
@@ -68,17 +70,52 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         logger.warning("%s; the filter uses random_walk_sd_cm = %g cm instead", exc, settings.random_walk_sd_cm)
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
-    temperature = settings.likelihood_temperature
-    if temperature is None:
-        try:
+    temperature, point_estimate = settings.likelihood_temperature, "map"
+    try:
+        point_estimate = model.point_estimate(settings.step_s)
+        if temperature is None:
             temperature = model.likelihood_temperature(settings.step_s)
-        except ValueError as exc:
-            logger.warning("%s; the filter uses likelihood_temperature = 1 (the plain Poisson model)", exc)
-            temperature = 1.0
+    except ValueError as exc:
+        logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g", exc, temperature or 1.0)
+        temperature = temperature or 1.0
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
-        random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature, **common,
+        random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature,
+        point_estimate=point_estimate, **common,
     )
+
+
+def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
+    """The filter's readiness figures: its movement model, temperature and decoded position.
+
+    Beside the settings the decoder runs with, the held-out figures of the
+    fit behind them (``decoder.encoding.calibration.TemperatureFit``) where
+    the model made one for this step: the 95 % HPD coverage, and the median
+    error of the MAP and of the posterior mean that chose ``point_estimate``.
+
+    Parameters
+    ----------
+    model : PlaceModel
+        Fitted.
+    decoder : BayesDecoder
+        The filter :func:`build_decoder` made for ``model``.
+
+    Returns
+    -------
+    dict of str to float or str
+    """
+    figures = {
+        "step_s": decoder.window_s,
+        "walk_sd_cm": decoder.random_walk_sd_cm,
+        "uniform_weight": decoder.uniform_weight,
+        "likelihood_temperature": decoder.likelihood_temperature,
+        "point_estimate": decoder.point_estimate,
+    }
+    fit = model.temperature_fits_.get(decoder.window_s)
+    if fit is not None:
+        figures.update(held_out_coverage=fit.coverage, held_out_map_median_cm=fit.map_median_cm,
+                       held_out_mean_median_cm=fit.mean_median_cm)
+    return figures
 
 
 class StepSchedule:
