@@ -198,3 +198,73 @@ def test_content_rule_settings_are_checked():
     with pytest.raises(ConfigError, match="content_max_s"):
         RippleSettings(content_bin_s=0.02, content_max_s=0.01)
     assert "content_bin_s" not in RippleSettings().detector_kwargs()
+
+
+# -- the ripple stream: detections start events, spikes fill their bins, content rules judge them ------
+
+
+def _run_stream(seed: int = 2):
+    from decoder.session.ripples import RippleStream
+    from decoder.session.tracking import TrackHistory
+    from decoder.signals.lfp_chunk import LfpChunk
+    from rig_adapters.sim.lfp import LfpSettings, LfpSynth
+
+    rate, duration = 1500.0, 40.0
+    synth = LfpSynth(LfpSettings(rate_hz=rate, n_channels=4, ripple_rate_hz=1.0, ripple_duration_s=(0.06, 0.1)), seed)
+    speed = np.zeros(int(rate * duration))
+    speed[:int(rate)] = 10.0  # a short run first: ripples come once the animal has come to rest
+    x = synth.block(speed)
+    settings = RippleSettings(source="lfp", warm_up_s=5.0, baseline_window_s=20.0, content_max_s=0.1)
+    bank = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_correlation=0.5, min_bins=3)],
+                       ["goal"], SafetyCaps(refractory_s=0.25, max_per_minute=200))
+    bank.arm(0.0)
+    tracked = TrackHistory(keep_s=duration + 1)
+    frames = np.arange(0.0, duration, 0.05)
+    tracked.add(frames.tolist(), [[50.0, 0.0]] * frames.size)
+    stream = RippleStream(settings, bank, tracked)
+    stream.content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=settings.content_bin_s,
+                                             max_event_s=settings.content_max_s)
+    # Every other ripple's place cells sweep towards the zone (the track's far end), the others away from it.
+    spike_t, spike_u, forward = [], [], []
+    for i, r in enumerate(synth.ripples):
+        t = r.start_s + np.arange(0.0005, r.end_s - r.start_s, 0.0025)
+        x_cm = 100.0 * (i % 2) + (1 - 2 * (i % 2)) * (t - r.start_s) * 600.0
+        spike_t.append(t)
+        spike_u.append(np.clip(np.round(x_cm / 100.0 * 19), 0, 19).astype(np.int64))
+        forward.append(i % 2 == 0)
+    t_all, u_all = np.concatenate(spike_t), np.concatenate(spike_u)
+    step = 3  # 2 ms chunks
+    fed = 0
+    ripples, bins = [], []
+    for i in range(0, x.shape[0] - step + 1, step):
+        end_s = (i + step) / rate
+        upto = int(np.searchsorted(t_all, end_s))
+        stream.take_spikes(t_all[fed:upto], u_all[fed:upto])
+        fed = upto
+        chunk = LfpChunk("lfp", i // step, i / rate, rate, x[i:i + step].astype(np.float32))
+        ripples.extend(stream.take(chunk, end_s))
+        bins.extend(stream.content_due(end_s))
+    return synth.ripples, forward, ripples, bins, stream
+
+
+def test_the_stream_decodes_each_ripple_and_fires_on_sequences_towards_the_zone():
+    truth, forward, ripples, bins, stream = _run_stream()
+    assert len(ripples) >= 10
+    fired = [e for b in bins for e in b.events]
+    hits = wrong = 0
+    for r, fwd in zip(truth, forward):
+        here = [e for e in fired if r.start_s <= e.t_s <= r.end_s + 0.1]
+        if fwd:
+            hits += bool(here)
+        else:
+            wrong += bool(here)
+    n_fwd = sum(1 for r, f in zip(truth, forward) if f and r.start_s > 6.0)
+    assert hits >= 0.8 * n_fwd and wrong == 0
+    assert stream.counters["content_bins"] == len(bins) and stream.counters["events"] == len(fired)
+    # Bins start at each detection's onset and close in order, 15 ms apart.
+    for b in bins:
+        assert b.content.t_s == pytest.approx(b.content.onset_s + 0.015 * (b.content.index + 1))
+
+
+def test_a_second_run_of_the_same_data_reproduces_the_digest():
+    assert _run_stream()[4].digest == _run_stream()[4].digest
