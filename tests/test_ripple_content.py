@@ -140,7 +140,7 @@ def _bank(*rules: TriggerRule, caps: SafetyCaps | None = None) -> TriggerBank:
 
 
 def _judge(bank: TriggerBank, t: float, index: int, mass: float = 0.0, r: float = float("nan"), speed: float = 0.0):
-    return bank.content(t, index, np.array([mass]), np.array([r]), np.array([1.0, 1.0]), speed, 0.0)
+    return bank.content(t, index, index + 1, np.array([mass]), np.array([r]), np.array([1.0, 1.0]), speed, 0.0)
 
 
 def test_mass_rule_fires_once_per_event_after_min_bins():
@@ -180,7 +180,7 @@ def test_content_rules_sit_beneath_the_caps_and_speed_bounds():
     assert not bank.armed and bank.disarm_reason == "session_cap"
     assert _judge(bank, 7.0, 0, mass=0.9) == [] and bank.counters["session_cap"] == 1
     stalled = _bank(rule)
-    assert stalled.content(1.0, 0, np.array([0.9]), np.array([0.0]), np.array([1.0, 1.0]), 0.0, 5.0) == []
+    assert stalled.content(1.0, 0, 1, np.array([0.9]), np.array([0.0]), np.array([1.0, 1.0]), 0.0, 5.0) == []
     assert stalled.disarm_reason == "stall"
 
 

@@ -50,8 +50,13 @@ class RippleSettings:
     #: Length of the content bins decoded while a ripple lasts (s): short, non-overlapping, each
     #: with the uniform prior (replay content jumps); 10-20 ms is common practice.
     content_bin_s: float = 0.015
-    #: Content bins are decoded from the ripple's onset up to this long after it (s).
-    content_max_s: float = 0.2
+    #: Content bins are decoded from the ripple's onset up to this long after it (s); ripples
+    #: last 30-100 ms (common practice).
+    content_max_s: float = 0.1
+    #: A content bin with fewer spikes is left out of the event's measures (a nearly empty bin's
+    #: posterior is close to the uniform prior and says little of the content); such a bin after
+    #: one with enough ends the event (the population burst is over).
+    content_min_spikes: int = 4
 
     def __post_init__(self) -> None:
         if not isinstance(self.source, str):
@@ -63,7 +68,7 @@ class RippleSettings:
         if not 0 < low < high:
             raise ConfigError(f"[ripples] band_hz must satisfy 0 < low < high, got {self.band_hz!r}")
         object.__setattr__(self, "band_hz", (low, high))
-        for name in ("filter_order", "min_channels"):
+        for name in ("filter_order", "min_channels", "content_min_spikes"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < 1:
                 raise ConfigError(f"[ripples] {name} must be a whole number of at least 1, got {value!r}")
@@ -88,7 +93,7 @@ class RippleSettings:
     def detector_kwargs(self) -> dict[str, Any]:
         """The ``RippleDetector`` keyword arguments this table sets."""
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
-                if f.name not in ("source", "max_speed_cm_s", "content_bin_s", "content_max_s")}
+                if f.name != "source" and f.name != "max_speed_cm_s" and not f.name.startswith("content_")}
 
 
 @dataclass(frozen=True)

@@ -6,7 +6,9 @@ behavioural decoding (its filter, its movement model, its step schedule) does
 not follow such jumps and is left as it is; beside it, :class:`ReplayContent`
 decodes a second schedule of short non-overlapping bins of ``bin_s`` (10-20 ms
 is common practice) from the event's onset, each bin on its own with the
-uniform prior over the model's bins, with the plain Poisson likelihood.
+uniform prior over the model's bins, with the plain Poisson likelihood, until
+``max_event_s`` after the onset or the population burst ends (a bin with
+fewer than ``min_spikes`` spikes after one with enough).
 
 As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
@@ -160,11 +162,13 @@ class ContentBin(NamedTuple):
         The event's onset.
     index : int
         0 for the event's first bin.
+    n_used : int
+        The event's bins so far with at least ``min_spikes`` spikes: those the measures cover.
     posterior : ndarray of float64, shape (n_bins,)
     map_xy_cm : ndarray of float64, shape (2,)
     n_spikes : int
     mean_mass : ndarray of float64, shape (n_zones,)
-        Zone mass averaged over the event's bins so far.
+        Zone mass averaged over the event's bins so far (NaN before the first one used).
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
         Weighted correlation of time and distance to each zone over the bins
         so far, and the fitted line's slope (negative: moving towards the zone).
@@ -173,6 +177,7 @@ class ContentBin(NamedTuple):
     t_s: float
     onset_s: float
     index: int
+    n_used: int
     posterior: np.ndarray
     map_xy_cm: np.ndarray
     n_spikes: int
@@ -195,6 +200,13 @@ class ReplayContent:
     distance_cm : ndarray of float64, shape (n_zones, n_bins)
     max_event_s : float
         Bins are decoded from the onset up to this long after it.
+    min_spikes : int, default 1
+        A bin with fewer spikes is decoded and reported but left out of the
+        event's measures: with the uniform prior, an empty bin's posterior
+        is the prior itself, whose mean distance to a zone would pull every
+        line towards the environment's middle (bins without spikes are left
+        out of line fitting in common practice). Such a bin after one with
+        enough spikes ends the event: the population burst is over.
 
     Examples
     --------
@@ -212,7 +224,7 @@ class ReplayContent:
     """
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
-                 distance_cm: np.ndarray, max_event_s: float) -> None:
+                 distance_cm: np.ndarray, max_event_s: float, min_spikes: int = 1) -> None:
         if decoder.transition is not None:
             raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
                              "behavioural movement model does not hold; build the decoder with prior='uniform'")
@@ -224,6 +236,7 @@ class ReplayContent:
         self.decoder = decoder
         self.bin_s = decoder.window_s
         self.max_event_s = float(max_event_s)
+        self.min_spikes = int(min_spikes)
         self.measures = SequenceMeasures(zone_masks, distance_cm)
         self._n_units = ids.size
         self._t = np.zeros(0)
@@ -234,12 +247,12 @@ class ReplayContent:
     @classmethod
     def for_model(cls, rate_maps_hz: np.ndarray, environment: Environment, valid_mask: np.ndarray,
                   zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, unit_ids: np.ndarray | None = None,
-                  rate_floor_hz: float = 0.01) -> ReplayContent:
+                  rate_floor_hz: float = 0.01, min_spikes: int = 1) -> ReplayContent:
         """Content decoding for rate maps (shape (n_units, n_bins), Hz), with the uniform prior."""
         decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
                                zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
         ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
-        return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s)
+        return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, min_spikes)
 
     @property
     def active(self) -> bool:
@@ -281,9 +294,11 @@ class ReplayContent:
             stop = start + self.bin_s
             if stop > watermark_s:
                 break
-            out.append(self._decode(start, stop))
+            b = self._decode(start, stop)
+            out.append(b)
             self._next += 1
-            if stop - self._onset_s >= self.max_event_s - 1e-9:
+            # The population burst is over once a bin falls short of min_spikes after one that did not.
+            if stop - self._onset_s >= self.max_event_s - 1e-9 or (b.n_spikes < self.min_spikes and b.n_used):
                 self.end()
         return out
 
@@ -293,7 +308,8 @@ class ReplayContent:
         rows = np.flatnonzero(counts).astype(np.int64)
         step = self.decoder.decode(rows, counts[rows].astype(np.float64))
         m = self.measures
-        m.add(0.5 * (start + stop), step.posterior)
+        if step.n_spikes >= self.min_spikes:
+            m.add(0.5 * (start + stop), step.posterior)
         r, slope = m.line()
-        return ContentBin(stop, self._onset_s, self._next, step.posterior, step.map_xy_cm, step.n_spikes,
+        return ContentBin(stop, self._onset_s, self._next, m.n_bins, step.posterior, step.map_xy_cm, step.n_spikes,
                           m.mean_mass, r, slope)

@@ -168,7 +168,8 @@ class RippleStream:
         s = self.settings
         self.content = ReplayContent.for_model(model.rate_maps_hz_, environment, model.visited_mask_, zone_masks,
                                                bin_s=s.content_bin_s, max_event_s=s.content_max_s,
-                                               unit_ids=model.unit_ids_, rate_floor_hz=rate_floor_hz)
+                                               unit_ids=model.unit_ids_, rate_floor_hz=rate_floor_hz,
+                                               min_spikes=s.content_min_spikes)
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
         """Hold the spike source's spikes (times sorted, shape (n,) each) for content decoding."""
@@ -186,7 +187,7 @@ class RippleStream:
             x, y, speed = self.tracked.at_xy(b.t_s)
             xy = np.array((x, y))
             lag = max(watermark_s - b.t_s, 0.0)
-            events = tuple(self.bank.content(b.t_s, b.index, b.mean_mass, b.correlation, xy, speed, lag))
+            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.correlation, xy, speed, lag))
             self.counters["content_bins"] += 1
             self.counters["events"] += len(events)
             h.update(struct.pack("<di", b.t_s, b.n_spikes))

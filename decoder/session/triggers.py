@@ -62,8 +62,8 @@ are judged by ``TriggerBank.content`` on each content bin of a ripple
 detected at rest, from the event's measures so far: the zone's posterior mass
 averaged over the bins (``>= min_mass``), or the weighted correlation of
 time and decoded distance to the zone (``<= -min_correlation`` towards,
-``>= min_correlation`` away), once ``min_bins`` bins are decoded, the speed
-bounds holding. Each event is one entry: a rule makes at most one would-be
+``>= min_correlation`` away), once the measures cover ``min_bins`` bins (bins
+with spikes), the speed bounds holding. Each event is one entry: a rule makes at most one would-be
 event per event (spent by it whether or not the caps let it through), and
 the next event's first bin clears every content rule. The would-be events
 meet the same caps in the same order, the same stall guard and the same
@@ -480,7 +480,7 @@ class TriggerBank:
     def has_content_rules(self) -> bool:
         return bool(self._content_rules)
 
-    def content(self, t_s: float, index: int, mean_mass: np.ndarray, correlation: np.ndarray,
+    def content(self, t_s: float, index: int, n_used: int, mean_mass: np.ndarray, correlation: np.ndarray,
                 tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float) -> list[TriggerEvent]:
         """Judge one content bin of a candidate event; return the events it makes.
 
@@ -490,6 +490,8 @@ class TriggerBank:
             Data time of the bin's end.
         index : int
             The bin's place in its event, 0 for the first (which clears every content rule).
+        n_used : int
+            The event's bins so far that its measures cover (``min_bins`` counts these).
         mean_mass, correlation : ndarray of float64, shape (n_zones,)
             The event's zone mass averaged over its bins so far, and the
             weighted correlation of time and decoded distance to each zone
@@ -513,7 +515,7 @@ class TriggerBank:
             spent[:] = [False] * len(spent)
         events: list[TriggerEvent] = []
         for i, (rule, zi) in enumerate(zip(self._content_rules, self._content_zone)):
-            if spent[i] or index + 1 < rule.min_bins:
+            if spent[i] or n_used < rule.min_bins:
                 continue
             if rule.kind == "replay_mass":
                 holds = mean_mass[zi] >= rule.min_mass
