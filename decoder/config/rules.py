@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Literal, get_args
 
@@ -17,8 +18,9 @@ Mode = Literal["mass", "map"]
 Tracked = Literal["any", "inside", "outside"]
 MODES = get_args(Mode)
 TRACKED = get_args(Tracked)
-RuleKind = Literal["zone", "ripple"]
-#: What a rule acts on: a zone judged at each decoding step, or each detected ripple.
+RuleKind = Literal["zone", "ripple", "replay_mass", "replay_towards", "replay_away"]
+#: What a rule acts on: a zone judged at each decoding step, each detected ripple, or the
+#: decoded content of each ripple's bins (the "replay_" kinds).
 RULE_KINDS = get_args(RuleKind)
 
 
@@ -48,8 +50,20 @@ class TriggerRule:
     tracked: Tracked = "any"
     #: "zone": judged at each decoding step on its zone. "ripple": one event for each ripple
     #: the [ripples] detector reports (disrupting every ripple); no zone, the speed bounds
-    #: apply, the other conditions do not.
+    #: apply, the other conditions do not. "replay_mass": the event's content lies in the zone
+    #: (mass >= min_mass after min_bins bins). "replay_towards" / "replay_away": the event's
+    #: content is a sequence moving towards / away from the zone. The "replay_" kinds are judged
+    #: on each content bin of a ripple detected at rest; the speed bounds apply, mode and
+    #: tracked do not.
     kind: RuleKind = "zone"
+    #: The "replay_" kinds: content bins of the event ([ripples] content_bin_s) decoded before
+    #: the rule may fire; each rule fires at most once per event.
+    min_bins: int = 3
+    #: "replay_towards" / "replay_away": least size of the weighted correlation between time and
+    #: the decoded distance to the zone over the event's bins so far, in (0, 1]; negative
+    #: (distance shrinking) for towards, positive for away. "replay_mass" uses min_mass instead,
+    #: on the zone's posterior mass averaged over the event's bins so far.
+    min_correlation: float = 0.6
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name.strip():
@@ -60,7 +74,7 @@ class TriggerRule:
         if self.kind == "ripple" and self.zone:
             raise ValueError(f"{owner}: a ripple rule acts on every detected ripple and has no zone; "
                              f"leave zone out, got {self.zone!r}")
-        if self.kind == "zone" and (not isinstance(self.zone, str) or not self.zone.strip()):
+        if self.kind != "ripple" and (not isinstance(self.zone, str) or not self.zone.strip()):
             raise ValueError(f"{owner}: zone must be the non-empty name of a zone, got {self.zone!r}")
         if self.mode not in MODES:
             raise ValueError(f"{owner}: mode must be one of {MODES}, got {self.mode!r}")
@@ -75,6 +89,14 @@ class TriggerRule:
         object.__setattr__(self, "min_mass", min_mass)
         steps = _positive_int(owner, "consecutive_steps", self.consecutive_steps)
         object.__setattr__(self, "consecutive_steps", steps)
+        object.__setattr__(self, "min_bins", _positive_int(owner, "min_bins", self.min_bins))
+        try:
+            r = float(self.min_correlation)
+        except (TypeError, ValueError):
+            r = math.nan
+        if not 0.0 < r <= 1.0:
+            raise ValueError(f"{owner}: min_correlation must be a number in (0, 1], got {self.min_correlation!r}")
+        object.__setattr__(self, "min_correlation", r)
         lo = _optional_speed(owner, "min_speed_cm_s", self.min_speed_cm_s)
         hi = _optional_speed(owner, "max_speed_cm_s", self.max_speed_cm_s)
         if lo is not None and hi is not None and lo > hi:

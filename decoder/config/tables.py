@@ -18,8 +18,9 @@ from decoder.config.checks import (
 class RippleSettings:
     """Online sharp-wave ripple detection (``decoder.signals.ripple_detector``), the ``[ripples]`` table.
 
-    Off while ``source`` is empty. Every field but ``source`` and
-    ``max_speed_cm_s`` is passed to ``RippleDetector`` under its own name.
+    Off while ``source`` is empty. Every field but ``source``,
+    ``max_speed_cm_s`` and the ``content_`` ones (``decoder.session.replay_content``)
+    is passed to ``RippleDetector`` under its own name.
     """
 
     #: Source name of the LFP stream; its clock must be the spike source's. Empty: no detection.
@@ -46,6 +47,16 @@ class RippleSettings:
     #: immobility below about 4 cm/s is common practice. inf turns the condition off; an unknown
     #: speed (NaN) never satisfies it.
     max_speed_cm_s: float = 4.0
+    #: Length of the content bins decoded while a ripple lasts (s): short, non-overlapping, each
+    #: with the uniform prior (replay content jumps); 10-20 ms is common practice.
+    content_bin_s: float = 0.015
+    #: Content bins are decoded from the ripple's onset up to this long after it (s); ripples
+    #: last 30-100 ms (common practice).
+    content_max_s: float = 0.1
+    #: A content bin with fewer spikes is left out of the event's measures (a nearly empty bin's
+    #: posterior is close to the uniform prior and says little of the content); such a bin after
+    #: one with enough ends the event (the population burst is over).
+    content_min_spikes: int = 4
 
     def __post_init__(self) -> None:
         if not isinstance(self.source, str):
@@ -57,11 +68,12 @@ class RippleSettings:
         if not 0 < low < high:
             raise ConfigError(f"[ripples] band_hz must satisfy 0 < low < high, got {self.band_hz!r}")
         object.__setattr__(self, "band_hz", (low, high))
-        for name in ("filter_order", "min_channels"):
+        for name in ("filter_order", "min_channels", "content_min_spikes"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < 1:
                 raise ConfigError(f"[ripples] {name} must be a whole number of at least 1, got {value!r}")
-        _positive("ripples", threshold_sd=self.threshold_sd, baseline_window_s=self.baseline_window_s,
+        _positive("ripples", content_bin_s=self.content_bin_s, content_max_s=self.content_max_s,
+                  threshold_sd=self.threshold_sd, baseline_window_s=self.baseline_window_s,
                   warm_up_s=self.warm_up_s)
         if not self.end_sd < self.threshold_sd:
             raise ConfigError(f"[ripples] end_sd ({self.end_sd}) must lie below threshold_sd ({self.threshold_sd})")
@@ -72,11 +84,16 @@ class RippleSettings:
         if not self.max_speed_cm_s >= 0:
             raise ConfigError(f"[ripples] max_speed_cm_s must be a speed >= 0 cm/s (inf for none), "
                               f"got {self.max_speed_cm_s!r}")
+        if not 0.002 <= self.content_bin_s <= 0.1:
+            raise ConfigError(f"[ripples] content_bin_s must lie within 0.002..0.1 s, got {self.content_bin_s!r}")
+        if not self.content_bin_s <= self.content_max_s <= 2.0:
+            raise ConfigError(f"[ripples] content_max_s must lie within content_bin_s..2 s, "
+                              f"got {self.content_max_s!r}")
 
     def detector_kwargs(self) -> dict[str, Any]:
         """The ``RippleDetector`` keyword arguments this table sets."""
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
-                if f.name not in ("source", "max_speed_cm_s")}
+                if f.name != "source" and f.name != "max_speed_cm_s" and not f.name.startswith("content_")}
 
 
 @dataclass(frozen=True)

@@ -18,6 +18,13 @@ that is counted and never reaches the detector as if it were continuous:
 
 A detection while the tracked animal moves faster than ``max_speed_cm_s`` is
 counted (``ripples_moving``) and reported, but judged by no rule.
+
+Once a model is installed (:meth:`RippleStream.install_model`), every ripple
+detected at rest also starts a candidate event whose content is decoded in
+short bins from its onset (``decoder.session.replay_content``), fed with the
+spike source's spikes (:meth:`RippleStream.take_spikes`) and closed on its
+watermark (:meth:`RippleStream.content_due`); each bin's measures are judged
+by the content rules (``TriggerBank.content``).
 """
 
 from __future__ import annotations
@@ -31,6 +38,9 @@ from typing import NamedTuple
 import numpy as np
 
 from decoder.config import RippleSettings
+from decoder.encoding.place_model import PlaceModel
+from decoder.session.replay_content import ContentBin, ReplayContent
+from decoder.space.environments import Environment
 from decoder.session.tracking import TrackHistory
 from decoder.session.triggers import TriggerBank, TriggerEvent
 from decoder.signals.lfp_chunk import LfpChunk
@@ -69,6 +79,24 @@ class RippleOutput(NamedTuple):
     armed: bool
 
 
+class ContentOutput(NamedTuple):
+    """One content bin of a candidate event and what it triggered.
+
+    Attributes
+    ----------
+    t_s : float
+        Data time of the bin's end.
+    content : ContentBin
+    events : tuple of TriggerEvent
+    armed : bool
+    """
+
+    t_s: float
+    content: ContentBin
+    events: tuple[TriggerEvent, ...]
+    armed: bool
+
+
 class RippleStream:
     """The LFP source's chunks into ripple detections and ripple events.
 
@@ -94,7 +122,8 @@ class RippleStream:
         self.detector: RippleDetector | None = None
         self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
                                               "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
-                                              "events")}
+                                              "events", "content_bins")}
+        self.content: ReplayContent | None = None
         self._next_s = math.nan
         self._hash = hashlib.sha256()
 
@@ -133,6 +162,41 @@ class RippleStream:
             out.append(self._judge(d, watermark_s))
         return out
 
+    def install_model(self, model: PlaceModel, environment: Environment, zone_masks: np.ndarray,
+                      rate_floor_hz: float) -> None:
+        """Decode the content of the ripples to come with this fitted model (its rate maps, uniform prior)."""
+        s = self.settings
+        self.content = ReplayContent.for_model(model.rate_maps_hz_, environment, model.visited_mask_, zone_masks,
+                                               bin_s=s.content_bin_s, max_event_s=s.content_max_s,
+                                               unit_ids=model.unit_ids_, rate_floor_hz=rate_floor_hz,
+                                               min_spikes=s.content_min_spikes)
+
+    def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
+        """Hold the spike source's spikes (times sorted, shape (n,) each) for content decoding."""
+        if self.content is not None:
+            self.content.take_spikes(t_s, unit_ids)
+
+    def content_due(self, watermark_s: float) -> list[ContentOutput]:
+        """Decode the content bins the spike stream's watermark closed, and judge each by the content rules."""
+        content = self.content
+        if content is None or not content.active:
+            return []
+        out = []
+        h = self._hash
+        for b in content.due(watermark_s):
+            x, y, speed = self.tracked.at_xy(b.t_s)
+            xy = np.array((x, y))
+            lag = max(watermark_s - b.t_s, 0.0)
+            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.correlation, xy, speed, lag))
+            self.counters["content_bins"] += 1
+            self.counters["events"] += len(events)
+            h.update(struct.pack("<di", b.t_s, b.n_spikes))
+            h.update(b.posterior.tobytes())
+            for ev in events:
+                h.update(f"{ev.event_id}|{ev.rule}|{ev.t_s!r}".encode())
+            out.append(ContentOutput(b.t_s, b, events, self.bank.armed))
+        return out
+
     def restart(self) -> None:
         """The source restarted: the next chunk starts a new stream (rate and channels may differ)."""
         self.detector = None
@@ -168,6 +232,8 @@ class RippleStream:
         if moving:
             self.counters["ripples_moving"] += 1
         else:
+            if self.content is not None:
+                self.content.begin(d.onset_s)
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
             events = tuple(self.bank.ripple(t, xy, speed, lag))
             self.counters["events"] += len(events)

@@ -57,6 +57,18 @@ meets the same caps in the same order, the same stall guard on the LFP
 stream's lag, and the same counters. Arming marks nothing spent for them: a
 ripple detected after arming is always a new entry.
 
+Content rules (``kind = "replay_mass"``, ``"replay_towards"``, ``"replay_away"``)
+are judged by ``TriggerBank.content`` on each content bin of a ripple
+detected at rest, from the event's measures so far: the zone's posterior mass
+averaged over the bins (``>= min_mass``), or the weighted correlation of
+time and decoded distance to the zone (``<= -min_correlation`` towards,
+``>= min_correlation`` away), once the measures cover ``min_bins`` bins (bins
+with spikes), the speed bounds holding. Each event is one entry: a rule makes at most one would-be
+event per event (spent by it whether or not the caps let it through), and
+the next event's first bin clears every content rule. The would-be events
+meet the same caps in the same order, the same stall guard and the same
+counters.
+
 Examples
 --------
 >>> rule = TriggerRule("feeder", zone="goal", min_mass=0.5, consecutive_steps=2)
@@ -88,9 +100,12 @@ __all__ = [
     "TriggerBank",
     "SessionCapError",
     "SUPPRESSION_REASONS",
+    "CONTENT_KINDS",
 ]
 
 SUPPRESSION_REASONS = ("disarmed", "refractory", "per_minute_cap", "session_cap")
+#: Rule kinds judged on the content bins of a ripple (``decoder.session.replay_content``).
+CONTENT_KINDS = ("replay_mass", "replay_towards", "replay_away")
 
 #: Length of the sliding window behind ``SafetyCaps.max_per_minute``.
 _MINUTE_S = 60.0
@@ -273,7 +288,7 @@ class TriggerBank:
         if len(set(zone_names)) != len(zone_names):
             raise ValueError(f"zone_names must be unique, got {list(zone_names)}")
         for rule in rules:
-            if rule.kind == "zone" and rule.zone not in zone_names:
+            if rule.kind != "ripple" and rule.zone not in zone_names:
                 raise ValueError(
                     f"trigger rule {rule.name!r} refers to zone {rule.zone!r}, "
                     f"which is not among the zones {list(zone_names)}"
@@ -281,6 +296,9 @@ class TriggerBank:
         self.zone_names = zone_names
         self.caps = caps
         self._ripple_rules = tuple(r for r in rules if r.kind == "ripple")
+        self._content_rules = tuple(r for r in rules if r.kind in CONTENT_KINDS)
+        self._content_zone = tuple(zone_names.index(r.zone) for r in self._content_rules)
+        self._content_spent = [False] * len(self._content_rules)
         rules = tuple(r for r in rules if r.kind == "zone")
         self.rules = rules
         self._zone_index = tuple(zone_names.index(r.zone) for r in rules)
@@ -407,7 +425,7 @@ class TriggerBank:
             "n_time_reversals": self.n_time_reversals,
             "counters": dict(self.counters),
             "caps": asdict(self.caps),
-            "rules": [r.name for r in self.rules + self._ripple_rules],
+            "rules": [r.name for r in self.rules + self._ripple_rules + self._content_rules],
         }
 
     @property
@@ -457,6 +475,69 @@ class TriggerBank:
                 return []
             return [self._record(rule.name, "", t, math.nan, tracked_xy_cm, False)]
         return []
+
+    @property
+    def has_content_rules(self) -> bool:
+        return bool(self._content_rules)
+
+    def content(self, t_s: float, index: int, n_used: int, mean_mass: np.ndarray, correlation: np.ndarray,
+                tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float) -> list[TriggerEvent]:
+        """Judge one content bin of a candidate event; return the events it makes.
+
+        Parameters
+        ----------
+        t_s : float
+            Data time of the bin's end.
+        index : int
+            The bin's place in its event, 0 for the first (which clears every content rule).
+        n_used : int
+            The event's bins so far that its measures cover (``min_bins`` counts these).
+        mean_mass, correlation : ndarray of float64, shape (n_zones,)
+            The event's zone mass averaged over its bins so far, and the
+            weighted correlation of time and decoded distance to each zone
+            (``decoder.session.replay_content``); NaN satisfies no rule.
+        tracked_xy_cm : ndarray of float64, shape (2,)
+        tracked_speed_cm_s : float
+            NaN when unknown; never satisfies a speed bound.
+        stream_lag_s : float
+            As for :meth:`ripple`.
+        """
+        t = float(t_s)
+        if not math.isfinite(t):
+            raise ValueError(f"a content bin's t_s must be a finite data time, got {t_s!r}")
+        if self.armed and not (stream_lag_s <= self.caps.stall_limit_s):
+            self.n_stalls += 1
+            self.disarm(t, "stall")
+        while self._recent_t_s and self._recent_t_s[0] <= t - _MINUTE_S:
+            self._recent_t_s.popleft()
+        spent = self._content_spent
+        if index == 0:
+            spent[:] = [False] * len(spent)
+        events: list[TriggerEvent] = []
+        for i, (rule, zi) in enumerate(zip(self._content_rules, self._content_zone)):
+            if spent[i] or n_used < rule.min_bins:
+                continue
+            if rule.kind == "replay_mass":
+                holds = mean_mass[zi] >= rule.min_mass
+            elif rule.kind == "replay_towards":
+                holds = correlation[zi] <= -rule.min_correlation
+            else:
+                holds = correlation[zi] >= rule.min_correlation
+            speed = tracked_speed_cm_s
+            if rule.min_speed_cm_s is not None and not speed >= rule.min_speed_cm_s:
+                holds = False
+            if rule.max_speed_cm_s is not None and not speed <= rule.max_speed_cm_s:
+                holds = False
+            if not holds:
+                continue
+            spent[i] = True
+            reason = self._suppression(t)
+            if reason is not None:
+                self.counters[reason] += 1
+                logger.debug("content rule %r would fire at t=%.3f s; suppressed (%s)", rule.name, t, reason)
+                continue
+            events.append(self._record(rule.name, rule.zone, t, float(mean_mass[zi]), tracked_xy_cm, False))
+        return events
 
     def _rebase(self, t: float) -> None:
         logger.warning("data time went back from %.3f s to %.3f s", self._last_t_s, t)

@@ -22,6 +22,52 @@ from rig_adapters.sim.marks import MarkSimulation
 
 
 @dataclass(frozen=True)
+class ReplaySettings:
+    """The ``[simulation.replay]`` table: what the place cells replay during ripples (needs ``[simulation.lfp]``)."""
+
+    #: Speed of the replayed path (cm/s), a range; 10-20 times a rat's running speed of
+    #: 20-40 cm/s (common practice).
+    speed_cm_s: tuple[float, float] = (300.0, 600.0)
+    #: Share of the ripples whose path ends at the goal; the others run between random points.
+    goal_fraction: float = 0.5
+    #: The goal (x_cm, y_cm), for instance a reward well; it must lie on the track.
+    goal_cm: tuple[float, float] = (0.0, 80.0)
+    #: Factor on a place cell's field rate during a replay: cells fire densely in ripples.
+    rate_gain: float = 3.0
+
+    def __post_init__(self) -> None:
+        try:
+            low, high = (float(v) for v in self.speed_cm_s)
+            gx, gy = (float(v) for v in self.goal_cm)
+        except (TypeError, ValueError):
+            raise ValueError(f"replay.speed_cm_s and replay.goal_cm must be pairs of numbers, got "
+                             f"{self.speed_cm_s!r} and {self.goal_cm!r}") from None
+        if not 0 < low <= high < math.inf:
+            raise ValueError(f"replay.speed_cm_s must be a pair 0 < low <= high, got {self.speed_cm_s!r}")
+        if not (math.isfinite(gx) and math.isfinite(gy)):
+            raise ValueError(f"replay.goal_cm must be a finite point, got {self.goal_cm!r}")
+        if not 0 <= self.goal_fraction <= 1:
+            raise ValueError(f"replay.goal_fraction must lie in [0, 1], got {self.goal_fraction!r}")
+        if not (isinstance(self.rate_gain, (int, float)) and 0 < self.rate_gain < math.inf):
+            raise ValueError(f"replay.rate_gain must be a positive number, got {self.rate_gain!r}")
+        object.__setattr__(self, "speed_cm_s", (low, high))
+        object.__setattr__(self, "goal_cm", (gx, gy))
+        object.__setattr__(self, "goal_fraction", float(self.goal_fraction))
+        object.__setattr__(self, "rate_gain", float(self.rate_gain))
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any] | None) -> ReplaySettings:
+        """Settings from a ``[simulation.replay]`` table; missing keys take their defaults."""
+        d = dict(d or {})
+        names = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise ValueError(f"[simulation.replay] has unknown key(s) {unknown}; known keys are {sorted(names)}")
+        return cls(**d)
+
+
+
+@dataclass(frozen=True)
 class SimulationSettings:
     """Everything the simulated rig draws from, read from a ``[simulation]`` table.
 
@@ -153,6 +199,9 @@ class SimulationSettings:
     #: The simulated LFP (``rig_adapters.sim.lfp``), the ``[simulation.lfp]`` table; none without it.
     #: It is sent by the source ``"lfp"`` on the acquisition clock.
     lfp: LfpSettings | None = None
+    #: Replay content during the simulated ripples (``rig_adapters.sim.replay_content``), the
+    #: ``[simulation.replay]`` table; none without it. Needs ``[simulation.lfp]`` and a track or maze.
+    replay: ReplaySettings | None = None
 
     # -- head direction (rig_adapters.sim.heading): used when the environment is a heading ring --
     #: Number of head-direction cells (von Mises tuning to the head's direction).
@@ -200,6 +249,12 @@ class SimulationSettings:
             value = getattr(self, f.name)
             if f.name == "lfp":
                 self._take_lfp(value)
+                continue
+            if f.name == "replay":
+                if value is not None and self.lfp is None:
+                    raise ValueError("replay content fills the simulated ripples; add a [simulation.lfp] table")
+                if value is not None and not isinstance(value, ReplaySettings):
+                    object.__setattr__(self, "replay", ReplaySettings.from_dict(value))
                 continue
             if f.name == "marks":
                 if not isinstance(value, MarkSimulation):

@@ -57,6 +57,7 @@ from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
 from rig_adapters.sim.heading import HeadTurning, draw_heading_cells, tracked_heading, true_heading
 from rig_adapters.sim.lfp import LfpSynth
 from rig_adapters.sim.marks import Tetrodes
+from rig_adapters.sim.replay_content import ReplayMaker
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.trajectories import trajectory_for
 
@@ -141,6 +142,8 @@ class SimulatedSession:
         self._dropout = self._next_dropout(0.0)
         # Its own generator: turning the LFP on changes no other draw of the session.
         self.lfp = LfpSynth(settings.lfp, [seed, 14]) if settings.lfp is not None else None
+        self.replay = (ReplayMaker(environment, self._truth, settings.replay, settings.acquisition_rate_hz, [seed, 15])
+                       if settings.replay is not None else None)
         self._seq[LFP_SOURCE] = 0
         self._lfp_path: deque[tuple[float, np.ndarray]] = deque()
 
@@ -229,8 +232,17 @@ class SimulatedSession:
             self._pulse_id += 1
             self._next_pulse_s += self._rng.uniform(*s.sync_interval_s)
 
+        # The LFP first: a ripple it draws in this tick fills with replay spikes from this tick on.
+        lfp = self._lfp_chunks(t0, t1, path_xy) if self.lfp is not None else []
         ephys: list[tuple[float, InputMessage]] = []
         spike_samples, spike_units = self._trains.spikes(self._tick - 1, s0, s1, position)
+        if self.replay is not None:
+            replay_samples, replay_units = self.replay.spikes(self.lfp.ripples, s0, s1)
+            if replay_samples.size:
+                spike_samples = np.concatenate([spike_samples, replay_samples])
+                spike_units = np.concatenate([spike_units, replay_units])
+                order = np.argsort(spike_samples, kind="stable")
+                spike_samples, spike_units = spike_samples[order], spike_units[order]
         spike_t = spike_samples / fs
         if self.tetrodes is not None:
             spike_t, spike_units = self.tetrodes.with_multi_unit(spike_t, spike_units, t0, t1)
@@ -283,7 +295,6 @@ class SimulatedSession:
         if s.position_heartbeats:
             truth.append((t1, self._message(Heartbeat, TRUTH_SOURCE, t_s=t1)))
 
-        lfp = self._lfp_chunks(t0, t1, path_xy) if self.lfp is not None else []
         merged = heapq.merge(ephys, tracker, truth, lfp, key=lambda item: item[0])
         return Chunk(t1, tuple(msg for _, msg in merged))
 

@@ -1,0 +1,315 @@
+"""The content of candidate replay events: short bins decoded with the uniform prior, and causal sequence measures.
+
+While a detected ripple lasts, place cells may fire a compressed sequence that
+sweeps through the environment many times faster than the animal runs. The
+behavioural decoding (its filter, its movement model, its step schedule) does
+not follow such jumps and is left as it is; beside it, :class:`ReplayContent`
+decodes a second schedule of short non-overlapping bins of ``bin_s`` (10-20 ms
+is common practice) from the event's onset, each bin on its own with the
+uniform prior over the model's bins, with the plain Poisson likelihood, until
+``max_event_s`` after the onset or the population burst ends (a bin with
+fewer than ``min_spikes`` spikes after one with enough).
+
+As the event unfolds, after each bin and using only the bins so far,
+:class:`SequenceMeasures` gives for each zone
+
+* the posterior mass in the zone averaged over the event's bins so far;
+* the weighted correlation between time and the decoded distance to the zone,
+  every (bin, position) pair weighted by its posterior probability, and the
+  slope (cm/s) of the weighted least-squares line of distance on time: a
+  negative slope with a strong correlation is a sequence moving towards the
+  zone. This is a causal, truncated form of the line fitting of Davidson,
+  Kloosterman & Wilson (2009, Neuron 63:497), our own design: the line is
+  fitted over the bins seen so far, not the whole event, and it is fitted to
+  the distance to a zone, which serves an open field, a track or a maze alike.
+
+The judgement of these measures by content rules is the trigger bank's
+(``TriggerBank.content``), beneath the same caps as every rule.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import numpy as np
+
+from decoder.inference.decoding import BayesDecoder
+from decoder.space.environments import Environment
+
+#: Spikes are held this much longer than the longest event, for the detection's latency (s).
+_HOLD_MARGIN_S = 0.5
+
+
+def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.ndarray:
+    """Distance from each bin centre to the nearest bin centre of each zone.
+
+    Along the track on a track or graph (``bin_distance_matrix_cm``),
+    straight in an arena.
+
+    Parameters
+    ----------
+    environment : Environment
+    zone_masks : ndarray of bool, shape (n_zones, n_bins)
+
+    Returns
+    -------
+    ndarray of float64, shape (n_zones, n_bins)
+        0 inside a zone; NaN everywhere for a zone without bins.
+    """
+    masks = np.asarray(zone_masks, bool)
+    try:
+        full = environment.bin_distance_matrix_cm()
+    except NotImplementedError:
+        full = None
+    out = np.full((masks.shape[0], environment.n_bins), np.nan)
+    centres = environment.bin_centers_cm
+    for z, mask in enumerate(masks):
+        if not mask.any():
+            continue
+        if full is not None:
+            out[z] = full[:, mask].min(axis=1)
+        else:
+            inside = centres[mask]
+            out[z] = np.min(np.hypot(centres[:, None, 0] - inside[None, :, 0],
+                                     centres[:, None, 1] - inside[None, :, 1]), axis=1)
+    return out
+
+
+class SequenceMeasures:
+    """Causal content measures of one event, updated bin by bin from running sums.
+
+    Parameters
+    ----------
+    zone_masks : ndarray of bool, shape (n_zones, n_bins)
+    distance_cm : ndarray of float64, shape (n_zones, n_bins)
+        Distance of each bin to each zone (:func:`zone_distances_cm`).
+
+    Notes
+    -----
+    With weights ``w = P(x | bin k)`` over bins ``k`` (times ``t_k``) and
+    positions ``x`` (distance ``d(x)`` to the zone), the weighted means,
+    covariance and correlation are the textbook weighted Pearson ones:
+    ``cov(t, d) = sum w (t - t̄)(d - d̄) / sum w`` and
+    ``r = cov(t, d) / sqrt(cov(t, t) cov(d, d))``; the slope is
+    ``cov(t, d) / cov(t, t)``. Each posterior sums to 1, so after ``n`` bins
+    ``sum w = n``, and six running sums per zone give every figure exactly
+    (no stored posteriors). Positions with NaN distance (bins off the model)
+    carry no posterior mass.
+    """
+
+    def __init__(self, zone_masks: np.ndarray, distance_cm: np.ndarray) -> None:
+        self._mask = np.asarray(zone_masks, np.float64)
+        d = np.asarray(distance_cm, np.float64)
+        self._d = np.nan_to_num(d, nan=0.0)
+        self._d2 = self._d**2
+        self.reset()
+
+    def reset(self) -> None:
+        """A new event: no bins yet."""
+        n_zones = self._mask.shape[0]
+        self.n_bins = 0
+        self._t0 = math.nan
+        self._st = self._stt = 0.0
+        self._sd, self._sdd, self._std, self._mass = (np.zeros(n_zones) for _ in range(4))
+
+    def add(self, t_s: float, posterior: np.ndarray) -> None:
+        """Take one bin: its centre time ``t_s`` and its posterior, shape (n_bins,), summing to 1."""
+        if self.n_bins == 0:
+            self._t0 = t_s
+        t = t_s - self._t0  # relative times keep the sums well conditioned
+        d = self._d @ posterior
+        self.n_bins += 1
+        self._st += t
+        self._stt += t * t
+        self._sd += d
+        self._sdd += self._d2 @ posterior
+        self._std += t * d
+        self._mass += self._mask @ posterior
+
+    @property
+    def mean_mass(self) -> np.ndarray:
+        """Posterior mass in each zone averaged over the event's bins so far, shape (n_zones,)."""
+        return self._mass / self.n_bins if self.n_bins else np.full(self._mass.shape, np.nan)
+
+    def line(self) -> tuple[np.ndarray, np.ndarray]:
+        """Weighted correlation of time and distance to each zone, and the line's slope (cm/s).
+
+        Returns
+        -------
+        correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
+            NaN before two bins, or where the distance does not vary.
+        """
+        n = self.n_bins
+        var_t = n * self._stt - self._st**2
+        cov = n * self._std - self._st * self._sd
+        var_d = n * self._sdd - self._sd**2
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ok = (var_t > 0) & (var_d > 1e-12 * np.maximum(n * self._sdd, 1e-300))
+            r = np.where(ok, cov / np.sqrt(np.maximum(var_t * var_d, 1e-300)), np.nan)
+            slope = np.where(ok, cov / var_t if var_t > 0 else np.nan, np.nan)
+        return np.clip(r, -1.0, 1.0), slope
+
+
+class ContentBin(NamedTuple):
+    """One decoded bin of a candidate event and the event's measures so far.
+
+    Attributes
+    ----------
+    t_s : float
+        Data time of the bin's end (when it could be decoded at the earliest).
+    onset_s : float
+        The event's onset.
+    index : int
+        0 for the event's first bin.
+    n_used : int
+        The event's bins so far with at least ``min_spikes`` spikes: those the measures cover.
+    posterior : ndarray of float64, shape (n_bins,)
+    map_xy_cm : ndarray of float64, shape (2,)
+    n_spikes : int
+    mean_mass : ndarray of float64, shape (n_zones,)
+        Zone mass averaged over the event's bins so far (NaN before the first one used).
+    correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
+        Weighted correlation of time and distance to each zone over the bins
+        so far, and the fitted line's slope (negative: moving towards the zone).
+    """
+
+    t_s: float
+    onset_s: float
+    index: int
+    n_used: int
+    posterior: np.ndarray
+    map_xy_cm: np.ndarray
+    n_spikes: int
+    mean_mass: np.ndarray
+    correlation: np.ndarray
+    slope_cm_s: np.ndarray
+
+
+class ReplayContent:
+    """The second step schedule: a candidate event's short bins, decoded as the spikes arrive.
+
+    Parameters
+    ----------
+    decoder : BayesDecoder
+        Uniform prior, ``window_s`` the content bin (:meth:`for_model` builds it).
+    unit_ids : ndarray of int64, shape (n_units,)
+        The unit of each decoder row; spikes of other units are ignored here
+        (the behavioural steps count them).
+    zone_masks : ndarray of bool, shape (n_zones, n_bins)
+    distance_cm : ndarray of float64, shape (n_zones, n_bins)
+    max_event_s : float
+        Bins are decoded from the onset up to this long after it.
+    min_spikes : int, default 1
+        A bin with fewer spikes is decoded and reported but left out of the
+        event's measures: with the uniform prior, an empty bin's posterior
+        is the prior itself, whose mean distance to a zone would pull every
+        line towards the environment's middle (bins without spikes are left
+        out of line fitting in common practice). Such a bin after one with
+        enough spikes ends the event: the population burst is over.
+
+    Examples
+    --------
+    >>> from decoder.space.environments import LinearTrack
+    >>> track = LinearTrack((0, 0), (100, 0), bin_cm=10)
+    >>> rates = np.full((10, 10), 0.5) + 60.0 * np.eye(10)
+    >>> masks = np.zeros((1, 10), bool); masks[0, 9] = True
+    >>> content = ReplayContent.for_model(rates, track, track.valid_mask, masks, bin_s=0.02, max_event_s=0.1)
+    >>> t = np.arange(0.001, 0.1, 0.004); units = np.minimum((t * 100).astype(np.int64), 9)
+    >>> content.take_spikes(t, units)
+    >>> content.begin(0.0)
+    >>> last = content.due(0.1)[-1]
+    >>> last.index, bool(last.correlation[0] < -0.9), bool(last.slope_cm_s[0] < 0)
+    (4, True, True)
+    """
+
+    def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
+                 distance_cm: np.ndarray, max_event_s: float, min_spikes: int = 1) -> None:
+        if decoder.transition is not None:
+            raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
+                             "behavioural movement model does not hold; build the decoder with prior='uniform'")
+        if not max_event_s >= decoder.window_s:
+            raise ValueError(f"max_event_s ({max_event_s}) must hold at least one bin of {decoder.window_s} s")
+        ids = np.asarray(unit_ids, np.int64)
+        self._known_ids, first = np.unique(ids, return_index=True)
+        self._row_of_known = first.astype(np.int64)
+        self.decoder = decoder
+        self.bin_s = decoder.window_s
+        self.max_event_s = float(max_event_s)
+        self.min_spikes = int(min_spikes)
+        self.measures = SequenceMeasures(zone_masks, distance_cm)
+        self._n_units = ids.size
+        self._t = np.zeros(0)
+        self._rows = np.zeros(0, np.int64)
+        self._onset_s = math.nan
+        self._next = 0
+
+    @classmethod
+    def for_model(cls, rate_maps_hz: np.ndarray, environment: Environment, valid_mask: np.ndarray,
+                  zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, unit_ids: np.ndarray | None = None,
+                  rate_floor_hz: float = 0.01, min_spikes: int = 1) -> ReplayContent:
+        """Content decoding for rate maps (shape (n_units, n_bins), Hz), with the uniform prior."""
+        decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
+                               zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
+        ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
+        return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, min_spikes)
+
+    @property
+    def active(self) -> bool:
+        """Whether an event's bins are still to be decoded."""
+        return not math.isnan(self._onset_s)
+
+    def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
+        """Hold a batch of spikes (times in s and unit ids, shape (n,) each) for the events to come."""
+        t = np.asarray(t_s, np.float64)
+        if not t.size or not self._known_ids.size:
+            return
+        ids = np.asarray(unit_ids, np.int64)
+        at = np.minimum(np.searchsorted(self._known_ids, ids), self._known_ids.size - 1)
+        known = self._known_ids[at] == ids
+        t, rows = t[known], self._row_of_known[at[known]]
+        keep_from = t[-1] - self.max_event_s - _HOLD_MARGIN_S
+        old = int(np.searchsorted(self._t, keep_from))
+        self._t = np.concatenate([self._t[old:], t])
+        self._rows = np.concatenate([self._rows[old:], rows])
+        if t.size and self._t.size > t.size and self._t[-t.size - 1] > t[0]:
+            order = np.argsort(self._t, kind="stable")
+            self._t, self._rows = self._t[order], self._rows[order]
+
+    def begin(self, onset_s: float) -> None:
+        """A candidate event began at ``onset_s`` (data time): its bins start there; a running event ends."""
+        self._onset_s = float(onset_s)
+        self._next = 0
+        self.measures.reset()
+
+    def end(self) -> None:
+        """No more bins for the current event."""
+        self._onset_s = math.nan
+
+    def due(self, watermark_s: float) -> list[ContentBin]:
+        """Decode the current event's bins that end at or before ``watermark_s`` (the spike stream's time)."""
+        out: list[ContentBin] = []
+        while self.active:
+            start = self._onset_s + self._next * self.bin_s
+            stop = start + self.bin_s
+            if stop > watermark_s:
+                break
+            b = self._decode(start, stop)
+            out.append(b)
+            self._next += 1
+            # The population burst is over once a bin falls short of min_spikes after one that did not.
+            if stop - self._onset_s >= self.max_event_s - 1e-9 or (b.n_spikes < self.min_spikes and b.n_used):
+                self.end()
+        return out
+
+    def _decode(self, start: float, stop: float) -> ContentBin:
+        a, b = np.searchsorted(self._t, (start, stop), side="left")
+        counts = np.bincount(self._rows[a:b], minlength=self._n_units)
+        rows = np.flatnonzero(counts).astype(np.int64)
+        step = self.decoder.decode(rows, counts[rows].astype(np.float64))
+        m = self.measures
+        if step.n_spikes >= self.min_spikes:
+            m.add(0.5 * (start + stop), step.posterior)
+        r, slope = m.line()
+        return ContentBin(stop, self._onset_s, self._next, m.n_bins, step.posterior, step.map_xy_cm, step.n_spikes,
+                          m.mean_mass, r, slope)
