@@ -49,7 +49,7 @@ from decoder.session.judge import StepJudge
 from decoder.session.marks import MarkStream
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.positions import Positions
-from decoder.session.ripples import RippleOutput, RippleStream
+from decoder.session.ripples import ContentOutput, RippleOutput, RippleStream
 from decoder.session.scoring import ErrorHistogram, VisitScore
 from decoder.session.steps import DecodingSteps, StepSchedule, build_decoder, filter_figures
 from decoder.session.streams import CONTROL_STREAM, SpikeWatermark, StreamHealth
@@ -69,7 +69,7 @@ TUNING_REPORT_S = 15.0
 #: Below this fraction of its bins in the learned map, a zone gets a warning at fitting time.
 ZONE_COVERAGE_WARNING = 0.8
 
-Output = StepOutput | LearningProgress | Notice | RippleOutput
+Output = StepOutput | LearningProgress | Notice | RippleOutput | ContentOutput
 
 
 class Pipeline:
@@ -303,13 +303,18 @@ class Pipeline:
                 self.model.update_spikes(batch.t_s, batch.unit_id)
             elif self.state == "decoding":
                 self.steps.take_spikes(batch.t_s, batch.unit_id)
+                self.ripples.take_spikes(batch.t_s, batch.unit_id)
         if marks is not None:
             if self.state == "learning":
                 self.marks.learn(marks, self.positions.tracked)
             elif self.state == "decoding":
                 self.steps.take_marks(marks)
         if self.state == "decoding":
-            steps = [self._decode_step(k, previous) for k in self.steps.due(now)]
+            steps: list[Output] = [self._decode_step(k, previous) for k in self.steps.due(now)]
+            content = self.ripples.content_due(now)
+            if content:
+                self.counters["events"] += sum(len(c.events) for c in content)
+                steps.extend(content)
             if not out:
                 return steps
             out.extend(steps)
@@ -327,6 +332,8 @@ class Pipeline:
         if source == self._spike_source:
             # Steps start afresh on the new clock, disarmed.
             t = self.watermark.t_s
+            if self.ripples.content is not None:
+                self.ripples.content.end()
             self.watermark.reset()
             self.schedule.stop()
             if self.steps is not None:
@@ -446,6 +453,8 @@ class Pipeline:
         steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters, marks)
         if self.marks is not None:
             self.marks.install(mark_model, decoder.window_s)
+        if self.config.ripples.source:
+            self.ripples.install_model(model, self.environment, self._zone_masks, self.config.model.rate_floor_hz)
         self.model = model
         self.model_is_loaded = loaded
         self.steps = steps

@@ -87,12 +87,15 @@ class ContentOutput(NamedTuple):
     t_s : float
         Data time of the bin's end.
     content : ContentBin
+    tracked_xy_cm : ndarray of float64, shape (2,)
+        The tracked position at ``t_s`` (NaN when unknown).
     events : tuple of TriggerEvent
     armed : bool
     """
 
     t_s: float
     content: ContentBin
+    tracked_xy_cm: np.ndarray
     events: tuple[TriggerEvent, ...]
     armed: bool
 
@@ -194,7 +197,7 @@ class RippleStream:
             h.update(b.posterior.tobytes())
             for ev in events:
                 h.update(f"{ev.event_id}|{ev.rule}|{ev.t_s!r}".encode())
-            out.append(ContentOutput(b.t_s, b, events, self.bank.armed))
+            out.append(ContentOutput(b.t_s, b, xy, events, self.bank.armed))
         return out
 
     def restart(self) -> None:

@@ -54,7 +54,7 @@ import zmq
 from decoder.config import ExperimentConfig
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
-from decoder.session.ripples import RippleOutput
+from decoder.session.ripples import ContentOutput, RippleOutput
 from rig_adapters.wire import protocol
 from rig_adapters.wire.ingest import (
     CHANNEL_CONTROL,
@@ -272,7 +272,7 @@ class LiveLoop:
                 if self.publish_state:
                     self._send_learning(out)
                 continue
-            if isinstance(out, RippleOutput):
+            if isinstance(out, (RippleOutput, ContentOutput)):
                 for event in out.events:
                     self._send_event(out, event, False, recv_wall_s, decoded_wall_s)
                 continue
@@ -285,9 +285,9 @@ class LiveLoop:
         if steps:
             self.latency.added_ms.append((time.time() - recv_wall_s) * 1e3)
 
-    def _send_event(self, out: StepOutput | RippleOutput, event, is_false: bool, recv_wall_s: float,
-                    decoded_wall_s: float) -> None:
-        # A ripple event has no decoded position.
+    def _send_event(self, out: StepOutput | RippleOutput | ContentOutput, event, is_false: bool,
+                    recv_wall_s: float, decoded_wall_s: float) -> None:
+        # A ripple or replay-content event has no behavioural decoded position.
         decoded = out.step if isinstance(out, StepOutput) else _NO_STEP
         payload = protocol.encode_event(
             source=self.name,
