@@ -167,7 +167,9 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
 
         notes: list[str] = []
         if marks and (nwb.units is None or len(nwb.units) == 0 or "spike_times" not in nwb.units.colnames):
-            unit_ids, spike_t, spike_unit, has_waveforms = np.zeros(0, np.int64), np.zeros(0), np.zeros(0, np.int64), False
+            # Clusterless data need no sorting: the marks carry the spikes.
+            unit_ids, spike_t, spike_unit, has_waveforms = (np.zeros(0, np.int64), np.zeros(0),
+                                                            np.zeros(0, np.int64), False)
         else:
             unit_ids, spike_t, spike_unit, has_waveforms = _units(nwb, path)
         marked = read_marks(nwb, nwb.units, path) if marks else None

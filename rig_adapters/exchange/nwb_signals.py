@@ -102,7 +102,7 @@ def _electrical_series(nwb):
 
 
 def read_lfp(nwb, wanted: str, path: Path, start_s: float, stop_s: float) -> NwbLfp:
-    """The ElectricalSeries named ``wanted`` (its name, or its path as listed in the error) within ``[start_s, stop_s)``.
+    """The ElectricalSeries named ``wanted`` (its name or its listed path), within ``[start_s, stop_s)``.
 
     Raises
     ------
