@@ -159,7 +159,7 @@ def test_a_stream_that_stalls_then_returns_with_other_channels_stops_the_bridge_
 def test_the_bridge_names_what_it_cannot_find_and_where_it_will_not_publish(prepared):
     result = _scenario(prepared, "missing", timeout_s=120.0)
     assert result["missing_rc"] == 2 and "no LSL stream with name='nobody_here' answered" in result["missing_err"]
-    assert result["lfp_rc"] == 2 and "no LSL stream with name='no_lfp_here' answered" in result["lfp_err"]
+    assert result["lfp_rc"] == 2 and "at a regular rate of 100 to 100000 Hz" in result["lfp_err"], result["lfp_err"]
     assert result["remote_rc"] == 2 and "not on loopback" in result["remote_err"]
 
 
@@ -325,13 +325,22 @@ def _channels_scenario(work: Path, ports: dict) -> dict:
 
 
 def _missing_scenario(work: Path, ports: dict) -> dict:
+    import pylsl
+
     out = {}
     for name, extra in (("missing", ["--spikes", "name=nobody_here", "--resolve-timeout-s", "1"]),
-                        ("lfp", ["--lfp", "name=no_lfp_here", "--spikes", f"name={SPIKES_NAME}",
-                                 "--resolve-timeout-s", "1"]), ("remote", ["--pub", "tcp://0.0.0.0:5999"])):
+                        ("remote", ["--pub", "tcp://0.0.0.0:5999"])):
         proc = _placeloop("bridge", "lsl", *extra)
         _, err = proc.communicate(timeout=60)
         out[f"{name}_rc"], out[f"{name}_err"] = proc.returncode, err
+    # An "LFP" stream at an irregular rate: the spike and position streams are there, the LFP is refused.
+    outlets = (*_outlets(pylsl), pylsl.StreamOutlet(pylsl.StreamInfo("placeloop_test_lfp", "lfp", 4,
+                                                                     pylsl.IRREGULAR_RATE, pylsl.cf_float32, "x")))
+    proc = _placeloop("bridge", "lsl", "--spikes", f"name={SPIKES_NAME}", "--position", f"name={POSITION_NAME}",
+                      "--lfp", "name=placeloop_test_lfp", "--pub", ports["rig"][0])
+    _, out["lfp_err"] = proc.communicate(timeout=60)
+    out["lfp_rc"] = proc.returncode
+    del outlets
     return out
 
 

@@ -25,6 +25,9 @@ from pathlib import Path
 
 import numpy as np
 
+from rig_adapters.exchange.nwb_errors import NwbImportError
+from rig_adapters.exchange.nwb_signals import read_lfp, read_marks
+
 log = logging.getLogger(__name__)
 
 __all__ = ["NwbImportError", "NwbRecording", "read_recording", "require_pynwb", "LENGTH_UNITS_CM", "SUBJECT_FIELDS"]
@@ -39,10 +42,6 @@ LENGTH_UNITS_CM = {
 #: Angle units a CompassDirection may name, as radians per unit.
 ANGLE_UNITS_RAD = {"radian": 1.0, "radians": 1.0, "rad": 1.0, "degree": math.pi / 180, "degrees": math.pi / 180,
                    "deg": math.pi / 180}
-
-
-class NwbImportError(ValueError):
-    """The NWB file lacks what an import needs, or holds it in a form placeloop cannot read."""
 
 
 def require_pynwb():
@@ -163,8 +162,6 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
         except Exception as exc:  # noqa: BLE001 - as above: the boundary with a foreign file
             raise NwbImportError(f"{path} is not a readable NWB file (truncated, or another format?): "
                                  f"{type(exc).__name__}: {exc}") from None
-        from rig_adapters.exchange.nwb_signals import read_lfp, read_marks
-
         notes: list[str] = []
         if marks and (nwb.units is None or len(nwb.units) == 0 or "spike_times" not in nwb.units.colnames):
             # Clusterless data need no sorting: the marks carry the spikes.

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from decoder.messages import MAX_MARK_CHANNELS, MAX_MARK_UV
-from rig_adapters.exchange.nwb_reading import NwbImportError
+from rig_adapters.exchange.nwb_errors import NwbImportError
 
 __all__ = ["NwbMarks", "NwbLfp", "read_marks", "read_lfp", "AMPLITUDE_COLUMNS"]
 

@@ -416,7 +416,7 @@ class LslBridge:
                 self._send(pub, LfpChunk, LFP_SOURCE, t_s=t0 + (lo - a) / rate, rate_hz=rate,
                            samples=np.ascontiguousarray(x[lo:hi]))
             c.next_t = t0 + (b - a) / rate
-            c.sent += b - a
+            c.sent += int(b - a)
         c.last_t = float(t[-1])
 
     def _watch(self, source: str, now: float) -> None:
