@@ -399,24 +399,31 @@ class LslBridge:
         c, rate = self.counts[LFP_SOURCE], self._lfp_rate_hz
         x = samples.astype(np.float32)
         finite = np.isfinite(x).all(axis=1)
-        # Runs of finite samples: a NaN sample is dropped and the next run starts after a gap.
-        cuts = np.flatnonzero(np.diff(np.r_[0, finite.view(np.int8), 0]))
         c.refused += int(np.count_nonzero(~finite))
-        if not finite.all():
-            c.next_t = -math.inf
+        tolerance_s = max(LFP_GAP_SAMPLES / rate, LFP_JOIN_S)
+        # Segments of finite samples whose stamps run on without a jump; a dropped NaN sample forces a gap
+        # before the next segment (PROTOCOL.md: send every sample, or leave a gap in time).
+        jump = np.r_[False, np.diff(t) > 1.0 / rate + tolerance_s]
+        starts = np.flatnonzero(finite & (jump | ~np.r_[False, finite[:-1]] | (np.arange(t.size) == 0)))
         per_chunk = max(1, min(int(LFP_CHUNK_MAX_S * rate), MAX_BATCH // x.shape[1]))
-        for a, b in zip(cuts[::2], cuts[1::2]):
+        for a in starts.tolist():
+            b = a + 1
+            while b < t.size and finite[b] and not jump[b]:
+                b += 1
+            forced = a > 0 and not finite[a - 1]
             t0 = float(t[a])
-            if math.isfinite(c.next_t) and t0 - c.next_t <= max(LFP_GAP_SAMPLES / rate, LFP_JOIN_S):
-                t0 = c.next_t
-            elif math.isfinite(c.next_t):
+            if math.isfinite(c.next_t) and t0 - c.next_t > tolerance_s:
                 c.lost += int(round((t0 - c.next_t) * rate))
+            elif math.isfinite(c.next_t) and not forced:
+                t0 = c.next_t
             for lo in range(a, b, per_chunk):
                 hi = min(lo + per_chunk, b)
                 self._send(pub, LfpChunk, LFP_SOURCE, t_s=t0 + (lo - a) / rate, rate_hz=rate,
                            samples=np.ascontiguousarray(x[lo:hi]))
             c.next_t = t0 + (b - a) / rate
-            c.sent += int(b - a)
+            c.sent += b - a
+        if not finite[-1]:
+            c.next_t = -math.inf  # the next chunk starts at its own stamp, after the dropped samples
         c.last_t = float(t[-1])
 
     def _watch(self, source: str, now: float) -> None:
