@@ -298,7 +298,8 @@ def _session_scenario(work: Path, ports: dict) -> dict:
             position_out.push_sample([float(v) for v in fxy[j]], t0 + float(ft[j]))
             j += 1
         time.sleep(0.002)
-    time.sleep(0.5)
+    # Time for the bridge to pull the last samples before the outlets close (a loaded machine needs more than 0.5 s).
+    time.sleep(2.0)
     del spike_out, position_out
     bridge_out, bridge_err = bridge.communicate(timeout=60)
     run_out, run_err = run.communicate(timeout=60)

@@ -40,7 +40,7 @@ from rig_adapters.exchange.session_writing import write_session_log
 log = logging.getLogger(__name__)
 
 __all__ = ["ImportResult", "import_nwb", "learning_intervals", "guess_environment", "session_messages",
-           "SPIKE_SOURCE", "TRACKER_SOURCE", "BATCH_S"]
+           "SPIKE_SOURCE", "TRACKER_SOURCE", "LFP_SOURCE", "BATCH_S", "LFP_CHUNK_S"]
 
 #: Source names of the imported session; the config skeleton's [sources] defaults and its [ripples] source.
 SPIKE_SOURCE, TRACKER_SOURCE, LFP_SOURCE = "ephys", "tracker", "lfp"
