@@ -156,11 +156,56 @@ def test_a_stream_that_stalls_then_returns_with_other_channels_stops_the_bridge_
     assert "has sent nothing for" in result["bridge_err"]
 
 
-def test_the_bridge_names_what_it_cannot_find_and_what_is_not_there_yet(prepared):
+def test_the_bridge_names_what_it_cannot_find_and_where_it_will_not_publish(prepared):
     result = _scenario(prepared, "missing", timeout_s=120.0)
     assert result["missing_rc"] == 2 and "no LSL stream with name='nobody_here' answered" in result["missing_err"]
-    assert result["lfp_rc"] == 2 and "not available yet" in result["lfp_err"]
+    assert result["lfp_rc"] == 2 and "at a regular rate of 100 to 100000 Hz" in result["lfp_err"], result["lfp_err"]
     assert result["remote_rc"] == 2 and "not on loopback" in result["remote_err"]
+
+
+def test_marks_and_lfp_streams_arrive_as_groups_marks_and_lfp_chunks(prepared):
+    """Two tetrodes' marks and an 8-channel LFP pushed with pylsl reach the wire value for value.
+
+    The LFP skips half a second of samples (an outlet that dropped them):
+    the bridge must start the next chunk at the stamp after the gap and
+    count the missing samples, so the decoder's detector restarts there
+    (PROTOCOL.md, lfp: a later start is a gap).
+    """
+    from decoder.messages import GroupAnnounce, MarkedSpikes
+    from decoder.signals.lfp_chunk import LfpChunk
+    from rig_adapters.wire import protocol
+
+    result = _scenario(prepared, "signals", timeout_s=180.0)
+    assert result["bridge_rc"] == 0, result["bridge_err"][-2000:]
+    pushed = np.load(Path(prepared["work"]) / "signals_pushed.npz")
+    msgs = [protocol.decode(bytes.fromhex(h)) for h in result["received"]]
+    groups = [m for m in msgs if type(m) is GroupAnnounce]
+    assert groups and groups[0].group_ids.tolist() == [0, 1] and groups[0].group_channels.tolist() == [4, 3]
+    for g, width in ((0, 4), (1, 3)):
+        got = [m for m in msgs if type(m) is MarkedSpikes and m.group_id[0] == g]
+        marks = np.concatenate([m.marks_uv for m in got])
+        assert marks.shape[1] == width
+        # pylsl's float32 channels carry the pushed values exactly.
+        np.testing.assert_array_equal(marks, pushed[f"marks{g}"].astype(np.float32))
+        np.testing.assert_allclose(np.concatenate([m.t_s for m in got]) - pushed["t0"], pushed[f"marks{g}_t"],
+                                   atol=1e-3)
+    chunks = [m for m in msgs if type(m) is LfpChunk]
+    samples = np.concatenate([c.samples for c in chunks])
+    np.testing.assert_array_equal(samples, pushed["lfp"].astype(np.float32))
+    starts = np.array([c.t_s for c in chunks]) - pushed["t0"]
+    ends = starts + np.array([c.samples.shape[0] for c in chunks]) / 1000.0
+    joins = starts[1:] - ends[:-1]
+    # One gap, 0.5 s long where the samples were skipped; every other chunk begins where the previous ended.
+    assert np.count_nonzero(np.abs(joins) > 0.5e-3) == 1 and abs(joins.max() - 0.5) < 2e-3, joins.max()
+    report = result["bridge"]
+    assert report["lfp"]["lost"] == pushed["skipped"] and report["lfp"]["refused"] == 0
+    assert report["marks0"]["samples"] == pushed["marks0"].shape[0] and report["marks1"]["lost"] == 0
+
+
+def test_a_marks_stream_back_with_other_channels_stops_the_bridge_with_a_sentence(prepared):
+    result = _scenario(prepared, "mark_channels", timeout_s=120.0)
+    assert result["bridge_rc"] == 2
+    assert "came back with 3 channels instead of 4" in result["bridge_err"], result["bridge_err"][-2000:]
 
 
 def test_a_missing_pylsl_says_what_to_install(monkeypatch):
@@ -253,7 +298,8 @@ def _session_scenario(work: Path, ports: dict) -> dict:
             position_out.push_sample([float(v) for v in fxy[j]], t0 + float(ft[j]))
             j += 1
         time.sleep(0.002)
-    time.sleep(0.5)
+    # Time for the bridge to pull the last samples before the outlets close (a loaded machine needs more than 0.5 s).
+    time.sleep(2.0)
     del spike_out, position_out
     bridge_out, bridge_err = bridge.communicate(timeout=60)
     run_out, run_err = run.communicate(timeout=60)
@@ -280,16 +326,111 @@ def _channels_scenario(work: Path, ports: dict) -> dict:
 
 
 def _missing_scenario(work: Path, ports: dict) -> dict:
+    import pylsl
+
     out = {}
     for name, extra in (("missing", ["--spikes", "name=nobody_here", "--resolve-timeout-s", "1"]),
-                        ("lfp", ["--lfp", "name=lfp"]), ("remote", ["--pub", "tcp://0.0.0.0:5999"])):
+                        ("remote", ["--pub", "tcp://0.0.0.0:5999"])):
         proc = _placeloop("bridge", "lsl", *extra)
         _, err = proc.communicate(timeout=60)
         out[f"{name}_rc"], out[f"{name}_err"] = proc.returncode, err
+    # An "LFP" stream at an irregular rate: the spike and position streams are there, the LFP is refused.
+    outlets = (*_outlets(pylsl), pylsl.StreamOutlet(pylsl.StreamInfo("placeloop_test_lfp", "lfp", 4,
+                                                                     pylsl.IRREGULAR_RATE, pylsl.cf_float32, "x")))
+    proc = _placeloop("bridge", "lsl", "--spikes", f"name={SPIKES_NAME}", "--position", f"name={POSITION_NAME}",
+                      "--lfp", "name=placeloop_test_lfp", "--pub", ports["rig"][0])
+    _, out["lfp_err"] = proc.communicate(timeout=60)
+    out["lfp_rc"] = proc.returncode
+    del outlets
     return out
+
+
+def _signal_outlets(pylsl, first_width: int = 4):
+    marks = [pylsl.StreamOutlet(pylsl.StreamInfo(f"placeloop_test_tt{g}", "marks", w, pylsl.IRREGULAR_RATE,
+                                                 pylsl.cf_float32, f"sim-tt{g}"))
+             for g, w in enumerate((first_width, 3))]
+    position = pylsl.StreamOutlet(pylsl.StreamInfo(POSITION_NAME, "position", 2, 50.0, pylsl.cf_float32, "cam"))
+    lfp = pylsl.StreamOutlet(pylsl.StreamInfo("placeloop_test_lfp", "lfp", 8, 1000.0, pylsl.cf_float32, "sim-lfp"))
+    return marks, position, lfp
+
+
+def _signal_bridge(ports: dict, *extra: str) -> subprocess.Popen:
+    return _placeloop("bridge", "lsl", "--marks", "name=placeloop_test_tt0", "--marks", "name=placeloop_test_tt1",
+                      "--position", f"name={POSITION_NAME}", "--lfp", "name=placeloop_test_lfp",
+                      "--pub", ports["rig"][0], *extra)
+
+
+def _signals_scenario(work: Path, ports: dict) -> dict:
+    import pylsl
+    import zmq
+
+    rng = np.random.default_rng(4)
+    (tt0, tt1), position, lfp = _signal_outlets(pylsl)
+    bridge = _signal_bridge(ports, "--stall-s", "30", "--rejoin-s", "1", "--report", str(work / "signals_report.json"))
+    sub = zmq.Context.instance().socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    sub.setsockopt(zmq.RCVTIMEO, 120_000)
+    sub.connect(ports["rig"][0])
+    received = [sub.recv().hex()]  # resolved and bridging
+    # Invented signals: marks of 50-300 uV at random times, an LFP of sine waves and noise (uV).
+    dur_s, rate = 3.0, 1000.0
+    m_t = [np.sort(rng.uniform(0, dur_s, n)) for n in (300, 200)]
+    m_v = [rng.uniform(50, 300, (t.size, w)) for t, w in zip(m_t, (4, 3))]
+    n = int(dur_s * rate)
+    keep = np.ones(n, bool)
+    keep[1500:2000] = False                      # half a second the outlet never sent
+    lfp_t = np.arange(n) / rate
+    lfp_v = 80 * np.sin(2 * np.pi * 8 * lfp_t)[:, None] + rng.normal(0, 20, (n, 8))
+    t0 = pylsl.local_clock() + 0.05
+    i = [0, 0]
+    k = 0
+    while k < n or i[0] < m_t[0].size or i[1] < m_t[1].size:
+        now = pylsl.local_clock() - t0
+        for g, outlet in enumerate((tt0, tt1)):
+            while i[g] < m_t[g].size and m_t[g][i[g]] <= now:
+                outlet.push_sample(m_v[g][i[g]].tolist(), t0 + float(m_t[g][i[g]]))
+                i[g] += 1
+        while k < n and lfp_t[k] <= now:
+            if keep[k]:
+                lfp.push_sample(lfp_v[k].tolist(), t0 + float(lfp_t[k]))
+            k += 1
+        # Heartbeats come every 10 ms: take what is there and go back to pushing.
+        while sub.poll(0):
+            received.append(sub.recv().hex())
+        time.sleep(0.002)
+    deadline = time.monotonic() + 1.0
+    while time.monotonic() < deadline:
+        if sub.poll(50):
+            received.append(sub.recv().hex())
+    bridge.send_signal(2)  # SIGINT: the bridge stops and writes its report
+    _, err = bridge.communicate(timeout=60)
+    sub.close()
+    del tt0, tt1, position, lfp
+    np.savez(work / "signals_pushed.npz", t0=t0, marks0=m_v[0], marks1=m_v[1], marks0_t=m_t[0], marks1_t=m_t[1],
+             lfp=lfp_v[keep], skipped=int((~keep).sum()))
+    return {"bridge_rc": bridge.returncode, "bridge_err": err, "received": received,
+            "bridge": json.loads((work / "signals_report.json").read_text())}
+
+
+def _mark_channels_scenario(work: Path, ports: dict) -> dict:
+    import pylsl
+
+    (tt0, tt1), position, lfp = _signal_outlets(pylsl)
+    bridge = _signal_bridge(ports, "--stall-s", "0.5", "--rejoin-s", "10")
+    _first_message(ports["rig"][0], 120.0)
+    time.sleep(1.0)
+    del tt0
+    time.sleep(1.0)
+    changed = pylsl.StreamOutlet(pylsl.StreamInfo("placeloop_test_tt0", "marks", 3, pylsl.IRREGULAR_RATE,
+                                                  pylsl.cf_float32, "sim-tt0"))
+    _, err = bridge.communicate(timeout=60)
+    del changed, tt1, position, lfp
+    return {"bridge_rc": bridge.returncode, "bridge_err": err}
 
 
 if __name__ == "__main__":
     mode, work_dir, port_json = sys.argv[1], Path(sys.argv[2]), json.loads(sys.argv[3])
-    scenario = {"session": _session_scenario, "channels": _channels_scenario, "missing": _missing_scenario}[mode]
+    scenario = {"session": _session_scenario, "channels": _channels_scenario, "missing": _missing_scenario,
+                "signals": _signals_scenario, "mark_channels": _mark_channels_scenario}[mode]
     (work_dir / f"{mode}.json").write_text(json.dumps(scenario(work_dir, port_json)))

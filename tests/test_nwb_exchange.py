@@ -294,16 +294,16 @@ def test_bad_input_is_one_clear_sentence_and_leaves_no_session_behind(simulated,
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.nwb"]
 
 
-def test_pixels_import_with_a_scale_and_waveforms_are_named_not_imported(simulated, tmp_path, capsys):
+def test_pixels_import_with_a_scale_and_mean_waveforms_are_named_not_marks(simulated, tmp_path, capsys):
     path = _plain_file(simulated, tmp_path / "px.nwb", position_unit="pixels")
     rec = read_recording(path, cm_per_unit=0.5)
     with NWBHDF5IO(str(path), "r") as io:
         np.testing.assert_allclose(rec.frame_xy_cm, io.read().acquisition["Position"]["pos"].data[:] * 0.5)
     wf = _recording_in_metres(simulated, tmp_path / "wf.nwb", waveforms=True)
     assert cli.main(["import", str(wf), "--out", str(tmp_path / "s"), "--stop-s", "30"]) == 0
-    assert "waveform features; they are not imported yet" in capsys.readouterr().out
+    assert "mean waveforms, one per unit: not marks" in capsys.readouterr().out
     assert cli.main(["import", str(wf), "--out", str(tmp_path / "s2"), "--marks"]) == 2
-    assert "not available yet" in capsys.readouterr().err and not (tmp_path / "s2").exists()
+    assert "holds no FeatureExtraction" in capsys.readouterr().err and not (tmp_path / "s2").exists()
 
 
 def test_learning_part_from_epochs_trials_or_seconds(simulated, tmp_path):

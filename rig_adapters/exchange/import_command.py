@@ -14,7 +14,8 @@ __all__ = ["main", "build_parser"]
 IMPORT_DESCRIPTION = """\
 Write a placeloop session log from an NWB recording: sorted units' spike
 times, the tracked position (units and conversion honoured) and head
-direction, as a live rig would have sent them, with a config skeleton beside
+direction, marked spikes (--marks) and an LFP (--lfp), as a live rig would
+have sent them, with a config skeleton beside
 the log (environment guessed from the positions, marked GUESSED). `placeloop
 replay`, `sweep` and `report` then take the log unchanged.
 
@@ -66,9 +67,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-arm", action="store_true",
                    help="leave the triggers disarmed after the fit (by default the log arms them, so that a "
                         "replay shows the events the rules would fire; a replay never drives hardware)")
-    p.add_argument("--marks", action="store_true", help="import waveform features as marks (not available yet)")
+    p.add_argument("--marks", action="store_true",
+                   help="import marked spikes for clusterless decoding: every FeatureExtraction an electrode group "
+                        "(its channels' features), else a per-spike amplitude column of the Units table")
     p.add_argument("--lfp", default=None, metavar="SERIES",
-                   help="import this ElectricalSeries as LFP (not available yet)")
+                   help="import this ElectricalSeries (by name) as the LFP of source 'lfp', for ripple detection")
+    p.add_argument("--lfp-chunk-s", type=float, default=0.004,
+                   help="data time per LFP chunk (s), a few ms as an acquisition system sends")
     p.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
     return p
 
@@ -77,11 +82,6 @@ def main(argv: list[str] | None = None) -> int:
     """``placeloop import RECORDING.nwb --out LOGDIR [options]``."""
     args = build_parser().parse_args(argv)
     setup_logging(args.verbose)
-    if args.marks or args.lfp:
-        what = "waveform marks" if args.marks else "LFP"
-        print(f"error: importing {what} is not available yet: the wire protocol carries no {what} message in this "
-              "version; import without --marks/--lfp to get the sorted units and position", file=sys.stderr)
-        return 2
     from rig_adapters.exchange.nwb_import import import_nwb
     from rig_adapters.exchange.nwb_reading import NwbImportError
 
@@ -89,7 +89,8 @@ def main(argv: list[str] | None = None) -> int:
         result = import_nwb(args.recording, args.out, position=args.position, head_direction=args.head_direction,
                             cm_per_unit=args.cm_per_unit, start_s=args.start_s, stop_s=args.stop_s,
                             learn_s=args.learn_s, learn_epoch=args.learn_epoch, learn_trials=args.learn_trials,
-                            batch_s=args.batch_s, arm=not args.no_arm)
+                            batch_s=args.batch_s, arm=not args.no_arm, marks=args.marks, lfp=args.lfp,
+                            lfp_chunk_s=args.lfp_chunk_s)
     except (NwbImportError, FileExistsError, OSError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
@@ -98,6 +99,10 @@ def main(argv: list[str] | None = None) -> int:
           f"{result.start_s:g}-{result.stop_s:g} s; learning from {result.learn_source} ({learn})")
     print(f"environment GUESSED from the positions: {json.dumps(result.environment)}; check it in "
           f"{result.log_dir / 'config.toml'} and add zones and rules")
+    if result.n_groups:
+        print(f"marks: {result.n_marked_spikes} marked spikes of {result.n_groups} electrode groups")
+    if result.n_lfp_chunks:
+        print(f"LFP: {result.n_lfp_chunks} chunks from source 'lfp'")
     for note in result.notes:
         print(f"note: {note}")
     return 0

@@ -3,7 +3,11 @@
 The recording's sorted units and tracked position become the messages a
 live rig would have sent, in the order it would have sent them: the
 sources' announcements, then per ``batch_s`` of data time one spike batch,
-the tracker frames of that stretch and a heartbeat from the spike source.
+the tracker frames of that stretch and a heartbeat from the spike source; with ``--marks`` the
+spike source also announces its electrode groups and sends the marked
+spikes of each stretch, and with ``--lfp`` an ``"lfp"`` source sends the
+series in chunks of a few ms, each with the batch in which its last sample
+was taken.
 Both sources run on the file's own clock (seconds from its
 ``session_start_time``), so no sync pulses are needed, and the log's receive
 times are ``session_start_time`` plus data time. The part of the session to
@@ -27,17 +31,22 @@ from pathlib import Path
 import numpy as np
 
 from decoder.config import parse_config
-from decoder.messages import ControlCommand, Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
+from decoder.messages import (ControlCommand, GroupAnnounce, Heartbeat, MarkedSpikes, SourceAnnounce, SpikeBatch,
+                              TrackerFrames)
+from decoder.signals.lfp_chunk import LfpChunk
 from rig_adapters.exchange.nwb_reading import NwbImportError, NwbRecording, read_recording
 from rig_adapters.exchange.session_writing import write_session_log
 
 log = logging.getLogger(__name__)
 
 __all__ = ["ImportResult", "import_nwb", "learning_intervals", "guess_environment", "session_messages",
-           "SPIKE_SOURCE", "TRACKER_SOURCE", "BATCH_S"]
+           "SPIKE_SOURCE", "TRACKER_SOURCE", "LFP_SOURCE", "BATCH_S", "LFP_CHUNK_S"]
 
-#: Source names of the imported session; the config skeleton's [sources] defaults.
-SPIKE_SOURCE, TRACKER_SOURCE = "ephys", "tracker"
+#: Source names of the imported session; the config skeleton's [sources] defaults and its [ripples] source.
+SPIKE_SOURCE, TRACKER_SOURCE, LFP_SOURCE = "ephys", "tracker", "lfp"
+
+#: Data time per LFP chunk (s): an acquisition system sends a few ms at a time (PROTOCOL.md, lfp).
+LFP_CHUNK_S = 0.004
 
 #: Data time covered by one spike batch and closed by one heartbeat (s): a rig sends a batch every
 #: 10-20 ms (PROTOCOL.md, heartbeats at least once per decoding step).
@@ -64,6 +73,9 @@ class ImportResult:
     n_spikes: int
     n_frames: int
     notes: tuple[str, ...]
+    n_marked_spikes: int = 0
+    n_groups: int = 0
+    n_lfp_chunks: int = 0
 
 
 def learning_intervals(recording: NwbRecording, start_s: float, stop_s: float,
@@ -223,11 +235,22 @@ tracker = "{TRACKER_SOURCE}"
 
 [session]
 learn_s = 0.0
-"""
+{_signal_tables(recording)}"""
+
+
+def _signal_tables(recording: NwbRecording) -> str:
+    out = ""
+    if recording.marks is not None:
+        out += (f"\n# Marks from the file's {recording.marks.source}: decoded clusterless (docs/CONFIG.md, [marks]).\n"
+                "[marks]\nenabled = true\n")
+    if recording.lfp is not None:
+        out += (f"\n# LFP from the file's ElectricalSeries {recording.lfp.name!r}; add a [[rules]] of kind "
+                f"\"ripple\" to act on ripples.\n[ripples]\nsource = \"{LFP_SOURCE}\"\n")
+    return out
 
 
 def session_messages(recording: NwbRecording, start_s: float, stop_s: float, learn: list,
-                     batch_s: float = BATCH_S, arm: bool = True):
+                     batch_s: float = BATCH_S, arm: bool = True, lfp_chunk_s: float = LFP_CHUNK_S):
     """The recording's messages as a live rig sends them, as ``(t_end_s, messages)`` chunks.
 
     Parameters
@@ -242,12 +265,14 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
         Data time per spike batch and heartbeat (s).
     arm : bool
         Arm the triggers right after the fit, as a script choosing zones in a replay would.
+    lfp_chunk_s : float
+        Data time per LFP chunk (s), when the recording has an LFP.
 
     Yields
     ------
     (float, list of InputMessage)
     """
-    seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, "operator": 0}
+    seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, LFP_SOURCE: 0, "operator": 0}
 
     def stamped(cls, source, **fields):
         msg = cls(source=source, seq=seq[source], **fields)
@@ -256,11 +281,18 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
 
     frame_t, xy, head = recording.frame_t_s, recording.frame_xy_cm, recording.frame_head_rad
     frame_rate = 1.0 / float(np.median(np.diff(frame_t))) if frame_t.size > 1 else 30.0
-    yield 0.0, [
-        stamped(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock="acquisition",
-                sample_rate_hz=NOMINAL_SPIKE_RATE_HZ, unit_ids=recording.unit_ids),
-        stamped(SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock="acquisition", sample_rate_hz=frame_rate),
-    ]
+    marks = recording.marks
+    announce = [stamped(SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock="acquisition",
+                        sample_rate_hz=NOMINAL_SPIKE_RATE_HZ, unit_ids=recording.unit_ids)]
+    if marks is not None:
+        announce.append(stamped(GroupAnnounce, SPIKE_SOURCE, group_ids=marks.group_ids,
+                                group_channels=marks.group_channels))
+    announce.append(stamped(SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock="acquisition",
+                            sample_rate_hz=frame_rate))
+    yield 0.0, announce
+    lfp = _lfp_chunks(recording.lfp, start_s, stop_s, lfp_chunk_s) if recording.lfp is not None else []
+    lfp_ends = np.array([t + x.shape[0] / recording.lfp.rate_hz for t, x in lfp]) if lfp else np.zeros(0)
+    width = marks.group_channels[marks.group_id] if marks is not None else None
     commands: dict[float, list[str]] = {}
     for i, (a, b) in enumerate(learn):
         commands.setdefault(a, []).append("start_learning")
@@ -274,8 +306,16 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
     f_lo = int(np.searchsorted(frames, start_s, side="left"))
     s_hi_all = np.searchsorted(spikes, edges, side="left")
     f_hi_all = np.searchsorted(frames, edges, side="left")
+    m_t = marks.t_s if marks is not None else np.zeros(0)
+    m_lo = int(np.searchsorted(m_t, start_s, side="left"))
+    m_hi_all = np.searchsorted(m_t, edges, side="left")
+    # An LFP chunk goes out with the batch during which its last sample was taken; the last batch takes the rest.
+    l_hi_all = np.searchsorted(lfp_ends, edges, side="right")
+    l_hi_all[-1:] = len(lfp)
+    l_lo = 0
     pending = commands.get(start_s, [])
-    for t1, s_hi, f_hi in zip(edges.tolist(), s_hi_all.tolist(), f_hi_all.tolist()):
+    for t1, s_hi, f_hi, m_hi, l_hi in zip(edges.tolist(), s_hi_all.tolist(), f_hi_all.tolist(), m_hi_all.tolist(),
+                                          l_hi_all.tolist()):
         out = [stamped(ControlCommand, "operator", command=c) for c in pending]
         timed = []
         if s_hi > s_lo:
@@ -285,10 +325,18 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
             timed.append((frames[f_lo], stamped(
                 TrackerFrames, TRACKER_SOURCE, t_s=frames[f_lo:f_hi], xy_cm=xy[f_lo:f_hi],
                 head_dir_rad=None if head is None else head[f_lo:f_hi])))
+        if m_hi > m_lo:
+            # One width per message (PROTOCOL.md, marks): groups of another channel count go in their own.
+            for w in np.unique(width[m_lo:m_hi]).tolist():
+                pick = m_lo + np.flatnonzero(width[m_lo:m_hi] == w)
+                timed.append((m_t[pick[0]], stamped(MarkedSpikes, SPIKE_SOURCE, t_s=m_t[pick],
+                                                    group_id=marks.group_id[pick], marks_uv=marks.marks_uv[pick, :w])))
+        for t0, samples in lfp[l_lo:l_hi]:
+            timed.append((t0, stamped(LfpChunk, LFP_SOURCE, t_s=t0, rate_hz=recording.lfp.rate_hz, samples=samples)))
         timed.sort(key=lambda item: item[0])
         out.extend(msg for _, msg in timed)
         out.append(stamped(Heartbeat, SPIKE_SOURCE, t_s=float(t1)))
-        s_lo, f_lo = s_hi, f_hi
+        s_lo, f_lo, m_lo, l_lo = s_hi, f_hi, m_hi, l_hi
         # A request at an edge follows the heartbeat that brings data time to it.
         pending = commands.get(t1, [])
         if t1 == edges[-1]:
@@ -296,15 +344,31 @@ def session_messages(recording: NwbRecording, start_s: float, stop_s: float, lea
         yield t1, out
 
 
+def _lfp_chunks(lfp, start_s: float, stop_s: float, chunk_s: float) -> list:
+    """The LFP's runs within ``[start_s, stop_s)`` cut into chunks of ``chunk_s``, as ``(t0_s, samples)``."""
+    per_chunk = max(1, int(round(chunk_s * lfp.rate_hz)))
+    out = []
+    for t0, x in lfp.runs:
+        t = t0 + np.arange(x.shape[0]) / lfp.rate_hz
+        lo, hi = np.searchsorted(t, [start_s, stop_s], side="left")
+        out.extend((float(t[i]), x[i: min(i + per_chunk, hi)]) for i in range(int(lo), int(hi), per_chunk))
+    return out
+
+
 def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = None, head_direction: str | None = None,
                cm_per_unit: float | None = None, start_s: float | None = None, stop_s: float | None = None,
                learn_s: tuple[float, float] | None = None, learn_epoch: str | None = None,
-               learn_trials: tuple[int, int] | None = None, batch_s: float = BATCH_S, arm: bool = True) -> ImportResult:
+               learn_trials: tuple[int, int] | None = None, batch_s: float = BATCH_S, arm: bool = True,
+               marks: bool = False, lfp: str | None = None, lfp_chunk_s: float = LFP_CHUNK_S) -> ImportResult:
     """Write the session log of an NWB recording, with a config skeleton beside it.
 
     Parameters are those of ``placeloop import`` (see :func:`read_recording`
     and :func:`learning_intervals`); ``start_s``/``stop_s`` limit the
     imported range (default: the spikes' and positions' common span).
+    ``marks`` adds the file's marked spikes (``groups`` and ``marks``
+    messages, and ``[marks] enabled`` in the skeleton); ``lfp`` names an
+    ElectricalSeries sent as ``lfp`` chunks of ``lfp_chunk_s`` from source
+    ``"lfp"`` (and ``[ripples] source`` in the skeleton).
 
     Returns
     -------
@@ -322,14 +386,19 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
                               "Choose a new directory.")
     if not (isinstance(batch_s, (int, float)) and 0 < batch_s <= 1):
         raise NwbImportError(f"batch_s must be a positive number of seconds up to 1, got {batch_s!r}")
-    recording = read_recording(path, position=position, head_direction=head_direction, cm_per_unit=cm_per_unit)
+    if not (isinstance(lfp_chunk_s, (int, float)) and 0 < lfp_chunk_s <= 0.1):
+        raise NwbImportError(f"lfp_chunk_s must be a positive number of seconds up to 0.1, got {lfp_chunk_s!r}")
+    recording = read_recording(path, position=position, head_direction=head_direction, cm_per_unit=cm_per_unit,
+                               marks=marks, lfp=lfp, start_s=start_s, stop_s=stop_s)
     seen = recording.frame_t_s[np.isfinite(recording.frame_xy_cm).all(axis=1)]
-    lo = max(float(recording.spike_t_s[0]), float(seen[0]))
-    hi = min(float(recording.spike_t_s[-1]), float(seen[-1]))
+    spikes = np.concatenate([recording.spike_t_s[[0, -1]] if recording.spike_t_s.size else np.zeros(0),
+                             recording.marks.t_s[[0, -1]] if recording.marks is not None else np.zeros(0)])
+    lo = max(float(spikes.min()), float(seen[0]))
+    hi = min(float(spikes.max()), float(seen[-1]))
     start = lo if start_s is None else max(float(start_s), lo)
     stop = hi if stop_s is None else min(float(stop_s), hi)
     if not stop > start:
-        raise NwbImportError(f"{path}: the spikes ({recording.spike_t_s[0]:g}-{recording.spike_t_s[-1]:g} s) and "
+        raise NwbImportError(f"{path}: the spikes ({spikes.min():g}-{spikes.max():g} s) and "
                              f"positions ({seen[0]:g}-{seen[-1]:g} s) share no time within the range asked for")
     learn, learn_source = learning_intervals(recording, start, stop, learn_s, learn_epoch, learn_trials)
     in_range = (recording.frame_t_s >= start) & (recording.frame_t_s < stop)
@@ -337,9 +406,9 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
     text = config_skeleton(recording, environment, learn, learn_source, arm)
     parse_config(text, "the config skeleton")  # a skeleton that does not load is a bug here, not the user's
     notes = list(recording.notes)
-    if recording.has_waveforms:
-        notes.append("the Units table has waveform features; they are not imported yet (clusterless decoding "
-                     "needs marks on the wire first)")
+    if recording.has_waveforms and recording.marks is None:
+        notes.append("the Units table has mean waveforms, one per unit: not marks; --marks reads per-spike features "
+                     "(FeatureExtraction) or amplitudes")
     metadata = {
         "imported_from": str(Path(path).resolve()),
         "nwb_identifier": recording.identifier,
@@ -352,11 +421,19 @@ def import_nwb(path: str | Path, log_dir: str | Path, position: str | None = Non
         "learn_source": learn_source,
         "armed_after_fit": arm,
         "subject": recording.subject,
+        "marks": None if recording.marks is None else {
+            "source": recording.marks.source, "groups": recording.marks.group_names,
+            "channels": recording.marks.group_channels.tolist()},
+        "lfp_series": None if recording.lfp is None else recording.lfp.name,
         "guessed": ["environment"],
         "notes": notes,
     }
-    chunks = session_messages(recording, start, stop, learn, batch_s, arm)
+    chunks = session_messages(recording, start, stop, learn, batch_s, arm, lfp_chunk_s)
     write_session_log(log_dir, text, chunks, metadata, recording.session_start_wall_s)
     n_spikes = int(np.count_nonzero((recording.spike_t_s >= start) & (recording.spike_t_s < stop)))
+    n_marked = 0 if recording.marks is None else int(np.count_nonzero((recording.marks.t_s >= start)
+                                                              & (recording.marks.t_s < stop)))
+    n_lfp = 0 if recording.lfp is None else len(_lfp_chunks(recording.lfp, start, stop, lfp_chunk_s))
     return ImportResult(Path(log_dir), start, stop, tuple(learn), learn_source, environment,
-                        int(recording.unit_ids.size), n_spikes, int(in_range.sum()), tuple(notes))
+                        int(recording.unit_ids.size), n_spikes, int(in_range.sum()), tuple(notes), n_marked,
+                        0 if recording.marks is None else int(recording.marks.group_ids.size), n_lfp)

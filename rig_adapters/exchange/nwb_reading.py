@@ -25,6 +25,9 @@ from pathlib import Path
 
 import numpy as np
 
+from rig_adapters.exchange.nwb_errors import NwbImportError
+from rig_adapters.exchange.nwb_signals import read_lfp, read_marks
+
 log = logging.getLogger(__name__)
 
 __all__ = ["NwbImportError", "NwbRecording", "read_recording", "require_pynwb", "LENGTH_UNITS_CM", "SUBJECT_FIELDS"]
@@ -39,10 +42,6 @@ LENGTH_UNITS_CM = {
 #: Angle units a CompassDirection may name, as radians per unit.
 ANGLE_UNITS_RAD = {"radian": 1.0, "radians": 1.0, "rad": 1.0, "degree": math.pi / 180, "degrees": math.pi / 180,
                    "deg": math.pi / 180}
-
-
-class NwbImportError(ValueError):
-    """The NWB file lacks what an import needs, or holds it in a form placeloop cannot read."""
 
 
 def require_pynwb():
@@ -83,7 +82,11 @@ class NwbRecording:
     subject : dict
         The file's subject fields that are set (``subject_id``, ``species``, ``sex``, ``age``, ...), as text.
     has_waveforms : bool
-        The Units table holds waveform features (for clusterless decoding, not imported yet).
+        The Units table holds mean waveforms (per unit, not per spike: not marks).
+    marks : NwbMarks or None
+        The marked spikes, when asked for (``rig_adapters.exchange.nwb_signals``).
+    lfp : NwbLfp or None
+        The LFP series asked for, within the range asked for.
     notes : list of str
         What the import had to decide or repair, for the user.
     """
@@ -106,10 +109,13 @@ class NwbRecording:
     subject: dict = field(default_factory=dict)
     has_waveforms: bool = False
     notes: list = field(default_factory=list)
+    marks: object = None
+    lfp: object = None
 
 
 def read_recording(path: str | Path, position: str | None = None, head_direction: str | None = None,
-                   cm_per_unit: float | None = None) -> NwbRecording:
+                   cm_per_unit: float | None = None, marks: bool = False, lfp: str | None = None,
+                   start_s: float | None = None, stop_s: float | None = None) -> NwbRecording:
     """Read an NWB file's sorted units, position, head direction, epochs and trials.
 
     Parameters
@@ -124,6 +130,13 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
     cm_per_unit : float, optional
         Centimetres per unit of the position series, for a file whose unit
         is missing or not a length (pixels); overrides the file's unit.
+    marks : bool, default False
+        Read the marked spikes too (:func:`~rig_adapters.exchange.nwb_signals.read_marks`);
+        the Units table may then be missing.
+    lfp : str, optional
+        Read this ElectricalSeries as LFP (:func:`~rig_adapters.exchange.nwb_signals.read_lfp`).
+    start_s, stop_s : float, optional
+        The LFP is read within this range only (s).
 
     Returns
     -------
@@ -150,7 +163,17 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
             raise NwbImportError(f"{path} is not a readable NWB file (truncated, or another format?): "
                                  f"{type(exc).__name__}: {exc}") from None
         notes: list[str] = []
-        unit_ids, spike_t, spike_unit, has_waveforms = _units(nwb, path)
+        if marks and (nwb.units is None or len(nwb.units) == 0 or "spike_times" not in nwb.units.colnames):
+            # Clusterless data need no sorting: the marks carry the spikes.
+            unit_ids, spike_t, spike_unit, has_waveforms = (np.zeros(0, np.int64), np.zeros(0),
+                                                            np.zeros(0, np.int64), False)
+        else:
+            unit_ids, spike_t, spike_unit, has_waveforms = _units(nwb, path)
+        marked = read_marks(nwb, nwb.units, path) if marks else None
+        lfp_read = None
+        if lfp is not None:
+            lo = -math.inf if start_s is None else float(start_s)
+            lfp_read = read_lfp(nwb, lfp, path, lo, math.inf if stop_s is None else float(stop_s))
         series, pos_name = _pick_series(nwb, "Position", position, path, required=True)
         frame_t, xy, dims = _position(series, pos_name, path, cm_per_unit, notes)
         head = None
@@ -167,6 +190,7 @@ def read_recording(path: str | Path, position: str | None = None, head_direction
             frame_t_s=frame_t, frame_xy_cm=xy, frame_head_rad=head, position_name=pos_name,
             head_direction_name=head_name, position_dims=dims, epochs=_intervals(nwb.epochs),
             trials=_intervals(nwb.trials), subject=_subject(nwb.subject), has_waveforms=has_waveforms, notes=notes,
+            marks=marked, lfp=lfp_read,
         )
     finally:
         io.close()

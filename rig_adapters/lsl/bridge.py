@@ -1,14 +1,29 @@
 """Lab Streaming Layer streams republished on placeloop's wire protocol.
 
-:class:`LslBridge` subscribes to two LSL streams, found by name or type:
+:class:`LslBridge` subscribes to LSL streams, found by name or type:
 
 spikes
     One channel, one sample per spike: the unit id (any integer format),
     stamped with the spike's time. Irregular rate.
+marks
+    One stream per electrode group (tetrode, shank segment): one sample per
+    spike, its mark in µV on each of the group's channels, so the stream's
+    channel count (1 to 64) is the group's. Group ids are the streams'
+    order, from 0; the spike source announces them (``groups``).
 position
     Two or three channels, ``x, y[, heading]``, at the tracker's frame rate;
     lengths in cm unless the stream's ``desc/channels/channel/unit`` names
     another length, heading in radians (NaN where unknown).
+lfp
+    Up to 512 channels in µV at a regular rate, republished as ``lfp``
+    chunks of source ``"lfp"``. Consecutive chunks are stamped end to end
+    (LSL's stamps jitter by more than the half sample the protocol allows
+    between chunks); a stamp later than the previous chunk's end by more
+    than :data:`LFP_JOIN_S` (or :data:`LFP_GAP_SAMPLES` samples, if longer)
+    is a gap, its missing samples counted ``lost``, and the chunks go on
+    from that stamp; so does a clock that drifts from the nominal rate, once
+    the drift passes that tolerance. Samples with a NaN are dropped (``refused``): the next chunk
+    then starts after a gap, as the protocol asks.
 
 and publishes them on one ZeroMQ PUB socket as a rig does (PROTOCOL.md):
 an ``announce`` per source (repeated every :data:`ANNOUNCE_EVERY_S`),
@@ -42,15 +57,28 @@ from dataclasses import dataclass, field
 import numpy as np
 import zmq
 
-from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, TrackerFrames
+from decoder.messages import (MAX_BATCH, MAX_MARK_CHANNELS, MAX_MARK_UV, GroupAnnounce, Heartbeat, MarkedSpikes,
+                              SourceAnnounce, SpikeBatch, TrackerFrames)
+from decoder.signals.lfp_chunk import LFP_RATE_RANGE_HZ, MAX_LFP_CHANNELS, LfpChunk
 from rig_adapters.wire import protocol
 
 log = logging.getLogger(__name__)
 
 __all__ = ["LslBridge", "BridgeError", "StreamCounts", "require_pylsl", "SPIKE_SOURCE", "TRACKER_SOURCE",
-           "LSL_CLOCK"]
+           "LSL_CLOCK", "LFP_SOURCE"]
 
-SPIKE_SOURCE, TRACKER_SOURCE, LSL_CLOCK = "ephys", "tracker", "lsl"
+SPIKE_SOURCE, TRACKER_SOURCE, LFP_SOURCE, LSL_CLOCK = "ephys", "tracker", "lfp", "lsl"
+
+#: An LFP chunk stamped more than this many samples, and more than LFP_JOIN_S, after the previous
+#: chunk's end starts after a gap.
+LFP_GAP_SAMPLES = 1.5
+
+#: Delivery jitter of LSL stamps absorbed when joining LFP chunks end to end (s); a few ms is common
+#: practice for chunked outlets on one machine (from memory).
+LFP_JOIN_S = 0.005
+
+#: Data time per republished LFP chunk at most (s): a few ms arrive at a time, a burst is cut to this.
+LFP_CHUNK_MAX_S = 0.05
 
 #: Announcements are repeated this often (s), so a late subscriber learns the sources (PROTOCOL.md: <= 5 s).
 ANNOUNCE_EVERY_S = 4.0
@@ -86,10 +114,12 @@ class StreamCounts:
     lost: int = 0
     late: int = 0
     reordered: int = 0
+    refused: int = 0
     stalls: int = 0
     rejoins: int = 0
     silent: bool = False
     last_t: float = -math.inf
+    next_t: float = field(default=-math.inf, repr=False)
     last_arrival_s: float = field(default=-math.inf, repr=False)
 
 
@@ -104,12 +134,13 @@ def _query(text: str) -> tuple[str, str]:
 
 
 class LslBridge:
-    """Republish an LSL spike stream and position stream on a ZeroMQ PUB socket.
+    """Republish LSL spike or marks streams, a position stream and an LFP stream on a ZeroMQ PUB socket.
 
     Parameters
     ----------
-    spikes, position : str
-        The streams: a name, or ``type=...``, ``name=...``, ``source_id=...``.
+    spikes, position : str or None
+        The streams: a name, or ``type=...``, ``name=...``, ``source_id=...``;
+        ``spikes`` None when only marks streams carry the spikes.
     pub_endpoint : str
         Where to bind the PUB socket that ``placeloop run --rig`` connects to.
     holdback_s : float, default 0.02
@@ -125,27 +156,41 @@ class LslBridge:
         How long to look for a stream again after its outlet closed (s).
     cm_per_unit : float, optional
         Position scale, over the stream's own unit metadata.
+    marks : sequence of str, optional
+        One marks stream per electrode group, group ids in this order from 0.
+    lfp : str, optional
+        The LFP stream.
     """
 
     def __init__(self, spikes: str, position: str, pub_endpoint: str, holdback_s: float = 0.02,
                  heartbeat_s: float = 0.01, resolve_timeout_s: float = 10.0, stall_s: float = 2.0,
-                 rejoin_s: float = 5.0, cm_per_unit: float | None = None) -> None:
+                 rejoin_s: float = 5.0, cm_per_unit: float | None = None, marks: tuple[str, ...] = (),
+                 lfp: str | None = None) -> None:
         for name, value in (("holdback_s", holdback_s), ("heartbeat_s", heartbeat_s),
                             ("resolve_timeout_s", resolve_timeout_s), ("stall_s", stall_s), ("rejoin_s", rejoin_s)):
             if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
                 raise BridgeError(f"{name} must be a positive number of seconds, got {value!r}")
         self.pylsl = require_pylsl()
-        self.queries = {SPIKE_SOURCE: _query(spikes), TRACKER_SOURCE: _query(position)}
+        if spikes is None and not marks:
+            raise BridgeError("the bridge needs a spike stream (--spikes) or marks streams (--marks)")
+        self.queries = {SPIKE_SOURCE: _query(spikes)} if spikes is not None else {}
+        self.queries[TRACKER_SOURCE] = _query(position)
+        #: Marks streams by key, each one electrode group: key -> group id.
+        self.groups = {f"marks{i}": i for i in range(len(marks))}
+        self.queries.update({f"marks{i}": _query(q) for i, q in enumerate(marks)})
+        if lfp is not None:
+            self.queries[LFP_SOURCE] = _query(lfp)
         self.pub_endpoint = pub_endpoint
         self.holdback_s, self.heartbeat_s = float(holdback_s), float(heartbeat_s)
         self.resolve_timeout_s, self.stall_s, self.rejoin_s = float(resolve_timeout_s), float(stall_s), float(rejoin_s)
         self.cm_per_unit = cm_per_unit
-        self.counts = {SPIKE_SOURCE: StreamCounts(), TRACKER_SOURCE: StreamCounts()}
+        self.counts = {key: StreamCounts() for key in self.queries}
         self.stop_requested = False
-        self._seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0}
+        self._seq = {SPIKE_SOURCE: 0, TRACKER_SOURCE: 0, LFP_SOURCE: 0}
         self._inlets: dict = {}
         self._channels: dict[str, int] = {}
         self._frame_rate_hz = 0.0
+        self._lfp_rate_hz = 0.0
         self._scale_cm = 1.0
         self._last_heartbeat = -math.inf
         self.messages_sent = 0
@@ -170,7 +215,21 @@ class LslBridge:
         if source in self._channels and self._channels[source] != n:
             raise BridgeError(f"{what} came back with {n} channels instead of {self._channels[source]}; check the "
                               "source and restart the bridge")
-        if source == SPIKE_SOURCE:
+        numeric = (self.pylsl.cf_float32, self.pylsl.cf_double64, self.pylsl.cf_int8, self.pylsl.cf_int16,
+                   self.pylsl.cf_int32, self.pylsl.cf_int64)
+        flags = self.pylsl.proc_clocksync | self.pylsl.proc_monotonize
+        if source in self.groups:
+            if not 1 <= n <= MAX_MARK_CHANNELS or info.channel_format() not in numeric:
+                raise BridgeError(f"{what} has {n} channels of {info.channel_format()}; a marks stream has 1 to "
+                                  f"{MAX_MARK_CHANNELS} numeric channels, one per channel of its electrode group")
+        elif source == LFP_SOURCE:
+            rate, (lo, hi) = info.nominal_srate(), LFP_RATE_RANGE_HZ
+            if not (1 <= n <= MAX_LFP_CHANNELS and lo <= rate <= hi) or info.channel_format() not in numeric:
+                raise BridgeError(f"{what} has {n} channels at {rate:g} Hz; an LFP stream has 1 to {MAX_LFP_CHANNELS} "
+                                  f"numeric channels at a regular rate of {lo:g} to {hi:g} Hz")
+            # No proc_dejitter: its fit assumes no sample is missing, and would hide a gap the detector must see.
+            self._lfp_rate_hz = float(rate)
+        elif source == SPIKE_SOURCE:
             if n != 1:
                 raise BridgeError(f"{what} has {n} channels; a spike stream has one, the unit id of each spike")
             if info.channel_format() not in (self.pylsl.cf_int8, self.pylsl.cf_int16, self.pylsl.cf_int32,
@@ -182,7 +241,6 @@ class LslBridge:
             self._frame_rate_hz = info.nominal_srate()
             self._scale_cm = self._position_scale(info, what)
         self._channels[source] = n
-        flags = self.pylsl.proc_clocksync | self.pylsl.proc_monotonize
         self._inlets[source] = self.pylsl.StreamInlet(info, max_buflen=60, recover=False, processing_flags=flags)
         self._inlets[source].open_stream(timeout=self.resolve_timeout_s)
 
@@ -214,7 +272,7 @@ class LslBridge:
         BridgeError
             A stream is not found at start, has the wrong shape, or came back changed.
         """
-        for source in (SPIKE_SOURCE, TRACKER_SOURCE):
+        for source in self.queries:
             info = self._resolve(source, self.resolve_timeout_s)
             if info is None:
                 key, value = self.queries[source]
@@ -245,6 +303,9 @@ class LslBridge:
     def _announce(self, pub) -> None:
         self._send(pub, SourceAnnounce, SPIKE_SOURCE, kind="spikes", clock=LSL_CLOCK,
                    sample_rate_hz=NOMINAL_SPIKE_RATE_HZ, unit_ids=np.zeros(0, np.int64))
+        if self.groups:
+            self._send(pub, GroupAnnounce, SPIKE_SOURCE, group_ids=np.array(list(self.groups.values()), np.int64),
+                       group_channels=np.array([self._channels[k] for k in self.groups], np.int64))
         self._send(pub, SourceAnnounce, TRACKER_SOURCE, kind="tracker", clock=LSL_CLOCK,
                    sample_rate_hz=self._frame_rate_hz if self._frame_rate_hz > 0 else 30.0)
 
@@ -260,7 +321,7 @@ class LslBridge:
             if now >= next_announce:
                 self._announce(pub)
                 next_announce = now + ANNOUNCE_EVERY_S
-            for source in (SPIKE_SOURCE, TRACKER_SOURCE):
+            for source in self.queries:
                 try:
                     samples, stamps = self._inlets[source].pull_chunk(timeout=0.0, max_samples=4096)
                 except self.pylsl.util.LostError:
@@ -273,8 +334,8 @@ class LslBridge:
                 if stamps:
                     self._forward(pub, source, np.asarray(samples), np.asarray(stamps, np.float64), now)
                 self._watch(source, now)
-            spikes = self.counts[SPIKE_SOURCE]
-            if not spikes.silent and now - self._last_heartbeat >= self.heartbeat_s:
+            spiking = [c for k, c in self.counts.items() if k == SPIKE_SOURCE or k in self.groups]
+            if not any(c.silent for c in spiking) and now - self._last_heartbeat >= self.heartbeat_s:
                 t = now - self.holdback_s
                 if t > self._last_heartbeat:
                     self._send(pub, Heartbeat, SPIKE_SOURCE, t_s=t)
@@ -295,6 +356,12 @@ class LslBridge:
             c.sent += t.size
             c.last_t = float(t[-1])
             return
+        if source in self.groups:
+            self._forward_marks(pub, source, samples, t)
+            return
+        if source == LFP_SOURCE:
+            self._forward_lfp(pub, samples, t)
+            return
         keep = np.concatenate([[t[0] > c.last_t], np.diff(t) > 0])
         c.reordered += int(np.count_nonzero(~keep))
         t, samples = t[keep], samples[keep].astype(np.float64)
@@ -309,6 +376,54 @@ class LslBridge:
         heading = samples[:, 2] if samples.shape[1] == 3 else None
         self._send(pub, TrackerFrames, TRACKER_SOURCE, t_s=t, xy_cm=xy, head_dir_rad=heading)
         c.sent += t.size
+        c.last_t = float(t[-1])
+
+    def _forward_marks(self, pub, source: str, samples: np.ndarray, t: np.ndarray) -> None:
+        c = self.counts[source]
+        marks = samples.astype(np.float64)
+        # A mark the wire refuses (NaN, beyond the amplitude limit) is dropped and counted, never the whole batch.
+        ok = np.isfinite(marks).all(axis=1) & (np.abs(marks) <= MAX_MARK_UV).all(axis=1)
+        c.refused += int(np.count_nonzero(~ok))
+        t, marks = t[ok], marks[ok]
+        if t.size == 0:
+            return
+        c.late += int(np.count_nonzero(t < self._last_heartbeat))
+        for lo in range(0, t.size, MAX_BATCH // marks.shape[1]):
+            hi = lo + MAX_BATCH // marks.shape[1]
+            self._send(pub, MarkedSpikes, SPIKE_SOURCE, t_s=t[lo:hi], group_id=np.full(t[lo:hi].size,
+                       self.groups[source], np.int64), marks_uv=marks[lo:hi].astype(np.float32))
+        c.sent += t.size
+        c.last_t = float(t[-1])
+
+    def _forward_lfp(self, pub, samples: np.ndarray, t: np.ndarray) -> None:
+        c, rate = self.counts[LFP_SOURCE], self._lfp_rate_hz
+        x = samples.astype(np.float32)
+        finite = np.isfinite(x).all(axis=1)
+        c.refused += int(np.count_nonzero(~finite))
+        tolerance_s = max(LFP_GAP_SAMPLES / rate, LFP_JOIN_S)
+        # Segments of finite samples whose stamps run on without a jump; a dropped NaN sample forces a gap
+        # before the next segment (PROTOCOL.md: send every sample, or leave a gap in time).
+        jump = np.r_[False, np.diff(t) > 1.0 / rate + tolerance_s]
+        starts = np.flatnonzero(finite & (jump | ~np.r_[False, finite[:-1]] | (np.arange(t.size) == 0)))
+        per_chunk = max(1, min(int(LFP_CHUNK_MAX_S * rate), MAX_BATCH // x.shape[1]))
+        for a in starts.tolist():
+            b = a + 1
+            while b < t.size and finite[b] and not jump[b]:
+                b += 1
+            forced = a > 0 and not finite[a - 1]
+            t0 = float(t[a])
+            if math.isfinite(c.next_t) and t0 - c.next_t > tolerance_s:
+                c.lost += int(round((t0 - c.next_t) * rate))
+            elif math.isfinite(c.next_t) and not forced:
+                t0 = c.next_t
+            for lo in range(a, b, per_chunk):
+                hi = min(lo + per_chunk, b)
+                self._send(pub, LfpChunk, LFP_SOURCE, t_s=t0 + (lo - a) / rate, rate_hz=rate,
+                           samples=np.ascontiguousarray(x[lo:hi]))
+            c.next_t = t0 + (b - a) / rate
+            c.sent += b - a
+        if not finite[-1]:
+            c.next_t = -math.inf  # the next chunk starts at its own stamp, after the dropped samples
         c.last_t = float(t[-1])
 
     def _watch(self, source: str, now: float) -> None:
@@ -334,7 +449,7 @@ class LslBridge:
 
     def report(self) -> dict:
         """Counts per stream and why the bridge stopped."""
-        out = {source: {k: v for k, v in vars(c).items() if k not in ("last_arrival_s", "silent", "last_t")}
+        out = {source: {k: v for k, v in vars(c).items() if k not in ("last_arrival_s", "silent", "last_t", "next_t")}
                for source, c in self.counts.items()}
         out["messages_sent"] = self.messages_sent
         out["ended"] = self.ended or "stopped"

@@ -18,8 +18,13 @@ Subscribe to Lab Streaming Layer streams and republish them on placeloop's
 wire protocol, for `placeloop run --rig` to connect to.
 
   spikes    one integer channel, one sample per spike: the unit id, stamped with the spike's time
+  marks     one stream per electrode group, one sample per spike: its mark in uV on each of the
+            group's channels (the stream's channel count is the group's); groups 0, 1, ... in the
+            order of the --marks options
   position  two or three float channels, x, y[, heading in rad], at the tracker's rate; cm unless
             the stream's channel metadata names another length (or --cm-per-unit)
+  lfp       up to 512 channels in uV at a regular rate, republished as LFP chunks of source "lfp"
+            (the config's [ripples] source); a gap in its stamps is counted as lost samples
 
 Streams are chosen by NAME, name=NAME, type=TYPE or source_id=ID. Every LSL
 timestamp is mapped onto this machine's LSL clock with LSL's own clock-offset
@@ -31,6 +36,7 @@ this machine.
 
 Example:
   placeloop bridge lsl --spikes type=spikes --position "name=overhead camera" --pub tcp://127.0.0.1:5770 &
+  placeloop bridge lsl --marks name=tt1 --marks name=tt2 --position type=position --lfp type=lfp &
   placeloop run --config rig.toml --model session1.npz --rig tcp://127.0.0.1:5770 --dry-run"""
 
 
@@ -41,10 +47,12 @@ class _Formatter(argparse.ArgumentDefaultsHelpFormatter, argparse.RawDescription
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="placeloop bridge lsl", description=DESCRIPTION, epilog=CAUTION,
                                 formatter_class=_Formatter)
-    p.add_argument("--spikes", default="type=spikes", help="the LSL spike stream")
+    p.add_argument("--spikes", default=None,
+                   help="the LSL spike stream (type=spikes when no --marks is given; none with --marks unless given)")
     p.add_argument("--position", default="type=position", help="the LSL position stream")
-    p.add_argument("--lfp", default=None, help="an LSL LFP stream (not available yet)")
-    p.add_argument("--marks", default=None, help="an LSL stream of spike marks (not available yet)")
+    p.add_argument("--lfp", default=None, help="an LSL LFP stream, republished from source 'lfp'")
+    p.add_argument("--marks", action="append", default=[],
+                   help="an LSL stream of one electrode group's spike marks; repeat for each group")
     p.add_argument("--pub", default="tcp://127.0.0.1:5770", help="bind the wire protocol's PUB socket here")
     p.add_argument("--allow-remote", action="store_true", help="allow --pub on an interface other than loopback")
     p.add_argument("--cm-per-unit", type=float, default=None,
@@ -71,11 +79,6 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv[1:])
     setup_logging(args.verbose)
     print(CAUTION, file=sys.stderr)
-    if args.lfp or args.marks:
-        what = "LFP" if args.lfp else "marks"
-        print(f"error: bridging {what} is not available yet: the wire protocol carries no {what} message in this "
-              "version; bridge the spike and position streams without it", file=sys.stderr)
-        return 2
     if not args.allow_remote and not is_loopback_endpoint(args.pub):
         print(f"error: --pub {args.pub} is not on loopback; pass --allow-remote to publish on another interface",
               file=sys.stderr)
@@ -85,9 +88,11 @@ def main(argv: list[str] | None = None) -> int:
     from rig_adapters.lsl.bridge import BridgeError, LslBridge
 
     try:
-        bridge = LslBridge(args.spikes, args.position, args.pub, holdback_s=args.holdback_s,
+        spikes = args.spikes if args.spikes is not None or args.marks else "type=spikes"
+        bridge = LslBridge(spikes, args.position, args.pub, holdback_s=args.holdback_s,
                            heartbeat_s=args.heartbeat_s, resolve_timeout_s=args.resolve_timeout_s,
-                           stall_s=args.stall_s, rejoin_s=args.rejoin_s, cm_per_unit=args.cm_per_unit)
+                           stall_s=args.stall_s, rejoin_s=args.rejoin_s, cm_per_unit=args.cm_per_unit,
+                           marks=tuple(args.marks), lfp=args.lfp)
 
         def _stop(signum, frame):
             bridge.stop_requested = True
