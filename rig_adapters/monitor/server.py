@@ -1,9 +1,11 @@
 """``placeloop monitor``: a live web page showing the decoder while a session runs.
 
 The monitor is a separate process that only watches. It subscribes to the
-loop's ``state`` stream (see ``PROTOCOL.md`` section 8) and serves, with
-aiohttp, a page that draws the posterior, the positions, the zones, the
-events, the decoding error, the added latency and the health of the inputs.
+loop's ``state`` stream and to its ``events`` stream (see ``PROTOCOL.md``
+section 8) and serves, with aiohttp, a page that draws the posterior, the
+positions, the zones, the events (each with the rule and zone that fired and
+the zone mass that made it fire), the decoding error, the added latency, the
+health of the inputs and a readiness verdict beside the trigger arming.
 It can never slow the loop down: the loop's state PUB socket has a tiny
 send queue and sends without blocking, so a slow or absent monitor loses
 frames instead of holding the loop; this process, in turn, keeps only the
@@ -50,9 +52,11 @@ import zmq.asyncio
 from aiohttp import WSMsgType, web
 
 from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
+from decoder.encoding.calibration import MAX_TEMPERATURE
 from decoder.space.environments import RING_RADIUS_CM, Arena, HeadingRing, TrackGraph
-from rig_adapters.wire import protocol
 from rig_adapters.console import setup_logging
+from rig_adapters.monitor.marks import marks_payload
+from rig_adapters.wire import protocol
 
 log = logging.getLogger(__name__)
 
@@ -97,6 +101,19 @@ MONITOR_NICENESS = 10
 
 #: How often (s) bad state frames are logged at most; all are counted.
 BAD_FRAME_LOG_INTERVAL_S = 5.0
+
+#: Wall seconds of state frames over which the monitor measures how fast data
+#: time runs (data seconds per wall second), to turn the loop's input counts per
+#: wall second into counts per second of data.
+DATA_SPEED_WINDOW_WALL_S = 3.0
+
+#: Readiness verdict: the least fraction of the environment's bins visited
+#: (our choice: below it, zones and trajectories run through unmapped bins).
+READY_MIN_COVERAGE = 0.8
+
+#: Readiness verdict: the fewest spatially tuned units (our choice; population
+#: decoders of position are usually run on some tens of place cells, from memory).
+READY_MIN_TUNED_UNITS = 10
 
 CAUTION = (
     "The monitor only watches: it cannot arm, disarm or stop reward or stimulation, and no software is "
@@ -221,13 +238,50 @@ def unpack_packet(data: bytes) -> tuple[dict, bytes]:
     return json.loads(data[4 : 4 + n]), data[4 + n :]
 
 
+def readiness_verdict(readiness: dict, state: str | None) -> dict:
+    """Ready or not ready to fire triggers, and why, from the loop's readiness figures.
+
+    Parameters
+    ----------
+    readiness : dict
+        ``coverage`` (fraction of bins visited), ``n_spatial_units``,
+        ``likelihood_temperature`` (fitted at fit time), any may be missing.
+    state : str or None
+        The session state of the newest frame.
+
+    Returns
+    -------
+    dict
+        ``ready`` (bool) and ``reasons`` (list of str, empty when ready).
+    """
+    reasons = []
+    coverage = readiness.get("coverage")
+    units = readiness.get("n_spatial_units")
+    temperature = readiness.get("likelihood_temperature")
+    if state == "learning":
+        reasons.append("still learning: no model fitted yet")
+    if coverage is None:
+        reasons.append("coverage not reported yet")
+    elif coverage < READY_MIN_COVERAGE:
+        reasons.append(f"coverage {coverage:.2f} of bins, below {READY_MIN_COVERAGE:.2f}: learn longer")
+    if units is None:
+        reasons.append("tuned units not counted yet")
+    elif units < READY_MIN_TUNED_UNITS:
+        reasons.append(f"{units:.0f} spatially tuned units, fewer than {READY_MIN_TUNED_UNITS}")
+    if temperature is not None and temperature >= MAX_TEMPERATURE:
+        reasons.append(f"likelihood temperature at its limit ({temperature:g}): the model is overconfident "
+                       "on held-out spikes")
+    return {"ready": not reasons, "reasons": reasons}
+
+
 class SessionView:
     """Everything the page shows, built from the state frames as they arrive.
 
     Plain Python with no sockets, so that tests drive it with a list of
     frames. The posterior kept is only the newest; the running figures
     (error trace, events, latency histogram, trails) take every frame the
-    monitor receives.
+    monitor receives. Events come from the events stream (:meth:`add_event_bytes`),
+    the one record of what fired.
 
     Parameters
     ----------
@@ -256,6 +310,8 @@ class SessionView:
         self.events_dropped = 0
         self.latency_counts = np.zeros(len(LATENCY_EDGES_MS) - 1, dtype=np.int64)
         self.readiness: dict[str, float | None] = {}
+        self._data_clock: deque = deque()
+        self._n_events = 0
         self._quantised: tuple[int, bytes, float] | None = None
         self._last_bad_log = -math.inf
 
@@ -268,18 +324,35 @@ class SessionView:
             if frame["kind"] != "state":
                 raise protocol.ProtocolError("unknown_kind", f"the state stream carried an {frame['kind']!r} frame")
         except protocol.ProtocolError as exc:
-            self.bad_frames += 1
-            self.bad_reasons[exc.reason] = self.bad_reasons.get(exc.reason, 0) + 1
-            if wall_s - self._last_bad_log >= BAD_FRAME_LOG_INTERVAL_S:
-                self._last_bad_log = wall_s
-                log.warning("dropped a bad state frame (%d so far): %s", self.bad_frames, exc)
+            self._count_bad(exc, wall_s)
             return
         self.add(frame, wall_s)
+
+    def add_event_bytes(self, payload: bytes, wall_s: float) -> None:
+        """Take one frame off the events stream; a bad one is counted and logged, never raised."""
+        try:
+            frame = protocol.decode_output(payload)
+            if frame["kind"] != "event":
+                raise protocol.ProtocolError("unknown_kind", f"the events stream carried an {frame['kind']!r} frame")
+        except protocol.ProtocolError as exc:
+            self._count_bad(exc, wall_s)
+            return
+        self.add_event(frame)
+
+    def _count_bad(self, exc: protocol.ProtocolError, wall_s: float) -> None:
+        self.bad_frames += 1
+        self.bad_reasons[exc.reason] = self.bad_reasons.get(exc.reason, 0) + 1
+        if wall_s - self._last_bad_log >= BAD_FRAME_LOG_INTERVAL_S:
+            self._last_bad_log = wall_s
+            log.warning("dropped a bad frame (%d so far): %s", self.bad_frames, exc)
 
     def add(self, frame: dict, wall_s: float) -> None:
         """Take one decoded state frame (the dict of ``protocol.decode_output``)."""
         self.frames_received += 1
         self.last_frame_wall_s = wall_s
+        self._data_clock.append((wall_s, frame["t_s"]))
+        while self._data_clock[0][0] < wall_s - DATA_SPEED_WINDOW_WALL_S:
+            self._data_clock.popleft()
         last = self._last_seq.get(frame["source"])
         if last is not None and frame["seq"] > last + 1:
             self.frames_missed += frame["seq"] - last - 1
@@ -287,12 +360,9 @@ class SessionView:
         stats = frame.get("stats") or {}
         t_s = frame["t_s"]
         self._add_trail(t_s, frame)
-        if frame["state"] == "learning":
-            for key in ("coverage", "n_spatial_units", "cv_error_cm", "learn_elapsed_s"):
-                if key in stats:
-                    self.readiness[key] = _number(stats[key])
-        elif "cv_error_cm" in stats:
-            self.readiness["cv_error_cm"] = _number(stats["cv_error_cm"])
+        for key in ("coverage", "n_spatial_units", "cv_error_cm", "learn_elapsed_s", "likelihood_temperature"):
+            if key in stats and (frame["state"] == "learning" or key != "learn_elapsed_s"):
+                self.readiness[key] = _number(stats[key])
         error = _error_cm(stats)
         if error is not None and frame["state"] == "decoding":
             self._add_error(t_s, error)
@@ -300,9 +370,6 @@ class SessionView:
         if added is not None and added > 0:  # 0 until the loop has timed its first step
             i = min(max(bisect.bisect_right(LATENCY_EDGES_MS, added) - 1, 0), len(self.latency_counts) - 1)
             self.latency_counts[i] += 1
-        event_id = stats.get("event_id", 0)
-        if event_id and event_id > 0:
-            self._add_event(int(event_id), frame)
         self.latest = frame
         self.version += 1
 
@@ -330,22 +397,51 @@ class SessionView:
             if len(self.trace) > TRACE_MAX_POINTS:
                 del self.trace[: len(self.trace) - TRACE_MAX_POINTS]
 
-    def _add_event(self, event_id: int, frame: dict) -> None:
-        masses = frame["zone_masses"] or {}
-        zone, mass = max(masses.items(), key=lambda kv: kv[1]) if masses else (None, None)
+    def add_event(self, frame: dict) -> None:
+        """Take one event (the dict of ``protocol.decode_output``): the rule, zone and mass that fired.
+
+        A ripple rule's event has an empty zone and no mass (NaN); it is
+        kept with ``ripple`` set.
+        """
+        self._n_events += 1
         self.events.append({
-            "id": event_id,
+            "n": self._n_events,
+            "id": int(frame["event_id"]),
             "t_s": frame["t_s"],
+            "rule": frame["rule"],
+            "zone": frame["zone"] or None,
+            "mass": _number(frame["zone_mass"]),
+            "ripple": not frame["zone"],
             "map_xy_cm": _xy(frame["map_xy_cm"]),
             "tracked_xy_cm": _xy(frame["tracked_xy_cm"]),
-            "top_zone": zone,
-            "top_mass": _number(mass),
         })
         if len(self.events) > EVENTS_KEPT:
             self.events_dropped += len(self.events) - EVENTS_KEPT
             del self.events[: len(self.events) - EVENTS_KEPT]
 
     # -- output --------------------------------------------------------------------
+
+    def data_speed(self) -> float | None:
+        """Data seconds per wall second over the last :data:`DATA_SPEED_WINDOW_WALL_S`; None when unknown."""
+        if len(self._data_clock) < 2:
+            return None
+        (w0, t0), (w1, t1) = self._data_clock[0], self._data_clock[-1]
+        return (t1 - t0) / (w1 - w0) if w1 > w0 else None
+
+    def input_rates(self, stats: dict) -> dict:
+        """Input messages per second of data time, from the loop's counts per wall second.
+
+        The loop counts each source's messages over about one wall second
+        (``rate_spikes_hz``, ``rate_tracker_hz``); dividing by the data speed
+        gives messages per data second, the figure a rig's sampling rate is
+        given in whatever the replay speed. None while data time stands still.
+        """
+        speed = self.data_speed()
+        out = {"data_speed": speed}
+        for role in ("spikes", "tracker"):
+            wall_rate = _number(stats.get(f"rate_{role}_hz"))
+            out[role] = wall_rate / speed if wall_rate is not None and speed and speed > 0 else None
+        return out
 
     def rolling_error_cm(self) -> float | None:
         """Median decoding error over the last :data:`ROLLING_ERROR_S` of data time."""
@@ -376,7 +472,7 @@ class SessionView:
         Parameters
         ----------
         cursor : dict
-            The page's own progress, ``{"trace": int, "events": int}``;
+            The page's own progress, ``{"trace": int, "event_n": int}``;
             updated in place so the next packet carries only what is new.
         wall_s : float
             Now, wall clock, for the age of the newest frame.
@@ -384,7 +480,8 @@ class SessionView:
         frame = self.latest
         self._close_stale_trace_bin(frame)
         trace_from = min(cursor.get("trace", 0), len(self.trace))
-        new_events = [e for e in self.events if e["id"] > cursor.get("event_id", 0)]
+        new_events = [e for e in self.events if e["n"] > cursor.get("event_n", 0)]
+        state = frame["state"] if frame is not None else None
         header: dict[str, Any] = {
             "monitor": {
                 "frames_received": self.frames_received,
@@ -401,6 +498,7 @@ class SessionView:
             "latency_edges_ms": None if cursor.get("edges_sent") else LATENCY_EDGES_MS.round(4).tolist(),
             "latency_counts": self.latency_counts.tolist(),
             "readiness": dict(self.readiness),
+            "verdict": readiness_verdict(self.readiness, state),
             "rolling_error_cm": self.rolling_error_cm(),
             "session_error_cm": float(np.median(self.session_errors)) if self.session_errors else None,
             "n_errors": len(self.session_errors),
@@ -409,7 +507,7 @@ class SessionView:
         cursor["trace"] = len(self.trace)
         cursor["edges_sent"] = True
         if new_events:
-            cursor["event_id"] = new_events[-1]["id"]
+            cursor["event_n"] = new_events[-1]["n"]
         if frame is None:
             return pack_packet(header)
         stats = {k: _number(v) for k, v in (frame.get("stats") or {}).items()}
@@ -426,6 +524,7 @@ class SessionView:
             "zone_masses": {k: _number(v) for k, v in (frame["zone_masses"] or {}).items()},
             "n_spikes": frame["n_spikes"],
             "stats": stats,
+            "rates_per_data_s": self.input_rates(stats),
             "trails": self._trails(),
             "linear": self._linear(frame) if self.is_track else None,
             "post_shape": None,
@@ -458,11 +557,12 @@ class SessionView:
 # Typed keys of what the application holds.
 ENVIRONMENT_KEY = web.AppKey("environment", dict)
 ENDPOINT_KEY = web.AppKey("state_endpoint", str)
+EVENTS_ENDPOINT_KEY = web.AppKey("events_endpoint", str)
 VIEW_KEY = web.AppKey("view", SessionView)
 WAITERS_KEY = web.AppKey("waiters", set)
 ZMQ_CTX_KEY = web.AppKey("zmq_ctx", zmq.asyncio.Context)
-SUB_KEY = web.AppKey("sub", zmq.asyncio.Socket)
-READER_KEY = web.AppKey("reader", asyncio.Task)
+SUBS_KEY = web.AppKey("subs", list)
+READERS_KEY = web.AppKey("readers", list)
 
 
 def _security_headers(response: web.StreamResponse) -> None:
@@ -486,7 +586,9 @@ async def _environment(request: web.Request) -> web.Response:
     app = request.app
     body = dict(app[ENVIRONMENT_KEY])
     body["state_endpoint"] = app[ENDPOINT_KEY]
+    body["events_endpoint"] = app[EVENTS_ENDPOINT_KEY]
     body["caution"] = CAUTION
+    body["marks"] = marks_payload()
     return web.json_response(body)
 
 
@@ -533,49 +635,55 @@ async def _socket(request: web.Request) -> web.WebSocketResponse:
     return ws
 
 
-async def _read_state(app: web.Application) -> None:
+async def _read(app: web.Application, sock: zmq.asyncio.Socket, take) -> None:
     """Take every frame the SUB socket delivers; wake the pages after each burst."""
-    sock: zmq.asyncio.Socket = app[SUB_KEY]
-    view: SessionView = app[VIEW_KEY]
     while True:
         payload = await sock.recv()
-        view.add_bytes(payload, time.time())
+        take(payload, time.time())
         while True:
             try:
                 payload = sock.recv(zmq.NOBLOCK).result()
             except zmq.Again:
                 break
-            view.add_bytes(payload, time.time())
+            take(payload, time.time())
         for waiter in app[WAITERS_KEY]:
             waiter.set()
 
 
 async def _start_reader(app: web.Application) -> None:
     ctx = zmq.asyncio.Context()
-    sub = ctx.socket(zmq.SUB)
-    # A short queue: frames the monitor cannot take in time are dropped by
-    # ZeroMQ; the page only ever wants the newest one.
-    sub.setsockopt(zmq.RCVHWM, STATE_RCVHWM)
-    sub.setsockopt(zmq.LINGER, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"")
-    sub.connect(app[ENDPOINT_KEY])
+    view: SessionView = app[VIEW_KEY]
     app[ZMQ_CTX_KEY] = ctx
-    app[SUB_KEY] = sub
-    app[READER_KEY] = asyncio.create_task(_read_state(app))
-    log.info("monitor subscribed to %s", app[ENDPOINT_KEY])
+    app[SUBS_KEY] = []
+    app[READERS_KEY] = []
+    for endpoint, take in ((app[ENDPOINT_KEY], view.add_bytes), (app[EVENTS_ENDPOINT_KEY], view.add_event_bytes)):
+        if not endpoint:
+            continue
+        sub = ctx.socket(zmq.SUB)
+        # A short queue: frames the monitor cannot take in time are dropped by
+        # ZeroMQ; the page only ever wants the newest state (events are few).
+        sub.setsockopt(zmq.RCVHWM, STATE_RCVHWM)
+        sub.setsockopt(zmq.LINGER, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"")
+        sub.connect(endpoint)
+        app[SUBS_KEY].append(sub)
+        app[READERS_KEY].append(asyncio.create_task(_read(app, sub, take)))
+        log.info("monitor subscribed to %s", endpoint)
 
 
 async def _stop_reader(app: web.Application) -> None:
-    app[READER_KEY].cancel()
-    try:
-        await app[READER_KEY]
-    except asyncio.CancelledError:
-        pass
-    app[SUB_KEY].close(linger=0)
+    for reader in app[READERS_KEY]:
+        reader.cancel()
+        try:
+            await reader
+        except asyncio.CancelledError:
+            pass
+    for sub in app[SUBS_KEY]:
+        sub.close(linger=0)
     app[ZMQ_CTX_KEY].term()
 
 
-def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application:
+def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: str = "") -> web.Application:
     """The monitor's aiohttp application, not yet serving.
 
     Parameters
@@ -584,10 +692,13 @@ def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application
         The experiment the loop runs (for the environment and the zones).
     state_endpoint : str
         The loop's state PUB endpoint to connect to, e.g. ``tcp://127.0.0.1:5772``.
+    events_endpoint : str, default ""
+        The loop's events PUB endpoint; empty for none (the page then lists no events).
     """
     app = web.Application()
     app[ENVIRONMENT_KEY] = environment_payload(config)
     app[ENDPOINT_KEY] = state_endpoint
+    app[EVENTS_ENDPOINT_KEY] = events_endpoint
     app[VIEW_KEY] = SessionView(config)
     app[WAITERS_KEY] = set()
     app.router.add_get("/", _index)
@@ -600,7 +711,8 @@ def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application
     return app
 
 
-def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750) -> None:
+def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750,
+                events_endpoint: str | None = None) -> None:
     """Serve the monitor page until interrupted.
 
     Parameters
@@ -614,6 +726,8 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
         page to that network, and is warned about.
     port : int, default 8750
         TCP port for the web server.
+    events_endpoint : str or None, default None
+        The loop's events PUB endpoint; None for the config's ``[endpoints] events``.
     """
     if not 0 < port < 65536:
         raise ValueError(f"port must be 1..65535, got {port}")
@@ -623,12 +737,14 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
                    "session (it cannot control it)")
         log.warning(message)
         print(f"WARNING: {message}", file=sys.stderr)
-    app = create_app(config, state_endpoint)
+    events = config.endpoints.events if events_endpoint is None else events_endpoint
+    app = create_app(config, state_endpoint, events)
     try:
         os.nice(MONITOR_NICENESS)
     except (AttributeError, OSError):
         log.info("could not lower the monitor's priority; it still never blocks the loop")
-    print(f"placeloop monitor: http://{host}:{port}/ (state from {state_endpoint})\n{CAUTION}", file=sys.stderr)
+    print(f"placeloop monitor: http://{host}:{port}/ (state from {state_endpoint}, events from {events})\n{CAUTION}",
+          file=sys.stderr)
     web.run_app(app, host=host, port=port, print=None, access_log=None)
 
 
@@ -641,6 +757,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--config", required=True, help="experiment config (TOML) the loop runs")
     parser.add_argument("--state", default=None,
                         help="the loop's state endpoint (default: [endpoints] state of the config)")
+    parser.add_argument("--events", default=None,
+                        help="the loop's events endpoint (default: [endpoints] events of the config)")
     parser.add_argument("--http-port", type=int, default=8750, help="port of the web page (default 8750)")
     parser.add_argument("--host", default="127.0.0.1",
                         help="interface for the web page (default 127.0.0.1; another one warns)")
@@ -649,12 +767,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``placeloop monitor --config C [--state EP] [--http-port P] [--host H]``."""
+    """``placeloop monitor --config C [--state EP] [--events EP] [--http-port P] [--host H]``."""
     args = build_parser().parse_args(argv)
     setup_logging(args.verbose)
     try:
         state = args.state or load_config(args.config).endpoints.state
-        run_monitor(args.config, state, host=args.host, port=args.http_port)
+        run_monitor(args.config, state, host=args.host, port=args.http_port, events_endpoint=args.events)
     except (ConfigError, ValueError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
