@@ -258,8 +258,9 @@ def test_input_rates_are_per_second_of_data_time():
     view = SessionView(config)
     for i in range(81):
         wall = 0.05 * i
-        view.add_bytes(state_frame(config, i, 10.0 + 4.0 * wall, rate_tracker_hz=200.0, rate_spikes_hz=1200.0),
-                       wall_s=wall)
+        # The loop refreshes its figures once a wall second; here the latency moves with each refresh.
+        view.add_bytes(state_frame(config, i, 10.0 + 4.0 * wall, rate_tracker_hz=200.0, rate_spikes_hz=1200.0,
+                                   latency_p50_ms=0.5 + i // 20), wall_s=wall)
     header, _ = unpack_packet(view.packet({}, wall_s=4.0))
     rates = header["frame"]["rates_per_data_s"]
     assert rates["data_speed"] == pytest.approx(4.0)
@@ -440,7 +441,7 @@ BROWSER_NEEDED = pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's chro
                                     "/usr/bin/chromium (apt-get install chromium); the browser test needs it")
 
 
-@pytest.mark.timeout(90)
+@pytest.mark.timeout(150)
 @BROWSER_NEEDED
 def test_page_in_headless_chromium_warns_and_says_what_to_do_next(tmp_path):
     """Invented state frames over a real PUB socket: a stalled input, armed triggers on a failing
@@ -473,7 +474,7 @@ def test_page_in_headless_chromium_warns_and_says_what_to_do_next(tmp_path):
          "--http-port", str(http_port)], cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     publisher = threading.Thread(target=publish, daemon=True)
     try:
-        _wait_http(f"http://127.0.0.1:{http_port}/api/environment", 20)
+        _wait_http(f"http://127.0.0.1:{http_port}/api/environment", 60)
         publisher.start()
         with sync_playwright() as pw:
             browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
@@ -512,7 +513,7 @@ def test_page_in_headless_chromium_warns_and_says_what_to_do_next(tmp_path):
     assert "Next:" in silent_text and "placeloop run" in silent_text
 
 
-@pytest.mark.timeout(150)
+@pytest.mark.timeout(240)
 @BROWSER_NEEDED
 def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch):
     from playwright.sync_api import sync_playwright
@@ -551,7 +552,7 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch)
     blocked: list[str] = []
     samples: list[dict] = []
     try:
-        _wait_http(url + "api/environment", 20)
+        _wait_http(url + "api/environment", 60)  # the monitor imports the core: slow on a loaded machine
         with sync_playwright() as pw:
             browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
             context = browser.new_context(viewport={"width": 1500, "height": 950})
@@ -581,7 +582,8 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch)
                 samples.append(page.evaluate("window.__monitorState"))
                 decoding = [s for s in samples if s["state"] == "decoding" and s["rolling_error_cm"] is not None]
                 # Enough to judge, and for the screenshot an event in the list when one comes soon.
-                if len(decoding) >= 12 and decoding[-1]["trace_points"] >= 3 and (
+                # Distinct steps: on a loaded machine the page may show the same step several times.
+                if len({s["t_s"] for s in decoding}) >= 12 and decoding[-1]["trace_points"] >= 3 and (
                         decoding[-1]["events_seen"] > 0 or len(decoding) >= 60):
                     break
                 time.sleep(0.25)

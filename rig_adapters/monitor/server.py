@@ -102,11 +102,6 @@ MONITOR_NICENESS = 10
 #: How often (s) bad state frames are logged at most; all are counted.
 BAD_FRAME_LOG_INTERVAL_S = 5.0
 
-#: Wall seconds of state frames over which the monitor measures how fast data
-#: time runs (data seconds per wall second), to turn the loop's input counts per
-#: wall second into counts per second of data.
-DATA_SPEED_WINDOW_WALL_S = 3.0
-
 #: Readiness verdict: the least fraction of the environment's bins visited
 #: (our choice: below it, zones and trajectories run through unmapped bins).
 READY_MIN_COVERAGE = 0.8
@@ -310,7 +305,8 @@ class SessionView:
         self.events_dropped = 0
         self.latency_counts = np.zeros(len(LATENCY_EDGES_MS) - 1, dtype=np.int64)
         self.readiness: dict[str, float | None] = {}
-        self._data_clock: deque = deque()
+        self._stats_key: tuple | None = None
+        self._refreshes: deque = deque(maxlen=2)
         self._n_events = 0
         self._quantised: tuple[int, bytes, float] | None = None
         self._last_bad_log = -math.inf
@@ -350,9 +346,7 @@ class SessionView:
         """Take one decoded state frame (the dict of ``protocol.decode_output``)."""
         self.frames_received += 1
         self.last_frame_wall_s = wall_s
-        self._data_clock.append((wall_s, frame["t_s"]))
-        while self._data_clock[0][0] < wall_s - DATA_SPEED_WINDOW_WALL_S:
-            self._data_clock.popleft()
+        self._note_refresh(frame, wall_s)
         last = self._last_seq.get(frame["source"])
         if last is not None and frame["seq"] > last + 1:
             self.frames_missed += frame["seq"] - last - 1
@@ -421,11 +415,25 @@ class SessionView:
 
     # -- output --------------------------------------------------------------------
 
+    def _note_refresh(self, frame: dict, wall_s: float) -> None:
+        """Note when the loop's once-a-second figures change: the first frame after a refresh."""
+        stats = frame.get("stats") or {}
+        key = tuple(stats.get(k) for k in ("rate_spikes_hz", "rate_tracker_hz", "latency_p50_ms", "latency_p99_ms"))
+        if key != self._stats_key:
+            self._stats_key = key
+            self._refreshes.append((wall_s, frame["t_s"]))
+
     def data_speed(self) -> float | None:
-        """Data seconds per wall second over the last :data:`DATA_SPEED_WINDOW_WALL_S`; None when unknown."""
-        if len(self._data_clock) < 2:
+        """Data seconds per wall second between the loop's last two refreshes of its figures; None when unknown.
+
+        The loop counts its input over the wall interval between two
+        refreshes; measured over the same interval, the data speed turns
+        those counts into counts per data second even when a loaded loop
+        catches up in bursts.
+        """
+        if len(self._refreshes) < 2:
             return None
-        (w0, t0), (w1, t1) = self._data_clock[0], self._data_clock[-1]
+        (w0, t0), (w1, t1) = self._refreshes
         return (t1 - t0) / (w1 - w0) if w1 > w0 else None
 
     def input_rates(self, stats: dict) -> dict:
@@ -433,7 +441,7 @@ class SessionView:
 
         The loop counts each source's messages over about one wall second
         (``rate_spikes_hz``, ``rate_tracker_hz``); dividing by the data speed
-        gives messages per data second, the figure a rig's sampling rate is
+        over that same interval (:meth:`data_speed`) gives messages per data second, the figure a rig's sampling rate is
         given in whatever the replay speed. None while data time stands still.
         """
         speed = self.data_speed()
