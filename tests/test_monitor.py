@@ -269,7 +269,7 @@ def test_input_rates_are_per_second_of_data_time():
 
 def test_readiness_verdict_says_why_not():
     ready = readiness_verdict({"coverage": 0.9, "n_spatial_units": 30, "likelihood_temperature": 1.5}, "decoding")
-    assert ready == {"ready": True, "reasons": []}
+    assert ready == {"ready": True, "reasons": [], "checked": ["coverage", "tuned units", "likelihood temperature"]}
     low = readiness_verdict({"coverage": 0.24, "n_spatial_units": 3}, "decoding")
     assert not low["ready"] and len(low["reasons"]) == 2
     assert "coverage 0.24" in low["reasons"][0] and "learn longer" in low["reasons"][0]

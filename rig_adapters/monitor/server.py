@@ -247,7 +247,8 @@ def readiness_verdict(readiness: dict, state: str | None) -> dict:
     Returns
     -------
     dict
-        ``ready`` (bool) and ``reasons`` (list of str, empty when ready).
+        ``ready`` (bool), ``reasons`` (list of str, empty when ready) and
+        ``checked`` (the figures the verdict could judge).
     """
     reasons = []
     coverage = readiness.get("coverage")
@@ -266,7 +267,9 @@ def readiness_verdict(readiness: dict, state: str | None) -> dict:
     if temperature is not None and temperature >= MAX_TEMPERATURE:
         reasons.append(f"likelihood temperature at its limit ({temperature:g}): the model is overconfident "
                        "on held-out spikes")
-    return {"ready": not reasons, "reasons": reasons}
+    checked = [name for name, value in (("coverage", coverage), ("tuned units", units),
+                                        ("likelihood temperature", temperature)) if value is not None]
+    return {"ready": not reasons, "reasons": reasons, "checked": checked}
 
 
 class SessionView:

@@ -522,11 +522,12 @@ function updatePanels(h) {
   setChip(ui.state, "state: " + f.state, "chip-" + (["idle", "learning", "decoding"].includes(f.state) ? f.state : "idle"));
   if (f.armed) setChip(ui.armed, "triggers armed", "chip-armed");
   else setChip(ui.armed, "triggers disarmed", "chip-safe");
-  const v = h.verdict || { ready: false, reasons: [] };
+  const v = h.verdict || { ready: false, reasons: [], checked: [] };
+  const passed = "ready: " + v.checked.join(", ") + " pass" +
+    (v.checked.includes("likelihood temperature") ? "" : " (the loop reports no fitted temperature)");
   setChip(ui.verdict, v.ready ? "ready" : "not ready", v.ready ? "chip-ready" : "chip-notready");
-  ui.verdict.title = v.ready ? "readiness: coverage, tuned units and the fitted temperature pass" : v.reasons.join("; ");
-  $("verdict-why").textContent = v.ready ? "ready: coverage, tuned units and the fitted temperature pass"
-    : "not ready: " + v.reasons.join("; ");
+  ui.verdict.title = v.ready ? passed : v.reasons.join("; ");
+  $("verdict-why").textContent = v.ready ? passed : "not ready: " + v.reasons.join("; ");
   const warn = f.armed && !v.ready;
   $("armed-warning").hidden = !warn;
   if (warn) {
