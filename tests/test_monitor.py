@@ -33,24 +33,26 @@ import zmq.asyncio
 from aiohttp import web
 
 from decoder.config import parse_config
-from rig_adapters.wire import protocol
 from rig_adapters.monitor.marks import COLOUR_MAP, MARKS, colour_map_hex, marks_payload
 from rig_adapters.monitor.server import (
-    READY_MIN_COVERAGE,
-    READY_MIN_TUNED_UNITS,
-    LATENCY_EDGES_MS,
-    ROLLING_ERROR_S,
     SEND_INTERVAL_S,
-    SessionView,
     create_app,
-    environment_payload,
     is_loopback_host,
     main,
+)
+from rig_adapters.monitor.session_view import (
+    LATENCY_EDGES_MS,
+    READY_MIN_COVERAGE,
+    READY_MIN_TUNED_UNITS,
+    ROLLING_ERROR_S,
+    SessionView,
+    environment_payload,
     pack_packet,
     quantise_posterior,
     readiness_verdict,
     unpack_packet,
 )
+from rig_adapters.wire import protocol
 
 REPO = Path(__file__).resolve().parent.parent
 CHROMIUM = Path("/usr/bin/chromium")

@@ -42,7 +42,7 @@ DELEGATED_PARSERS = {
 def _blocks() -> list[list[str]]:
     """The lines of each fenced code block, comments and a trailing ``&`` removed."""
     out = []
-    for block in re.findall(r"```\n(.*?)```", README, flags=re.S):
+    for block in re.findall(r"```\n(.*?)```", README, flags=re.DOTALL):
         lines = []
         for line in block.splitlines():
             line = re.sub(r"\s+#\s.*$", "", line).strip()
@@ -70,8 +70,8 @@ def _argv(line: str) -> tuple[list[str], str | None]:
 
 def _run(line: str, cwd: Path, timeout_s: float) -> subprocess.CompletedProcess:
     argv, redirect = _argv(line)
-    done = subprocess.run([sys.executable, "-m", "rig_adapters.cli", *argv], cwd=cwd, capture_output=True,
-                          text=True, timeout=timeout_s, env=_env())
+    done = subprocess.run([sys.executable, "-m", "rig_adapters.cli", *argv], check=False, cwd=cwd,
+                          capture_output=True, text=True, timeout=timeout_s, env=_env())
     assert done.returncode == 0, f"{line!r} failed ({done.returncode}):\n{done.stderr[-2000:]}"
     if redirect:
         (cwd / redirect).write_text(done.stdout)
