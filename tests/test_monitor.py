@@ -532,7 +532,7 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch)
     demo_rc: list[int] = []
     demo = threading.Thread(
         target=lambda: demo_rc.append(run_demo(
-            config_path=str(config_path), speed=8.0, log_dir=None, summary_path=str(tmp_path / "summary.json"),
+            config_path=str(config_path), speed=4.0, log_dir=None, summary_path=str(tmp_path / "summary.json"),
             learn_s=60.0, decode_s=60.0, seed=11, monitor_state_endpoint=endpoints)),
         daemon=True,
     )
@@ -623,9 +623,12 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch)
     assert decoding[-1]["post_len"] == int(np.prod(parse_config(config_path.read_text()).environment.grid_shape))
     assert roll_text.endswith(" cm") and p99_text.endswith(" ms")
     # Input rates per second of data time: the simulated camera sends 50 frames per data second
-    # (rig_adapters/sim/settings.py, tracker_rate_hz), whatever the speed (8x here).
+    # (rig_adapters/sim/settings.py, tracker_rate_hz), whatever the speed (4x here).
+    # The median over the samples: a sample taken as the loop catches up, or as the rig finishes, is off for
+    # the one refresh interval it straddles.
     assert tracker_text.endswith(" per s of data")
-    assert 35.0 <= float(tracker_text.split()[0]) <= 65.0, tracker_text
+    tracker_rates = [s["rates"]["tracker"] for s in decoding if s["rates"] and s["rates"]["tracker"] is not None]
+    assert tracker_rates and 35.0 <= float(np.median(tracker_rates)) <= 65.0, tracker_rates
     # Coverage as a fraction of bins, as the report gives it (report.py: "coverage at fit (fraction of bins)").
     assert coverage_text.endswith(" of bins") and 0.0 <= float(coverage_text.split()[0]) <= 1.0
     final = decoding[-1]
