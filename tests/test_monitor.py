@@ -33,20 +33,26 @@ import zmq.asyncio
 from aiohttp import web
 
 from decoder.config import parse_config
-from rig_adapters.wire import protocol
+from rig_adapters.monitor.marks import COLOUR_MAP, MARKS, colour_map_hex, marks_payload
 from rig_adapters.monitor.server import (
-    LATENCY_EDGES_MS,
-    ROLLING_ERROR_S,
     SEND_INTERVAL_S,
-    SessionView,
     create_app,
-    environment_payload,
     is_loopback_host,
     main,
+)
+from rig_adapters.monitor.session_view import (
+    LATENCY_EDGES_MS,
+    READY_MIN_COVERAGE,
+    READY_MIN_TUNED_UNITS,
+    ROLLING_ERROR_S,
+    SessionView,
+    environment_payload,
     pack_packet,
     quantise_posterior,
+    readiness_verdict,
     unpack_packet,
 )
+from rig_adapters.wire import protocol
 
 REPO = Path(__file__).resolve().parent.parent
 CHROMIUM = Path("/usr/bin/chromium")
@@ -84,6 +90,15 @@ def free_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
+
+
+def event_frame(seq: int, t_s: float, rule="reward_goal", zone="goal", mass=0.93, xy=(70.0, 60.0)) -> bytes:
+    """One invented event frame as the loop publishes it on the events stream (PROTOCOL.md section 8)."""
+    nan2 = [math.nan, math.nan]
+    return protocol.encode_event(
+        source="placeloop", seq=seq, event_id=seq + 1, zone=zone, rule=rule, t_s=t_s,
+        map_xy_cm=list(xy) if zone else nan2, mean_xy_cm=list(xy) if zone else nan2, zone_mass=mass,
+        tracked_xy_cm=list(xy), wall_received_s=0.0, wall_decoded_s=0.0)
 
 
 def state_frame(config, seq: int, t_s: float, xy=(50.0, 50.0), state="decoding", **stats) -> bytes:
@@ -206,20 +221,83 @@ def test_session_view_sends_each_trace_point_and_event_once_per_page():
     view = SessionView(config)
     seq = 0
     for t in np.arange(0.0, 3.0, 0.02):
-        fire = abs(t - 1.5) < 1e-9
-        view.add_bytes(state_frame(config, seq, float(t), error_cm=2.0, event_id=1 if fire else 0,
-                                   events_total=int(t >= 1.5)), 0.0)
+        if abs(t - 1.5) < 1e-9:
+            view.add_event_bytes(event_frame(0, float(t)), 0.0)
+        view.add_bytes(state_frame(config, seq, float(t), error_cm=2.0, events_total=int(t >= 1.5)), 0.0)
         seq += 1
     page_a, page_b = {}, {}
     first, _ = unpack_packet(view.packet(page_a, 0.0))
     assert [e["id"] for e in first["events"]] == [1]
-    assert first["events"][0]["top_zone"] == "goal"
     n_trace = len(first["trace"])
     assert n_trace == 2
     again, _ = unpack_packet(view.packet(page_a, 0.0))
     assert again["events"] == [] and again["trace"] == [] and again["trace_from"] == n_trace
     late, _ = unpack_packet(view.packet(page_b, 0.0))  # a page that joins late gets the whole history
     assert len(late["trace"]) == n_trace and [e["id"] for e in late["events"]] == [1]
+
+
+def test_event_list_names_the_rule_zone_and_mass_that_fired_and_ripples_apart():
+    # The event record on the events stream (PROTOCOL.md section 8) is what the list shows: the rule
+    # and zone that fired and the mass that made it fire, not the zone with the highest mass now.
+    config = parse_config(ARENA_TOML)
+    view = SessionView(config)
+    view.add_event_bytes(event_frame(0, 4.0, rule="reward_goal", zone="goal", mass=0.91), 0.0)
+    view.add_event_bytes(event_frame(1, 5.0, rule="ripple_stim", zone="", mass=math.nan), 0.0)
+    view.add_event_bytes(state_frame(config, 0, 5.0), 0.0)  # a state frame on the events stream: counted bad
+    header, _ = unpack_packet(view.packet({}, 0.0))
+    goal, ripple = header["events"]
+    assert (goal["rule"], goal["zone"], goal["mass"], goal["ripple"]) == ("reward_goal", "goal", pytest.approx(0.91),
+                                                                         False)
+    # A ripple rule's event carries an empty zone and a NaN mass (PROTOCOL.md section 8).
+    assert (ripple["rule"], ripple["zone"], ripple["mass"], ripple["ripple"]) == ("ripple_stim", None, None, True)
+    assert view.bad_reasons == {"unknown_kind": 1}
+
+
+def test_input_rates_are_per_second_of_data_time():
+    # A 50 Hz camera replayed at 4x: the loop counts 200 frames per wall second; per second of data it
+    # is 50 (definition of the replay speed: data seconds per wall second).
+    config = parse_config(ARENA_TOML)
+    view = SessionView(config)
+    for i in range(81):
+        wall = 0.05 * i
+        # The loop refreshes its figures once a wall second; here the latency moves with each refresh.
+        view.add_bytes(state_frame(config, i, 10.0 + 4.0 * wall, rate_tracker_hz=200.0, rate_spikes_hz=1200.0,
+                                   latency_p50_ms=0.5 + i // 20), wall_s=wall)
+    header, _ = unpack_packet(view.packet({}, wall_s=4.0))
+    rates = header["frame"]["rates_per_data_s"]
+    assert rates["data_speed"] == pytest.approx(4.0)
+    assert rates["tracker"] == pytest.approx(50.0) and rates["spikes"] == pytest.approx(300.0)
+
+
+def test_readiness_verdict_says_why_not():
+    ready = readiness_verdict({"coverage": 0.9, "n_spatial_units": 30, "likelihood_temperature": 1.5}, "decoding")
+    assert ready == {"ready": True, "reasons": [], "checked": ["coverage", "tuned units", "likelihood temperature"]}
+    low = readiness_verdict({"coverage": 0.24, "n_spatial_units": 3}, "decoding")
+    assert not low["ready"] and len(low["reasons"]) == 2
+    assert "coverage 0.24" in low["reasons"][0] and "learn longer" in low["reasons"][0]
+    assert f"fewer than {READY_MIN_TUNED_UNITS}" in low["reasons"][1]
+    # The temperature search stops at MAX_TEMPERATURE (decoder/encoding/calibration.py): there the model is
+    # still overconfident on held-out spikes.
+    hot = readiness_verdict({"coverage": 1.0, "n_spatial_units": 40, "likelihood_temperature": 20.0}, "decoding")
+    assert not hot["ready"] and "temperature at its limit" in hot["reasons"][0]
+    assert "still learning" in readiness_verdict({}, "learning")["reasons"][0]
+    assert READY_MIN_COVERAGE == 0.8
+
+
+def test_monitor_and_report_share_one_colour_map_and_one_set_of_marks():
+    from matplotlib import colormaps
+
+    from rig_adapters.offline import report_figures
+
+    # Reference: matplotlib's cividis table, sampled at 256 levels.
+    ref = colormaps["cividis"].resampled(256)
+    got = colour_map_hex()
+    assert COLOUR_MAP == "cividis" and len(got) == 256
+    for i in (0, 100, 255):
+        assert got[i] == "".join(f"{round(255 * c):02x}" for c in ref(i)[:3])
+    assert report_figures._colour_map_with_grey().name.startswith(COLOUR_MAP)
+    assert report_figures.DECODED_COLOUR == MARKS["decoded"]["colour"]
+    assert marks_payload()["marks"]["mean"]["shape"] == "cross"
 
 
 def test_unknown_error_is_not_counted_as_an_error():
@@ -349,20 +427,112 @@ CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic"
                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 
 
+def _legend_cross_is_a_cross(page) -> bool:
+    """Whether the legend's "cross" has ink on both diagonals and none straight above the centre (a dash has
+    ink only on its horizontal line, a plus straight above)."""
+    return page.evaluate("""() => {
+      const c = document.getElementById("key-mean");
+      const d = c.getContext("2d").getImageData(0, 0, c.width, c.height);
+      const r = c.width / 16;
+      const inked = (x, y) => d.data[(Math.round(y * r) * c.width + Math.round(x * r)) * 4 + 3] > 100;
+      return inked(5, 5) && inked(11, 11) && inked(11, 5) && inked(5, 11) && !inked(8, 2) && !inked(2, 8);
+    }""")
+
+
+BROWSER_NEEDED = pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's chromium is not installed at "
+                                    "/usr/bin/chromium (apt-get install chromium); the browser test needs it")
+
+
 @pytest.mark.timeout(150)
-@pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's chromium is not installed at /usr/bin/chromium "
-                    "(apt-get install chromium); the browser test needs it")
-def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
+@BROWSER_NEEDED
+def test_page_in_headless_chromium_warns_and_says_what_to_do_next(tmp_path):
+    """Invented state frames over a real PUB socket: a stalled input, armed triggers on a failing
+    readiness verdict, then silence. The page must say so, and say what to do next."""
     from playwright.sync_api import sync_playwright
 
+    config = parse_config(ARENA_TOML)
+    state_port, events_port, http_port = free_port(), free_port(), free_port()
+    ctx = zmq.Context()
+    pub, events_pub = ctx.socket(zmq.PUB), ctx.socket(zmq.PUB)
+    pub.bind(f"tcp://127.0.0.1:{state_port}")
+    events_pub.bind(f"tcp://127.0.0.1:{events_port}")
+    config_path = tmp_path / "arena.toml"
+    stop = threading.Event()
+
+    def publish():
+        seq = 0
+        while not stop.is_set():
+            pub.send(state_frame(config, seq, 0.02 * seq, stalled=1, coverage=0.24, n_spatial_units=5.0,
+                                 rate_spikes_hz=0.0, rate_tracker_hz=50.0))
+            if seq % 25 == 5:
+                events_pub.send(event_frame(seq, 0.02 * seq))
+            seq += 1
+            time.sleep(0.02)
+
+    config_path.write_text(ARENA_TOML)
+    monitor = subprocess.Popen(
+        [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(config_path),
+         "--state", f"tcp://127.0.0.1:{state_port}", "--events", f"tcp://127.0.0.1:{events_port}",
+         "--http-port", str(http_port)], cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    publisher = threading.Thread(target=publish, daemon=True)
+    try:
+        _wait_http(f"http://127.0.0.1:{http_port}/api/environment", 60)
+        publisher.start()
+        with sync_playwright() as pw:
+            browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
+            page = browser.new_page()
+            page.goto(f"http://127.0.0.1:{http_port}/")
+            deadline = time.monotonic() + 20
+            while not (len(page.evaluate("window.__monitorState.events || []")) and page.is_visible("#stall-next")):
+                assert time.monotonic() < deadline, "the page never showed the stall"
+                time.sleep(0.2)
+            stall_text = page.text_content("#stall-next")
+            warning_text = page.text_content("#armed-warning") if page.is_visible("#armed-warning") else ""
+            verdict_chip = page.text_content("#chip-verdict")
+            armed_chip = page.text_content("#chip-armed")
+            event_text = page.text_content("#events li")
+            cross = _legend_cross_is_a_cross(page)
+            stop.set()
+            publisher.join(5)
+            deadline = time.monotonic() + 10
+            while not page.is_visible("#link-next"):
+                assert time.monotonic() < deadline, "the page never noticed the loop had gone silent"
+                time.sleep(0.2)
+            silent_text = page.text_content("#link-next")
+            browser.close()
+    finally:
+        stop.set()
+        monitor.terminate()
+        monitor.wait(10)
+        pub.close(linger=0)
+        events_pub.close(linger=0)
+        ctx.term()
+    assert stall_text.startswith("Next:") and "placeloop control arm" in stall_text
+    assert verdict_chip == "not ready" and armed_chip == "triggers armed"
+    assert "coverage 0.24 of bins" in warning_text and "placeloop control disarm" in warning_text
+    assert "rule reward_goal · zone goal · mass 0.93" in event_text
+    assert cross, "the legend's cross is not drawn as a cross"
+    assert "Next:" in silent_text and "placeloop run" in silent_text
+
+
+@pytest.mark.timeout(240)
+@BROWSER_NEEDED
+def test_page_in_headless_chromium_follows_a_demo_session(tmp_path, monkeypatch):
+    from playwright.sync_api import sync_playwright
+
+    from rig_adapters.sim import demo as demo_module
     from rig_adapters.sim.demo import run_demo
 
+    # The demo picks its loopback ports itself; note them (they stay real ports) to find its events endpoint.
+    picked: list[int] = []
+    real_free_port = demo_module.free_loopback_port
+    monkeypatch.setattr(demo_module, "free_loopback_port", lambda: picked.append(real_free_port()) or picked[-1])
     config_path = REPO / "configs" / "round_arena_goal.toml"
     endpoints: list[str] = []
     demo_rc: list[int] = []
     demo = threading.Thread(
         target=lambda: demo_rc.append(run_demo(
-            config_path=str(config_path), speed=8.0, log_dir=None, summary_path=str(tmp_path / "summary.json"),
+            config_path=str(config_path), speed=4.0, log_dir=None, summary_path=str(tmp_path / "summary.json"),
             learn_s=60.0, decode_s=60.0, seed=11, monitor_state_endpoint=endpoints)),
         daemon=True,
     )
@@ -372,9 +542,11 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
         assert time.monotonic() < deadline, "the demo did not start"
         time.sleep(0.1)
     http_port = free_port()
+    events_endpoint = f"tcp://127.0.0.1:{picked[1]}"  # the order of demo.run_demo's ports: rig, events, state, control
+    assert endpoints[0] == f"tcp://127.0.0.1:{picked[2]}"
     monitor = subprocess.Popen(
         [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(config_path), "--state", endpoints[0],
-         "--http-port", str(http_port)],
+         "--events", events_endpoint, "--http-port", str(http_port)],
         cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
     )
     url = f"http://127.0.0.1:{http_port}/"
@@ -382,7 +554,7 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
     blocked: list[str] = []
     samples: list[dict] = []
     try:
-        _wait_http(url + "api/environment", 20)
+        _wait_http(url + "api/environment", 60)  # the monitor imports the core: slow on a loaded machine
         with sync_playwright() as pw:
             browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
             context = browser.new_context(viewport={"width": 1500, "height": 950})
@@ -412,12 +584,20 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
                 samples.append(page.evaluate("window.__monitorState"))
                 decoding = [s for s in samples if s["state"] == "decoding" and s["rolling_error_cm"] is not None]
                 # Enough to judge, and for the screenshot an event in the list when one comes soon.
-                if len(decoding) >= 12 and decoding[-1]["trace_points"] >= 3 and (
+                # Distinct steps: on a loaded machine the page may show the same step several times.
+                if len({s["t_s"] for s in decoding}) >= 12 and decoding[-1]["trace_points"] >= 3 and (
                         decoding[-1]["events_seen"] > 0 or len(decoding) >= 60):
                     break
                 time.sleep(0.25)
             roll_text = page.text_content("#fig-err-roll")
             p99_text = page.text_content("#fig-lat-p99")
+            tracker_text = page.text_content("#h-rate-tracker")
+            coverage_text = page.text_content("#fig-coverage")
+            verdict_chip = page.text_content("#chip-verdict")
+            verdict_why = page.text_content("#verdict-why")
+            warning_shown = page.is_visible("#armed-warning")
+            event_items = page.eval_on_selector_all("#events li", "els => els.map(e => e.textContent)")
+            cross = _legend_cross_is_a_cross(page)
             page.screenshot(path=str(tmp_path / "monitor.png"))
             browser.close()
     finally:
@@ -442,6 +622,26 @@ def test_page_in_headless_chromium_follows_a_demo_session(tmp_path):
     assert decoding[-1]["trace_points"] > decoding[0]["trace_points"]
     assert decoding[-1]["post_len"] == int(np.prod(parse_config(config_path.read_text()).environment.grid_shape))
     assert roll_text.endswith(" cm") and p99_text.endswith(" ms")
+    # Input rates per second of data time: the simulated camera sends 50 frames per data second
+    # (rig_adapters/sim/settings.py, tracker_rate_hz), whatever the speed (4x here).
+    # The median over the samples: a sample taken as the loop catches up, or as the rig finishes, is off for
+    # the one refresh interval it straddles.
+    assert tracker_text.endswith(" per s of data")
+    tracker_rates = [s["rates"]["tracker"] for s in decoding if s["rates"] and s["rates"]["tracker"] is not None]
+    assert tracker_rates and 35.0 <= float(np.median(tracker_rates)) <= 65.0, tracker_rates
+    # Coverage as a fraction of bins, as the report gives it (report.py: "coverage at fit (fraction of bins)").
+    assert coverage_text.endswith(" of bins") and 0.0 <= float(coverage_text.split()[0]) <= 1.0
+    final = decoding[-1]
+    assert verdict_chip == ("ready" if final["verdict"]["ready"] else "not ready")
+    assert verdict_why.startswith(verdict_chip)
+    # The demo arms after its fit whatever the verdict: then the page warns.
+    assert warning_shown == (final["armed"] and not final["verdict"]["ready"])
+    assert cross, "the legend's cross is not drawn as a cross"
+    rule = parse_config(config_path.read_text()).rules[0]
+    for text in event_items:
+        # Each event names its rule and zone, and the mass that fired it is at least the rule's min_mass.
+        assert f"rule {rule.name} · zone {rule.zone} · mass " in text, text
+        assert float(text.split("mass ")[1].split()[0]) >= rule.min_mass
     learning = [s for s in samples if s["state"] == "learning"]
     if learning:  # the page may join after learning on a slow machine
         assert all(s["post_kind"] == "occupancy" for s in learning)

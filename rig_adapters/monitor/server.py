@@ -1,9 +1,11 @@
 """``placeloop monitor``: a live web page showing the decoder while a session runs.
 
 The monitor is a separate process that only watches. It subscribes to the
-loop's ``state`` stream (see ``PROTOCOL.md`` section 8) and serves, with
-aiohttp, a page that draws the posterior, the positions, the zones, the
-events, the decoding error, the added latency and the health of the inputs.
+loop's ``state`` stream and to its ``events`` stream (see ``PROTOCOL.md``
+section 8) and serves, with aiohttp, a page that draws the posterior, the
+positions, the zones, the events (each with the rule and zone that fired and
+the zone mass that made it fire), the decoding error, the added latency, the
+health of the inputs and a readiness verdict beside the trigger arming.
 It can never slow the loop down: the loop's state PUB socket has a tiny
 send queue and sends without blocking, so a slow or absent monitor loses
 frames instead of holding the loop; this process, in turn, keeps only the
@@ -16,11 +18,8 @@ Routes::
     GET /api/environment    geometry, bins and zones as JSON
     GET /ws                 WebSocket: one binary packet per page update
 
-A packet is ``[uint32 LE header length][UTF-8 JSON header][uint8 posterior]``:
-the header holds the figures of the newest state frame plus what this page
-has not seen yet of the session's error trace and event list; the
-posterior follows quantised to 0..255 of its own peak (``post_max`` in the
-header), row-major as on the wire.
+A packet is what :class:`rig_adapters.monitor.session_view.SessionView`
+makes of the streams: a JSON header and the quantised posterior.
 
 Every address this module binds is loopback unless the operator names
 another interface with ``--host``, and then it warns. The process lowers its
@@ -32,27 +31,24 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import bisect
-import json
 import logging
-import math
 import os
-import struct
 import sys
 import time
-from collections import deque
 from pathlib import Path
-from typing import Any
 
-import numpy as np
 import zmq
 import zmq.asyncio
 from aiohttp import WSMsgType, web
 
 from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
-from decoder.space.environments import RING_RADIUS_CM, Arena, HeadingRing, TrackGraph
-from rig_adapters.wire import protocol
 from rig_adapters.console import setup_logging
+from rig_adapters.monitor.marks import marks_payload
+from rig_adapters.monitor.session_view import (
+    SessionView,
+    environment_payload,
+    pack_packet,
+)
 
 log = logging.getLogger(__name__)
 
@@ -69,386 +65,15 @@ KEEPALIVE_S = 1.0
 #: on purpose: the page only ever shows the newest frame.
 STATE_RCVHWM = 16
 
-#: Data seconds of position history drawn as a trail behind each marker.
-TRAIL_S = 1.5
-
-#: Most points of a trail sent to the page.
-TRAIL_POINTS = 40
-
-#: Data seconds over which the rolling decoding error is the median.
-ROLLING_ERROR_S = 10.0
-
-#: Data seconds per point of the session's error trace.
-TRACE_BIN_S = 1.0
-
-#: Most points kept in the error trace (four hours at one per second).
-TRACE_MAX_POINTS = 4 * 3600
-
-#: Most events kept for the page's list.
-EVENTS_KEPT = 500
-
-#: Edges (ms) of the added-latency histogram: log-spaced, 0.05 ms to 500 ms,
-#: with the counts below and above the range in the first and last bin.
-LATENCY_EDGES_MS = np.geomspace(0.05, 500.0, 41)
-
 #: Niceness the monitor process adds to itself: on a machine shared with the
 #: loop, the scheduler serves the loop first.
 MONITOR_NICENESS = 10
-
-#: How often (s) bad state frames are logged at most; all are counted.
-BAD_FRAME_LOG_INTERVAL_S = 5.0
 
 CAUTION = (
     "The monitor only watches: it cannot arm, disarm or stop reward or stimulation, and no software is "
     "a hardware interlock. Keep the hardware limits and the physical cut-off within reach, stay inside "
     "your approved animal-use protocol and local rules, and dry-run every setup before a live animal."
 )
-
-
-def _number(x: Any) -> float | None:
-    """A finite float for JSON, None for NaN, infinity or absence."""
-    if x is None:
-        return None
-    x = float(x)
-    return x if math.isfinite(x) else None
-
-
-def _xy(xy: Any) -> list | None:
-    if xy is None:
-        return None
-    out = [_number(c) for c in xy]
-    return None if None in out else out
-
-
-def _error_cm(stats: dict) -> float | None:
-    """The step's decoding error; the loop sends a negative number when the true position is unknown."""
-    error = _number(stats.get("error_cm"))
-    return error if error is not None and error >= 0 else None
-
-
-def environment_payload(config: ExperimentConfig) -> dict:
-    """What the page needs to draw the environment and the zones.
-
-    Parameters
-    ----------
-    config : ExperimentConfig
-
-    Returns
-    -------
-    dict
-        ``kind`` ("arena", "track" or "ring"), ``bin_cm``, ``n_bins``, ``hpd_unit``
-        ("cm²", "cm" or "deg"), the environment's ``to_dict()`` under
-        ``environment``, the zones' ``to_dict()`` under ``zones``, and:
-
-        - an arena: ``grid_shape`` [ny, nx], ``x_edges_cm`` (nx + 1),
-          ``y_edges_cm`` (ny + 1), ``valid_mask`` (n_bins,) of 0/1 in
-          row-major bin order, ``outline_cm`` the closed boundary ring;
-        - a track or graph: ``linear_edges_cm`` (n_bins + 1),
-          ``total_length_cm``, ``edge_starts_cm`` (linear position where
-          each edge begins), ``outline_cm`` one [[x, y], [x, y]] per edge;
-        - a heading ring: ``bin_edges_deg`` (n_bins + 1) and
-          ``ring_radius_cm``, the radius of the ring its points lie on
-          (``decoder.space.headings``).
-    """
-    env = config.environment
-    out: dict[str, Any] = {
-        "bin_cm": env.bin_cm,
-        "n_bins": env.n_bins,
-        "environment": env.to_dict(),
-        "zones": [z.to_dict() for z in config.zones],
-        "hpd_unit": "cm²" if env.ndim_spatial == 2 else ("deg" if isinstance(env, HeadingRing) else "cm"),
-    }
-    if isinstance(env, Arena):
-        out.update(
-            kind="arena",
-            grid_shape=list(env.grid_shape),
-            x_edges_cm=env.x_edges_cm.tolist(),
-            y_edges_cm=env.y_edges_cm.tolist(),
-            valid_mask=env.valid_mask.astype(int).tolist(),
-            outline_cm=env.outline_cm().tolist(),
-        )
-    elif isinstance(env, TrackGraph):
-        out.update(
-            kind="track",
-            linear_edges_cm=env.linear_edges_cm.tolist(),
-            total_length_cm=env.total_length_cm,
-            edge_starts_cm=np.concatenate([[0.0], np.cumsum(env.edge_lengths_cm)[:-1]]).tolist(),
-            outline_cm=[seg.tolist() for seg in env.outline_cm()],
-        )
-    elif isinstance(env, HeadingRing):
-        out.update(kind="ring", bin_edges_deg=env.linear_edges_cm.tolist(), ring_radius_cm=RING_RADIUS_CM)
-    else:
-        raise ValueError(f"the monitor cannot draw a {type(env).__name__}; use an Arena, LinearTrack, TrackGraph "
-                         "or HeadingRing")
-    return out
-
-
-def quantise_posterior(posterior: np.ndarray) -> tuple[bytes, float]:
-    """A posterior (or occupancy) map as bytes of 0..255 relative to its peak.
-
-    Parameters
-    ----------
-    posterior : ndarray of float, any shape
-        Non-negative; NaN counts as 0.
-
-    Returns
-    -------
-    (bytes, float)
-        ``prod(shape)`` bytes, row-major, ``round(255 * p / peak)``; and the
-        peak itself (0 when the map is all zero).
-    """
-    p = np.nan_to_num(np.asarray(posterior, dtype=np.float32).ravel(), nan=0.0, posinf=0.0, neginf=0.0)
-    peak = float(p.max()) if p.size else 0.0
-    if peak <= 0.0:
-        return bytes(p.size), 0.0
-    q = np.rint(np.clip(p, 0.0, None) * (255.0 / peak)).astype(np.uint8)
-    return q.tobytes(), peak
-
-
-def pack_packet(header: dict, posterior_u8: bytes = b"") -> bytes:
-    """``[uint32 LE header length][JSON header][posterior bytes]``."""
-    text = json.dumps(header, separators=(",", ":"), allow_nan=False).encode()
-    return struct.pack("<I", len(text)) + text + posterior_u8
-
-
-def unpack_packet(data: bytes) -> tuple[dict, bytes]:
-    """Inverse of :func:`pack_packet`: the header dict and the posterior bytes."""
-    if len(data) < 4:
-        raise ValueError(f"a monitor packet has at least 4 bytes, got {len(data)}")
-    (n,) = struct.unpack_from("<I", data)
-    if 4 + n > len(data):
-        raise ValueError(f"the packet says its header has {n} bytes but only {len(data) - 4} follow")
-    return json.loads(data[4 : 4 + n]), data[4 + n :]
-
-
-class SessionView:
-    """Everything the page shows, built from the state frames as they arrive.
-
-    Plain Python with no sockets, so that tests drive it with a list of
-    frames. The posterior kept is only the newest; the running figures
-    (error trace, events, latency histogram, trails) take every frame the
-    monitor receives.
-
-    Parameters
-    ----------
-    config : ExperimentConfig
-        For the environment (to linearise positions on a track) and the zones.
-    """
-
-    def __init__(self, config: ExperimentConfig) -> None:
-        self.environment = config.environment
-        self.is_track = isinstance(self.environment, TrackGraph)
-        self.latest: dict | None = None
-        self.version = 0
-        self.frames_received = 0
-        self.frames_missed = 0
-        self.bad_frames = 0
-        self.bad_reasons: dict[str, int] = {}
-        self.last_frame_wall_s: float | None = None
-        self._last_seq: dict[str, int] = {}
-        self._trail: deque = deque()
-        self._recent_errors: deque = deque()
-        self.session_errors: list[float] = []
-        self.trace: list[list] = []
-        self._trace_bin: list = []
-        self._trace_bin_start: float | None = None
-        self.events: list[dict] = []
-        self.events_dropped = 0
-        self.latency_counts = np.zeros(len(LATENCY_EDGES_MS) - 1, dtype=np.int64)
-        self.readiness: dict[str, float | None] = {}
-        self._quantised: tuple[int, bytes, float] | None = None
-        self._last_bad_log = -math.inf
-
-    # -- input ---------------------------------------------------------------------
-
-    def add_bytes(self, payload: bytes, wall_s: float) -> None:
-        """Take one frame off the state stream; a bad one is counted and logged, never raised."""
-        try:
-            frame = protocol.decode_output(payload)
-            if frame["kind"] != "state":
-                raise protocol.ProtocolError("unknown_kind", f"the state stream carried an {frame['kind']!r} frame")
-        except protocol.ProtocolError as exc:
-            self.bad_frames += 1
-            self.bad_reasons[exc.reason] = self.bad_reasons.get(exc.reason, 0) + 1
-            if wall_s - self._last_bad_log >= BAD_FRAME_LOG_INTERVAL_S:
-                self._last_bad_log = wall_s
-                log.warning("dropped a bad state frame (%d so far): %s", self.bad_frames, exc)
-            return
-        self.add(frame, wall_s)
-
-    def add(self, frame: dict, wall_s: float) -> None:
-        """Take one decoded state frame (the dict of ``protocol.decode_output``)."""
-        self.frames_received += 1
-        self.last_frame_wall_s = wall_s
-        last = self._last_seq.get(frame["source"])
-        if last is not None and frame["seq"] > last + 1:
-            self.frames_missed += frame["seq"] - last - 1
-        self._last_seq[frame["source"]] = frame["seq"]
-        stats = frame.get("stats") or {}
-        t_s = frame["t_s"]
-        self._add_trail(t_s, frame)
-        if frame["state"] == "learning":
-            for key in ("coverage", "n_spatial_units", "cv_error_cm", "learn_elapsed_s"):
-                if key in stats:
-                    self.readiness[key] = _number(stats[key])
-        elif "cv_error_cm" in stats:
-            self.readiness["cv_error_cm"] = _number(stats["cv_error_cm"])
-        error = _error_cm(stats)
-        if error is not None and frame["state"] == "decoding":
-            self._add_error(t_s, error)
-        added = _number(stats.get("added_ms"))
-        if added is not None and added > 0:  # 0 until the loop has timed its first step
-            i = min(max(bisect.bisect_right(LATENCY_EDGES_MS, added) - 1, 0), len(self.latency_counts) - 1)
-            self.latency_counts[i] += 1
-        event_id = stats.get("event_id", 0)
-        if event_id and event_id > 0:
-            self._add_event(int(event_id), frame)
-        self.latest = frame
-        self.version += 1
-
-    def _add_trail(self, t_s: float, frame: dict) -> None:
-        self._trail.append((t_s, frame["tracked_xy_cm"], frame["map_xy_cm"]))
-        while self._trail and self._trail[0][0] < t_s - TRAIL_S:
-            self._trail.popleft()
-
-    def _add_error(self, t_s: float, error_cm: float) -> None:
-        self._recent_errors.append((t_s, error_cm))
-        while self._recent_errors[0][0] < t_s - ROLLING_ERROR_S:
-            self._recent_errors.popleft()
-        self.session_errors.append(error_cm)
-        if self._trace_bin_start is None:
-            self._trace_bin_start = math.floor(t_s / TRACE_BIN_S) * TRACE_BIN_S
-        if t_s >= self._trace_bin_start + TRACE_BIN_S:
-            self._close_trace_bin()
-            self._trace_bin_start = math.floor(t_s / TRACE_BIN_S) * TRACE_BIN_S
-        self._trace_bin.append(error_cm)
-
-    def _close_trace_bin(self) -> None:
-        if self._trace_bin:
-            self.trace.append([self._trace_bin_start + TRACE_BIN_S / 2, float(np.median(self._trace_bin))])
-            self._trace_bin = []
-            if len(self.trace) > TRACE_MAX_POINTS:
-                del self.trace[: len(self.trace) - TRACE_MAX_POINTS]
-
-    def _add_event(self, event_id: int, frame: dict) -> None:
-        masses = frame["zone_masses"] or {}
-        zone, mass = max(masses.items(), key=lambda kv: kv[1]) if masses else (None, None)
-        self.events.append({
-            "id": event_id,
-            "t_s": frame["t_s"],
-            "map_xy_cm": _xy(frame["map_xy_cm"]),
-            "tracked_xy_cm": _xy(frame["tracked_xy_cm"]),
-            "top_zone": zone,
-            "top_mass": _number(mass),
-        })
-        if len(self.events) > EVENTS_KEPT:
-            self.events_dropped += len(self.events) - EVENTS_KEPT
-            del self.events[: len(self.events) - EVENTS_KEPT]
-
-    # -- output --------------------------------------------------------------------
-
-    def rolling_error_cm(self) -> float | None:
-        """Median decoding error over the last :data:`ROLLING_ERROR_S` of data time."""
-        if not self._recent_errors:
-            return None
-        return float(np.median([e for _, e in self._recent_errors]))
-
-    def _trails(self) -> dict:
-        pts = list(self._trail)
-        if len(pts) > TRAIL_POINTS:
-            keep = np.linspace(0, len(pts) - 1, TRAIL_POINTS).round().astype(int)
-            pts = [pts[i] for i in keep]
-        tracked = [_xy(p[1]) for p in pts]
-        decoded = [_xy(p[2]) for p in pts]
-        return {"tracked": tracked, "decoded": decoded}
-
-    def _linear(self, frame: dict) -> dict:
-        xy = np.array([frame["tracked_xy_cm"], frame["map_xy_cm"], frame["mean_xy_cm"]], dtype=np.float64)
-        finite = np.all(np.isfinite(xy), axis=1)
-        lin = np.full(3, np.nan)
-        if finite.any():
-            lin[finite] = self.environment.linearize(xy[finite])
-        return {"tracked": _number(lin[0]), "map": _number(lin[1]), "mean": _number(lin[2])}
-
-    def packet(self, cursor: dict, wall_s: float) -> bytes:
-        """The next packet for one page.
-
-        Parameters
-        ----------
-        cursor : dict
-            The page's own progress, ``{"trace": int, "events": int}``;
-            updated in place so the next packet carries only what is new.
-        wall_s : float
-            Now, wall clock, for the age of the newest frame.
-        """
-        frame = self.latest
-        self._close_stale_trace_bin(frame)
-        trace_from = min(cursor.get("trace", 0), len(self.trace))
-        new_events = [e for e in self.events if e["id"] > cursor.get("event_id", 0)]
-        header: dict[str, Any] = {
-            "monitor": {
-                "frames_received": self.frames_received,
-                "frames_missed": self.frames_missed,
-                "bad_frames": self.bad_frames,
-                "bad_reasons": dict(self.bad_reasons),
-                "frame_age_s": None if self.last_frame_wall_s is None else round(wall_s - self.last_frame_wall_s, 3),
-                "version": self.version,
-            },
-            "trace_from": trace_from,
-            "trace": self.trace[trace_from:],
-            "events": new_events,
-            "events_dropped": self.events_dropped,
-            "latency_edges_ms": None if cursor.get("edges_sent") else LATENCY_EDGES_MS.round(4).tolist(),
-            "latency_counts": self.latency_counts.tolist(),
-            "readiness": dict(self.readiness),
-            "rolling_error_cm": self.rolling_error_cm(),
-            "session_error_cm": float(np.median(self.session_errors)) if self.session_errors else None,
-            "n_errors": len(self.session_errors),
-            "frame": None,
-        }
-        cursor["trace"] = len(self.trace)
-        cursor["edges_sent"] = True
-        if new_events:
-            cursor["event_id"] = new_events[-1]["id"]
-        if frame is None:
-            return pack_packet(header)
-        stats = {k: _number(v) for k, v in (frame.get("stats") or {}).items()}
-        stats["error_cm"] = _error_cm(stats)
-        header["frame"] = {
-            "t_s": frame["t_s"],
-            "state": frame["state"],
-            "armed": frame["armed"],
-            "map_xy_cm": _xy(frame["map_xy_cm"]),
-            "mean_xy_cm": _xy(frame["mean_xy_cm"]),
-            "tracked_xy_cm": _xy(frame["tracked_xy_cm"]),
-            "hpd95_size": _number(frame["hpd95_size"]),
-            "peak_prob": _number(frame["peak_prob"]),
-            "zone_masses": {k: _number(v) for k, v in (frame["zone_masses"] or {}).items()},
-            "n_spikes": frame["n_spikes"],
-            "stats": stats,
-            "trails": self._trails(),
-            "linear": self._linear(frame) if self.is_track else None,
-            "post_shape": None,
-            "post_max": None,
-            "post_kind": "occupancy" if frame["state"] == "learning" else "posterior",
-        }
-        body = b""
-        if frame.get("posterior") is not None:
-            if self._quantised is None or self._quantised[0] != self.version:
-                q, peak = quantise_posterior(frame["posterior"])
-                self._quantised = (self.version, q, peak)
-            _, body, peak = self._quantised
-            header["frame"]["post_shape"] = list(frame["posterior"].shape)
-            header["frame"]["post_max"] = peak
-        return pack_packet(header, body)
-
-    def _close_stale_trace_bin(self, frame: dict | None) -> None:
-        """Close the open trace bin once the data time has moved past it (or decoding stopped)."""
-        if frame is None or self._trace_bin_start is None:
-            return
-        if frame["t_s"] >= self._trace_bin_start + TRACE_BIN_S or frame["state"] != "decoding":
-            self._close_trace_bin()
-            self._trace_bin_start = math.floor(frame["t_s"] / TRACE_BIN_S) * TRACE_BIN_S
 
 
 # ------------------------------------------------------------------------------
@@ -458,11 +83,12 @@ class SessionView:
 # Typed keys of what the application holds.
 ENVIRONMENT_KEY = web.AppKey("environment", dict)
 ENDPOINT_KEY = web.AppKey("state_endpoint", str)
+EVENTS_ENDPOINT_KEY = web.AppKey("events_endpoint", str)
 VIEW_KEY = web.AppKey("view", SessionView)
 WAITERS_KEY = web.AppKey("waiters", set)
 ZMQ_CTX_KEY = web.AppKey("zmq_ctx", zmq.asyncio.Context)
-SUB_KEY = web.AppKey("sub", zmq.asyncio.Socket)
-READER_KEY = web.AppKey("reader", asyncio.Task)
+SUBS_KEY = web.AppKey("subs", list)
+READERS_KEY = web.AppKey("readers", list)
 
 
 def _security_headers(response: web.StreamResponse) -> None:
@@ -486,7 +112,9 @@ async def _environment(request: web.Request) -> web.Response:
     app = request.app
     body = dict(app[ENVIRONMENT_KEY])
     body["state_endpoint"] = app[ENDPOINT_KEY]
+    body["events_endpoint"] = app[EVENTS_ENDPOINT_KEY]
     body["caution"] = CAUTION
+    body["marks"] = marks_payload()
     return web.json_response(body)
 
 
@@ -533,49 +161,55 @@ async def _socket(request: web.Request) -> web.WebSocketResponse:
     return ws
 
 
-async def _read_state(app: web.Application) -> None:
+async def _read(app: web.Application, sock: zmq.asyncio.Socket, take) -> None:
     """Take every frame the SUB socket delivers; wake the pages after each burst."""
-    sock: zmq.asyncio.Socket = app[SUB_KEY]
-    view: SessionView = app[VIEW_KEY]
     while True:
         payload = await sock.recv()
-        view.add_bytes(payload, time.time())
+        take(payload, time.time())
         while True:
             try:
                 payload = sock.recv(zmq.NOBLOCK).result()
             except zmq.Again:
                 break
-            view.add_bytes(payload, time.time())
+            take(payload, time.time())
         for waiter in app[WAITERS_KEY]:
             waiter.set()
 
 
 async def _start_reader(app: web.Application) -> None:
     ctx = zmq.asyncio.Context()
-    sub = ctx.socket(zmq.SUB)
-    # A short queue: frames the monitor cannot take in time are dropped by
-    # ZeroMQ; the page only ever wants the newest one.
-    sub.setsockopt(zmq.RCVHWM, STATE_RCVHWM)
-    sub.setsockopt(zmq.LINGER, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"")
-    sub.connect(app[ENDPOINT_KEY])
+    view: SessionView = app[VIEW_KEY]
     app[ZMQ_CTX_KEY] = ctx
-    app[SUB_KEY] = sub
-    app[READER_KEY] = asyncio.create_task(_read_state(app))
-    log.info("monitor subscribed to %s", app[ENDPOINT_KEY])
+    app[SUBS_KEY] = []
+    app[READERS_KEY] = []
+    for endpoint, take in ((app[ENDPOINT_KEY], view.add_bytes), (app[EVENTS_ENDPOINT_KEY], view.add_event_bytes)):
+        if not endpoint:
+            continue
+        sub = ctx.socket(zmq.SUB)
+        # A short queue: frames the monitor cannot take in time are dropped by
+        # ZeroMQ; the page only ever wants the newest state (events are few).
+        sub.setsockopt(zmq.RCVHWM, STATE_RCVHWM)
+        sub.setsockopt(zmq.LINGER, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"")
+        sub.connect(endpoint)
+        app[SUBS_KEY].append(sub)
+        app[READERS_KEY].append(asyncio.create_task(_read(app, sub, take)))
+        log.info("monitor subscribed to %s", endpoint)
 
 
 async def _stop_reader(app: web.Application) -> None:
-    app[READER_KEY].cancel()
-    try:
-        await app[READER_KEY]
-    except asyncio.CancelledError:
-        pass
-    app[SUB_KEY].close(linger=0)
+    for reader in app[READERS_KEY]:
+        reader.cancel()
+        try:
+            await reader
+        except asyncio.CancelledError:
+            pass
+    for sub in app[SUBS_KEY]:
+        sub.close(linger=0)
     app[ZMQ_CTX_KEY].term()
 
 
-def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application:
+def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: str = "") -> web.Application:
     """The monitor's aiohttp application, not yet serving.
 
     Parameters
@@ -584,10 +218,13 @@ def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application
         The experiment the loop runs (for the environment and the zones).
     state_endpoint : str
         The loop's state PUB endpoint to connect to, e.g. ``tcp://127.0.0.1:5772``.
+    events_endpoint : str, default ""
+        The loop's events PUB endpoint; empty for none (the page then lists no events).
     """
     app = web.Application()
     app[ENVIRONMENT_KEY] = environment_payload(config)
     app[ENDPOINT_KEY] = state_endpoint
+    app[EVENTS_ENDPOINT_KEY] = events_endpoint
     app[VIEW_KEY] = SessionView(config)
     app[WAITERS_KEY] = set()
     app.router.add_get("/", _index)
@@ -600,7 +237,8 @@ def create_app(config: ExperimentConfig, state_endpoint: str) -> web.Application
     return app
 
 
-def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750) -> None:
+def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750,
+                events_endpoint: str | None = None) -> None:
     """Serve the monitor page until interrupted.
 
     Parameters
@@ -614,6 +252,8 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
         page to that network, and is warned about.
     port : int, default 8750
         TCP port for the web server.
+    events_endpoint : str or None, default None
+        The loop's events PUB endpoint; None for the config's ``[endpoints] events``.
     """
     if not 0 < port < 65536:
         raise ValueError(f"port must be 1..65535, got {port}")
@@ -623,12 +263,14 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
                    "session (it cannot control it)")
         log.warning(message)
         print(f"WARNING: {message}", file=sys.stderr)
-    app = create_app(config, state_endpoint)
+    events = config.endpoints.events if events_endpoint is None else events_endpoint
+    app = create_app(config, state_endpoint, events)
     try:
         os.nice(MONITOR_NICENESS)
     except (AttributeError, OSError):
         log.info("could not lower the monitor's priority; it still never blocks the loop")
-    print(f"placeloop monitor: http://{host}:{port}/ (state from {state_endpoint})\n{CAUTION}", file=sys.stderr)
+    print(f"placeloop monitor: http://{host}:{port}/ (state from {state_endpoint}, events from {events})\n{CAUTION}",
+          file=sys.stderr)
     web.run_app(app, host=host, port=port, print=None, access_log=None)
 
 
@@ -641,6 +283,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--config", required=True, help="experiment config (TOML) the loop runs")
     parser.add_argument("--state", default=None,
                         help="the loop's state endpoint (default: [endpoints] state of the config)")
+    parser.add_argument("--events", default=None,
+                        help="the loop's events endpoint (default: [endpoints] events of the config)")
     parser.add_argument("--http-port", type=int, default=8750, help="port of the web page (default 8750)")
     parser.add_argument("--host", default="127.0.0.1",
                         help="interface for the web page (default 127.0.0.1; another one warns)")
@@ -649,12 +293,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``placeloop monitor --config C [--state EP] [--http-port P] [--host H]``."""
+    """``placeloop monitor --config C [--state EP] [--events EP] [--http-port P] [--host H]``."""
     args = build_parser().parse_args(argv)
     setup_logging(args.verbose)
     try:
         state = args.state or load_config(args.config).endpoints.state
-        run_monitor(args.config, state, host=args.host, port=args.http_port)
+        run_monitor(args.config, state, host=args.host, port=args.http_port, events_endpoint=args.events)
     except (ConfigError, ValueError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2

@@ -3,8 +3,9 @@
 Each function takes what :mod:`rig_adapters.offline.report_data` gathered and
 returns one image (or None when there is nothing to draw): positions and
 decoding error over time, the posterior at each event, latency histograms per
-stage, the rate maps of the best units and a sweep's trade-off. Colours come
-from viridis (colour-blind safe), told apart by line style and marker too.
+stage, the rate maps of the best units and a sweep's trade-off. The colour map
+and the marks are the live monitor's (:mod:`rig_adapters.monitor.marks`), so a
+figure here reads like the rig's screen; lines are told apart by style too.
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ from matplotlib.lines import Line2D
 from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import PlaceModel
 from decoder.space.environments import Environment, HeadingRing
+from rig_adapters.monitor.marks import COLOUR_MAP, INK, MARKS, OUTSIDE_MAP
 from rig_adapters.offline.report_data import (
     SWEEP_LABELS,
     SWEEP_X_FIGURE,
@@ -38,8 +40,8 @@ MAX_RATE_MAPS = 48
 #: Resolution of the inlined figures (dots per inch).
 FIGURE_DPI = 100
 
-#: Line colours sampled from viridis, told apart by line style and marker as well.
-TRACKED_COLOUR, DECODED_COLOUR, TRUE_COLOUR = "#440154", "#21918c", "#b5de2b"
+#: Line colours of the monitor's marks; the tracked position, white on the monitor's map, is its ink here.
+TRACKED_COLOUR, DECODED_COLOUR, TRUE_COLOUR = INK, MARKS["decoded"]["colour"], MARKS["true"]["colour"]
 
 
 def _png(fig: Figure) -> str:
@@ -166,9 +168,20 @@ def _masked_grid(values: np.ndarray, mask: np.ndarray, shape: tuple[int, int]) -
     return np.ma.masked_array(values.reshape(shape), ~mask.reshape(shape))
 
 
-def _viridis_with_grey():
-    """Viridis (colour-blind safe), with light grey for bins left out of the map."""
-    return colormaps["viridis"].with_extremes(bad="0.88")
+def _colour_map_with_grey():
+    """The monitor's colour map, with its light grey for bins left out of the map."""
+    return colormaps[COLOUR_MAP].with_extremes(bad=OUTSIDE_MAP)
+
+
+def _mark(ax, kind: str, xy, size: float = 6.0) -> None:
+    """One of the monitor's marks (``tracked``, ``decoded``, ``true``) at ``xy``, outlined in ink."""
+    m = MARKS[kind]
+    ax.plot(*xy, ls="", marker=m["matplotlib"], mfc=m["colour"], mec=INK, ms=size, mew=0.9)
+
+
+def _mark_handle(kind: str) -> Line2D:
+    m = MARKS[kind]
+    return Line2D([], [], ls="", marker=m["matplotlib"], mfc=m["colour"], mec=INK, mew=0.9, label=m["label"])
 
 
 def _grid_of_axes(fig: Figure, n: int, ncols: int, hspace: float | None = None) -> np.ndarray:
@@ -234,7 +247,7 @@ def event_posteriors(trace: SessionTrace, config: ExperimentConfig) -> str | Non
                               "x (cm)" if arena else _linear_label(env),
                               "y (cm)" if arena else "posterior / its peak", None if arena else (0.0, 1.0),
                               hspace=0.35 if arena else 0.9)
-    cmap = _viridis_with_grey()
+    cmap = _colour_map_with_grey()
     outlines = _zone_outlines(config, env) if arena else {}
     image = None
     for ax, ev in zip(panels, events):
@@ -250,10 +263,10 @@ def event_posteriors(trace: SessionTrace, config: ExperimentConfig) -> str | Non
             ax.plot(ring[:, 0], ring[:, 1], color="0.2", lw=0.6)
             for line in outlines[ev.zone]:
                 ax.plot(line[:, 0], line[:, 1], color="white", lw=1.2)
-            ax.plot(*ev.map_xy_cm, marker="x", color="white", ms=6, mew=1.5)
-            ax.plot(*ev.tracked_xy_cm, marker="o", mfc="none", mec="#fde725", ms=6, mew=1.2)
+            _mark(ax, "decoded", ev.map_xy_cm)
+            _mark(ax, "tracked", ev.tracked_xy_cm, 5.0)
             if np.all(np.isfinite(ev.true_xy_cm)):
-                ax.plot(*ev.true_xy_cm, marker="+", color="#fde725", ms=7, mew=1.2)
+                _mark(ax, "true", ev.true_xy_cm, 6.5)
             ax.set_aspect("equal")
         else:
             centres = _linear_bin_centres_cm(env)
@@ -271,9 +284,9 @@ def event_posteriors(trace: SessionTrace, config: ExperimentConfig) -> str | Non
         cbar.set_label("posterior / its peak (probability ratio)", fontsize=7)
         cbar.ax.tick_params(labelsize=6)
         handles = [
-            Line2D([], [], ls="", marker="x", color="0.2", mew=1.5, label="decoded (MAP)"),
-            Line2D([], [], ls="", marker="o", mfc="none", mec="0.2", label="tracked"),
-            Line2D([], [], ls="", marker="+", color="0.2", label="true"),
+            _mark_handle("decoded"),
+            _mark_handle("tracked"),
+            _mark_handle("true"),
             Line2D([], [], color="0.2", lw=1.2, label="zone outline (white)"),
         ]
     else:
@@ -350,7 +363,7 @@ def rate_maps(model: PlaceModel, order: np.ndarray) -> str | None:
                               "x (cm)" if arena else _linear_label(env),
                               "y (cm)" if arena else "rate / peak (Hz/Hz)", None if arena else (0.0, 1.0),
                               hspace=0.35 if arena else 0.9)
-    cmap = _viridis_with_grey()
+    cmap = _colour_map_with_grey()
     image = None
     for ax, row in zip(panels, rows):
         rate = model.rate_maps_hz_[row]
@@ -389,12 +402,12 @@ def trade_off(sweep: dict) -> str | None:
                 continue
             idx, xs, ys = zip(*pts)
             if front:
-                ax.scatter(xs, ys, s=46, marker="D", color=DECODED_COLOUR, edgecolor="black", linewidth=0.8,
+                ax.scatter(xs, ys, s=46, marker="D", color=DECODED_COLOUR, edgecolor=INK, linewidth=0.8,
                            label="on the front", zorder=3)
                 for i, x, y in pts:
                     ax.annotate(str(i), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7)
             else:
-                ax.scatter(xs, ys, s=22, marker="o", facecolor="none", edgecolor=TRACKED_COLOUR, linewidth=0.9,
+                ax.scatter(xs, ys, s=22, marker="o", facecolor="none", edgecolor=INK, linewidth=0.9,
                            label="other settings", zorder=2)
         ax.set_xlabel(x_label)
         ax.set_ylabel(label)

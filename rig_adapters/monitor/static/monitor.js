@@ -2,43 +2,25 @@
 // Plain JS, Canvas 2D, no build step, nothing loaded from anywhere but this server.
 "use strict";
 
-// cividis, a perceptually uniform colour map readable with colour-vision deficiency
-// (Nuñez, Anderton & Renslow 2018, PLoS ONE 13:e0199239), sampled at 256 levels as
-// "rrggbb" triplets from matplotlib's table.
-const CIVIDIS_HEX =
-  "00224e00234f00245100255300255400265600275800285900285b00295d002a5f002a61002b62002c64002c66002d68" +
-  "002e6a002e6c002f6d00306f0030700031700031710132710533710833700c34700f357012357014367016377018376f" +
-  "1a386f1c396f1e3a6f203a6f213b6e233c6e243c6e263d6e273e6e293f6e2a3f6d2b406d2d416d2e416d2f426d31436d" +
-  "32436d33446d34456c35456c36466c38476c39486c3a486c3b496c3c4a6c3d4a6c3e4b6c3f4c6c404c6c414d6c424e6c" +
-  "434e6c444f6c45506c46516c47516c48526c49536c4a536c4b546c4c556c4d556c4e566c4f576c50576c51586d52596d" +
-  "535a6d545a6d555b6d555c6d565c6d575d6d585e6d595e6e5a5f6e5b606e5c616e5d616e5e626e5e636f5f636f60646f" +
-  "61656f62656f636670646770656870656870666970676a71686a71696b716a6c716b6d726c6d726c6e726d6f726e6f73" +
-  "6f70737071737172747272747273747374757474757575757676767777767777777878777979777a7a787b7a787c7b78" +
-  "7d7c787e7c787e7d787f7e78807f78817f788280798381798482798582798683798784788885788985788a86788b8778" +
-  "8c88788d88788e89788f8a78908b78918b78928c78928d78938e78948e77958f779690779791779892779992779a9376" +
-  "9b94769c95769d95769e96769f9775a09875a19975a29975a39a74a49b74a59c74a69c74a79d73a89e73a99f73aaa073" +
-  "aba072aca172ada272aea371afa471b0a571b1a570b3a670b4a76fb5a86fb6a96fb7a96eb8aa6eb9ab6dbaac6dbbad6d" +
-  "bcae6cbdae6cbeaf6bbfb06bc0b16ac1b26ac2b369c3b369c4b468c5b568c6b667c7b767c8b866c9b965cbb965ccba64" +
-  "cdbb63cebc63cfbd62d0be62d1bf61d2c060d3c05fd4c15fd5c25ed6c35dd7c45cd9c55cdac65bdbc75adcc859ddc858" +
-  "dec958dfca57e0cb56e1cc55e2cd54e4ce53e5cf52e6d051e7d150e8d24fe9d34eead34cebd44bedd54aeed649efd748" +
-  "f0d846f1d945f2da44f3db42f5dc41f6dd3ff7de3ef8df3cf9e03afbe138fce236fde334fee434fee535fee636fee838";
-
+// The colour map and the marks come from the server (rig_adapters/monitor/marks.py), the same table the
+// offline report draws with: cividis for posteriors and occupancy, Okabe & Ito (2008) colours for the marks,
+// each mark with a shape of its own.
 const LUT = new Uint8ClampedArray(256 * 3);
-for (let i = 0; i < 256; i++) {
-  for (let c = 0; c < 3; c++) LUT[i * 3 + c] = parseInt(CIVIDIS_HEX.substr(i * 6 + c * 2, 2), 16);
-}
-
-// Marks: Okabe & Ito (2008) colour-universal-design palette, each with its own shape.
-const INK = "#1d2126";
-const TRACKED = "#ffffff";
-const DECODED = "#cc79a7";
-const MEAN = "#e69f00";
+let INK = "#1d2126", TRACKED = "#ffffff", DECODED = "#cc79a7", MEAN = "#e69f00", EVENT = "#d55e00";
+let OUTSIDE = [217, 213, 204];
 const ZONE = "#ffffff";
-const EVENT = "#d55e00";
 const GRID = "#d9d5cc";
 const MUTED = "#5f6670";
 const BLUE = "#0072b2";
 const FONT = '12px system-ui, "DejaVu Sans", sans-serif';
+
+function rgb(hex) { return [0, 2, 4].map((i) => parseInt(hex.replace("#", "").substr(i, 2), 16)); }
+
+function takeMarks(m) {
+  m.colour_map_hex.forEach((hex, i) => LUT.set(rgb(hex), i * 3));
+  INK = m.ink; TRACKED = m.marks.tracked.colour; DECODED = m.marks.decoded.colour; MEAN = m.marks.mean.colour;
+  EVENT = m.event; OUTSIDE = rgb(m.outside_map);
+}
 
 const STRIP_S = 20;           // data seconds shown in the track strip
 const EVENT_FLASH_MS = 1200;
@@ -129,9 +111,9 @@ function drawAxes(ctx, box, xr, yr, sx, sy, xlabel, ylabel, opts = {}) {
   ctx.restore();
 }
 
-// The colour bar's gradient, drawn once: 256 rows, the top row the peak.
+// The colour bar's gradient, drawn once the colour map has arrived: 256 rows, the top row the peak.
 const BAR = new OffscreenCanvas(1, 256);
-{
+function drawBarGradient() {
   const img = new ImageData(1, 256);
   for (let i = 0; i < 256; i++) {
     const k = 255 - i;
@@ -186,6 +168,16 @@ function marker(ctx, kind, px, py, size) {
   ctx.restore();
 }
 
+// The legend's marks are drawn by the very function that draws them on the map.
+function drawLegend(marks) {
+  for (const kind of ["tracked", "decoded", "mean"]) {
+    const c = setupCanvas($("key-" + kind));
+    marker(c.ctx, kind, c.w / 2, c.h / 2, 5);
+    $("key-" + kind).nextElementSibling.textContent =
+      kind === "tracked" && model.env.kind === "track" ? "tracked position (line over time)" : marks[kind].label;
+  }
+}
+
 function trail(ctx, points, map, colour) {
   const pts = points.filter((p) => p).map(map);
   if (pts.length < 2) return;
@@ -233,7 +225,7 @@ function drawArena(ctx, w, h) {
     for (let ix = 0; ix < nx; ix++) {
       const b = iy * nx + ix;
       const o = ((ny - 1 - iy) * nx + ix) * 4;
-      if (!valid[b]) { img.data[o] = 217; img.data[o + 1] = 213; img.data[o + 2] = 204; img.data[o + 3] = 255; continue; }
+      if (!valid[b]) { img.data.set(OUTSIDE, o); img.data[o + 3] = 255; continue; }
       const q = model.post && model.post.length === nx * ny ? model.post[b] : 0;
       img.data[o] = LUT[q * 3]; img.data[o + 1] = LUT[q * 3 + 1]; img.data[o + 2] = LUT[q * 3 + 2]; img.data[o + 3] = 255;
     }
@@ -519,10 +511,29 @@ function updatePanels(h) {
   if (age === null || age === undefined) setChip(ui.link, "waiting for the loop", "chip-stale");
   else if (age > STALE_AFTER_S) setChip(ui.link, `no state for ${age.toFixed(1)} s`, "chip-stale");
   else setChip(ui.link, "live", "chip-plain");
+  const silent = age !== null && age !== undefined && age > STALE_AFTER_S;
+  $("link-next").hidden = !silent;
+  if (silent) {
+    $("link-next").textContent = `No state from the loop for ${age.toFixed(0)} s. Next: check that placeloop run is ` +
+      "still running (its console says why it stopped); this page reconnects by itself. If in doubt, " +
+      "disarm: placeloop control disarm --config <your config>, or cut the hardware.";
+  }
   if (h.keepalive || !f) return;
   setChip(ui.state, "state: " + f.state, "chip-" + (["idle", "learning", "decoding"].includes(f.state) ? f.state : "idle"));
-  if (f.armed) setChip(ui.armed, "armed", "chip-armed");
-  else setChip(ui.armed, "disarmed", "chip-safe");
+  if (f.armed) setChip(ui.armed, "triggers armed", "chip-armed");
+  else setChip(ui.armed, "triggers disarmed", "chip-safe");
+  const v = h.verdict || { ready: false, reasons: [], checked: [] };
+  const passed = "ready: " + v.checked.join(", ") + " pass" +
+    (v.checked.includes("likelihood temperature") ? "" : " (the loop reports no fitted temperature)");
+  setChip(ui.verdict, v.ready ? "ready" : "not ready", v.ready ? "chip-ready" : "chip-notready");
+  ui.verdict.title = v.ready ? passed : v.reasons.join("; ");
+  $("verdict-why").textContent = v.ready ? passed : "not ready: " + v.reasons.join("; ");
+  const warn = f.armed && !v.ready;
+  $("armed-warning").hidden = !warn;
+  if (warn) {
+    $("armed-warning").textContent = "Triggers are armed but the readiness verdict fails (" + v.reasons.join("; ") +
+      "). Disarm (placeloop control disarm --config <your config>) and learn longer, unless this is a dry run.";
+  }
   ui.time.textContent = `t = ${f.t_s.toFixed(2)} s`;
 
   const occ = f.post_kind === "occupancy";
@@ -554,8 +565,10 @@ function updatePanels(h) {
   $("fig-lat-p99").textContent = fmt(st.latency_p99_ms, 2, "ms");
   $("fig-lat-now").textContent = fmt(st.added_ms, 2, "ms");
 
-  cell("h-rate-spikes", fmt(st.rate_spikes_hz, 0, "Hz"), st.rate_spikes_hz === 0);
-  cell("h-rate-tracker", fmt(st.rate_tracker_hz, 0, "Hz"), st.rate_tracker_hz === 0);
+  const rates = f.rates_per_data_s || {};
+  cell("h-rate-spikes", fmt(rates.spikes, 0, "per s of data"), rates.spikes === 0);
+  cell("h-rate-tracker", fmt(rates.tracker, 1, "per s of data"), rates.tracker === 0);
+  $("h-speed").textContent = fmt(rates.data_speed, 2, "s of data per s of wall clock");
   cell("h-bad", fmt(st.bad_messages, 0), st.bad_messages > 0);
   cell("h-gaps", fmt(st.gaps, 0), st.gaps > 0);
   cell("h-stale", fmt(st.stale_messages, 0), st.stale_messages > 0);
@@ -565,17 +578,25 @@ function updatePanels(h) {
   const trouble = st.stalled > 0 || st.bad_messages > 0 || st.gaps > 0;
   $("health-verdict").textContent = st.stalled > 0 ? "input stalled: triggers disarmed by the loop"
     : trouble ? "input problems counted; see the table" : "inputs flowing";
+  $("stall-next").hidden = !(st.stalled > 0);
+  if (st.stalled > 0) {
+    $("stall-next").textContent = "Next: find the silent input (a rate of 0 above): check the acquisition and " +
+      "tracker processes and their cables. The loop stays disarmed; once data flows again, check the picture " +
+      "here, then re-arm with placeloop control arm --config <your config>.";
+  }
 
   const r = model.readiness || {};
-  $("fig-coverage").textContent = Number.isFinite(r.coverage) ? `${(100 * r.coverage).toFixed(0)} %` : "—";
+  $("fig-coverage").textContent = Number.isFinite(r.coverage) ? `${r.coverage.toFixed(2)} of bins` : "—";
+  $("fig-temp").textContent = fmt(r.likelihood_temperature, 2);
   $("fig-units").textContent = fmt(r.n_spatial_units, 0);
   $("fig-cv").textContent = fmt(r.cv_error_cm, 1, errorUnit());
   $("fig-learn-t").textContent = fmt(r.learn_elapsed_s, 0, "s");
   $("coverage-bar").style.width = `${Math.round(100 * Math.min(1, r.coverage || 0))}%`;
   $("learn-status").textContent = f.state === "learning" ? "learning now" : (Number.isFinite(r.cv_error_cm) ? "model fitted" : "—");
   // The loop refreshes events_total once a second; the list may be ahead of it.
-  const nEvents = Math.max(st.events_total || 0, model.events.length ? model.events[model.events.length - 1].id : 0);
-  $("events-count").textContent = nEvents ? `${nEvents} in the session` : "none yet";
+  const nEvents = Math.max(st.events_total || 0, model.events.length);
+  const withheld = st.dry_run ? ` · dry run: ${st.events_withheld || 0} withheld, none sent` : "";
+  $("events-count").textContent = (nEvents ? `${nEvents} in the session` : "none yet") + withheld;
 }
 
 function addEvents(list) {
@@ -585,9 +606,12 @@ function addEvents(list) {
     const li = document.createElement("li");
     li.className = "fresh";
     const id = document.createElement("span"); id.className = "eid"; id.textContent = `#${e.id}`;
-    const pos = e.map_xy_cm ? `decoded (${e.map_xy_cm[0].toFixed(1)}, ${e.map_xy_cm[1].toFixed(1)}) cm` : "decoded —";
-    const zone = e.top_zone ? ` · highest zone mass: ${e.top_zone} ${fmt(e.top_mass, 2)}` : "";
-    li.append(id, document.createTextNode(`t = ${e.t_s.toFixed(2)} s · ${pos}${zone}`));
+    const what = document.createElement("b");
+    what.textContent = e.ripple ? `ripple rule ${e.rule}` : `rule ${e.rule} · zone ${e.zone} · mass ${fmt(e.mass, 2)}`;
+    const pos = e.ripple ? "sharp-wave ripple detected" : (e.map_xy_cm
+      ? `decoded (${e.map_xy_cm[0].toFixed(1)}, ${e.map_xy_cm[1].toFixed(1)}) cm` : "decoded —");
+    if (e.ripple) li.classList.add("ripple");
+    li.append(id, what, document.createTextNode(` · t = ${e.t_s.toFixed(2)} s · ${pos}`));
     ol.prepend(li);
   }
   while (ol.children.length > 200) ol.lastChild.remove();
@@ -598,7 +622,7 @@ function addEvents(list) {
     model.lastEventAt = performance.now();
     const panel = $("events-panel");
     panel.classList.remove("flash"); void panel.offsetWidth; panel.classList.add("flash");
-    ui.flash.textContent = `EVENT #${last.id}`;
+    ui.flash.textContent = last.ripple ? `RIPPLE EVENT #${last.id}` : `EVENT #${last.id} · ${last.rule} · ${last.zone}`;
     ui.flash.hidden = false;
     clearTimeout(ui.flashTimer);
     ui.flashTimer = setTimeout(() => { ui.flash.hidden = true; }, EVENT_FLASH_MS);
@@ -673,6 +697,9 @@ function publishHook(h) {
     events_seen: model.events.length,
     frames_received: (h.monitor || {}).frames_received,
     readiness: model.readiness || {},
+    verdict: h.keepalive ? window.__monitorState.verdict : h.verdict,
+    rates: f ? f.rates_per_data_s : null,
+    events: model.events.slice(-5),
   };
 }
 
@@ -700,15 +727,16 @@ function connect() {
 
 async function start() {
   ui.state = $("chip-state"); ui.armed = $("chip-armed"); ui.time = $("chip-time"); ui.link = $("chip-link");
+  ui.verdict = $("chip-verdict");
   ui.flash = $("event-flash");
   ui.map = setupCanvas($("map"));
   ui.err = setupCanvas($("error-trace"));
   ui.lat = setupCanvas($("latency-hist"));
   const res = await fetch("/api/environment");
   model.env = await res.json();
-  if (model.env.kind === "track") {
-    document.querySelector(".swatch-tracked").parentElement.lastChild.textContent = "tracked position (line)";
-  }
+  takeMarks(model.env.marks);
+  drawBarGradient();
+  drawLegend(model.env.marks.marks);
   model.dirty = true;
   requestAnimationFrame(render);
   connect();
