@@ -415,6 +415,9 @@ class LiveLoop:
             cv = readiness.get("median_cv_error_cm")
             if cv is not None and math.isfinite(cv):
                 stats["cv_error_cm"] = float(cv)
+            fitted = readiness.get("filter")
+            if fitted:
+                stats["likelihood_temperature"] = float(fitted["likelihood_temperature"])
         stats["added_ms"] = self.latency.added_ms.last or 0.0
         return stats
 
