@@ -3,8 +3,8 @@
 The W-maze ripple scenario (invented, simulated: replays at 10-20x running
 speed during ripples at rest, common practice) is fed message by message
 through the same ``Pipeline`` a live run and a replay drive; the content
-rules judge them beneath the bank's caps, and a second pass over the same
-messages must reproduce every content bin and event (data time only).
+rules judge them beneath the bank's caps. (That a replay of a recorded ripple
+session reproduces its digests is checked in ``test_lfp_wire.py``.)
 """
 
 from __future__ import annotations
@@ -42,7 +42,7 @@ def _run(config, until_s: float):
     return pipeline, content
 
 
-def test_content_rules_fire_in_the_pipeline_and_a_second_pass_reproduces_them():
+def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_rules():
     config = _config()
     pipeline, content = _run(config, 150.0)
     assert pipeline.state == "decoding"
@@ -52,6 +52,3 @@ def test_content_rules_fire_in_the_pipeline_and_a_second_pass_reproduces_them():
     assert all(e.rule == "towards_left" for e in events)
     assert pipeline.counters["events"] >= len(events)
     assert pipeline.ripples.status()["counters"]["content_bins"] == len(content)
-    again, content_again = _run(config, 150.0)
-    assert again.ripples.digest == pipeline.ripples.digest
-    assert [(c.t_s, len(c.events)) for c in content_again] == [(c.t_s, len(c.events)) for c in content]
