@@ -40,6 +40,8 @@ from typing import Any, NamedTuple
 import numpy as np
 from scipy import signal
 
+from rig_adapters.sim.table_keys import known_keys
+
 #: Autoregressive processes summed into the 1/f background.
 _BACKGROUND_POLES = 8
 #: A ripple's envelope is cut at this many s.d. either side of its peak.
@@ -133,12 +135,7 @@ class LfpSettings:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None) -> LfpSettings:
         """Settings from a ``[simulation.lfp]`` table; missing keys take their defaults."""
-        d = dict(d or {})
-        names = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise ValueError(f"[simulation.lfp] has unknown key(s) {unknown}; known keys are {sorted(names)}")
-        return cls(**d)
+        return cls(**known_keys(cls, d, "simulation.lfp"))
 
     @property
     def samples_per_chunk(self) -> int:

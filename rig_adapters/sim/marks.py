@@ -19,13 +19,14 @@ that a session without marks is unchanged by this module.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+
+from rig_adapters.sim.table_keys import known_keys
 
 #: Unit id of a multi-unit spike of tetrode ``g`` on the ground-truth side: ``MUA_ID - g`` (never on the wire).
 MUA_ID = -1
@@ -81,11 +82,7 @@ class MarkSimulation:
         """The table's settings, or None for an empty or missing table; ValueError names a bad key."""
         if not d:
             return None
-        names = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise ValueError(f"[simulation.marks] has unknown key(s) {unknown}; known keys are {sorted(names)}")
-        return cls(**d)
+        return cls(**known_keys(cls, d, "simulation.marks"))
 
 
 class Tetrodes:

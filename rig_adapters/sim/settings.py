@@ -19,6 +19,7 @@ import numpy as np
 
 from rig_adapters.sim.lfp import LfpSettings
 from rig_adapters.sim.marks import MarkSimulation
+from rig_adapters.sim.table_keys import known_keys
 
 
 @dataclass(frozen=True)
@@ -58,12 +59,7 @@ class ReplaySettings:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None) -> ReplaySettings:
         """Settings from a ``[simulation.replay]`` table; missing keys take their defaults."""
-        d = dict(d or {})
-        names = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise ValueError(f"[simulation.replay] has unknown key(s) {unknown}; known keys are {sorted(names)}")
-        return cls(**d)
+        return cls(**known_keys(cls, d, "simulation.replay"))
 
 
 
@@ -374,11 +370,7 @@ class SimulationSettings:
         ValueError
             For an unknown key (most often a typo) or a bad value, naming it.
         """
-        d = dict(d or {})
-        names = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise ValueError(f"[simulation] has unknown key(s) {unknown}; known keys are {sorted(names)}")
+        d = known_keys(cls, d, "simulation")
         try:
             return cls(**d)
         except ValueError as exc:

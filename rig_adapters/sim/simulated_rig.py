@@ -37,10 +37,10 @@ import zmq
 
 from decoder.config import is_loopback_endpoint, load_config
 from decoder.messages import MarkedSpikes, SpikeBatch, TrackerFrames
-from rig_adapters.wire import protocol
-from rig_adapters.wire.curve_keys import client_of
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import TRACKER_SOURCE, SimulatedSession
+from rig_adapters.wire import protocol
+from rig_adapters.wire.curve_keys import client_of
 
 log = logging.getLogger(__name__)
 

@@ -49,12 +49,24 @@ from typing import Any
 import numpy as np
 
 from decoder.messages import (
-    GroupAnnounce, Heartbeat, InputMessage, MarkedSpikes, SourceAnnounce, SpikeBatch, SyncPulse, TrackerFrames,
+    GroupAnnounce,
+    Heartbeat,
+    InputMessage,
+    MarkedSpikes,
+    SourceAnnounce,
+    SpikeBatch,
+    SyncPulse,
+    TrackerFrames,
 )
 from decoder.signals.lfp_chunk import LfpChunk
 from decoder.space.environments import Environment, HeadingRing
 from rig_adapters.sim.cells import GroundTruth, SpikeTrains, draw_cells
-from rig_adapters.sim.heading import HeadTurning, draw_heading_cells, tracked_heading, true_heading
+from rig_adapters.sim.heading import (
+    HeadTurning,
+    draw_heading_cells,
+    tracked_heading,
+    true_heading,
+)
 from rig_adapters.sim.lfp import LfpSynth
 from rig_adapters.sim.marks import Tetrodes
 from rig_adapters.sim.replay_content import ReplayMaker
