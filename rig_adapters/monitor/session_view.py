@@ -262,25 +262,27 @@ class SessionView:
 
     def add_bytes(self, payload: bytes, wall_s: float) -> None:
         """Take one frame off the state stream; a bad one is counted and logged, never raised."""
-        try:
-            frame = protocol.decode_output(payload)
-            if frame["kind"] != "state":
-                raise protocol.ProtocolError("unknown_kind", f"the state stream carried an {frame['kind']!r} frame")
-        except protocol.ProtocolError as exc:
-            self._count_bad(exc, wall_s)
-            return
-        self.add(frame, wall_s)
+        frame = self._read(payload, "state", wall_s)
+        if frame is not None:
+            self.add(frame, wall_s)
 
     def add_event_bytes(self, payload: bytes, wall_s: float) -> None:
         """Take one frame off the events stream; a bad one is counted and logged, never raised."""
+        frame = self._read(payload, "event", wall_s)
+        if frame is not None:
+            self.add_event(frame)
+
+    def _read(self, payload: bytes, kind: str, wall_s: float) -> dict | None:
+        """The frame of ``kind`` in ``payload``, or None after counting why it is not one."""
         try:
             frame = protocol.decode_output(payload)
-            if frame["kind"] != "event":
-                raise protocol.ProtocolError("unknown_kind", f"the events stream carried an {frame['kind']!r} frame")
+            if frame["kind"] != kind:
+                stream = "state stream" if kind == "state" else "events stream"
+                raise protocol.ProtocolError("unknown_kind", f"the {stream} carried an {frame['kind']!r} frame")
         except protocol.ProtocolError as exc:
             self._count_bad(exc, wall_s)
-            return
-        self.add_event(frame)
+            return None
+        return frame
 
     def _count_bad(self, exc: protocol.ProtocolError, wall_s: float) -> None:
         self.bad_frames += 1
