@@ -310,3 +310,27 @@ def test_placeloop_keys_writes_a_pair_and_never_overwrites(tmp_path):
     assert read_key(tmp_path / "bench-rig.pub").name == "bench-rig"
     again = subprocess.run(command, cwd=ROOT, env=env, capture_output=True, text=True, timeout=60)
     assert again.returncode != 0 and "already exists" in again.stderr
+
+
+def test_the_monitor_connects_with_its_keys_and_without_them_is_refused(running_loop, keys, tmp_path):
+    loop, endpoints, _, _ = running_loop
+    _, paths = keys
+    config_file = tmp_path / "arena.toml"
+    config_file.write_text(tomli_w.dumps(BASE))
+    base = [sys.executable, "-m", "rig_adapters.cli", "monitor", "--config", str(config_file),
+            "--state", f"tcp://127.0.0.1:{free_loopback_port()}", "--events", endpoints["events"]]
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    half = subprocess.run(base + ["--curve-key", str(paths["script"][0])], cwd=ROOT, env=env, capture_output=True,
+                          text=True, timeout=60)
+    assert half.returncode == 2 and "--server-key" in half.stderr
+    for own, counter in (("script", lambda: loop.links.accepted["events"]),
+                         (None, lambda: sum(loop.links.refused["events"][r] for r in ("not_curve", "handshake")))):
+        before = counter()
+        keys_args = ["--curve-key", str(paths[own][0]), "--server-key", str(paths["decoder"][1])] if own else []
+        monitor = subprocess.Popen(base + ["--http-port", str(free_loopback_port())] + keys_args, cwd=ROOT, env=env,
+                                   stderr=subprocess.PIPE, text=True)
+        try:
+            assert _wait_for(lambda: counter() > before, timeout_s=60), (own, loop.links.summary())
+        finally:
+            monitor.terminate()
+            monitor.wait(timeout=30)

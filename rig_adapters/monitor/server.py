@@ -42,13 +42,14 @@ import zmq.asyncio
 from aiohttp import WSMsgType, web
 
 from decoder.config import ConfigError, ExperimentConfig, is_loopback_host, load_config
-from rig_adapters.console import setup_logging
+from rig_adapters.console import EXIT_FILE, EXIT_USAGE, HelpFormat, setup_logging
 from rig_adapters.monitor.marks import marks_payload
 from rig_adapters.monitor.session_view import (
     SessionView,
     environment_payload,
     pack_packet,
 )
+from rig_adapters.wire.curve_keys import CurveKey, KeyFileError, as_client, read_key
 
 log = logging.getLogger(__name__)
 
@@ -89,6 +90,7 @@ WAITERS_KEY = web.AppKey("waiters", set)
 ZMQ_CTX_KEY = web.AppKey("zmq_ctx", zmq.asyncio.Context)
 SUBS_KEY = web.AppKey("subs", list)
 READERS_KEY = web.AppKey("readers", list)
+CURVE_KEY = web.AppKey("curve", object)
 
 
 def _security_headers(response: web.StreamResponse) -> None:
@@ -191,6 +193,8 @@ async def _start_reader(app: web.Application) -> None:
         sub.setsockopt(zmq.RCVHWM, STATE_RCVHWM)
         sub.setsockopt(zmq.LINGER, 0)
         sub.setsockopt(zmq.SUBSCRIBE, b"")
+        if app[CURVE_KEY] is not None:
+            as_client(sub, *app[CURVE_KEY])
         sub.connect(endpoint)
         app[SUBS_KEY].append(sub)
         app[READERS_KEY].append(asyncio.create_task(_read(app, sub, take)))
@@ -209,7 +213,8 @@ async def _stop_reader(app: web.Application) -> None:
     app[ZMQ_CTX_KEY].term()
 
 
-def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: str = "") -> web.Application:
+def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: str = "",
+               curve: tuple[CurveKey, bytes] | None = None) -> web.Application:
     """The monitor's aiohttp application, not yet serving.
 
     Parameters
@@ -220,8 +225,13 @@ def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: s
         The loop's state PUB endpoint to connect to, e.g. ``tcp://127.0.0.1:5772``.
     events_endpoint : str, default ""
         The loop's events PUB endpoint; empty for none (the page then lists no events).
+    curve : (CurveKey, bytes), optional
+        The monitor's own key pair and the loop's public key, for a loop whose
+        state and events sockets are in ``[endpoints] curve_sockets``; the
+        monitor's public key must be among the loop's ``curve_clients``.
     """
     app = web.Application()
+    app[CURVE_KEY] = curve
     app[ENVIRONMENT_KEY] = environment_payload(config)
     app[ENDPOINT_KEY] = state_endpoint
     app[EVENTS_ENDPOINT_KEY] = events_endpoint
@@ -238,7 +248,7 @@ def create_app(config: ExperimentConfig, state_endpoint: str, events_endpoint: s
 
 
 def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0.0.1", port: int = 8750,
-                events_endpoint: str | None = None) -> None:
+                events_endpoint: str | None = None, curve: tuple[CurveKey, bytes] | None = None) -> None:
     """Serve the monitor page until interrupted.
 
     Parameters
@@ -254,6 +264,8 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
         TCP port for the web server.
     events_endpoint : str or None, default None
         The loop's events PUB endpoint; None for the config's ``[endpoints] events``.
+    curve : (CurveKey, bytes), optional
+        As for :func:`create_app`.
     """
     if not 0 < port < 65536:
         raise ValueError(f"port must be 1..65535, got {port}")
@@ -264,7 +276,7 @@ def run_monitor(config_path: str | Path, state_endpoint: str, host: str = "127.0
         log.warning(message)
         print(f"WARNING: {message}", file=sys.stderr)
     events = config.endpoints.events if events_endpoint is None else events_endpoint
-    app = create_app(config, state_endpoint, events)
+    app = create_app(config, state_endpoint, events, curve)
     try:
         os.nice(MONITOR_NICENESS)
     except (AttributeError, OSError):
@@ -278,30 +290,53 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="placeloop monitor",
         description="Serve a live web page of the decoder's state stream (watch only).",
-        epilog=CAUTION,
+        epilog="examples:\n"
+               "  placeloop monitor --config my_rig.toml\n"
+               "  placeloop monitor --config my_rig.toml --http-port 8751 --state tcp://127.0.0.1:5772\n"
+               "  placeloop monitor --config my_rig.toml --curve-key keys/monitor.key --server-key keys/decoder.pub"
+               "\n\n" + CAUTION,
+        formatter_class=HelpFormat,
     )
     parser.add_argument("--config", required=True, help="experiment config (TOML) the loop runs")
     parser.add_argument("--state", default=None,
                         help="the loop's state endpoint (default: [endpoints] state of the config)")
     parser.add_argument("--events", default=None,
                         help="the loop's events endpoint (default: [endpoints] events of the config)")
-    parser.add_argument("--http-port", type=int, default=8750, help="port of the web page (default 8750)")
+    parser.add_argument("--http-port", type=int, default=8750, help="port of the web page")
     parser.add_argument("--host", default="127.0.0.1",
                         help="interface for the web page (default 127.0.0.1; another one warns)")
-    parser.add_argument("-v", "--verbose", action="count", default=0, help="more logging")
+    parser.add_argument("--curve-key", default=None, metavar="FILE",
+                        help="the monitor's .key (placeloop keys), for a loop with state and events in "
+                             "[endpoints] curve_sockets; its .pub goes in the loop's curve_clients "
+                             "(default: a plain link)")
+    parser.add_argument("--server-key", default=None, metavar="FILE",
+                        help="the decoder's .pub, with --curve-key (default: none)")
+    parser.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``placeloop monitor --config C [--state EP] [--events EP] [--http-port P] [--host H]``."""
+    """``placeloop monitor --config C [--state EP] [--events EP] [--http-port P] [--host H] [--curve-key K --server-key P]``."""
     args = build_parser().parse_args(argv)
     setup_logging(args.verbose)
+    if bool(args.curve_key) != bool(args.server_key):
+        print("error: an authenticated link needs both --curve-key (the monitor's .key) and --server-key "
+              "(the decoder's .pub)", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        curve = None
+        if args.curve_key:
+            curve = (read_key(args.curve_key, need_secret=True), read_key(args.server_key).public)
+    except KeyFileError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_FILE
     try:
         state = args.state or load_config(args.config).endpoints.state
-        run_monitor(args.config, state, host=args.host, port=args.http_port, events_endpoint=args.events)
+        run_monitor(args.config, state, host=args.host, port=args.http_port, events_endpoint=args.events,
+                    curve=curve)
     except (ConfigError, ValueError) as exc:
         print(f"error: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_USAGE
     except OSError as exc:
         print(f"error: cannot serve on {args.host}:{args.http_port}: {exc.strerror or exc}", file=sys.stderr)
         return 1

@@ -45,7 +45,7 @@ from decoder.config import (
     with_overrides,
 )
 from decoder.encoding.place_model import ModelFileError, PlaceModel
-from rig_adapters.console import CAUTION, setup_logging
+from rig_adapters.console import CAUTION, HelpFormat, setup_logging
 from rig_adapters.offline.report_data import (
     SWEEP_LABELS,
     SWEEP_TABLE_EXTRAS,
@@ -480,19 +480,25 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="placeloop report",
         description="Replay a recorded session and write one self-contained HTML report (opens with no network).",
-        epilog=CAUTION,
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="examples:\n"
+               "  placeloop report sessions/day3\n"
+               "  placeloop report sessions/day3 --sweep sweep.json --out day3.html\n"
+               "  placeloop report sessions/day3 --set decoder.step_s=0.01 --out day3_10ms.html\n\n"
+               + CAUTION,
+        formatter_class=HelpFormat,
     )
     parser.add_argument("log", help="session directory (or its session.plog)")
     parser.add_argument("--sweep", default=None, metavar="SWEEP.json",
                         help="add the trade-off plot of this sweep result (from placeloop sweep)")
     parser.add_argument("--out", default=None, metavar="PATH.html",
                         help="where to write the report (default: report_<session>.html in the current directory)")
-    parser.add_argument("--config", default=None, help="replay with this config instead of the recorded one")
-    parser.add_argument("--model", default=None, help="decode with this model file from the start")
+    parser.add_argument("--config", default=None, metavar="FILE|SCENARIO",
+                        help="replay with this config (default: the one recorded with the session)")
+    parser.add_argument("--model", default=None, metavar="MODEL",
+                        help="decode with this model file from the start (default: learn it from the session)")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="override one setting, e.g. decoder.step_s=0.01 (repeatable)")
-    parser.add_argument("-v", "--verbose", action="count", default=0)
+    parser.add_argument("-v", "--verbose", action="count", default=0, help="more logging (-v info, -vv debug)")
     return parser
 
 

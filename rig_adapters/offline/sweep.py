@@ -102,7 +102,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from decoder.config import ConfigError, parse_setting_value, parse_settings, with_overrides
-from rig_adapters.console import setup_logging
+from rig_adapters.console import HelpFormat, setup_logging
 from rig_adapters.sessions.summary import jsonable
 from rig_adapters.sessions.recorder import LOG_NAME, LogFormatError, iter_records
 from rig_adapters.sessions.replay import replay_session, session_config
@@ -614,8 +614,12 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="placeloop sweep",
         description="Replay recorded sessions over a grid of settings and mark the trade-off front.",
-        epilog="CAUTION: " + CAUTION,
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="examples:\n"
+               "  placeloop sweep sessions/day3 --set decoder.step_s=0.01,0.02 --json sweep.json\n"
+               "  placeloop sweep sessions/day3 sessions/day4 --set decoder.step_s=0.01,0.02 "
+               "--set rules.reward.min_mass=0.5,0.7 --fixed session.arm_after_fit=true --csv sweep.csv\n\n"
+               + CAUTION,
+        formatter_class=HelpFormat,
     )
     parser.add_argument("logs", nargs="+", metavar="LOG", help="session directories (or their session.plog)")
     parser.add_argument("--set", dest="grid", action="append", metavar="NAME=V1,V2,...",
@@ -630,7 +634,7 @@ def build_parser() -> argparse.ArgumentParser:
                        help="run the replays on this Dask scheduler's workers instead")
     parser.add_argument("--latency-grain-ms", type=float, default=DEFAULT_LATENCY_GRAIN_MS, metavar="MS",
                         help="compare added latency on the front in multiples of this, since it jitters from "
-                             "run to run (default %(default)s; 0 compares exactly)")
+                             "run to run (0 compares exactly)")
     parser.add_argument("--json", default=None, metavar="PATH", help="write the results as JSON here")
     parser.add_argument("--csv", default=None, metavar="PATH", help="write one line per setting here")
     parser.add_argument("-v", "--verbose", action="store_true", help="log more")
