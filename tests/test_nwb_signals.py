@@ -253,3 +253,46 @@ def test_an_lfp_series_named_wrong_lists_the_files_series(tmp_path, capsys):
     assert cli.main(["import", str(path), "--out", str(tmp_path / "s"), "--lfp", "lfp"]) == 2
     err = capsys.readouterr().err
     assert "no ElectricalSeries is named 'lfp'; the file has ['raw_probe']" in err, err
+
+
+def _units_with_amplitudes(sim, path, short_row=None):
+    """A Units table with a ragged per-spike amplitude column (pynwb: add_unit_column(index=True)), one unit per
+    simulated tetrode's first channel, each unit on its tetrode's electrode group."""
+    nwb = _file_with_position(sim, "unit-amplitudes")
+    t, g, m = (np.concatenate(sim[k]) for k in ("marks_t", "marks_g", "marks"))
+    groups = _electrodes(nwb, 2, 4)
+    nwb.add_unit_column(name="spike_amplitudes", description="peak amplitude per spike (uV)", index=True)
+    expected = {}
+    for row, gid in enumerate(np.unique(g)[:2]):
+        pick = g == gid
+        amplitudes = m[pick][:, 0].astype(np.float64)
+        if row == short_row:
+            amplitudes = amplitudes[:-1]
+        nwb.add_unit(spike_times=t[pick], spike_amplitudes=amplitudes, electrode_group=groups[row], id=row)
+        expected[groups[row].name] = (t[pick], m[pick][:, 0])
+    return _write(nwb, path), expected
+
+
+def test_per_spike_amplitudes_of_the_units_table_are_marks_of_width_one_by_electrode_group(marks_sim, tmp_path):
+    from rig_adapters.exchange.nwb_reading import read_recording
+
+    path, expected = _units_with_amplitudes(marks_sim, tmp_path / "amplitudes.nwb")
+    rec = read_recording(path, marks=True)
+    assert list(rec.marks.group_names) == sorted(expected) and rec.marks.group_channels.tolist() == [1, 1]
+    assert np.all(np.diff(rec.marks.t_s) >= 0)
+    for gid, name in enumerate(rec.marks.group_names):
+        pick = rec.marks.group_id == gid
+        t, amplitude = expected[name]
+        # As stored in the ragged column (pynwb's VectorIndex), one value per spike time, in time order.
+        np.testing.assert_array_equal(rec.marks.t_s[pick], np.sort(t))
+        np.testing.assert_array_equal(rec.marks.marks_uv[pick, 0], amplitude[np.argsort(t, kind="stable")]
+                                      .astype(np.float32))
+
+
+def test_amplitudes_that_do_not_match_the_spike_times_are_one_sentence(marks_sim, tmp_path, capsys):
+    path, _ = _units_with_amplitudes(marks_sim, tmp_path / "short.nwb", short_row=1)
+    out = tmp_path / "session"
+    assert cli.main(["import", str(path), "--out", str(out), "--marks"]) == 2
+    err = capsys.readouterr().err
+    assert "per-spike amplitudes need one value per spike" in err and err.count("\n") == 1, err
+    assert not out.exists()
