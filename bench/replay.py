@@ -207,8 +207,10 @@ def _source_name(filename: str) -> str:
     if filename.startswith("~") or filename.startswith("<"):
         return "builtins"
     for package in ("decoder", "rig_adapters"):
-        if path.parent.name == package:
-            return f"{package}/{path.name}"
+        if package in path.parts[:-1]:
+            # The last such part: a checkout's own folder may share the package's name.
+            at = len(path.parts) - 1 - path.parts[::-1].index(package)
+            return "/".join(path.parts[at:])
     for part in path.parts:
         if part in ("numpy", "numba", "scipy", "msgpack"):
             return part
