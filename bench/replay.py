@@ -10,13 +10,21 @@ run:
    process pinned to one core; the figure is recorded seconds per wall
    second (``replay_x_realtime``, target >= 200), the median of three
    replays. The baseline beside it is the time to read the same log without
-   decoding (the floor any replay pays). The time taken to make the session
-   is reported too, and so is the replay of the same session with a
+   decoding (the floor any replay pays). Each replay's CPU time is reported
+   beside its wall time (``replay_x_realtime_cpu``), with the load average:
+   on a shared machine the wall time includes other processes' share of the
+   core, and a loaded machine inflates even the CPU time (shared caches), so
+   figures are comparable only within one run. The time taken to make the
+   session is reported too, and so is the replay of the same session with a
    heartbeat from the tracker and the truth stream beside every frame
    (``replay_x_realtime_position_heartbeats``), the message mix of earlier
    versions of the simulated rig.
-2. Where a replay's time goes: cProfile over the replay of a shorter
-   session of the same rig, the top functions by own time.
+2. Where a replay's time goes, on a shorter session of the same rig: CPU
+   time by message kind (the wire reader over each kind's payloads, then the
+   pipeline fed the decoded messages in their recorded order, learning and
+   decoding apart, spike batches that closed a step apart from those that
+   did not), the decoding phase's CPU time per step; and cProfile's top
+   functions by own time.
 3. Sweep scaling: the same grid of settings (``rules.min_mass`` at four
    values, each replay costing the same) over a shorter session, on 1 and
    on 2 worker processes, alternated and repeated; ``sweep_speedup_2cores``
@@ -57,8 +65,11 @@ import tomli_w  # noqa: E402
 
 from decoder.config import parse_config  # noqa: E402
 from decoder.session.outputs import StepOutput  # noqa: E402
+from decoder.session.pipeline import Pipeline  # noqa: E402
 from rig_adapters.sessions.recorder import iter_records  # noqa: E402
-from rig_adapters.sessions.replay import replay_session  # noqa: E402
+from rig_adapters.sessions.replay import replay_session, session_config  # noqa: E402
+from rig_adapters.wire import protocol  # noqa: E402
+from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest  # noqa: E402
 from rig_adapters.sim.recording import record_simulated_session  # noqa: E402
 from rig_adapters.offline.sweep import default_workers, plan_sweep, pool_context, run_sweep  # noqa: E402
 
@@ -133,14 +144,73 @@ def profile_replay(log_dir: pathlib.Path, top: int) -> tuple[list[dict], list[di
     return rows[:top], files[:top], total
 
 
+def time_by_kind(log_dir: pathlib.Path) -> dict:
+    """CPU time of a replay's parts by message kind (µs per message), and of the decoding phase per step.
+
+    The wire reader is timed over each kind's payloads in one batch (one
+    clock read per kind); the pipeline is fed the decoded messages in their
+    recorded order (control records through ``Ingest`` as a replay does),
+    with the thread's CPU clock read around each message; the clock's own
+    cost, measured here, is taken off. Kinds are split by the session's state
+    when the message came (``learning``, ``decoding``) and spike batches by
+    whether they closed a step.
+    """
+    clock = time.thread_time
+    records = [r for r in iter_records(log_dir) if r.type == "input" and r.channel in (CHANNEL_RIG, CHANNEL_CONTROL)]
+    decoded = [protocol.decode(r.payload) if r.channel == CHANNEL_RIG else None for r in records]
+    by_kind: dict[str, list[bytes]] = {}
+    for record, msg in zip(records, decoded):
+        if msg is not None:
+            by_kind.setdefault(type(msg).__name__, []).append(record.payload)
+    wire = {}
+    for kind, payloads in by_kind.items():
+        started = clock()
+        for payload in payloads:
+            protocol.decode(payload)
+        wire[kind] = {"messages": len(payloads), "us_per_message": (clock() - started) / len(payloads) * 1e6}
+    started = clock()
+    for _ in range(10000):
+        clock()
+    clock_s = (clock() - started) / 10000
+    pipeline = Pipeline(session_config(log_dir))
+    ingest = Ingest(pipeline)
+    on_message = pipeline.on_message
+    spent: dict[str, list[float]] = {}
+    steps = 0
+    decoding_s = 0.0
+    for record, msg in zip(records, decoded):
+        state = pipeline.state
+        t0 = clock()
+        outputs = on_message(msg) if msg is not None else ingest.control_bytes(record.payload)[0]
+        took = clock() - t0 - clock_s
+        n_steps = sum(type(o) is StepOutput for o in outputs)
+        kind = "control" if msg is None else type(msg).__name__
+        if kind == "SpikeBatch" and state == "decoding":
+            kind += " (closed a step)" if n_steps else " (no step)"
+        spent.setdefault(f"{state} {kind}", []).append(took)
+        if state == "decoding":
+            steps += n_steps
+            decoding_s += took + wire.get(type(msg).__name__, {"us_per_message": 0.0})["us_per_message"] * 1e-6
+    pipe = {name: {"messages": len(v), "us_per_message": float(np.mean(v)) * 1e6,
+                   "us_p50": float(np.median(v)) * 1e6, "share": float(np.sum(v))}
+            for name, v in sorted(spent.items())}
+    total = sum(p["share"] for p in pipe.values())
+    for p in pipe.values():
+        p["share"] = p["share"] / total if total else 0.0
+    return {"wire": wire, "pipeline": pipe, "decoding_steps": steps,
+            "decoding_us_per_step": decoding_s / steps * 1e6 if steps else None, "clock_read_us": clock_s * 1e6}
+
+
 def _source_name(filename: str) -> str:
     """``decoder/session/pipeline.py`` for placeloop's files, ``numpy`` for a library, ``builtins`` for C."""
     path = pathlib.Path(filename)
     if filename.startswith("~") or filename.startswith("<"):
         return "builtins"
     for package in ("decoder", "rig_adapters"):
-        if path.parent.name == package:
-            return f"{package}/{path.name}"
+        if package in path.parts[:-1]:
+            # The last such part: a checkout's own folder may share the package's name.
+            at = len(path.parts) - 1 - path.parts[::-1].index(package)
+            return "/".join(path.parts[at:])
     for part in path.parts:
         if part in ("numpy", "numba", "scipy", "msgpack"):
             return part
@@ -148,24 +218,36 @@ def _source_name(filename: str) -> str:
 
 
 class PhaseClock:
-    """Splits a replay's wall time at its first decoded step: learning and fitting, then decoding."""
+    """Splits a replay's wall and CPU time at its first decoded step: learning and fitting, then decoding."""
 
     def __init__(self) -> None:
         self.started = time.perf_counter()
+        self.started_cpu = time.process_time()
         self.first_step_wall: float | None = None
+        self.first_step_cpu: float | None = None
         self.learning_wall_s = 0.0
         self.decoding_wall_s = 0.0
+        self.learning_cpu_s = 0.0
+        self.decoding_cpu_s = 0.0
+        self.cpu_s = 0.0
         self.decoded_data_s = 0.0
 
     def see(self, output: object) -> None:
         if self.first_step_wall is None and isinstance(output, StepOutput):
             self.first_step_wall = time.perf_counter()
+            self.first_step_cpu = time.process_time()
 
     def finish(self, result) -> None:
+        """Called as the replay returns: its CPU time ends here (the summary it built included)."""
+        ended_cpu = time.process_time()
         ended = self.started + result.wall_s
         first = self.first_step_wall if self.first_step_wall is not None else ended
+        first_cpu = self.first_step_cpu if self.first_step_cpu is not None else ended_cpu
         self.learning_wall_s = first - self.started
         self.decoding_wall_s = ended - first
+        self.learning_cpu_s = first_cpu - self.started_cpu
+        self.decoding_cpu_s = ended_cpu - first_cpu
+        self.cpu_s = ended_cpu - self.started_cpu
         self.decoded_data_s = result.data_s
 
 
@@ -217,6 +299,7 @@ def main(argv: list[str] | None = None) -> int:
         replay_session(short_log)
 
         previous = one_core()
+        load_before = os.getloadavg()[0]
         try:
             floor_s = float(np.median([read_only_s(long_log) for _ in range(3)]))
             replays, phases = [], []
@@ -227,17 +310,23 @@ def main(argv: list[str] | None = None) -> int:
                 phase.finish(result)
                 replays.append(result)
                 phases.append(phase)
-            beats_walls = []
+            beats_walls, beats_cpus = [], []
             for _ in range(args.replay_repeats):
                 print("replaying the same session with heartbeats from every source ...", file=sys.stderr)
+                started_cpu = time.process_time()
                 beats_walls.append(replay_session(beats_log).wall_s)
-            print("profiling a short replay ...", file=sys.stderr)
+                beats_cpus.append(time.process_time() - started_cpu)
+            load_after = os.getloadavg()[0]
+            print("timing a short replay by message kind, then profiling it ...", file=sys.stderr)
+            parts = time_by_kind(short_log)
             profile, profile_files, profiled_s = profile_replay(short_log, args.top)
         finally:
             if previous is not None:
                 os.sched_setaffinity(0, previous)
         wall_s = float(np.median([r.wall_s for r in replays]))
+        cpu_s = float(np.median([p.cpu_s for p in phases]))
         beats_wall_s = float(np.median(beats_walls))
+        beats_cpu_s = float(np.median(beats_cpus))
         summary = replays[0].summary
         x_realtime = session_s / wall_s
 
@@ -262,24 +351,41 @@ def main(argv: list[str] | None = None) -> int:
     print()
     print(f"session: {session_s:.0f} s simulated, {args.units} units, 2,500 bins, {log_mb:.0f} MB log; "
           f"made in {make_s:.1f} s ({session_s / make_s:.0f}x real time)")
-    print(f"{'':44s}{'wall s':>10s}{'x real time':>14s}")
+    print(f"load average {load_before:.1f} before the replays, {load_after:.1f} after")
+    print(f"{'':44s}{'wall s':>10s}{'x real time':>14s}{'CPU s':>10s}{'x (CPU)':>10s}")
     print(f"{'read the log only (floor, median of 3)':44s}{floor_s:10.2f}{session_s / floor_s:14.0f}")
-    print(f"{'replay, one core (median of ' + str(len(replays)) + ')':44s}{wall_s:10.2f}{x_realtime:14.0f}")
+    print(f"{'replay, one core (median of ' + str(len(replays)) + ')':44s}{wall_s:10.2f}{x_realtime:14.0f}"
+          f"{cpu_s:10.2f}{session_s / cpu_s:10.0f}")
     if len(replays) > 1:
-        each = ", ".join(f"{session_s / r.wall_s:.0f}x" for r in replays)
+        each = ", ".join(f"{session_s / r.wall_s:.0f}x ({session_s / p.cpu_s:.0f}x CPU)" for r, p in zip(replays, phases))
         print(f"  each replay: {each}")
     # The phases of the median replay.
     phase = sorted(phases, key=lambda p: p.learning_wall_s + p.decoding_wall_s)[len(phases) // 2]
     decode_phase = phase.decoded_data_s / phase.decoding_wall_s if phase.decoding_wall_s > 0 else None
     learn_phase = learn_s / phase.learning_wall_s if phase.learning_wall_s > 0 else None
     per_step = summary["latency_stages_ms"]["decode_per_step"]
+    n_steps = summary["decode"]["steps"]
     print(f"  learning and fitting ({learn_s:.0f} s of data): {phase.learning_wall_s:.2f} s, "
-          f"{learn_phase or 0:.0f}x real time")
+          f"{learn_phase or 0:.0f}x real time; CPU {phase.learning_cpu_s:.2f} s")
     print(f"  decoding ({phase.decoded_data_s:.0f} s of data): {phase.decoding_wall_s:.2f} s, "
-          f"{decode_phase or 0:.0f}x real time; {summary['decode']['steps']} steps, "
-          f"work on the message that closed a step p50 {per_step['p50']:.3f} ms")
+          f"{decode_phase or 0:.0f}x real time; {n_steps} steps, "
+          f"work on the message that closed a step p50 {per_step['p50']:.3f} ms; CPU {phase.decoding_cpu_s:.2f} s, "
+          f"{phase.decoding_cpu_s / max(n_steps, 1) * 1e6:.0f} us per step all-in")
     print(f"  replay / floor: {wall_s / floor_s:.1f}x the time of reading the log")
-    print(f"{'the same, heartbeats from every source':44s}{beats_wall_s:10.2f}{session_s / beats_wall_s:14.0f}")
+    print(f"{'the same, heartbeats from every source':44s}{beats_wall_s:10.2f}{session_s / beats_wall_s:14.0f}"
+          f"{beats_cpu_s:10.2f}{session_s / beats_cpu_s:10.0f}")
+    print()
+    print(f"where a replay's CPU time goes by message kind ({sweep_session_s:.0f} s session; "
+          f"clock read {parts['clock_read_us']:.2f} us, taken off):")
+    print(f"  the wire reader{'':24s}{'messages':>10s}{'us/msg':>9s}")
+    for kind, row in parts["wire"].items():
+        print(f"  {kind:38s}{row['messages']:10d}{row['us_per_message']:9.1f}")
+    print(f"  the pipeline, by state and kind{'':8s}{'messages':>10s}{'us/msg':>9s}{'p50':>9s}{'share':>8s}")
+    for kind, row in parts["pipeline"].items():
+        print(f"  {kind:38s}{row['messages']:10d}{row['us_per_message']:9.1f}{row['us_p50']:9.1f}{row['share']:8.1%}")
+    if parts["decoding_us_per_step"] is not None:
+        print(f"  decoding phase, wire reader and pipeline: {parts['decoding_us_per_step']:.0f} us per step "
+              f"({parts['decoding_steps']} steps)")
     print()
     print(f"where a replay's time goes (cProfile, {sweep_session_s:.0f} s session, {profiled_s:.1f} s profiled):")
     print(f"{'own s':>8s}{'share':>7s}{'calls':>10s}  function")
@@ -310,12 +416,19 @@ def main(argv: list[str] | None = None) -> int:
             "sweep_speedup_2cores": speedup,
             "replay_wall_s": wall_s,
             "replay_wall_s_all": [r.wall_s for r in replays],
+            "replay_x_realtime_cpu": session_s / cpu_s,
+            "replay_cpu_s": cpu_s,
+            "replay_cpu_s_all": [p.cpu_s for p in phases],
+            "load_average": [round(load_before, 2), round(load_after, 2)],
             "replay_x_realtime_position_heartbeats": session_s / beats_wall_s,
             "replay_wall_s_all_position_heartbeats": beats_walls,
+            "replay_cpu_s_all_position_heartbeats": beats_cpus,
             "decode_phase_x_realtime": decode_phase,
             "decode_phase_wall_s": phase.decoding_wall_s,
             "learn_phase_x_realtime": learn_phase,
             "learn_phase_wall_s": phase.learning_wall_s,
+            "learn_phase_cpu_s": phase.learning_cpu_s,
+            "decode_phase_cpu_s": phase.decoding_cpu_s,
             "read_only_wall_s": floor_s,
             "read_only_x_realtime": session_s / floor_s,
             "session_s": session_s,
@@ -327,6 +440,7 @@ def main(argv: list[str] | None = None) -> int:
             "decode_steps": summary["decode"]["steps"],
             "decode_per_step_ms": summary["latency_stages_ms"]["decode_per_step"],
             "median_error_cm": summary["decode"]["median_error_cm"],
+            "time_by_kind": parts,
             "profile_top": profile,
             "profile_by_file": profile_files,
             "profile_session_s": sweep_session_s,
