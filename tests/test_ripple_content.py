@@ -114,6 +114,23 @@ def test_a_sweep_towards_the_zone_has_a_negative_slope_and_strong_correlation():
     assert away.correlation[0] > 0.9 and away.slope_cm_s[0] > 0
 
 
+def test_the_event_ends_at_its_lfp_offset_not_with_a_lull_in_the_spikes():
+    content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3,
+                                      min_spikes=4)
+    t = np.concatenate([np.arange(2.0005, 2.015, 0.002), np.arange(2.0305, 2.06, 0.002)])  # bin 1 silent
+    content.take_spikes(t, np.full(t.size, 5))
+    content.begin(2.0)
+    # Until the offset is known, a bin waits for the LFP to pass its start with the event still on.
+    assert [b.index for b in content.due(2.2, lfp_s=2.01)] == [0]
+    assert [b.index for b in content.due(2.2, lfp_s=2.031)] == [1, 2]
+    assert content.active  # the silent bin (below min_spikes) left the event running
+    content.close(2.061)
+    bins = content.due(2.2)
+    # Bins that begin before the offset are decoded (bin 4 starts at 2.060); none begins at or after it.
+    assert [b.index for b in bins] == [3, 4] and not content.active
+    assert bins[-1].n_used == 3  # bins 0, 2 and 3 have spikes enough: the measures cover them
+
+
 def test_spikes_before_the_onset_and_of_unknown_units_stay_out():
     content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.03,
                                       unit_ids=np.arange(100, 120))
@@ -204,7 +221,7 @@ def test_content_rule_settings_are_checked():
 
 
 def _run_stream(seed: int = 2):
-    from decoder.session.ripples import RippleStream
+    from decoder.session.ripples import ContentOutput, RippleStream
     from decoder.session.tracking import TrackHistory
     from decoder.signals.lfp_chunk import LfpChunk
     from rig_adapters.sim.lfp import LfpSettings, LfpSynth
@@ -242,7 +259,8 @@ def _run_stream(seed: int = 2):
         stream.take_spikes(t_all[fed:upto], u_all[fed:upto])
         fed = upto
         chunk = LfpChunk("lfp", i // step, i / rate, rate, x[i:i + step].astype(np.float32))
-        ripples.extend(stream.take(chunk, end_s))
+        for out in stream.take(chunk, end_s):
+            (bins if isinstance(out, ContentOutput) else ripples).append(out)
         bins.extend(stream.content_due(end_s))
     return synth.ripples, forward, ripples, bins, stream
 
@@ -261,9 +279,16 @@ def test_the_stream_decodes_each_ripple_and_fires_on_sequences_towards_the_zone(
     n_fwd = sum(1 for r, f in zip(truth, forward) if f and r.start_s > 6.0)
     assert hits >= 0.8 * n_fwd and wrong == 0
     assert stream.counters["content_bins"] == len(bins) and stream.counters["events"] == len(fired)
-    # Bins start at each detection's onset and close in order, 15 ms apart.
+    # Bins start at each detection's onset and close in order, 15 ms apart; none begins after the
+    # event's LFP offset.
+    offsets = {r.detection.onset_s: r for r in ripples}
+    assert offsets
     for b in bins:
         assert b.content.t_s == pytest.approx(b.content.onset_s + 0.015 * (b.content.index + 1))
+    ends = {e.onset_s: e.offset_s for e in stream.events_}
+    assert len(ends) == len(offsets) and all(np.isfinite(list(ends.values())))
+    for b in bins:
+        assert b.content.t_s - 0.015 < ends.get(b.content.onset_s, np.inf)
 
 
 def test_a_second_run_of_the_same_data_reproduces_the_digest():

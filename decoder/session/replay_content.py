@@ -7,8 +7,10 @@ not follow such jumps and is left as it is; beside it, :class:`ReplayContent`
 decodes a second schedule of short non-overlapping bins of ``bin_s`` (10-20 ms
 is common practice) from the event's onset, each bin on its own with the
 uniform prior over the model's bins, with the plain Poisson likelihood, until
-``max_event_s`` after the onset or the population burst ends (a bin with
-fewer than ``min_spikes`` spikes after one with enough).
+the event's LFP offset (the ripple envelope falling back, :meth:`ReplayContent.close`)
+or ``max_event_s`` after the onset, whichever comes first. A bin is decoded
+once the spikes have passed its end and the LFP its start, so that no bin
+begins after the offset.
 
 As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
@@ -199,14 +201,14 @@ class ReplayContent:
     zone_masks : ndarray of bool, shape (n_zones, n_bins)
     distance_cm : ndarray of float64, shape (n_zones, n_bins)
     max_event_s : float
-        Bins are decoded from the onset up to this long after it.
+        Bins are decoded from the onset up to this long after it at most.
     min_spikes : int, default 1
         A bin with fewer spikes is decoded and reported but left out of the
         event's measures: with the uniform prior, an empty bin's posterior
         is the prior itself, whose mean distance to a zone would pull every
         line towards the environment's middle (bins without spikes are left
-        out of line fitting in common practice). Such a bin after one with
-        enough spikes ends the event: the population burst is over.
+        out of line fitting in common practice). The event goes on: it ends
+        with the LFP, not with a lull in the spikes.
 
     Examples
     --------
@@ -242,6 +244,7 @@ class ReplayContent:
         self._t = np.zeros(0)
         self._rows = np.zeros(0, np.int64)
         self._onset_s = math.nan
+        self._offset_s = math.inf
         self._next = 0
 
     @classmethod
@@ -276,30 +279,49 @@ class ReplayContent:
             order = np.argsort(self._t, kind="stable")
             self._t, self._rows = self._t[order], self._rows[order]
 
+    @property
+    def onset_s(self) -> float:
+        """The current event's onset (NaN when none is active)."""
+        return self._onset_s
+
     def begin(self, onset_s: float) -> None:
         """A candidate event began at ``onset_s`` (data time): its bins start there; a running event ends."""
         self._onset_s = float(onset_s)
+        self._offset_s = math.inf
         self._next = 0
         self.measures.reset()
+
+    def close(self, offset_s: float) -> None:
+        """The current event's LFP offset: no bin that begins at or after ``offset_s`` is decoded."""
+        self._offset_s = float(offset_s)
 
     def end(self) -> None:
         """No more bins for the current event."""
         self._onset_s = math.nan
 
-    def due(self, watermark_s: float) -> list[ContentBin]:
-        """Decode the current event's bins that end at or before ``watermark_s`` (the spike stream's time)."""
+    def due(self, watermark_s: float, lfp_s: float = math.inf) -> list[ContentBin]:
+        """Decode the current event's bins that are complete.
+
+        Parameters
+        ----------
+        watermark_s : float
+            The spike stream's time: a bin is decoded once it is past the bin's end.
+        lfp_s : float, default inf
+            The LFP's time: until :meth:`close` gives the offset, a bin is
+            decoded only once the LFP has passed its start with the event
+            still on (inf: do not wait for it).
+        """
         out: list[ContentBin] = []
         while self.active:
             start = self._onset_s + self._next * self.bin_s
             stop = start + self.bin_s
-            if stop > watermark_s:
-                break
-            b = self._decode(start, stop)
-            out.append(b)
-            self._next += 1
-            # The population burst is over once a bin falls short of min_spikes after one that did not.
-            if stop - self._onset_s >= self.max_event_s - 1e-9 or (b.n_spikes < self.min_spikes and b.n_used):
+            if start >= self._offset_s or stop - self._onset_s > self.max_event_s + 1e-9:
                 self.end()
+                break
+            if stop > watermark_s or (self._offset_s == math.inf and start > lfp_s):
+                break
+            out.append(self._decode(start, stop))
+            self._next += 1
         return out
 
     def _decode(self, start: float, stop: float) -> ContentBin:
