@@ -236,7 +236,8 @@ class RippleStream:
             x, y, speed = self.tracked.at_xy(b.t_s)
             xy = np.array((x, y))
             lag = max(watermark_s - b.t_s, 0.0)
-            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.correlation, xy, speed, lag))
+            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed,
+                                             lag))
             self.counters["content_bins"] += 1
             self.counters["events"] += len(events)
             record = self.events_[-1]
@@ -286,6 +287,7 @@ class RippleStream:
         """A ripple's envelope fell back: its content bins end at the offset."""
         if self.content is not None and self.content.onset_s == d.onset_s:
             self.content.close(d.offset_s)
+        if self.events_ and self.events_[-1].onset_s == d.onset_s:
             self.events_[-1].offset_s = d.offset_s
         self._hash.update(struct.pack("<dd", d.onset_s, d.offset_s))
 
