@@ -254,7 +254,7 @@ class ReplayContent:
     zone_masks : ndarray of bool, shape (n_zones, n_bins)
     distance_cm : ndarray of float64, shape (n_zones, n_bins)
     max_event_s : float
-        Bins are decoded from the onset up to this long after it at most.
+        Bins are decoded from the event's start up to this long after it at most.
     min_spikes : int, default 1
         A bin with fewer spikes is decoded and reported but left out of the
         event's measures: with the uniform prior, an empty bin's posterior
