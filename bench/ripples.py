@@ -79,7 +79,7 @@ from decoder.session.triggers import TriggerBank  # noqa: E402
 from decoder.signals._kernels import ripple_chunk, ripple_chunk_numpy  # noqa: E402
 from decoder.signals.lfp_chunk import LfpChunk  # noqa: E402
 from decoder.signals.ripple_band import group_delay_s  # noqa: E402
-from decoder.signals.ripple_detector import RippleDetector  # noqa: E402
+from decoder.signals.ripple_detector import RippleDetection, RippleDetector  # noqa: E402
 from decoder.signals.ripple_reference import offline_ripples  # noqa: E402
 from decoder.space.zones import CircleZone, zone_masks  # noqa: E402
 from rig_adapters.sim.lfp import LfpSettings, LfpSynth  # noqa: E402
@@ -327,7 +327,7 @@ def main(argv=None) -> int:
     online, reference = [], []
     for i in range(0, x.shape[0] - step + 1, step):
         chunk = x[i:i + step]
-        online.extend(d.detected_s for d in det.process(i / rate, chunk))
+        online.extend(d.detected_s for d in det.process(i / rate, chunk) if isinstance(d, RippleDetection))
         reference.extend(plain.process(i / rate, chunk))
     warm = 10.0  # both detectors are scored after the online baseline's warm-up
     keep = ref.onset_s >= warm
