@@ -9,7 +9,7 @@ import pytest
 from scipy import stats
 
 from decoder.config import ConfigError, RippleSettings, SafetyCaps, TriggerRule
-from decoder.session.replay_content import ReplayContent, SequenceMeasures, zone_distances_cm
+from decoder.session.replay_content import MAX_LEAD_S, ReplayContent, SequenceMeasures, zone_distances_cm
 from decoder.session.triggers import TriggerBank
 from decoder.space.environments import LinearTrack
 
@@ -64,6 +64,25 @@ def test_running_measures_equal_the_definitions_at_every_bin():
                          w=np.sqrt(post[:k + 1].ravel()))
         assert slope[0] == pytest.approx(fit[0], rel=1e-7)
         np.testing.assert_allclose(m.mean_mass, [post[:k + 1, -2:].sum(axis=1).mean()], rtol=1e-12)
+        # Kendall's tau-b of time and each bin's mean distance: scipy.stats.kendalltau (tau-b by default).
+        want_tau = stats.kendalltau(times[:k + 1], post[:k + 1] @ dist[0]).statistic
+        assert m.rank_correlation()[0] == pytest.approx(want_tau, abs=1e-12)
+
+
+def test_rank_correlation_counts_ties_as_tau_b_does_and_shrugs_off_one_far_bin():
+    dist = zone_distances_cm(TRACK, END)
+    m = SequenceMeasures(END, dist)
+    # One-hot posteriors: a sweep towards the zone (the last 10 cm) that ends inside it (two bins at
+    # distance 0: a tie), its fifth bin decoded at the track's far end, 90 cm from the zone.
+    bins = [8, 11, 14, 17, 0, 18, 19]
+    times = 0.0075 + 0.015 * np.arange(len(bins))
+    for t, b in zip(times, bins):
+        m.add(t, np.eye(N_BINS)[b])
+    d = dist[0][bins]
+    # scipy.stats.kendalltau's tau-b, ties included.
+    assert m.rank_correlation()[0] == pytest.approx(stats.kendalltau(times, d).statistic, abs=1e-12)
+    # The far bin pulls the least-squares correlation to -0.35; the rank correlation stays at -0.59.
+    assert m.rank_correlation()[0] < -0.55 and m.line()[0][0] > -0.4
 
 
 def test_zone_distances_follow_the_track():
@@ -112,6 +131,48 @@ def test_a_sweep_towards_the_zone_has_a_negative_slope_and_strong_correlation():
     _sweep(content, 6.0, forward=False)
     away = content.due(6.2)[-1]
     assert away.correlation[0] > 0.9 and away.slope_cm_s[0] > 0
+
+
+def test_the_event_ends_at_its_lfp_offset_not_with_a_lull_in_the_spikes():
+    content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3,
+                                      min_spikes=4)
+    t = np.concatenate([np.arange(2.0005, 2.015, 0.002), np.arange(2.0305, 2.06, 0.002)])  # bin 1 silent
+    content.take_spikes(t, np.full(t.size, 5))
+    content.begin(2.0)
+    # Until the offset is known, a bin waits for the LFP to pass its start with the event still on.
+    assert [b.index for b in content.due(2.2, lfp_s=2.01)] == [0]
+    assert [b.index for b in content.due(2.2, lfp_s=2.031)] == [1, 2]
+    assert content.active  # the silent bin (below min_spikes) left the event running
+    content.close(2.061)
+    bins = content.due(2.2)
+    # Bins that begin before the offset are decoded (bin 4 starts at 2.060); none begins at or after it.
+    assert [b.index for b in bins] == [3, 4] and not content.active
+    assert bins[-1].n_used == 3  # bins 0, 2 and 3 have spikes enough: the measures cover them
+
+
+def test_bins_start_where_the_population_burst_began_before_the_onset():
+    content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
+    background = 9.002 + 0.01 * np.arange(100)  # 100 spikes/s, evenly: 0.5 per 5 ms step on average
+    burst = np.arange(9.9805, 10.03, 0.001)  # 1 spike per ms from 19.5 ms before the onset
+    t = np.sort(np.concatenate([background[background < 9.98], burst]))
+    content.take_spikes(t, np.full(t.size, 3))
+    content.begin(10.0)
+    assert content.due(9.999) == []  # the spikes have not passed the onset: no start yet
+    (first,) = content.due(10.0)
+    # Back from the onset in 5 ms steps while each holds at least the mean count of the 0.5 s before
+    # the look back: the steps from 9.980 on are full, the one before holds background only.
+    assert first.start_s == pytest.approx(9.98) and first.onset_s == 10.0
+    assert first.t_s == pytest.approx(9.995) and first.n_spikes == 15
+    # Without a burst (the 5 ms before 9.96 hold no spike), or without half a second of history,
+    # the bins start at the onset.
+    quiet = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
+    quiet.take_spikes(background, np.full(background.size, 3))
+    quiet.begin(9.96)
+    assert quiet.due(9.98)[0].start_s == 9.96
+    young = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
+    young.take_spikes(burst, np.full(burst.size, 3))
+    young.begin(10.0)
+    assert young.due(10.015)[0].start_s == 10.0
 
 
 def test_spikes_before_the_onset_and_of_unknown_units_stay_out():
@@ -204,7 +265,7 @@ def test_content_rule_settings_are_checked():
 
 
 def _run_stream(seed: int = 2):
-    from decoder.session.ripples import RippleStream
+    from decoder.session.ripples import ContentOutput, RippleStream
     from decoder.session.tracking import TrackHistory
     from decoder.signals.lfp_chunk import LfpChunk
     from rig_adapters.sim.lfp import LfpSettings, LfpSynth
@@ -242,7 +303,8 @@ def _run_stream(seed: int = 2):
         stream.take_spikes(t_all[fed:upto], u_all[fed:upto])
         fed = upto
         chunk = LfpChunk("lfp", i // step, i / rate, rate, x[i:i + step].astype(np.float32))
-        ripples.extend(stream.take(chunk, end_s))
+        for out in stream.take(chunk, end_s):
+            (bins if isinstance(out, ContentOutput) else ripples).append(out)
         bins.extend(stream.content_due(end_s))
     return synth.ripples, forward, ripples, bins, stream
 
@@ -261,9 +323,19 @@ def test_the_stream_decodes_each_ripple_and_fires_on_sequences_towards_the_zone(
     n_fwd = sum(1 for r, f in zip(truth, forward) if f and r.start_s > 6.0)
     assert hits >= 0.8 * n_fwd and wrong == 0
     assert stream.counters["content_bins"] == len(bins) and stream.counters["events"] == len(fired)
-    # Bins start at each detection's onset and close in order, 15 ms apart.
+    # Bins start at each event's start and close in order, 15 ms apart; none begins after the
+    # event's LFP offset.
+    offsets = {r.detection.onset_s: r for r in ripples}
+    assert offsets
     for b in bins:
-        assert b.content.t_s == pytest.approx(b.content.onset_s + 0.015 * (b.content.index + 1))
+        assert b.content.t_s == pytest.approx(b.content.start_s + 0.015 * (b.content.index + 1))
+        # Bins start where the envelope rose above end_sd, at most MAX_LEAD_S before the onset.
+        assert b.content.onset_s - MAX_LEAD_S - 1e-12 <= b.content.start_s <= b.content.onset_s
+    assert any(b.content.start_s < b.content.onset_s for b in bins)
+    ends = {e.onset_s: e.offset_s for e in stream.events_}
+    assert len(ends) == len(offsets) and all(np.isfinite(list(ends.values())))
+    for b in bins:
+        assert b.content.t_s - 0.015 < ends.get(b.content.onset_s, np.inf)
 
 
 def test_a_second_run_of_the_same_data_reproduces_the_digest():

@@ -17,6 +17,8 @@ import tomli_w
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
 from decoder.session.ripples import ContentOutput
+from rig_adapters.offline.report_data import content_event_rows
+from rig_adapters.sessions.summary import jsonable
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import SimulatedSession
 
@@ -52,3 +54,16 @@ def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_
     assert all(e.rule == "towards_left" for e in events)
     assert pipeline.counters["events"] >= len(events)
     assert pipeline.ripples.status()["counters"]["content_bins"] == len(content)
+
+    # Each candidate event is listed for the summary and the report: onset, duration to its LFP
+    # offset, the content rules that fired, and when.
+    status = jsonable(pipeline.ripples.status())
+    listed = status["events"]
+    assert listed and len(listed) == len({c.content.onset_s for c in content})
+    assert sum(len(e["decided"]) for e in listed) == len(events)
+    for e in listed:
+        assert e["duration_ms"] is None or e["duration_ms"] > 0
+        assert (e["decision_ms"] is None) == (not e["decided"])
+    rows = content_event_rows({"ripples": status})
+    assert len(rows) == len(listed) and all(len(r) == 4 for r in rows)
+    assert {r[2] for r in rows} <= {"none", "towards_left"}

@@ -7,6 +7,7 @@ import pytest
 
 from decoder.messages import SpikeBatch
 from decoder.space.environments import Arena, TrackGraph
+from rig_adapters.sim.lfp import LfpSettings, LfpSynth
 from rig_adapters.sim.settings import ReplaySettings, SimulationSettings
 from rig_adapters.sim.simulation import SimulatedSession
 
@@ -14,7 +15,7 @@ MAZE = TrackGraph([[0, 0], [60, 0], [120, 0], [0, 80], [60, 80], [120, 80]],
                   [[3, 0], [0, 1], [1, 2], [4, 1], [5, 2]], bin_cm=3.0)
 BASE = dict(tick_s=0.02, mean_speed_cm_s=22.0, end_pause_s=[4.0, 10.0], n_place_cells=60,
             place_field_fwhm_cm=[15.0, 35.0], place_peak_hz=[5.0, 20.0], place_baseline_hz=0.1,
-            lfp={"ripple_rate_hz": 2.0, "ripple_duration_s": [0.06, 0.1]})
+            lfp={"ripple_rate_hz": 2.0, "ripple_duration_s": [0.06, 0.1], "rest_speed_cm_s": 4.0})
 
 
 def _session(replay: dict | None, seed: int = 4) -> tuple[SimulatedSession, np.ndarray, np.ndarray]:
@@ -90,3 +91,14 @@ def test_bad_replay_settings_say_what_is_wrong():
         SimulatedSession(Arena.circle((45, 45), 45, bin_cm=3), SimulationSettings.from_dict(dict(BASE, replay={})), 1)
     with pytest.raises(ValueError, match="off the track"):
         SimulatedSession(MAZE, SimulationSettings.from_dict(dict(BASE, replay={"goal_cm": [30, 40]})), 1)
+
+
+def test_an_lfp_that_starts_at_rest_draws_ripples_from_the_start():
+    settings = LfpSettings(rate_hz=1500.0, n_channels=2)
+    synth = LfpSynth(settings, [7, 14])
+    synth.block(np.zeros(int(1500.0 * 60)))  # a minute at rest, no run before it
+    starts = np.array([r.start_s for r in synth.ripples])
+    # A Poisson train at ripple_rate_hz (0.8 Hz) after rest_settle_s (0.5 s): about 48 ripples in the
+    # minute less their durations and gaps; the first after the settling time, none before it.
+    assert starts.size >= 25
+    assert settings.rest_settle_s <= starts[0] < 10.0

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from decoder.signals.ripple_detector import RippleDetector
+from decoder.signals.ripple_detector import RippleDetection, RippleDetector, RippleOffset
 from decoder.signals.ripple_reference import offline_ripples
 from rig_adapters.sim.lfp import LfpSettings, LfpSynth
 
@@ -27,14 +27,20 @@ def _run(det, x, chunk=3):
 
 
 @pytest.fixture(scope="module")
-def session():
+def session_and_offsets():
     synth = LfpSynth(LfpSettings(rate_hz=RATE_HZ, n_channels=8), [5, 14])
     speed = np.zeros(int(RATE_HZ * 120))
     speed[int(RATE_HZ * 30):int(RATE_HZ * 40)] = 20.0
     speed[int(RATE_HZ * 80):int(RATE_HZ * 85)] = 20.0
     x = synth.block(speed)
     det = RippleDetector(RATE_HZ, 8)
-    return x, det, _run(det, x)
+    return x, det, _run(det, x), synth.ripples
+
+
+@pytest.fixture(scope="module")
+def session(session_and_offsets):
+    x, det, out, _ = session_and_offsets
+    return x, det, [d for d in out if isinstance(d, RippleDetection)]
 
 
 def test_every_offline_event_is_found_and_none_is_completed_before_it_began(session):
@@ -60,6 +66,34 @@ def test_every_offline_event_is_found_and_none_is_completed_before_it_began(sess
     # envelope is noisier than the Hilbert one, so a single onset may precede by a few samples.
     assert np.median(lags) > 0.002
     assert min(lags) > -0.004
+
+
+def test_each_detection_ends_at_its_offset_where_the_envelope_falls_back(session_and_offsets):
+    x, det, out, ripples = session_and_offsets
+    kinds = [type(d) for d in out]
+    # Detections and offsets alternate, each offset naming the onset it ends.
+    assert kinds[0::2] == [RippleDetection] * len(kinds[0::2]) and kinds[1::2] == [RippleOffset] * len(kinds[1::2])
+    for d, o in zip(out[0::2], out[1::2]):
+        assert o.onset_s == d.onset_s and d.detected_s <= o.detected_s
+        assert d.onset_s < o.offset_s <= o.detected_s
+        assert o.peak_sd >= d.peak_sd
+    # The envelope falls back below end_sd at the offset: the causal envelope, z-scored with the
+    # detector's own baseline, recomputed here with scipy.signal.sosfilt on the whole signal and the
+    # quadrature of a central difference (as ripple_chunk_numpy does), is below end_sd there.
+    band = signal.sosfilt(det.band.sos_, x, axis=0)
+    centre = np.pi * 400.0 / RATE_HZ
+    quad = np.zeros_like(band)
+    quad[1:-1] = (band[2:] - band[:-2]) / (2 * np.sin(centre))
+    env = np.hypot(band, quad)
+    z = ((env - det.centre_) / det.spread_).mean(axis=1)
+    for o in out[1::2]:
+        k = int(round(o.offset_s * RATE_HZ))
+        # The baseline moves a little after each event; one sample of leeway either side.
+        assert z[k - 1:k + 2].min() < det.end_sd
+    # A sanity bound on invented data: most offsets fall within 30 ms of a simulated ripple's end.
+    ends = np.array([r.end_s for r in ripples])
+    near = [np.min(np.abs(ends - o.offset_s)) <= 0.03 for o in out[1::2]]
+    assert np.mean(near) >= 0.8
 
 
 def test_latency_is_onset_to_the_end_of_the_detecting_chunk(session):

@@ -59,10 +59,11 @@ class TriggerRule:
     #: The "replay_" kinds: content bins of the event ([ripples] content_bin_s) decoded before
     #: the rule may fire; each rule fires at most once per event.
     min_bins: int = 3
-    #: "replay_towards" / "replay_away": least size of the weighted correlation between time and
-    #: the decoded distance to the zone over the event's bins so far, in (0, 1]; negative
-    #: (distance shrinking) for towards, positive for away. "replay_mass" uses min_mass instead,
-    #: on the zone's posterior mass averaged over the event's bins so far.
+    #: "replay_towards" / "replay_away": least size of the rank correlation (Kendall's tau-b)
+    #: between the bins' times and their decoded distance to the zone (the posterior mean) over
+    #: the event's bins so far, in (0, 1]; negative (distance shrinking) for towards, positive
+    #: for away. A rank correlation, so that one bin decoded far off cannot swing it. "replay_mass"
+    #: uses min_mass instead, on the zone's posterior mass averaged over the event's bins so far.
     min_correlation: float = 0.6
 
     def __post_init__(self) -> None:

@@ -50,12 +50,14 @@ class RippleSettings:
     #: Length of the content bins decoded while a ripple lasts (s): short, non-overlapping, each
     #: with the uniform prior (replay content jumps); 10-20 ms is common practice.
     content_bin_s: float = 0.015
-    #: Content bins are decoded from the ripple's onset up to this long after it (s); ripples
-    #: last 30-100 ms (common practice).
+    #: Content bins are decoded from the event's start (where its population burst began, at most
+    #: 50 ms before the ripple's onset) up to this long after it (s), unless the ripple's LFP
+    #: offset (the envelope back below end_sd) ends them sooner; ripples last 30-100 ms (common
+    #: practice).
     content_max_s: float = 0.1
     #: A content bin with fewer spikes is left out of the event's measures (a nearly empty bin's
-    #: posterior is close to the uniform prior and says little of the content); such a bin after
-    #: one with enough ends the event (the population burst is over).
+    #: posterior is close to the uniform prior and says little of the content); the event goes
+    #: on, to its LFP offset.
     content_min_spikes: int = 4
 
     def __post_init__(self) -> None:

@@ -5,15 +5,33 @@ sweeps through the environment many times faster than the animal runs. The
 behavioural decoding (its filter, its movement model, its step schedule) does
 not follow such jumps and is left as it is; beside it, :class:`ReplayContent`
 decodes a second schedule of short non-overlapping bins of ``bin_s`` (10-20 ms
-is common practice) from the event's onset, each bin on its own with the
+is common practice) from the event's start, each bin on its own with the
 uniform prior over the model's bins, with the plain Poisson likelihood, until
-``max_event_s`` after the onset or the population burst ends (a bin with
-fewer than ``min_spikes`` spikes after one with enough).
+the event's LFP offset (the ripple envelope falling back, :meth:`ReplayContent.close`)
+or ``max_event_s`` after the start, whichever comes first. A bin is decoded
+once the spikes have passed its end and the LFP its start, so that no bin
+begins after the offset.
+
+The start is where the population burst began, at most ``MAX_LEAD_S`` before
+the LFP onset: the spikes before the onset are in the past when the ripple is
+detected, so the bins before it are decoded at once. Candidate events are
+commonly bounded by the multi-unit rate crossing its mean (Davidson,
+Kloosterman & Wilson 2009, from memory); here, going back from the onset in
+steps of ``BURST_STEP_S``, the burst goes on while each step holds at least
+the mean count of the ``BASELINE_S`` before it. A replay's sequence begins
+with that burst, before the ripple envelope is high enough to be detected,
+and a sequence seen from its start tells its direction sooner.
 
 As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
 
 * the posterior mass in the zone averaged over the event's bins so far;
+* Kendall's rank correlation (tau-b) between the bins' times and their
+  decoded distance to the zone (the posterior mean of the distance): the
+  measure the sequence rules judge. A rank correlation, because one bin
+  decoded far away (a bin where the resting animal's own place cells
+  outnumber the replay's spikes) changes at most ``n - 1`` of its
+  ``n (n - 1) / 2`` pairs, where it would swing a least-squares line;
 * the weighted correlation between time and the decoded distance to the zone,
   every (bin, position) pair weighted by its posterior probability, and the
   slope (cm/s) of the weighted least-squares line of distance on time: a
@@ -37,8 +55,14 @@ import numpy as np
 from decoder.inference.decoding import BayesDecoder
 from decoder.space.environments import Environment
 
-#: Spikes are held this much longer than the longest event, for the detection's latency (s).
+#: Spikes are held this much longer than the longest event and the burst's look back, for the detection's latency (s).
 _HOLD_MARGIN_S = 0.5
+#: Bins start at most this long before the LFP onset (s).
+MAX_LEAD_S = 0.05
+#: Step of the look back for the population burst's start (s).
+BURST_STEP_S = 0.005
+#: The population's mean spike rate is taken over this long before the look back (s).
+BASELINE_S = 0.5
 
 
 def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.ndarray:
@@ -96,6 +120,11 @@ class SequenceMeasures:
     ``sum w = n``, and six running sums per zone give every figure exactly
     (no stored posteriors). Positions with NaN distance (bins off the model)
     carry no posterior mass.
+
+    Kendall's tau-b of the bins' times ``t_k`` and mean distances
+    ``m_k = sum_x P(x | k) d(x)``: ``S = sum_{j<k} sign(m_k - m_j)`` (times
+    only increase) over ``sqrt(n0 (n0 - n_ties))`` with ``n0 = n (n - 1) / 2``
+    and ``n_ties`` the pairs of equal ``m``; ``S`` grows by one sum per bin.
     """
 
     def __init__(self, zone_masks: np.ndarray, distance_cm: np.ndarray) -> None:
@@ -112,6 +141,9 @@ class SequenceMeasures:
         self._t0 = math.nan
         self._st = self._stt = 0.0
         self._sd, self._sdd, self._std, self._mass = (np.zeros(n_zones) for _ in range(4))
+        self._means: list[np.ndarray] = []
+        self._concordance = np.zeros(n_zones)
+        self._ties = np.zeros(n_zones)
 
     def add(self, t_s: float, posterior: np.ndarray) -> None:
         """Take one bin: its centre time ``t_s`` and its posterior, shape (n_bins,), summing to 1."""
@@ -126,6 +158,21 @@ class SequenceMeasures:
         self._sdd += self._d2 @ posterior
         self._std += t * d
         self._mass += self._mask @ posterior
+        if self._means:
+            earlier = np.array(self._means)
+            self._concordance += np.sign(d - earlier).sum(axis=0)
+            self._ties += np.count_nonzero(d == earlier, axis=0)
+        self._means.append(d)
+
+    def rank_correlation(self) -> np.ndarray:
+        """Kendall's tau-b of the bins' times and mean distances to each zone, shape (n_zones,).
+
+        NaN before two bins, or where every mean distance is the same.
+        """
+        n0 = self.n_bins * (self.n_bins - 1) / 2
+        with np.errstate(invalid="ignore", divide="ignore"):
+            tau = np.where(n0 - self._ties > 0, self._concordance / np.sqrt(n0 * (n0 - self._ties)), np.nan)
+        return tau
 
     @property
     def mean_mass(self) -> np.ndarray:
@@ -159,7 +206,9 @@ class ContentBin(NamedTuple):
     t_s : float
         Data time of the bin's end (when it could be decoded at the earliest).
     onset_s : float
-        The event's onset.
+        The event's onset (its detection's threshold crossing; it names the event).
+    start_s : float
+        The event's start, where its first bin begins.
     index : int
         0 for the event's first bin.
     n_used : int
@@ -169,6 +218,10 @@ class ContentBin(NamedTuple):
     n_spikes : int
     mean_mass : ndarray of float64, shape (n_zones,)
         Zone mass averaged over the event's bins so far (NaN before the first one used).
+    rank_correlation : ndarray of float64, shape (n_zones,)
+        Kendall's tau-b of time and mean decoded distance to each zone over
+        the bins so far (negative: moving towards the zone); what the
+        sequence rules judge.
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
         Weighted correlation of time and distance to each zone over the bins
         so far, and the fitted line's slope (negative: moving towards the zone).
@@ -176,12 +229,14 @@ class ContentBin(NamedTuple):
 
     t_s: float
     onset_s: float
+    start_s: float
     index: int
     n_used: int
     posterior: np.ndarray
     map_xy_cm: np.ndarray
     n_spikes: int
     mean_mass: np.ndarray
+    rank_correlation: np.ndarray
     correlation: np.ndarray
     slope_cm_s: np.ndarray
 
@@ -199,14 +254,14 @@ class ReplayContent:
     zone_masks : ndarray of bool, shape (n_zones, n_bins)
     distance_cm : ndarray of float64, shape (n_zones, n_bins)
     max_event_s : float
-        Bins are decoded from the onset up to this long after it.
+        Bins are decoded from the event's start up to this long after it at most.
     min_spikes : int, default 1
         A bin with fewer spikes is decoded and reported but left out of the
         event's measures: with the uniform prior, an empty bin's posterior
         is the prior itself, whose mean distance to a zone would pull every
         line towards the environment's middle (bins without spikes are left
-        out of line fitting in common practice). Such a bin after one with
-        enough spikes ends the event: the population burst is over.
+        out of line fitting in common practice). The event goes on: it ends
+        with the LFP, not with a lull in the spikes.
 
     Examples
     --------
@@ -242,6 +297,8 @@ class ReplayContent:
         self._t = np.zeros(0)
         self._rows = np.zeros(0, np.int64)
         self._onset_s = math.nan
+        self._start_s = math.nan
+        self._offset_s = math.inf
         self._next = 0
 
     @classmethod
@@ -268,7 +325,7 @@ class ReplayContent:
         at = np.minimum(np.searchsorted(self._known_ids, ids), self._known_ids.size - 1)
         known = self._known_ids[at] == ids
         t, rows = t[known], self._row_of_known[at[known]]
-        keep_from = t[-1] - self.max_event_s - _HOLD_MARGIN_S
+        keep_from = t[-1] - self.max_event_s - MAX_LEAD_S - BASELINE_S - _HOLD_MARGIN_S
         old = int(np.searchsorted(self._t, keep_from))
         self._t = np.concatenate([self._t[old:], t])
         self._rows = np.concatenate([self._rows[old:], rows])
@@ -276,31 +333,74 @@ class ReplayContent:
             order = np.argsort(self._t, kind="stable")
             self._t, self._rows = self._t[order], self._rows[order]
 
+    @property
+    def onset_s(self) -> float:
+        """The current event's onset (NaN when none is active)."""
+        return self._onset_s
+
     def begin(self, onset_s: float) -> None:
-        """A candidate event began at ``onset_s`` (data time): its bins start there; a running event ends."""
+        """A candidate event detected with its LFP onset at ``onset_s`` (data time): a running one ends.
+
+        Its bins start where its population burst began, found once the
+        spikes have passed the onset.
+        """
         self._onset_s = float(onset_s)
+        self._start_s = math.nan
+        self._offset_s = math.inf
         self._next = 0
         self.measures.reset()
+
+    def close(self, offset_s: float) -> None:
+        """The current event's LFP offset: no bin that begins at or after ``offset_s`` is decoded."""
+        self._offset_s = float(offset_s)
 
     def end(self) -> None:
         """No more bins for the current event."""
         self._onset_s = math.nan
 
-    def due(self, watermark_s: float) -> list[ContentBin]:
-        """Decode the current event's bins that end at or before ``watermark_s`` (the spike stream's time)."""
+    def due(self, watermark_s: float, lfp_s: float = math.inf) -> list[ContentBin]:
+        """Decode the current event's bins that are complete.
+
+        Parameters
+        ----------
+        watermark_s : float
+            The spike stream's time: a bin is decoded once it is past the bin's end.
+        lfp_s : float, default inf
+            The LFP's time: until :meth:`close` gives the offset, a bin is
+            decoded only once the LFP has passed its start with the event
+            still on (inf: do not wait for it).
+        """
         out: list[ContentBin] = []
+        if self.active and math.isnan(self._start_s):
+            if watermark_s < self._onset_s:
+                return out
+            self._start_s = self._burst_start()
         while self.active:
-            start = self._onset_s + self._next * self.bin_s
+            start = self._start_s + self._next * self.bin_s
             stop = start + self.bin_s
-            if stop > watermark_s:
-                break
-            b = self._decode(start, stop)
-            out.append(b)
-            self._next += 1
-            # The population burst is over once a bin falls short of min_spikes after one that did not.
-            if stop - self._onset_s >= self.max_event_s - 1e-9 or (b.n_spikes < self.min_spikes and b.n_used):
+            if start >= self._offset_s or stop - self._start_s > self.max_event_s + 1e-9:
                 self.end()
+                break
+            if stop > watermark_s or (self._offset_s == math.inf and start > lfp_s):
+                break
+            out.append(self._decode(start, stop))
+            self._next += 1
         return out
+
+    def _burst_start(self) -> float:
+        """Where the population burst before the onset began (see the module's docstring)."""
+        onset, t = self._onset_s, self._t
+        until = onset - MAX_LEAD_S
+        since = max(until - BASELINE_S, float(t[0])) if t.size else until
+        if until - since < BASELINE_S / 2:
+            return onset  # too little history for a mean rate (the session's first moments)
+        lo, hi = np.searchsorted(t, (since, until))
+        mean_count = (hi - lo) / (until - since) * BURST_STEP_S
+        edges = onset - BURST_STEP_S * np.arange(int(round(MAX_LEAD_S / BURST_STEP_S)) + 1)
+        counts = -np.diff(np.searchsorted(t, edges))  # counts[i]: spikes in [edges[i + 1], edges[i])
+        quiet = np.flatnonzero(counts < mean_count)
+        steps = int(quiet[0]) if quiet.size else counts.size
+        return float(edges[steps])
 
     def _decode(self, start: float, stop: float) -> ContentBin:
         a, b = np.searchsorted(self._t, (start, stop), side="left")
@@ -311,5 +411,5 @@ class ReplayContent:
         if step.n_spikes >= self.min_spikes:
             m.add(0.5 * (start + stop), step.posterior)
         r, slope = m.line()
-        return ContentBin(stop, self._onset_s, self._next, m.n_bins, step.posterior, step.map_xy_cm, step.n_spikes,
-                          m.mean_mass, r, slope)
+        return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
+                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope)

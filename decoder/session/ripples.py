@@ -22,9 +22,11 @@ counted (``ripples_moving``) and reported, but judged by no rule.
 Once a model is installed (:meth:`RippleStream.install_model`), every ripple
 detected at rest also starts a candidate event whose content is decoded in
 short bins from its onset (``decoder.session.replay_content``), fed with the
-spike source's spikes (:meth:`RippleStream.take_spikes`) and closed on its
-watermark (:meth:`RippleStream.content_due`); each bin's measures are judged
-by the content rules (``TriggerBank.content``).
+spike source's spikes (:meth:`RippleStream.take_spikes`), each bin decoded
+once the spikes' watermark has passed its end and the LFP its start
+(:meth:`RippleStream.content_due`, and after each chunk); the event ends at
+its LFP offset (the envelope falling back), or at a gap in the LFP. Each
+bin's measures are judged by the content rules (``TriggerBank.content``).
 """
 
 from __future__ import annotations
@@ -33,6 +35,8 @@ import hashlib
 import logging
 import math
 import struct
+from collections import deque
+from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
@@ -44,12 +48,14 @@ from decoder.space.environments import Environment
 from decoder.session.tracking import TrackHistory
 from decoder.session.triggers import TriggerBank, TriggerEvent
 from decoder.signals.lfp_chunk import LfpChunk
-from decoder.signals.ripple_detector import RippleDetection, RippleDetector
+from decoder.signals.ripple_detector import RippleDetection, RippleDetector, RippleOffset
 
 log = logging.getLogger(__name__)
 
 #: Largest misalignment of a chunk's first sample that still counts as continuous, in samples.
 _CONTINUITY_SAMPLES = 0.5
+#: Candidate events kept for the session's summary (the newest; a few hours of rest hold thousands).
+EVENTS_KEPT = 500
 
 
 class RippleOutput(NamedTuple):
@@ -100,6 +106,38 @@ class ContentOutput(NamedTuple):
     armed: bool
 
 
+@dataclass
+class ContentEvent:
+    """One candidate event whose content was decoded: the summary's row.
+
+    Attributes
+    ----------
+    onset_s : float
+        The detection's onset (data time).
+    offset_s : float
+        Its LFP offset; NaN until it comes (or when the LFP broke off first).
+    n_bins : int
+        Content bins decoded.
+    decided : list of str
+        The content rules that fired, in order (empty: none did).
+    decision_s : float
+        Data time of the first content rule's event; NaN for none.
+    """
+
+    onset_s: float
+    offset_s: float = math.nan
+    n_bins: int = 0
+    decided: list[str] | None = None
+    decision_s: float = math.nan
+
+    def as_dict(self) -> dict:
+        """Plain JSON values: onset (s), duration and decision time after the onset (ms; None when unknown)."""
+        def ms(t: float) -> float | None:
+            return round(1e3 * (t - self.onset_s), 3) if math.isfinite(t) else None
+        return {"onset_s": self.onset_s, "duration_ms": ms(self.offset_s), "n_bins": self.n_bins,
+                "decided": list(self.decided or ()), "decision_ms": ms(self.decision_s)}
+
+
 class RippleStream:
     """The LFP source's chunks into ripple detections and ripple events.
 
@@ -116,6 +154,8 @@ class RippleStream:
     counters : dict of str to int
     detector : RippleDetector or None
         Made at the first chunk, from its rate and channel count.
+    events_ : deque of ContentEvent
+        The newest ``EVENTS_KEPT`` candidate events whose content was decoded.
     """
 
     def __init__(self, settings: RippleSettings, bank: TriggerBank, tracked: TrackHistory) -> None:
@@ -127,11 +167,12 @@ class RippleStream:
                                               "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
                                               "events", "content_bins")}
         self.content: ReplayContent | None = None
+        self.events_: deque[ContentEvent] = deque(maxlen=EVENTS_KEPT)
         self._next_s = math.nan
         self._hash = hashlib.sha256()
 
-    def take(self, chunk: LfpChunk, watermark_s: float) -> list[RippleOutput]:
-        """Check one chunk's continuity, detect, and judge each ripple.
+    def take(self, chunk: LfpChunk, watermark_s: float) -> list[RippleOutput | ContentOutput]:
+        """Check one chunk's continuity, detect, judge each ripple, and decode the content bins it completed.
 
         Parameters
         ----------
@@ -158,11 +199,16 @@ class RippleStream:
                 self.counters["lfp_gaps"] += 1
                 log.warning("LFP gap of %.1f samples before t=%.4f s: the ripple filter restarts", off, chunk.t_s)
                 det.restart()
+                self._end_content()
         self._next_s = chunk.end_s
         self.counters["lfp_chunks"] += 1
-        out = []
+        out: list[RippleOutput | ContentOutput] = []
         for d in det.process(chunk.t_s, chunk.samples_uv()):
-            out.append(self._judge(d, watermark_s))
+            if isinstance(d, RippleOffset):
+                self._close(d)
+            else:
+                out.append(self._judge(d, watermark_s))
+        out.extend(self.content_due(watermark_s))
         return out
 
     def install_model(self, model: PlaceModel, environment: Environment, zone_masks: np.ndarray,
@@ -186,13 +232,19 @@ class RippleStream:
             return []
         out = []
         h = self._hash
-        for b in content.due(watermark_s):
+        for b in content.due(watermark_s, self._next_s):
             x, y, speed = self.tracked.at_xy(b.t_s)
             xy = np.array((x, y))
             lag = max(watermark_s - b.t_s, 0.0)
-            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.correlation, xy, speed, lag))
+            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed,
+                                             lag))
             self.counters["content_bins"] += 1
             self.counters["events"] += len(events)
+            record = self.events_[-1]
+            record.n_bins += 1
+            if events and not record.decided:
+                record.decision_s = b.t_s
+            record.decided = (record.decided or []) + [ev.rule for ev in events]
             h.update(struct.pack("<di", b.t_s, b.n_spikes))
             h.update(b.posterior.tobytes())
             for ev in events:
@@ -204,6 +256,7 @@ class RippleStream:
         """The source restarted: the next chunk starts a new stream (rate and channels may differ)."""
         self.detector = None
         self._next_s = math.nan
+        self._end_content()
 
     @property
     def digest(self) -> str:
@@ -217,12 +270,26 @@ class RippleStream:
             "counters": dict(self.counters),
             "baseline_ready": bool(det is not None and det.ready_),
             "digest": self.digest,
+            "events": [e.as_dict() for e in self.events_],
         }
 
     def _refuse(self, counter: str, why: str) -> list[RippleOutput]:
         self.counters[counter] += 1
         log.warning("refused an LFP chunk from %r: %s", self.settings.source, why)
         return []
+
+    def _end_content(self) -> None:
+        """The LFP broke off: the event's offset will never come, so its bins end here."""
+        if self.content is not None:
+            self.content.end()
+
+    def _close(self, d: RippleOffset) -> None:
+        """A ripple's envelope fell back: its content bins end at the offset."""
+        if self.content is not None and self.content.onset_s == d.onset_s:
+            self.content.close(d.offset_s)
+        if self.events_ and self.events_[-1].onset_s == d.onset_s:
+            self.events_[-1].offset_s = d.offset_s
+        self._hash.update(struct.pack("<dd", d.onset_s, d.offset_s))
 
     def _judge(self, d: RippleDetection, watermark_s: float) -> RippleOutput:
         t = d.detected_s
@@ -237,6 +304,7 @@ class RippleStream:
         else:
             if self.content is not None:
                 self.content.begin(d.onset_s)
+                self.events_.append(ContentEvent(d.onset_s))
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
             events = tuple(self.bank.ripple(t, xy, speed, lag))
             self.counters["events"] += len(events)

@@ -24,7 +24,8 @@ envelope lags is a millisecond of latency):
 * onset is the first sample of a run above ``threshold_sd``; the detection is
   made once the run has lasted ``min_duration_s`` and at least
   ``min_channels`` channels are above ``channel_sd`` on their own; the event
-  ends when the mean falls below ``end_sd``.
+  ends when the mean falls below ``end_sd`` (the envelope has fallen back),
+  and a :class:`RippleOffset` says so.
 
 Each :class:`RippleDetection` carries its onset in data time and the
 latency of the detection: from the onset to the end of the chunk that
@@ -41,7 +42,7 @@ import numpy as np
 from decoder.signals._kernels import median_and_mad, ripple_chunk
 from decoder.signals.ripple_band import RippleBand
 
-__all__ = ["RippleDetection", "RippleDetector", "MAD_TO_SD"]
+__all__ = ["RippleDetection", "RippleOffset", "RippleDetector", "MAD_TO_SD"]
 
 #: The median absolute deviation of a normal distribution times this is its s.d.
 MAD_TO_SD = 1.4826
@@ -70,6 +71,28 @@ class RippleDetection:
     latency_s: float
     peak_sd: float
     n_channels_above: int
+
+
+@dataclass(frozen=True, slots=True)
+class RippleOffset:
+    """The end of a detected ripple: the channels' mean z-score fell back below ``end_sd``.
+
+    Attributes
+    ----------
+    onset_s : float
+        The onset of the detection it ends (``RippleDetection.onset_s``).
+    offset_s : float
+        Data time of the first envelope sample below ``end_sd``.
+    detected_s : float
+        Data time of the end of the chunk that held that sample.
+    peak_sd : float
+        Highest mean z-score in the event.
+    """
+
+    onset_s: float
+    offset_s: float
+    detected_s: float
+    peak_sd: float
 
 
 class RippleDetector:
@@ -176,8 +199,8 @@ class RippleDetector:
 
     # -- the one entry point ---------------------------------------------------------------
 
-    def process(self, t_s: float, samples_uv: np.ndarray) -> list[RippleDetection]:
-        """Take the next chunk; return the ripples it completed.
+    def process(self, t_s: float, samples_uv: np.ndarray) -> list[RippleDetection | RippleOffset]:
+        """Take the next chunk; return the ripples it completed and the ends of those it saw end, in time order.
 
         Parameters
         ----------
@@ -189,7 +212,9 @@ class RippleDetector:
 
         Returns
         -------
-        list of RippleDetection
+        list of RippleDetection and RippleOffset
+            Each detection is followed, in this chunk or a later one, by its
+            offset (unless a :meth:`restart` comes first).
         """
         n = samples_uv.shape[0]
         y = np.empty_like(samples_uv)
@@ -201,7 +226,7 @@ class RippleDetector:
         first = self._index
         self._index += n
         end_s = t_s + n / self.rate_hz
-        out: list[RippleDetection] = []
+        out: list[RippleDetection | RippleOffset] = []
         if self.ready_:
             out = self._events(t_s, first, z, env, end_s)
         self._learn(first, env, z)
@@ -224,8 +249,9 @@ class RippleDetector:
 
     # -- events --------------------------------------------------------------------------
 
-    def _events(self, t_s: float, first: int, z: np.ndarray, env: np.ndarray, end_s: float) -> list[RippleDetection]:
-        out: list[RippleDetection] = []
+    def _events(self, t_s: float, first: int, z: np.ndarray, env: np.ndarray,
+                end_s: float) -> list[RippleDetection | RippleOffset]:
+        out: list[RippleDetection | RippleOffset] = []
         thr = self.threshold_sd
         for i, zi in enumerate(z.tolist()):
             k = first + i
@@ -237,6 +263,7 @@ class RippleDetector:
                     self._in_event = False
                     self._run_start = -1
                     self._held_until = k + self._hold_samples
+                    out.append(RippleOffset(self._run_onset_s, t_s + (i - 1) / self.rate_hz, end_s, self._peak))
                 continue
             if zi < thr:
                 self._run_start = -1

@@ -439,3 +439,24 @@ def sweep_figures(sweep: dict) -> list[str]:
     wanted = [f for f in (sweep.get("front_figures") or SWEEP_DEFAULT_FIGURES) if f != SWEEP_X_FIGURE]
     return [f for f in wanted if any(finite_number(r["figures"].get(f)) is not None for r in rows)]
 
+
+
+# ---------------------------------------------------------------------------
+# Replay content
+
+#: Candidate events listed at most in the report's table of replay content (the newest).
+MAX_CONTENT_EVENTS = 50
+
+
+def content_event_rows(summary: dict) -> list[tuple[str, str, str, str]]:
+    """The newest candidate events of a session's summary as the report's table rows, in text.
+
+    Each row: onset (s of data time), duration (ms, onset to the LFP offset),
+    decided content (the content rules that fired, or "none") and the
+    decision time (ms after the onset). Empty when the session decoded no
+    replay content.
+    """
+    events = ((summary.get("ripples") or {}).get("events") or [])[-MAX_CONTENT_EVENTS:]
+    return [(format_figure(e.get("onset_s"), 6), format_figure(e.get("duration_ms")),
+             ", ".join(e.get("decided") or []) or "none", format_figure(e.get("decision_ms")))
+            for e in events]

@@ -186,7 +186,9 @@ class LfpSynth:
         self._rolloff = math.exp(-2 * np.pi * s.background_rolloff_hz / s.rate_hz)
         self._rolloff_state = np.zeros((1, 1 + s.n_channels))
         self._n = 0
-        self._rest_since_s = 0.0
+        # Not resting yet: the first sample below rest_speed_cm_s starts a rest, so that a session that
+        # begins at rest draws ripples from its start, not only after the first run.
+        self._rest_since_s = math.inf
         self._next_ripple_s = math.inf
         self._theta_phase = 0.0
 
