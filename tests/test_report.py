@@ -415,3 +415,16 @@ def test_the_report_opens_in_a_browser_with_the_network_blocked(damaged_with_swe
             browser.close()
     assert blocked == []
     assert len(widths) == 6 and min(widths) > 100
+
+
+def test_ripple_events_and_their_decided_content_are_a_table_only_when_there_are_any(session):
+    record = session["record"]
+    assert "replay-content" not in _Page(session["html"]).ids
+    # Events as RippleStream.status() lists them (tests/test_ripple_content_pipeline.py runs the real ones).
+    summary = {**record.summary, "ripples": {"events": [
+        {"onset_s": 312.25, "duration_ms": 64.0, "decided": ["towards_left"], "decision_ms": 33.0},
+        {"onset_s": 318.5, "duration_ms": 41.0, "decided": [], "decision_ms": None}]}}
+    html_text = report.render_report(dataclasses.replace(record, summary=summary))
+    page = _Page(html_text)
+    assert "replay-content" in page.ids and page.stack == [] and page.unbalanced == []
+    assert "towards_left" in html_text and "<td>none</td>" in html_text

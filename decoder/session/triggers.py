@@ -60,8 +60,8 @@ ripple detected after arming is always a new entry.
 Content rules (``kind = "replay_mass"``, ``"replay_towards"``, ``"replay_away"``)
 are judged by ``TriggerBank.content`` on each content bin of a ripple
 detected at rest, from the event's measures so far: the zone's posterior mass
-averaged over the bins (``>= min_mass``), or the weighted correlation of
-time and decoded distance to the zone (``<= -min_correlation`` towards,
+averaged over the bins (``>= min_mass``), or Kendall's rank correlation (tau-b) of
+bin time and decoded distance to the zone (``<= -min_correlation`` towards,
 ``>= min_correlation`` away), once the measures cover ``min_bins`` bins (bins
 with spikes), the speed bounds holding. Each event is one entry: a rule makes at most one would-be
 event per event (spent by it whether or not the caps let it through), and
@@ -493,8 +493,8 @@ class TriggerBank:
         n_used : int
             The event's bins so far that its measures cover (``min_bins`` counts these).
         mean_mass, correlation : ndarray of float64, shape (n_zones,)
-            The event's zone mass averaged over its bins so far, and the
-            weighted correlation of time and decoded distance to each zone
+            The event's zone mass averaged over its bins so far, and Kendall's
+            rank correlation (tau-b) of bin time and decoded distance to each zone
             (``decoder.session.replay_content``); NaN satisfies no rule.
         tracked_xy_cm : ndarray of float64, shape (2,)
         tracked_speed_cm_s : float

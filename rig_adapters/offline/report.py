@@ -54,6 +54,7 @@ from rig_adapters.offline.report_data import (
     LiveStamps,
     SessionRecord,
     SessionTrace,
+    content_event_rows,
     finite_number,
     format_figure,
     gather_session,
@@ -225,6 +226,21 @@ def _header_section(record: SessionRecord) -> str:
               "“False events”: events that belong to no zone entry (entries are judged on the true position "
               "where the rig recorded one, else the tracked one). Behavioural latency is in data time.</p>"
             + "</section>")
+
+
+def _content_section(record: SessionRecord) -> str:
+    """The candidate ripple events and what their content was decided to be; nothing without replay content."""
+    rows = content_event_rows(record.summary)
+    if not rows:
+        return ""
+    body = "".join("<tr>" + "".join(f'<td class="num">{html.escape(v)}</td>' if i != 2 else f"<td>{html.escape(v)}</td>"
+                                    for i, v in enumerate(row)) + "</tr>" for row in rows)
+    return ('<section id="replay-content"><h2>Ripple events and their content</h2>'
+            f'<p class="note">The newest {len(rows)} candidate events. Duration runs from the LFP onset to its '
+            "offset; the decided content names the content rules that fired (none: no rule was satisfied); the "
+            "decision time is from the onset, in data time.</p>"
+            "<table><tr><th>onset (s)</th><th>duration (ms)</th><th>decided content</th><th>decision (ms)</th></tr>"
+            f"{body}</table></section>")
 
 
 def _damage_banner(record: SessionRecord) -> str:
@@ -419,6 +435,7 @@ def render_report(record: SessionRecord, sweep: dict | None = None, sweep_path: 
         + _image(latency_histograms(record), "latency histograms per stage", "No latency samples.")
         + "</section>",
         _rate_map_section(record),
+        _content_section(record),
     ]
     if sweep is not None:
         parts.append(_sweep_section(sweep, sweep_path or Path("sweep")))
