@@ -339,20 +339,21 @@ class MarkModel:
             kept_bins.append(bins)
             kept_weights.append(weights)
         self.group_start_ = np.concatenate([[0], np.cumsum([len(b) for b in kept_bins])]).astype(np.int64)
-        self.enc_marks_ = np.zeros((int(self.group_start_[-1]), width), np.float32)
+        # Rows to a multiple of four: the kernel reads channels four at a time (the padding is 0).
+        self.enc_marks_ = np.zeros((-(-width // 4) * 4, int(self.group_start_[-1])), np.float32)
         self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int64)
         self.enc_weights_ = np.zeros(int(self.group_start_[-1]))
-        # Buckets of channel 0, cutoff_sd kernel widths wide, sorted on channel 1 within (the kernel's index).
-        bucket_w = self.cutoff_sd * self.bandwidth_uv
+        # Buckets of channel 0, a fraction of the cutoff wide, sorted on channel 1 within (the kernel's index).
+        self.bucket_uv_ = self.cutoff_sd * self.bandwidth_uv / _mark_kernels.BUCKETS_PER_CUTOFF
         self.group_min0_uv_ = np.zeros(self.n_groups)
         counts, group_bucket = [], [0]
         for g in range(self.n_groups):
             marks = kept_marks[g]
             min0 = float(marks[:, 0].min()) if len(marks) else 0.0
-            bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / bucket_w).astype(np.int64)
+            bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / self.bucket_uv_).astype(np.int64)
             order = np.lexsort((marks[:, 1 if self._channels[g] > 1 else 0], bucket))
             lo, hi = self.group_start_[g], self.group_start_[g + 1]
-            self.enc_marks_[lo:hi, : self._channels[g]] = marks[order]
+            self.enc_marks_[: self._channels[g], lo:hi] = marks[order].T
             self.enc_bins_[lo:hi] = kept_bins[g][order]
             self.enc_weights_[lo:hi] = kept_weights[g][order]
             self.group_min0_uv_[g] = min0
@@ -378,13 +379,13 @@ class MarkModel:
         """Model row of each group id; -1 for a group the model does not know."""
         return np.array([self._row.get(g, -1) for g in np.asarray(group_ids, np.int64).tolist()], np.int64)
 
-    def scratch(self) -> tuple[np.ndarray, np.ndarray]:
-        """The two scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
+    def scratch(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
         n = self.environment.n_bins
-        return np.zeros((4, n)), np.zeros((4, n), np.int64)
+        return np.zeros((4, n)), np.zeros((3, _mark_kernels.CHUNK)), np.zeros((2, n), np.int64)
 
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
-                          scratch: tuple[np.ndarray, np.ndarray], backend: str = "numba") -> int:
+                          scratch: tuple[np.ndarray, np.ndarray, np.ndarray], backend: str = "numba") -> int:
         """``sum_k log lambda(x, m_k)`` over a window's marked spikes, into ``out`` (n_bins,).
 
         Parameters
@@ -405,9 +406,10 @@ class MarkModel:
                   else _mark_kernels.mark_log_intensity_sum_numpy)
         start, targets, weights = self.spread_
         return kernel(rows, marks_uv, self.group_start_, self.group_channels_, self.enc_marks_, self.enc_bins_,
-                      self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, 1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
-                      self.bin_scale_,
-                      self.group_scale_, self.group_log_floor_, self.valid_mask_, scratch[0], scratch[1], out)
+                      self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, self.bucket_uv_,
+                      1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_,
+                      self.kernel_1d_, self.bin_scale_, self.group_scale_, self.group_log_floor_, self.valid_mask_,
+                      *scratch, out)
 
     # -- readiness -----------------------------------------------------------
 

@@ -45,23 +45,92 @@ import numpy as np
 
 
 @numba.njit(cache=True)
-def _first_at_least(keys, lo, hi, value):
-    """First index in ``lo..hi`` with ``keys[i] >= value`` (``hi`` if none); ``keys`` ascending there."""
+def _first_beyond(keys, lo, hi, value, strict):
+    """First index in ``lo..hi`` with ``keys[i] > value`` (``strict``) or ``>= value`` (``hi`` if none); ``keys`` ascending there."""
     while lo < hi:
         mid = (lo + hi) // 2
-        if keys[mid] < value:
+        if keys[mid] < value or (strict and keys[mid] == value):
             lo = mid + 1
         else:
             hi = mid
     return lo
 
 
-@numba.njit(cache=True)
+#: Candidates weighed at once: their squared distances and weights stay in
+#: the first-level cache, and the scratch does not grow with the model.
+CHUNK = 256
+
+#: The buckets of channel 0 are this many to a cutoff width: a spike visits
+#: its reach plus at most one bucket width on channel 0.
+BUCKETS_PER_CUTOFF = 4
+
+_LOG2_E = 1.0 / math.log(2.0)
+_LN_2 = math.log(2.0)
+_SQRT_HALF = math.sqrt(0.5)
+
+
+@numba.njit(cache=True, inline="always")
+def _exp_neg(x):
+    """``e^-x`` for ``0 <= x <= 700`` within ~4e-13 relative, in arithmetic the compiler vectorises.
+
+    libm's ``exp`` is one call per value; here ``e^-x = 2^-t`` with
+    ``t = x log2(e)`` split into its integer part ``n``, whose power of two
+    is built from the exponent bits, and ``g = (n + 1/2 - t) ln 2`` in
+    ``[-ln(2)/2, ln(2)/2]``, where the Taylor series of ``e^g`` to degree 10
+    is off by at most ``2^(1/2) (ln(2)/2)^11 / 11!`` (3e-13).
+    """
+    t = x * _LOG2_E
+    n = np.int32(t)
+    g = (np.float64(n) + 0.5 - t) * _LN_2
+    p = 1.0 / 3628800.0
+    p = p * g + 1.0 / 362880.0
+    p = p * g + 1.0 / 40320.0
+    p = p * g + 1.0 / 5040.0
+    p = p * g + 1.0 / 720.0
+    p = p * g + 1.0 / 120.0
+    p = p * g + 1.0 / 24.0
+    p = p * g + 1.0 / 6.0
+    p = p * g + 0.5
+    p = p * g + 1.0
+    p = p * g + 1.0
+    return np.int64((1023 - np.int64(n)) << 52).view(np.float64) * (p * _SQRT_HALF)
+
+
+@numba.njit(cache=True, fastmath={"contract"}, inline="always")
+def _distances(enc_marks, c, c0, n, mark, nch, inv_bandwidth_uv, first, d2, far):
+    """Channels ``c..c+3`` of the chunk ``c0:c0+n``: squared distances in kernel s.d. into ``d2`` (summed) and ``far`` (largest).
+
+    Overwrites on the ``first`` pass, accumulates after. A channel beyond
+    ``nch`` counts 0 (its encoding row is 0 and so is the mark taken here).
+    """
+    m0 = np.float64(mark[c])
+    m1 = np.float64(mark[c + 1]) if c + 1 < nch else 0.0
+    m2 = np.float64(mark[c + 2]) if c + 2 < nch else 0.0
+    m3 = np.float64(mark[c + 3]) if c + 3 < nch else 0.0
+    r0, r1 = enc_marks[c, c0:c0 + n], enc_marks[c + 1, c0:c0 + n]
+    r2, r3 = enc_marks[c + 2, c0:c0 + n], enc_marks[c + 3, c0:c0 + n]
+    for j in range(n):
+        z0 = (np.float64(r0[j]) - m0) * inv_bandwidth_uv
+        z1 = (np.float64(r1[j]) - m1) * inv_bandwidth_uv
+        z2 = (np.float64(r2[j]) - m2) * inv_bandwidth_uv
+        z3 = (np.float64(r3[j]) - m3) * inv_bandwidth_uv
+        z0, z1, z2, z3 = z0 * z0, z1 * z1, z2 * z2, z3 * z3
+        total = (z0 + z1) + (z2 + z3)
+        largest = max(max(z0, z1), max(z2, z3))
+        if first:
+            d2[j] = total
+            far[j] = largest
+        else:
+            d2[j] += total
+            far[j] = max(far[j], largest)
+
+
+@numba.njit(cache=True, fastmath={"contract"})
 def mark_log_intensity_sum(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
-    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
+    group_min0_uv, bucket_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
-    weights, lists, out,
+    weights, chunk, lists, out,
 ):
     """Sum over a window's marked spikes of ``log max(lambda(x, m), floor)`` at every bin, into ``out``.
 
@@ -75,9 +144,11 @@ def mark_log_intensity_sum(
         Group ``g`` owns encoding spikes ``group_start[g]:group_start[g + 1]``.
     group_channels : ndarray, shape (n_groups,), int64
         Channels of each group.
-    enc_marks : ndarray, shape (n_enc, n_channels_max), float32
-        Encoding marks in uV, in buckets of channel 0 (below) and ascending
-        on channel 1 (channel 0 for a one-channel group) within each bucket.
+    enc_marks : ndarray, shape (n_channels_max, n_enc), float32
+        Encoding marks in uV, channel by channel (each channel's marks
+        contiguous, so the distances are computed a chunk at a time in
+        vector registers), in buckets of channel 0 (below) and ascending on
+        channel 1 (channel 0 for a one-channel group) within each bucket.
     enc_bins : ndarray, shape (n_enc,), int64
         Position bin of each encoding spike.
     enc_weights : ndarray, shape (n_enc,), float64
@@ -86,10 +157,12 @@ def mark_log_intensity_sum(
         Bucket ``u`` holds encoding spikes ``bucket_start[u]:bucket_start[u + 1]``.
     group_bucket : ndarray, shape (n_groups + 1,), int64
         Group ``g`` owns buckets ``group_bucket[g]:group_bucket[g + 1]``; its
-        bucket ``u`` holds channel 0 in ``[min0 + u w, min0 + (u + 1) w)`` with
-        ``w = cutoff_sd`` kernel s.d.
+        bucket ``u`` holds channel 0 in ``[min0 + u w, min0 + (u + 1) w)``
+        with ``w = bucket_uv``.
     group_min0_uv : ndarray, shape (n_groups,), float64
         The least channel-0 mark of each group.
+    bucket_uv : float
+        Width of a bucket on channel 0, uV.
     inv_bandwidth_uv : float
         1 / the mark kernel's s.d. (uV), the same on every channel.
     cutoff_sd : float
@@ -103,7 +176,7 @@ def mark_log_intensity_sum(
         On a grid arena (``grid_nx > 0``), the smoothing is this kernel along
         each axis in turn, zero beyond the grid: the same operator as the
         spread arrays (which then go unused), applied by convolution over
-        the rows and columns the spike's source bins reach, which costs less
+        the rows and columns the spike's weights reach, which costs less
         than spreading bin by bin once a spike weighs more than a few
         hundred bins.
     bin_scale : ndarray, shape (n_bins,), float64
@@ -115,8 +188,10 @@ def mark_log_intensity_sum(
     valid : ndarray, shape (n_bins,), bool
     weights : ndarray, shape (4, n_bins), float64
         Scratch, rows 0 and 1 all 0 on entry and on return.
-    lists : ndarray, shape (4, n_bins), int64
-        Scratch; rows 2 and 3 all 0 on entry and on return.
+    chunk : ndarray, shape (3, CHUNK), float64
+        Scratch.
+    lists : ndarray, shape (2, n_bins), int64
+        Scratch; row 1 all 0 on entry and on return.
     out : ndarray, shape (n_bins,), float64
         Receives the sum (overwritten).
 
@@ -135,7 +210,8 @@ def mark_log_intensity_sum(
     width = cutoff_sd / inv_bandwidth_uv
     cut2 = cutoff_sd * cutoff_sd
     hist, acc = weights[0], weights[1]
-    sources, targets, is_source, is_target = lists[0], lists[1], lists[2], lists[3]
+    d2, far, w = chunk[0], chunk[1], chunk[2]
+    targets, is_target = lists[0], lists[1]
     weighed = 0
     multiplied = 0
     if grid_nx > 0:
@@ -143,57 +219,60 @@ def mark_log_intensity_sum(
     for s in range(k):
         g = spike_groups[s]
         nch = group_channels[g]
-        key = 1 if nch > 1 else 0
+        key = enc_marks[1 if nch > 1 else 0]
         # Only the buckets of channel 0 within reach, and in each the run within reach on the key channel.
         first, n_buckets = group_bucket[g], group_bucket[g + 1] - group_bucket[g]
-        u_lo = max(0, int(math.floor((spike_marks[s, 0] - width - group_min0_uv[g]) / width)))
-        u_hi = min(n_buckets - 1, int(math.floor((spike_marks[s, 0] + width - group_min0_uv[g]) / width)))
-        low, top = spike_marks[s, key] - width, spike_marks[s, key] + width
-        n_sources = 0
+        m0 = np.float64(spike_marks[s, 0]) - group_min0_uv[g]
+        u_lo = int(max(0.0, math.floor((m0 - width) / bucket_uv)))
+        u_hi = int(min(n_buckets - 1.0, math.floor((m0 + width) / bucket_uv)))
+        mk = np.float64(spike_marks[s, 1 if nch > 1 else 0])
+        b_lo, b_hi = n_bins, -1
         for u in range(u_lo, u_hi + 1):
             hi = bucket_start[first + u + 1]
-            i = _first_at_least(enc_marks[:, key], bucket_start[first + u], hi, low)
-            while i < hi and enc_marks[i, key] <= top:
-                d2 = 0.0
-                for c in range(nch):
-                    z = (enc_marks[i, c] - spike_marks[s, c]) * inv_bandwidth_uv
-                    d2 += z * z
-                    if z * z > cut2:
-                        d2 = -1.0
-                        break
-                if d2 >= 0.0:
-                    weighed += 1
-                    b = enc_bins[i]
-                    if is_source[b] == 0:
-                        is_source[b] = 1
-                        sources[n_sources] = b
-                        n_sources += 1
-                    hist[b] += enc_weights[i] * math.exp(-0.5 * d2)
-                i += 1
+            i0 = _first_beyond(key, bucket_start[first + u], hi, mk - width, False)
+            i1 = _first_beyond(key, i0, hi, mk + width, True)
+            for c0 in range(i0, i1, CHUNK):
+                n = min(CHUNK, i1 - c0)
+                # Four channels a pass, one sweep of the chunk each (enc_marks has the rows, zero beyond a group's).
+                for c in range(0, nch, 4):
+                    _distances(enc_marks, c, c0, n, spike_marks[s], nch, inv_bandwidth_uv, c == 0, d2, far)
+                # Every candidate gets its weight, 0 beyond the cutoff: no branch to mispredict.
+                for j in range(n):
+                    near = np.int64(far[j] <= cut2)
+                    weighed += near
+                    w[j] = _exp_neg(min(0.5 * d2[j], 700.0)) * enc_weights[c0 + j] * np.float64(near)
+                for j in range(n):
+                    b = enc_bins[c0 + j]
+                    v = w[j]
+                    hist[b] += v
+                    if v > 0.0:
+                        b_lo = min(b_lo, b)
+                        b_hi = max(b_hi, b)
+        if b_hi < 0:
+            continue
         scale = group_scale[g]
         log_floor = group_log_floor[g]
         if grid_nx > 0:
-            if n_sources:
-                _convolve_and_multiply(sources, n_sources, scale, grid_nx, kernel_1d, bin_scale, log_floor, valid,
-                                       hist, acc, weights[2], weights[3], is_source)
-                multiplied += 1
-                if multiplied == _SPIKES_PER_LOG:
-                    _flush_products(weights[3], valid, out)
-                    multiplied = 0
+            _convolve_and_multiply(b_lo // grid_nx, b_hi // grid_nx, scale, grid_nx, kernel_1d, bin_scale, log_floor,
+                                   hist, acc, weights[2], weights[3])
+            multiplied += 1
+            if multiplied == _SPIKES_PER_LOG:
+                _flush_products(weights[3], valid, out)
+                multiplied = 0
             continue
         n_targets = 0
-        for q in range(n_sources):
-            b = sources[q]
-            w = hist[b] * scale
+        for b in range(b_lo, b_hi + 1):
+            if hist[b] == 0.0:
+                continue
+            v = hist[b] * scale
             hist[b] = 0.0
-            is_source[b] = 0
             for e in range(spread_start[b], spread_start[b + 1]):
                 t = spread_bins[e]
                 if is_target[t] == 0:
                     is_target[t] = 1
                     targets[n_targets] = t
                     n_targets += 1
-                acc[t] += w * spread_weights[e]
+                acc[t] += v * spread_weights[e]
         for q in range(n_targets):
             t = targets[q]
             if valid[t]:
@@ -226,33 +305,33 @@ def _flush_products(product, valid, out):
 
 
 @numba.njit(cache=True, fastmath={"contract", "reassoc"})
-def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, log_floor, valid, hist, pad, tmp,
-                           product, is_source):
-    """The grid path of :func:`mark_log_intensity_sum` for one spike.
+def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, hist, pad, tmp, product):
+    """The grid path of :func:`mark_log_intensity_sum` for one spike whose weights lie in rows ``y0..y1``.
 
-    Smooths the spike's source weights over the rows and columns they reach
-    (each pass a sum of shifted rows, which the compiler vectorises), then
-    multiplies ``max(lambda / floor, 1)`` into ``product``; hist and the
-    flags go back to 0.
+    Smooths the spike's weights over the rows and columns they reach (each
+    pass a sum of shifted rows, which the compiler vectorises), then
+    multiplies ``max(lambda / floor, 1)`` into ``product``; hist goes back to 0.
     """
     n_bins = product.shape[0]
     ny = n_bins // nx
     r = kernel_1d.shape[0] // 2
-    floor = math.exp(log_floor)
-    y0, y1, x0, x1 = ny, -1, nx, -1
-    for q in range(n_sources):
-        b = sources[q]
-        y, x = b // nx, b % nx
-        y0, y1, x0, x1 = min(y0, y), max(y1, y), min(x0, x), max(x1, x)
+    x0, x1 = nx, -1
+    for y in range(y0, y1 + 1):
+        row = y * nx
+        for x in range(nx):
+            x0 = min(x0, x if hist[row + x] != 0.0 else nx)
+            x1 = max(x1, x if hist[row + x] != 0.0 else -1)
     xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
     ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
     width = xb - xa + 1
-    # Along x, row by row: pad holds the row's sources with r zeros each side.
+    # Along x, row by row: pad holds the row's weights with r zeros each side.
     for y in range(y0, y1 + 1):
         row = y * nx
         for i in range(width + 2 * r):
             x = xa + i - r
             pad[i] = hist[row + x] if x0 <= x <= x1 else 0.0
+        for x in range(x0, x1 + 1):
+            hist[row + x] = 0.0
         for i in range(width):
             tmp[row + xa + i] = 0.0
         for k in range(2 * r + 1):
@@ -260,6 +339,7 @@ def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, 
             for i in range(width):
                 tmp[row + xa + i] += w * pad[i + k]
     # Along y, into pad (one output row at a time), then the ratio into the product.
+    ratio_scale = scale / math.exp(log_floor)
     for y in range(ya, yb + 1):
         for i in range(width):
             pad[i] = 0.0
@@ -270,27 +350,22 @@ def _convolve_and_multiply(sources, n_sources, scale, nx, kernel_1d, bin_scale, 
                 pad[i] += w * tmp[src + i]
         row = y * nx + xa
         for i in range(width):
-            lam = pad[i] * scale * bin_scale[row + i]
-            if lam > floor:
-                product[row + i] *= lam / floor
+            product[row + i] *= max(pad[i] * ratio_scale * bin_scale[row + i], 1.0)
     for i in range(width + 2 * r):
         pad[i] = 0.0
-    for q in range(n_sources):
-        hist[sources[q]] = 0.0
-        is_source[sources[q]] = 0
 
 
 def mark_log_intensity_sum_numpy(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
-    group_min0_uv, inv_bandwidth_uv, cutoff_sd,
+    group_min0_uv, bucket_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
-    weights, lists, out,
+    weights, chunk, lists, out,
 ):
     """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
 
     The smoothing is always the spread arrays (the same operator as the
-    grid's kernel); the buckets, ``grid_nx``, ``kernel_1d``, ``weights`` and
-    ``lists`` are not needed.
+    grid's kernel); the buckets, ``grid_nx``, ``kernel_1d`` and the scratch
+    are not needed.
     """
     n_bins = out.shape[0]
     lengths = np.diff(spread_start)
@@ -300,8 +375,8 @@ def mark_log_intensity_sum_numpy(
     for s in range(spike_groups.shape[0]):
         g = spike_groups[s]
         nch = group_channels[g]
-        enc = enc_marks[group_start[g]:group_start[g + 1], :nch]
-        z = (enc - spike_marks[s, :nch]).astype(np.float64) * inv_bandwidth_uv
+        enc = enc_marks[:nch, group_start[g]:group_start[g + 1]].T
+        z = (enc.astype(np.float64) - spike_marks[s, :nch].astype(np.float64)) * inv_bandwidth_uv
         near = np.all(z * z <= cutoff_sd * cutoff_sd, axis=1)
         weighed += int(near.sum())
         d2 = (z[near] ** 2).sum(axis=1)
