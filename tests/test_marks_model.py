@@ -53,8 +53,11 @@ def test_compiled_kernel_matches_its_numpy_twin(env, by_grid):
     n_slow = model.log_intensity_sum(rows, marks, slow, scratch, backend="numpy")
     assert n_fast == n_slow
     np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-9)  # same sums in another order
-    # The scratch is left as it was found, so the next call starts clean.
-    assert not scratch[0][:2].any() and not scratch[2][1].any()
+    # The buffers that must start clean are left as they were found, so the next call starts clean: histogram,
+    # spread, product, the grid's box (weights, smoothed along x) and the spread flags.
+    clean = model.scratch()
+    for i in (0, 1, 2, 3, 4, 10):
+        np.testing.assert_array_equal(scratch[i], clean[i])
 
 
 def test_mark_density_of_one_bin_matches_sklearn_kernel_density():

@@ -379,13 +379,12 @@ class MarkModel:
         """Model row of each group id; -1 for a group the model does not know."""
         return np.array([self._row.get(g, -1) for g in np.asarray(group_ids, np.int64).tolist()], np.int64)
 
-    def scratch(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
-        n = self.environment.n_bins
-        return np.zeros((4, n)), np.zeros((3, _mark_kernels.CHUNK)), np.zeros((2, n), np.int64)
+    def scratch(self) -> tuple[np.ndarray, ...]:
+        """The scratch buffers :meth:`log_intensity_sum` needs, zeroed (after :meth:`fit`)."""
+        return _mark_kernels.make_scratch(self.environment.n_bins, self.grid_nx_, self.kernel_1d_)
 
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
-                          scratch: tuple[np.ndarray, np.ndarray, np.ndarray], backend: str = "numba") -> int:
+                          scratch: tuple[np.ndarray, ...], backend: str = "numba") -> int:
         """``sum_k log lambda(x, m_k)`` over a window's marked spikes, into ``out`` (n_bins,).
 
         Parameters
@@ -409,7 +408,7 @@ class MarkModel:
                       self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, self.bucket_uv_,
                       1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_,
                       self.kernel_1d_, self.bin_scale_, self.group_scale_, self.group_log_floor_, self.valid_mask_,
-                      *scratch, out)
+                      scratch, out)
 
     # -- readiness -----------------------------------------------------------
 

@@ -130,7 +130,7 @@ def mark_log_intensity_sum(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
     group_min0_uv, bucket_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
-    weights, chunk, lists, out,
+    scratch, out,
 ):
     """Sum over a window's marked spikes of ``log max(lambda(x, m), floor)`` at every bin, into ``out``.
 
@@ -186,12 +186,9 @@ def mark_log_intensity_sum(
     group_log_floor : ndarray, shape (n_groups,), float64
         Natural log of the least intensity of a spike of each group.
     valid : ndarray, shape (n_bins,), bool
-    weights : ndarray, shape (4, n_bins), float64
-        Scratch, rows 0 and 1 all 0 on entry and on return.
-    chunk : ndarray, shape (3, CHUNK), float64
-        Scratch.
-    lists : ndarray, shape (2, n_bins), int64
-        Scratch; row 1 all 0 on entry and on return.
+    scratch : tuple of ndarray
+        From :func:`make_scratch`, as it left it or as this left it (each
+        array a buffer of its own, so the compiler can tell them apart).
     out : ndarray, shape (n_bins,), float64
         Receives the sum (overwritten).
 
@@ -209,13 +206,11 @@ def mark_log_intensity_sum(
         out[j] = floor_sum if valid[j] else 0.0
     width = cutoff_sd / inv_bandwidth_uv
     cut2 = cutoff_sd * cutoff_sd
-    hist, acc = weights[0], weights[1]
-    d2, far, w = chunk[0], chunk[1], chunk[2]
-    targets, is_target = lists[0], lists[1]
+    hist, acc, product, box_src, box_x, box_y, d2, far, w, targets, is_target = scratch
     weighed = 0
     multiplied = 0
     if grid_nx > 0:
-        weights[3, :] = 1.0
+        product[:] = 1.0
     for s in range(k):
         g = spike_groups[s]
         nch = group_channels[g]
@@ -254,10 +249,10 @@ def mark_log_intensity_sum(
         log_floor = group_log_floor[g]
         if grid_nx > 0:
             _convolve_and_multiply(b_lo // grid_nx, b_hi // grid_nx, scale, grid_nx, kernel_1d, bin_scale, log_floor,
-                                   hist, acc, weights[2], weights[3])
+                                   hist, box_src, box_x, box_y, product)
             multiplied += 1
             if multiplied == _SPIKES_PER_LOG:
-                _flush_products(weights[3], valid, out)
+                _flush_products(product, valid, out)
                 multiplied = 0
             continue
         n_targets = 0
@@ -284,7 +279,7 @@ def mark_log_intensity_sum(
             acc[t] = 0.0
             is_target[t] = 0
     if multiplied:
-        _flush_products(weights[3], valid, out)
+        _flush_products(product, valid, out)
     return weighed
 
 
@@ -304,13 +299,60 @@ def _flush_products(product, valid, out):
         product[j] = 1.0
 
 
+def make_scratch(n_bins, grid_nx, kernel_1d):
+    """The scratch :func:`mark_log_intensity_sum` needs, zeroed: a tuple of buffers, each of its own.
+
+    Parameters
+    ----------
+    n_bins, grid_nx : int
+    kernel_1d : ndarray, shape (2 r + 1,)
+        As given to the kernel (empty off a grid).
+    """
+    r = kernel_1d.shape[0] // 2
+    ny, nx = (n_bins // grid_nx, grid_nx) if grid_nx > 0 else (0, 0)
+    row = nx + 2 * r
+    return (np.zeros(n_bins), np.zeros(n_bins), np.ones(n_bins),  # histogram, spread, product of ratios
+            np.zeros(ny * row + 1), np.zeros((ny + 4 * r) * row + 1), np.zeros(ny * row + 1),  # the grid's box
+            np.zeros(CHUNK), np.zeros(CHUNK), np.zeros(CHUNK),  # a chunk's distances, largest channel, weights
+            np.zeros(n_bins, np.int64), np.zeros(n_bins, np.int64))  # spread targets and their flags
+
+
+@numba.njit(cache=True, fastmath={"contract", "reassoc"}, inline="always")
+def _sweep(dst, src, src_at, step, taps, n):
+    """``dst[j] = sum_k taps[k] src[src_at + k step + j]`` for ``j < n``: four taps a sweep, long vector loops."""
+    out = dst[:n]
+    for j in range(n):
+        out[j] = 0.0
+    n_taps = taps.shape[0]
+    k = 0
+    while k + 4 <= n_taps:
+        w0, w1, w2, w3 = taps[k], taps[k + 1], taps[k + 2], taps[k + 3]
+        a = src_at + k * step
+        s0, s1 = src[a:a + n], src[a + step:a + step + n]
+        s2, s3 = src[a + 2 * step:a + 2 * step + n], src[a + 3 * step:a + 3 * step + n]
+        for j in range(n):
+            out[j] += (w0 * s0[j] + w1 * s1[j]) + (w2 * s2[j] + w3 * s3[j])
+        k += 4
+    while k < n_taps:
+        w0 = taps[k]
+        s0 = src[src_at + k * step:src_at + k * step + n]
+        for j in range(n):
+            out[j] += w0 * s0[j]
+        k += 1
+
+
 @numba.njit(cache=True, fastmath={"contract", "reassoc"})
-def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, hist, pad, tmp, product):
+def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, hist, box_src, box_x, box_y, product):
     """The grid path of :func:`mark_log_intensity_sum` for one spike whose weights lie in rows ``y0..y1``.
 
-    Smooths the spike's weights over the rows and columns they reach (each
-    pass a sum of shifted rows, which the compiler vectorises), then
-    multiplies ``max(lambda / floor, 1)`` into ``product``; hist goes back to 0.
+    The box of the spike's weights, widened by the kernel's reach ``r``,
+    is laid out with rows of ``width + 2 r`` (the weights at column
+    ``r + x - xa``, zeros around), so that each smoothing pass is one long
+    sweep over all rows, which the compiler vectorises: along x (the last
+    ``2 r`` columns of each row come out meaningless and are never read),
+    then along y over ``2 r`` zero rows above and below the weights. Then
+    ``max(lambda / floor, 1)`` is multiplied into ``product``. ``hist`` and
+    the box buffers go back to 0.
     """
     n_bins = product.shape[0]
     ny = n_bins // nx
@@ -324,42 +366,30 @@ def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, h
     xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
     ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
     width = xb - xa + 1
-    # Along x, row by row: pad holds the row's weights with r zeros each side.
+    stride = width + 2 * r
+    h0, h = y1 - y0 + 1, yb - ya + 1
     for y in range(y0, y1 + 1):
-        row = y * nx
-        for i in range(width + 2 * r):
-            x = xa + i - r
-            pad[i] = hist[row + x] if x0 <= x <= x1 else 0.0
+        at = (y - y0) * stride + r - xa
         for x in range(x0, x1 + 1):
-            hist[row + x] = 0.0
-        for i in range(width):
-            tmp[row + xa + i] = 0.0
-        for k in range(2 * r + 1):
-            w = kernel_1d[k]
-            for i in range(width):
-                tmp[row + xa + i] += w * pad[i + k]
-    # Along y, into pad (one output row at a time), then the ratio into the product.
+            box_src[at + x] = hist[y * nx + x]
+            hist[y * nx + x] = 0.0
+    _sweep(box_x[2 * r * stride:], box_src, 0, 1, kernel_1d, h0 * stride - 2 * r)
+    # Output row y takes source rows y - r .. y + r, at rows y - y0 + r .. y - y0 + 3 r of box_x.
+    _sweep(box_y, box_x, (ya - y0 + r) * stride, stride, kernel_1d, h * stride)
     ratio_scale = scale / math.exp(log_floor)
     for y in range(ya, yb + 1):
+        row, at = y * nx + xa, (y - ya) * stride
         for i in range(width):
-            pad[i] = 0.0
-        for k in range(max(-r, y0 - y), min(r, y1 - y) + 1):
-            w = kernel_1d[k + r]
-            src = (y + k) * nx + xa
-            for i in range(width):
-                pad[i] += w * tmp[src + i]
-        row = y * nx + xa
-        for i in range(width):
-            product[row + i] *= max(pad[i] * ratio_scale * bin_scale[row + i], 1.0)
-    for i in range(width + 2 * r):
-        pad[i] = 0.0
+            product[row + i] *= max(box_y[at + i] * ratio_scale * bin_scale[row + i], 1.0)
+    box_src[:h0 * stride] = 0.0
+    box_x[2 * r * stride:(2 * r + h0) * stride] = 0.0
 
 
 def mark_log_intensity_sum_numpy(
     spike_groups, spike_marks, group_start, group_channels, enc_marks, enc_bins, enc_weights, bucket_start, group_bucket,
     group_min0_uv, bucket_uv, inv_bandwidth_uv, cutoff_sd,
     spread_start, spread_bins, spread_weights, grid_nx, kernel_1d, bin_scale, group_scale, group_log_floor, valid,
-    weights, chunk, lists, out,
+    scratch, out,
 ):
     """Numpy twin of :func:`mark_log_intensity_sum`: every encoding spike of the group weighed, no search.
 
