@@ -341,8 +341,9 @@ class MarkModel:
         self.group_start_ = np.concatenate([[0], np.cumsum([len(b) for b in kept_bins])]).astype(np.int64)
         # Rows to a multiple of four: the kernel reads channels four at a time (the padding is 0).
         self.enc_marks_ = np.zeros((-(-width // 4) * 4, int(self.group_start_[-1])), np.float32)
-        self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int64)
-        self.enc_weights_ = np.zeros(int(self.group_start_[-1]))
+        # Bins and weights in 4 bytes each: a decoding step streams ~10 MB of encoding spikes.
+        self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int32)
+        self.enc_weights_ = np.zeros(int(self.group_start_[-1]), np.float32)
         # Buckets of channel 0, a fraction of the cutoff wide, sorted on channel 1 within (the kernel's index).
         self.bucket_uv_ = self.cutoff_sd * self.bandwidth_uv / _mark_kernels.BUCKETS_PER_CUTOFF
         self.group_min0_uv_ = np.zeros(self.n_groups)

@@ -149,10 +149,11 @@ def mark_log_intensity_sum(
         contiguous, so the distances are computed a chunk at a time in
         vector registers), in buckets of channel 0 (below) and ascending on
         channel 1 (channel 0 for a one-channel group) within each bucket.
-    enc_bins : ndarray, shape (n_enc,), int64
+    enc_bins : ndarray, shape (n_enc,), int32
         Position bin of each encoding spike.
-    enc_weights : ndarray, shape (n_enc,), float64
-        Spikes each encoding mark stands for (1, or more after :func:`merge_marks`).
+    enc_weights : ndarray, shape (n_enc,), float32
+        Spikes each encoding mark stands for (1, or more after
+        :func:`merge_marks`: whole numbers, exact in float32).
     bucket_start : ndarray, shape (n_buckets + 1,), int64
         Bucket ``u`` holds encoding spikes ``bucket_start[u]:bucket_start[u + 1]``.
     group_bucket : ndarray, shape (n_groups + 1,), int64
@@ -231,18 +232,17 @@ def mark_log_intensity_sum(
                 # Four channels a pass, one sweep of the chunk each (enc_marks has the rows, zero beyond a group's).
                 for c in range(0, nch, 4):
                     _distances(enc_marks, c, c0, n, spike_marks[s], nch, inv_bandwidth_uv, c == 0, d2, far)
-                # Every candidate gets its weight, 0 beyond the cutoff: no branch to mispredict.
+                # Every candidate gets its weight, 0 beyond the cutoff (no branch to mispredict),
+                # and the bins they reach as a vector reduction, so that the scatter below is nothing else.
                 for j in range(n):
                     near = np.int64(far[j] <= cut2)
                     weighed += near
-                    w[j] = _exp_neg(min(0.5 * d2[j], 700.0)) * enc_weights[c0 + j] * np.float64(near)
+                    w[j] = _exp_neg(min(0.5 * d2[j], 700.0)) * np.float64(enc_weights[c0 + j]) * np.float64(near)
+                    b = np.int64(enc_bins[c0 + j])
+                    b_lo = min(b_lo, b + (1 - near) * n_bins)
+                    b_hi = max(b_hi, b * near - (1 - near))
                 for j in range(n):
-                    b = enc_bins[c0 + j]
-                    v = w[j]
-                    hist[b] += v
-                    if v > 0.0:
-                        b_lo = min(b_lo, b)
-                        b_hi = max(b_hi, b)
+                    hist[enc_bins[c0 + j]] += w[j]
         if b_hi < 0:
             continue
         scale = group_scale[g]
@@ -411,7 +411,7 @@ def mark_log_intensity_sum_numpy(
         weighed += int(near.sum())
         d2 = (z[near] ** 2).sum(axis=1)
         own = slice(group_start[g], group_start[g + 1])
-        hist = np.bincount(enc_bins[own][near], weights=enc_weights[own][near] * np.exp(-0.5 * d2),
+        hist = np.bincount(enc_bins[own][near], weights=enc_weights[own][near].astype(np.float64) * np.exp(-0.5 * d2),
                            minlength=n_bins) * group_scale[g]
         lam = np.bincount(spread_bins, weights=hist[source_of] * spread_weights, minlength=n_bins) * bin_scale
         with np.errstate(divide="ignore"):
