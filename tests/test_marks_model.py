@@ -52,7 +52,10 @@ def test_compiled_kernel_matches_its_numpy_twin(env, by_grid):
     n_fast = model.log_intensity_sum(rows, marks, fast, scratch)
     n_slow = model.log_intensity_sum(rows, marks, slow, scratch, backend="numpy")
     assert n_fast == n_slow
-    np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-9)  # same sums in another order
+    # The compiled kernel weighs and smooths in float32 (the marks' own precision): ~1e-7 relative per weight and
+    # per smoothed value, up to ~1e-6 where d2 is large; our bound, 1e-6 per spike on the log scale (measured:
+    # at most 5e-6 over these 30 spikes). The twin is float64 throughout.
+    np.testing.assert_allclose(fast, slow, rtol=0, atol=1e-6 * rows.size)
     # The buffers that must start clean are left as they were found, so the next call starts clean: histogram,
     # spread, product, the grid's box (weights, smoothed along x) and the spread flags.
     clean = model.scratch()

@@ -265,18 +265,18 @@ class MarkModel:
         """
         env = self.environment
         if env.grid_shape is None:
-            return 0, np.zeros(0)
+            return 0, np.zeros(0, np.float32)
         ny, nx = env.grid_shape
         r = int(4.0 * self.smooth_cm / env.bin_cm + 0.5)  # scipy's gaussian_filter1d reach at truncate=4
         if 2 * r + 1 > min(ny, nx):
-            return 0, np.zeros(0)
+            return 0, np.zeros(0, np.float32)
         size = 2 * r + 1
         impulse = np.zeros(size * size)
         impulse[r * size + r] = 1.0
         probe = type(env).rectangle(size * env.bin_cm, size * env.bin_cm, bin_cm=env.bin_cm)
         response, _ = probe._smooth_masked(impulse[np.newaxis], np.ones(size * size), self.smooth_cm)
         centre_row = response[0].reshape(size, size)[r]
-        return nx, centre_row / math.sqrt(centre_row[r])
+        return nx, (centre_row / math.sqrt(centre_row[r])).astype(np.float32)
 
     def _norm(self, n_channels: int) -> float:
         """Peak density of the product kernel, 1 / ((2 pi)^(c/2) bandwidth^c), in uV^-c."""

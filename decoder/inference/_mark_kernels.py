@@ -15,16 +15,26 @@ seconds; a window of marked spikes ``k`` then has the log-likelihood
 first sum; ``decoder.encoding.mark_model`` builds their arrays at fit time.
 
 How the work stays bounded: each group's encoding spikes are kept in
-buckets of their first channel, ``cutoff_sd`` kernel widths wide, and
-sorted on their second channel within a bucket, so only those within
-``cutoff_sd`` widths on both are visited (at most three buckets, and a
-binary search in each), and of those only the ones within
-``cutoff_sd`` widths on every channel are weighed (the Gaussian has fallen
-below ``exp(-cutoff_sd**2 / 2)`` of its peak beyond); the weights are summed
-per position bin, spread to the neighbouring bins by the sparse smoothing
-operator, and only the bins so reached get a logarithm: elsewhere the
-intensity is the floor. Marks are float32 (amplitudes in uV carry far fewer
-than 7 significant digits); sums are float64.
+buckets of their first channel, a quarter of ``cutoff_sd`` kernel widths
+wide, and sorted on their second channel within a bucket, so only those
+within ``cutoff_sd`` widths on both are visited (a binary search in each
+bucket within reach), and of those only the ones within ``cutoff_sd``
+widths on every channel weigh anything (the Gaussian has fallen below
+``exp(-cutoff_sd**2 / 2)`` of its peak beyond). The weights are summed per
+position bin and smoothed over position (on a grid arena by the separable
+kernel over the box of bins they reach, elsewhere by the sparse smoothing
+operator), and only the bins so reached get a logarithm: elsewhere the
+intensity is the floor.
+
+How the work is fast: the visited encoding spikes are taken a chunk at a
+time, and each pass over a chunk is a branch-free loop the compiler
+vectorises: squared distances four channels a sweep (marks channel by
+channel), the weights by an exponential of our own (libm's is one call
+per value), then a plain scatter into the histogram. Distances, weights and
+the grid's smoothing are float32: amplitudes in uV carry far fewer than 7
+significant digits, and the log-likelihood of a spike moves by ~1e-6 at
+most (tests/test_marks_model.py holds the kernel to its float64 numpy
+twin); histograms, intensity ratios and sums are float64.
 
 References
 ----------
@@ -46,7 +56,10 @@ import numpy as np
 
 @numba.njit(cache=True)
 def _first_beyond(keys, lo, hi, value, strict):
-    """First index in ``lo..hi`` with ``keys[i] > value`` (``strict``) or ``>= value`` (``hi`` if none); ``keys`` ascending there."""
+    """First index in ``lo..hi`` with ``keys[i] > value`` (``strict``) or ``>= value``; ``hi`` if none.
+
+    ``keys`` ascend over ``lo..hi``.
+    """
     while lo < hi:
         mid = (lo + hi) // 2
         if keys[mid] < value or (strict and keys[mid] == value):
@@ -64,56 +77,61 @@ CHUNK = 256
 #: its reach plus at most one bucket width on channel 0.
 BUCKETS_PER_CUTOFF = 4
 
-_LOG2_E = 1.0 / math.log(2.0)
-_LN_2 = math.log(2.0)
-_SQRT_HALF = math.sqrt(0.5)
+_LOG2_E = np.float32(1.0 / math.log(2.0))
+_LN_2 = np.float32(math.log(2.0))
+_SQRT_HALF = np.float32(math.sqrt(0.5))
+_HALF = np.float32(0.5)
+_ONE = np.float32(1.0)
+_EXP_TAYLOR = tuple(np.float32(1.0 / math.factorial(k)) for k in range(7))
+
+#: Largest argument of :func:`_exp_neg`: ``e^-87`` (1.6e-38) is the least
+#: normal float32; a weight below it counts as it, far below any floor.
+EXP_ARG_MAX = 87.0
 
 
 @numba.njit(cache=True, inline="always")
 def _exp_neg(x):
-    """``e^-x`` for ``0 <= x <= 700`` within ~4e-13 relative, in arithmetic the compiler vectorises.
+    """``e^-x`` for ``0 <= x <= 87`` (float32) within ~2e-7 relative, in arithmetic the compiler vectorises.
 
     libm's ``exp`` is one call per value; here ``e^-x = 2^-t`` with
     ``t = x log2(e)`` split into its integer part ``n``, whose power of two
     is built from the exponent bits, and ``g = (n + 1/2 - t) ln 2`` in
-    ``[-ln(2)/2, ln(2)/2]``, where the Taylor series of ``e^g`` to degree 10
-    is off by at most ``2^(1/2) (ln(2)/2)^11 / 11!`` (3e-13).
+    ``[-ln(2)/2, ln(2)/2]``, where the Taylor series of ``e^g`` to degree 6
+    is off by at most ``2^(1/2) (ln(2)/2)^7 / 7!`` (1.7e-7), near float32's
+    own rounding (6e-8).
     """
     t = x * _LOG2_E
     n = np.int32(t)
-    g = (np.float64(n) + 0.5 - t) * _LN_2
-    p = 1.0 / 3628800.0
-    p = p * g + 1.0 / 362880.0
-    p = p * g + 1.0 / 40320.0
-    p = p * g + 1.0 / 5040.0
-    p = p * g + 1.0 / 720.0
-    p = p * g + 1.0 / 120.0
-    p = p * g + 1.0 / 24.0
-    p = p * g + 1.0 / 6.0
-    p = p * g + 0.5
-    p = p * g + 1.0
-    p = p * g + 1.0
-    return np.int64((1023 - np.int64(n)) << 52).view(np.float64) * (p * _SQRT_HALF)
+    g = (np.float32(n) + _HALF - t) * _LN_2
+    p = _EXP_TAYLOR[6]
+    p = p * g + _EXP_TAYLOR[5]
+    p = p * g + _EXP_TAYLOR[4]
+    p = p * g + _EXP_TAYLOR[3]
+    p = p * g + _EXP_TAYLOR[2]
+    p = p * g + _ONE
+    p = p * g + _ONE
+    return np.int32((127 - n) << 23).view(np.float32) * (p * _SQRT_HALF)
 
 
 @numba.njit(cache=True, fastmath={"contract"}, inline="always")
 def _distances(enc_marks, c, c0, n, mark, nch, inv_bandwidth_uv, first, d2, far):
-    """Channels ``c..c+3`` of the chunk ``c0:c0+n``: squared distances in kernel s.d. into ``d2`` (summed) and ``far`` (largest).
+    """Channels ``c..c+3`` of the chunk ``c0:c0+n``: squared distances in kernel s.d., summed into ``d2``, largest into ``far``.
 
     Overwrites on the ``first`` pass, accumulates after. A channel beyond
     ``nch`` counts 0 (its encoding row is 0 and so is the mark taken here).
     """
-    m0 = np.float64(mark[c])
-    m1 = np.float64(mark[c + 1]) if c + 1 < nch else 0.0
-    m2 = np.float64(mark[c + 2]) if c + 2 < nch else 0.0
-    m3 = np.float64(mark[c + 3]) if c + 3 < nch else 0.0
+    zero = np.float32(0.0)
+    m0 = mark[c]
+    m1 = mark[c + 1] if c + 1 < nch else zero
+    m2 = mark[c + 2] if c + 2 < nch else zero
+    m3 = mark[c + 3] if c + 3 < nch else zero
     r0, r1 = enc_marks[c, c0:c0 + n], enc_marks[c + 1, c0:c0 + n]
     r2, r3 = enc_marks[c + 2, c0:c0 + n], enc_marks[c + 3, c0:c0 + n]
     for j in range(n):
-        z0 = (np.float64(r0[j]) - m0) * inv_bandwidth_uv
-        z1 = (np.float64(r1[j]) - m1) * inv_bandwidth_uv
-        z2 = (np.float64(r2[j]) - m2) * inv_bandwidth_uv
-        z3 = (np.float64(r3[j]) - m3) * inv_bandwidth_uv
+        z0 = (r0[j] - m0) * inv_bandwidth_uv
+        z1 = (r1[j] - m1) * inv_bandwidth_uv
+        z2 = (r2[j] - m2) * inv_bandwidth_uv
+        z3 = (r3[j] - m3) * inv_bandwidth_uv
         z0, z1, z2, z3 = z0 * z0, z1 * z1, z2 * z2, z3 * z3
         total = (z0 + z1) + (z2 + z3)
         largest = max(max(z0, z1), max(z2, z3))
@@ -173,7 +191,7 @@ def mark_log_intensity_sum(
         ``spread_bins[spread_start[b]:spread_start[b + 1]]`` with those weights.
     grid_nx : int
         Columns of a grid arena (bins row-major), or 0.
-    kernel_1d : ndarray, shape (2 r + 1,), float64
+    kernel_1d : ndarray, shape (2 r + 1,), float32
         On a grid arena (``grid_nx > 0``), the smoothing is this kernel along
         each axis in turn, zero beyond the grid: the same operator as the
         spread arrays (which then go unused), applied by convolution over
@@ -208,6 +226,7 @@ def mark_log_intensity_sum(
     width = cutoff_sd / inv_bandwidth_uv
     cut2 = cutoff_sd * cutoff_sd
     hist, acc, product, box_src, box_x, box_y, d2, far, w, targets, is_target = scratch
+    inv_bw32, cut2_32, arg_max = np.float32(inv_bandwidth_uv), np.float32(cut2), np.float32(EXP_ARG_MAX)
     weighed = 0
     multiplied = 0
     if grid_nx > 0:
@@ -231,18 +250,18 @@ def mark_log_intensity_sum(
                 n = min(CHUNK, i1 - c0)
                 # Four channels a pass, one sweep of the chunk each (enc_marks has the rows, zero beyond a group's).
                 for c in range(0, nch, 4):
-                    _distances(enc_marks, c, c0, n, spike_marks[s], nch, inv_bandwidth_uv, c == 0, d2, far)
+                    _distances(enc_marks, c, c0, n, spike_marks[s], nch, inv_bw32, c == 0, d2, far)
                 # Every candidate gets its weight, 0 beyond the cutoff (no branch to mispredict),
                 # and the bins they reach as a vector reduction, so that the scatter below is nothing else.
                 for j in range(n):
-                    near = np.int64(far[j] <= cut2)
+                    near = np.int64(far[j] <= cut2_32)
                     weighed += near
-                    w[j] = _exp_neg(min(0.5 * d2[j], 700.0)) * np.float64(enc_weights[c0 + j]) * np.float64(near)
+                    w[j] = _exp_neg(min(_HALF * d2[j], arg_max)) * enc_weights[c0 + j] * np.float32(near)
                     b = np.int64(enc_bins[c0 + j])
                     b_lo = min(b_lo, b + (1 - near) * n_bins)
                     b_hi = max(b_hi, b * near - (1 - near))
                 for j in range(n):
-                    hist[enc_bins[c0 + j]] += w[j]
+                    hist[enc_bins[c0 + j]] += np.float64(w[j])
         if b_hi < 0:
             continue
         scale = group_scale[g]
@@ -312,8 +331,11 @@ def make_scratch(n_bins, grid_nx, kernel_1d):
     ny, nx = (n_bins // grid_nx, grid_nx) if grid_nx > 0 else (0, 0)
     row = nx + 2 * r
     return (np.zeros(n_bins), np.zeros(n_bins), np.ones(n_bins),  # histogram, spread, product of ratios
-            np.zeros(ny * row + 1), np.zeros((ny + 4 * r) * row + 1), np.zeros(ny * row + 1),  # the grid's box
-            np.zeros(CHUNK), np.zeros(CHUNK), np.zeros(CHUNK),  # a chunk's distances, largest channel, weights
+            # the grid's box: weights, smoothed along x, smoothed along both
+            np.zeros(ny * row + 1, np.float32), np.zeros((ny + 4 * r) * row + 1, np.float32),
+            np.zeros(ny * row + 1, np.float32),
+            # a chunk's squared distances, largest channel term, weights
+            np.zeros(CHUNK, np.float32), np.zeros(CHUNK, np.float32), np.zeros(CHUNK, np.float32),
             np.zeros(n_bins, np.int64), np.zeros(n_bins, np.int64))  # spread targets and their flags
 
 
@@ -322,7 +344,7 @@ def _sweep(dst, src, src_at, step, taps, n):
     """``dst[j] = sum_k taps[k] src[src_at + k step + j]`` for ``j < n``: four taps a sweep, long vector loops."""
     out = dst[:n]
     for j in range(n):
-        out[j] = 0.0
+        out[j] = np.float32(0.0)
     n_taps = taps.shape[0]
     k = 0
     while k + 4 <= n_taps:
@@ -371,7 +393,7 @@ def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, h
     for y in range(y0, y1 + 1):
         at = (y - y0) * stride + r - xa
         for x in range(x0, x1 + 1):
-            box_src[at + x] = hist[y * nx + x]
+            box_src[at + x] = np.float32(hist[y * nx + x])
             hist[y * nx + x] = 0.0
     _sweep(box_x[2 * r * stride:], box_src, 0, 1, kernel_1d, h0 * stride - 2 * r)
     # Output row y takes source rows y - r .. y + r, at rows y - y0 + r .. y - y0 + 3 r of box_x.
