@@ -167,6 +167,30 @@ def test_mark_model_file_round_trip(tmp_path):
     np.testing.assert_array_equal(again.ground_total_hz_, model.ground_total_hz_)
 
 
+def test_a_saved_and_loaded_model_keeps_the_sample_of_an_uninterrupted_session(tmp_path):
+    """Reservoir sampling (Vitter 1985) goes on after a restart: the generators' states are in the file."""
+    env = LinearTrack((0, 0), (100, 0), bin_cm=10)
+    rng = np.random.default_rng(9)
+    batches = [(rng.random((40, 4)).astype(np.float32), np.column_stack([rng.uniform(0, 100, 40), np.zeros(40)]))
+               for _ in range(10)]
+
+    def learn(model, part):
+        for marks, xy in part:
+            model.update(np.full(40, 2), marks, xy, np.full(40, 10.0))
+        return model
+
+    whole = MarkModel(env, max_spikes_per_group=50, seed=5)
+    whole.add_group(2, 4)
+    learn(whole, batches)
+    first = MarkModel(env, max_spikes_per_group=50, seed=5)
+    first.add_group(2, 4)
+    learn(first, batches[:5]).save(tmp_path / "marks.npz")
+    resumed = learn(MarkModel.load(tmp_path / "marks.npz"), batches[5:])
+    assert resumed._placed_counts[0].sum() == whole._placed_counts[0].sum() == 400
+    np.testing.assert_array_equal(resumed._marks[0], whole._marks[0])
+    np.testing.assert_array_equal(resumed._bins[0], whole._bins[0])
+
+
 def test_decoder_takes_mark_terms_and_tempers_them():
     env = LinearTrack((0, 0), (100, 0), bin_cm=10)
     ll = np.linspace(0, 3, 10)

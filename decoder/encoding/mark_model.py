@@ -431,9 +431,15 @@ class MarkModel:
                 "rate_floor_hz": self.rate_floor_hz, "seed": self.seed, "merge_sd": self.merge_sd}
 
     def save(self, path: str | os.PathLike) -> None:
-        """Write the learned spikes (not the fit: :meth:`fit` rebuilds it) to one ``.npz`` file, atomically."""
+        """Write the learned spikes (not the fit: :meth:`fit` rebuilds it) to one ``.npz`` file, atomically.
+
+        The reservoir's generators are saved with them, so a model loaded
+        and then updated keeps the very sample the uninterrupted session
+        would have kept.
+        """
         header = {"environment": self.environment.to_dict(), "settings": self._settings(), "groups": self._ids,
-                  "channels": self._channels, "counters": self.counters_}
+                  "channels": self._channels, "counters": self.counters_,
+                  "reservoir_states": [rng.bit_generator.state for rng in self._rngs]}
         arrays = {}
         for g in range(self.n_groups):
             arrays[f"marks_{g}"] = self._marks[g]
@@ -456,5 +462,8 @@ class MarkModel:
                 raise ValueError(f"the arrays of group {gid} do not match its channels and the bins")
             model._marks[g], model._bins[g], model._kept[g] = marks, bins, bins.size
             model._placed_counts[g] = arrays[f"placed_{g}"].astype(np.int64)
+        # A file without them (written before they were saved) starts each generator afresh from the seed.
+        for rng, state in zip(model._rngs, header.get("reservoir_states", [])):
+            rng.bit_generator.state = state
         model.counters_.update({k: int(v) for k, v in header["counters"].items() if k in model.counters_})
         return model
