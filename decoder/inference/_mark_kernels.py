@@ -253,15 +253,17 @@ def mark_log_intensity_sum(
                     _distances(enc_marks, c, c0, n, spike_marks[s], nch, inv_bw32, c == 0, d2, far)
                 # Every candidate gets its weight, 0 beyond the cutoff (no branch to mispredict),
                 # and the bins they reach as a vector reduction, so that the scatter below is nothing else.
+                # (Indexed through slices: an index that may be negative would be wrapped element by element.)
+                chunk_weights, chunk_bins = enc_weights[c0:c0 + n], enc_bins[c0:c0 + n]
                 for j in range(n):
                     near = np.int64(far[j] <= cut2_32)
                     weighed += near
-                    w[j] = _exp_neg(min(_HALF * d2[j], arg_max)) * enc_weights[c0 + j] * np.float32(near)
-                    b = np.int64(enc_bins[c0 + j])
+                    w[j] = _exp_neg(min(_HALF * d2[j], arg_max)) * chunk_weights[j] * np.float32(near)
+                    b = np.int64(chunk_bins[j])
                     b_lo = min(b_lo, b + (1 - near) * n_bins)
                     b_hi = max(b_hi, b * near - (1 - near))
                 for j in range(n):
-                    hist[enc_bins[c0 + j]] += np.float64(w[j])
+                    hist[np.uint32(chunk_bins[j])] += np.float64(w[j])  # bins are >= 0: no wraparound to test
         if b_hi < 0:
             continue
         scale = group_scale[g]
@@ -379,30 +381,33 @@ def _convolve_and_multiply(y0, y1, scale, nx, kernel_1d, bin_scale, log_floor, h
     n_bins = product.shape[0]
     ny = n_bins // nx
     r = kernel_1d.shape[0] // 2
+    # (Rows through slices: an index that may be negative would be wrapped element by element.)
     x0, x1 = nx, -1
     for y in range(y0, y1 + 1):
-        row = y * nx
+        weights = hist[y * nx:(y + 1) * nx]
         for x in range(nx):
-            x0 = min(x0, x if hist[row + x] != 0.0 else nx)
-            x1 = max(x1, x if hist[row + x] != 0.0 else -1)
+            x0 = min(x0, x if weights[x] != 0.0 else nx)
+            x1 = max(x1, x if weights[x] != 0.0 else -1)
     xa, xb = max(0, x0 - r), min(nx - 1, x1 + r)
     ya, yb = max(0, y0 - r), min(ny - 1, y1 + r)
     width = xb - xa + 1
     stride = width + 2 * r
     h0, h = y1 - y0 + 1, yb - ya + 1
     for y in range(y0, y1 + 1):
-        at = (y - y0) * stride + r - xa
-        for x in range(x0, x1 + 1):
-            box_src[at + x] = np.float32(hist[y * nx + x])
-            hist[y * nx + x] = 0.0
+        weights = hist[y * nx + x0:y * nx + x1 + 1]
+        box_row = box_src[(y - y0) * stride + r + x0 - xa:]
+        for i in range(x1 - x0 + 1):
+            box_row[i] = np.float32(weights[i])
+            weights[i] = 0.0
     _sweep(box_x[2 * r * stride:], box_src, 0, 1, kernel_1d, h0 * stride - 2 * r)
     # Output row y takes source rows y - r .. y + r, at rows y - y0 + r .. y - y0 + 3 r of box_x.
     _sweep(box_y, box_x, (ya - y0 + r) * stride, stride, kernel_1d, h * stride)
     ratio_scale = scale / math.exp(log_floor)
     for y in range(ya, yb + 1):
         row, at = y * nx + xa, (y - ya) * stride
+        smoothed, scales, products = box_y[at:at + width], bin_scale[row:row + width], product[row:row + width]
         for i in range(width):
-            product[row + i] *= max(box_y[at + i] * ratio_scale * bin_scale[row + i], 1.0)
+            products[i] *= max(smoothed[i] * ratio_scale * scales[i], 1.0)
     box_src[:h0 * stride] = 0.0
     box_x[2 * r * stride:(2 * r + h0) * stride] = 0.0
 
