@@ -115,10 +115,11 @@ def _exp_neg(x):
 
 @numba.njit(cache=True, fastmath={"contract"}, inline="always")
 def _distances(enc_marks, c, c0, n, mark, nch, inv_bandwidth_uv, first, d2, far):
-    """Channels ``c..c+3`` of the chunk ``c0:c0+n``: squared distances in kernel s.d., summed into ``d2``, largest into ``far``.
+    """Channels ``c..c+3`` of the chunk ``c0:c0+n``: squared distances in kernel s.d.
 
-    Overwrites on the ``first`` pass, accumulates after. A channel beyond
-    ``nch`` counts 0 (its encoding row is 0 and so is the mark taken here).
+    Summed into ``d2``, the largest channel's into ``far``; overwritten on
+    the ``first`` pass, accumulated after. A channel beyond ``nch`` counts 0
+    (its encoding row is 0 and so is the mark taken here).
     """
     zero = np.float32(0.0)
     m0 = mark[c]
