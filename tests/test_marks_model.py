@@ -52,9 +52,15 @@ def test_compiled_kernel_matches_its_numpy_twin(env, by_grid):
     n_fast = model.log_intensity_sum(rows, marks, fast, scratch)
     n_slow = model.log_intensity_sum(rows, marks, slow, scratch, backend="numpy")
     assert n_fast == n_slow
-    np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-9)  # same sums in another order
-    # The scratch is left as it was found, so the next call starts clean.
-    assert not scratch[0][:2].any() and not scratch[1][2:].any()
+    # The compiled kernel weighs and smooths in float32 (the marks' own precision): ~1e-7 relative per weight and
+    # per smoothed value, up to ~1e-6 where d2 is large; our bound, 1e-6 per spike on the log scale (measured:
+    # at most 5e-6 over these 30 spikes). The twin is float64 throughout.
+    np.testing.assert_allclose(fast, slow, rtol=0, atol=1e-6 * rows.size)
+    # The buffers that must start clean are left as they were found, so the next call starts clean: histogram,
+    # spread, product, the grid's box (weights, smoothed along x) and the spread flags.
+    clean = model.scratch()
+    for i in (0, 1, 2, 3, 4, 10):
+        np.testing.assert_array_equal(scratch[i], clean[i])
 
 
 def test_mark_density_of_one_bin_matches_sklearn_kernel_density():
@@ -161,6 +167,30 @@ def test_mark_model_file_round_trip(tmp_path):
     np.testing.assert_array_equal(again.ground_total_hz_, model.ground_total_hz_)
 
 
+def test_a_saved_and_loaded_model_keeps_the_sample_of_an_uninterrupted_session(tmp_path):
+    """Reservoir sampling (Vitter 1985) goes on after a restart: the generators' states are in the file."""
+    env = LinearTrack((0, 0), (100, 0), bin_cm=10)
+    rng = np.random.default_rng(9)
+    batches = [(rng.random((40, 4)).astype(np.float32), np.column_stack([rng.uniform(0, 100, 40), np.zeros(40)]))
+               for _ in range(10)]
+
+    def learn(model, part):
+        for marks, xy in part:
+            model.update(np.full(40, 2), marks, xy, np.full(40, 10.0))
+        return model
+
+    whole = MarkModel(env, max_spikes_per_group=50, seed=5)
+    whole.add_group(2, 4)
+    learn(whole, batches)
+    first = MarkModel(env, max_spikes_per_group=50, seed=5)
+    first.add_group(2, 4)
+    learn(first, batches[:5]).save(tmp_path / "marks.npz")
+    resumed = learn(MarkModel.load(tmp_path / "marks.npz"), batches[5:])
+    assert resumed._placed_counts[0].sum() == whole._placed_counts[0].sum() == 400
+    np.testing.assert_array_equal(resumed._marks[0], whole._marks[0])
+    np.testing.assert_array_equal(resumed._bins[0], whole._bins[0])
+
+
 def test_decoder_takes_mark_terms_and_tempers_them():
     env = LinearTrack((0, 0), (100, 0), bin_cm=10)
     ll = np.linspace(0, 3, 10)
@@ -192,7 +222,7 @@ def test_compression_matches_its_twin_and_keeps_the_likelihood_close():
     plain.fit(occupancy, env.valid_mask)
     merged.fit(occupancy, env.valid_mask)
     assert merged.enc_weights_.sum() == plain.enc_weights_.sum() == 6000
-    assert merged.enc_marks_.shape[0] < plain.enc_marks_.shape[0]
+    assert merged.enc_marks_.shape[1] < plain.enc_marks_.shape[1]
     order = np.argsort(plain._bins[0], kind="stable")
     marks, bins = plain._marks[0][order], plain._bins[0][order]
     outs = []

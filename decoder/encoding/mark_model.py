@@ -265,18 +265,18 @@ class MarkModel:
         """
         env = self.environment
         if env.grid_shape is None:
-            return 0, np.zeros(0)
+            return 0, np.zeros(0, np.float32)
         ny, nx = env.grid_shape
         r = int(4.0 * self.smooth_cm / env.bin_cm + 0.5)  # scipy's gaussian_filter1d reach at truncate=4
         if 2 * r + 1 > min(ny, nx):
-            return 0, np.zeros(0)
+            return 0, np.zeros(0, np.float32)
         size = 2 * r + 1
         impulse = np.zeros(size * size)
         impulse[r * size + r] = 1.0
         probe = type(env).rectangle(size * env.bin_cm, size * env.bin_cm, bin_cm=env.bin_cm)
         response, _ = probe._smooth_masked(impulse[np.newaxis], np.ones(size * size), self.smooth_cm)
         centre_row = response[0].reshape(size, size)[r]
-        return nx, centre_row / math.sqrt(centre_row[r])
+        return nx, (centre_row / math.sqrt(centre_row[r])).astype(np.float32)
 
     def _norm(self, n_channels: int) -> float:
         """Peak density of the product kernel, 1 / ((2 pi)^(c/2) bandwidth^c), in uV^-c."""
@@ -339,20 +339,22 @@ class MarkModel:
             kept_bins.append(bins)
             kept_weights.append(weights)
         self.group_start_ = np.concatenate([[0], np.cumsum([len(b) for b in kept_bins])]).astype(np.int64)
-        self.enc_marks_ = np.zeros((int(self.group_start_[-1]), width), np.float32)
-        self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int64)
-        self.enc_weights_ = np.zeros(int(self.group_start_[-1]))
-        # Buckets of channel 0, cutoff_sd kernel widths wide, sorted on channel 1 within (the kernel's index).
-        bucket_w = self.cutoff_sd * self.bandwidth_uv
+        # Rows to a multiple of four: the kernel reads channels four at a time (the padding is 0).
+        self.enc_marks_ = np.zeros((-(-width // 4) * 4, int(self.group_start_[-1])), np.float32)
+        # Bins and weights in 4 bytes each: a decoding step streams ~10 MB of encoding spikes.
+        self.enc_bins_ = np.zeros(int(self.group_start_[-1]), np.int32)
+        self.enc_weights_ = np.zeros(int(self.group_start_[-1]), np.float32)
+        # Buckets of channel 0, a fraction of the cutoff wide, sorted on channel 1 within (the kernel's index).
+        self.bucket_uv_ = self.cutoff_sd * self.bandwidth_uv / _mark_kernels.BUCKETS_PER_CUTOFF
         self.group_min0_uv_ = np.zeros(self.n_groups)
         counts, group_bucket = [], [0]
         for g in range(self.n_groups):
             marks = kept_marks[g]
             min0 = float(marks[:, 0].min()) if len(marks) else 0.0
-            bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / bucket_w).astype(np.int64)
+            bucket = np.floor((marks[:, 0].astype(np.float64) - min0) / self.bucket_uv_).astype(np.int64)
             order = np.lexsort((marks[:, 1 if self._channels[g] > 1 else 0], bucket))
             lo, hi = self.group_start_[g], self.group_start_[g + 1]
-            self.enc_marks_[lo:hi, : self._channels[g]] = marks[order]
+            self.enc_marks_[: self._channels[g], lo:hi] = marks[order].T
             self.enc_bins_[lo:hi] = kept_bins[g][order]
             self.enc_weights_[lo:hi] = kept_weights[g][order]
             self.group_min0_uv_[g] = min0
@@ -378,13 +380,12 @@ class MarkModel:
         """Model row of each group id; -1 for a group the model does not know."""
         return np.array([self._row.get(g, -1) for g in np.asarray(group_ids, np.int64).tolist()], np.int64)
 
-    def scratch(self) -> tuple[np.ndarray, np.ndarray]:
-        """The two scratch arrays :meth:`log_intensity_sum` needs, zeroed."""
-        n = self.environment.n_bins
-        return np.zeros((4, n)), np.zeros((4, n), np.int64)
+    def scratch(self) -> tuple[np.ndarray, ...]:
+        """The scratch buffers :meth:`log_intensity_sum` needs, zeroed (after :meth:`fit`)."""
+        return _mark_kernels.make_scratch(self.environment.n_bins, self.grid_nx_, self.kernel_1d_)
 
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
-                          scratch: tuple[np.ndarray, np.ndarray], backend: str = "numba") -> int:
+                          scratch: tuple[np.ndarray, ...], backend: str = "numba") -> int:
         """``sum_k log lambda(x, m_k)`` over a window's marked spikes, into ``out`` (n_bins,).
 
         Parameters
@@ -405,9 +406,10 @@ class MarkModel:
                   else _mark_kernels.mark_log_intensity_sum_numpy)
         start, targets, weights = self.spread_
         return kernel(rows, marks_uv, self.group_start_, self.group_channels_, self.enc_marks_, self.enc_bins_,
-                      self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, 1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_, self.kernel_1d_,
-                      self.bin_scale_,
-                      self.group_scale_, self.group_log_floor_, self.valid_mask_, scratch[0], scratch[1], out)
+                      self.enc_weights_, self.bucket_start_, self.group_bucket_, self.group_min0_uv_, self.bucket_uv_,
+                      1.0 / self.bandwidth_uv, self.cutoff_sd, start, targets, weights, self.grid_nx_,
+                      self.kernel_1d_, self.bin_scale_, self.group_scale_, self.group_log_floor_, self.valid_mask_,
+                      scratch, out)
 
     # -- readiness -----------------------------------------------------------
 
@@ -429,9 +431,15 @@ class MarkModel:
                 "rate_floor_hz": self.rate_floor_hz, "seed": self.seed, "merge_sd": self.merge_sd}
 
     def save(self, path: str | os.PathLike) -> None:
-        """Write the learned spikes (not the fit: :meth:`fit` rebuilds it) to one ``.npz`` file, atomically."""
+        """Write the learned spikes (not the fit: :meth:`fit` rebuilds it) to one ``.npz`` file, atomically.
+
+        The reservoir's generators are saved with them, so a model loaded
+        and then updated keeps the very sample the uninterrupted session
+        would have kept.
+        """
         header = {"environment": self.environment.to_dict(), "settings": self._settings(), "groups": self._ids,
-                  "channels": self._channels, "counters": self.counters_}
+                  "channels": self._channels, "counters": self.counters_,
+                  "reservoir_states": [rng.bit_generator.state for rng in self._rngs]}
         arrays = {}
         for g in range(self.n_groups):
             arrays[f"marks_{g}"] = self._marks[g]
@@ -454,5 +462,8 @@ class MarkModel:
                 raise ValueError(f"the arrays of group {gid} do not match its channels and the bins")
             model._marks[g], model._bins[g], model._kept[g] = marks, bins, bins.size
             model._placed_counts[g] = arrays[f"placed_{g}"].astype(np.int64)
+        # A file without them (written before they were saved) starts each generator afresh from the seed.
+        for rng, state in zip(model._rngs, header.get("reservoir_states", [])):
+            rng.bit_generator.state = state
         model.counters_.update({k: int(v) for k, v in header["counters"].items() if k in model.counters_})
         return model

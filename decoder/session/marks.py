@@ -208,7 +208,7 @@ class MarkStream:
             t = np.concatenate([p[0] for p in parts])
             inside = (t > start) & (t <= t_end_s)
             rows = np.concatenate([p[1] for p in parts])[inside]
-            width = self.decoding.enc_marks_.shape[1]
+            width = int(self.decoding.group_channels_.max())
             marks = np.zeros((int(inside.sum()), width), np.float32)
             at = 0
             for (pt, _, pm), keep in zip(parts, np.split(inside, np.cumsum([p[0].size for p in parts])[:-1])):
@@ -216,7 +216,7 @@ class MarkStream:
                 marks[at:at + k, : pm.shape[1]] = pm[keep]
                 at += k
         else:
-            rows, marks = np.zeros(0, np.int64), np.zeros((0, self.decoding.enc_marks_.shape[1]), np.float32)
+            rows, marks = np.zeros(0, np.int64), np.zeros((0, int(self.decoding.group_channels_.max())), np.float32)
         cap = self.settings.max_spikes_per_step
         if rows.size > cap:
             self.counters["mark_spikes_over_cap"] += rows.size - cap
