@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from decoder.encoding.calibration import MAX_TEMPERATURE, blocked_folds, fit_temperature
-from decoder.inference.decoding import RandomWalk
+from decoder.inference.random_walk import RandomWalk
 from decoder.inference.filtering import filter_posteriors, hpd_contains, hpd_mass
 from decoder.space.environments import Arena
 

@@ -18,7 +18,8 @@ from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
 from decoder.inference import _kernels
-from decoder.inference.decoding import BayesDecoder, DecodedStep, RandomWalk
+from decoder.inference.decoding import BayesDecoder, DecodedStep
+from decoder.inference.random_walk import RandomWalk
 from decoder.inference.filtering import filter_posteriors
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 

@@ -16,7 +16,8 @@ import pytest
 from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
-from decoder.inference.decoding import BayesDecoder, RandomWalk
+from decoder.inference.decoding import BayesDecoder
+from decoder.inference.random_walk import RandomWalk
 from decoder.inference.filtering import (
     filter_posteriors,
     hpd_contains,

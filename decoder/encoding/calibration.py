@@ -56,7 +56,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from decoder.inference.decoding import HPD_MASS, BayesDecoder, RandomWalk
+from decoder.inference.decoding import HPD_MASS, BayesDecoder
+from decoder.inference.random_walk import RandomWalk
 
 #: Largest temperature tried; a model that needs more is not a place code
 #: worth decoding, and the fit says so through ``coverage``.
@@ -68,6 +69,17 @@ _BISECTION_STEPS = 6
 
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
+
+#: Drift gains and time constants of the decoded velocity (s) that
+#: :func:`fit_drift` tries: a rat's runs last a second or two (common
+#: practice), so the velocity must follow within a fraction of that, and a
+#: gain of 1 moves the prior exactly as far as the decoded point moved.
+DRIFT_GAINS = (0.25, 0.5, 0.75, 1.0)
+VELOCITY_TIME_CONSTANTS_S = (0.25, 0.5, 1.0, 2.0)
+
+#: A drift is kept only if it lowers the held-out median error by more than
+#: this share: the plain walk wins ties and noise.
+_DRIFT_MIN_GAIN = 0.01
 
 
 
@@ -96,6 +108,10 @@ class TemperatureFit:
         in model files written before the choice was made).
     point_estimate : {"map", "mean"}
         The one with the smaller median (the MAP on a tie or without positions).
+    drift_gain, velocity_time_constant_s : float
+        The drift the filter decodes with and the temperature was fitted
+        for (:class:`DriftFit`); a gain of 0 (and in model files written
+        before the drift was fitted) is the plain walk.
     """
 
     temperature: float
@@ -106,6 +122,32 @@ class TemperatureFit:
     map_median_cm: float = field(default=math.nan)
     mean_median_cm: float = field(default=math.nan)
     point_estimate: str = "map"
+    drift_gain: float = 0.0
+    velocity_time_constant_s: float = 1.0
+
+
+@dataclass(frozen=True)
+class DriftFit:
+    """The drift of the filter's walk towards the decoded velocity, chosen on held-out steps.
+
+    Attributes
+    ----------
+    gain : float
+        In [0, 1]: the drift per step is ``gain`` times the decoded velocity
+        (``BayesDecoder(drift_gain=...)``); 0 is the plain walk.
+    velocity_time_constant_s : float
+        Time constant of the decoded velocity's exponential average (s).
+    median_cm : float
+        Held-out median error of the better point estimate at this drift
+        (NaN for the default, not fitted).
+    median_without_cm : float
+        The same without drift.
+    """
+
+    gain: float = 0.0
+    velocity_time_constant_s: float = 1.0
+    median_cm: float = math.nan
+    median_without_cm: float = math.nan
 
 
 def blocked_folds(n_steps: int, n_folds: int) -> list[tuple[int, int]]:
@@ -143,6 +185,7 @@ def fit_temperature(
     uniform_weight: float,
     rate_floor_hz: float = 0.01,
     fold_true_xy_cm: Sequence[np.ndarray] | None = None,
+    drift: DriftFit | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -167,6 +210,9 @@ def fit_temperature(
         them the MAP and the posterior mean are scored at the fitted
         temperature, by ``walk.environment.distance_cm``, and the closer
         one becomes ``point_estimate``.
+    drift : DriftFit, optional
+        The drift the filter decodes with (:func:`fit_drift`); none by default.
+        It is kept in the returned fit.
 
     Returns
     -------
@@ -210,9 +256,9 @@ def fit_temperature(
     n_known = int(sum((b >= 0).sum() for b in truths))
     if n_known == 0:
         raise ValueError("no held-out step has a known true bin; the tracker was lost throughout")
+    drift = drift or DriftFit()
 
-    # Each held-out step as the decoder takes it: the rows that fired and their counts.
-    fired = [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
+    fired = _fired(fold_counts)
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
 
     def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
@@ -229,7 +275,7 @@ def fit_temperature(
             decoder = BayesDecoder(
                 rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
                 uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
-                backend=walk.backend,
+                drift_gain=drift.gain, velocity_time_constant_s=drift.velocity_time_constant_s, backend=walk.backend,
             )
             for (rows, counts), true_bin in zip(steps, bins.tolist()):
                 step = decoder.decode(rows, counts)
@@ -257,10 +303,12 @@ def fit_temperature(
 
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
         if fold_true_xy_cm is None:
-            return TemperatureFit(temperature, cov, at_1[0], mass, n_known)
+            return TemperatureFit(temperature, cov, at_1[0], mass, n_known, drift_gain=drift.gain,
+                                  velocity_time_constant_s=drift.velocity_time_constant_s)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
         choice = "mean" if mean_cm < map_cm else "map"
-        return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice)
+        return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice, drift.gain,
+                              drift.velocity_time_constant_s)
 
     at_1 = held_out(1.0)
     if at_1[0] >= at_1[1]:
@@ -277,3 +325,82 @@ def fit_temperature(
         else:
             lo = at_mid
     return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+
+
+def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+    """Each held-out step as the decoder takes it: the rows that fired and their counts."""
+    return [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
+
+
+def fit_drift(
+    fold_rate_maps_hz: Sequence[np.ndarray],
+    fold_counts: Sequence[np.ndarray],
+    fold_true_xy_cm: Sequence[np.ndarray],
+    step_s: float,
+    walk: RandomWalk,
+    *,
+    uniform_weight: float,
+    temperature: float,
+    rate_floor_hz: float = 0.01,
+) -> DriftFit:
+    """Choose the drift gain and the velocity's time constant by held-out median error.
+
+    Every pair of ``DRIFT_GAINS`` and ``VELOCITY_TIME_CONSTANTS_S`` decodes
+    the held-out blocks (as :func:`fit_temperature` does, at
+    ``temperature``), and so does the plain walk; the pair whose better
+    point estimate (MAP or posterior mean) has the smallest median distance
+    from the tracked position wins, if it beats the plain walk by more than
+    ``_DRIFT_MIN_GAIN``. The velocity is the filter's own decoded one, so
+    the choice needs no tracking at decoding time.
+
+    Parameters
+    ----------
+    fold_rate_maps_hz, fold_counts, step_s, walk, uniform_weight, rate_floor_hz
+        As in :func:`fit_temperature`.
+    fold_true_xy_cm : sequence of ndarray, each shape (n_steps_k, 2)
+        Tracked position at the end of each step (NaN where unknown).
+    temperature : float
+        The likelihood temperature to decode with.
+
+    Returns
+    -------
+    DriftFit
+
+    Raises
+    ------
+    ValueError
+        For sequences of different lengths or no step with a known position.
+    """
+    if not len(fold_rate_maps_hz) == len(fold_counts) == len(fold_true_xy_cm):
+        raise ValueError("give one rate-map set, count array and position array per fold")
+    truth = np.concatenate([np.asarray(xy, dtype=np.float64).reshape(-1, 2) for xy in fold_true_xy_cm])
+    known = np.all(np.isfinite(truth), axis=1)
+    if not known.any():
+        raise ValueError("no held-out step has a known position; the tracker was lost throughout")
+    fired = _fired(fold_counts)
+    env = walk.environment
+
+    def median_cm(gain: float, time_constant_s: float) -> float:
+        points = []
+        for rates, steps in zip(fold_rate_maps_hz, fired):
+            decoder = BayesDecoder(
+                rates, env, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
+                uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
+                drift_gain=gain, velocity_time_constant_s=time_constant_s, backend=walk.backend,
+            )
+            for rows, counts in steps:
+                step = decoder.decode(rows, counts)
+                points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
+        decoded = np.array(points)[known]
+        return min(float(np.median(env.distance_cm(decoded[:, i : i + 2], truth[known]))) for i in (0, 2))
+
+    without = median_cm(0.0, 1.0)
+    best = DriftFit(median_cm=without, median_without_cm=without)
+    for time_constant_s in VELOCITY_TIME_CONSTANTS_S:
+        for gain in DRIFT_GAINS:
+            error = median_cm(gain, time_constant_s)
+            if error < best.median_cm:
+                best = DriftFit(gain, time_constant_s, error, without)
+    if not best.median_cm < without * (1.0 - _DRIFT_MIN_GAIN):
+        return DriftFit(median_cm=without, median_without_cm=without)
+    return best

@@ -70,18 +70,20 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         logger.warning("%s; the filter uses random_walk_sd_cm = %g cm instead", exc, settings.random_walk_sd_cm)
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
-    temperature, point_estimate = settings.likelihood_temperature, "map"
+    temperature, point_estimate, (drift_gain, time_constant_s) = settings.likelihood_temperature, "map", (0.0, 1.0)
     try:
         point_estimate = model.point_estimate(settings.step_s)
+        drift_gain, time_constant_s = model.drift(settings.step_s)
         if temperature is None:
             temperature = model.likelihood_temperature(settings.step_s)
     except ValueError as exc:
-        logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g", exc, temperature or 1.0)
+        logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g and no drift", exc,
+                       temperature or 1.0)
         temperature = temperature or 1.0
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
         random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature,
-        point_estimate=point_estimate, **common,
+        drift_gain=drift_gain, velocity_time_constant_s=time_constant_s, point_estimate=point_estimate, **common,
     )
 
 
@@ -110,6 +112,8 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
         "uniform_weight": decoder.uniform_weight,
         "likelihood_temperature": decoder.likelihood_temperature,
         "point_estimate": decoder.point_estimate,
+        "drift_gain": decoder.drift_gain,
+        "velocity_time_constant_s": decoder.velocity_time_constant_s,
     }
     fit = model.temperature_fits_.get(decoder.window_s)
     if fit is not None:
