@@ -33,12 +33,19 @@ regions' mass hardly moves, so the fit is a bisection on ``log T``.
 
 The same held-out steps choose the decoded position, the point estimate
 the session scores and shows: the MAP bin's centre or the posterior mean,
-whichever lies closer to the tracked position in the median, at the fitted
+whichever lies closer to the tracked position in the median (the mean by a
+margin, ``_MEAN_MARGIN``), at the fitted
 temperature. Where the posterior is broad and round (an open arena) the
 mean averages out the bins' quantisation and the MAP's jumps between
 neighbouring peaks; where it is split between arms or along a track's two
 directions the mean falls between the modes, and the MAP wins. Which one
 wins depends on the session, so the learning data decide.
+
+The same held-out steps choose the drift of the walk towards the decoded
+velocity (:func:`fit_drift`): its gain and the time constant of the
+velocity's average, by the held-out median error at the plain walk's
+temperature; the
+temperature is then fitted again with the drift, whose coverage it is.
 
 References
 ----------
@@ -50,6 +57,7 @@ data).
 from __future__ import annotations
 
 import itertools
+import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -58,6 +66,8 @@ import numpy as np
 
 from decoder.inference.decoding import HPD_MASS, BayesDecoder
 from decoder.inference.random_walk import RandomWalk
+
+logger = logging.getLogger(__name__)
 
 #: Largest temperature tried; a model that needs more is not a place code
 #: worth decoding, and the fit says so through ``coverage``.
@@ -69,6 +79,12 @@ _BISECTION_STEPS = 6
 
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
+
+#: The posterior mean becomes the decoded position only if its held-out
+#: median error is this share below the MAP's: the mean of a posterior split
+#: between two arms lies between them, off the track, a risk that a median
+#: over a minute of held-out steps may not show; a near tie goes to the MAP.
+_MEAN_MARGIN = 0.05
 
 #: Drift gains and time constants of the decoded velocity (s) that
 #: :func:`fit_drift` tries: a rat's runs last a second or two (common
@@ -107,7 +123,8 @@ class TemperatureFit:
         steps with a known position; NaN when no positions were given (and
         in model files written before the choice was made).
     point_estimate : {"map", "mean"}
-        The one with the smaller median (the MAP on a tie or without positions).
+        The one with the smaller median, the mean only if smaller by
+        ``_MEAN_MARGIN`` (the MAP on a near tie or without positions).
     drift_gain, velocity_time_constant_s : float
         The drift the filter decodes with and the temperature was fitted
         for (:class:`DriftFit`); a gain of 0 (and in model files written
@@ -209,10 +226,10 @@ def fit_temperature(
         Tracked position at the end of each step (NaN where unknown): with
         them the MAP and the posterior mean are scored at the fitted
         temperature, by ``walk.environment.distance_cm``, and the closer
-        one becomes ``point_estimate``.
+        one (the mean by ``_MEAN_MARGIN``) becomes ``point_estimate``.
     drift : DriftFit, optional
-        The drift the filter decodes with (:func:`fit_drift`); none by default.
-        It is kept in the returned fit.
+        The drift the filter decodes with (:func:`fit_drift`); none by
+        default. It is kept in the returned fit.
 
     Returns
     -------
@@ -306,7 +323,7 @@ def fit_temperature(
             return TemperatureFit(temperature, cov, at_1[0], mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
-        choice = "mean" if mean_cm < map_cm else "map"
+        choice = "mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map"
         return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice, drift.gain,
                               drift.velocity_time_constant_s)
 
@@ -395,12 +412,13 @@ def fit_drift(
         return min(float(np.median(env.distance_cm(decoded[:, i : i + 2], truth[known]))) for i in (0, 2))
 
     without = median_cm(0.0, 1.0)
-    best = DriftFit(median_cm=without, median_without_cm=without)
+    plain = DriftFit(median_cm=without, median_without_cm=without)
+    best = plain
     for time_constant_s in VELOCITY_TIME_CONSTANTS_S:
         for gain in DRIFT_GAINS:
             error = median_cm(gain, time_constant_s)
+            logger.debug("drift gain %.2f over %.2f s: held-out median %.3f cm (%.3f without)", gain,
+                         time_constant_s, error, without)
             if error < best.median_cm:
                 best = DriftFit(gain, time_constant_s, error, without)
-    if not best.median_cm < without * (1.0 - _DRIFT_MIN_GAIN):
-        return DriftFit(median_cm=without, median_without_cm=without)
-    return best
+    return best if best.median_cm < without * (1.0 - _DRIFT_MIN_GAIN) else plain

@@ -53,6 +53,13 @@ class RandomWalk:
     backend : {"numba", "numpy"}, default "numba"
         Compiled kernels, or their plain numpy twins.
 
+    Attributes
+    ----------
+    interior : ndarray of bool, shape (n_bins,)
+        On a grid, the valid bins whose whole reach of the walk is valid:
+        a tilted row sums its full kernels there (``_kernels.decode_step``).
+        All False on a track or graph.
+
     Examples
     --------
     >>> from decoder.space.environments import LinearTrack
