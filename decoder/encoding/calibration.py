@@ -77,6 +77,11 @@ MAX_TEMPERATURE = 20.0
 #: finer than the sampling error of a coverage from a few thousand steps.
 _BISECTION_STEPS = 6
 
+#: A refit near a known temperature brackets it by this factor either side
+#: and bisects it twice: to 1.25^(1/4), 6 %, about as fine as a full fit (5 %).
+_NEAR_FACTOR = 1.25
+_NEAR_BISECTION_STEPS = 2
+
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
 
@@ -90,8 +95,8 @@ _MEAN_MARGIN = 0.05
 #: :func:`fit_drift` tries: a rat's runs last a second or two (common
 #: practice), so the velocity must follow within a fraction of that, and a
 #: gain of 1 moves the prior exactly as far as the decoded point moved.
-DRIFT_GAINS = (0.25, 0.5, 0.75, 1.0)
-VELOCITY_TIME_CONSTANTS_S = (0.25, 0.5, 1.0, 2.0)
+DRIFT_GAINS = (0.5, 1.0)
+VELOCITY_TIME_CONSTANTS_S = (0.5, 1.0, 2.0)
 
 #: A drift is kept only if it lowers the held-out median error by more than
 #: this share: the plain walk wins ties and noise.
@@ -203,6 +208,7 @@ def fit_temperature(
     rate_floor_hz: float = 0.01,
     fold_true_xy_cm: Sequence[np.ndarray] | None = None,
     drift: DriftFit | None = None,
+    near: TemperatureFit | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -230,6 +236,12 @@ def fit_temperature(
     drift : DriftFit, optional
         The drift the filter decodes with (:func:`fit_drift`); none by
         default. It is kept in the returned fit.
+    near : TemperatureFit, optional
+        A fit the answer is expected near (the plain walk's, when refitting
+        for a drift): the bisection starts from a bracket of
+        ``_NEAR_FACTOR`` either side of its temperature when that bracket
+        holds the answer (about half the passes), and its
+        ``coverage_at_1`` is kept rather than measured again.
 
     Returns
     -------
@@ -318,30 +330,48 @@ def fit_temperature(
                    else math.nan for i in (0, 2)]
         return (*figures, *medians)
 
+    coverage_at_1 = math.nan if near is None else near.coverage_at_1
+
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
         if fold_true_xy_cm is None:
-            return TemperatureFit(temperature, cov, at_1[0], mass, n_known, drift_gain=drift.gain,
+            return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
         choice = "mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map"
-        return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice, drift.gain,
+        return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm, choice, drift.gain,
                               drift.velocity_time_constant_s)
 
+    def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
+        for _ in range(steps):
+            mid = math.sqrt(lo[0] * hi[0])  # bisection on log T
+            at_mid = (mid, *held_out(mid))
+            if at_mid[1] >= at_mid[2]:
+                hi = at_mid
+            else:
+                lo = at_mid
+        return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+
+    if near is not None:
+        # A bracket of _NEAR_FACTOR either side of the expected temperature, when it holds the answer.
+        at_near = (near.temperature, *held_out(near.temperature))
+        covers = at_near[1] >= at_near[2]
+        if covers:
+            other = max(1.0, near.temperature / _NEAR_FACTOR)
+        else:
+            other = min(MAX_TEMPERATURE, near.temperature * _NEAR_FACTOR)
+        at_other = (other, *held_out(other))
+        if (at_other[1] >= at_other[2]) != covers:
+            return bisect(*((at_other, at_near) if covers else (at_near, at_other)), _NEAR_BISECTION_STEPS)
+        if other in (1.0, MAX_TEMPERATURE):
+            return fit(*at_other)
     at_1 = held_out(1.0)
+    coverage_at_1 = at_1[0]
     if at_1[0] >= at_1[1]:
         return fit(1.0, *at_1)
     at_max = held_out(MAX_TEMPERATURE)
     if at_max[0] < at_max[1]:
         return fit(MAX_TEMPERATURE, *at_max)
-    lo, hi = (1.0, *at_1), (MAX_TEMPERATURE, *at_max)
-    for _ in range(_BISECTION_STEPS):
-        mid = math.sqrt(lo[0] * hi[0])  # bisection on log T
-        at_mid = (mid, *held_out(mid))
-        if at_mid[1] >= at_mid[2]:
-            hi = at_mid
-        else:
-            lo = at_mid
-    return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+    return bisect((1.0, *at_1), (MAX_TEMPERATURE, *at_max), _BISECTION_STEPS)
 
 
 def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
@@ -359,14 +389,17 @@ def fit_drift(
     uniform_weight: float,
     temperature: float,
     rate_floor_hz: float = 0.01,
+    median_without_cm: float | None = None,
 ) -> DriftFit:
     """Choose the drift gain and the velocity's time constant by held-out median error.
 
-    Every pair of ``DRIFT_GAINS`` and ``VELOCITY_TIME_CONSTANTS_S`` decodes
-    the held-out blocks (as :func:`fit_temperature` does, at
-    ``temperature``), and so does the plain walk; the pair whose better
-    point estimate (MAP or posterior mean) has the smallest median distance
-    from the tracked position wins, if it beats the plain walk by more than
+    The held-out blocks are decoded (as :func:`fit_temperature` does, at
+    ``temperature``) with each of ``DRIFT_GAINS`` at the middle one of
+    ``VELOCITY_TIME_CONSTANTS_S``, then with the best of those gains at the
+    other time constants (a search one coordinate at a time: four passes
+    where the whole grid takes six); the pair whose better point estimate
+    (MAP or posterior mean) has the smallest median distance from the
+    tracked position wins, if it beats the plain walk by more than
     ``_DRIFT_MIN_GAIN``. The velocity is the filter's own decoded one, so
     the choice needs no tracking at decoding time.
 
@@ -378,6 +411,9 @@ def fit_drift(
         Tracked position at the end of each step (NaN where unknown).
     temperature : float
         The likelihood temperature to decode with.
+    median_without_cm : float, optional
+        The plain walk's held-out median at ``temperature``, when known
+        (``min(TemperatureFit.map_median_cm, mean_median_cm)``): saves a pass.
 
     Returns
     -------
@@ -411,14 +447,18 @@ def fit_drift(
         decoded = np.array(points)[known]
         return min(float(np.median(env.distance_cm(decoded[:, i : i + 2], truth[known]))) for i in (0, 2))
 
-    without = median_cm(0.0, 1.0)
+    without = median_cm(0.0, 1.0) if median_without_cm is None else median_without_cm
     plain = DriftFit(median_cm=without, median_without_cm=without)
-    best = plain
-    for time_constant_s in VELOCITY_TIME_CONSTANTS_S:
-        for gain in DRIFT_GAINS:
-            error = median_cm(gain, time_constant_s)
-            logger.debug("drift gain %.2f over %.2f s: held-out median %.3f cm (%.3f without)", gain,
-                         time_constant_s, error, without)
-            if error < best.median_cm:
-                best = DriftFit(gain, time_constant_s, error, without)
+
+    def tried(gain: float, time_constant_s: float) -> DriftFit:
+        error = median_cm(gain, time_constant_s)
+        logger.debug("drift gain %.2f over %.2f s: held-out median %.3f cm (%.3f without)", gain, time_constant_s,
+                     error, without)
+        return DriftFit(gain, time_constant_s, error, without)
+
+    # One coordinate at a time: the gains at the middle time constant, then the other time constants at the best gain.
+    middle = VELOCITY_TIME_CONSTANTS_S[len(VELOCITY_TIME_CONSTANTS_S) // 2]
+    best = min((tried(gain, middle) for gain in DRIFT_GAINS), key=lambda fit: fit.median_cm)
+    others = [tried(best.gain, t) for t in VELOCITY_TIME_CONSTANTS_S if t != middle]
+    best = min([best, *others], key=lambda fit: fit.median_cm)
     return best if best.median_cm < without * (1.0 - _DRIFT_MIN_GAIN) else plain

@@ -387,10 +387,11 @@ class PlaceModel(OnlineCounts):
         common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz)
         fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy, **common)
         # The drift is chosen at the plain walk's temperature, then the temperature refitted for it.
-        drift = fit_drift(fold_maps, fold_counts, fold_xy, step_s, walk, temperature=fit.temperature, **common)
+        drift = fit_drift(fold_maps, fold_counts, fold_xy, step_s, walk, temperature=fit.temperature,
+                          median_without_cm=min(fit.map_median_cm, fit.mean_median_cm), **common)
         if drift.gain > 0:
             fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
-                                  drift=drift, **common)
+                                  drift=drift, near=fit, **common)
         logger.info(
             "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
             "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f); drift gain %.2f on the decoded "
