@@ -283,3 +283,23 @@ def test_fit_drift_follows_a_steady_run():
     # trails it less than one that waits for the spikes, so a drift is chosen and lowers the held-out error.
     assert fit.gain > 0.0
     assert fit.median_cm < fit.median_without_cm
+
+
+def test_a_temperature_refit_near_a_known_one_finds_the_same_temperature():
+    from decoder.encoding.calibration import fit_temperature
+
+    rng = np.random.default_rng(23)
+    track, rates, _, bins, xy = _run_on_track(rng, 1200, 0.2)
+    # Overdispersed counts (a gamma gain per step shared by all units, CV 0.7): the Poisson model is
+    # overconfident, so the fitted temperature is above 1 (invented data for a property of the fit).
+    gain = rng.gamma(2.0, 0.5, (bins.size, 1))
+    counts = rng.poisson(0.02 * rates[:, bins].T * gain)
+    walk = RandomWalk(track, track.valid_mask, 1.2)
+    args = ([rates, rates], [counts[:600], counts[600:]], [bins[:600], bins[600:]], 0.02, walk)
+    full = fit_temperature(*args, uniform_weight=1e-3)
+    assert full.temperature > 1.0
+    near = fit_temperature(*args, uniform_weight=1e-3, near=full)
+    # Source: definition of bisection — both brackets hold the same root, and each end is within its
+    # final bracket (20^(1/64) ~ 4.8 % for the full fit, 1.25^(1/4) ~ 5.7 % near) of it.
+    assert abs(math.log(near.temperature / full.temperature)) <= math.log(1.048) + math.log(1.057) + 1e-12
+    assert near.coverage_at_1 == full.coverage_at_1

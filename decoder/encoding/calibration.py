@@ -82,6 +82,12 @@ _BISECTION_STEPS = 6
 _NEAR_FACTOR = 1.25
 _NEAR_BISECTION_STEPS = 2
 
+#: The first second of every held-out run is decoded but neither its
+#: coverage nor its error counts: it starts from a flat prior and no
+#: velocity, a start the session's one long run makes once, and the
+#: velocity's average takes about its time constant to settle.
+BURN_IN_S = 1.0
+
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
 
@@ -282,6 +288,9 @@ def fit_temperature(
             raise ValueError(f"fold {k}: {np.shape(counts)[0]} steps of counts but true bins of shape {bins.shape}")
     if fold_true_xy_cm is not None and [np.shape(xy) for xy in fold_true_xy_cm] != [(b.size, 2) for b in truths]:
         raise ValueError("fold_true_xy_cm must hold one (n_steps_k, 2) array of positions per fold, like the true bins")
+    truths = [np.where(_burning_in(step_s, b.size), -1, b) for b in truths]
+    if fold_true_xy_cm is not None:
+        fold_true_xy_cm = [_unscored(step_s, xy) for xy in fold_true_xy_cm]
     n_known = int(sum((b >= 0).sum() for b in truths))
     if n_known == 0:
         raise ValueError("no held-out step has a known true bin; the tracker was lost throughout")
@@ -374,6 +383,18 @@ def fit_temperature(
     return bisect((1.0, *at_1), (MAX_TEMPERATURE, *at_max), _BISECTION_STEPS)
 
 
+def _burning_in(step_s: float, n_steps: int) -> np.ndarray:
+    """Which of a held-out run's ``n_steps`` fall in its first ``BURN_IN_S`` (at most half of them)."""
+    return np.arange(n_steps) < min(round(BURN_IN_S / step_s), n_steps // 2)
+
+
+def _unscored(step_s: float, xy_cm: np.ndarray) -> np.ndarray:
+    """Tracked positions (n, 2) of a held-out run, NaN (not scored) in its burn-in."""
+    xy = np.array(xy_cm, dtype=np.float64).reshape(-1, 2)
+    xy[_burning_in(step_s, len(xy))] = np.nan
+    return xy
+
+
 def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
     """Each held-out step as the decoder takes it: the rows that fired and their counts."""
     return [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
@@ -426,7 +447,7 @@ def fit_drift(
     """
     if not len(fold_rate_maps_hz) == len(fold_counts) == len(fold_true_xy_cm):
         raise ValueError("give one rate-map set, count array and position array per fold")
-    truth = np.concatenate([np.asarray(xy, dtype=np.float64).reshape(-1, 2) for xy in fold_true_xy_cm])
+    truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
     known = np.all(np.isfinite(truth), axis=1)
     if not known.any():
         raise ValueError("no held-out step has a known position; the tracker was lost throughout")
