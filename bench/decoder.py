@@ -25,7 +25,7 @@ about 100 units fire per window. Its figure feeds the replay benchmark
 Three more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
 take 30 simulated minutes (tracker at 50 Hz, 300 units) through its update
 methods and fit them, the time it then takes to fit the filter's likelihood
-temperature for 20 ms steps (``PlaceModel.likelihood_temperature``), and the
+temperature and its drift for 20 ms steps (``PlaceModel.likelihood_temperature``), and the
 time for a fresh Python process, with numba's on-disk cache warm, to import
 the decoder and decode its first windows.
 """
