@@ -39,8 +39,10 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     environment's bins, uniform jump) and ``settings.likelihood_temperature``,
     or, where that is unset, the model's temperature fitted for ``step_s``
     (``PlaceModel.likelihood_temperature``; fitted here on first use, right
-    after the model's fit), and the point estimate chosen with that fit
-    (``PlaceModel.point_estimate``) as the steps' decoded position; the
+    after the model's fit), the point estimate chosen with that fit
+    (``PlaceModel.point_estimate``) as the steps' decoded position, and the
+    drift of the walk towards the decoded velocity fitted with it
+    (``PlaceModel.drift``); the
     sliding window reports the MAP. A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
@@ -88,7 +90,7 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
 
 
 def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
-    """The filter's readiness figures: its movement model, temperature and decoded position.
+    """The filter's readiness figures: its movement model and drift, temperature and decoded position.
 
     Beside the settings the decoder runs with, the held-out figures of the
     fit behind them (``decoder.encoding.calibration.TemperatureFit``) where
