@@ -19,8 +19,8 @@ import numpy as np
 import pytest
 
 from decoder.encoding.calibration import BURN_IN_S, MAX_TEMPERATURE, blocked_folds, fit_temperature
-from decoder.inference.random_walk import RandomWalk
 from decoder.inference.filtering import filter_posteriors, hpd_contains, hpd_mass
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Arena
 
 STEP_S = 0.02

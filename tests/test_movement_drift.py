@@ -261,7 +261,7 @@ def test_fit_drift_keeps_the_plain_walk_for_an_animal_that_stays_put():
     from decoder.encoding.calibration import fit_drift
 
     rng = np.random.default_rng(21)
-    track, rates, counts, bins, xy = _run_on_track(rng, 400, 0)
+    track, rates, counts, _, xy = _run_on_track(rng, 400, 0)
     walk = RandomWalk(track, track.valid_mask, 2.0)
     fit = fit_drift([rates, rates], [counts[:200], counts[200:]], [xy[:200], xy[200:]], 0.02, walk,
                     uniform_weight=1e-3, temperature=1.0)
@@ -275,7 +275,7 @@ def test_fit_drift_follows_a_steady_run():
     from decoder.encoding.calibration import fit_drift
 
     rng = np.random.default_rng(22)
-    track, rates, counts, bins, xy = _run_on_track(rng, 1600, 0.2)  # 25 cm/s at 20 ms steps
+    track, rates, counts, _, xy = _run_on_track(rng, 1600, 0.2)  # 25 cm/s at 20 ms steps
     walk = RandomWalk(track, track.valid_mask, 1.2)
     fit = fit_drift([rates, rates], [counts[:800], counts[800:]], [xy[:800], xy[800:]], 0.02, walk,
                     uniform_weight=1e-3, temperature=1.0)
@@ -289,7 +289,7 @@ def test_a_temperature_refit_near_a_known_one_finds_the_same_temperature():
     from decoder.encoding.calibration import fit_temperature
 
     rng = np.random.default_rng(23)
-    track, rates, _, bins, xy = _run_on_track(rng, 1200, 0.2)
+    track, rates, _, bins, _ = _run_on_track(rng, 1200, 0.2)
     # Overdispersed counts (a gamma gain per step shared by all units, CV 0.7): the Poisson model is
     # overconfident, so the fitted temperature is above 1 (invented data for a property of the fit).
     gain = rng.gamma(2.0, 0.5, (bins.size, 1))
