@@ -303,3 +303,23 @@ def test_a_temperature_refit_near_a_known_one_finds_the_same_temperature():
     # final bracket (20^(1/64) ~ 4.8 % for the full fit, 1.25^(1/4) ~ 5.7 % near) of it.
     assert abs(math.log(near.temperature / full.temperature)) <= math.log(1.048) + math.log(1.057) + 1e-12
     assert near.coverage_at_1 == full.coverage_at_1
+
+
+def test_the_drift_gain_setting_is_checked_and_overrides_the_fitted_gain():
+    from decoder.config import ConfigError, DecoderSettings
+    from decoder.encoding.place_model import PlaceModel
+    from decoder.session.steps import build_decoder
+
+    for bad in (-0.1, 1.5, math.nan, True, "1"):
+        with pytest.raises(ConfigError, match="drift_gain must be a number from 0 to 1"):
+            DecoderSettings(drift_gain=bad)
+    track = LinearTrack((0, 0), (100, 0), bin_cm=2.5)
+    t = np.arange(0, 120, 0.02)
+    xy = np.column_stack([50 + 45 * np.sin(2 * np.pi * t / 8.0), np.zeros_like(t)])  # back and forth
+    model = PlaceModel(track, unit_ids=[1, 2])
+    model.update_frames(t, xy)
+    model.fit()
+    zones = np.zeros((0, track.n_bins), bool)
+    # No spikes were learned, so nothing is fitted on held-out steps: the plain walk, unless the setting asks.
+    assert build_decoder(model, track, DecoderSettings(), zones, 0.01).drift_gain == 0.0
+    assert build_decoder(model, track, DecoderSettings(drift_gain=0.7), zones, 0.01).drift_gain == 0.7

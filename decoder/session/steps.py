@@ -42,7 +42,7 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     after the model's fit), the point estimate chosen with that fit
     (``PlaceModel.point_estimate``) as the steps' decoded position, and the
     drift of the walk towards the decoded velocity fitted with it
-    (``PlaceModel.drift``); the
+    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain); the
     sliding window reports the MAP. A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
@@ -82,6 +82,8 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g and no drift", exc,
                        temperature or 1.0)
         temperature = temperature or 1.0
+    if settings.drift_gain is not None:
+        drift_gain = settings.drift_gain
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
         random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature,
