@@ -330,7 +330,8 @@ def main(argv: list[str] | None = None) -> int:
         if r["filter"]:
             f = r["filter"]
             print(f"filter {r['name']}: walk s.d. {f['walk_sd_cm']:.2f} cm per {f['step_s'] * 1e3:.0f} ms step, "
-                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:.3g}, decodes the "
+                  f"jump {f['uniform_weight']:.2e}, temperature {f['likelihood_temperature']:.3g}, drift gain "
+                  f"{f.get('drift_gain', 0.0):.2f} over {f.get('velocity_time_constant_s', 1.0):.2f} s, decodes the "
                   f"{f['point_estimate']} (test medians: MAP {r['placeloop_map_median_cm']:.2f}, "
                   f"mean {r['placeloop_mean_median_cm']:.2f} cm)")
     worst = ", ".join(f"{m} {v:.3f}" for m, v in out["ratio_worst"].items())

@@ -5,7 +5,8 @@ short run). For 50, 300 and 1000 units on a 200-bin linear track, a
 2,500-bin and a 10,000-bin arena, with the uniform and the state-space
 prior over sliding windows (``[decoder] method = "sliding_window"``) and
 as the filter (``method = "filter"``, the default: non-overlapping 20 ms
-bins, a uniform jump, a likelihood temperature), the numba decoder and the
+bins, a uniform jump, a likelihood temperature; ``filter_drift`` the same
+with the walk tilted towards the decoded velocity), the numba decoder and the
 same decoder on the numpy twins decode the same steps in the same run; the
 table gives per-step latency (median and 99th percentile, after warm-up)
 and the ratio of the medians.
@@ -24,7 +25,7 @@ about 100 units fire per window. Its figure feeds the replay benchmark
 Three more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
 take 30 simulated minutes (tracker at 50 Hz, 300 units) through its update
 methods and fit them, the time it then takes to fit the filter's likelihood
-temperature for 20 ms steps (``PlaceModel.likelihood_temperature``), and the
+temperature and its drift for 20 ms steps (``PlaceModel.likelihood_temperature``), and the
 time for a fresh Python process, with numba's on-disk cache warm, to import
 the decoder and decode its first windows.
 """
@@ -61,7 +62,10 @@ RANDOM_WALK_SD_CM = 3.0
 #: movement gives, bench/accuracy.py), the default jump and a typical
 #: fitted temperature.
 FILTER_WALK_SD_CM, FILTER_UNIFORM_WEIGHT, FILTER_TEMPERATURE = 1.7, 1e-3, 2.0
-KINDS = ("uniform", "state_space", "filter")
+#: The filter with a drift towards the decoded velocity (``"filter_drift"``):
+#: a gain and time constant like those fitted on bench/accuracy.py's sessions.
+FILTER_DRIFT_GAIN, FILTER_VELOCITY_TIME_CONSTANT_S = 1.0, 1.0
+KINDS = ("uniform", "state_space", "filter", "filter_drift")
 BACKGROUND_HZ = 0.05
 TARGET_UNITS, TARGET_BINS = 300, 10_000
 TARGET_P99_MS, TARGET_RATIO = 0.5, 3.0
@@ -170,17 +174,19 @@ def run_case(env: Environment, n_units: int, kind: str, n_steps: int, warmup: in
     """One case; ``kind`` is a prior of the sliding window (``"uniform"``, ``"state_space"``) or ``"filter"``."""
     rng = np.random.default_rng(seed)
     rates = place_maps(env, n_units, rng)
-    windows = window_counts(env, rates, n_steps + warmup, rng, STEP_S if kind == "filter" else WINDOW_S)
+    windows = window_counts(env, rates, n_steps + warmup, rng, STEP_S if kind.startswith("filter") else WINDOW_S)
     return time_backends(env, rates, windows, kind, warmup)
 
 
 def _decoder(env: Environment, rates: np.ndarray, kind: str, zones: np.ndarray | None, backend: str) -> BayesDecoder:
     """The decoder of a case, as ``decoder.session.steps.build_decoder`` makes it for that method."""
-    if kind == "filter":
+    if kind in ("filter", "filter_drift"):
+        drift = kind == "filter_drift"
         return BayesDecoder(
             rates, env, env.valid_mask, STEP_S, prior="state_space", random_walk_sd_cm=FILTER_WALK_SD_CM,
             uniform_weight=FILTER_UNIFORM_WEIGHT, likelihood_temperature=FILTER_TEMPERATURE, zone_masks=zones,
-            backend=backend,
+            drift_gain=FILTER_DRIFT_GAIN if drift else 0.0,
+            velocity_time_constant_s=FILTER_VELOCITY_TIME_CONSTANT_S, backend=backend,
         )
     return BayesDecoder(
         rates, env, env.valid_mask, WINDOW_S, prior=kind, random_walk_sd_cm=RANDOM_WALK_SD_CM, zone_masks=zones,
@@ -337,9 +343,9 @@ def main(argv: list[str] | None = None) -> int:
     warm_s = warm_start_s(_HERE.parent)
     print(f"fresh process to first decoded windows with a warm cache: {warm_s:.2f} s")
 
-    target, target_filter = (
+    target, target_filter, target_drift = (
         next(c for c in cases if (c["units"], c["bins"], c["prior"]) == (TARGET_UNITS, TARGET_BINS, kind))
-        for kind in ("state_space", "filter")
+        for kind in ("state_space", "filter", "filter_drift")
     )
     checks = [
         (
@@ -360,6 +366,15 @@ def main(argv: list[str] | None = None) -> int:
             target_filter["numba_cpu_p99_ms"] <= TARGET_P99_MS,
         ),
         (f"... and >= {TARGET_RATIO:g}x the numpy twin at the median", target_filter["ratio_p50"] >= TARGET_RATIO),
+        (
+            f"{TARGET_UNITS} units x {TARGET_BINS} bins, filter with drift: numba p99 <= {TARGET_P99_MS} ms",
+            target_drift["numba_p99_ms"] <= TARGET_P99_MS,
+        ),
+        (
+            f"... counting CPU time only: numba p99 <= {TARGET_P99_MS} ms",
+            target_drift["numba_cpu_p99_ms"] <= TARGET_P99_MS,
+        ),
+        (f"... and >= {TARGET_RATIO:g}x the numpy twin at the median", target_drift["ratio_p50"] >= TARGET_RATIO),
         (f"temperature fit < {TARGET_TEMPERATURE_FIT_S:g} s", temperature_s < TARGET_TEMPERATURE_FIT_S),
         (f"30 min fit < {TARGET_FIT_S:g} s", fit_s < TARGET_FIT_S if not args.quick else None),
         (f"warm start < {TARGET_WARM_START_S:g} s", warm_s < TARGET_WARM_START_S),
@@ -380,7 +395,8 @@ def main(argv: list[str] | None = None) -> int:
                 "step_s": STEP_S,
                 "random_walk_sd_cm": RANDOM_WALK_SD_CM,
                 "filter": {"walk_sd_cm": FILTER_WALK_SD_CM, "uniform_weight": FILTER_UNIFORM_WEIGHT,
-                           "likelihood_temperature": FILTER_TEMPERATURE},
+                           "likelihood_temperature": FILTER_TEMPERATURE, "drift_gain": FILTER_DRIFT_GAIN,
+                           "velocity_time_constant_s": FILTER_VELOCITY_TIME_CONSTANT_S},
                 "timed_steps": n_steps,
                 "warmup_steps": warmup,
                 "fit_minutes": fit_minutes,

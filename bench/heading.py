@@ -194,6 +194,7 @@ def run(decode_s: float, seed: int) -> dict:
         "frames_heading_unknown": result.summary["input"].get("frames_heading_unknown"),
         "shuffle_test": shuffle,
         "units_rayleigh_p_below_0_001": rayleigh,
+        "filter": result.summary.get("session", {}).get("readiness", {}).get("filter"),
         "step_p50_ms": float(np.percentile(decode_ms, 50)),
         "step_p99_ms": float(np.percentile(decode_ms, 99)),
         "replay_wall_s": replay_wall_s,

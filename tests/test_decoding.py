@@ -18,8 +18,9 @@ from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
 from decoder.inference import _kernels
-from decoder.inference.decoding import BayesDecoder, DecodedStep, RandomWalk
+from decoder.inference.decoding import BayesDecoder, DecodedStep
 from decoder.inference.filtering import filter_posteriors
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 
 BACKENDS = ["numba", "numpy"]

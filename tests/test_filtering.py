@@ -16,13 +16,14 @@ import pytest
 from hmmlearn.hmm import PoissonHMM
 from scipy import stats
 
-from decoder.inference.decoding import BayesDecoder, RandomWalk
+from decoder.inference.decoding import BayesDecoder
 from decoder.inference.filtering import (
     filter_posteriors,
     hpd_contains,
     hpd_mass,
     tempered_log_likelihood,
 )
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Arena, LinearTrack, TrackGraph
 
 

@@ -128,7 +128,7 @@ def _predict_grid_compiled(p, ny, nx, kernel, mask_f, inv_norm, out, scratch=Non
     y0, y1 = K._support_rows(p, nx, 0, ny - 1)
     reach = kernel.size // 2
     grid_scratch = np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach))
-    y0, y1 = K._predict_grid_rows(p, ny, nx, kernel, mask_f, inv_norm, y0, y1, out, grid_scratch)
+    y0, y1 = K._predict_grid_rows(p, ny, nx, kernel, kernel, True, mask_f, inv_norm, y0, y1, out, grid_scratch)
     out[: y0 * nx] = 0.0
     out[(y1 + 1) * nx :] = 0.0
     return out
@@ -347,6 +347,7 @@ def _step_arguments(rng: np.random.Generator, n_units: int, kind: int, uniform_w
         kernel,
         mask_f,
         inv_norm,
+        np.zeros(n_bins, bool),
         np.zeros((1, 1)),
         cx * 2.0 + 1.0,
         cy * 2.0 + 1.0,
@@ -362,6 +363,7 @@ class _StepState:
 
     def __init__(self, n_units: int, n_bins: int, grid_len: int, n_zones: int):
         self.state = np.array([-1, 0, 0, 0], np.int64)
+        self.drift = np.zeros(K.DRIFT_SIZE)
         self.unit_counts = np.zeros((3, n_units))
         self.unit_rows = np.empty(n_units, np.int64)
         self.log_like = np.empty(n_bins)
@@ -373,7 +375,7 @@ class _StepState:
     def step(self, kernel, rows, counts, model):
         out = np.empty(self.out_size)
         result = kernel(
-            rows, counts, *model, self.state, self.unit_counts, self.unit_rows, self.log_like,
+            rows, counts, *model, self.state, self.drift, self.unit_counts, self.unit_rows, self.log_like,
             self.previous, self.no_marks, *self.after, out,
         )  # fmt: skip
         if result[0] < 0:

@@ -16,7 +16,7 @@ import pytest
 from scipy import integrate, stats
 
 from decoder.encoding.movement import MovementModel, default_uniform_weight
-from decoder.inference.decoding import RandomWalk
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import LinearTrack
 
 FRAME_S = 0.02

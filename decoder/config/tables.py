@@ -174,6 +174,13 @@ class DecoderSettings:
     #: model). Unset (the default): fitted from the learning data at fit time
     #: (decoder.encoding.calibration) and saved with the model; set it only to override.
     likelihood_temperature: float | None = None
+    #: For method = "filter": the walk drifts each step by this share (0..1) of the
+    #: decoder's own velocity (the decoded position's displacement per step, averaged
+    #: over a fitted time constant; never the tracker's), so the prior keeps up with a
+    #: running animal. Unset (the default): fitted with the temperature at fit time from
+    #: held-out learning steps and saved with the model (0 where no drift helps); 0 turns
+    #: the drift off (the plain random walk); set it only to override.
+    drift_gain: float | None = None
     #: A step closes when the spike stream's data time passes its end by this much (s).
     allowed_lateness_s: float = 0.005
 
@@ -181,6 +188,11 @@ class DecoderSettings:
         _positive("decoder", window_s=self.window_s, step_s=self.step_s, random_walk_sd_cm=self.random_walk_sd_cm)
         if self.likelihood_temperature is not None:
             _positive("decoder", likelihood_temperature=self.likelihood_temperature)
+        if self.drift_gain is not None and not (
+            isinstance(self.drift_gain, (int, float)) and not isinstance(self.drift_gain, bool)
+            and 0 <= self.drift_gain <= 1
+        ):
+            raise ConfigError(f"[decoder] drift_gain must be a number from 0 to 1, got {self.drift_gain!r}")
         if self.method not in get_args(Method):
             raise ConfigError(f"[decoder] method must be one of {get_args(Method)}, got {self.method!r}")
         if self.prior not in get_args(Prior):

@@ -33,12 +33,19 @@ regions' mass hardly moves, so the fit is a bisection on ``log T``.
 
 The same held-out steps choose the decoded position, the point estimate
 the session scores and shows: the MAP bin's centre or the posterior mean,
-whichever lies closer to the tracked position in the median, at the fitted
+whichever lies closer to the tracked position in the median (the mean by a
+margin, ``_MEAN_MARGIN``), at the fitted
 temperature. Where the posterior is broad and round (an open arena) the
 mean averages out the bins' quantisation and the MAP's jumps between
 neighbouring peaks; where it is split between arms or along a track's two
 directions the mean falls between the modes, and the MAP wins. Which one
 wins depends on the session, so the learning data decide.
+
+The same held-out steps choose the drift of the walk towards the decoded
+velocity (:func:`fit_drift`): its gain and the time constant of the
+velocity's average, by the held-out median error at the plain walk's
+temperature; the
+temperature is then fitted again with the drift, whose coverage it is.
 
 References
 ----------
@@ -50,13 +57,17 @@ data).
 from __future__ import annotations
 
 import itertools
+import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from decoder.inference.decoding import HPD_MASS, BayesDecoder, RandomWalk
+from decoder.inference.decoding import HPD_MASS, BayesDecoder
+from decoder.inference.random_walk import RandomWalk
+
+logger = logging.getLogger(__name__)
 
 #: Largest temperature tried; a model that needs more is not a place code
 #: worth decoding, and the fit says so through ``coverage``.
@@ -66,8 +77,39 @@ MAX_TEMPERATURE = 20.0
 #: finer than the sampling error of a coverage from a few thousand steps.
 _BISECTION_STEPS = 6
 
+#: A refit near a known temperature brackets it by this factor either side
+#: and bisects it twice: to 1.25^(1/4), 6 %, about as fine as a full fit (5 %).
+_NEAR_FACTOR = 1.25
+_NEAR_BISECTION_STEPS = 2
+
+#: The first second of every held-out run is decoded but neither its
+#: coverage nor its error counts: it starts from a flat prior and no
+#: velocity, a start the session's one long run makes once, and the
+#: velocity's average takes about its time constant to settle.
+BURN_IN_S = 1.0
+
 #: The mean mass of the HPD regions is taken over every 8th held-out step.
 _MASS_EVERY = 8
+
+#: The posterior mean becomes the decoded position only if its held-out
+#: median error is this share below the MAP's: the mean of a posterior split
+#: between two arms lies between them, off the track, a risk that a median
+#: over a minute of held-out steps may not show; a near tie goes to the MAP.
+_MEAN_MARGIN = 0.05
+
+#: Drift gains and time constants of the decoded velocity (s) that
+#: :func:`fit_drift` tries: a rat's runs last a second or two (common
+#: practice), so the velocity must follow within a fraction of that, and a
+#: gain of 1 moves the prior exactly as far as the decoded point moved.
+DRIFT_GAINS = (0.5, 1.0)
+VELOCITY_TIME_CONSTANTS_S = (0.5, 1.0, 2.0)
+
+#: A drift is kept only if it lowers the held-out median error by more than
+#: this share: it is two more numbers fitted on one minute of strongly
+#: correlated steps, and it changes how the posterior is calibrated (the
+#: temperature is refitted for it, on maps fitted without the held-out
+#: block), so the plain walk wins ties, noise and small gains.
+_DRIFT_MIN_GAIN = 0.05
 
 
 
@@ -95,7 +137,12 @@ class TemperatureFit:
         steps with a known position; NaN when no positions were given (and
         in model files written before the choice was made).
     point_estimate : {"map", "mean"}
-        The one with the smaller median (the MAP on a tie or without positions).
+        The one with the smaller median, the mean only if smaller by
+        ``_MEAN_MARGIN`` (the MAP on a near tie or without positions).
+    drift_gain, velocity_time_constant_s : float
+        The drift the filter decodes with and the temperature was fitted
+        for (:class:`DriftFit`); a gain of 0 (and in model files written
+        before the drift was fitted) is the plain walk.
     """
 
     temperature: float
@@ -106,6 +153,32 @@ class TemperatureFit:
     map_median_cm: float = field(default=math.nan)
     mean_median_cm: float = field(default=math.nan)
     point_estimate: str = "map"
+    drift_gain: float = 0.0
+    velocity_time_constant_s: float = 1.0
+
+
+@dataclass(frozen=True)
+class DriftFit:
+    """The drift of the filter's walk towards the decoded velocity, chosen on held-out steps.
+
+    Attributes
+    ----------
+    gain : float
+        In [0, 1]: the drift per step is ``gain`` times the decoded velocity
+        (``BayesDecoder(drift_gain=...)``); 0 is the plain walk.
+    velocity_time_constant_s : float
+        Time constant of the decoded velocity's exponential average (s).
+    median_cm : float
+        Held-out median error of the better point estimate at this drift
+        (NaN for the default, not fitted).
+    median_without_cm : float
+        The same without drift.
+    """
+
+    gain: float = 0.0
+    velocity_time_constant_s: float = 1.0
+    median_cm: float = math.nan
+    median_without_cm: float = math.nan
 
 
 def blocked_folds(n_steps: int, n_folds: int) -> list[tuple[int, int]]:
@@ -143,6 +216,8 @@ def fit_temperature(
     uniform_weight: float,
     rate_floor_hz: float = 0.01,
     fold_true_xy_cm: Sequence[np.ndarray] | None = None,
+    drift: DriftFit | None = None,
+    near: TemperatureFit | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -166,7 +241,16 @@ def fit_temperature(
         Tracked position at the end of each step (NaN where unknown): with
         them the MAP and the posterior mean are scored at the fitted
         temperature, by ``walk.environment.distance_cm``, and the closer
-        one becomes ``point_estimate``.
+        one (the mean by ``_MEAN_MARGIN``) becomes ``point_estimate``.
+    drift : DriftFit, optional
+        The drift the filter decodes with (:func:`fit_drift`); none by
+        default. It is kept in the returned fit.
+    near : TemperatureFit, optional
+        A fit the answer is expected near (the plain walk's, when refitting
+        for a drift): the bisection starts from a bracket of
+        ``_NEAR_FACTOR`` either side of its temperature when that bracket
+        holds the answer (about half the passes), and its
+        ``coverage_at_1`` is kept rather than measured again.
 
     Returns
     -------
@@ -207,12 +291,15 @@ def fit_temperature(
             raise ValueError(f"fold {k}: {np.shape(counts)[0]} steps of counts but true bins of shape {bins.shape}")
     if fold_true_xy_cm is not None and [np.shape(xy) for xy in fold_true_xy_cm] != [(b.size, 2) for b in truths]:
         raise ValueError("fold_true_xy_cm must hold one (n_steps_k, 2) array of positions per fold, like the true bins")
+    truths = [np.where(_burning_in(step_s, b.size), -1, b) for b in truths]
+    if fold_true_xy_cm is not None:
+        fold_true_xy_cm = [_unscored(step_s, xy) for xy in fold_true_xy_cm]
     n_known = int(sum((b >= 0).sum() for b in truths))
     if n_known == 0:
         raise ValueError("no held-out step has a known true bin; the tracker was lost throughout")
+    drift = drift or DriftFit()
 
-    # Each held-out step as the decoder takes it: the rows that fired and their counts.
-    fired = [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
+    fired = _fired(fold_counts)
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
 
     def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
@@ -229,7 +316,7 @@ def fit_temperature(
             decoder = BayesDecoder(
                 rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
                 uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
-                backend=walk.backend,
+                drift_gain=drift.gain, velocity_time_constant_s=drift.velocity_time_constant_s, backend=walk.backend,
             )
             for (rows, counts), true_bin in zip(steps, bins.tolist()):
                 step = decoder.decode(rows, counts)
@@ -255,25 +342,147 @@ def fit_temperature(
                    else math.nan for i in (0, 2)]
         return (*figures, *medians)
 
+    coverage_at_1 = math.nan if near is None else near.coverage_at_1
+
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
         if fold_true_xy_cm is None:
-            return TemperatureFit(temperature, cov, at_1[0], mass, n_known)
+            return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
+                                  velocity_time_constant_s=drift.velocity_time_constant_s)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
-        choice = "mean" if mean_cm < map_cm else "map"
-        return TemperatureFit(temperature, cov, at_1[0], mass, n_known, map_cm, mean_cm, choice)
+        choice = "mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map"
+        return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm, choice, drift.gain,
+                              drift.velocity_time_constant_s)
 
+    def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
+        for _ in range(steps):
+            mid = math.sqrt(lo[0] * hi[0])  # bisection on log T
+            at_mid = (mid, *held_out(mid))
+            if at_mid[1] >= at_mid[2]:
+                hi = at_mid
+            else:
+                lo = at_mid
+        return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+
+    if near is not None:
+        # A bracket of _NEAR_FACTOR either side of the expected temperature, when it holds the answer.
+        at_near = (near.temperature, *held_out(near.temperature))
+        covers = at_near[1] >= at_near[2]
+        if covers:
+            other = max(1.0, near.temperature / _NEAR_FACTOR)
+        else:
+            other = min(MAX_TEMPERATURE, near.temperature * _NEAR_FACTOR)
+        at_other = (other, *held_out(other))
+        if (at_other[1] >= at_other[2]) != covers:
+            return bisect(*((at_other, at_near) if covers else (at_near, at_other)), _NEAR_BISECTION_STEPS)
+        if other in (1.0, MAX_TEMPERATURE):
+            return fit(*at_other)
     at_1 = held_out(1.0)
+    coverage_at_1 = at_1[0]
     if at_1[0] >= at_1[1]:
         return fit(1.0, *at_1)
     at_max = held_out(MAX_TEMPERATURE)
     if at_max[0] < at_max[1]:
         return fit(MAX_TEMPERATURE, *at_max)
-    lo, hi = (1.0, *at_1), (MAX_TEMPERATURE, *at_max)
-    for _ in range(_BISECTION_STEPS):
-        mid = math.sqrt(lo[0] * hi[0])  # bisection on log T
-        at_mid = (mid, *held_out(mid))
-        if at_mid[1] >= at_mid[2]:
-            hi = at_mid
-        else:
-            lo = at_mid
-    return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+    return bisect((1.0, *at_1), (MAX_TEMPERATURE, *at_max), _BISECTION_STEPS)
+
+
+def _burning_in(step_s: float, n_steps: int) -> np.ndarray:
+    """Which of a held-out run's ``n_steps`` fall in its first ``BURN_IN_S`` (at most half of them)."""
+    return np.arange(n_steps) < min(round(BURN_IN_S / step_s), n_steps // 2)
+
+
+def _unscored(step_s: float, xy_cm: np.ndarray) -> np.ndarray:
+    """Tracked positions (n, 2) of a held-out run, NaN (not scored) in its burn-in."""
+    xy = np.array(xy_cm, dtype=np.float64).reshape(-1, 2)
+    xy[_burning_in(step_s, len(xy))] = np.nan
+    return xy
+
+
+def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+    """Each held-out step as the decoder takes it: the rows that fired and their counts."""
+    return [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
+
+
+def fit_drift(
+    fold_rate_maps_hz: Sequence[np.ndarray],
+    fold_counts: Sequence[np.ndarray],
+    fold_true_xy_cm: Sequence[np.ndarray],
+    step_s: float,
+    walk: RandomWalk,
+    *,
+    uniform_weight: float,
+    temperature: float,
+    rate_floor_hz: float = 0.01,
+    median_without_cm: float | None = None,
+) -> DriftFit:
+    """Choose the drift gain and the velocity's time constant by held-out median error.
+
+    The held-out blocks are decoded (as :func:`fit_temperature` does, at
+    ``temperature``) with each of ``DRIFT_GAINS`` at the middle one of
+    ``VELOCITY_TIME_CONSTANTS_S``, then with the best of those gains at the
+    other time constants (a search one coordinate at a time: four passes
+    where the whole grid takes six); the pair whose better point estimate
+    (MAP or posterior mean) has the smallest median distance from the
+    tracked position wins, if it beats the plain walk by more than
+    ``_DRIFT_MIN_GAIN``. The velocity is the filter's own decoded one, so
+    the choice needs no tracking at decoding time.
+
+    Parameters
+    ----------
+    fold_rate_maps_hz, fold_counts, step_s, walk, uniform_weight, rate_floor_hz
+        As in :func:`fit_temperature`.
+    fold_true_xy_cm : sequence of ndarray, each shape (n_steps_k, 2)
+        Tracked position at the end of each step (NaN where unknown).
+    temperature : float
+        The likelihood temperature to decode with.
+    median_without_cm : float, optional
+        The plain walk's held-out median at ``temperature``, when known
+        (``min(TemperatureFit.map_median_cm, mean_median_cm)``): saves a pass.
+
+    Returns
+    -------
+    DriftFit
+
+    Raises
+    ------
+    ValueError
+        For sequences of different lengths or no step with a known position.
+    """
+    if not len(fold_rate_maps_hz) == len(fold_counts) == len(fold_true_xy_cm):
+        raise ValueError("give one rate-map set, count array and position array per fold")
+    truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
+    known = np.all(np.isfinite(truth), axis=1)
+    if not known.any():
+        raise ValueError("no held-out step has a known position; the tracker was lost throughout")
+    fired = _fired(fold_counts)
+    env = walk.environment
+
+    def median_cm(gain: float, time_constant_s: float) -> float:
+        points = []
+        for rates, steps in zip(fold_rate_maps_hz, fired):
+            decoder = BayesDecoder(
+                rates, env, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
+                uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
+                drift_gain=gain, velocity_time_constant_s=time_constant_s, backend=walk.backend,
+            )
+            for rows, counts in steps:
+                step = decoder.decode(rows, counts)
+                points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
+        decoded = np.array(points)[known]
+        return min(float(np.median(env.distance_cm(decoded[:, i : i + 2], truth[known]))) for i in (0, 2))
+
+    without = median_cm(0.0, 1.0) if median_without_cm is None else median_without_cm
+    plain = DriftFit(median_cm=without, median_without_cm=without)
+
+    def tried(gain: float, time_constant_s: float) -> DriftFit:
+        error = median_cm(gain, time_constant_s)
+        logger.debug("drift gain %.2f over %.2f s: held-out median %.3f cm (%.3f without)", gain, time_constant_s,
+                     error, without)
+        return DriftFit(gain, time_constant_s, error, without)
+
+    # One coordinate at a time: the gains at the middle time constant, then the other time constants at the best gain.
+    middle = VELOCITY_TIME_CONSTANTS_S[len(VELOCITY_TIME_CONSTANTS_S) // 2]
+    best = min((tried(gain, middle) for gain in DRIFT_GAINS), key=lambda fit: fit.median_cm)
+    others = [tried(best.gain, t) for t in VELOCITY_TIME_CONSTANTS_S if t != middle]
+    best = min([best, *others], key=lambda fit: fit.median_cm)
+    return best if best.median_cm < without * (1.0 - _DRIFT_MIN_GAIN) else plain

@@ -42,7 +42,7 @@ import numpy as np
 from decoder.encoding.model_file import read_model_file, write_model_file
 from decoder.encoding.spatial_metrics import skaggs_information
 from decoder.inference import _mark_kernels
-from decoder.inference.decoding import positive_finite
+from decoder.inference.checks import positive_finite
 from decoder.messages import MAX_MARK_CHANNELS
 from decoder.space.environments import Environment
 

@@ -28,7 +28,7 @@ displacements are taken between valid frames only, and a lag is the actual
 time between them.
 
 :meth:`MovementModel.walk_sd_cm` translates the continuous walk into the s.d.
-of ``decoding.RandomWalk``, whose kernel is a Gaussian evaluated at bin
+of ``random_walk.RandomWalk``, whose kernel is a Gaussian evaluated at bin
 centres: at 20 ms steps a rat moves well under a bin, and a Gaussian of that
 s.d. at bin centres would never leave its bin.
 """
@@ -41,7 +41,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, stats
 
-from decoder.inference.decoding import TRUNCATE_SD, positive_finite
+from decoder.inference.checks import positive_finite
+from decoder.inference.random_walk import TRUNCATE_SD
 from decoder.space.environments import Environment
 
 #: Default probability per second of a jump to anywhere (uniform over the
@@ -206,7 +207,7 @@ class MovementModel:
         return cls(sd_cm=math.sqrt(variance), uniform_weight=uniform_weight, step_s=step_s)
 
     def walk_sd_cm(self, bin_cm: float) -> float:
-        """The s.d. to give ``decoding.RandomWalk`` for this walk on bins of ``bin_cm``.
+        """The s.d. to give ``random_walk.RandomWalk`` for this walk on bins of ``bin_cm``.
 
         ``RandomWalk`` weighs bin offsets ``k`` by a Gaussian at the offset
         of the bin centres, ``exp(-(k bin_cm)^2 / 2 s^2)``, cut at

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
-from decoder.encoding.calibration import TemperatureFit, fit_temperature
+from decoder.encoding.calibration import TemperatureFit, fit_drift, fit_temperature
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
 from decoder.encoding.held_out import HeldOutSpikes
@@ -34,14 +34,15 @@ from decoder.encoding.movement import MovementModel, default_uniform_weight
 from decoder.encoding.online_counts import OnlineCounts
 from decoder.encoding.readiness import Readiness, coarse_tuning_grid, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
-from decoder.inference.decoding import RandomWalk
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment, HeadingRing
 
 logger = logging.getLogger(__name__)
 
 #: Most held-out steps the temperature is fitted on: the newest minute at 20 ms
-#: steps. Each of the fit's eight passes decodes them all (bench/decoder.py
-#: times the whole fit).
+#: steps. Each of the fit's passes decodes them all: about nine for the
+#: temperature, four for the drift and five to refit the temperature with it
+#: (bench/decoder.py times the whole fit).
 MAX_CALIBRATION_STEPS = 3_000
 
 #: Tracked frames in the running median that the held-out steps are scored
@@ -327,6 +328,31 @@ class PlaceModel(OnlineCounts):
         self.likelihood_temperature(step_s)
         return self.temperature_fits_[float(step_s)].point_estimate
 
+    def drift(self, step_s: float) -> tuple[float, float]:
+        """The filter's drift for steps of ``step_s``: gain and velocity time constant (s), fitted with the temperature.
+
+        :meth:`likelihood_temperature`'s fit chooses them on the same
+        held-out steps (``decoder.encoding.calibration.fit_drift``); a model
+        file written before the drift was fitted says gain 0, the plain walk.
+
+        Parameters
+        ----------
+        step_s : float
+
+        Returns
+        -------
+        gain : float
+        velocity_time_constant_s : float
+
+        Raises
+        ------
+        ValueError
+            As :meth:`likelihood_temperature`.
+        """
+        self.likelihood_temperature(step_s)
+        fit = self.temperature_fits_[float(step_s)]
+        return fit.drift_gain, fit.velocity_time_constant_s
+
     def _fit_temperature(self, step_s: float) -> TemperatureFit:
         if not hasattr(self, "rate_maps_hz_"):
             raise ValueError("the place model is not fitted; fit it before asking for its likelihood temperature")
@@ -359,13 +385,21 @@ class PlaceModel(OnlineCounts):
             fold_bins.append(true_bins[run])
             fold_xy.append(true_xy[run])
         walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
-        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, uniform_weight=movement.uniform_weight,
-                              rate_floor_hz=self.rate_floor_hz, fold_true_xy_cm=fold_xy)
+        common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz)
+        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy, **common)
+        # The drift is chosen at the plain walk's temperature, then the temperature refitted for it.
+        drift = fit_drift(fold_maps, fold_counts, fold_xy, step_s, walk, temperature=fit.temperature,
+                          median_without_cm=min(fit.map_median_cm, fit.mean_median_cm), **common)
+        if drift.gain > 0:
+            fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
+                                  drift=drift, near=fit, **common)
         logger.info(
             "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
-            "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f)",
+            "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f); drift gain %.2f on the decoded "
+            "velocity over %.2f s (held-out median %.2f cm, %.2f without)",
             fit.temperature, step_s, fit.coverage, fit.coverage_at_1, fit.n_steps, fit.point_estimate,
-            min(fit.map_median_cm, fit.mean_median_cm), fit.map_median_cm, fit.mean_median_cm,
+            min(fit.map_median_cm, fit.mean_median_cm), fit.map_median_cm, fit.mean_median_cm, drift.gain,
+            drift.velocity_time_constant_s, drift.median_cm, drift.median_without_cm,
         )
         return fit
 

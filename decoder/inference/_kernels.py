@@ -507,8 +507,31 @@ def _symmetric_filter(src, kernel_1d, step, dst):
         k += 1
 
 
+@numba.njit(cache=True, fastmath={"contract"})
+def _filter(src, kernel_1d, step, dst):
+    """``dst[j] = sum_k kernel_1d[k] * src[j + k * step]``, any kernel (:func:`_symmetric_filter` for symmetric ones).
+
+    Parameters
+    ----------
+    src : ndarray, shape (>= len(dst) + 2 * r * step,), float64
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+    step : int
+    dst : ndarray, float64
+        Receives the result; must not overlap ``src``.
+    """
+    n = dst.shape[0]
+    w = kernel_1d[0]
+    for j in range(n):
+        dst[j] = w * src[j]
+    for k in range(1, kernel_1d.shape[0]):
+        a = src[k * step : k * step + n]
+        w = kernel_1d[k]
+        for j in range(n):
+            dst[j] += w * a[j]
+
+
 @numba.njit(cache=True)
-def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid_scratch):
+def _predict_grid_rows(p, ny, nx, kernel_x, kernel_y, symmetric, mask_f, inv_norm, y0, y1, out, grid_scratch):
     """The random-walk step of :func:`predict_grid_numpy` for a ``p`` that is 0 outside rows ``y0..y1``.
 
     Only the rows ``y0 - r .. y1 + r`` (``r`` the kernel's reach) can receive
@@ -524,8 +547,15 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
     p : ndarray, shape (ny * nx,), float64
         Current posterior, 0 outside rows ``y0..y1`` and outside the valid
         bins. May be the same array as ``out``.
-    ny, nx, kernel_1d, mask_f, inv_norm
-        As in :func:`predict_grid_numpy` (``kernel_1d`` symmetric).
+    ny, nx, mask_f, inv_norm
+        As in :func:`predict_grid_numpy`; ``inv_norm`` is read on the
+        non-zero bins of ``p`` only.
+    kernel_x, kernel_y : ndarray, shape (2 * r + 1,), float64
+        The walk along x and along y, as the filter takes them:
+        ``kernel[k]`` weighs a move of ``r - k`` bins (for a symmetric
+        kernel, the walk's own kernel; tilted ones from :func:`tilt_kernels`).
+    symmetric : bool
+        Both kernels symmetric: the filter adds paired taps first.
     y0, y1 : int
         Inclusive, ``0 <= y0 <= y1 < ny``.
     out : ndarray, shape (ny * nx,), float64
@@ -538,7 +568,7 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
     y0, y1 : int
         Inclusive rows that may hold non-zero predictions.
     """
-    r = kernel_1d.shape[0] // 2
+    r = kernel_x.shape[0] // 2
     stride = nx + 2 * r
     # Grid row iy, column ix is rows_in[iy * stride + r + ix] before the x
     # pass and along_x[(iy + r) * stride + r + ix] after it (r zero rows on
@@ -559,14 +589,20 @@ def _predict_grid_rows(p, ny, nx, kernel_1d, mask_f, inv_norm, y0, y1, out, grid
     # columns between rows get values that only ever reach padding columns.
     j0 = y0 * stride + r
     j1 = y1 * stride + r + nx
-    _symmetric_filter(rows_in[j0 - r : j1 + r], kernel_1d, 1, along_x[j0 + r * stride : j1 + r * stride])
+    if symmetric:
+        _symmetric_filter(rows_in[j0 - r : j1 + r], kernel_x, 1, along_x[j0 + r * stride : j1 + r * stride])
+    else:
+        _filter(rows_in[j0 - r : j1 + r], kernel_x, 1, along_x[j0 + r * stride : j1 + r * stride])
     # Every row the y pass reads (grid rows out_y0 - r .. out_y1 + r) that
     # the x pass did not write is zero.
     along_x[out_y0 * stride : (y0 + r) * stride] = 0.0
     along_x[(y1 + 1 + r) * stride : (out_y1 + 2 * r + 1) * stride] = 0.0
     j0 = out_y0 * stride + r
     j1 = out_y1 * stride + r + nx
-    _symmetric_filter(along_x[j0 : j1 + 2 * r * stride], kernel_1d, stride, rows_in[j0:j1])
+    if symmetric:
+        _symmetric_filter(along_x[j0 : j1 + 2 * r * stride], kernel_y, stride, rows_in[j0:j1])
+    else:
+        _filter(along_x[j0 : j1 + 2 * r * stride], kernel_y, stride, rows_in[j0:j1])
     for iy in range(out_y0, out_y1 + 1):
         dst = out[iy * nx : (iy + 1) * nx]
         src = rows_in[iy * stride + r : iy * stride + r + nx]
@@ -649,6 +685,251 @@ def predict_dense_numpy(p, transition, out):
     """Numpy twin of :func:`predict_dense`."""
     with np.errstate(under="ignore"):
         out[:] = p @ transition
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Drift: the walk tilted towards the decoded velocity
+# ---------------------------------------------------------------------------
+
+#: Slots of the float64 ``drift`` vector of :func:`decode_step`. Settings:
+#: the gain on the velocity (0: no drift, the plain walk), the weight of the
+#: newest displacement in the velocity's exponential average
+#: (``1 - exp(-step_s / time_constant_s)``), ``1 / s^2`` of the walk (1/cm²),
+#: the longest drift and displacement per step (cm), and the grid's bin (cm).
+#: State between calls: the velocity (cm per step, x and y), the last
+#: decoded point (cm), and whether there is one (1.0) or not (0.0).
+DRIFT_GAIN, DRIFT_ALPHA, DRIFT_INV_VAR, DRIFT_MAX_CM, DRIFT_BIN_CM = 0, 1, 2, 3, 4
+DRIFT_VX, DRIFT_VY, DRIFT_LAST_X, DRIFT_LAST_Y, DRIFT_HAS_LAST = 5, 6, 7, 8, 9
+DRIFT_SIZE = 10
+
+
+@numba.njit(cache=True)
+def drift_tilt(drift):
+    """The tilt of the next step's walk: ``gain * velocity / s^2`` (1/cm), the drift at most ``DRIFT_MAX_CM`` long.
+
+    Multiplying a Gaussian step kernel ``N(d; 0, s^2)`` by ``exp(theta . d)``
+    and renormalising gives ``N(d; s^2 theta, s^2)`` exactly (exponential
+    tilting), so ``theta = mu / s^2`` moves the walk's mean to the drift
+    ``mu = gain * velocity`` and leaves its spread alone.
+
+    Parameters
+    ----------
+    drift : ndarray, shape (DRIFT_SIZE,), float64
+
+    Returns
+    -------
+    theta_x, theta_y : float
+    """
+    mu_x = drift[DRIFT_GAIN] * drift[DRIFT_VX]
+    mu_y = drift[DRIFT_GAIN] * drift[DRIFT_VY]
+    size = math.sqrt(mu_x * mu_x + mu_y * mu_y)
+    cap = drift[DRIFT_MAX_CM]
+    if size > cap:
+        mu_x *= cap / size
+        mu_y *= cap / size
+    return mu_x * drift[DRIFT_INV_VAR], mu_y * drift[DRIFT_INV_VAR]
+
+
+@numba.njit(cache=True)
+def update_velocity(drift, x_cm, y_cm):
+    """Fold the step's decoded point into the velocity: an exponential average of its displacement per step.
+
+    A displacement longer than ``DRIFT_MAX_CM`` (a jump of the estimate
+    between two modes, not movement) is shortened to it.
+
+    Parameters
+    ----------
+    drift : ndarray, shape (DRIFT_SIZE,), float64
+        Updated in place.
+    x_cm, y_cm : float
+        The step's decoded point.
+    """
+    if drift[DRIFT_HAS_LAST] == 1.0:
+        dx = x_cm - drift[DRIFT_LAST_X]
+        dy = y_cm - drift[DRIFT_LAST_Y]
+        size = math.sqrt(dx * dx + dy * dy)
+        cap = drift[DRIFT_MAX_CM]
+        if size > cap:
+            dx *= cap / size
+            dy *= cap / size
+        a = drift[DRIFT_ALPHA]
+        drift[DRIFT_VX] += a * (dx - drift[DRIFT_VX])
+        drift[DRIFT_VY] += a * (dy - drift[DRIFT_VY])
+    drift[DRIFT_LAST_X] = x_cm
+    drift[DRIFT_LAST_Y] = y_cm
+    drift[DRIFT_HAS_LAST] = 1.0
+
+
+@numba.njit(cache=True)
+def tilt_kernels(kernel_1d, bin_cm, theta_x, theta_y, kernel_x, kernel_y):
+    """The grid walk tilted by ``theta``, per axis, as :func:`_predict_grid_rows` takes it.
+
+    ``kernel[k]`` weighs a move of ``d = (r - k) * bin_cm``: ``kernel_1d[k] *
+    exp(theta * d)`` (``kernel_1d`` symmetric). A separable tilt of a
+    separable kernel stays separable.
+
+    Parameters
+    ----------
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+        The walk's symmetric kernel.
+    bin_cm, theta_x, theta_y : float
+    kernel_x, kernel_y : ndarray, shape (2 * r + 1,), float64
+        Receive the tilted kernels.
+    """
+    r = kernel_1d.shape[0] // 2
+    for k in range(kernel_1d.shape[0]):
+        d = (r - k) * bin_cm
+        kernel_x[k] = kernel_1d[k] * math.exp(theta_x * d)
+        kernel_y[k] = kernel_1d[k] * math.exp(theta_y * d)
+
+
+def tilt_kernels_numpy(kernel_1d, bin_cm, theta_x, theta_y, kernel_x, kernel_y):
+    """Numpy twin of :func:`tilt_kernels`."""
+    r = kernel_1d.shape[0] // 2
+    d = (r - np.arange(kernel_1d.shape[0])) * bin_cm
+    kernel_x[:] = kernel_1d * np.exp(theta_x * d)
+    kernel_y[:] = kernel_1d * np.exp(theta_y * d)
+
+
+@numba.njit(cache=True)
+def _tilted_inv_norm(p, ny, nx, kernel_x, kernel_y, mask_f, interior, y0, y1, inv):
+    """``inv[i] = 1 / sum_j K_tilted(i -> j) m_j`` on the non-zero bins of ``p`` in rows ``y0..y1``.
+
+    A bin whose whole reach is valid (``interior``) sums the full kernels,
+    ``sum(kernel_x) * sum(kernel_y)``; only bins near a wall or the grid's
+    edge sum their reach bin by bin, and a posterior touches few of them.
+    """
+    r = kernel_x.shape[0] // 2
+    full = 0.0
+    for k in range(kernel_x.shape[0]):
+        full += kernel_x[k]
+    sum_y = 0.0
+    for k in range(kernel_y.shape[0]):
+        sum_y += kernel_y[k]
+    full = 1.0 / (full * sum_y)
+    for iy in range(y0, y1 + 1):
+        for ix in range(nx):
+            i = iy * nx + ix
+            if p[i] == 0.0:
+                # Read beside the non-zero bins: a number, never what the buffer held.
+                inv[i] = 0.0
+                continue
+            if interior[i]:
+                inv[i] = full
+                continue
+            total = 0.0
+            # kernel[k] weighs a move of r - k bins: to row iy + r - ky, column ix + r - kx.
+            for ky in range(max(0, iy + r - ny + 1), min(2 * r + 1, iy + r + 1)):
+                row = (iy + r - ky) * nx
+                part = 0.0
+                for kx in range(max(0, ix + r - nx + 1), min(2 * r + 1, ix + r + 1)):
+                    part += kernel_x[kx] * mask_f[row + ix + r - kx]
+                total += kernel_y[ky] * part
+            inv[i] = 1.0 / total
+
+
+def predict_grid_tilted_numpy(p, ny, nx, kernel_1d, bin_cm, theta_x, theta_y, mask_f, out):
+    """One step of the tilted random walk on a grid arena, written out with numpy (a step of :func:`decode_step_numpy`).
+
+    ``T[i, j] = K(j - i) exp(theta . (c_j - c_i)) m_j / sum_k K(k - i)
+    exp(theta . (c_k - c_i)) m_k``: the walk's separable kernel ``K``
+    reweighted towards ``theta`` and normalised over the valid bins of each
+    row, so no mass leaves the arena. ``theta = 0`` is
+    :func:`predict_grid_numpy`'s walk.
+
+    Parameters
+    ----------
+    p : ndarray, shape (ny * nx,), float64
+        Current posterior, 0 outside the valid bins.
+    ny, nx : int
+    kernel_1d : ndarray, shape (2 * r + 1,), float64
+        The walk's symmetric kernel, ``kernel_1d[r + k]`` for a move of ``k`` bins.
+    bin_cm, theta_x, theta_y : float
+        Bin size (cm) and the tilt (1/cm, :func:`drift_tilt`).
+    mask_f : ndarray, shape (ny * nx,), float64
+    out : ndarray, shape (ny * nx,), float64
+        Receives the prediction.
+
+    Returns
+    -------
+    out : ndarray, shape (ny * nx,)
+    """
+    r = kernel_1d.shape[0] // 2
+    moves_cm = np.arange(-r, r + 1) * bin_cm
+    kx = kernel_1d * np.exp(theta_x * moves_cm)  # kx[r + k]: a move of k columns
+    ky = kernel_1d * np.exp(theta_y * moves_cm)
+    mask = np.pad(mask_f.reshape(ny, nx), r)
+    # Row sums: norm[i] = sum_k K(k) m_{i + k}.
+    norm = sum(ky[a] * kx[b] * mask[a : a + ny, b : b + nx] for a in range(2 * r + 1) for b in range(2 * r + 1))
+    valid = mask_f.reshape(ny, nx) > 0
+    q = np.pad(np.where(valid, p.reshape(ny, nx) / np.where(valid, norm, 1.0), 0.0), r)
+    # Mass from bin i - k arrives at bin i with weight K(k).
+    with np.errstate(under="ignore"):
+        moved = sum(ky[a] * kx[b] * q[2 * r - a : 2 * r - a + ny, 2 * r - b : 2 * r - b + nx]
+                    for a in range(2 * r + 1) for b in range(2 * r + 1))
+    out[:] = (moved * mask_f.reshape(ny, nx)).ravel()
+    return out
+
+
+@numba.njit(cache=True)
+def predict_dense_tilted(p, transition, centers_x_cm, centers_y_cm, theta_x, theta_y, out, scratch):
+    """One step of the tilted walk with an explicit transition: each row reweighted by ``exp(theta . (c_j - c_i))``.
+
+    ``T'[i, j] = T[i, j] exp(theta . (c_j - c_i)) / sum_k T[i, k] exp(theta .
+    (c_k - c_i))``: the planar displacement of each move projected on the
+    drift, so along a track, a graph's edges or the heading ring the walk
+    leans the way the decoded point moves, and moves ``T`` forbids stay
+    forbidden (mass never leaves the graph).
+
+    Parameters
+    ----------
+    p : ndarray, shape (n_bins,), float64
+    transition : ndarray, shape (n_bins, n_bins), float64, C-contiguous
+        Row-stochastic on the valid bins.
+    centers_x_cm, centers_y_cm : ndarray, shape (n_bins,), float64
+    theta_x, theta_y : float
+        The tilt, 1/cm (:func:`drift_tilt`).
+    out, scratch : ndarray, shape (n_bins,), float64
+        ``out`` receives the prediction; ``scratch`` is overwritten.
+
+    Returns
+    -------
+    out : ndarray, shape (n_bins,)
+    """
+    n = out.shape[0]
+    for j in range(n):
+        out[j] = 0.0
+    for i in range(n):
+        w = p[i]
+        if w == 0.0:
+            continue
+        row = transition[i]
+        cx = centers_x_cm[i]
+        cy = centers_y_cm[i]
+        total = 0.0
+        for j in range(n):
+            t = row[j]
+            if t != 0.0:
+                t *= math.exp(theta_x * (centers_x_cm[j] - cx) + theta_y * (centers_y_cm[j] - cy))
+            scratch[j] = t
+            total += t
+        w /= total
+        for j in range(n):
+            out[j] += w * scratch[j]
+    return out
+
+
+def predict_dense_tilted_numpy(p, transition, centers_x_cm, centers_y_cm, theta_x, theta_y, out, scratch):
+    """Numpy twin of :func:`predict_dense_tilted`: the tilted matrix formed, rows normalised, ``p @ T'``."""
+    shift = theta_x * (centers_x_cm[None, :] - centers_x_cm[:, None]) + theta_y * (
+        centers_y_cm[None, :] - centers_y_cm[:, None]
+    )
+    tilted = np.where(transition != 0.0, transition * np.exp(shift), 0.0)
+    total = tilted.sum(axis=1, keepdims=True)
+    tilted = np.divide(tilted, total, out=np.zeros_like(tilted), where=total > 0)
+    with np.errstate(under="ignore"):
+        out[:] = p @ tilted
     return out
 
 
@@ -1018,6 +1299,7 @@ def decode_step(
     kernel_1d,
     mask_f,
     inv_norm,
+    interior,
     transition,
     centers_x_cm,
     centers_y_cm,
@@ -1025,6 +1307,7 @@ def decode_step(
     zone_bins,
     hpd_mass,
     state,
+    drift,
     unit_counts,
     unit_rows,
     log_like,
@@ -1079,6 +1362,9 @@ def decode_step(
     kernel_1d, mask_f, inv_norm : ndarray, float64
         The random walk on a grid, as in :func:`predict_grid_numpy` (any 1-D
         arrays for other kinds).
+    interior : ndarray, shape (n_bins,), bool
+        On a grid, the bins whose whole reach of the walk is valid (see
+        :func:`_tilted_inv_norm`); any 1-D array for other kinds.
     transition : ndarray, shape (n_bins, n_bins), float64
         The dense transition, as in :func:`predict_dense` (any 2-D array for
         other kinds).
@@ -1092,6 +1378,14 @@ def decode_step(
         The filter's state between calls (see ``STATE_UPDATES``); updated.
         Set ``state[STATE_UPDATES] = -1`` and ``state[STATE_HAS_PREVIOUS] = 0``
         to start afresh.
+    drift : ndarray, shape (DRIFT_SIZE,), float64
+        The drift's settings and the velocity between calls (see
+        ``DRIFT_GAIN``); updated. With a gain above 0 and a transition the
+        walk is tilted by :func:`drift_tilt` (:func:`tilt_kernels` on a
+        grid, :func:`predict_dense_tilted` otherwise) and the posterior
+        mean is folded into the velocity (:func:`update_velocity`); a gain
+        of 0 leaves the walk and the vector untouched. Starting afresh
+        forgets the velocity.
     unit_counts : ndarray, shape (3, n_units), float64
         Row 0 holds the counts behind ``log_like`` between calls; rows 1
         and 2 are overwritten.
@@ -1150,7 +1444,7 @@ def decode_step(
         n_spikes += fired_counts[i]
     return _decode_counts(
         n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx,
-        kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state,
+        kernel_1d, mask_f, inv_norm, interior, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, drift,
         unit_counts, unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
     )
 
@@ -1158,7 +1452,7 @@ def decode_step(
 @numba.njit(cache=True)
 def _decode_counts(
     n_spikes, log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm,
-    transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts, unit_rows,
+    interior, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, drift, unit_counts, unit_rows,
     log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
 ):
     """:func:`decode_step` from the window's counts per unit, already in ``unit_counts[1]`` (checked)."""
@@ -1178,13 +1472,38 @@ def _decode_counts(
     # arithmetic below covers those rows only (bins j0..j1 - 1).
     y0, y1 = 0, ny - 1
     prior = uniform
+    drifting = drift[DRIFT_GAIN] > 0.0 and transition_kind != NO_TRANSITION
+    theta_x, theta_y = 0.0, 0.0
+    if drifting and state[STATE_HAS_PREVIOUS] == 0:
+        drift[DRIFT_VX] = 0.0
+        drift[DRIFT_VY] = 0.0
+        drift[DRIFT_HAS_LAST] = 0.0
+    elif drifting:
+        theta_x, theta_y = drift_tilt(drift)
+    tilted = theta_x != 0.0 or theta_y != 0.0
     if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
-        y0, y1 = _predict_grid_rows(
-            previous, ny, nx, kernel_1d, mask_f, inv_norm, state[STATE_Y0], state[STATE_Y1], predicted, grid_scratch
-        )
+        p_y0, p_y1 = state[STATE_Y0], state[STATE_Y1]
+        if tilted:
+            kernel_x = np.empty_like(kernel_1d)
+            kernel_y = np.empty_like(kernel_1d)
+            tilt_kernels(kernel_1d, drift[DRIFT_BIN_CM], theta_x, theta_y, kernel_x, kernel_y)
+            # scratch holds the tilted rows' normalisers until the summaries need it.
+            _tilted_inv_norm(previous, ny, nx, kernel_x, kernel_y, mask_f, interior, p_y0, p_y1, scratch)
+            y0, y1 = _predict_grid_rows(
+                previous, ny, nx, kernel_x, kernel_y, False, mask_f, scratch, p_y0, p_y1, predicted, grid_scratch
+            )
+        else:
+            y0, y1 = _predict_grid_rows(
+                previous, ny, nx, kernel_1d, kernel_1d, True, mask_f, inv_norm, p_y0, p_y1, predicted, grid_scratch
+            )
         prior = predicted
     elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
-        predict_dense(previous[:n_bins], transition, predicted)
+        if tilted:
+            predict_dense_tilted(
+                previous[:n_bins], transition, centers_x_cm, centers_y_cm, theta_x, theta_y, predicted, scratch
+            )
+        else:
+            predict_dense(previous[:n_bins], transition, predicted)
         prior = predicted
     if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
         # The uniform jump gives every valid bin prior mass: weigh them all.
@@ -1207,6 +1526,8 @@ def _decode_counts(
         post[j0:j1], total, centers_x_cm[j0:j1], centers_y_cm[j0:j1], _prob_floor(uniform_weight, uniform_level)
     )
     y0, y1 = _support_rows(post, nx, y0, y1)
+    if drifting:
+        update_velocity(drift, mean_x, mean_y)
     if transition_kind != NO_TRANSITION:
         state[STATE_HAS_PREVIOUS] = 1
         state[STATE_Y0] = y0
@@ -1243,6 +1564,7 @@ def decode_step_numpy(
     kernel_1d,
     mask_f,
     inv_norm,
+    interior,
     transition,
     centers_x_cm,
     centers_y_cm,
@@ -1250,6 +1572,7 @@ def decode_step_numpy(
     zone_bins,
     hpd_mass,
     state,
+    drift,
     unit_counts,
     unit_rows,
     log_like,
@@ -1272,8 +1595,23 @@ def decode_step_numpy(
         mark_terms[2] = log_like + mark_terms[0] - mark_terms[1]
         log_like = mark_terms[2]
     prior = uniform
-    if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
+    drifting = drift[DRIFT_GAIN] > 0.0 and transition_kind != NO_TRANSITION
+    theta_x, theta_y = 0.0, 0.0
+    if drifting and state[STATE_HAS_PREVIOUS] == 0:
+        drift[[DRIFT_VX, DRIFT_VY, DRIFT_HAS_LAST]] = 0.0
+    elif drifting:
+        theta_x, theta_y = drift_tilt.py_func(drift)
+    tilted = theta_x != 0.0 or theta_y != 0.0
+    if state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION and tilted:
+        prior = predict_grid_tilted_numpy(
+            previous[:n_bins], ny, nx, kernel_1d, drift[DRIFT_BIN_CM], theta_x, theta_y, mask_f, predicted
+        )
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == GRID_TRANSITION:
         prior = predict_grid_numpy(previous[:n_bins], ny, nx, kernel_1d, mask_f, inv_norm, predicted, scratch)
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION and tilted:
+        prior = predict_dense_tilted_numpy(
+            previous[:n_bins], transition, centers_x_cm, centers_y_cm, theta_x, theta_y, predicted, scratch
+        )
     elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
         prior = predict_dense_numpy(previous[:n_bins], transition, predicted)
     if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
@@ -1287,6 +1625,9 @@ def decode_step_numpy(
         # Every row of the grid, a band outside which the posterior is 0.
         state[STATE_HAS_PREVIOUS:] = (1, 0, ny - 1)
     map_bin, peak, mean_x, mean_y = posterior_summary_numpy(post, centers_x_cm, centers_y_cm)
+    if drifting:
+        # The velocity's few scalar operations, as the compiled step does them.
+        update_velocity.py_func(drift, mean_x, mean_y)
     out[n_bins : n_bins + 4] = (centers_x_cm[map_bin], centers_y_cm[map_bin], mean_x, mean_y)
     zone_mass_numpy(post, zone_start, zone_bins, out[n_bins + 4 :])
     n_hpd = hpd_size_numpy(post, hpd_mass, scratch)
@@ -1296,8 +1637,8 @@ def decode_step_numpy(
 @numba.njit(cache=True)
 def decode_window_step(
     held_t_s, held_rows, start, stop, t_end_s, window_s, max_count, log_rate, expected_total, valid, uniform,
-    uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start,
-    zone_bins, hpd_mass, state, unit_counts, unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch,
+    uniform_weight, uniform_level, transition_kind, ny, nx, kernel_1d, mask_f, inv_norm, interior, transition, centers_x_cm, centers_y_cm, zone_start,
+    zone_bins, hpd_mass, state, drift, unit_counts, unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch,
     out,
 ):
     """:func:`decode_step` for the window ``(t_end_s - window_s, t_end_s]`` of held spikes, counted in the same call.
@@ -1341,7 +1682,7 @@ def decode_window_step(
         now[held_rows[i]] += 1.0
     status, map_bin, n_hpd, n_spikes, peak = _decode_counts(
         float(hi - lo), log_rate, expected_total, valid, uniform, uniform_weight, uniform_level, transition_kind, ny,
-        nx, kernel_1d, mask_f, inv_norm, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, unit_counts,
+        nx, kernel_1d, mask_f, inv_norm, interior, transition, centers_x_cm, centers_y_cm, zone_start, zone_bins, hpd_mass, state, drift, unit_counts,
         unit_rows, log_like, previous, mark_terms, predicted, scratch, grid_scratch, out,
     )
     return status, map_bin, n_hpd, n_spikes, peak, lo

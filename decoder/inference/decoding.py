@@ -24,12 +24,13 @@ from __future__ import annotations
 
 import logging
 import math
-from types import SimpleNamespace
 from typing import Any, NamedTuple
 
 import numpy as np
 
 from decoder.inference import _kernels
+from decoder.inference.checks import bin_mask, kernel_set, positive_finite
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
 
 logger = logging.getLogger(__name__)
@@ -37,13 +38,11 @@ logger = logging.getLogger(__name__)
 #: Probability mass of the highest-posterior-density region reported per step.
 HPD_MASS = 0.95
 
-#: The random-walk kernel is cut off this many s.d. from its centre, where it
-#: has fallen to exp(-8) ~ 3e-4 of its peak.
-TRUNCATE_SD = 4.0
-
-#: Largest environment for which :meth:`RandomWalk.dense_matrix` builds the
-#: full matrix of a grid arena (n_bins² float64; 20,000 bins is 3.2 GB).
-MAX_DENSE_GRID_BINS = 20_000
+#: The drift per step (and each displacement folded into the velocity) is
+#: at most this many s.d. of the walk: the tilted walk stays well inside the
+#: walk's cut-off (``random_walk.TRUNCATE_SD``), and a jump of the decoded
+#: point between two modes counts as a fast run, not as a teleport.
+MAX_DRIFT_SD = 2.0
 
 #: Largest spike count of one unit in one window; beyond this the input is
 #: not spike data (a unit firing at 1 kHz for 1000 s would reach it).
@@ -51,37 +50,8 @@ MAX_COUNT = 1e6
 
 PRIORS = ("uniform", "state_space")
 POINT_ESTIMATES = ("map", "mean")
-BACKENDS = ("numba", "numpy")
-
-_KERNEL_NAMES = ("convolve_separable", "decode_step", "decode_window_step")
-
 _INT64 = np.dtype(np.int64)
 _FLOAT64 = np.dtype(np.float64)
-
-
-def _kernel_set(backend: str) -> SimpleNamespace:
-    if backend not in BACKENDS:
-        raise ValueError(f"backend must be one of {BACKENDS}, got {backend!r}")
-    suffix = "" if backend == "numba" else "_numpy"
-    return SimpleNamespace(**{name: getattr(_kernels, name + suffix) for name in _KERNEL_NAMES})
-
-
-def positive_finite(name: str, value: Any) -> float:
-    """``value`` as a float; ValueError naming ``name`` unless it is a positive, finite number."""
-    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
-        raise ValueError(f"{name} must be a positive number, got {value!r}")
-    if not (math.isfinite(value) and value > 0):
-        raise ValueError(f"{name} must be a positive, finite number, got {value!r}")
-    return float(value)
-
-
-def _bin_mask(name: str, mask: Any, n_bins: int) -> np.ndarray:
-    arr = np.asarray(mask)
-    if arr.shape != (n_bins,) or arr.dtype != np.bool_:
-        raise ValueError(
-            f"{name} must be a boolean array of shape ({n_bins},), got {arr.dtype} of shape {arr.shape}"
-        )
-    return arr
 
 
 class DecodedStep(NamedTuple):
@@ -134,132 +104,6 @@ class DecodedStep(NamedTuple):
     decoded_xy_cm: np.ndarray
 
 
-class RandomWalk:
-    """Gaussian random-walk transition between the valid bins of an environment.
-
-    From bin ``i`` the animal moves to bin ``j`` with probability
-    ``T[i, j] = K(i, j) m_j / sum_k K(i, k) m_k``, where ``m`` is the
-    valid-bin mask and ``K`` a Gaussian of s.d. ``sd_cm`` in the distance
-    between bin centres, cut off at ``TRUNCATE_SD`` s.d. In a grid arena
-    ``K`` is separable (a Gaussian along x times one along y, each cut off
-    separately) and ``T`` is applied as a convolution without being formed;
-    on a track or graph ``K`` uses the distance along the track and ``T`` is
-    a dense matrix. Each row of ``T`` for a valid bin sums to 1; rows of
-    invalid bins are 0 (the posterior never has mass there).
-
-    Parameters
-    ----------
-    environment : Environment
-    valid_mask : ndarray of bool, shape (n_bins,)
-        Bins the walk may enter (combined with ``environment.valid_mask``).
-    sd_cm : float
-        S.d. of one step of the walk in cm, along each axis in an arena.
-    backend : {"numba", "numpy"}, default "numba"
-        Compiled kernels, or their plain numpy twins.
-
-    Examples
-    --------
-    >>> from decoder.space.environments import LinearTrack
-    >>> track = LinearTrack((0, 0), (100, 0), bin_cm=10)
-    >>> walk = RandomWalk(track, track.valid_mask, sd_cm=10.0)
-    >>> bool(np.allclose(walk.dense_matrix().sum(axis=1), 1.0))
-    True
-    """
-
-    def __init__(
-        self, environment: Environment, valid_mask: np.ndarray, sd_cm: float, backend: str = "numba"
-    ) -> None:
-        self.environment = environment
-        self.valid_mask = _bin_mask("valid_mask", valid_mask, environment.n_bins) & environment.valid_mask
-        self.sd_cm = positive_finite("sd_cm", sd_cm)
-        self.backend = backend
-        self._k = _kernel_set(backend)
-        self._mask_f = self.valid_mask.astype(np.float64)
-        grid = environment.grid_shape
-        if grid is not None:
-            self._ny, self._nx = grid
-            # Only offsets within the cut-off, as on a track; a walk narrower
-            # than a quarter bin stays put.
-            reach = math.floor(TRUNCATE_SD * self.sd_cm / environment.bin_cm)
-            offsets_cm = np.arange(-reach, reach + 1) * environment.bin_cm
-            self._kernel_1d = np.exp(-0.5 * (offsets_cm / self.sd_cm) ** 2)
-            self._scratch = np.empty(environment.n_bins)
-            norm = self._k.convolve_separable(
-                self._mask_f, self._ny, self._nx, self._kernel_1d, np.empty(environment.n_bins), self._scratch
-            )
-            # On a valid bin the kernel's own centre contributes 1, so norm >= 1 there.
-            self._inv_norm = np.zeros(environment.n_bins)
-            self._inv_norm[self.valid_mask] = 1.0 / norm[self.valid_mask]
-            self._transition = None
-        else:
-            self._transition = np.ascontiguousarray(self._dense_from_distances())
-
-    def _dense_from_distances(self) -> np.ndarray:
-        d = self.environment.bin_distance_matrix_cm()
-        near = d <= TRUNCATE_SD * self.sd_cm
-        kernel = np.zeros(d.shape)
-        kernel[near] = np.exp(-0.5 * (d[near] / self.sd_cm) ** 2)
-        return self._normalise_rows(kernel)
-
-    def _normalise_rows(self, kernel: np.ndarray) -> np.ndarray:
-        weighted = kernel * self._mask_f[np.newaxis, :]
-        norm = weighted.sum(axis=1)
-        out = np.zeros_like(weighted)
-        rows = self.valid_mask
-        out[rows] = weighted[rows] / norm[rows, np.newaxis]
-        return out
-
-    def predict(self, p: np.ndarray) -> np.ndarray:
-        """Move a posterior one step, ``p @ T``, with the plain numpy twins.
-
-        The decoder's compiled step predicts inside ``decode_step``; this is
-        the reference path that the offline filter and calibration use.
-
-        Parameters
-        ----------
-        p : ndarray of float64, shape (n_bins,)
-            Distribution over bins, 0 outside the valid bins.
-
-        Returns
-        -------
-        ndarray of float64, shape (n_bins,)
-            The predicted distribution; sums to ``p.sum()``.
-        """
-        p = np.ascontiguousarray(p, dtype=np.float64)
-        out = np.empty(self.environment.n_bins)
-        if self._transition is not None:
-            return _kernels.predict_dense_numpy(p, self._transition, out)
-        return _kernels.predict_grid_numpy(
-            p, self._ny, self._nx, self._kernel_1d, self._mask_f, self._inv_norm, out, self._scratch
-        )
-
-    def dense_matrix(self) -> np.ndarray:
-        """The transition matrix ``T`` (from row bin to column bin), plain numpy.
-
-        Returns
-        -------
-        ndarray of float64, shape (n_bins, n_bins)
-
-        Raises
-        ------
-        ValueError
-            For a grid arena of more than ``MAX_DENSE_GRID_BINS`` bins.
-        """
-        if self._transition is not None:
-            return self._transition.copy()
-        n = self.environment.n_bins
-        if n > MAX_DENSE_GRID_BINS:
-            raise ValueError(f"a dense transition of {n} bins would need {n * n * 8 / 1e9:.1f} GB; a grid arena is predicted by convolution instead (decode_step)")
-        reach = self._kernel_1d.size // 2
-
-        def axis_kernel(size: int) -> np.ndarray:
-            lag = np.arange(size)[np.newaxis, :] - np.arange(size)[:, np.newaxis]
-            return np.where(np.abs(lag) <= reach, self._kernel_1d[np.clip(lag + reach, 0, 2 * reach)], 0.0)
-
-        # Row-major bins (bin = iy * nx + ix) make the separable kernel a Kronecker product.
-        return self._normalise_rows(np.kron(axis_kernel(self._ny), axis_kernel(self._nx)))
-
-
 class BayesDecoder:
     """Posterior over position from the spike counts of one window.
 
@@ -304,6 +148,15 @@ class BayesDecoder:
         uniform_weight / n_valid`` are then stored as 0.
     likelihood_temperature : float, default 1.0
         The log-likelihood is divided by it (> 0; > 1 widens the posterior).
+    drift_gain : float, default 0.0
+        In [0, 1], for ``"state_space"``: the walk is tilted towards
+        ``drift_gain`` times the decoded velocity (``_kernels.drift_tilt``),
+        so the prior moves with a running animal or a turning head; 0 is
+        the plain walk, bit for bit. The velocity is the decoder's own: the
+        displacement of the posterior mean per window, averaged
+        exponentially, never the tracker's.
+    velocity_time_constant_s : float, default 1.0
+        Time constant of that average (s of data time).
     zone_masks : ndarray of bool, shape (n_zones, n_bins), optional
         Bins of each target zone; the posterior mass in each is reported.
     rate_floor_hz : float, default 0.01
@@ -349,6 +202,8 @@ class BayesDecoder:
         random_walk_sd_cm: float = 3.0,
         uniform_weight: float = 0.0,
         likelihood_temperature: float = 1.0,
+        drift_gain: float = 0.0,
+        velocity_time_constant_s: float = 1.0,
         zone_masks: np.ndarray | None = None,
         rate_floor_hz: float = 0.01,
         point_estimate: str = "map",
@@ -370,15 +225,21 @@ class BayesDecoder:
         ):
             raise ValueError(f"uniform_weight must be a probability in [0, 1), got {uniform_weight!r}")
         self.uniform_weight = float(uniform_weight)
+        if isinstance(drift_gain, bool) or not isinstance(drift_gain, (int, float, np.integer, np.floating)) or not (
+            0 <= drift_gain <= 1
+        ):
+            raise ValueError(f"drift_gain must be a number in [0, 1], got {drift_gain!r}")
+        self.drift_gain = float(drift_gain)
+        self.velocity_time_constant_s = positive_finite("velocity_time_constant_s", velocity_time_constant_s)
         if point_estimate not in POINT_ESTIMATES:
             raise ValueError(f"point_estimate must be one of {POINT_ESTIMATES}, got {point_estimate!r}")
         self.point_estimate = point_estimate
         # Where decoded_xy_cm starts in a step's buffer: the MAP centre, or the mean after it.
         self._decoded_at = n_bins + (2 if point_estimate == "mean" else 0)
         self.backend = backend
-        self._k = _kernel_set(backend)
+        self._k = kernel_set(backend)
 
-        valid = _bin_mask("valid_mask", valid_mask, n_bins) & environment.valid_mask
+        valid = bin_mask("valid_mask", valid_mask, n_bins) & environment.valid_mask
         if not valid.any():
             raise ValueError("no bin is valid: valid_mask and the environment's valid_mask share no bin")
         # The kernels get a writable array (one compiled type); users a read-only view.
@@ -446,6 +307,13 @@ class BayesDecoder:
         reach = walk_arrays[0].size // 2
         self._state = np.zeros(_kernels.STATE_SIZE, np.int64)
         self._state[_kernels.STATE_UPDATES] = -1
+        self._drift = np.zeros(_kernels.DRIFT_SIZE)
+        if walk is not None:
+            self._drift[_kernels.DRIFT_GAIN] = self.drift_gain
+            self._drift[_kernels.DRIFT_ALPHA] = -math.expm1(-self.window_s / self.velocity_time_constant_s)
+            self._drift[_kernels.DRIFT_INV_VAR] = 1.0 / walk.sd_cm**2
+            self._drift[_kernels.DRIFT_MAX_CM] = MAX_DRIFT_SD * walk.sd_cm
+            self._drift[_kernels.DRIFT_BIN_CM] = environment.bin_cm
         self._unit_counts = np.zeros((3, self.n_units))
         self._log_like = np.empty(n_bins)
         self._args_before = (
@@ -460,6 +328,7 @@ class BayesDecoder:
             ny,
             nx,
             *walk_arrays,
+            walk.interior if walk is not None else np.zeros(1, bool),
             dense,
             self._centers_x,
             self._centers_y,
@@ -467,6 +336,7 @@ class BayesDecoder:
             self._zone_bins,
             HPD_MASS,
             self._state,
+            self._drift,
             self._unit_counts,
             np.empty(self.n_units, np.int64),  # unit_rows
             self._log_like,

@@ -3,8 +3,9 @@
 :func:`filter_posteriors` runs the state-space filter over a whole sequence
 of spike-count bins at once: each spike counted once, in the bin of the
 step it fell in; between steps the previous posterior is moved by a
-``decoding.RandomWalk`` (Gaussian on the masked grid, or the dense
-transition of a track or graph) and mixed with a uniform jump; the
+``random_walk.RandomWalk`` (Gaussian on the masked grid, or the dense
+transition of a track or graph), tilted towards the decoded velocity if
+asked, and mixed with a uniform jump; the
 likelihood is the independent-Poisson one raised to ``1 / temperature``.
 The filtered posterior at the end of a step is the position at that step,
 not the centre of a window.
@@ -34,7 +35,8 @@ import math
 
 import numpy as np
 
-from decoder.inference.decoding import HPD_MASS, RandomWalk
+from decoder.inference.decoding import HPD_MASS, MAX_DRIFT_SD
+from decoder.inference.random_walk import RandomWalk
 
 
 def tempered_log_likelihood(
@@ -73,6 +75,8 @@ def filter_posteriors(
     uniform_weight: float = 0.0,
     temperature: float = 1.0,
     rate_floor_hz: float = 0.01,
+    drift_gain: float = 0.0,
+    velocity_time_constant_s: float = 1.0,
 ) -> np.ndarray:
     """Filtered posterior at every step of a sequence of non-overlapping bins.
 
@@ -96,6 +100,15 @@ def filter_posteriors(
     temperature : float, default 1.0
         The log-likelihood is divided by it; > 1 widens the posterior.
     rate_floor_hz : float, default 0.01
+    drift_gain : float, default 0.0
+        In [0, 1]. Above 0 the walk of step ``t + 1`` is tilted
+        (``walk.predict(p, tilt)``) so that its mean moves by ``mu =
+        drift_gain * v_t``, ``theta = mu / s^2`` (``s = walk.sd_cm``), with
+        ``v_t`` the exponentially weighted average of the posterior mean's
+        displacement per step, ``v_t = v_{t-1} + a (d_t - v_{t-1})``, ``a =
+        1 - exp(-step_s / velocity_time_constant_s)``, ``v_0 = 0``; ``d_t``
+        and ``mu`` are shortened to ``decoding.MAX_DRIFT_SD * s`` at most.
+    velocity_time_constant_s : float, default 1.0
 
     Returns
     -------
@@ -139,8 +152,19 @@ def filter_posteriors(
     log_like[:, ~valid] = -np.inf
     # Shifting each step by its best bin keeps exp() in range.
     like = np.exp(log_like - log_like.max(axis=1, keepdims=True))
+    if not 0 <= drift_gain <= 1:
+        raise ValueError(f"drift_gain must be a number in [0, 1], got {drift_gain!r}")
+    centers = np.asarray(walk.environment.bin_centers_cm, dtype=np.float64)
+    keep = math.exp(-step_s / velocity_time_constant_s)
+    cap_cm = MAX_DRIFT_SD * walk.sd_cm
+
+    def shortened(d: np.ndarray) -> np.ndarray:
+        size = math.hypot(*d)
+        return d * (cap_cm / size) if size > cap_cm else d
+
     out = np.empty((counts.shape[0], n_bins))
     prior = uniform
+    velocity, last = np.zeros(2), None
     for t in range(counts.shape[0]):
         joint = prior * like[t]
         evidence = joint.sum()
@@ -150,7 +174,14 @@ def filter_posteriors(
                 f"step {t}: the prior has no mass where the spikes point; use uniform_weight > 0"
             )
         out[t] = joint / evidence
-        prior = (1.0 - uniform_weight) * walk.predict(out[t]) + uniform_weight * uniform
+        tilt = np.zeros(2)
+        if drift_gain > 0:
+            mean = out[t] @ centers
+            if last is not None:
+                velocity = keep * velocity + (1.0 - keep) * shortened(mean - last)
+            last = mean
+            tilt = shortened(drift_gain * velocity) / walk.sd_cm**2
+        prior = (1.0 - uniform_weight) * walk.predict(out[t], tilt) + uniform_weight * uniform
     return out
 
 

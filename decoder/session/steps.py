@@ -39,8 +39,10 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     environment's bins, uniform jump) and ``settings.likelihood_temperature``,
     or, where that is unset, the model's temperature fitted for ``step_s``
     (``PlaceModel.likelihood_temperature``; fitted here on first use, right
-    after the model's fit), and the point estimate chosen with that fit
-    (``PlaceModel.point_estimate``) as the steps' decoded position; the
+    after the model's fit), the point estimate chosen with that fit
+    (``PlaceModel.point_estimate``) as the steps' decoded position, and the
+    drift of the walk towards the decoded velocity fitted with it
+    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain); the
     sliding window reports the MAP. A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
@@ -70,23 +72,27 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         logger.warning("%s; the filter uses random_walk_sd_cm = %g cm instead", exc, settings.random_walk_sd_cm)
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
-    temperature, point_estimate = settings.likelihood_temperature, "map"
+    temperature, point_estimate, (drift_gain, time_constant_s) = settings.likelihood_temperature, "map", (0.0, 1.0)
     try:
         point_estimate = model.point_estimate(settings.step_s)
+        drift_gain, time_constant_s = model.drift(settings.step_s)
         if temperature is None:
             temperature = model.likelihood_temperature(settings.step_s)
     except ValueError as exc:
-        logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g", exc, temperature or 1.0)
+        logger.warning("%s; the filter decodes the MAP with likelihood_temperature = %g and no drift", exc,
+                       temperature or 1.0)
         temperature = temperature or 1.0
+    if settings.drift_gain is not None:
+        drift_gain = settings.drift_gain
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
         random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature,
-        point_estimate=point_estimate, **common,
+        drift_gain=drift_gain, velocity_time_constant_s=time_constant_s, point_estimate=point_estimate, **common,
     )
 
 
 def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
-    """The filter's readiness figures: its movement model, temperature and decoded position.
+    """The filter's readiness figures: its movement model and drift, temperature and decoded position.
 
     Beside the settings the decoder runs with, the held-out figures of the
     fit behind them (``decoder.encoding.calibration.TemperatureFit``) where
@@ -110,6 +116,8 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
         "uniform_weight": decoder.uniform_weight,
         "likelihood_temperature": decoder.likelihood_temperature,
         "point_estimate": decoder.point_estimate,
+        "drift_gain": decoder.drift_gain,
+        "velocity_time_constant_s": decoder.velocity_time_constant_s,
     }
     fit = model.temperature_fits_.get(decoder.window_s)
     if fit is not None:
