@@ -129,16 +129,17 @@ def test_the_bar_exported_decoding_scores_as_the_replay_against_the_files_own_po
     replay_median = round_trip["summary"]["decode"]["median_error_cm"]
     with NWBHDF5IO(str(round_trip["nwb"]), "r") as io:
         nwb = io.read()
-        series = nwb.processing["placeloop_decoding"]["decoded_position"].spatial_series["map"]
+        # The decoded position, the point estimate the replay scores (the MAP or the posterior mean, chosen at fit).
+        series = nwb.processing["placeloop_decoding"]["decoded_position"].spatial_series["decoded"]
         t = series.get_timestamps()
         # NWB: data * conversion is in `unit` (the TimeSeries schema); metres -> cm is * 100.
-        map_cm = np.asarray(series.data[:]) * series.conversion * 100.0
+        decoded_cm = np.asarray(series.data[:]) * series.conversion * 100.0
         assert series.unit == "meters"
     with NWBHDF5IO(str(round_trip["recording"]), "r") as io:
         pos = io.read().processing["behavior"]["Position"].spatial_series["head_position"]
         own_t, own_cm = np.asarray(pos.timestamps[:]), np.asarray(pos.data[:]) * 100.0
     own = np.column_stack([np.interp(t, own_t, own_cm[:, 0]), np.interp(t, own_t, own_cm[:, 1])])
-    error = np.median(np.hypot(*(map_cm - own).T))
+    error = np.median(np.hypot(*(decoded_cm - own).T))
     assert len(t) == round_trip["summary"]["decode"]["steps"] > 1500
     # Issue 16's bar: within 10% of the replay's own figure.
     assert abs(error - replay_median) <= 0.1 * replay_median, (error, replay_median)

@@ -29,7 +29,8 @@ log = logging.getLogger(__name__)
 __all__ = ["DecodedSession", "decoded_session", "STEP_COLUMNS", "EVENT_COLUMNS"]
 
 #: Per-step columns (one float each) in the order rows are kept; zone masses follow as ``zone_mass_<name>``.
-STEP_COLUMNS = ("t_s", "map_x_cm", "map_y_cm", "mean_x_cm", "mean_y_cm", "tracked_x_cm", "tracked_y_cm",
+STEP_COLUMNS = ("t_s", "decoded_x_cm", "decoded_y_cm", "map_x_cm", "map_y_cm", "mean_x_cm", "mean_y_cm",
+                "tracked_x_cm", "tracked_y_cm",
                 "true_x_cm", "true_y_cm", "error_cm", "peak_prob", "hpd95_size", "n_spikes", "armed")
 
 #: Per-event columns.
@@ -101,7 +102,8 @@ def decoded_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         if type(out) is not StepOutput:
             return
         step = out.step
-        rows.append((out.t_s, *step.map_xy_cm, *step.mean_xy_cm, *out.tracked_xy_cm, *out.true_xy_cm, out.error_cm,
+        rows.append((out.t_s, *step.decoded_xy_cm, *step.map_xy_cm, *step.mean_xy_cm, *out.tracked_xy_cm,
+                     *out.true_xy_cm, out.error_cm,
                      step.peak_prob, step.hpd95_size, step.n_spikes, out.armed))
         masses.append(step.zone_mass)
         for event, far in zip(out.events, out.false_events):

@@ -4,8 +4,8 @@ What goes in, all times in seconds of the session's data time (the
 acquisition clock; for an imported session, the source file's own seconds
 from its ``session_start_time``):
 
-* processing module ``placeloop_decoding``: the decoded position (MAP and
-  posterior mean) and the tracked (and, on a simulated rig, true) position
+* processing module ``placeloop_decoding``: the decoded position (the point
+  estimate chosen at fit, the MAP and the posterior mean) and the tracked (and, on a simulated rig, true) position
   at every decoded step as ``SpatialSeries`` in ``Position`` containers,
   the posterior's summaries (peak probability, 95% HPD size, mass in each
   zone, spikes in the window) and the decoding error as ``TimeSeries``;
@@ -140,6 +140,8 @@ def write_nwb(decoded: DecodedSession, out: str | Path, description: str = "", s
                              description=what, **timing)
 
     decoded_pos = Position(name="decoded_position", spatial_series=[
+        spatial("decoded", "decoded_x_cm", "decoded_y_cm", "the decoded position: the point estimate chosen at fit "
+                "time (the MAP or the posterior mean), the one the session is scored on"),
         spatial("map", "map_x_cm", "map_y_cm", "maximum a posteriori position (centre of the most probable bin)"),
         spatial("posterior_mean", "mean_x_cm", "mean_y_cm", "posterior mean of the bin centres"),
     ])
@@ -158,7 +160,7 @@ def write_nwb(decoded: DecodedSession, out: str | Path, description: str = "", s
     module.add(TimeSeries(name="spikes_in_window", data=steps["n_spikes"].astype(np.int64), unit="spikes",
                           description="spikes counted in the step's decoding window", **timing))
     module.add(TimeSeries(name="decoding_error", data=steps["error_cm"], unit="meters", conversion=_CM,
-                          description="distance from the MAP to the true (else tracked) position; NaN when "
+                          description="distance from the decoded position to the true (else tracked) position; NaN when "
                                       "neither is known", **timing))
     if decoded.zone_names:
         mass = np.column_stack([steps[f"zone_mass_{z}"] for z in decoded.zone_names])
