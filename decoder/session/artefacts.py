@@ -50,7 +50,8 @@ TIME_TOLERANCE_S = 1e-6
 #: Flag codes of :func:`artefact_flags`: kept, or the reason (index into ``REASONS``) plus one.
 KEPT, BY_UNIT_RATE, BY_POPULATION = 0, 1, 2
 
-#: Spikes of history and batch the guard's buffers hold before they first grow.
+#: Spikes of history and batch the guard's buffers hold before they first grow; they grow to twice the
+#: largest batch with its history and stay (18 bytes a spike: about 7 MB after a batch of MAX_BATCH spikes).
 _CAPACITY = 1024
 
 
