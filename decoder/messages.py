@@ -17,6 +17,7 @@ a thousand entries, an integer of a thousand digits).
 from __future__ import annotations
 
 import math
+import struct
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -53,6 +54,8 @@ _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 #: Plain Python types a list of numbers may hold (bool is an int in Python, not here).
 _NUMBER_TYPES = (int, float, np.integer, np.floating)
 _NOT_NUMBERS = (bool, np.bool_)
+#: A frame's time and position packed as three float64, native order, as numpy reads them back.
+_TXY = struct.Struct("=3d")
 
 
 def _read_only(arr: np.ndarray) -> np.ndarray:
@@ -568,8 +571,8 @@ class TrackerFrames:
         object.__setattr__(self, "source", _name("source", source))
         object.__setattr__(self, "seq", _count("seq", seq))
         object.__setattr__(self, "head_dir_rad", None)
-        # One read-only buffer for time and position: numpy's constructors cost more than the rule.
-        txy = _read_only(np.array((t_s, x_cm, y_cm)))
+        # One buffer for time and position, read-only as bytes are: numpy's constructors cost more than the rule.
+        txy = np.frombuffer(_TXY.pack(t_s, x_cm, y_cm), _F64)
         object.__setattr__(self, "t_s", txy[:1])
         object.__setattr__(self, "xy_cm", txy[1:].reshape(1, 2))
         object.__setattr__(self, "quality", SINGLE_FRAME_QUALITY[quality])
@@ -638,16 +641,7 @@ class SyncPulse:
         object.__setattr__(self, "pulse_id", _count("pulse_id", self.pulse_id))
 
 
-CONTROL_COMMANDS = (
-    "start_learning",
-    "stop_learning",
-    "fit",
-    "load_model",
-    "arm",
-    "disarm",
-    "status",
-    "stall",
-)
+CONTROL_COMMANDS = ("start_learning", "stop_learning", "fit", "load_model", "arm", "disarm", "status", "stall")
 
 #: Most arguments one control command may carry.
 MAX_CONTROL_ARGS = 64

@@ -50,6 +50,10 @@ TIME_TOLERANCE_S = 1e-6
 #: Flag codes of :func:`artefact_flags`: kept, or the reason (index into ``REASONS``) plus one.
 KEPT, BY_UNIT_RATE, BY_POPULATION = 0, 1, 2
 
+#: Spikes of history and batch the guard's buffers hold before they first grow; they grow to twice the
+#: largest batch with its history and stay (18 bytes a spike: about 7 MB after a batch of MAX_BATCH spikes).
+_CAPACITY = 1024
+
 
 @numba.njit(cache=True)
 def artefact_flags(t_s, unit_id, max_in_window, window_s, population_window_s, min_units):
@@ -143,33 +147,46 @@ def artefact_flags_numpy(t_s, unit_id, max_in_window, window_s, population_windo
 
 
 @numba.njit(cache=True)
-def _flag_batch_in_order(hist_t, hist_u, t_s, unit_id, max_in_window, window_s, population_window_s, min_units,
-                         horizon_s):
-    """One batch that follows its history in time: its flags, the history kept, the flagged counts.
+def _flag_batch_in_order(hist_t, hist_u, n_hist, t_s, unit_id, batch_flags, max_in_window, window_s,
+                         population_window_s, min_units, horizon_s):
+    """Flag one batch against the history held in place; -1 if the batch starts before the history's newest spike.
 
-    The same arithmetic as the Python path of :meth:`SpikeSanity.keep` (concatenate, flag, keep the
-    spikes of the last ``horizon_s`` up to the batch's newest), in one compiled call: a spike batch
-    arrives every few ms and numpy's per-call costs were most of the guard's time.
+    The history is ``hist_t[:n_hist]``, ``hist_u[:n_hist]`` (capacity >= ``n_hist + n``); the batch
+    is appended behind it, flagged with it by :func:`artefact_flags`, its flags written to
+    ``batch_flags[:n]``, and the spikes of the last ``horizon_s`` up to the batch's newest moved to
+    the front as the next history. A spike batch arrives every few ms: buffers kept from one batch to
+    the next and plain integers returned leave numba nothing to allocate or box but the flags.
+
+    Returns
+    -------
+    n_hist : int
+        The new history's length, or -1 (nothing touched) for a batch older than the history.
+    n_rate, n_population : int
+        The batch's spikes flagged by each rule.
     """
-    n_old = hist_t.size
     n = t_s.size
-    t = np.empty(n_old + n)
-    u = np.empty(n_old + n, np.int64)
-    t[:n_old] = hist_t
-    t[n_old:] = t_s
-    u[:n_old] = hist_u
-    u[n_old:] = unit_id
-    flags = artefact_flags(t, u, max_in_window, window_s, population_window_s, min_units)
-    lo = np.searchsorted(t, t_s[n - 1] - horizon_s, side="right")
-    batch_flags = flags[n_old:]
+    if n_hist and hist_t[n_hist - 1] > t_s[0]:
+        return -1, 0, 0
+    total = n_hist + n
+    hist_t[n_hist:total] = t_s
+    hist_u[n_hist:total] = unit_id
+    flags = artefact_flags(hist_t[:total], hist_u[:total], max_in_window, window_s, population_window_s,
+                           min_units)
     n_rate = 0
     n_population = 0
-    for f in batch_flags:
+    for i in range(n):
+        f = flags[n_hist + i]
+        batch_flags[i] = f
         if f == BY_UNIT_RATE:
             n_rate += 1
         elif f == BY_POPULATION:
             n_population += 1
-    return batch_flags, t[lo:].copy(), u[lo:].copy(), n_rate, n_population
+    lo = np.searchsorted(hist_t[:total], t_s[n - 1] - horizon_s, side="right")
+    # Forward, in place: the history moves towards the front, never over a value still to move.
+    for i in range(lo, total):
+        hist_t[i - lo] = hist_t[i]
+        hist_u[i - lo] = hist_u[i]
+    return total - lo, n_rate, n_population
 
 
 class SpikeSanity:
@@ -218,9 +235,24 @@ class SpikeSanity:
         self._horizon_s = max(window_s if ceiling_hz > 0 else 0.0,
                               population_window_s if population_fraction > 0 else 0.0)
         self._units_seen: set[int] = set()
-        self._t = np.empty(0)
-        self._u = np.empty(0, np.int64)
+        # The history lives at the front of buffers that the batch is appended to: spikes of the last
+        # horizon, hist_t[:n_hist] and hist_u[:n_hist]; _flags receives a batch's flags.
+        self._n_hist = 0
+        self._reserve(_CAPACITY)
         self.counts = dict.fromkeys(REASONS, 0)
+
+    def _reserve(self, capacity: int) -> None:
+        """Buffers for ``capacity`` spikes of history and batch together, the history kept."""
+        n_hist = self._n_hist
+        t = np.empty(capacity)
+        u = np.empty(capacity, np.int64)
+        if n_hist:
+            t[:n_hist] = self._t[:n_hist]
+            u[:n_hist] = self._u[:n_hist]
+        self._t, self._u = t, u
+        self._flags = np.empty(capacity, np.int8)
+        self._all_kept = np.ones(capacity, bool)
+        self._all_kept.setflags(write=False)
 
     def keep(self, t_s: np.ndarray, unit_id: np.ndarray) -> np.ndarray:
         """The spikes of one batch to hand on; the others are counted in ``counts``.
@@ -234,28 +266,36 @@ class SpikeSanity:
         Returns
         -------
         keep : ndarray of bool, shape (n,)
+            Read-only when every spike is kept (a view of one shared array of ``True``).
         """
         n = t_s.size
         if n == 0 or self._horizon_s == 0.0:
             return np.ones(n, bool)
         self._units_seen.update(unit_id.tolist())
-        n_old = self._t.size
         min_units = 0
         if self.population_fraction > 0:
             min_units = max(self.population_min_units,
                             math.ceil(self.population_fraction * len(self._units_seen)))
-        if not n_old or self._t[-1] <= t_s[0]:
-            flags, self._t, self._u, n_rate, n_population = _flag_batch_in_order(
-                self._t, self._u, t_s, unit_id, self._max_in_window, self.window_s, self.population_window_s,
-                min_units, self._horizon_s)
-            if not (n_rate or n_population):
-                return np.ones(n, bool)
-            self.counts["unit_rate"] += n_rate
-            self.counts["population"] += n_population
-            return flags == KEPT
-        # A batch older than the last one (a late batch or a restarted clock): sort the history in.
-        t = np.concatenate((self._t, t_s))
-        u = np.concatenate((self._u, unit_id))
+        n_old = self._n_hist
+        if n_old + n > self._t.size:
+            self._reserve(2 * (n_old + n))
+        n_hist, n_rate, n_population = _flag_batch_in_order(
+            self._t, self._u, n_old, t_s, unit_id, self._flags, self._max_in_window, self.window_s,
+            self.population_window_s, min_units, self._horizon_s)
+        if n_hist < 0:
+            return self._keep_late(t_s, unit_id, min_units)
+        self._n_hist = n_hist
+        if not (n_rate or n_population):
+            return self._all_kept[:n]
+        self.counts["unit_rate"] += n_rate
+        self.counts["population"] += n_population
+        return self._flags[:n] == KEPT
+
+    def _keep_late(self, t_s: np.ndarray, unit_id: np.ndarray, min_units: int) -> np.ndarray:
+        """:meth:`keep` for a batch older than the last one (a late batch or a restarted clock): sorted in."""
+        n_old = self._n_hist
+        t = np.concatenate((self._t[:n_old], t_s))
+        u = np.concatenate((self._u[:n_old], unit_id))
         order = np.argsort(t, kind="stable")
         t, u = t[order], u[order]
         flags = np.empty(t.size, np.int8)
@@ -263,10 +303,12 @@ class SpikeSanity:
         # t is sorted: the history is the slice of the last horizon up to this batch's newest spike.
         newest = t_s[-1]
         lo, hi = np.searchsorted(t, (newest - self._horizon_s, newest), side="right")
-        self._t, self._u = t[lo:hi], u[lo:hi]
+        self._n_hist = hi - lo
+        self._t[:hi - lo] = t[lo:hi]
+        self._u[:hi - lo] = u[lo:hi]
         flags = flags[n_old:]
         if not flags.any():
-            return np.ones(n, bool)
+            return self._all_kept[:t_s.size]
         self.counts["unit_rate"] += int(np.count_nonzero(flags == BY_UNIT_RATE))
         self.counts["population"] += int(np.count_nonzero(flags == BY_POPULATION))
         return flags == KEPT
