@@ -32,7 +32,8 @@ from the learning part, as shipped, unless ``--temperature`` sets one; its
 learned walk, jump and temperature are reported beside it.
 
 ``ratio`` is placeloop's median error over the textbook's best median;
-``ratio_worst`` the largest over sessions, per method. The sessions are simulated
+``ratio_worst`` the largest over sessions for the shipped default method
+(the filter), ``ratio_worst_by_method`` the same per method. The sessions are simulated
 (invented data): the figures measure the decoders on a generator with known
 truth, not on any animal.
 """
@@ -314,7 +315,8 @@ def main(argv: list[str] | None = None) -> int:
             print(f"{name}: done in {time.perf_counter() - started:.0f} s", file=sys.stderr)
     out = {
         "sessions": rows,
-        "ratio_worst": {m: max(r["ratio"] for r in rows if r["method"] == m) for m in args.methods},
+        "ratio_worst": max((r["ratio"] for r in rows if r["method"] == "filter"), default=None),
+        "ratio_worst_by_method": {m: max(r["ratio"] for r in rows if r["method"] == m) for m in args.methods},
         "filter_temperature": args.temperature,
         "bar": {"ratio_worst_max": 0.8, "hpd95_coverage": [0.90, 0.98], "lag_ms": "below the textbook's"},
         "wall_s": round(time.perf_counter() - started, 1),
@@ -334,7 +336,7 @@ def main(argv: list[str] | None = None) -> int:
                   f"{f.get('drift_gain', 0.0):.2f} over {f.get('velocity_time_constant_s', 1.0):.2f} s, decodes the "
                   f"{f['point_estimate']} (test medians: MAP {r['placeloop_map_median_cm']:.2f}, "
                   f"mean {r['placeloop_mean_median_cm']:.2f} cm)")
-    worst = ", ".join(f"{m} {v:.3f}" for m, v in out["ratio_worst"].items())
+    worst = ", ".join(f"{m} {v:.3f}" for m, v in out["ratio_worst_by_method"].items())
     print(f"ratio_worst {worst} (bar <= 0.8); wall {out['wall_s']} s")
     if args.json:
         args.json.parent.mkdir(parents=True, exist_ok=True)
