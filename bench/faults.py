@@ -189,8 +189,13 @@ def run_fuzz(loops: Loops, n_frames: int, session_s: float, seed: int) -> dict:
         "fuzz_reference_events": len(reference),
         "fuzz_false_events": sum(1 for e in live if e not in ref),
         "fuzz_missed_events": sum(1 for e in reference if e not in set(live)),
+        "fuzz_missed": [e for e in reference if e not in set(live)],
+        "fuzz_unmatched": [e for e in live if e not in ref],
+        "fuzz_reference": reference,
         "fuzz_bad_reasons": status["bad_reasons"],
         "fuzz_sources_tracked": len(status["sources"]),
+        # Disarmed at the end means a stall (the sender starved for the stall limit) cut the session short.
+        "fuzz_armed_at_end": bool(status["armed"]),
     }
 
 
