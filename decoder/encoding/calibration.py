@@ -59,13 +59,14 @@ from __future__ import annotations
 import itertools
 import logging
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from decoder.inference.decoding import HPD_MASS, BayesDecoder
+from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
 from decoder.inference.random_walk import RandomWalk
+from decoder.space.environments import Environment
 
 logger = logging.getLogger(__name__)
 
@@ -300,6 +301,7 @@ def fit_temperature(
     drift = drift or DriftFit()
 
     fired = _fired(fold_counts)
+    all_true_bins = np.concatenate(truths).tolist()
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
 
     def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
@@ -312,35 +314,25 @@ def fit_temperature(
         """
         inside, mass, n_mass = 0, 0.0, 0
         points: list[np.ndarray] = []
-        for rates, steps, bins in zip(fold_rate_maps_hz, fired, truths):
-            decoder = BayesDecoder(
-                rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
-                uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
-                drift_gain=drift.gain, velocity_time_constant_s=drift.velocity_time_constant_s, backend=walk.backend,
-            )
-            for (rows, counts), true_bin in zip(steps, bins.tolist()):
-                step = decoder.decode(rows, counts)
-                if score_points:
-                    points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
-                if true_bin < 0:
-                    continue
-                p = step.posterior
-                # Inside when the bins more probable than the true one hold less than the mass
-                # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
-                inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
-                if n_mass % _MASS_EVERY == 0:
-                    n_hpd = round(step.hpd95_size / bin_size)
-                    mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
-                n_mass += 1
+        steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
+                               drift.gain, drift.velocity_time_constant_s)
+        for step, true_bin in zip(steps, all_true_bins):
+            if score_points:
+                points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
+            if true_bin < 0:
+                continue
+            p = step.posterior
+            # Inside when the bins more probable than the true one hold less than the mass
+            # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
+            inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
+            if n_mass % _MASS_EVERY == 0:
+                n_hpd = round(step.hpd95_size / bin_size)
+                mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
+            n_mass += 1
         figures = (inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY)))
         if not score_points:
             return figures
-        decoded, truth = np.array(points), np.concatenate(fold_true_xy_cm)
-        known = np.all(np.isfinite(truth), axis=1)
-        env = walk.environment
-        medians = [float(np.nanmedian(env.distance_cm(decoded[known, i : i + 2], truth[known]))) if known.any()
-                   else math.nan for i in (0, 2)]
-        return (*figures, *medians)
+        return (*figures, *_point_medians_cm(walk.environment, np.array(points), np.concatenate(fold_true_xy_cm)))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
 
@@ -396,6 +388,30 @@ def _unscored(step_s: float, xy_cm: np.ndarray) -> np.ndarray:
     xy = np.array(xy_cm, dtype=np.float64).reshape(-1, 2)
     xy[_burning_in(step_s, len(xy))] = np.nan
     return xy
+
+
+def _decoded_steps(
+    fold_rate_maps_hz: Sequence[np.ndarray], fired: list[list[tuple[np.ndarray, np.ndarray]]], step_s: float,
+    walk: RandomWalk, uniform_weight: float, temperature: float, rate_floor_hz: float, drift_gain: float,
+    velocity_time_constant_s: float,
+) -> Iterator[DecodedStep]:
+    """Every held-out step decoded by the filter, fold after fold, each fold from a fresh decoder."""
+    for rates, steps in zip(fold_rate_maps_hz, fired):
+        decoder = BayesDecoder(
+            rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
+            uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
+            drift_gain=drift_gain, velocity_time_constant_s=velocity_time_constant_s, backend=walk.backend,
+        )
+        for rows, counts in steps:
+            yield decoder.decode(rows, counts)
+
+
+def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.ndarray) -> tuple[float, float]:
+    """Median distance of the MAP (columns 0-1) and of the posterior mean (2-3) from the known positions."""
+    known = np.all(np.isfinite(truth_xy_cm), axis=1)
+    if not known.any():
+        return math.nan, math.nan
+    return tuple(float(np.nanmedian(env.distance_cm(decoded[known, i : i + 2], truth_xy_cm[known]))) for i in (0, 2))
 
 
 def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
@@ -458,18 +474,9 @@ def fit_drift(
     env = walk.environment
 
     def median_cm(gain: float, time_constant_s: float) -> float:
-        points = []
-        for rates, steps in zip(fold_rate_maps_hz, fired):
-            decoder = BayesDecoder(
-                rates, env, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
-                uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
-                drift_gain=gain, velocity_time_constant_s=time_constant_s, backend=walk.backend,
-            )
-            for rows, counts in steps:
-                step = decoder.decode(rows, counts)
-                points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
-        decoded = np.array(points)[known]
-        return min(float(np.median(env.distance_cm(decoded[:, i : i + 2], truth[known]))) for i in (0, 2))
+        points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
+            fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz, gain, time_constant_s)]
+        return min(_point_medians_cm(env, np.array(points), truth))
 
     without = median_cm(0.0, 1.0) if median_without_cm is None else median_without_cm
     plain = DriftFit(median_cm=without, median_without_cm=without)
