@@ -5,6 +5,15 @@ ZeroMQ sockets on 127.0.0.1; the bench plays the rig (an XPUB socket, so
 that it knows when the loop has subscribed), the experiment script (REQ on
 the control socket) and the consumers (SUB on the events and state sockets).
 The sessions are simulated (invented data, for the probe only).
+
+The consumers connect before the loop binds, so ZeroMQ retries their
+connects every reconnect interval (100 ms, longer on a loaded machine);
+a PUB socket drops what it sends before a subscriber has joined. So
+:meth:`LoopUnderTest.wait_subscribed` also waits for the consumers' own
+handshakes (:func:`wait_joined`): without that, an event the loop fired
+within a reconnect interval of binding (the first events after an early
+arm) was published to nobody and counted as missed, although the loop had
+fired, published and recorded it.
 """
 
 from __future__ import annotations
@@ -18,6 +27,7 @@ from pathlib import Path
 
 import tomli_w
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from decoder.config import parse_config
 from decoder.messages import Heartbeat, SourceAnnounce, SpikeBatch, SyncPulse
@@ -52,6 +62,9 @@ SUBSCRIBE_WAIT_S = 300.0
 #: Frames the bench lets the loop fall behind by before it waits: far below its RCVHWM of 10**6.
 MAX_BACKLOG = 20_000
 
+#: How long a consumer may take to join a socket the loop has bound: several reconnect intervals.
+JOIN_WAIT_S = 30.0
+
 
 def fit_model(tmp: Path, seed: int, learn_s: float = 60.0) -> Path:
     """Learn ``learn_s`` simulated seconds in process and save the fitted model (as tests/test_dry_run.py does)."""
@@ -71,6 +84,35 @@ def session_messages(seed: int, until_s: float) -> list:
     config = parse_config(tomli_w.dumps(BASE))
     sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=seed)
     return list(sim.messages(until_s=until_s))
+
+
+def joining_monitor(sock: zmq.Socket) -> zmq.Socket:
+    """A monitor of ``sock``'s completed handshakes, for :func:`wait_joined`; call before ``sock.connect``."""
+    return sock.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED)
+
+
+def wait_joined(sock: zmq.Socket, monitor: zmq.Socket, timeout_s: float = JOIN_WAIT_S) -> None:
+    """Wait until ``sock`` has completed a ZMTP handshake with its peer, then stop monitoring it.
+
+    A SUB socket sends its subscriptions as its first messages after the
+    handshake, at once, so the loop's PUB socket has them long before the
+    bench has sent a session's head and had its status requests answered
+    (milliseconds at least); it delivers from then on.
+
+    Raises
+    ------
+    RuntimeError
+        If no handshake completed within ``timeout_s`` (nothing bound the
+        endpoint, or the peer refused the link).
+    """
+    try:
+        if not monitor.poll(int(timeout_s * 1000)):
+            raise RuntimeError(f"the bench's consumer did not join {sock.getsockopt_string(zmq.LAST_ENDPOINT)} "
+                               f"within {timeout_s:.0f} s; is the loop bound there?")
+        recv_monitor_message(monitor)
+    finally:
+        sock.disable_monitor()
+        monitor.close(linger=0)
 
 
 def spike_time(msg) -> float | None:
@@ -109,7 +151,8 @@ class LoopUnderTest:
         if dry_run:
             cmd.append("--dry-run")
         self.ctx = zmq.Context.instance()
-        self.events_sub = self._sub(self.ep["events"])
+        self._joining: list[tuple[zmq.Socket, zmq.Socket]] = []
+        self.events_sub = self._sub(self.ep["events"], joins=not dry_run)  # a dry run binds no events socket
         self.state_sub = self._sub(self.ep["state"])
         self.rig = None
         self.bind_rig()
@@ -118,11 +161,14 @@ class LoopUnderTest:
         self.req = None
         self.sent = 0
 
-    def _sub(self, endpoint: str) -> zmq.Socket:
+    def _sub(self, endpoint: str, joins: bool = True) -> zmq.Socket:
+        """A consumer of ``endpoint``; with ``joins``, :meth:`wait_subscribed` waits for it to join."""
         sock = self.ctx.socket(zmq.SUB)
         sock.setsockopt(zmq.SUBSCRIBE, b"")
         sock.setsockopt(zmq.LINGER, 0)
         sock.setsockopt(zmq.RCVHWM, 0)  # the bench keeps every event and state frame it is sent
+        if joins:
+            self._joining.append((sock, joining_monitor(sock)))
         sock.connect(endpoint)
         return sock
 
@@ -143,6 +189,12 @@ class LoopUnderTest:
         self.rig = sock
 
     def wait_subscribed(self, timeout_s: float = SUBSCRIBE_WAIT_S) -> None:
+        """Wait until the loop has subscribed to the bench's rig and, the first time, the consumers have joined.
+
+        The loop binds its events and state sockets right after it connects
+        to the rig; the consumers' handshakes follow within a reconnect
+        interval, and nothing the loop publishes before them reaches them.
+        """
         deadline = time.monotonic() + timeout_s
         while not self.rig.poll(200):
             if self.proc.poll() is not None:
@@ -150,6 +202,8 @@ class LoopUnderTest:
             if time.monotonic() > deadline:
                 raise RuntimeError("the loop never subscribed to the bench's rig")
         self.rig.recv()
+        while self._joining:
+            wait_joined(*self._joining.pop())
 
     def close_rig(self) -> None:
         self.rig.close(linger=0)
@@ -232,6 +286,10 @@ class LoopUnderTest:
             except subprocess.TimeoutExpired:
                 self.proc.kill()
                 self.proc.wait()
+        for sock, monitor in self._joining:
+            sock.disable_monitor()
+            monitor.close(linger=0)
+        self._joining.clear()
         for sock in (self.rig, self.req, self.events_sub, self.state_sub):
             if sock is not None:
                 sock.close(linger=0)

@@ -20,7 +20,9 @@ part, so a run stopped early keeps what it measured.
    (``fuzz_uncounted`` = sent - counted). Events are compared with a
    reference: the same valid session and the same arm request fed through
    the same ``Ingest`` and ``Pipeline`` in this process, without the fuzz
-   (``fuzz_false_events`` = events not in the reference).
+   (``fuzz_false_events`` = events not in the reference; ``fuzz_missed`` =
+   reference events that did not reach the bench's subscriber, which joins
+   the loop's events socket before the session starts).
 2. **control**: every control command with bad arguments, bad envelopes,
    model files that cannot be used, multipart and oversized requests, and
    hypothesis-built requests; a case crashes if the loop dies or does not
