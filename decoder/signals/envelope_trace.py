@@ -27,8 +27,8 @@ class EnvelopeTrace:
 
     Attributes
     ----------
-    last_step_ : int
-        Index (``floor(t / step_s)``) of the newest step written; -1 before any.
+    last_step_ : int or None
+        Index (``floor(t / step_s)``) of the newest step written; None before any.
 
     Examples
     --------
@@ -45,7 +45,8 @@ class EnvelopeTrace:
                              f"{keep_s}")
         self.step_s = float(step_s)
         self._ring = np.full(int(round(keep_s / step_s)), np.nan, np.float32)
-        self.last_step_ = -1
+        self.last_step_: int | None = None
+        self._first_step = 0
 
     def add(self, t_s: float, values: np.ndarray, rate_hz: float) -> None:
         """Take one chunk's envelope: ``values`` (shape (n,)) sampled at ``rate_hz`` from data time ``t_s``."""
@@ -55,6 +56,8 @@ class EnvelopeTrace:
         first = math.floor(t_s / self.step_s)
         last = math.floor((t_s + (n - 1) / rate_hz) / self.step_s)
         ring, size = self._ring, self._ring.size
+        if self.last_step_ is None:
+            self.last_step_ = self._first_step = first - 1
         if first > self.last_step_:
             # Steps the signal skipped (a gap, a baseline not ready) stay NaN.
             skipped = np.arange(max(self.last_step_ + 1, first - size), first)
@@ -90,15 +93,15 @@ class EnvelopeTrace:
         values : ndarray of float32, shape (n,)
             Each step's peak; NaN where the signal gave none.
         """
-        if self.last_step_ < 0:
+        if self.last_step_ is None:
             return math.nan, np.zeros(0, np.float32)
         size = self._ring.size
         n = size if keep_s is None else min(size, max(1, int(round(keep_s / self.step_s))))
-        first = max(0, self.last_step_ - n + 1)
+        first = max(self._first_step + 1, self.last_step_ - n + 1)
         idx = np.arange(first, self.last_step_ + 1) % size
         return first * self.step_s, self._ring[idx].copy()
 
     def restart(self) -> None:
         """Forget the history (a new stream: another rate or channel count may follow)."""
         self._ring[:] = np.nan
-        self.last_step_ = -1
+        self.last_step_ = None

@@ -1,0 +1,244 @@
+"""The ripple envelope and each candidate event's decoded sequence: on the state stream, on the monitor's page, in the report.
+
+The live part runs one short ripple session of configs/w_maze_ripples.toml
+through the simulated rig and a real ``placeloop run`` (real processes, real
+ZeroMQ sockets on 127.0.0.1), with the monitor and headless chromium watching
+and the session recorded; the report is then written from that recording.
+The simulated session is invented data: it checks the plumbing and the
+drawing, not the science.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+import threading
+import time
+import urllib.request
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.stats
+
+from decoder.config import load_config
+from decoder.session.ripples import ContentEvent
+from decoder.signals.envelope_trace import EnvelopeTrace
+from decoder.signals.ripple_detector import RippleDetector
+from rig_adapters.monitor.session_view import SessionView
+from rig_adapters.wire import protocol
+from rig_adapters.wire.outputs import RIPPLE_ENVELOPE_MAX
+
+REPO = Path(__file__).resolve().parent.parent
+CONFIG = REPO / "configs" / "w_maze_ripples.toml"
+CHROMIUM = Path("/usr/bin/chromium")
+CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+
+
+# ---------------------------------------------------------------- the envelope trace
+
+
+def test_envelope_trace_keeps_the_peak_of_each_step():
+    rate_hz, step_s = 1500.0, 0.01
+    rng = np.random.default_rng(3)
+    z = rng.normal(size=3000)
+    trace = EnvelopeTrace(step_s=step_s, keep_s=10.0)
+    for start in range(0, z.size, 3):  # 2 ms chunks, as the simulated rig sends them
+        trace.add(start / rate_hz, z[start:start + 3], rate_hz)
+    t0, values = trace.recent()
+    # Reference: numpy's max over whole steps of 15 samples (1500 Hz x 10 ms).
+    expected = z.reshape(-1, 15).max(axis=1)
+    assert t0 == 0.0 and values.size == expected.size
+    np.testing.assert_allclose(values, expected, rtol=1e-6)  # float32 storage
+
+
+def test_envelope_trace_marks_gaps_and_keeps_only_the_newest():
+    trace = EnvelopeTrace(step_s=0.01, keep_s=0.1)
+    trace.add(1.0, np.array([1.0, 2.0]), 1000.0)
+    trace.add(1.05, np.array([3.0]), 1000.0)  # 40 ms of silence before it
+    t0, values = trace.recent()
+    assert t0 == pytest.approx(1.0)
+    assert values[0] == 2.0 and np.isnan(values[1:5]).all() and values[5] == 3.0
+    trace.add(2.0, np.array([4.0]), 1000.0)
+    t0, values = trace.recent()
+    assert t0 == pytest.approx(1.91) and values.size == 10 and values[-1] == 4.0 and np.isnan(values[:-1]).all()
+    assert trace.recent(0.03)[1].size == 3
+
+
+# ---------------------------------------------------------------- the state frame
+
+
+def _detector_with_baseline() -> RippleDetector:
+    det = RippleDetector(1500.0, 2, warm_up_s=1.0, baseline_window_s=2.0)
+    rng = np.random.default_rng(0)
+    for i in range(1500):
+        det.process(i * 0.002, rng.normal(0.0, 20.0, (3, 2)))
+    return det
+
+
+def _event(onset_s: float, n_bins: int, decided=("towards_goal",)) -> ContentEvent:
+    seq = [(onset_s + 0.015 * (k + 1), 3.0 * k, 80.0 - 10.0 * k, k % 3) for k in range(n_bins)]
+    return ContentEvent(onset_s, onset_s + 0.015 * n_bins, n_bins, list(decided), onset_s + 0.03, seq, [-0.8])
+
+
+def _state(seq: int, t_s: float, ripples: dict | None) -> bytes:
+    return protocol.encode_state(source="placeloop", seq=seq, t_s=t_s, state="decoding", armed=True,
+                                 map_xy_cm=[0.0, 0.0], mean_xy_cm=[0.0, 0.0], tracked_xy_cm=[0.0, 0.0],
+                                 hpd95_size=1.0, peak_prob=0.1, zone_masses={}, n_spikes=0, ripples=ripples)
+
+
+def test_ripple_view_round_trips_through_the_state_frame():
+    det = _detector_with_baseline()
+    events = [_event(1.0 + i, 4) for i in range(12)]
+    view = protocol.ripple_view(det, events)
+    out = protocol.decode_output(_state(1, 3.0, view))["ripples"]
+    assert out["threshold_sd"] == det.threshold_sd and out["end_sd"] == det.end_sd and out["ready"]
+    assert out["n_events"] == 12 and len(out["events"]) == 8  # the newest eight
+    assert out["events"][-1]["onset_s"] == 12.0
+    e = out["events"][-1]
+    np.testing.assert_allclose(e["bin_end_ms"], [15.0, 30.0, 45.0, 60.0], atol=1e-3)
+    np.testing.assert_allclose(e["map_x_cm"], [0.0, 3.0, 6.0, 9.0])
+    assert e["n_spikes"] == [0, 1, 2, 0] and e["decided"] == ["towards_goal"]
+    t0, env = det.trace_.recent(6.0)
+    assert out["t0_s"] == t0
+    np.testing.assert_array_equal(out["envelope_sd"], env)
+    # Without the field the frame is as before: the key is optional.
+    assert protocol.decode_output(_state(2, 3.0, None))["ripples"] is None
+
+
+@pytest.mark.parametrize("bad, reason", [
+    ({"threshold_sd": math.nan}, "bad_field"),
+    ({"step_s": 0.0}, "bad_field"),
+    ({"envelope_sd": np.zeros(RIPPLE_ENVELOPE_MAX + 1, np.float32)}, "bad_field"),
+    ({"events": [{"onset_s": 1.0, "bin_end_ms": [1.0, 2.0], "map_x_cm": [1.0], "map_y_cm": [1.0],
+                  "n_spikes": [1]}]}, "length_mismatch"),
+    ({"events": [{"onset_s": 1.0, "decided": [""]}]}, "bad_field"),
+    ({"colour": "red"}, "bad_field"),
+])
+def test_a_bad_ripple_view_is_refused_with_a_reason(bad, reason):
+    view = protocol.ripple_view(_detector_with_baseline(), [_event(1.0, 3)]) | bad
+    with pytest.raises(protocol.ProtocolError) as err:
+        _state(1, 3.0, view)
+    assert err.value.reason == reason
+
+
+def test_session_view_merges_events_across_frames_and_linearises_them():
+    config = load_config(CONFIG)
+    det = _detector_with_baseline()
+    view = SessionView(config)
+    events: list[ContentEvent] = []
+    seq = 0
+    for i in range(20):
+        events.append(_event(1.0 + 0.5 * i, 3))
+        if i % 3 == 2:  # the monitor sees only some frames; each repeats the newest eight events
+            seq += 1
+            view.add(protocol.decode_output(_state(seq, 2.0 + i, protocol.ripple_view(det, events))), 0.0)
+    view.add(protocol.decode_output(_state(seq + 1, 30.0, protocol.ripple_view(det, events))), 0.0)
+    assert view.ripple_events_seen == 20
+    part = view._ripple_packet()
+    assert part["events_seen"] == 20 and part["n_events"] == 20 and len(part["sequences"]) == 6
+    last = part["sequences"][-1]
+    # Positions along the graph: the environment's own linearisation (decoder.space.track_graphs).
+    xy = np.array([row[1:3] for row in events[-1].sequence])
+    np.testing.assert_allclose(last["positions"][0], config.environment.linearize(xy), atol=0.01)
+    assert last["decided"] == ["towards_goal"] and last["decision_ms"] == pytest.approx(30.0)
+
+
+# ---------------------------------------------------------------- a live ripple session, watched and recorded
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _wait_http(url: str, timeout_s: float) -> None:
+    deadline = time.monotonic() + timeout_s
+    while True:
+        try:
+            with urllib.request.urlopen(url, timeout=2):
+                return
+        except OSError:
+            assert time.monotonic() < deadline, f"nothing answered at {url}"
+            time.sleep(0.3)
+
+
+@pytest.fixture(scope="module")
+def watched_session(tmp_path_factory):
+    """A short live ripple session through real processes, with the monitor's page in headless chromium."""
+    if not CHROMIUM.exists():
+        pytest.skip("needs Debian's chromium (.ci/run installs it)")
+    from playwright.sync_api import sync_playwright
+
+    from rig_adapters.sim.demo import run_demo
+
+    tmp = tmp_path_factory.mktemp("ripple_session")
+    log_dir, summary_path = tmp / "log", tmp / "summary.json"
+    endpoints: list[str] = []
+    demo_rc: list[int] = []
+    # 30 s of learning then 30 s of closed loop at 2x: the rat rests at a well at least once after the fit.
+    demo = threading.Thread(target=lambda: demo_rc.append(run_demo(
+        config_path=str(CONFIG), speed=2.0, log_dir=str(log_dir), summary_path=str(summary_path), learn_s=30.0,
+        decode_s=30.0, seed=5, monitor_state_endpoint=endpoints)), daemon=True)
+    demo.start()
+    deadline = time.monotonic() + 30
+    while not endpoints:
+        assert time.monotonic() < deadline, "the demo did not start"
+        time.sleep(0.1)
+    http_port = _free_port()
+    monitor = subprocess.Popen(
+        [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(CONFIG), "--state", endpoints[0],
+         "--http-port", str(http_port)], cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    url = f"http://127.0.0.1:{http_port}/"
+    errors: list[str] = []
+    samples: list[dict] = []
+    try:
+        _wait_http(url + "api/environment", 60)
+        with sync_playwright() as pw:
+            browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
+            page = browser.new_page(viewport={"width": 1500, "height": 1400})
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(url)
+            deadline = time.monotonic() + 240
+            while demo.is_alive() and time.monotonic() < deadline:
+                samples.append(page.evaluate("window.__monitorState"))
+                time.sleep(0.5)
+            time.sleep(1.0)  # the last packets reach the page
+            samples.append(page.evaluate("window.__monitorState"))
+            page.eval_on_selector("#ripple-panel", "el => el.scrollIntoView()")
+            page.screenshot(path=str(tmp / "ripples.png"), full_page=True)
+            browser.close()
+    finally:
+        monitor.terminate()
+        monitor.communicate(timeout=10)
+        demo.join(120)
+    assert demo_rc == [0], "the demo failed"
+    return {"samples": samples, "errors": errors, "summary": json.loads(summary_path.read_text()),
+            "log_dir": log_dir, "tmp": tmp}
+
+
+def test_the_page_shows_every_candidate_event_of_the_session(watched_session):
+    s = watched_session
+    assert not s["errors"], s["errors"]
+    final = s["samples"][-1]["ripples"]
+    assert final is not None, "the page never drew the ripple panel"
+    kept = s["summary"]["ripples"]["events"]
+    assert len(kept) > 0, "no candidate event in the session: the test saw nothing to show"
+    # The panel's count is the summary's list of candidate events (decoder/session/ripples.py, status()).
+    assert final["events_seen"] == len(kept) == final["n_events"]
+    assert final["count_text"].startswith(f"{len(kept)} candidate event")
+    assert final["envelope_points"] > 100 and final["threshold_sd"] > 0
+    shown = final["sequences"]
+    assert 0 < len(shown) == final["cards_shown"] <= 6
+    by_onset = {e["onset_s"]: e for e in kept}
+    for e in shown:
+        # The onset, bin count and decided content the page draws are the session's own.
+        assert e["onset_s"] in by_onset
+        assert e["bins"] == by_onset[e["onset_s"]]["n_bins"]
+        assert e["decided"] == list(dict.fromkeys(by_onset[e["onset_s"]]["decided"]))
