@@ -22,6 +22,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.stats
+import tomli_w
+import tomllib
 
 from decoder.config import load_config
 from decoder.session.ripples import ContentEvent
@@ -180,11 +182,25 @@ def watched_session(tmp_path_factory):
 
     tmp = tmp_path_factory.mktemp("ripple_session")
     log_dir, summary_path = tmp / "log", tmp / "summary.json"
+    # The scenario with two content rules in place of its disruption rule (whose events, beneath the same
+    # refractory cap, would hold the content rules back), and ripples more often: some events have their content
+    # decided, two rules in two colours.
+    doc = tomllib.loads(CONFIG.read_text())
+    doc["zones"] = [{"kind": "circle", "name": "left_well", "center_cm": [0.0, 80.0], "radius_cm": 20.0}]
+    doc["rules"] = [{"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_bins": 2,
+                      "min_correlation": 0.3},
+                     {"name": "away_from_left", "kind": "replay_away", "zone": "left_well", "min_bins": 2,
+                      "min_correlation": 0.3}]
+    doc["simulation"]["lfp"]["ripple_rate_hz"] = 2.0
+    config_path = tmp / "w_maze_content.toml"
+    config_path.write_text(tomli_w.dumps(doc))
     endpoints: list[str] = []
     demo_rc: list[int] = []
-    # 30 s of learning then 30 s of closed loop at 2x: the rat rests at a well at least once after the fit.
+    # 25 s of learning then 30 s of closed loop: the rat rests at a well at least once after the fit. At the
+    # speed of the data, so that a loaded machine's loop keeps up: one that falls behind catches up in a burst
+    # of state frames, which the monitor, a slow consumer by design, may lose (PROTOCOL.md, section 8).
     demo = threading.Thread(target=lambda: demo_rc.append(run_demo(
-        config_path=str(CONFIG), speed=2.0, log_dir=str(log_dir), summary_path=str(summary_path), learn_s=30.0,
+        config_path=str(config_path), speed=1.0, log_dir=str(log_dir), summary_path=str(summary_path), learn_s=25.0,
         decode_s=30.0, seed=5, monitor_state_endpoint=endpoints)), daemon=True)
     demo.start()
     deadline = time.monotonic() + 30
@@ -193,7 +209,7 @@ def watched_session(tmp_path_factory):
         time.sleep(0.1)
     http_port = _free_port()
     monitor = subprocess.Popen(
-        [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(CONFIG), "--state", endpoints[0],
+        [sys.executable, "-m", "rig_adapters.monitor.server", "--config", str(config_path), "--state", endpoints[0],
          "--http-port", str(http_port)], cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     url = f"http://127.0.0.1:{http_port}/"
     errors: list[str] = []
@@ -219,8 +235,9 @@ def watched_session(tmp_path_factory):
         monitor.communicate(timeout=10)
         demo.join(120)
     assert demo_rc == [0], "the demo failed"
+    (tmp / "samples.json").write_text(json.dumps(samples))
     return {"samples": samples, "errors": errors, "summary": json.loads(summary_path.read_text()),
-            "log_dir": log_dir, "tmp": tmp}
+            "log_dir": log_dir, "tmp": tmp, "config": load_config(config_path)}
 
 
 def test_the_page_shows_every_candidate_event_of_the_session(watched_session):
@@ -231,7 +248,8 @@ def test_the_page_shows_every_candidate_event_of_the_session(watched_session):
     kept = s["summary"]["ripples"]["events"]
     assert len(kept) > 0, "no candidate event in the session: the test saw nothing to show"
     # The panel's count is the summary's list of candidate events (decoder/session/ripples.py, status()).
-    assert final["events_seen"] == len(kept) == final["n_events"]
+    assert final["events_seen"] == len(kept) == final["n_events"], (
+        [e["onset_s"] for e in kept], [x["ripples"] and x["ripples"]["events_seen"] for x in s["samples"]])
     assert final["count_text"].startswith(f"{len(kept)} candidate event")
     assert final["envelope_points"] > 100 and final["threshold_sd"] > 0
     shown = final["sequences"]
@@ -242,3 +260,53 @@ def test_the_page_shows_every_candidate_event_of_the_session(watched_session):
         assert e["onset_s"] in by_onset
         assert e["bins"] == by_onset[e["onset_s"]]["n_bins"]
         assert e["decided"] == list(dict.fromkeys(by_onset[e["onset_s"]]["decided"]))
+
+
+def test_the_report_draws_each_event_sequence_of_the_recorded_session(watched_session):
+    from rig_adapters.offline.report import render_report
+    from rig_adapters.offline.report_data import event_sequences, gather_session
+
+    s = watched_session
+    config = s["config"]
+    record = gather_session(s["log_dir"])
+    # The replay reproduces the live run's candidate events (the recorded bytes through the same pipeline).
+    assert [e.as_dict() for e in record.content_events] == s["summary"]["ripples"]["events"]
+    sequences = event_sequences(record.content_events, config.environment, config.zone_names(),
+                                config.ripples.content_min_spikes)
+    assert sequences and len(sequences) == min(24, sum(1 for e in record.content_events if e.sequence))
+    for q, e in zip(sequences, (e for e in record.content_events if e.sequence)):
+        assert q.onset_s == e.onset_s and q.bin_ms.size == e.n_bins
+        # Positions along the graph are the environment's own linearisation of the MAP (decoder.space.track_graphs).
+        xy = np.array([row[1:3] for row in e.sequence])
+        np.testing.assert_allclose(q.positions[0], config.environment.linearize(xy))
+        ok = q.used & np.isfinite(q.positions[0])
+        if ok.sum() >= 2 and np.ptp(q.positions[0, ok]) > 0:
+            # Reference: scipy.stats.kendalltau (tau-b, its default variant).
+            expected = scipy.stats.kendalltau(q.bin_ms[ok], q.positions[0, ok]).statistic
+            assert q.tau_linear == pytest.approx(expected, abs=1e-12)
+    html = render_report(record)
+    section = html[html.index('id="replay-content"'):]
+    section = section[:section.index("</section>")]
+    assert 'alt="decoded sequence of each candidate event" src="data:image/png;base64,' in section
+    assert f"The first {len(sequences)} candidate events of the replay" in section
+
+
+@pytest.mark.parametrize("x, y", [
+    ([1, 2, 3, 4, 5], [5, 6, 7, 8, 7]),
+    ([1, 2, 3, 4, 5, 6], [3, 3, 1, 2, 2, 9]),     # ties in y
+    ([0.1, 0.1, 0.3, 0.4], [2.0, 1.0, 1.0, 5.0]),  # ties in both
+    ([1, 2], [2, 1]),
+])
+def test_kendall_tau_b_matches_scipy(x, y):
+    from rig_adapters.offline.report_data import kendall_tau_b
+
+    # Reference: scipy.stats.kendalltau, whose default is tau-b.
+    assert kendall_tau_b(np.array(x, float), np.array(y, float)) == pytest.approx(
+        scipy.stats.kendalltau(x, y).statistic, abs=1e-12)
+
+
+def test_kendall_tau_b_is_nan_without_two_distinct_values():
+    from rig_adapters.offline.report_data import kendall_tau_b
+
+    assert math.isnan(kendall_tau_b(np.array([1.0]), np.array([2.0])))
+    assert math.isnan(kendall_tau_b(np.array([1.0, 2.0, 3.0]), np.array([4.0, 4.0, 4.0])))

@@ -131,8 +131,11 @@ function drawSequence(card, e) {
   ctx.clearRect(0, 0, w, h);
   const box = { x: 44, y: 6, w: w - 44 - 8, h: h - 6 - 38 };
   const ax = positionAxis();
-  const tMax = Math.max(60, ...e.bin_ms.filter((t) => t !== null), e.duration_ms || 0);
-  const sx = (t) => box.x + (t / tMax) * box.w;
+  const times = e.bin_ms.filter((t) => t !== null);
+  const tMax = Math.max(60, ...times, e.duration_ms || 0);
+  // The first bins may end before the onset: the event starts where its population burst began.
+  const tMin = Math.min(0, 10 * Math.floor(Math.min(...times, 0) / 10));
+  const sx = (t) => box.x + ((t - tMin) / (tMax - tMin)) * box.w;
   const sy = (p) => box.y + box.h - ((p - ax.lo) / (ax.hi - ax.lo)) * box.h;
   const colour = contentColour(e);
   const decided = e.decided.length > 0;
@@ -155,7 +158,7 @@ function drawSequence(card, e) {
     });
   });
   ctx.restore();
-  drawAxes(ctx, box, [0, tMax], [ax.lo, ax.hi], sx, sy, "ms after onset", "", { xfmt: (t) => t.toFixed(0) });
+  drawAxes(ctx, box, [tMin, tMax], [ax.lo, ax.hi], sx, sy, "ms after onset", "", { xfmt: (t) => t.toFixed(0) });
   const what = decided ? `decided: ${e.decided.join(", ")} at ${fmt(e.decision_ms, 0, "ms")}` : "no content rule fired";
   card.caption.replaceChildren();
   const b = document.createElement("b");
