@@ -127,6 +127,32 @@ def test_a_bad_ripple_view_is_refused_with_a_reason(bad, reason):
     assert err.value.reason == reason
 
 
+def test_a_mangled_ripple_view_raises_only_protocol_errors():
+    import copy
+    import random
+
+    import msgpack
+
+    from rig_adapters.wire.framing import pack
+
+    base = msgpack.unpackb(_state(1, 3.0, protocol.ripple_view(_detector_with_baseline(), [
+        _event(1.0 + i, 3) for i in range(3)])), raw=False)
+    rnd = random.Random(2)
+    garbage = [None, True, -1, 2**64 - 1, 1e300, -1e300, math.nan, "x", b"\x00" * 5, [], [1.0, "a"], [[1.0]],
+               {"on": 1.0}, [{"on": "x"}], list(range(300))]
+    accepted = 0
+    for _ in range(3000):
+        m = copy.deepcopy(base)
+        target = m["rip"] if rnd.random() < 0.5 else m["rip"]["ev"][rnd.randrange(3)]
+        target[rnd.choice(list(target))] = rnd.choice(garbage)
+        try:
+            protocol.decode_output(pack(m))
+            accepted += 1
+        except protocol.ProtocolError as exc:
+            assert exc.reason in ("bad_field", "bad_array", "length_mismatch")
+    assert 0 < accepted < 3000  # some substitutions are valid values (NaN offset, empty names), most are not
+
+
 def test_session_view_merges_events_across_frames_and_linearises_them():
     config = load_config(CONFIG)
     det = _detector_with_baseline()

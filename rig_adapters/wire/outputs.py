@@ -405,27 +405,34 @@ def _bad_ripples(expected: str, value: Any) -> ProtocolError:
 
 
 def _f32(name: str, value: Any, limit: int) -> np.ndarray:
-    """A float32 vector of at most ``limit`` values, from bin (little-endian float32) or a sequence."""
+    """A float32 vector of at most ``limit`` finite or NaN values, from bin (little-endian float32) or a sequence."""
     if isinstance(value, bytes):
         if len(value) % _F32.itemsize:
             raise ProtocolError("bad_array", f"ripples {name!r} has {len(value)} bytes, not whole float32 values")
         a = np.frombuffer(value, dtype=_F32)
     else:
         try:
-            a = np.asarray(value, dtype=np.float32)
+            with np.errstate(over="ignore"):
+                a = np.asarray(value, dtype=np.float32)
         except (TypeError, ValueError, OverflowError):
             raise _bad_ripples(f"{name!r} must be numbers", value) from None
     if a.ndim != 1 or a.size > limit:
         raise _bad_ripples(f"{name!r} must be a vector of at most {limit} values", value)
+    if np.isinf(a).any():
+        raise _bad_ripples(f"{name!r} must hold float32 values, NaN where unknown, never infinite", value)
     return a
 
 
 def _real(name: str, value: Any, finite: bool = False) -> float:
     if not isinstance(value, (int, float, np.integer, np.floating)) or isinstance(value, (bool, np.bool_)):
         raise _bad_ripples(f"{name!r} must be a number", value)
-    if math.isinf(value) or (finite and math.isnan(value)):
+    try:
+        x = float(value)
+    except OverflowError:
+        raise _bad_ripples(f"{name!r} must be a float", value) from None
+    if math.isinf(x) or (finite and math.isnan(x)):
         raise _bad_ripples(f"{name!r} must be {'finite' if finite else 'a number or NaN'}", value)
-    return float(value)
+    return x
 
 
 def _ripple_event(e: Any) -> dict:
