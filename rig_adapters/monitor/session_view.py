@@ -353,7 +353,8 @@ class SessionView:
         On a track, graph or ring the position is the linear one (cm along
         the track, degrees of heading); in an arena, x and y.
         """
-        xy = np.column_stack([e["map_x_cm"], e["map_y_cm"]]).astype(np.float64)
+        bins = e["bins"].astype(np.float64)
+        xy = bins[:, 1:3]
         finite = np.all(np.isfinite(xy), axis=1)
         if isinstance(self.environment, Arena):
             series = [xy[:, 0], xy[:, 1]]
@@ -369,9 +370,9 @@ class SessionView:
             "duration_ms": None if offset is None else round(1e3 * (offset - e["onset_s"]), 1),
             "decided": list(dict.fromkeys(e["decided"])),
             "decision_ms": None if decision is None else round(1e3 * (decision - e["onset_s"]), 1),
-            "bin_ms": [_number(round(float(v), 2)) for v in e["bin_end_ms"]],
+            "bin_ms": [_number(round(float(v), 2)) for v in bins[:, 0]],
             "positions": [[_number(round(float(v), 2)) for v in s] for s in series],
-            "n_spikes": list(e["n_spikes"]),
+            "n_spikes": bins[:, 3].astype(int).tolist(),
             "tau": [_number(v) for v in e["tau"]],
         }
 

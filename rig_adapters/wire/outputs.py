@@ -9,6 +9,7 @@ know, so that a newer placeloop may add optional keys (PROTOCOL.md, section 11).
 
 from __future__ import annotations
 
+import itertools
 import math
 import time
 from dataclasses import dataclass
@@ -355,16 +356,21 @@ RIPPLE_BINS_MAX = 200
 RIPPLE_NAMES_MAX = 64
 #: A loop attaches the ripple view to a state frame at least this often (wall s) while frames flow.
 RIPPLE_VIEW_PERIOD_S = 0.25
-#: ... and sooner when an event begins, gains a bin or ends, but never twice within this (wall s).
+#: ... and sooner when an event begins or ends, but never twice within this (wall s).
 RIPPLE_VIEW_MIN_GAP_S = 0.05
 
 _RIPPLE_KEYS = (("threshold_sd", "thr"), ("end_sd", "end"), ("ready", "rdy"), ("t0_s", "t0"), ("step_s", "dt"),
                 ("envelope_sd", "env"), ("n_events", "n"), ("events", "ev"))
-_EVENT_KEYS = (("onset_s", "on"), ("offset_s", "off"), ("decided", "dec"), ("decision_s", "ds"),
-               ("bin_end_ms", "bt"), ("map_x_cm", "x"), ("map_y_cm", "y"), ("n_spikes", "ns"), ("tau", "tau"))
+_EVENT_KEYS = (("onset_s", "on"), ("offset_s", "off"), ("decided", "dec"), ("decision_s", "ds"), ("bins", "sq"),
+               ("tau", "tau"))
+_RIPPLE_NAMES = frozenset(name for name, _ in _RIPPLE_KEYS)
+_EVENT_NAMES = frozenset(name for name, _ in _EVENT_KEYS)
+#: Columns of an event's ``bins``: bin end (ms after the onset), MAP x and y (cm), spikes.
+RIPPLE_BIN_COLUMNS = 4
 
 
-def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s: float = 6.0) -> dict | None:
+def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s: float = 6.0,
+                cache: dict | None = None) -> dict | None:
     """The ``ripples`` field of a state frame, from the session's ripple stream.
 
     Parameters
@@ -376,6 +382,11 @@ def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s:
         its first ``RIPPLE_BINS_MAX`` content bins.
     envelope_s : float, default 6.0
         Data seconds of the envelope trace sent.
+    cache : dict, optional
+        Kept by the caller from view to view: an event is converted, checked
+        and put in wire form once per state of it (its bins, decided
+        content and offset), so a view costs little more than its newest
+        event.
 
     Returns
     -------
@@ -385,28 +396,62 @@ def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s:
     if detector is None:
         return None
     t0_s, envelope = detector.trace_.recent(envelope_s)
-    newest = list(events)[-min(n_events, RIPPLE_EVENTS_MAX):] if n_events > 0 else []
+    newest = list(itertools.islice(reversed(events), min(n_events, RIPPLE_EVENTS_MAX)))[::-1]
+    cache = {} if cache is None else cache
+    if len(cache) > 4 * RIPPLE_EVENTS_MAX:
+        cache.clear()
     out_events = []
     for e in newest:
-        seq = np.array([row[:3] for row in e.sequence[:RIPPLE_BINS_MAX]], np.float64).reshape(-1, 3)
-        out_events.append({
-            "onset_s": e.onset_s, "offset_s": e.offset_s, "decided": list(e.decided or ())[:RIPPLE_NAMES_MAX],
-            "decision_s": e.decision_s, "bin_end_ms": (seq[:, 0] - e.onset_s) * 1e3,
-            "map_x_cm": seq[:, 1], "map_y_cm": seq[:, 2],
-            "n_spikes": [row[3] for row in e.sequence[:RIPPLE_BINS_MAX]], "tau": e.rank_correlation[:RIPPLE_NAMES_MAX],
-        })
-    return {"threshold_sd": detector.threshold_sd, "end_sd": detector.end_sd, "ready": bool(detector.ready_),
-            "t0_s": t0_s, "step_s": detector.trace_.step_s, "envelope_sd": envelope[-RIPPLE_ENVELOPE_MAX:],
-            "n_events": len(events), "events": out_events}
+        # An event only ever gains bins and decisions, and its offset comes once.
+        key = (e.onset_s, len(e.sequence), len(e.decided or ()), math.isnan(e.offset_s))
+        checked = cache.get(key)
+        if checked is None:
+            bins = np.array(e.sequence[:RIPPLE_BINS_MAX], np.float64).reshape(-1, RIPPLE_BIN_COLUMNS)
+            bins[:, 0] = (bins[:, 0] - e.onset_s) * 1e3
+            checked = cache[key] = _ripple_event({
+                "onset_s": e.onset_s, "offset_s": e.offset_s, "decided": list(e.decided or ())[:RIPPLE_NAMES_MAX],
+                "decision_s": e.decision_s, "bins": bins.astype(_F32),
+                "tau": np.array(e.rank_correlation[:RIPPLE_NAMES_MAX], _F32)})
+        out_events.append(checked)
+    return _ripples_value({"threshold_sd": detector.threshold_sd, "end_sd": detector.end_sd,
+                           "ready": bool(detector.ready_), "t0_s": t0_s, "step_s": detector.trace_.step_s,
+                           "envelope_sd": envelope[-RIPPLE_ENVELOPE_MAX:], "n_events": len(events),
+                           "events": out_events})
+
+
+class _CheckedEvent(dict):
+    """One event of a ripple view as :func:`_ripple_event` returns it; its wire form is made once."""
+
+    _wire: dict | None = None
+
+    def wire(self) -> dict:
+        if self._wire is None:
+            self._wire = {key: _wire_value(self[name]) for name, key in _EVENT_KEYS}
+        return self._wire
+
+
+class _CheckedRipples(dict):
+    """A ripple view as :func:`_ripples_value` returns it: checked, so encoding it again checks nothing."""
+
+
+def _wire_value(x: Any) -> Any:
+    """Arrays as bin (little-endian, row-major); everything else as it is."""
+    return np.ascontiguousarray(x).tobytes() if isinstance(x, np.ndarray) else x
 
 
 def _bad_ripples(expected: str, value: Any) -> ProtocolError:
     return ProtocolError("bad_field", f"ripples ('rip') {expected}, got {describe(value)}")
 
 
-def _f32(name: str, value: Any, limit: int) -> np.ndarray:
-    """A float32 vector of at most ``limit`` finite or NaN values, from bin (little-endian float32) or a sequence."""
-    if isinstance(value, bytes):
+def _f32(name: str, value: Any, limit: int, columns: int = 0) -> np.ndarray:
+    """Float32 values, finite or NaN, from bin (little-endian float32) or a sequence.
+
+    A vector of at most ``limit`` values; with ``columns``, a matrix of that
+    many columns and at most ``limit`` rows (bin holds it row-major).
+    """
+    if isinstance(value, np.ndarray) and value.dtype == _F32:
+        a = value  # as ripple_view builds it: no copy, no conversion
+    elif isinstance(value, bytes):
         if len(value) % _F32.itemsize:
             raise ProtocolError("bad_array", f"ripples {name!r} has {len(value)} bytes, not whole float32 values")
         a = np.frombuffer(value, dtype=_F32)
@@ -416,7 +461,12 @@ def _f32(name: str, value: Any, limit: int) -> np.ndarray:
                 a = np.asarray(value, dtype=np.float32)
         except (TypeError, ValueError, OverflowError):
             raise _bad_ripples(f"{name!r} must be numbers", value) from None
-    if a.ndim != 1 or a.size > limit:
+    if columns:
+        if a.ndim == 1 and a.size % columns == 0:
+            a = a.reshape(-1, columns)
+        if a.ndim != 2 or a.shape[1] != columns or a.shape[0] > limit:
+            raise _bad_ripples(f"{name!r} must be at most {limit} rows of {columns} values", value)
+    elif a.ndim != 1 or a.size > limit:
         raise _bad_ripples(f"{name!r} must be a vector of at most {limit} values", value)
     if np.isinf(a).any():
         raise _bad_ripples(f"{name!r} must hold float32 values, NaN where unknown, never infinite", value)
@@ -435,31 +485,30 @@ def _real(name: str, value: Any, finite: bool = False) -> float:
     return x
 
 
-def _ripple_event(e: Any) -> dict:
-    if not isinstance(e, dict) or set(e) - {name for name, _ in _EVENT_KEYS}:
+def _ripple_event(e: Any) -> _CheckedEvent:
+    if isinstance(e, _CheckedEvent):
+        return e
+    if not isinstance(e, dict) or not _EVENT_NAMES.issuperset(e):
         raise _bad_ripples("events must be maps of " + ", ".join(n for n, _ in _EVENT_KEYS), e)
     decided = e.get("decided", [])
     if not isinstance(decided, (list, tuple)) or len(decided) > RIPPLE_NAMES_MAX or not all(
             isinstance(d, str) and d for d in decided):
         raise _bad_ripples(f"'decided' must be at most {RIPPLE_NAMES_MAX} rule names", decided)
-    bins = {name: _f32(name, e.get(name, ()), RIPPLE_BINS_MAX) for name in ("bin_end_ms", "map_x_cm", "map_y_cm")}
-    spikes = e.get("n_spikes", ())
-    if not isinstance(spikes, (list, tuple, np.ndarray)) or not all(
-            isinstance(n, (int, np.integer)) and not isinstance(n, (bool, np.bool_)) and n >= 0 for n in spikes):
-        raise _bad_ripples("'n_spikes' must be non-negative integers", spikes)
-    if len({len(spikes), *(a.size for a in bins.values())}) != 1:
-        raise ProtocolError("length_mismatch", "ripples: an event's bin_end_ms, map_x_cm, map_y_cm and n_spikes "
-                                               "must have one value per content bin")
+    bins = _f32("bins", e.get("bins", ()), RIPPLE_BINS_MAX, RIPPLE_BIN_COLUMNS)
+    spikes = bins[:, 3]
+    if not ((spikes >= 0) & (spikes == np.floor(spikes))).all():
+        raise _bad_ripples("'bins' must hold a whole, non-negative spike count in its fourth column", value=spikes)
     tau = _f32("tau", e.get("tau", ()), RIPPLE_NAMES_MAX)
-    return {"onset_s": _real("onset_s", e.get("onset_s"), finite=True),
-            "offset_s": _real("offset_s", e.get("offset_s", math.nan)), "decided": list(decided),
-            "decision_s": _real("decision_s", e.get("decision_s", math.nan)), **bins,
-            "n_spikes": [int(n) for n in spikes], "tau": tau}
+    return _CheckedEvent(onset_s=_real("onset_s", e.get("onset_s"), finite=True),
+                         offset_s=_real("offset_s", e.get("offset_s", math.nan)), decided=list(decided),
+                         decision_s=_real("decision_s", e.get("decision_s", math.nan)), bins=bins, tau=tau)
 
 
-def _ripples_value(value: Any) -> dict:
+def _ripples_value(value: Any) -> _CheckedRipples:
     """Validate a ripple view (Python names) and return it with arrays as float32."""
-    if not isinstance(value, dict) or set(value) - {name for name, _ in _RIPPLE_KEYS}:
+    if isinstance(value, _CheckedRipples):
+        return value
+    if not isinstance(value, dict) or not _RIPPLE_NAMES.issuperset(value):
         raise _bad_ripples("must be a map of " + ", ".join(n for n, _ in _RIPPLE_KEYS), value)
     events = value.get("events", [])
     if not isinstance(events, (list, tuple)) or len(events) > RIPPLE_EVENTS_MAX:
@@ -473,20 +522,17 @@ def _ripples_value(value: Any) -> dict:
     step_s = _real("step_s", value.get("step_s"), finite=True)
     if step_s <= 0:
         raise _bad_ripples("'step_s' must be positive", step_s)
-    return {"threshold_sd": _real("threshold_sd", value.get("threshold_sd"), finite=True),
-            "end_sd": _real("end_sd", value.get("end_sd"), finite=True), "ready": bool(ready),
-            "t0_s": _real("t0_s", value.get("t0_s", math.nan)), "step_s": step_s,
-            "envelope_sd": _f32("envelope_sd", value.get("envelope_sd", ()), RIPPLE_ENVELOPE_MAX),
-            "n_events": int(n_events), "events": [_ripple_event(e) for e in events]}
+    return _CheckedRipples(threshold_sd=_real("threshold_sd", value.get("threshold_sd"), finite=True),
+                           end_sd=_real("end_sd", value.get("end_sd"), finite=True), ready=bool(ready),
+                           t0_s=_real("t0_s", value.get("t0_s", math.nan)), step_s=step_s,
+                           envelope_sd=_f32("envelope_sd", value.get("envelope_sd", ()), RIPPLE_ENVELOPE_MAX),
+                           n_events=int(n_events), events=[_ripple_event(e) for e in events])
 
 
-def _ripples_to_wire(value: dict) -> dict:
-    """Python names to wire keys; float32 vectors as bin."""
-    def wire(x: Any) -> Any:
-        return np.ascontiguousarray(x, dtype=_F32).tobytes() if isinstance(x, np.ndarray) else x
-
-    out = {key: wire(value[name]) for name, key in _RIPPLE_KEYS if name != "events"}
-    out["ev"] = [{key: wire(e[name]) for name, key in _EVENT_KEYS} for e in value["events"]]
+def _ripples_to_wire(value: _CheckedRipples) -> dict:
+    """Python names to wire keys; float32 arrays as bin."""
+    out = {key: _wire_value(value[name]) for name, key in _RIPPLE_KEYS if name != "events"}
+    out["ev"] = [e.wire() for e in value["events"]]
     return out
 
 
