@@ -346,9 +346,11 @@ def event_sequences_figure(sequences: list[EventSequence], config: ExperimentCon
                       label=f"decided: {name}") for name in rules]
     handles.append(Line2D([], [], ls="", marker="o", markerfacecolor="none", markeredgecolor=UNDECIDED_COLOUR,
                           label="no content rule fired"))
+    handles.append(Line2D([], [], ls="", marker="o", markersize=3, markerfacecolor="none", markeredgecolor=INK,
+                          label="bin with too few spikes"))
     handles.append(Line2D([], [], color=INK, ls=":", lw=0.8, label="decision"))
     fig.subplots_adjust(top=1.0 - 0.45 / fig.get_figheight())
-    fig.legend(handles=handles, loc="lower center", ncol=min(4, len(handles)), fontsize=7,
+    fig.legend(handles=handles, loc="lower center", ncol=min(5, len(handles)), fontsize=7,
                bbox_to_anchor=(0.5, 1.0))
     return _png(fig)
 
