@@ -65,7 +65,7 @@ class EnvelopeTrace:
         elif first < self.last_step_ - size + 1:
             return  # older than the ring: nothing left to update
         if first == last:  # the usual chunk of a few ms lies within one step
-            pairs = [(first, float(values.max()))]
+            pairs = ((first, max(values.tolist())),)
         else:
             steps = np.floor((t_s + np.arange(n) / rate_hz) / self.step_s).astype(np.int64)
             starts = np.flatnonzero(np.diff(steps, prepend=steps[0] - 1))
