@@ -36,7 +36,7 @@ import logging
 import math
 import struct
 from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
@@ -122,6 +122,12 @@ class ContentEvent:
         The content rules that fired, in order (empty: none did).
     decision_s : float
         Data time of the first content rule's event; NaN for none.
+    sequence : list of (float, float, float, int)
+        The decoded sequence, one tuple per content bin: the bin's end (data
+        time, s), its MAP position x and y (cm) and its spikes. For display
+        (the monitor, the report); not in :meth:`as_dict`.
+    rank_correlation : list of float
+        The newest bin's Kendall tau-b per zone (``ContentBin.rank_correlation``; NaN before two bins).
     """
 
     onset_s: float
@@ -129,6 +135,8 @@ class ContentEvent:
     n_bins: int = 0
     decided: list[str] | None = None
     decision_s: float = math.nan
+    sequence: list[tuple[float, float, float, int]] = field(default_factory=list)
+    rank_correlation: list[float] = field(default_factory=list)
 
     def as_dict(self) -> dict:
         """Plain JSON values: onset (s), duration and decision time after the onset (ms; None when unknown)."""
@@ -242,6 +250,8 @@ class RippleStream:
             self.counters["events"] += len(events)
             record = self.events_[-1]
             record.n_bins += 1
+            record.sequence.append((b.t_s, float(b.map_xy_cm[0]), float(b.map_xy_cm[1]), b.n_spikes))
+            record.rank_correlation = b.rank_correlation.tolist()
             if events and not record.decided:
                 record.decision_s = b.t_s
             record.decided = (record.decided or []) + [ev.rule for ev in events]

@@ -40,6 +40,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from decoder.signals._kernels import median_and_mad, ripple_chunk
+from decoder.signals.envelope_trace import EnvelopeTrace
 from decoder.signals.ripple_band import RippleBand
 
 __all__ = ["RippleDetection", "RippleOffset", "RippleDetector", "MAD_TO_SD"]
@@ -138,6 +139,9 @@ class RippleDetector:
     ready_ : bool
         Whether the baseline has its warm-up and detections can happen.
     n_detections_ : int
+    trace_ : EnvelopeTrace
+        The channels' mean z-score (baseline s.d.) once ``ready_``, the peak
+        of each 10 ms, for display only: nothing here reads it back.
 
     Examples
     --------
@@ -186,6 +190,7 @@ class RippleDetector:
         self._inv_spread = np.zeros(self.n_channels)
         self.ready_ = False
         self.n_detections_ = 0
+        self.trace_ = EnvelopeTrace()
         self._rows = 0          # baseline rows written so far (the ring's head is rows % capacity)
         self._refresh_channel = 0
         self._tail = np.zeros((2, self.n_channels))
@@ -229,6 +234,7 @@ class RippleDetector:
         out: list[RippleDetection | RippleOffset] = []
         if self.ready_:
             out = self._events(t_s, first, z, env, end_s)
+            self.trace_.add(t_s, z, self.rate_hz)
         self._learn(first, env, z)
         return out
 

@@ -129,6 +129,9 @@ class LiveLoop:
         self._stats_wall_s = 0.0
         self._stats: dict = {}
         self._last_counts: dict = {}
+        self._ripple_view_wall_s = -math.inf
+        self._ripple_view_key: tuple = ()
+        self._ripple_view_cache: dict = {}
         shape = config.environment.grid_shape
         self._grid_shape = list(shape) if shape is not None else [config.environment.n_bins]
         self._last_rig_wall_s: float | None = None
@@ -344,6 +347,18 @@ class LiveLoop:
             grid_shape=self._grid_shape,
             stats={k: v for k, v in stats.items() if isinstance(v, int) or math.isfinite(v)},
         )
+        ripples = self.pipeline.ripples
+        if ripples.detector is not None:
+            # A slow consumer needs the view a few times a second, and soon after an event begins or ends.
+            events = ripples.events_
+            key = (len(events), math.isnan(events[-1].offset_s)) if events else ()
+            now = time.monotonic()
+            since = now - self._ripple_view_wall_s
+            if since >= protocol.RIPPLE_VIEW_PERIOD_S or (key != self._ripple_view_key
+                                                          and since >= protocol.RIPPLE_VIEW_MIN_GAP_S):
+                fields["ripples"] = protocol.ripple_view(ripples.detector, events, cache=self._ripple_view_cache)
+                self._ripple_view_wall_s = now
+                self._ripple_view_key = key
         self._publish_state(fields)
 
     def _send_learning(self, progress: LearningProgress) -> None:

@@ -36,6 +36,18 @@ MARKS = {
 #: Colour of an event (the ring on the map, the arcs of heading zones).
 EVENT_COLOUR = "#d55e00"
 
+#: Decided replay content: the colour of each content rule, in the order of the config's ``[[rules]]``
+#: of a "replay_" kind (Okabe & Ito 2008 colours; the word is always written beside them).
+CONTENT_COLOURS = ("#009e73", "#0072b2", "#e69f00", "#cc79a7", "#56b4e9", "#f0e442")
+
+#: A candidate event no content rule decided: grey, drawn hollow.
+UNDECIDED_COLOUR = "#8a929c"
+
+
+def content_colours(rule_names: list[str]) -> dict[str, str]:
+    """The colour of each content rule's name (colours repeat after six rules)."""
+    return {name: CONTENT_COLOURS[i % len(CONTENT_COLOURS)] for i, name in enumerate(rule_names)}
+
 
 def colour_map_hex(levels: int = 256) -> list[str]:
     """The colour map sampled at ``levels`` evenly spaced points, as "rrggbb" strings (low to high)."""
@@ -45,7 +57,11 @@ def colour_map_hex(levels: int = 256) -> list[str]:
     return ["".join(f"{round(255 * c):02x}" for c in cmap(i)[:3]) for i in range(levels)]
 
 
-def marks_payload() -> dict:
-    """What the page needs to draw exactly the marks and colours the report draws."""
+def marks_payload(content_rules: list[str] | None = None) -> dict:
+    """What the page needs to draw exactly the marks and colours the report draws.
+
+    ``content_rules``: the names of the config's replay-content rules, in order, for their colours.
+    """
     return {"colour_map": COLOUR_MAP, "colour_map_hex": colour_map_hex(), "ink": INK, "outside_map": OUTSIDE_MAP,
-            "event": EVENT_COLOUR, "marks": MARKS}
+            "event": EVENT_COLOUR, "marks": MARKS, "content": content_colours(content_rules or []),
+            "undecided": UNDECIDED_COLOUR}

@@ -116,7 +116,7 @@ async def _environment(request: web.Request) -> web.Response:
     body["state_endpoint"] = app[ENDPOINT_KEY]
     body["events_endpoint"] = app[EVENTS_ENDPOINT_KEY]
     body["caution"] = CAUTION
-    body["marks"] = marks_payload()
+    body["marks"] = marks_payload(body["content_rules"])
     return web.json_response(body)
 
 

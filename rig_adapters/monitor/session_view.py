@@ -50,6 +50,12 @@ EVENTS_KEPT = 500
 #: with the counts below and above the range in the first and last bin.
 LATENCY_EDGES_MS = np.geomspace(0.05, 500.0, 41)
 
+#: Candidate ripple events kept for the ripple panel (the newest); all are counted.
+RIPPLE_EVENTS_KEPT = 200
+
+#: Candidate events whose decoded sequences the ripple panel draws (the newest).
+RIPPLE_SEQUENCES_SHOWN = 6
+
 #: How often (s) bad state frames are logged at most; all are counted.
 BAD_FRAME_LOG_INTERVAL_S = 5.0
 
@@ -94,7 +100,8 @@ def environment_payload(config: ExperimentConfig) -> dict:
     dict
         ``kind`` ("arena", "track" or "ring"), ``bin_cm``, ``n_bins``, ``hpd_unit``
         ("cm²", "cm" or "deg"), the environment's ``to_dict()`` under
-        ``environment``, the zones' ``to_dict()`` under ``zones``, and:
+        ``environment``, the zones' ``to_dict()`` under ``zones``, the
+        names of the replay-content rules under ``content_rules``, and:
 
         - an arena: ``grid_shape`` [ny, nx], ``x_edges_cm`` (nx + 1),
           ``y_edges_cm`` (ny + 1), ``valid_mask`` (n_bins,) of 0/1 in
@@ -112,6 +119,7 @@ def environment_payload(config: ExperimentConfig) -> dict:
         "n_bins": env.n_bins,
         "environment": env.to_dict(),
         "zones": [z.to_dict() for z in config.zones],
+        "content_rules": [r.name for r in config.rules if r.kind.startswith("replay_")],
         "hpd_unit": "cm²" if env.ndim_spatial == 2 else ("deg" if isinstance(env, HeadingRing) else "cm"),
     }
     if isinstance(env, Arena):
@@ -257,6 +265,10 @@ class SessionView:
         self._n_events = 0
         self._quantised: tuple[int, bytes, float] | None = None
         self._last_bad_log = -math.inf
+        self.ripple_view: dict | None = None
+        self.ripple_events: dict[float, dict] = {}
+        self.ripple_events_seen = 0
+        self._ripple_packet_cache: dict | None = None
 
     # -- input ---------------------------------------------------------------------
 
@@ -313,8 +325,81 @@ class SessionView:
         if added is not None and added > 0:  # 0 until the loop has timed its first step
             i = min(max(bisect.bisect_right(LATENCY_EDGES_MS, added) - 1, 0), len(self.latency_counts) - 1)
             self.latency_counts[i] += 1
+        if frame.get("ripples") is not None:
+            self._add_ripples(frame["ripples"])
         self.latest = frame
         self.version += 1
+
+    def _add_ripples(self, view: dict) -> None:
+        """Keep the newest envelope and merge the frame's events (by onset) into the panel's list.
+
+        Each frame repeats the newest events, so a frame the monitor missed
+        costs nothing as long as a later one arrives before they scroll out.
+        """
+        self.ripple_view = view
+        self._ripple_packet_cache = None
+        for e in view["events"]:
+            onset = e["onset_s"]
+            if onset not in self.ripple_events:
+                self.ripple_events_seen += 1
+            self.ripple_events[onset] = self._ripple_event(e)
+        if len(self.ripple_events) > RIPPLE_EVENTS_KEPT:
+            for onset in sorted(self.ripple_events)[: len(self.ripple_events) - RIPPLE_EVENTS_KEPT]:
+                del self.ripple_events[onset]
+
+    def _ripple_event(self, e: dict) -> dict:
+        """One candidate event for the page: its bins' times (ms after the onset) and decoded positions.
+
+        On a track, graph or ring the position is the linear one (cm along
+        the track, degrees of heading); in an arena, x and y.
+        """
+        bins = e["bins"].astype(np.float64)
+        xy = bins[:, 1:3]
+        finite = np.all(np.isfinite(xy), axis=1)
+        if isinstance(self.environment, Arena):
+            series = [xy[:, 0], xy[:, 1]]
+        else:
+            lin = np.full(len(xy), np.nan)
+            if finite.any():
+                lin[finite] = self.environment.linearize(xy[finite])
+            series = [lin]
+        offset = _number(e["offset_s"])
+        decision = _number(e["decision_s"])
+        return {
+            "onset_s": e["onset_s"],
+            "duration_ms": None if offset is None else round(1e3 * (offset - e["onset_s"]), 1),
+            "decided": list(dict.fromkeys(e["decided"])),
+            "decision_ms": None if decision is None else round(1e3 * (decision - e["onset_s"]), 1),
+            "bin_ms": [_number(round(float(v), 2)) for v in bins[:, 0]],
+            "positions": [[_number(round(float(v), 2)) for v in s] for s in series],
+            "n_spikes": bins[:, 3].astype(int).tolist(),
+            "tau": [_number(v) for v in e["tau"]],
+        }
+
+    def _ripple_packet(self) -> dict | None:
+        """The ripple panel's part of a packet: the envelope, its thresholds, event marks and the newest sequences."""
+        view = self.ripple_view
+        if view is None or self._ripple_packet_cache is not None:
+            return self._ripple_packet_cache
+        env = view["envelope_sd"]
+        t0 = _number(view["t0_s"])
+        t_end = None if t0 is None else t0 + env.size * view["step_s"]
+        marks = [[o, e["duration_ms"]] for o, e in self.ripple_events.items()
+                 if t0 is not None and t0 <= o <= t_end]
+        newest = sorted(self.ripple_events)[-RIPPLE_SEQUENCES_SHOWN:]
+        self._ripple_packet_cache = {
+            "threshold_sd": view["threshold_sd"],
+            "end_sd": view["end_sd"],
+            "baseline_ready": view["ready"],
+            "t0_s": t0,
+            "step_s": view["step_s"],
+            "envelope_sd": [_number(round(float(v), 3)) for v in env],
+            "marks": marks,
+            "events_seen": self.ripple_events_seen,
+            "n_events": view["n_events"],
+            "sequences": [self.ripple_events[o] for o in newest],
+        }
+        return self._ripple_packet_cache
 
     def _add_trail(self, t_s: float, frame: dict) -> None:
         self._trail.append((t_s, frame["tracked_xy_cm"], frame["map_xy_cm"]))
@@ -459,6 +544,7 @@ class SessionView:
             "rolling_error_cm": self.rolling_error_cm(),
             "session_error_cm": float(np.median(self.session_errors)) if self.session_errors else None,
             "n_errors": len(self.session_errors),
+            "ripples": self._ripple_packet(),
             "frame": None,
         }
         cursor["trace"] = len(self.trace)

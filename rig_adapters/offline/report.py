@@ -55,6 +55,7 @@ from rig_adapters.offline.report_data import (
     SessionRecord,
     SessionTrace,
     content_event_rows,
+    event_sequences,
     finite_number,
     format_figure,
     gather_session,
@@ -65,6 +66,7 @@ from rig_adapters.offline.report_figures import (
     MAX_RATE_MAPS,
     error_over_time,
     event_posteriors,
+    event_sequences_figure,
     is_arena,
     latency_histograms,
     positions_over_time,
@@ -235,12 +237,25 @@ def _content_section(record: SessionRecord) -> str:
         return ""
     body = "".join("<tr>" + "".join(f'<td class="num">{html.escape(v)}</td>' if i != 2 else f"<td>{html.escape(v)}</td>"
                                     for i, v in enumerate(row)) + "</tr>" for row in rows)
+    config = record.config
+    sequences = event_sequences(record.content_events, config.environment, config.zone_names(),
+                                config.ripples.content_min_spikes)
+    along = "" if is_arena(config.environment) else (
+        " τ is Kendall's tau-b of the bins' times and their decoded positions along the track, over the bins "
+        "with enough spikes.")
     return ('<section id="replay-content"><h2>Ripple events and their content</h2>'
             f'<p class="note">The newest {len(rows)} candidate events. Duration runs from the LFP onset to its '
             "offset; the decided content names the content rules that fired (none: no rule was satisfied); the "
             "decision time is from the onset, in data time.</p>"
             "<table><tr><th>onset (s)</th><th>duration (ms)</th><th>decided content</th><th>decision (ms)</th></tr>"
-            f"{body}</table></section>")
+            f"{body}</table>"
+            f'<h3>Decoded sequences</h3><p class="note">The first {len(sequences)} candidate events of the replay '
+            "with a decoded bin: each content bin's most probable position against its end, in ms after the "
+            "onset, coloured by the event's decided content; small hollow marks are bins with too few spikes "
+            f"for the content measures ([ripples] content_min_spikes).{along}</p>"
+            + _image(event_sequences_figure(sequences, config), "decoded sequence of each candidate event",
+                     "No candidate event has a decoded bin.")
+            + "</section>")
 
 
 def _damage_banner(record: SessionRecord) -> str:

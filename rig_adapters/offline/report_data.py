@@ -23,6 +23,8 @@ from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.ripples import ContentEvent
+from decoder.space.environments import Arena, Environment
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, INITIAL_MODEL_SIDECAR
 from rig_adapters.sessions.replay import replay_session, session_config
 from rig_adapters.sessions.summary import LatencySeries
@@ -228,6 +230,9 @@ class SessionRecord:
     wall_span_s : float or None
         Wall-clock time between the first and the last input received live (s).
     overrides : dict
+    content_events : list of ContentEvent
+        The replay's candidate events whose content was decoded, with their
+        decoded sequences (the newest ``decoder.session.ripples.EVENTS_KEPT``).
     """
 
     log_dir: Path
@@ -245,6 +250,7 @@ class SessionRecord:
     clean_close: bool
     wall_span_s: float | None
     overrides: dict = field(default_factory=dict)
+    content_events: list[ContentEvent] = field(default_factory=list)
 
 
 def gather_session(log_dir: str | Path, config: ExperimentConfig | None = None,
@@ -320,6 +326,7 @@ def gather_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         clean_close=result.clean_close,
         wall_span_s=walls[-1] - walls[0] if walls else None,
         overrides=dict(overrides or {}),
+        content_events=list(pipeline.ripples.events_),
     )
 
 
@@ -460,3 +467,104 @@ def content_event_rows(summary: dict) -> list[tuple[str, str, str, str]]:
     return [(format_figure(e.get("onset_s"), 6), format_figure(e.get("duration_ms")),
              ", ".join(e.get("decided") or []) or "none", format_figure(e.get("decision_ms")))
             for e in events]
+
+
+#: Candidate events whose decoded sequences the report draws at most (the session's first).
+MAX_SEQUENCE_PANELS = 24
+
+
+def kendall_tau_b(x: np.ndarray, y: np.ndarray) -> float:
+    """Kendall's tau-b of two equally long vectors; NaN for fewer than two pairs or a constant vector.
+
+    ``(concordant - discordant) / sqrt((n0 - n_x)(n0 - n_y))`` over all pairs,
+    with ``n0 = n (n - 1) / 2`` and ``n_x``, ``n_y`` the pairs tied in x and
+    in y (Kendall 1945, Biometrika 33:239; the definition
+    ``scipy.stats.kendalltau`` computes by default). O(n²): an event has tens
+    of bins.
+    """
+    x, y = np.asarray(x, np.float64), np.asarray(y, np.float64)
+    n = x.size
+    if n < 2:
+        return math.nan
+    i, j = np.triu_indices(n, 1)
+    sx, sy = np.sign(x[j] - x[i]), np.sign(y[j] - y[i])
+    n0 = n * (n - 1) / 2
+    denominator = math.sqrt((n0 - np.count_nonzero(sx == 0)) * (n0 - np.count_nonzero(sy == 0)))
+    return float((sx * sy).sum() / denominator) if denominator > 0 else math.nan
+
+
+@dataclass(frozen=True)
+class EventSequence:
+    """One candidate event's decoded sequence as the report draws it.
+
+    Attributes
+    ----------
+    onset_s : float
+        The detection's onset (data time).
+    duration_ms : float
+        Onset to the LFP offset; NaN when the offset never came.
+    bin_ms : ndarray of float64, shape (n_bins,)
+        Each content bin's end, ms after the onset (the first bins may end
+        before it: the event starts where its population burst began).
+    positions : ndarray of float64, shape (n_series, n_bins)
+        The bins' MAP positions: one row along a track or graph (cm) or a
+        heading ring (deg); x and y (cm) in an arena.
+    n_spikes : ndarray of int64, shape (n_bins,)
+    used : ndarray of bool, shape (n_bins,)
+        Bins with at least ``[ripples] content_min_spikes`` spikes, those the content measures cover.
+    decided : tuple of str
+        The content rules that fired, each once, in order.
+    decision_ms : float
+        The first content rule's event, ms after the onset; NaN for none.
+    tau_linear : float
+        Kendall's tau-b of the used bins' times and linear MAP positions;
+        NaN in an arena or with fewer than two used bins.
+    tau_zones : dict of str to float
+        The pipeline's own tau per zone at the last bin (time against the
+        decoded distance to the zone, what the sequence rules judge).
+    """
+
+    onset_s: float
+    duration_ms: float
+    bin_ms: np.ndarray
+    positions: np.ndarray
+    n_spikes: np.ndarray
+    used: np.ndarray
+    decided: tuple[str, ...]
+    decision_ms: float
+    tau_linear: float
+    tau_zones: dict
+
+
+def event_sequences(events: list[ContentEvent], environment: Environment, zone_names: list[str],
+                    min_spikes: int, limit: int = MAX_SEQUENCE_PANELS) -> list[EventSequence]:
+    """The first ``limit`` candidate events with at least one content bin, as :class:`EventSequence`."""
+    out = []
+    for e in events:
+        if len(out) >= limit:
+            break
+        if not e.sequence:
+            continue
+        rows = np.array(e.sequence, np.float64)
+        xy = rows[:, 1:3]
+        if isinstance(environment, Arena):
+            positions = xy.T.copy()
+        else:
+            lin = np.full(len(rows), np.nan)
+            finite = np.all(np.isfinite(xy), axis=1)
+            if finite.any():
+                lin[finite] = environment.linearize(xy[finite])
+            positions = lin[None, :]
+        n_spikes = rows[:, 3].astype(np.int64)
+        used = n_spikes >= min_spikes
+        tau = math.nan
+        if positions.shape[0] == 1:
+            ok = used & np.isfinite(positions[0])
+            tau = kendall_tau_b(rows[ok, 0], positions[0, ok])
+        out.append(EventSequence(
+            onset_s=e.onset_s, duration_ms=1e3 * (e.offset_s - e.onset_s), bin_ms=1e3 * (rows[:, 0] - e.onset_s),
+            positions=positions, n_spikes=n_spikes, used=used, decided=tuple(dict.fromkeys(e.decided or ())),
+            decision_ms=1e3 * (e.decision_s - e.onset_s), tau_linear=tau,
+            tau_zones=dict(zip(zone_names, e.rank_correlation)),
+        ))
+    return out

@@ -23,8 +23,9 @@ from matplotlib.lines import Line2D
 from decoder.config import ExperimentConfig
 from decoder.encoding.place_model import PlaceModel
 from decoder.space.environments import Environment, HeadingRing
-from rig_adapters.monitor.marks import COLOUR_MAP, INK, MARKS, OUTSIDE_MAP
+from rig_adapters.monitor.marks import COLOUR_MAP, INK, MARKS, OUTSIDE_MAP, UNDECIDED_COLOUR, content_colours
 from rig_adapters.offline.report_data import (
+    EventSequence,
     SWEEP_LABELS,
     SWEEP_X_FIGURE,
     SessionRecord,
@@ -299,6 +300,58 @@ def event_posteriors(trace: SessionTrace, config: ExperimentConfig) -> str | Non
     # The legend sits just above the top row's titles, whatever the number of rows.
     fig.subplots_adjust(top=1.0 - 0.45 / fig.get_figheight())
     fig.legend(handles=handles, loc="lower center", ncol=4, fontsize=7, bbox_to_anchor=(0.5, 1.0))
+    return _png(fig)
+
+
+def event_sequences_figure(sequences: list[EventSequence], config: ExperimentConfig) -> str | None:
+    """Decoded position against time within each candidate event, coloured by its decided content.
+
+    One panel per event on one scale: ms after the onset against the MAP
+    position of each content bin (along the track, or x filled and y open
+    in an arena); bins with too few spikes for the content measures drawn
+    small and hollow; a dotted line at the decision. Colours are the
+    monitor's (:func:`rig_adapters.monitor.marks.content_colours`).
+    """
+    if not sequences:
+        return None
+    env = config.environment
+    arena = is_arena(env)
+    rules = [r.name for r in config.rules if r.kind.startswith("replay_")]
+    colours = content_colours(rules)
+    ncols = min(6, len(sequences))
+    nrows = math.ceil(len(sequences) / ncols)
+    fig = Figure(figsize=(1.9 * ncols + 1.0, 1.7 * nrows + 0.8))
+    lo, hi = _panel_limits(env)[0] if not arena else (
+        min(float(env.x_edges_cm[0]), float(env.y_edges_cm[0])), max(float(env.x_edges_cm[-1]), float(env.y_edges_cm[-1])))
+    t_hi = max([60.0] + [float(np.nanmax(q.bin_ms)) for q in sequences]
+               + [q.duration_ms for q in sequences if math.isfinite(q.duration_ms)])
+    t_lo = min(0.0, min(float(np.nanmin(q.bin_ms)) for q in sequences) - 5.0)
+    panels = _small_multiples(fig, len(sequences), ncols, (math.floor(t_lo), math.ceil(t_hi)), (lo, hi),
+                              "ms after the onset", "x, y (cm)" if arena else _linear_label(env), hspace=0.9)
+    for ax, q in zip(panels, sequences):
+        first = next((name for name in q.decided if name in colours), None)
+        colour = colours[first] if first else UNDECIDED_COLOUR
+        for k, series in enumerate(q.positions):
+            filled = first is not None and k == 0
+            for used, size in ((q.used, 16), (~q.used, 6)):
+                ax.scatter(q.bin_ms[used], series[used], s=size, linewidths=0.8,
+                           facecolors=colour if filled and size > 6 else "none",
+                           edgecolors=INK if filled and size > 6 else colour)
+        if math.isfinite(q.decision_ms):
+            ax.axvline(q.decision_ms, color=INK, lw=0.8, ls=":")
+        content = ", ".join(q.decided) if q.decided else "none decided"
+        tau = "" if arena else f" · τ {format_figure(q.tau_linear, 2)}"
+        ax.set_title(f"t={q.onset_s:.2f} s · {len(q.bin_ms)} bins\n{content}{tau}", fontsize=7)
+    handles = [Line2D([], [], ls="", marker="o", markerfacecolor=colours[name], markeredgecolor=INK,
+                      label=f"decided: {name}") for name in rules]
+    handles.append(Line2D([], [], ls="", marker="o", markerfacecolor="none", markeredgecolor=UNDECIDED_COLOUR,
+                          label="no content rule fired"))
+    handles.append(Line2D([], [], ls="", marker="o", markersize=3, markerfacecolor="none", markeredgecolor=INK,
+                          label="bin with too few spikes"))
+    handles.append(Line2D([], [], color=INK, ls=":", lw=0.8, label="decision"))
+    fig.subplots_adjust(top=1.0 - 0.45 / fig.get_figheight())
+    fig.legend(handles=handles, loc="lower center", ncol=min(5, len(handles)), fontsize=7,
+               bbox_to_anchor=(0.5, 1.0))
     return _png(fig)
 
 

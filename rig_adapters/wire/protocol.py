@@ -43,11 +43,14 @@ from rig_adapters.wire.inputs import (
 from rig_adapters.wire.outputs import (
     OUTPUT_KINDS,
     REPLY_KIND,
+    RIPPLE_VIEW_MIN_GAP_S,
+    RIPPLE_VIEW_PERIOD_S,
     decode_control_reply,
     decode_output,
     encode_control_reply,
     encode_event,
     encode_state,
+    ripple_view,
 )
 
 __all__ = [
@@ -62,6 +65,8 @@ __all__ = [
     "PROTOCOL_VERSION",
     "REASONS",
     "REPLY_KIND",
+    "RIPPLE_VIEW_MIN_GAP_S",
+    "RIPPLE_VIEW_PERIOD_S",
     "ProtocolError",
     "decode",
     "decode_control_reply",
@@ -72,4 +77,5 @@ __all__ = [
     "encode_control_request",
     "encode_event",
     "encode_state",
+    "ripple_view",
 ]

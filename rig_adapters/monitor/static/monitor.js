@@ -651,6 +651,7 @@ function onPacket(buf) {
     model.latencyCounts = h.latency_counts;
     model.readiness = h.readiness;
     if (h.events && h.events.length) addEvents(h.events);
+    if (h.ripples) ripplesTake(h.ripples);
     if (h.frame) {
       model.frame = h.frame;
       model.post = post.length ? post.slice() : null;
@@ -700,6 +701,7 @@ function publishHook(h) {
     verdict: h.keepalive ? window.__monitorState.verdict : h.verdict,
     rates: f ? f.rates_per_data_s : null,
     events: model.events.slice(-5),
+    ripples: ripplesState(),
   };
 }
 
@@ -712,6 +714,7 @@ function render() {
     drawErrorTrace(ui.err.ctx, ui.err.w, ui.err.h);
     drawLatencyHist(ui.lat.ctx, ui.lat.w, ui.lat.h);
   }
+  ripplesDraw();
   requestAnimationFrame(render);
 }
 
