@@ -2,12 +2,13 @@
 
 One process, one poller loop, read top to bottom in :meth:`LiveLoop.run`:
 
-1. wait on the rig SUB socket and the control REP socket;
+1. wait on the rig SUB socket, the control REP socket and the events XPUB
+   socket (its subscription messages: who listens);
 2. drain what arrived, stamping each message with its wall-clock receipt;
 3. record the raw bytes (before anything can go wrong with them), decode
    them (bad input is counted and logged, never raised), and feed the
    pipeline;
-4. publish each event on the events PUB socket (and the TTL line) and the
+4. publish each event on the events XPUB socket (and the TTL line) and the
    decoder's state on the state PUB socket, then record what went out;
 5. watch the input streams on the wall clock and disarm when one stalls.
 
