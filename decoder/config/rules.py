@@ -120,9 +120,16 @@ class SafetyCaps:
     #: triggers disarm themselves (reason "stall"). The live loop also disarms when the rig has
     #: been silent this long on the wall clock.
     stall_limit_s: float = 1.0
+    #: Refuse a live ``arm`` while no subscriber listens on the events socket (a dry run is never
+    #: refused). Off by default: a rig driven only by TTL lines has no listener, and such an arm is
+    #: answered with a warning instead.
+    arm_requires_listener: bool = False
 
     def __post_init__(self) -> None:
         owner = "safety caps"
+        if not isinstance(self.arm_requires_listener, bool):
+            raise ValueError(f"{owner}: arm_requires_listener must be true or false, got "
+                             f"{self.arm_requires_listener!r}")
         object.__setattr__(self, "refractory_s", _positive_seconds(owner, "refractory_s", self.refractory_s))
         object.__setattr__(self, "stall_limit_s", _positive_seconds(owner, "stall_limit_s", self.stall_limit_s))
         object.__setattr__(self, "max_per_minute", _positive_int(owner, "max_per_minute", self.max_per_minute))

@@ -2,12 +2,13 @@
 
 One process, one poller loop, read top to bottom in :meth:`LiveLoop.run`:
 
-1. wait on the rig SUB socket and the control REP socket;
+1. wait on the rig SUB socket, the control REP socket and the events XPUB
+   socket (its subscription messages: who listens);
 2. drain what arrived, stamping each message with its wall-clock receipt;
 3. record the raw bytes (before anything can go wrong with them), decode
    them (bad input is counted and logged, never raised), and feed the
    pipeline;
-4. publish each event on the events PUB socket (and the TTL line) and the
+4. publish each event on the events XPUB socket (and the TTL line) and the
    decoder's state on the state PUB socket, then record what went out;
 5. watch the input streams on the wall clock and disarm when one stalls.
 
@@ -22,7 +23,13 @@ Sockets (all bound to loopback unless the config allows otherwise):
 
 - rig SUB: connects to the rig's publishers; RCVHWM is large so that a
   burst (or a pause while fitting) queues instead of losing spikes;
-- events PUB: one message per trigger event (not opened in a dry run);
+- events XPUB: one message per trigger event (not opened in a dry run); the
+  same wire as a PUB for subscribers, and the loop reads its subscription
+  messages to count who listens (rig_adapters.live.event_listeners). An event
+  published while nobody listens reaches no one: it is counted
+  (``events_unheard``) and logged once per run of such events; an ``arm``
+  without a listener is answered with a warning, or refused with
+  ``[safety] arm_requires_listener``;
 - state PUB: one message per decoding step for monitors; SNDHWM is tiny so
   a slow or absent monitor loses frames instead of holding memory or time;
 - control REP: request/reply commands from an experiment-control script;
@@ -62,11 +69,13 @@ from rig_adapters.wire.ingest import (
     CHANNEL_DRY_RUN_EVENTS,
     CHANNEL_EVENTS,
     CHANNEL_RIG,
+    MAX_CONTROL_BYTES,
     Ingest,
 )
 from rig_adapters.sessions.recorder import FITTED_MODEL_SIDECAR, SessionRecorder
 from rig_adapters.sessions.summary import LatencyLog, json_float, jsonable, session_summary
 from rig_adapters.live.curve_links import CurveLinks, plain_network_links
+from rig_adapters.live.event_listeners import EventListeners
 
 log = logging.getLogger(__name__)
 
@@ -79,6 +88,11 @@ RIG_RCVHWM = 1_000_000
 
 #: A monitor that falls behind by more than this many state frames loses frames.
 STATE_SNDHWM = 4
+
+#: ZMTP heartbeats on the events socket (ms): a bridge that vanishes without closing its connection
+#: (a pulled cable, a powered-off box) is dropped after the timeout, ending its subscriptions.
+EVENTS_HEARTBEAT_IVL_MS = 1000
+EVENTS_HEARTBEAT_TIMEOUT_MS = 3000
 
 #: Messages handled per pass before the control socket and the watchdog get a turn.
 DRAIN_LIMIT = 2000
@@ -121,6 +135,9 @@ class LiveLoop:
         self.dry_run = dry_run
         self.events_sent = 0
         self.events_withheld = 0
+        self.events_unheard = 0
+        self.listeners: EventListeners | None = None
+        self._unheard_run = False
         self._sockets: list[zmq.Socket] = []
         self.links: CurveLinks | None = None
         self.stop_requested = False
@@ -154,9 +171,13 @@ class LiveLoop:
                 (zmq.RCVHWM, RIG_RCVHWM), (zmq.LINGER, 0), (zmq.SUBSCRIBE, b"")))
             self.events = None
             if not self.dry_run:
-                # Events are rare and must reach the stimulator: a generous queue.
-                self.events = self._socket(zmq.PUB, "events", [ep.events], options=(
-                    (zmq.SNDHWM, 10_000), (zmq.LINGER, 500)))
+                # Events are rare and must reach the stimulator: a generous queue. VERBOSER passes
+                # every subscription and unsubscription up, so the loop can count listeners.
+                self.events = self._socket(zmq.XPUB, "events", [ep.events], options=(
+                    (zmq.SNDHWM, 10_000), (zmq.LINGER, 500), (zmq.XPUB_VERBOSER, 1),
+                    (zmq.HEARTBEAT_IVL, EVENTS_HEARTBEAT_IVL_MS),
+                    (zmq.HEARTBEAT_TIMEOUT, EVENTS_HEARTBEAT_TIMEOUT_MS)))
+                self.listeners = EventListeners(self.events)
             self.state_pub = self._socket(zmq.PUB, "state", [ep.state], options=(
                 (zmq.SNDHWM, STATE_SNDHWM), (zmq.LINGER, 0)))
             self.control = self._socket(zmq.REP, "control", [ep.control], options=(
@@ -197,6 +218,8 @@ class LiveLoop:
         poller = zmq.Poller()
         poller.register(self.rig, zmq.POLLIN)
         poller.register(self.control, zmq.POLLIN)
+        if self.events is not None:
+            poller.register(self.events, zmq.POLLIN)
         monitors = list(self.links.monitors) if self.links is not None else []
         for monitor in monitors:
             poller.register(monitor, zmq.POLLIN)
@@ -209,6 +232,8 @@ class LiveLoop:
                     n = self._drain_rig()
                     if n:
                         last_input = time.monotonic()
+                if self.events is not None and self.events in ready:
+                    self._read_listeners()
                 if self.control in ready:
                     self._serve_control()
                 for monitor in monitors:
@@ -314,8 +339,13 @@ class LiveLoop:
             log.info("dry run: event %d withheld (rule %r zone %r at t=%.3f s would have fired)%s",
                      event.event_id, event.rule, event.zone, out.t_s, " (animal far from the zone)" if is_false else "")
             return
+        self._read_listeners()
+        heard = self.listeners.hears(payload)
         self.events.send(payload)
         sent_wall_s = time.time()
+        if not heard:
+            self._count_unheard(event.event_id)
+        self._unheard_run = not heard
         if self.ttl is not None:
             self.ttl.pulse(event.rule)
         self.events_sent += 1
@@ -324,6 +354,25 @@ class LiveLoop:
             self.recorder.record_output(payload, sent_wall_s, CHANNEL_EVENTS)
         log.info("event %d: rule %r zone %r at t=%.3f s%s", event.event_id, event.rule, event.zone, out.t_s,
                  " (animal far from the zone)" if is_false else "")
+
+    def _read_listeners(self) -> None:
+        """Take the events socket's subscription messages; log and record each change of listeners."""
+        for change, count in self.listeners.read():
+            log.info("events socket: a subscription %s; %d event listener(s)", change, count)
+            if self.recorder is not None:
+                self.recorder.record_mark({"event_listeners": count, "change": change}, time.time())
+            if change == "left" and count == 0 and self.pipeline.bank.armed:
+                log.warning("the last events listener left while armed: events now reach no one until the "
+                            "stimulator bridge reconnects to the events socket (%s)", self.config.endpoints.events)
+
+    def _count_unheard(self, event_id: int) -> None:
+        self.events_unheard += 1
+        if not self._unheard_run:
+            log.warning("event %d was published while no listener was connected, so nothing acted on it: the "
+                        "stimulator bridge is not connected to the events socket (%s) or has not subscribed; "
+                        "check that it runs, connects to that endpoint and (with CurveZMQ) holds an authorised "
+                        "key. Unheard events are counted (events_unheard) and logged again only after one is "
+                        "heard", event_id, self.config.endpoints.events)
 
     def _send_state(self, out: StepOutput) -> None:
         stats = self._monitor_stats()
@@ -418,6 +467,8 @@ class LiveLoop:
                 "stalled": int(self._stall_raised),
                 "dry_run": int(self.dry_run),
                 "events_withheld": self.events_withheld,
+                "events_listeners": self.listeners.count if self.listeners is not None else 0,
+                "events_unheard": self.events_unheard,
                 "control_refused": sum(self.ingest.control_refused.values()),
                 "links_refused": self.links.refused_total if self.links is not None else 0,
                 **rates,
@@ -461,12 +512,28 @@ class LiveLoop:
         recv_wall_s = time.time()
         reply = None
         try:
-            if len(parts) == 1:
+            unheard_arm = len(parts) == 1 and self._is_unheard_arm(parts[0])
+            if unheard_arm and self.config.safety.arm_requires_listener:
+                # Refused before the pipeline sees it, so logged where a replay does not feed it.
+                if self.recorder is not None:
+                    self.recorder.record_input(parts[0], recv_wall_s, CHANNEL_CONTROL_REFUSED)
+                _, reply = self.ingest.refuse(
+                    "no_listener", f"not armed: no listener is connected to the events socket "
+                                   f"({self.config.endpoints.events}) and [safety] arm_requires_listener is set; "
+                                   f"start the stimulator bridge, connect it to that endpoint, then arm again")
+            elif len(parts) == 1:
                 if self.recorder is not None:
                     self.recorder.record_input(parts[0], recv_wall_s, CHANNEL_CONTROL)
                 outputs, reply = self.ingest.control_bytes(parts[0])
-                if self.links is not None and reply and "status" in reply:
-                    reply["status"]["links"] = self.links.summary()
+                if reply and "status" in reply:
+                    reply["status"]["events"] = self._events_status()
+                    if self.links is not None:
+                        reply["status"]["links"] = self.links.summary()
+                if unheard_arm and reply and reply.get("ok"):
+                    reply["warning"] = (f"armed with no listener on the events socket "
+                                        f"({self.config.endpoints.events}): events reach no stimulator until its "
+                                        f"bridge connects and subscribes (a rig driven only by TTL lines has none)")
+                    log.warning("%s", reply["warning"])
                 self._emit(outputs, recv_wall_s, time.time(), 0.0)
             else:
                 # Kept in the log, on a channel a replay does not feed: it was never a request.
@@ -481,6 +548,24 @@ class LiveLoop:
                                                       "see the decoder's log")
         finally:
             self._reply(reply)
+
+    def _is_unheard_arm(self, payload: bytes) -> bool:
+        """Whether ``payload`` asks to arm while events go over ZeroMQ and nobody listens."""
+        if self.events is None or len(payload) > MAX_CONTROL_BYTES:
+            return False
+        self._read_listeners()
+        if self.listeners.count:
+            return False
+        try:
+            return protocol.decode_control_request(payload).command == "arm"
+        except Exception:  # noqa: BLE001 - not an arm; ingest refuses it with the reason
+            return False
+
+    def _events_status(self) -> dict:
+        """The events socket in a ``status`` reply: listeners now, events published, unheard, withheld."""
+        listeners = self.listeners.summary() if self.listeners is not None else {}
+        return {"dry_run": self.dry_run, "published": self.events_sent, "unheard": self.events_unheard,
+                "withheld": self.events_withheld, **listeners}
 
     def _reply(self, fields: dict | None) -> None:
         if fields is None:
@@ -524,10 +609,16 @@ class LiveLoop:
         (apart from ``input.bad_messages``, which is rig data only), and
         ``ttl``, with a TTL device, the pulses started and the writes failed;
         ``links``, with CurveZMQ sockets, the peers authorised and the
-        handshakes accepted and refused per socket and reason.
+        handshakes accepted and refused per socket and reason;
+        ``triggers.unheard`` counts events published while nobody listened,
+        and ``event_listeners`` (not in a dry run) the events socket's
+        listeners at the end, the most at once, subscriptions joined and left.
         """
         summary = session_summary(self.pipeline, self.latency)
-        summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld)
+        summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld,
+                                   unheard=self.events_unheard)
+        if self.listeners is not None:
+            summary["event_listeners"] = self.listeners.summary()
         summary["input"]["control_refused"] = dict(self.ingest.control_refused)
         if self.ttl is not None:
             summary["ttl"] = {"pulses": self.ttl.pulses, "failures": self.ttl.failures}
