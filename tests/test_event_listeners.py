@@ -77,6 +77,11 @@ class _Running:
 
     def __enter__(self):
         self.thread.start()
+        # The loop opens its sockets in its own thread; tests read them.
+        deadline = time.monotonic() + 20.0
+        while getattr(self.loop, "control", None) is None:
+            assert self.thread.is_alive() and time.monotonic() < deadline, "the loop did not open its sockets"
+            time.sleep(0.01)
         return self.loop
 
     def __exit__(self, *exc):
