@@ -596,7 +596,11 @@ function updatePanels(h) {
   // The loop refreshes events_total once a second; the list may be ahead of it.
   const nEvents = Math.max(st.events_total || 0, model.events.length);
   const withheld = st.dry_run ? ` · dry run: ${st.events_withheld || 0} withheld, none sent` : "";
-  $("events-count").textContent = (nEvents ? `${nEvents} in the session` : "none yet") + withheld;
+  // A PUB socket drops what it sends to nobody: say so, the stimulator may not be connected.
+  const unheard = !st.dry_run && Number.isFinite(st.events_listeners)
+    ? ` · ${st.events_listeners} listening` + (st.events_unheard ? ` · ${st.events_unheard} sent to nobody` : "")
+    : "";
+  $("events-count").textContent = (nEvents ? `${nEvents} in the session` : "none yet") + withheld + unheard;
 }
 
 function addEvents(list) {
