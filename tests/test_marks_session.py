@@ -6,6 +6,7 @@ a sanity bound only.
 """
 
 import dataclasses
+import math
 
 import msgpack
 import numpy as np
@@ -124,6 +125,18 @@ def test_marks_only_session_learns_fits_and_decodes(marks_session):
     marks = pipeline.readiness["marks"]
     assert {g["group"] for g in marks["groups"]} == set(pipeline.marks.channels)
     assert all(g["kept"] > 0 for g in marks["groups"])
+    # The filter was calibrated on held-out learning steps decoded from their marks (PlaceModel.calibrate):
+    # temperature, point estimate and drift are the fit's, and the readiness figures show its held-out error.
+    fit = pipeline.model.temperature_fits_[config.decoder.step_s]
+    figures = pipeline.readiness["filter"]
+    assert fit.with_marks and figures["held_out_with_marks"] and fit.n_steps > 1000
+    decoder = pipeline.steps.decoder
+    assert (decoder.likelihood_temperature, decoder.point_estimate) == (fit.temperature, fit.point_estimate)
+    assert marks["held_out_median_cm"] == min(fit.map_median_cm, fit.mean_median_cm) < 12.0
+    # Source: the HPD coverage of a calibrated posterior is its regions' mass (common practice); the fit
+    # widens an overconfident marks likelihood (coverage at T = 1 below the mass) to within a few steps of it.
+    assert fit.coverage_at_1 < fit.region_mass and fit.temperature > 1.0
+    assert abs(fit.coverage - fit.region_mass) < 0.02
 
 
 def test_same_messages_give_the_same_digest(marks_session):
@@ -173,6 +186,19 @@ def test_a_session_without_the_marks_table_ignores_marks_but_follows_their_clock
     pipeline, outputs = _run(plain, messages[:2000])
     assert pipeline.marks is None
     assert pipeline.watermark.t_s > 5.0  # the marks alone moved the spike clock (no heartbeats are dropped here)
+
+
+def test_sorted_units_and_marks_together_are_calibrated_together():
+    config = _config(simulation={**CONFIG["simulation"], "marks": {"send": "both"}})
+    pipeline, outputs = _run(config, _messages(config, 75.0))
+    assert pipeline.state == "decoding" and pipeline.steps.n_units > 0 and pipeline.steps.marks is not None
+    fit = pipeline.model.temperature_fits_[config.decoder.step_s]
+    # One fit over the units' counts and the marks' terms, which the filter tempers alike.
+    assert fit.with_marks and pipeline.steps.decoder.likelihood_temperature == fit.temperature
+    assert math.isfinite(pipeline.readiness["marks"]["held_out_median_cm"])
+    errors = np.array([o.error_cm for o in outputs if isinstance(o, StepOutput)])
+    # Sanity bound on invented data, as above.
+    assert np.nanmedian(errors) < 12.0
 
 
 def test_marks_enabled_but_no_groups_announced_decodes_the_sorted_units():
