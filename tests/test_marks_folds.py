@@ -114,3 +114,42 @@ def test_folds_survive_the_model_file_and_an_older_file_reads_as_one_fold(tmp_pa
     occupancy = np.full(TRACK.n_bins, 2.0)
     np.testing.assert_allclose(old.fit(occupancy, TRACK.valid_mask).ground_total_hz_,
                                model.fit(occupancy, TRACK.valid_mask).ground_total_hz_, rtol=1e-12)
+
+
+def test_a_place_model_without_spikes_is_calibrated_on_the_marks_alone():
+    """Units announced but never firing (a rig that sends marks only): the held-out steps are the marks'."""
+    from decoder.encoding.place_model import PlaceModel
+
+    rng = np.random.default_rng(24)
+    track = LinearTrack((0, 0), (200, 0), bin_cm=5)
+    step_s, dt = 0.02, 0.02
+    t = np.arange(0.0, 160.0, dt)
+    x = 100 + 95 * np.sin(2 * np.pi * t / 16.0)          # back and forth along the track, a lap in 16 s
+    xy = np.column_stack([x, np.zeros(t.size)])
+    place = PlaceModel(track, unit_ids=[7, 8], cv_folds=2, cv_block_s=20.0)
+    place.update_frames(t, xy)
+    marks = MarkModel(track, bandwidth_uv=10.0, smooth_cm=5.0)
+    marks.add_group(1, 4)
+    centres = np.linspace(15, 185, 8)
+    amplitudes = rng.uniform(60, 250, (8, 4))
+    for lo in range(0, t.size, 500):
+        tt, xx = t[lo:lo + 500], x[lo:lo + 500]
+        rate = 25 * np.exp(-0.5 * ((xx[:, None] - centres[None]) / 10) ** 2) * dt   # 8 place cells, one tetrode
+        n = rng.poisson(rate)
+        cell = np.concatenate([np.repeat(c, n[:, c].sum()) for c in range(8)])
+        at = np.concatenate([np.repeat(np.arange(len(tt)), n[:, c]) for c in range(8)])
+        order = np.argsort(tt[at], kind="stable")
+        cell, at = cell[order], at[order]
+        spike_t = tt[at] + rng.uniform(-dt, 0, at.size)
+        m = (amplitudes[cell] + rng.normal(0, 8, (at.size, 4))).astype(np.float32)
+        marks.update(np.ones(at.size, np.int64), m, xy[lo:lo + 500][at], np.full(at.size, 20.0), t_s=spike_t,
+                     folds=place.fold_of(spike_t))
+    place.fit()
+    marks.fit(place.occupancy_s_, place.visited_mask_)
+    fit = place.calibrate(step_s, marks)
+    # Our own checks on invented data: the fit ran on the newest minute of marks (3,000 steps of 20 ms, less
+    # the last partial step), decoded with them, and the decoded track position is far better than chance.
+    assert fit.with_marks and fit.n_steps > 2500 and fit.temperature >= 1.0
+    assert min(fit.map_median_cm, fit.mean_median_cm) < 15.0
+    with pytest.raises(ValueError, match="held-out"):
+        place.calibrate(step_s)   # the units alone hold nothing to fit on
