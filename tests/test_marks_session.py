@@ -206,3 +206,37 @@ def test_marks_enabled_but_no_groups_announced_decodes_the_sorted_units():
     pipeline, outputs = _run(config, _messages(config, 70.0))
     assert pipeline.state == "decoding" and pipeline.steps.n_units > 0 and pipeline.steps.marks is None
     assert "marks" not in pipeline.readiness
+
+
+def test_the_session_model_file_holds_the_mark_model_and_a_loaded_one_decodes_the_marks(marks_session, tmp_path):
+    from decoder.encoding.place_model import PlaceModel
+
+    config, messages = marks_session
+    pipeline, _ = _run(config, messages)
+    fitted = pipeline.model.mark_model_
+    assert fitted is pipeline.marks.decoding
+    pipeline.model.save(tmp_path / "model.npz")
+    loaded = PlaceModel.load(tmp_path / "model.npz")
+    marks = loaded.mark_model_
+    # The round trip: the same learned spikes, folds and fit (fitted again on the saved occupancy and bins).
+    for name in ("enc_marks_", "enc_bins_", "enc_weights_", "ground_rate_hz_", "bin_scale_", "group_scale_"):
+        np.testing.assert_array_equal(getattr(marks, name), getattr(fitted, name))
+    for g in range(fitted.n_groups):
+        np.testing.assert_array_equal(marks._folds[g], fitted._folds[g])
+    step_s = config.decoder.step_s
+    assert loaded.temperature_fits_[step_s] == pipeline.model.temperature_fits_[step_s]
+    # A session that starts from the file decodes the marks with the fit made with them (no held-out spikes
+    # are in the file, so it is not fitted again).
+    again = Pipeline(config, loaded)
+    assert again.steps.marks is not None and again.steps.decoder.likelihood_temperature == \
+        pipeline.steps.decoder.likelihood_temperature
+    start = next(i for i, m in enumerate(messages) if getattr(m, "t_s", None) is not None and np.size(m.t_s)
+                 and np.max(m.t_s) > 75.0)
+    announced = [m for m in messages[:start] if isinstance(m, GroupAnnounce)]
+    steps = [o for m in announced + messages[start:] for o in again.on_message(m) if isinstance(o, StepOutput)]
+    assert len(steps) > 300
+    # Sanity bound on invented data, as above.
+    assert np.nanmedian([s.error_cm for s in steps]) < 12.0
+    # A file without a mark model (a session of sorted units) has none.
+    plain = dataclasses.replace(config, marks=dataclasses.replace(config.marks, enabled=False))
+    assert Pipeline(plain, loaded).steps.marks is None

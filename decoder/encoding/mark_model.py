@@ -553,6 +553,10 @@ class MarkModel:
         and then updated keeps the very sample the uninterrupted session
         would have kept.
         """
+        write_model_file(path, *self.file_parts(), format_name=FILE_FORMAT)
+
+    def file_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """The header and arrays of :meth:`save`, for a file that holds this model beside another (:meth:`from_parts`)."""
         header = {"environment": self.environment.to_dict(), "settings": self._settings(), "groups": self._ids,
                   "channels": self._channels, "counters": self.counters_,
                   "reservoir_states": [rng.bit_generator.state for rng in self._rngs]}
@@ -562,15 +566,16 @@ class MarkModel:
             arrays[f"bins_{g}"] = self._bins[g]
             arrays[f"folds_{g}"] = self._folds[g]
             arrays[f"placed_{g}"] = self._placed_counts[g]
-        write_model_file(path, header, arrays, format_name=FILE_FORMAT)
+        return header, arrays
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> MarkModel:
         """Read a model written by :meth:`save` (fit it before decoding); ModelFileError if it is not one."""
-        return read_model_file(path, cls._from_parts, format_name=FILE_FORMAT)
+        return read_model_file(path, cls.from_parts, format_name=FILE_FORMAT)
 
     @classmethod
-    def _from_parts(cls, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MarkModel:
+    def from_parts(cls, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MarkModel:
+        """The model :meth:`file_parts` described (unfitted); ValueError where the parts do not fit together."""
         model = cls(Environment.from_dict(header["environment"]), **header["settings"])
         for g, (gid, nch) in enumerate(zip(header["groups"], header["channels"])):
             model.add_group(gid, nch)

@@ -51,14 +51,10 @@ MAX_CALIBRATION_STEPS = 3_000
 #: rat, long enough to drop a lone outlier and halve frame-to-frame jitter.
 TRACKED_MEDIAN_FRAMES = 5
 
-__all__ = [
-    "PlaceModel",
-    "Readiness",
-    "CrossValidatedError",
-    "ModelFileError",
-    "FORMAT_NAME",
-    "FORMAT_VERSION",
-]
+#: Names of the mark model's arrays in a model file that holds one.
+_MARKS_PREFIX = "marks__"
+
+__all__ = ["PlaceModel", "Readiness", "CrossValidatedError", "ModelFileError", "FORMAT_NAME", "FORMAT_VERSION"]
 
 
 class PlaceModel(OnlineCounts):
@@ -130,6 +126,9 @@ class PlaceModel(OnlineCounts):
         saved with the model.
     counters_ : dict of str to int
         What was received and what was dropped, and why.
+    mark_model_ : MarkModel or None
+        The mark model the session fitted beside it (clusterless decoding),
+        saved in the same file and fitted again on loading; None by default.
     heading_tuning_ : HeadingTuning or None
         On a heading ring, each unit's preferred direction, mean vector
         length, tuning width and Rayleigh p (``decoder.encoding.heading_metrics``);
@@ -153,6 +152,7 @@ class PlaceModel(OnlineCounts):
         super().__init__(environment, **settings)
         self._held_out = HeldOutSpikes()
         self.temperature_fits_: dict[float, TemperatureFit] = {}
+        self.mark_model_: MarkModel | None = None
 
     def update_spikes(self, t_s: Any, unit_ids: Any) -> None:
         """Add spikes; see :meth:`OnlineCounts.update_spikes`. The newest are also kept for calibration."""
@@ -629,6 +629,9 @@ class PlaceModel(OnlineCounts):
         }
         if fitted:
             arrays.update({name.rstrip("_"): getattr(self, name) for name in self._LEARNED})
+        if self.mark_model_ is not None:
+            header["marks"], mark_arrays = self.mark_model_.file_parts()
+            arrays.update({_MARKS_PREFIX + name: a for name, a in mark_arrays.items()})
         path = write_model_file(path, header, arrays)
         logger.info("saved place model (%d units) to %s", self.n_units, path)
 
@@ -686,4 +689,9 @@ class PlaceModel(OnlineCounts):
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
             model.heading_tuning_ = model._heading_tuning(model._totals()[0])
+        if "marks" in header:
+            marks = {name[len(_MARKS_PREFIX):]: a for name, a in arrays.items() if name.startswith(_MARKS_PREFIX)}
+            model.mark_model_ = MarkModel.from_parts(header["marks"], marks)
+            if header["fitted"]:
+                model.mark_model_.fit(model.occupancy_s_, model.visited_mask_)
         return model

@@ -420,6 +420,8 @@ class Pipeline:
             self.model.fit()
             if self.marks is not None:
                 mark_model = self.marks.fit(self.model.occupancy_s_, self.model.visited_mask_, self.positions.tracked)
+            # Saved in the session's model file with the place model, and decoded again when it is loaded.
+            self.model.mark_model_ = mark_model
         except ValueError as exc:
             log.error("fitting failed: %s", exc)
             return [Notice("refused", t_s, {"command": "fit", "why": str(exc)})]
@@ -451,8 +453,14 @@ class Pipeline:
 
     def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False,
                       mark_model: MarkModel | None = None) -> list[Notice]:
-        """Decode with ``model`` (and ``mark_model``'s marked spikes) from the next step on (triggers stay disarmed)."""
+        """Decode with ``model`` (and ``mark_model``'s marked spikes) from the next step on (triggers stay disarmed).
+
+        Without ``mark_model``, the model's own (``PlaceModel.mark_model_``, a loaded file's) decodes the marks
+        where ``[marks]`` is enabled.
+        """
         d = self.config.decoder
+        if mark_model is None and self.marks is not None:
+            mark_model = model.mark_model_
         # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
         decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz,
                                 marks=mark_model)

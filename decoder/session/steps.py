@@ -47,7 +47,8 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     sliding window reports the MAP. With ``marks`` the filter's temperature,
     point estimate and drift are fitted afresh on held-out steps decoded
     with their waveform marks as well (``PlaceModel.calibrate``), since the
-    marks' terms are tempered with the units'. A model without a learned movement model (saved
+    marks' terms are tempered with the units', unless the model holds such a
+    fit already (a loaded model file keeps its fits, not its held-out spikes). A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
 
@@ -79,9 +80,13 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
     temperature, point_estimate, (drift_gain, time_constant_s) = settings.likelihood_temperature, "map", (0.0, 1.0)
-    try:
-        if marks is not None:
+    fitted = model.temperature_fits_.get(float(settings.step_s))
+    if marks is not None and not (fitted is not None and fitted.with_marks):
+        try:
             model.calibrate(settings.step_s, marks)
+        except ValueError as exc:
+            logger.warning("%s; the filter is calibrated without the marks", exc)
+    try:
         point_estimate = model.point_estimate(settings.step_s)
         drift_gain, time_constant_s = model.drift(settings.step_s)
         if temperature is None:
