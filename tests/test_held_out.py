@@ -43,3 +43,44 @@ def test_non_finite_times_are_left_out():
     held.add(np.array([0.01, np.nan, np.inf, 0.05]), np.array([1, 1, 1, 1]))
     ends, counts = held.step_counts(0.02, np.array([1]))
     assert ends.tolist() == [0.02, 0.04] and counts[:, 0].tolist() == [1, 0]
+
+
+def test_marked_spikes_come_back_step_by_step_with_their_marks():
+    """Marks kept beside their spikes: each step's spikes and marks are those a brute-force selection finds."""
+    rng = np.random.default_rng(1)
+    t = rng.uniform(0.0, 4.0, 2000)
+    groups = rng.choice([2, 5], t.size)
+    marks = rng.normal(100.0, 20.0, (t.size, 4)).astype(np.float32)
+    narrow = groups == 5
+    held = HeldOutSpikes()
+    for part in np.array_split(rng.permutation(t.size), 50):
+        wide = part[~narrow[part]]
+        held.add(t[wide], groups[wide], marks[wide])
+        thin = part[narrow[part]]
+        held.add(t[thin], groups[thin], marks[thin][:, :2])   # a group of two channels
+    ends, index, ids, got = held.step_spikes(0.05)
+    first, last = held.step_range(0.05)
+    assert ends.tolist() == (np.arange(first, last + 1) * 0.05).tolist()
+    # Source: the decoder's step convention, step k holds ((k - 1) step_s, k step_s] (decoder.session.steps),
+    # applied spike by spike; narrower marks padded with zeros, as the live window pads them.
+    expected = np.zeros((t.size, 4), np.float32)
+    expected[~narrow] = marks[~narrow]
+    expected[narrow, :2] = marks[narrow, :2]
+    for i, end in enumerate(ends):
+        inside = (t > end - 0.05) & (t <= end)
+        order = np.argsort(t[inside])
+        np.testing.assert_array_equal(ids[index == i], groups[inside][order])
+        np.testing.assert_array_equal(got[index == i], expected[inside][order])
+    assert np.all(np.diff(index) >= 0)
+
+
+def test_the_steps_asked_narrow_the_counts_to_those_of_another_buffer():
+    held = HeldOutSpikes()
+    t = np.arange(0.005, 2.0, 0.01)
+    held.add(t, np.zeros(t.size, np.int64))
+    ends, counts = held.step_counts(0.1, np.array([0]), steps=(5, 12))
+    # Steps 5..12 of 0.1 s, ten spikes each (one every 10 ms).
+    assert np.allclose(ends, np.arange(5, 13) * 0.1) and counts[:, 0].tolist() == [10] * 8
+    # Steps beyond what the buffer holds whole are not invented.
+    ends, _ = held.step_counts(0.1, np.array([0]), steps=(15, 40))
+    assert np.allclose(ends, np.arange(15, 20) * 0.1)

@@ -6,6 +6,7 @@ a sanity bound only.
 """
 
 import dataclasses
+import math
 
 import msgpack
 import numpy as np
@@ -124,6 +125,18 @@ def test_marks_only_session_learns_fits_and_decodes(marks_session):
     marks = pipeline.readiness["marks"]
     assert {g["group"] for g in marks["groups"]} == set(pipeline.marks.channels)
     assert all(g["kept"] > 0 for g in marks["groups"])
+    # The filter was calibrated on held-out learning steps decoded from their marks (PlaceModel.calibrate):
+    # temperature, point estimate and drift are the fit's, and the readiness figures show its held-out error.
+    fit = pipeline.model.temperature_fits_[config.decoder.step_s]
+    figures = pipeline.readiness["filter"]
+    assert fit.with_marks and figures["held_out_with_marks"] and fit.n_steps > 1000
+    decoder = pipeline.steps.decoder
+    assert (decoder.likelihood_temperature, decoder.point_estimate) == (fit.temperature, fit.point_estimate)
+    assert marks["held_out_median_cm"] == min(fit.map_median_cm, fit.mean_median_cm) < 12.0
+    # Source: the HPD coverage of a calibrated posterior is its regions' mass (common practice); the fit
+    # widens an overconfident marks likelihood (coverage at T = 1 below the mass) to within a few steps of it.
+    assert fit.coverage_at_1 < fit.region_mass and fit.temperature > 1.0
+    assert abs(fit.coverage - fit.region_mass) < 0.02
 
 
 def test_same_messages_give_the_same_digest(marks_session):
@@ -175,8 +188,55 @@ def test_a_session_without_the_marks_table_ignores_marks_but_follows_their_clock
     assert pipeline.watermark.t_s > 5.0  # the marks alone moved the spike clock (no heartbeats are dropped here)
 
 
+def test_sorted_units_and_marks_together_are_calibrated_together():
+    config = _config(simulation={**CONFIG["simulation"], "marks": {"send": "both"}})
+    pipeline, outputs = _run(config, _messages(config, 75.0))
+    assert pipeline.state == "decoding" and pipeline.steps.n_units > 0 and pipeline.steps.marks is not None
+    fit = pipeline.model.temperature_fits_[config.decoder.step_s]
+    # One fit over the units' counts and the marks' terms, which the filter tempers alike.
+    assert fit.with_marks and pipeline.steps.decoder.likelihood_temperature == fit.temperature
+    assert math.isfinite(pipeline.readiness["marks"]["held_out_median_cm"])
+    errors = np.array([o.error_cm for o in outputs if isinstance(o, StepOutput)])
+    # Sanity bound on invented data, as above.
+    assert np.nanmedian(errors) < 12.0
+
+
 def test_marks_enabled_but_no_groups_announced_decodes_the_sorted_units():
     config = _config(simulation={**CONFIG["simulation"], "marks": {}})   # a rig of sorted units only
     pipeline, outputs = _run(config, _messages(config, 70.0))
     assert pipeline.state == "decoding" and pipeline.steps.n_units > 0 and pipeline.steps.marks is None
     assert "marks" not in pipeline.readiness
+
+
+def test_the_session_model_file_holds_the_mark_model_and_a_loaded_one_decodes_the_marks(marks_session, tmp_path):
+    from decoder.encoding.place_model import PlaceModel
+
+    config, messages = marks_session
+    pipeline, _ = _run(config, messages)
+    fitted = pipeline.model.mark_model_
+    assert fitted is pipeline.marks.decoding
+    pipeline.model.save(tmp_path / "model.npz")
+    loaded = PlaceModel.load(tmp_path / "model.npz")
+    marks = loaded.mark_model_
+    # The round trip: the same learned spikes, folds and fit (fitted again on the saved occupancy and bins).
+    for name in ("enc_marks_", "enc_bins_", "enc_weights_", "ground_rate_hz_", "bin_scale_", "group_scale_"):
+        np.testing.assert_array_equal(getattr(marks, name), getattr(fitted, name))
+    for g in range(fitted.n_groups):
+        np.testing.assert_array_equal(marks._folds[g], fitted._folds[g])
+    step_s = config.decoder.step_s
+    assert loaded.temperature_fits_[step_s] == pipeline.model.temperature_fits_[step_s]
+    # A session that starts from the file decodes the marks with the fit made with them (no held-out spikes
+    # are in the file, so it is not fitted again).
+    again = Pipeline(config, loaded)
+    assert again.steps.marks is not None and again.steps.decoder.likelihood_temperature == \
+        pipeline.steps.decoder.likelihood_temperature
+    start = next(i for i, m in enumerate(messages) if getattr(m, "t_s", None) is not None and np.size(m.t_s)
+                 and np.max(m.t_s) > 75.0)
+    announced = [m for m in messages[:start] if isinstance(m, GroupAnnounce)]
+    steps = [o for m in announced + messages[start:] for o in again.on_message(m) if isinstance(o, StepOutput)]
+    assert len(steps) > 300
+    # Sanity bound on invented data, as above.
+    assert np.nanmedian([s.error_cm for s in steps]) < 12.0
+    # A file without a mark model (a session of sorted units) has none.
+    plain = dataclasses.replace(config, marks=dataclasses.replace(config.marks, enabled=False))
+    assert Pipeline(plain, loaded).steps.marks is None

@@ -41,6 +41,13 @@ neighbouring peaks; where it is split between arms or along a track's two
 directions the mean falls between the modes, and the MAP wins. Which one
 wins depends on the session, so the learning data decide.
 
+Waveform marks (clusterless decoding) enter every pass the way they enter
+a live step: each held-out step's marks log-likelihood and expected count
+(``fold_mark_terms``, from the mark model fitted without the held-out
+block, ``MarkModel.without_fold``) go to ``BayesDecoder.decode`` beside the
+units' counts, so a session of marks alone, or of units and marks, is
+calibrated on exactly what it decodes.
+
 The same held-out steps choose the drift of the walk towards the decoded
 velocity (:func:`fit_drift`): its gain and the time constant of the
 velocity's average, by the held-out median error at the plain walk's
@@ -144,6 +151,9 @@ class TemperatureFit:
         The drift the filter decodes with and the temperature was fitted
         for (:class:`DriftFit`); a gain of 0 (and in model files written
         before the drift was fitted) is the plain walk.
+    with_marks : bool
+        Whether the held-out steps were decoded with their waveform marks
+        (``fold_mark_terms``); False in model files written before.
     """
 
     temperature: float
@@ -156,6 +166,7 @@ class TemperatureFit:
     point_estimate: str = "map"
     drift_gain: float = 0.0
     velocity_time_constant_s: float = 1.0
+    with_marks: bool = False
 
 
 @dataclass(frozen=True)
@@ -219,6 +230,7 @@ def fit_temperature(
     fold_true_xy_cm: Sequence[np.ndarray] | None = None,
     drift: DriftFit | None = None,
     near: TemperatureFit | None = None,
+    fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -252,6 +264,13 @@ def fit_temperature(
         ``_NEAR_FACTOR`` either side of its temperature when that bracket
         holds the answer (about half the passes), and its
         ``coverage_at_1`` is kept rather than measured again.
+    fold_mark_terms : sequence of (ndarray, ndarray), optional
+        For each held-out block, the waveform marks' terms of its steps:
+        their log-likelihood, shape (n_steps_k, n_bins), ``sum_k log
+        lambda(x, m_k)`` of each step's marked spikes, and the expected
+        count, shape (n_bins,), the ground-process rate times ``step_s``;
+        both from the mark model fitted without the block. Decoded with the
+        units' counts as ``BayesDecoder.decode`` takes them; none by default.
 
     Returns
     -------
@@ -265,8 +284,8 @@ def fit_temperature(
     Raises
     ------
     ValueError
-        For sequences of different lengths, fewer than two folds, or no
-        step with a known true bin.
+        For sequences of different lengths, fewer than two folds, no
+        step with a known true bin, or mark terms of the wrong shape.
 
     Examples
     --------
@@ -299,6 +318,7 @@ def fit_temperature(
     if n_known == 0:
         raise ValueError("no held-out step has a known true bin; the tracker was lost throughout")
     drift = drift or DriftFit()
+    _check_mark_terms(fold_mark_terms, [b.size for b in truths], walk.environment.n_bins)
 
     fired = _fired(fold_counts)
     all_true_bins = np.concatenate(truths).tolist()
@@ -315,7 +335,7 @@ def fit_temperature(
         inside, mass, n_mass = 0, 0.0, 0
         points: list[np.ndarray] = []
         steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
-                               drift.gain, drift.velocity_time_constant_s)
+                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms)
         for step, true_bin in zip(steps, all_true_bins):
             if score_points:
                 points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
@@ -339,11 +359,12 @@ def fit_temperature(
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
         if fold_true_xy_cm is None:
             return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
-                                  velocity_time_constant_s=drift.velocity_time_constant_s)
+                                  velocity_time_constant_s=drift.velocity_time_constant_s,
+                                  with_marks=fold_mark_terms is not None)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
         choice = "mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map"
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm, choice, drift.gain,
-                              drift.velocity_time_constant_s)
+                              drift.velocity_time_constant_s, fold_mark_terms is not None)
 
     def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
         for _ in range(steps):
@@ -390,20 +411,36 @@ def _unscored(step_s: float, xy_cm: np.ndarray) -> np.ndarray:
     return xy
 
 
+def _check_mark_terms(fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None, n_steps: list[int],
+                      n_bins: int) -> None:
+    """ValueError unless ``fold_mark_terms`` is None or one (n_steps_k, n_bins), (n_bins,) pair per fold."""
+    if fold_mark_terms is None:
+        return
+    shapes = [(np.shape(ll), np.shape(expected)) for ll, expected in fold_mark_terms]
+    if shapes != [((n, n_bins), (n_bins,)) for n in n_steps]:
+        raise ValueError(f"fold_mark_terms must hold one (n_steps_k, {n_bins}) log-likelihood and one ({n_bins},) "
+                         f"expected count per fold, for fold steps {n_steps}; got shapes {shapes}")
+
+
 def _decoded_steps(
     fold_rate_maps_hz: Sequence[np.ndarray], fired: list[list[tuple[np.ndarray, np.ndarray]]], step_s: float,
     walk: RandomWalk, uniform_weight: float, temperature: float, rate_floor_hz: float, drift_gain: float,
-    velocity_time_constant_s: float,
+    velocity_time_constant_s: float, fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None,
 ) -> Iterator[DecodedStep]:
     """Every held-out step decoded by the filter, fold after fold, each fold from a fresh decoder."""
-    for rates, steps in zip(fold_rate_maps_hz, fired):
+    for k, (rates, steps) in enumerate(zip(fold_rate_maps_hz, fired)):
         decoder = BayesDecoder(
             rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
             uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
             drift_gain=drift_gain, velocity_time_constant_s=velocity_time_constant_s, backend=walk.backend,
         )
-        for rows, counts in steps:
-            yield decoder.decode(rows, counts)
+        if fold_mark_terms is None:
+            for rows, counts in steps:
+                yield decoder.decode(rows, counts)
+        else:
+            log_like, expected = fold_mark_terms[k]
+            for (rows, counts), step_log_like in zip(steps, log_like):
+                yield decoder.decode(rows, counts, step_log_like, expected)
 
 
 def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.ndarray) -> tuple[float, float]:
@@ -430,6 +467,7 @@ def fit_drift(
     temperature: float,
     rate_floor_hz: float = 0.01,
     median_without_cm: float | None = None,
+    fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> DriftFit:
     """Choose the drift gain and the velocity's time constant by held-out median error.
 
@@ -445,7 +483,7 @@ def fit_drift(
 
     Parameters
     ----------
-    fold_rate_maps_hz, fold_counts, step_s, walk, uniform_weight, rate_floor_hz
+    fold_rate_maps_hz, fold_counts, step_s, walk, uniform_weight, rate_floor_hz, fold_mark_terms
         As in :func:`fit_temperature`.
     fold_true_xy_cm : sequence of ndarray, each shape (n_steps_k, 2)
         Tracked position at the end of each step (NaN where unknown).
@@ -470,12 +508,14 @@ def fit_drift(
     known = np.all(np.isfinite(truth), axis=1)
     if not known.any():
         raise ValueError("no held-out step has a known position; the tracker was lost throughout")
+    _check_mark_terms(fold_mark_terms, [len(c) for c in fold_counts], walk.environment.n_bins)
     fired = _fired(fold_counts)
     env = walk.environment
 
     def median_cm(gain: float, time_constant_s: float) -> float:
         points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
-            fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz, gain, time_constant_s)]
+            fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz, gain, time_constant_s,
+            fold_mark_terms)]
         return min(_point_medians_cm(env, np.array(points), truth))
 
     without = median_cm(0.0, 1.0) if median_without_cm is None else median_without_cm

@@ -17,6 +17,14 @@ spike, so a capped group is not rarer for the decoder. Occupancy comes from
 the place model learned alongside (the same frames, speed filter and
 smoothing), so the two likelihoods share their denominator.
 
+Calibration: each spike is learned with the place model's cross-validation
+fold of its time, kept with the kept spikes and counted by fold in the
+ground process, so :meth:`MarkModel.without_fold` fits the model that has
+not seen a fold; the newest marked spikes, running or not, are kept in
+:attr:`MarkModel.held_out` (``decoder.encoding.held_out``) for the held-out
+steps the likelihood temperature is fitted on
+(``PlaceModel.calibrate``).
+
 References
 ----------
 Kloosterman F, Layton SP, Chen Z, Wilson MA (2014). Bayesian decoding using
@@ -39,6 +47,7 @@ from typing import Any
 
 import numpy as np
 
+from decoder.encoding.held_out import HeldOutSpikes
 from decoder.encoding.model_file import read_model_file, write_model_file
 from decoder.encoding.spatial_metrics import skaggs_information
 from decoder.inference import _mark_kernels
@@ -97,6 +106,9 @@ class MarkModel:
         Occupancy-normalised rate of all spikes of each group.
     valid_mask_ : ndarray of bool, shape (n_bins,)
     info_bits_per_spike_ : ndarray of float64, shape (n_groups,)
+    held_out : HeldOutSpikes
+        The newest marked spikes given a time in :meth:`update`, by group
+        id, with their marks: the held-out steps of calibration.
 
     Examples
     --------
@@ -135,10 +147,13 @@ class MarkModel:
         self._marks: list[np.ndarray] = []
         self._bins: list[np.ndarray] = []
         self._kept: list[int] = []
+        # Each kept spike's cross-validation fold, and the placed spikes counted by fold (n_folds_seen, n_bins).
+        self._folds: list[np.ndarray] = []
         self._placed_counts: list[np.ndarray] = []
         self._rngs: list[np.random.Generator] = []
         self.counters_ = {"spikes_received": 0, "spikes_placed": 0, "spikes_not_running": 0,
                           "spikes_outside_environment": 0}
+        self.held_out = HeldOutSpikes()
 
     # -- learning ------------------------------------------------------------
 
@@ -167,11 +182,13 @@ class MarkModel:
         self._channels.append(n_channels)
         self._marks.append(np.zeros((0, n_channels), np.float32))
         self._bins.append(np.zeros(0, np.int64))
+        self._folds.append(np.zeros(0, np.int64))
         self._kept.append(0)
-        self._placed_counts.append(np.zeros(self.environment.n_bins, np.int64))
+        self._placed_counts.append(np.zeros((1, self.environment.n_bins), np.int64))
         self._rngs.append(np.random.default_rng((self.seed, group_id % 2**63)))
 
-    def update(self, group_ids: np.ndarray, marks_uv: np.ndarray, xy_cm: np.ndarray, speed_cm_s: np.ndarray) -> int:
+    def update(self, group_ids: np.ndarray, marks_uv: np.ndarray, xy_cm: np.ndarray, speed_cm_s: np.ndarray, *,
+               t_s: np.ndarray | None = None, folds: np.ndarray | None = None) -> int:
         """Learn marked spikes at the positions where they occurred.
 
         Parameters
@@ -184,6 +201,12 @@ class MarkModel:
             Position at each spike; NaN where unknown.
         speed_cm_s : ndarray of float64, shape (n,)
             Running speed at each spike.
+        t_s : ndarray of float64, shape (n,), optional
+            Each spike's data time: with it every spike given, placed or
+            not, is also kept in :attr:`held_out`.
+        folds : ndarray of int, shape (n,), optional
+            Each spike's cross-validation fold (>= 0; the place model's
+            ``fold_of``); all fold 0 by default.
 
         Returns
         -------
@@ -193,6 +216,11 @@ class MarkModel:
         group_ids = np.asarray(group_ids, np.int64)
         marks_uv = np.asarray(marks_uv, np.float32)
         n = group_ids.size
+        folds = np.zeros(n, np.int64) if folds is None else np.asarray(folds, np.int64)
+        if folds.shape != (n,) or (n and folds.min() < 0):
+            raise ValueError(f"folds must hold one fold >= 0 per spike ({n}), got shape {folds.shape}")
+        if t_s is not None:
+            self.held_out.add(t_s, group_ids, marks_uv)
         self.counters_["spikes_received"] += n
         running = np.asarray(speed_cm_s, np.float64) >= self.min_speed_cm_s
         bins = self.environment.bin_index(np.asarray(xy_cm, np.float64).reshape(n, 2))
@@ -205,22 +233,26 @@ class MarkModel:
             if marks_uv.shape[1] != self._channels[row]:
                 raise ValueError(f"group {gid} has {self._channels[row]} channels, the marks {marks_uv.shape[1]}")
             take = placed & (group_ids == gid)
-            self._reservoir(row, marks_uv[take], bins[take])
+            self._reservoir(row, marks_uv[take], bins[take], folds[take])
         n_placed = int(np.count_nonzero(placed))
         self.counters_["spikes_placed"] += n_placed
         return n_placed
 
-    def _reservoir(self, row: int, marks: np.ndarray, bins: np.ndarray) -> None:
+    def _reservoir(self, row: int, marks: np.ndarray, bins: np.ndarray, folds: np.ndarray) -> None:
         """Algorithm R (Vitter 1985) over a batch: the first ``cap`` fill, each later one replaces with probability cap/seen."""
         counts = self._placed_counts[row]
         seen = int(counts.sum())
-        np.add.at(counts, bins, 1)
+        if len(folds) and folds.max() >= len(counts):
+            counts = np.concatenate([counts, np.zeros((folds.max() + 1 - len(counts), counts.shape[1]), np.int64)])
+            self._placed_counts[row] = counts
+        np.add.at(counts, (folds, bins), 1)
         cap = self.max_spikes_per_group
-        kept_marks, kept_bins = self._marks[row], self._bins[row]
+        kept_marks, kept_bins, kept_folds = self._marks[row], self._bins[row], self._folds[row]
         fill = max(0, min(cap - seen, len(bins)))
         if fill:
             kept_marks = np.concatenate([kept_marks, marks[:fill]])
             kept_bins = np.concatenate([kept_bins, bins[:fill]])
+            kept_folds = np.concatenate([kept_folds, folds[:fill]])
         rest = len(bins) - fill
         if rest:
             slot = self._rngs[row].integers(0, np.arange(seen + fill + 1, seen + fill + rest + 1))
@@ -228,7 +260,8 @@ class MarkModel:
             # Repeated slots: the later spike wins, as one at a time.
             kept_marks[slot[hit]] = marks[fill:][hit]
             kept_bins[slot[hit]] = bins[fill:][hit]
-        self._marks[row], self._bins[row] = kept_marks, kept_bins
+            kept_folds[slot[hit]] = folds[fill:][hit]
+        self._marks[row], self._bins[row], self._folds[row] = kept_marks, kept_bins, kept_folds
         self._kept[row] = len(kept_bins)
 
     # -- fitting -------------------------------------------------------------
@@ -303,8 +336,10 @@ class MarkModel:
             raise ValueError(f"occupancy_s must have shape ({env.n_bins},) and valid_mask hold a visited bin")
         if self.n_groups == 0:
             raise ValueError("no electrode group has been announced; a marks source announces its groups first")
-        self.spread_ = self._spread_operator()
-        self.grid_nx_, self.kernel_1d_ = self._grid_kernel()
+        if not hasattr(self, "spread_"):
+            # The smoothing depends on the environment and smooth_cm alone: made once, shared by the fold models.
+            self.spread_ = self._spread_operator()
+            self.grid_nx_, self.kernel_1d_ = self._grid_kernel()
         start, targets, weights = self.spread_
         source_of = np.repeat(np.arange(env.n_bins), np.diff(start))
 
@@ -318,7 +353,7 @@ class MarkModel:
         self.valid_mask_ = usable
         ground = np.zeros((self.n_groups, env.n_bins))
         for g, counts in enumerate(self._placed_counts):
-            ground[g] = np.maximum(smooth(counts.astype(np.float64)) * self.bin_scale_, self.rate_floor_hz)
+            ground[g] = np.maximum(smooth(counts.sum(axis=0).astype(np.float64)) * self.bin_scale_, self.rate_floor_hz)
         ground[:, ~usable] = 0.0
         self.ground_rate_hz_ = ground
         self.ground_total_hz_ = ground.sum(axis=0)
@@ -374,6 +409,50 @@ class MarkModel:
                     self.n_groups, sum(self._kept), int(self.group_start_[-1]), int(usable.sum()))
         return self
 
+    def without_fold(self, fold: int, occupancy_s: np.ndarray, valid_mask: np.ndarray,
+                     learned_mask: np.ndarray | None = None) -> MarkModel:
+        """A fitted model of the kept spikes of every fold but ``fold``: what weighs that fold's held-out steps.
+
+        The kept spikes of the other folds are a uniform sample of their
+        placed spikes (the reservoir samples all alike), so scaling by those
+        folds' placed over kept spikes keeps the intensity unbiased, and
+        their placed spikes alone make the ground process.
+
+        Parameters
+        ----------
+        fold : int
+        occupancy_s : ndarray of float64, shape (n_bins,)
+            Running time per bin without ``fold`` (the place model's totals
+            without it), and with it outside ``learned_mask``.
+        valid_mask : ndarray of bool, shape (n_bins,)
+            Bins decoded over.
+        learned_mask : ndarray of bool, shape (n_bins,), optional
+            The bins the other folds learned (all by default). Outside them
+            the fold's own spikes are kept, as the place model keeps its
+            full maps there: a bin no other fold reached would otherwise
+            have the floor intensity and repel the held-out posterior.
+
+        Returns
+        -------
+        MarkModel
+            Fitted; its group rows are this model's.
+        """
+        model = MarkModel(self.environment, **self._settings())
+        learned = np.ones(self.environment.n_bins, bool) if learned_mask is None else np.asarray(learned_mask, bool)
+        for g, (gid, n_channels) in enumerate(zip(self._ids, self._channels)):
+            model.add_group(gid, n_channels)
+            keep = (self._folds[g] != fold) | ~learned[self._bins[g]]
+            model._marks[g], model._bins[g], model._folds[g] = self._marks[g][keep], self._bins[g][keep], \
+                self._folds[g][keep]
+            model._kept[g] = int(np.count_nonzero(keep))
+            counts = self._placed_counts[g].copy()
+            if fold < len(counts):
+                counts[fold, learned] = 0
+            model._placed_counts[g] = counts
+        if hasattr(self, "spread_"):
+            model.spread_, model.grid_nx_, model.kernel_1d_ = self.spread_, self.grid_nx_, self.kernel_1d_
+        return model.fit(occupancy_s, valid_mask)
+
     # -- decoding ------------------------------------------------------------
 
     def rows_of(self, group_ids: np.ndarray) -> np.ndarray:
@@ -411,6 +490,43 @@ class MarkModel:
                       self.kernel_1d_, self.bin_scale_, self.group_scale_, self.group_log_floor_, self.valid_mask_,
                       scratch, out)
 
+    def step_terms(self, step_index: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray, n_steps: int,
+                   window_s: float) -> tuple[np.ndarray, np.ndarray]:
+        """The marks' terms of ``n_steps`` windows, as a live step gives them to the decoder (after :meth:`fit`).
+
+        Parameters
+        ----------
+        step_index : ndarray of int64, shape (k,)
+            The window of each marked spike, ascending, in ``0..n_steps-1``.
+        group_ids : ndarray of int64, shape (k,)
+            Spikes of groups this model does not know are left out.
+        marks_uv : ndarray of float32, shape (k, n_channels)
+            Narrower marks are padded with zeros, as groups of fewer channels are.
+        n_steps : int
+        window_s : float
+
+        Returns
+        -------
+        log_like : ndarray of float64, shape (n_steps, n_bins)
+            ``sum_k log lambda(x, m_k)`` over each window's spikes.
+        expected : ndarray of float64, shape (n_bins,)
+            ``window_s`` times the summed ground-process rate.
+        """
+        rows = self.rows_of(group_ids)
+        known = rows >= 0
+        step_index, rows = np.asarray(step_index, np.int64)[known], rows[known]
+        width = int(self.group_channels_.max())
+        marks = np.zeros((rows.size, width), np.float32)
+        given = np.asarray(marks_uv, np.float32)[known][:, :width]
+        marks[:, : given.shape[1]] = given
+        bounds = np.searchsorted(step_index, np.arange(n_steps + 1))
+        log_like = np.empty((n_steps, self.environment.n_bins))
+        scratch = self.scratch()
+        for i in range(n_steps):
+            a, b = bounds[i], bounds[i + 1]
+            self.log_intensity_sum(rows[a:b], marks[a:b], log_like[i], scratch)
+        return log_like, window_s * self.ground_total_hz_
+
     # -- readiness -----------------------------------------------------------
 
     def readiness(self) -> dict[str, Any]:
@@ -437,6 +553,10 @@ class MarkModel:
         and then updated keeps the very sample the uninterrupted session
         would have kept.
         """
+        write_model_file(path, *self.file_parts(), format_name=FILE_FORMAT)
+
+    def file_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """The header and arrays of :meth:`save`, for a file that holds this model beside another (:meth:`from_parts`)."""
         header = {"environment": self.environment.to_dict(), "settings": self._settings(), "groups": self._ids,
                   "channels": self._channels, "counters": self.counters_,
                   "reservoir_states": [rng.bit_generator.state for rng in self._rngs]}
@@ -444,24 +564,30 @@ class MarkModel:
         for g in range(self.n_groups):
             arrays[f"marks_{g}"] = self._marks[g]
             arrays[f"bins_{g}"] = self._bins[g]
+            arrays[f"folds_{g}"] = self._folds[g]
             arrays[f"placed_{g}"] = self._placed_counts[g]
-        write_model_file(path, header, arrays, format_name=FILE_FORMAT)
+        return header, arrays
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> MarkModel:
         """Read a model written by :meth:`save` (fit it before decoding); ModelFileError if it is not one."""
-        return read_model_file(path, cls._from_parts, format_name=FILE_FORMAT)
+        return read_model_file(path, cls.from_parts, format_name=FILE_FORMAT)
 
     @classmethod
-    def _from_parts(cls, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MarkModel:
+    def from_parts(cls, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MarkModel:
+        """The model :meth:`file_parts` described (unfitted); ValueError where the parts do not fit together."""
         model = cls(Environment.from_dict(header["environment"]), **header["settings"])
         for g, (gid, nch) in enumerate(zip(header["groups"], header["channels"])):
             model.add_group(gid, nch)
             marks, bins = arrays[f"marks_{g}"].astype(np.float32), arrays[f"bins_{g}"].astype(np.int64)
-            if marks.shape != (bins.size, nch) or arrays[f"placed_{g}"].shape != (model.environment.n_bins,):
+            # Files written before the folds were kept hold every spike in fold 0.
+            folds = arrays[f"folds_{g}"].astype(np.int64) if f"folds_{g}" in arrays else np.zeros(bins.size, np.int64)
+            placed = np.atleast_2d(arrays[f"placed_{g}"].astype(np.int64))
+            if marks.shape != (bins.size, nch) or folds.shape != bins.shape or placed.ndim != 2 \
+                    or placed.shape[1] != model.environment.n_bins or (folds.size and folds.min() < 0):
                 raise ValueError(f"the arrays of group {gid} do not match its channels and the bins")
-            model._marks[g], model._bins[g], model._kept[g] = marks, bins, bins.size
-            model._placed_counts[g] = arrays[f"placed_{g}"].astype(np.int64)
+            model._marks[g], model._bins[g], model._folds[g], model._kept[g] = marks, bins, folds, bins.size
+            model._placed_counts[g] = placed
         # A file without them (written before they were saved) starts each generator afresh from the seed.
         for rng, state in zip(model._rngs, header.get("reservoir_states", [])):
             rng.bit_generator.state = state

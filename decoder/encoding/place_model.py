@@ -23,6 +23,7 @@ from decoder.encoding.calibration import TemperatureFit, fit_drift, fit_temperat
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
 from decoder.encoding.held_out import HeldOutSpikes
+from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.model_file import (
     FORMAT_NAME,
     FORMAT_VERSION,
@@ -50,14 +51,10 @@ MAX_CALIBRATION_STEPS = 3_000
 #: rat, long enough to drop a lone outlier and halve frame-to-frame jitter.
 TRACKED_MEDIAN_FRAMES = 5
 
-__all__ = [
-    "PlaceModel",
-    "Readiness",
-    "CrossValidatedError",
-    "ModelFileError",
-    "FORMAT_NAME",
-    "FORMAT_VERSION",
-]
+#: Names of the mark model's arrays in a model file that holds one.
+_MARKS_PREFIX = "marks__"
+
+__all__ = ["PlaceModel", "Readiness", "CrossValidatedError", "ModelFileError", "FORMAT_NAME", "FORMAT_VERSION"]
 
 
 class PlaceModel(OnlineCounts):
@@ -129,6 +126,9 @@ class PlaceModel(OnlineCounts):
         saved with the model.
     counters_ : dict of str to int
         What was received and what was dropped, and why.
+    mark_model_ : MarkModel or None
+        The mark model the session fitted beside it (clusterless decoding),
+        saved in the same file and fitted again on loading; None by default.
     heading_tuning_ : HeadingTuning or None
         On a heading ring, each unit's preferred direction, mean vector
         length, tuning width and Rayleigh p (``decoder.encoding.heading_metrics``);
@@ -152,6 +152,7 @@ class PlaceModel(OnlineCounts):
         super().__init__(environment, **settings)
         self._held_out = HeldOutSpikes()
         self.temperature_fits_: dict[float, TemperatureFit] = {}
+        self.mark_model_: MarkModel | None = None
 
     def update_spikes(self, t_s: Any, unit_ids: Any) -> None:
         """Add spikes; see :meth:`OnlineCounts.update_spikes`. The newest are also kept for calibration."""
@@ -273,6 +274,27 @@ class PlaceModel(OnlineCounts):
             )
         return MovementModel(math.sqrt(variance * step_s), default_uniform_weight(step_s), step_s)
 
+    def fold_of(self, t_s: np.ndarray) -> np.ndarray:
+        """The cross-validation fold (int64, shape (n,)) of each data time: ``cv_block`` mod ``cv_folds``; 0 before any frame."""
+        t = np.asarray(t_s, np.float64)
+        if self._t0 is None:
+            return np.zeros(t.shape, np.int64)
+        return (cv_block(t, self._t0, self.cv_block_s).astype(np.int64) % self.cv_folds).astype(np.int64)
+
+    def calibrate(self, step_s: float, marks: MarkModel | None = None) -> TemperatureFit:
+        """Fit (again) the temperature, drift and point estimate of :meth:`likelihood_temperature`, with marks if given.
+
+        With ``marks`` (a fitted ``MarkModel`` learned beside this model, its
+        spikes in the folds of :meth:`fold_of`) each held-out step is decoded
+        with its waveform marks too, weighed by ``marks.without_fold`` of the
+        step's fold, on the steps both hold (``marks.held_out`` alone if this
+        model holds no spike). Kept in :attr:`temperature_fits_`; ValueError as
+        :meth:`likelihood_temperature`.
+        """
+        step_s = float(step_s)
+        self.temperature_fits_[step_s] = self._fit_temperature(step_s, marks)
+        return self.temperature_fits_[step_s]
+
     def likelihood_temperature(self, step_s: float) -> float:
         """The likelihood temperature for decoding steps of ``step_s``, fitted on first asking.
 
@@ -310,20 +332,8 @@ class PlaceModel(OnlineCounts):
 
         :meth:`likelihood_temperature`'s fit scores both on the same
         held-out steps (``decoder.encoding.calibration``); a model file
-        written before that choice was made says ``"map"``.
-
-        Parameters
-        ----------
-        step_s : float
-
-        Returns
-        -------
-        str
-
-        Raises
-        ------
-        ValueError
-            As :meth:`likelihood_temperature`.
+        written before that choice was made says ``"map"``. ValueError as
+        :meth:`likelihood_temperature`.
         """
         self.likelihood_temperature(step_s)
         return self.temperature_fits_[float(step_s)].point_estimate
@@ -333,33 +343,30 @@ class PlaceModel(OnlineCounts):
 
         :meth:`likelihood_temperature`'s fit chooses them on the same
         held-out steps (``decoder.encoding.calibration.fit_drift``); a model
-        file written before the drift was fitted says gain 0, the plain walk.
-
-        Parameters
-        ----------
-        step_s : float
-
-        Returns
-        -------
-        gain : float
-        velocity_time_constant_s : float
-
-        Raises
-        ------
-        ValueError
-            As :meth:`likelihood_temperature`.
+        file written before the drift was fitted says gain 0, the plain
+        walk. ValueError as :meth:`likelihood_temperature`.
         """
         self.likelihood_temperature(step_s)
         fit = self.temperature_fits_[float(step_s)]
         return fit.drift_gain, fit.velocity_time_constant_s
 
-    def _fit_temperature(self, step_s: float) -> TemperatureFit:
+    def _fit_temperature(self, step_s: float, marks: MarkModel | None = None) -> TemperatureFit:
         if not hasattr(self, "rate_maps_hz_"):
             raise ValueError("the place model is not fitted; fit it before asking for its likelihood temperature")
         movement = self.movement_model(step_s)
         env, rates, visited = self.environment, self.rate_maps_hz_, self.visited_mask_
-        ends, counts = self._held_out.step_counts(step_s, self.unit_ids_)
-        ends, counts = ends[-MAX_CALIBRATION_STEPS:], counts[-MAX_CALIBRATION_STEPS:]
+        first, last = self._held_out.step_range(step_s)
+        # No unit fired while learning: a session of marks alone, its units announced or not.
+        units_held = last >= first
+        if marks is not None:
+            # The steps whose every spike is held, of units and marks alike.
+            mark_first, mark_last = marks.held_out.step_range(step_s)
+            first, last = (max(first, mark_first), min(last, mark_last)) if units_held else (mark_first, mark_last)
+        steps = (max(first, last - MAX_CALIBRATION_STEPS + 1), last)
+        ends = np.arange(steps[0], steps[1] + 1) * step_s
+        counts = np.zeros((ends.size, self.unit_ids_.size), np.int64)
+        if units_held:
+            ends, counts = self._held_out.step_counts(step_s, self.unit_ids_, steps)
         true_bins, true_xy = self._tracked_at(ends)
         if ends.size < 2 or not np.any(true_bins >= 0):
             raise ValueError(
@@ -373,19 +380,32 @@ class PlaceModel(OnlineCounts):
         if cuts.size == 0:
             cuts = np.array([ends.size // 2])
         fold_maps, fold_counts, fold_bins, fold_xy, maps_of_fold = [], [], [], [], {}
+        fold_terms, marks_of_fold = [], {}
+        if marks is not None:
+            _, step_index, group_ids, marks_uv = marks.held_out.step_spikes(step_s, steps)
         for run in np.split(np.arange(ends.size), cuts):
             fold = int(block[run[0]] % self.cv_folds)
             if fold not in maps_of_fold:
-                fold_rates, fold_visited = self._rate_maps(*self._totals(exclude_fold=fold))
+                unit_counts, fold_occupancy = self._totals(exclude_fold=fold)
+                fold_rates, fold_visited = self._rate_maps(unit_counts, fold_occupancy)
                 # Bins the other folds never reached keep the full maps, rather
                 # than a floor rate that would draw the posterior there.
                 maps_of_fold[fold] = np.where(fold_visited, fold_rates, rates)
+                if marks is not None:
+                    # Likewise the marks: the full occupancy where the other folds never ran.
+                    marks_of_fold[fold] = marks.without_fold(
+                        fold, np.where(fold_visited, fold_occupancy, self.occupancy_s_), visited, fold_visited)
             fold_maps.append(maps_of_fold[fold])
             fold_counts.append(counts[run])
             fold_bins.append(true_bins[run])
             fold_xy.append(true_xy[run])
+            if marks is not None:
+                a, b = np.searchsorted(step_index, [run[0], run[-1] + 1])
+                fold_terms.append(marks_of_fold[fold].step_terms(step_index[a:b] - run[0], group_ids[a:b],
+                                                                 marks_uv[a:b], run.size, step_s))
         walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
-        common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz)
+        common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz,
+                      fold_mark_terms=fold_terms if marks is not None else None)
         fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy, **common)
         # The drift is chosen at the plain walk's temperature, then the temperature refitted for it.
         drift = fit_drift(fold_maps, fold_counts, fold_xy, step_s, walk, temperature=fit.temperature,
@@ -394,10 +414,11 @@ class PlaceModel(OnlineCounts):
             fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
                                   drift=drift, near=fit, **common)
         logger.info(
-            "likelihood temperature %.2f for %g s steps: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
+            "likelihood temperature %.2f for %g s steps%s: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
             "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f); drift gain %.2f on the decoded "
             "velocity over %.2f s (held-out median %.2f cm, %.2f without)",
-            fit.temperature, step_s, fit.coverage, fit.coverage_at_1, fit.n_steps, fit.point_estimate,
+            fit.temperature, step_s, " with waveform marks" if fit.with_marks else "", fit.coverage,
+            fit.coverage_at_1, fit.n_steps, fit.point_estimate,
             min(fit.map_median_cm, fit.mean_median_cm), fit.map_median_cm, fit.mean_median_cm, drift.gain,
             drift.velocity_time_constant_s, drift.median_cm, drift.median_without_cm,
         )
@@ -463,7 +484,6 @@ class PlaceModel(OnlineCounts):
             walk_sd_cm_per_sqrt_s=math.sqrt(getattr(self, "walk_variance_cm2_per_s_", math.nan)),
         )
 
-
     def _count_tuned(self, counts: np.ndarray, occupancy: np.ndarray, env: Environment) -> int:
         """Units whose maps on ``env`` pass the tuning thresholds (0 before any bin is visited)."""
         _, visited = self._visited(occupancy, env)
@@ -514,7 +534,6 @@ class PlaceModel(OnlineCounts):
             into = np.flatnonzero(to_grid >= 0)
             np.add.at(self._tuning_counts, (slice(0, n), to_grid[into]), fine[:, into])
         return self._tuning
-
 
     def cross_validated_error_cm(self) -> CrossValidatedError:
         """Median decoding error on held-out folds.
@@ -568,7 +587,6 @@ class PlaceModel(OnlineCounts):
             "unit_ids": ids,
         }
 
-
     def save(self, path: str | os.PathLike) -> None:
         """Write the model to one ``.npz`` file, replacing it atomically.
 
@@ -611,6 +629,9 @@ class PlaceModel(OnlineCounts):
         }
         if fitted:
             arrays.update({name.rstrip("_"): getattr(self, name) for name in self._LEARNED})
+        if self.mark_model_ is not None:
+            header["marks"], mark_arrays = self.mark_model_.file_parts()
+            arrays.update({_MARKS_PREFIX + name: a for name, a in mark_arrays.items()})
         path = write_model_file(path, header, arrays)
         logger.info("saved place model (%d units) to %s", self.n_units, path)
 
@@ -668,4 +689,9 @@ class PlaceModel(OnlineCounts):
             if model.rate_maps_hz_.shape != (len(model.unit_ids_), n_bins):
                 raise ValueError("the rate maps do not match the header's units and bins")
             model.heading_tuning_ = model._heading_tuning(model._totals()[0])
+        if "marks" in header:
+            marks = {name[len(_MARKS_PREFIX):]: a for name, a in arrays.items() if name.startswith(_MARKS_PREFIX)}
+            model.mark_model_ = MarkModel.from_parts(header["marks"], marks)
+            if header["fitted"]:
+                model.mark_model_.fit(model.occupancy_s_, model.visited_mask_)
         return model

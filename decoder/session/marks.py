@@ -9,11 +9,16 @@ sorted spikes with each group standing for a unit, and then either learned
 (placed at the tracked position once the tracker has passed their time) or
 held for the decoding steps, whose windows they enter as the marks'
 log-likelihood and expected count (``decoder.inference.decoding.BayesDecoder``).
+While learning, each spike goes to the mark model with its time and the
+place model's cross-validation fold of that time, so that the filter's
+temperature can be fitted on held-out steps with their marks
+(``PlaceModel.calibrate``).
 """
 
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 
 import numpy as np
 
@@ -66,6 +71,7 @@ class MarkStream:
                                   cutoff_sd=settings.cutoff_sd, rate_floor_hz=rate_floor_hz, seed=settings.seed,
                                   merge_sd=settings.merge_sd)
         self.learning: MarkModel | None = None
+        self._fold_of: Callable[[np.ndarray], np.ndarray] | None = None
         self._pending: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self._n_pending = 0
         self.decoding: MarkModel | None = None
@@ -114,9 +120,10 @@ class MarkStream:
 
     # -- learning ------------------------------------------------------------
 
-    def start_learning(self) -> None:
-        """Learn a new mark model from here on."""
+    def start_learning(self, fold_of: Callable[[np.ndarray], np.ndarray]) -> None:
+        """Learn a new mark model from here on, each spike in the fold ``fold_of(t_s)`` (the place model's ``fold_of``)."""
         self.learning = MarkModel(self.environment, **self._model_kwargs)
+        self._fold_of = fold_of
         for gid, n in self.channels.items():
             self.learning.add_group(gid, n)
         self._pending, self._n_pending = [], 0
@@ -140,7 +147,7 @@ class MarkStream:
             if n == 0:
                 return
             where = np.array([tracked.at_xy(ti) for ti in t[:n].tolist()]).reshape(n, 3)
-            self.learning.update(g[:n], m[:n], where[:, :2], where[:, 2])
+            self.learning.update(g[:n], m[:n], where[:, :2], where[:, 2], t_s=t[:n], folds=self._fold_of(t[:n]))
             self._n_pending -= n
             if n == t.size:
                 self._pending.pop(0)

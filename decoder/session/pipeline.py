@@ -404,7 +404,7 @@ class Pipeline:
             self.model = PlaceModel(self.environment, unit_ids=unit_ids, **self.config.model.place_model_kwargs())
             self.model_is_loaded = False
             if self.marks is not None:
-                self.marks.start_learning()
+                self.marks.start_learning(self.model.fold_of)
         self.state = "learning"
         # Learning time counts from the first data if no data has come yet.
         self._learn_started_s = t_s if math.isfinite(t_s) else None
@@ -420,6 +420,8 @@ class Pipeline:
             self.model.fit()
             if self.marks is not None:
                 mark_model = self.marks.fit(self.model.occupancy_s_, self.model.visited_mask_, self.positions.tracked)
+            # Saved in the session's model file with the place model, and decoded again when it is loaded.
+            self.model.mark_model_ = mark_model
         except ValueError as exc:
             log.error("fitting failed: %s", exc)
             return [Notice("refused", t_s, {"command": "fit", "why": str(exc)})]
@@ -435,7 +437,11 @@ class Pipeline:
         self.readiness = readiness
         installed = self.install_model(self.model, t_s, mark_model=mark_model)
         if self.config.decoder.method == "filter":
-            readiness["filter"] = filter_figures(self.model, self.steps.decoder)
+            readiness["filter"] = figures = filter_figures(self.model, self.steps.decoder)
+            if mark_model is not None and figures.get("held_out_with_marks"):
+                # The marks' cross-validated error: held-out steps decoded with them (and the units, if any).
+                readiness["marks"]["held_out_median_cm"] = min(figures["held_out_map_median_cm"],
+                                                               figures["held_out_mean_median_cm"])
         notices = [Notice("fitted", t_s, {"readiness": readiness})]
         for name, covered in readiness["zone_coverage"].items():
             if covered < ZONE_COVERAGE_WARNING:
@@ -447,10 +453,17 @@ class Pipeline:
 
     def install_model(self, model: PlaceModel, t_s: float, loaded: bool = False,
                       mark_model: MarkModel | None = None) -> list[Notice]:
-        """Decode with ``model`` (and ``mark_model``'s marked spikes) from the next step on (triggers stay disarmed)."""
+        """Decode with ``model`` (and ``mark_model``'s marked spikes) from the next step on (triggers stay disarmed).
+
+        Without ``mark_model``, the model's own (``PlaceModel.mark_model_``, a loaded file's) decodes the marks
+        where ``[marks]`` is enabled.
+        """
         d = self.config.decoder
+        if mark_model is None and self.marks is not None:
+            mark_model = model.mark_model_
         # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
-        decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz)
+        decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz,
+                                marks=mark_model)
         marks = self.marks if mark_model is not None else None
         steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters, marks)
         if self.marks is not None:

@@ -15,6 +15,7 @@ import math
 import numpy as np
 
 from decoder.config import DecoderSettings
+from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.movement import default_uniform_weight
 from decoder.encoding.place_model import PlaceModel
 from decoder.inference.binning import SpikeWindow
@@ -30,7 +31,7 @@ MAX_STEPS_PER_MESSAGE = 500
 
 
 def build_decoder(model: PlaceModel, environment: Environment, settings: DecoderSettings,
-                  zone_masks: np.ndarray, rate_floor_hz: float) -> BayesDecoder:
+                  zone_masks: np.ndarray, rate_floor_hz: float, marks: MarkModel | None = None) -> BayesDecoder:
     """The session's decoder for a fitted model, as ``settings.method`` asks.
 
     ``"sliding_window"``: windows of ``window_s`` with ``settings.prior`` and
@@ -43,7 +44,11 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     (``PlaceModel.point_estimate``) as the steps' decoded position, and the
     drift of the walk towards the decoded velocity fitted with it
     (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain); the
-    sliding window reports the MAP. A model without a learned movement model (saved
+    sliding window reports the MAP. With ``marks`` the filter's temperature,
+    point estimate and drift are fitted afresh on held-out steps decoded
+    with their waveform marks as well (``PlaceModel.calibrate``), since the
+    marks' terms are tempered with the units', unless the model holds such a
+    fit already (a loaded model file keeps its fits, not its held-out spikes). A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
 
@@ -55,6 +60,8 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     settings : DecoderSettings
     zone_masks : ndarray of bool, shape (n_zones, n_bins)
     rate_floor_hz : float
+    marks : MarkModel, optional
+        The fitted mark model that decodes beside the units.
 
     Returns
     -------
@@ -73,6 +80,12 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         walk_sd_cm = settings.random_walk_sd_cm
         uniform_weight = default_uniform_weight(settings.step_s)
     temperature, point_estimate, (drift_gain, time_constant_s) = settings.likelihood_temperature, "map", (0.0, 1.0)
+    fitted = model.temperature_fits_.get(float(settings.step_s))
+    if marks is not None and not (fitted is not None and fitted.with_marks):
+        try:
+            model.calibrate(settings.step_s, marks)
+        except ValueError as exc:
+            logger.warning("%s; the filter is calibrated without the marks", exc)
     try:
         point_estimate = model.point_estimate(settings.step_s)
         drift_gain, time_constant_s = model.drift(settings.step_s)
@@ -122,7 +135,7 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
     fit = model.temperature_fits_.get(decoder.window_s)
     if fit is not None:
         figures.update(held_out_coverage=fit.coverage, held_out_map_median_cm=fit.map_median_cm,
-                       held_out_mean_median_cm=fit.mean_median_cm)
+                       held_out_mean_median_cm=fit.mean_median_cm, held_out_with_marks=fit.with_marks)
     return figures
 
 
