@@ -193,6 +193,12 @@ def _fmt(x, spec=".1f") -> str:
     return "n/a" if x is None else format(x, spec)
 
 
+def _marks_line(ready: dict, unit: str) -> str:
+    """The marks' held-out error, for a session that decodes waveform marks; else nothing."""
+    held_out = (ready.get("marks") or {}).get("held_out_median_cm")
+    return "" if held_out is None else f"; with marks, held out {_fmt(held_out)} {unit}"
+
+
 def format_summary(s: dict) -> str:
     d, t, lat, inp = s["decode"], s["triggers"], s["latency_ms"], s["input"]
     ready = (s.get("session") or {}).get("readiness") or {}
@@ -204,7 +210,8 @@ def format_summary(s: dict) -> str:
         "placeloop demo summary",
         "----------------------",
         f"learning   coverage {_fmt(ready.get('coverage'), '.0%')}, spatially tuned units "
-        f"{ready.get('n_tuned_units', 'n/a')}, cross-validated error {_fmt(ready.get('median_cv_error_cm'))} {unit}",
+        f"{ready.get('n_tuned_units', 'n/a')}, cross-validated error {_fmt(ready.get('median_cv_error_cm'))} {unit}"
+        + _marks_line(ready, unit),
         f"zones      share of each zone in the learned map: "
         f"{', '.join(f'{z} {c:.0%}' for z, c in (ready.get('zone_coverage') or {}).items()) or 'n/a'}",
         f"decoding   {d['steps']} steps, median error {_fmt(d['median_error_cm'])} {unit} "
