@@ -11,6 +11,7 @@ counts are small random arrays, not data.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 
@@ -18,11 +19,19 @@ import numpy as np
 import pytest
 from hmmlearn.hmm import PoissonHMM
 
+from decoder.encoding.calibration import fit_temperature
+from decoder.encoding.heading_motion import (
+    MIN_GAIN,
+    choose_heading_velocity,
+    fit_heading_velocity,
+    heading_velocity_of,
+)
 from decoder.inference import _kernels as K
 from decoder.inference.decoding import BayesDecoder
 from decoder.inference.heading_velocity import N_VELOCITY_BINS, HeadingVelocity
+from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import LinearTrack
-from decoder.space.headings import HeadingRing
+from decoder.space.headings import HeadingRing, heading_points_cm
 
 
 def _joint_matrix(transition: np.ndarray, shift_bins: np.ndarray, n: int) -> np.ndarray:
@@ -129,3 +138,73 @@ def test_joint_state_is_refused_where_it_has_no_meaning():
     with pytest.raises(ValueError, match="sd_deg_s"):
         HeadingVelocity(sd_deg_s=0.0, time_constant_s=0.3)
     assert K.VELOCITY_TRANSITION not in (K.NO_TRANSITION, K.GRID_TRANSITION, K.DENSE_TRANSITION)
+
+
+def _ou_heading(rng: np.random.Generator, sd_deg_s: float, tau_s: float, n: int, frame_s: float) -> np.ndarray:
+    """A heading (degrees, unwrapped) whose velocity is the exact discretisation of an Ornstein-Uhlenbeck process."""
+    phi = math.exp(-frame_s / tau_s)
+    omega = np.empty(n)
+    omega[0] = rng.normal(0.0, sd_deg_s)
+    kicks = rng.normal(0.0, sd_deg_s * math.sqrt(1 - phi**2), n)
+    for i in range(1, n):
+        omega[i] = phi * omega[i - 1] + kicks[i]
+    return np.cumsum(omega) * frame_s
+
+
+@pytest.mark.parametrize("sd_deg_s, tau_s", [(90.0, 0.3), (40.0, 0.15)])
+def test_turning_process_is_recovered_from_a_noisy_tracked_heading(sd_deg_s, tau_s):
+    rng = np.random.default_rng(21)
+    frame_s, n = 0.005, 200_000  # 1000 s sampled finely, so that the Euler integral is close to the process's
+    heading = _ou_heading(rng, sd_deg_s, tau_s, n, frame_s)[::4]  # 50 Hz frames
+    t = np.arange(heading.size) * 4 * frame_s
+    tracked = np.mod(heading + rng.normal(0.0, 3.0, heading.size), 360.0)
+    tracked[rng.random(heading.size) < 0.02] = np.nan
+    fit = fit_heading_velocity(t, tracked)
+    # Source: the integrated Ornstein-Uhlenbeck displacement variance (Uhlenbeck & Ornstein 1930, from
+    # memory) generated the data; 1000 s hold ~3,000-7,000 correlation times, so 10 % bounds the estimate.
+    assert fit.sd_deg_s == pytest.approx(sd_deg_s, rel=0.1)
+    assert fit.time_constant_s == pytest.approx(tau_s, rel=0.15)
+
+
+def test_turning_fit_refuses_too_few_frames_or_a_still_head():
+    t = np.arange(100) * 0.02
+    with pytest.raises(ValueError, match="frames with a heading"):
+        fit_heading_velocity(t, np.zeros(100))
+    t = np.arange(5000) * 0.02
+    with pytest.raises(ValueError, match="never turns"):
+        fit_heading_velocity(t, np.full(5000, 45.0))
+    with pytest.raises(ValueError, match="increasing"):
+        fit_heading_velocity(t[::-1], np.zeros(5000))
+
+
+def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
+    # Invented data (a sanity bound, not a reference): 12 von Mises cells on a head turning at
+    # 90 deg/s with a 0.3 s correlation time; the joint state must beat the plain walk held out, and a
+    # fit with a drift or on another environment is returned as it came.
+    ring = HeadingRing(6.0)
+    rng = np.random.default_rng(2)
+    step_s = 0.02
+    heading = _ou_heading(rng, 90.0, 0.3, 6000, step_s)
+    preferred = np.linspace(0, 360, 12, endpoint=False)
+    rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(ring.bin_centers_deg[None, :] - preferred[:, None])) - 1))
+    true_rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(heading[:, None] - preferred[None, :])) - 1))
+    counts = rng.poisson(true_rates * step_s)
+    xy = heading_points_cm(np.radians(heading))
+    walk = RandomWalk(ring, ring.valid_mask, 7.0)
+    folds = [slice(0, 3000), slice(3000, 6000)]
+    plain = fit_temperature([rates, rates], [counts[f] for f in folds],
+                            [ring.bin_index(xy[f]) for f in folds], step_s, walk, uniform_weight=1e-3,
+                            fold_true_xy_cm=[xy[f] for f in folds])
+    frames_t = np.arange(6000) * step_s
+    tracked = xy + rng.normal(0.0, 0.5, xy.shape)
+    chosen = choose_heading_velocity(plain, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
+                                     step_s, walk, frames_t, tracked, uniform_weight=1e-3)
+    assert chosen.angular_velocity_sd_deg_s > 0
+    assert min(chosen.map_median_cm, chosen.mean_median_cm) < (1 - MIN_GAIN) * min(plain.map_median_cm,
+                                                                                   plain.mean_median_cm)
+    assert heading_velocity_of(chosen) == HeadingVelocity(chosen.angular_velocity_sd_deg_s,
+                                                          chosen.angular_velocity_time_constant_s)
+    assert heading_velocity_of(plain) is None
+    drifting = dataclasses.replace(plain, drift_gain=0.5)
+    assert choose_heading_velocity(drifting, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
+                                   step_s, walk, frames_t, tracked, uniform_weight=1e-3) is drifting
