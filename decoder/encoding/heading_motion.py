@@ -46,6 +46,7 @@ from decoder.encoding.calibration import (
     _point_medians_cm,
     _unscored,
 )
+from decoder.inference.decoding import HPD_MASS
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.headings import HeadingRing, angle_difference_deg
@@ -159,7 +160,10 @@ def choose_heading_velocity(
     than ``MIN_GAIN``, the returned
     fit carries the process (``angular_velocity_sd_deg_s``,
     ``angular_velocity_time_constant_s``), the medians and the point
-    estimate chosen by ``calibration``'s rule. Otherwise ``fit`` itself.
+    estimate chosen by ``calibration``'s rule, and the held-out 95 % HPD
+    coverage with the joint state (at the plain walk's temperature, which
+    is not refitted: ``coverage`` is then what the session decodes with,
+    not what the temperature was fitted to). Otherwise ``fit`` itself.
 
     Parameters
     ----------
@@ -185,16 +189,24 @@ def choose_heading_velocity(
         logger.info("no angular velocity learned (%s); the filter keeps the plain walk", exc)
         return fit
     truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
-    points = np.array([np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
-        fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight, fit.temperature, rate_floor_hz, 0.0,
-        1.0, heading_velocity=process)])
-    map_cm, mean_cm = _point_medians_cm(env, points, truth)
+    true_bins = env.bin_index(truth).tolist()
+    points, inside = [], []
+    for step, true_bin in zip(_decoded_steps(fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight,
+                                             fit.temperature, rate_floor_hz, 0.0, 1.0, heading_velocity=process),
+                              true_bins):
+        points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
+        if true_bin >= 0:
+            # The HPD region holds the true bin when the bins more probable than it hold less than its mass
+            # (calibration.fit_temperature's count).
+            p = step.posterior
+            inside.append(bool(p[p > p[true_bin]].sum() < HPD_MASS))
+    map_cm, mean_cm = _point_medians_cm(env, np.array(points), truth)
     logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
                 process.sd_deg_s, process.time_constant_s, min(map_cm, mean_cm), plain_cm)
     if not min(map_cm, mean_cm) < plain_cm * (1.0 - MIN_GAIN):
         return fit
     return dataclasses.replace(
-        fit, map_median_cm=map_cm, mean_median_cm=mean_cm,
+        fit, coverage=float(np.mean(inside)), map_median_cm=map_cm, mean_median_cm=mean_cm,
         point_estimate="mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map",
         angular_velocity_sd_deg_s=process.sd_deg_s, angular_velocity_time_constant_s=process.time_constant_s,
     )
