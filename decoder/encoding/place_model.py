@@ -20,9 +20,9 @@ import numpy as np
 from scipy import ndimage
 
 from decoder.encoding.calibration import TemperatureFit, fit_drift, fit_temperature
-from decoder.encoding.heading_motion import choose_heading_velocity
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
+from decoder.encoding.heading_motion import choose_heading_velocity
 from decoder.encoding.held_out import HeldOutSpikes
 from decoder.encoding.model_file import (
     FORMAT_NAME,

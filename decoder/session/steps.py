@@ -43,7 +43,9 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     after the model's fit), the point estimate chosen with that fit
     (``PlaceModel.point_estimate``) as the steps' decoded position, and the
     drift of the walk towards the decoded velocity fitted with it
-    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain); the
+    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain), or on
+    a heading ring without a drift the joint state of heading and angular
+    velocity the same fit chose (``encoding.heading_motion``); the
     sliding window reports the MAP. A model without a learned movement model (saved
     by an earlier version) falls back to ``random_walk_sd_cm`` and the
     default jump, one that cannot fit a temperature to 1 and the MAP, each with a warning.
