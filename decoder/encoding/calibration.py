@@ -72,6 +72,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
+from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
 
@@ -154,6 +155,10 @@ class TemperatureFit:
     with_marks : bool
         Whether the held-out steps were decoded with their waveform marks
         (``fold_mark_terms``); False in model files written before.
+    angular_velocity_sd_deg_s, angular_velocity_time_constant_s : float
+        On a heading ring, the joint state of heading and angular velocity
+        the filter decodes with (``decoder.encoding.heading_motion``); an
+        s.d. of 0 is the plain walk.
     """
 
     temperature: float
@@ -167,6 +172,8 @@ class TemperatureFit:
     drift_gain: float = 0.0
     velocity_time_constant_s: float = 1.0
     with_marks: bool = False
+    angular_velocity_sd_deg_s: float = 0.0
+    angular_velocity_time_constant_s: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -425,14 +432,16 @@ def _check_mark_terms(fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] |
 def _decoded_steps(
     fold_rate_maps_hz: Sequence[np.ndarray], fired: list[list[tuple[np.ndarray, np.ndarray]]], step_s: float,
     walk: RandomWalk, uniform_weight: float, temperature: float, rate_floor_hz: float, drift_gain: float,
-    velocity_time_constant_s: float, fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None,
+    velocity_time_constant_s: float, fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
+    heading_velocity: HeadingVelocity | None = None,
 ) -> Iterator[DecodedStep]:
     """Every held-out step decoded by the filter, fold after fold, each fold from a fresh decoder."""
     for k, (rates, steps) in enumerate(zip(fold_rate_maps_hz, fired)):
         decoder = BayesDecoder(
             rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
             uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
-            drift_gain=drift_gain, velocity_time_constant_s=velocity_time_constant_s, backend=walk.backend,
+            drift_gain=drift_gain, velocity_time_constant_s=velocity_time_constant_s,
+            heading_velocity=heading_velocity, backend=walk.backend,
         )
         if fold_mark_terms is None:
             for rows, counts in steps:

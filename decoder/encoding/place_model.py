@@ -22,6 +22,7 @@ from scipy import ndimage
 from decoder.encoding.calibration import TemperatureFit, fit_drift, fit_temperature
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
+from decoder.encoding.heading_motion import choose_heading_velocity
 from decoder.encoding.held_out import HeldOutSpikes
 from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.model_file import (
@@ -413,6 +414,8 @@ class PlaceModel(OnlineCounts):
         if drift.gain > 0:
             fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
                                   drift=drift, near=fit, **common)
+        fit = choose_heading_velocity(fit, fold_maps, fold_counts, fold_xy, step_s, walk, *self.movement_frames(),
+                                      **common)
         logger.info(
             "likelihood temperature %.2f for %g s steps%s: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
             "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f); drift gain %.2f on the decoded "

@@ -689,6 +689,163 @@ def predict_dense_numpy(p, transition, out):
 
 
 # ---------------------------------------------------------------------------
+# Heading and angular velocity: the joint state of the heading ring
+# ---------------------------------------------------------------------------
+
+
+@numba.njit(cache=True)
+def predict_heading_velocity(joint, velocity_transition, shift_bins, valid, joint_predicted, out):
+    """One step of the joint state of heading and angular velocity; ``out`` receives the heading's marginal.
+
+    The state is a heading bin ``i`` of ``n`` around the ring and an
+    angular-velocity bin ``a`` of ``m``, flattened ``i * m + a``. One step
+    first moves the velocity, ``a -> b`` with probability
+    ``velocity_transition[a, b]`` (a discretised Ornstein-Uhlenbeck
+    process), then turns the heading by the new velocity's ``shift_bins[b]``
+    bins: the mass of bin ``i`` goes to ``i + k`` and ``i + k + 1`` (modulo
+    ``n``) in the shares ``1 - f`` and ``f``, ``k + f = shift_bins[b]``,
+    which is the exact move of a heading spread evenly over its bin (the
+    constant-velocity model of target tracking, Bar-Shalom, Li and
+    Kirubarajan 2001, ch. 6, on a ring of bins). Invalid heading bins get
+    no mass.
+
+    Parameters
+    ----------
+    joint : ndarray, shape (n * m,), float64
+        The last posterior over the joint state.
+    velocity_transition : ndarray, shape (m, m), float64, C-contiguous
+        Row-stochastic.
+    shift_bins : ndarray, shape (m,), float64
+        Heading turn per step of each velocity bin, in bins (signed).
+    valid : ndarray, shape (n,), bool
+    joint_predicted : ndarray, shape (n * m,), float64
+        Receives the predicted joint state.
+    out : ndarray, shape (n,), float64
+        Receives the predicted heading marginal, ``sum_b joint_predicted[i * m + b]``.
+
+    Returns
+    -------
+    out : ndarray, shape (n,)
+    """
+    n, m = out.shape[0], shift_bins.shape[0]
+    for x in range(n * m):
+        joint_predicted[x] = 0.0
+    moved = np.empty(m)
+    for i in range(n):
+        base = i * m
+        any_mass = False
+        for a in range(m):
+            if joint[base + a] != 0.0:
+                any_mass = True
+                break
+        if not any_mass:
+            continue
+        for b in range(m):
+            moved[b] = 0.0
+        for a in range(m):
+            w = joint[base + a]
+            if w == 0.0:
+                continue
+            row = velocity_transition[a]
+            for b in range(m):
+                moved[b] += w * row[b]
+        for b in range(m):
+            k = math.floor(shift_bins[b])
+            f = shift_bins[b] - k
+            j0 = (i + k) % n
+            j1 = (j0 + 1) % n
+            joint_predicted[j0 * m + b] += (1.0 - f) * moved[b]
+            joint_predicted[j1 * m + b] += f * moved[b]
+    for j in range(n):
+        s = 0.0
+        if valid[j]:
+            for b in range(m):
+                s += joint_predicted[j * m + b]
+        else:
+            for b in range(m):
+                joint_predicted[j * m + b] = 0.0
+        out[j] = s
+    return out
+
+
+def predict_heading_velocity_numpy(joint, velocity_transition, shift_bins, valid, joint_predicted, out):
+    """Numpy twin of :func:`predict_heading_velocity`."""
+    n, m = out.shape[0], shift_bins.shape[0]
+    with np.errstate(under="ignore"):
+        moved = joint.reshape(n, m) @ velocity_transition
+    k = np.floor(shift_bins).astype(np.int64)
+    f = shift_bins - k
+    columns = np.arange(m)
+    rows = np.arange(n)[:, None]
+    pred = np.zeros((n, m))
+    np.add.at(pred, ((rows + k[None, :]) % n, columns[None, :]), (1.0 - f)[None, :] * moved)
+    np.add.at(pred, ((rows + k[None, :] + 1) % n, columns[None, :]), f[None, :] * moved)
+    pred[~valid] = 0.0
+    joint_predicted[:] = pred.ravel()
+    out[:] = pred.sum(axis=1)
+    return out
+
+
+@numba.njit(cache=True)
+def carry_heading_velocity(posterior, joint_predicted, velocity_prior, predicted_used, uniform_weight, uniform_level,
+                           joint):
+    """The joint state's posterior from the heading's: ``joint[i, b] = posterior[i] * prior(b | i)``.
+
+    The likelihood depends on the heading only, so conditioning on the
+    spikes leaves the velocity's distribution at each heading as the prior
+    had it: the prediction mixed with the uniform jump (whose velocity is
+    drawn from ``velocity_prior``), normalised per heading bin. Where the
+    window was decoded without the prediction (the first step, or the
+    prediction underflowed) or the prior had no mass, the velocity is
+    ``velocity_prior``.
+
+    Parameters
+    ----------
+    posterior : ndarray, shape (n,), float64
+    joint_predicted : ndarray, shape (n * m,), float64
+        From :func:`predict_heading_velocity`.
+    velocity_prior : ndarray, shape (m,), float64
+        Sums to 1.
+    predicted_used : bool
+    uniform_weight, uniform_level : float
+        As in :func:`decode_step`.
+    joint : ndarray, shape (n * m,), float64
+        Receives the joint posterior.
+    """
+    n, m = posterior.shape[0], velocity_prior.shape[0]
+    keep = 1.0 - uniform_weight
+    for j in range(n):
+        p = posterior[j]
+        base = j * m
+        s = 0.0
+        if predicted_used and p != 0.0:
+            for b in range(m):
+                s += keep * joint_predicted[base + b] + uniform_level * velocity_prior[b]
+        if s > 0.0:
+            scale = p / s
+            for b in range(m):
+                joint[base + b] = scale * (keep * joint_predicted[base + b] + uniform_level * velocity_prior[b])
+        else:
+            for b in range(m):
+                joint[base + b] = p * velocity_prior[b]
+
+
+def carry_heading_velocity_numpy(posterior, joint_predicted, velocity_prior, predicted_used, uniform_weight,
+                                 uniform_level, joint):
+    """Numpy twin of :func:`carry_heading_velocity`."""
+    n, m = posterior.shape[0], velocity_prior.shape[0]
+    fresh = posterior[:, None] * velocity_prior[None, :]
+    if not predicted_used:
+        joint[:] = fresh.ravel()
+        return
+    prior = (1.0 - uniform_weight) * joint_predicted.reshape(n, m) + uniform_level * velocity_prior[None, :]
+    total = prior.sum(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore", under="ignore"):
+        carried = np.where((total > 0.0)[:, None], posterior[:, None] * prior / total[:, None], fresh)
+    joint[:] = np.where((posterior == 0.0)[:, None], 0.0, carried).ravel()
+
+
+# ---------------------------------------------------------------------------
 # Drift: the walk tilted towards the decoded velocity
 # ---------------------------------------------------------------------------
 
@@ -1164,8 +1321,10 @@ def zone_mass_numpy(p, zone_start, zone_bins, out):
 LIKELIHOOD_REFRESH_STEPS = 32
 
 #: ``transition_kind`` of :func:`decode_step`: uniform prior at every step,
-#: separable random walk on a grid, dense transition matrix.
-NO_TRANSITION, GRID_TRANSITION, DENSE_TRANSITION = 0, 1, 2
+#: separable random walk on a grid, dense transition matrix, the joint state
+#: of heading and angular velocity on the heading ring
+#: (:func:`predict_heading_velocity`).
+NO_TRANSITION, GRID_TRANSITION, DENSE_TRANSITION, VELOCITY_TRANSITION = 0, 1, 2, 3
 
 #: Slots of the int64 ``state`` vector of :func:`decode_step`: updates since
 #: the last exact log-likelihood (-1: compute it afresh at the next step),
@@ -1356,7 +1515,15 @@ def decode_step(
     uniform_level : float
         ``uniform_weight / n_valid``.
     transition_kind : int
-        ``NO_TRANSITION``, ``GRID_TRANSITION`` or ``DENSE_TRANSITION``.
+        ``NO_TRANSITION``, ``GRID_TRANSITION``, ``DENSE_TRANSITION`` or
+        ``VELOCITY_TRANSITION``. The last keeps a joint state of heading and
+        angular velocity (``m`` velocity bins) in arguments the other kinds
+        use otherwise: ``transition`` is the velocity's transition (m, m),
+        ``kernel_1d`` the heading turn per step of each velocity bin in bins
+        (m,), ``mask_f`` the velocity's prior (m,), ``inv_norm`` the joint
+        posterior (n_bins * m,), kept between calls like ``log_like``, and
+        ``grid_scratch`` the joint prediction (n_bins * m,), overwritten
+        (:func:`predict_heading_velocity`, :func:`carry_heading_velocity`).
     ny, nx : int
         Grid shape (``1, n_bins`` for an environment that is not a grid).
     kernel_1d, mask_f, inv_norm : ndarray, float64
@@ -1505,6 +1672,9 @@ def _decode_counts(
         else:
             predict_dense(previous[:n_bins], transition, predicted)
         prior = predicted
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == VELOCITY_TRANSITION:
+        predict_heading_velocity(inv_norm, transition, kernel_1d, valid, grid_scratch, predicted)
+        prior = predicted
     if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
         # The uniform jump gives every valid bin prior mass: weigh them all.
         _mix_uniform(predicted, y0 * nx, (y1 + 1) * nx, uniform_weight, uniform_level, valid)
@@ -1528,6 +1698,9 @@ def _decode_counts(
     y0, y1 = _support_rows(post, nx, y0, y1)
     if drifting:
         update_velocity(drift, mean_x, mean_y)
+    if transition_kind == VELOCITY_TRANSITION:
+        used = state[STATE_HAS_PREVIOUS] == 1 and status == STEP_OK
+        carry_heading_velocity(post, grid_scratch, mask_f, used, uniform_weight, uniform_level, inv_norm)
     if transition_kind != NO_TRANSITION:
         state[STATE_HAS_PREVIOUS] = 1
         state[STATE_Y0] = y0
@@ -1614,6 +1787,8 @@ def decode_step_numpy(
         )
     elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == DENSE_TRANSITION:
         prior = predict_dense_numpy(previous[:n_bins], transition, predicted)
+    elif state[STATE_HAS_PREVIOUS] == 1 and transition_kind == VELOCITY_TRANSITION:
+        prior = predict_heading_velocity_numpy(inv_norm, transition, kernel_1d, valid, grid_scratch, predicted)
     if uniform_weight > 0.0 and state[STATE_HAS_PREVIOUS] == 1 and transition_kind != NO_TRANSITION:
         prior = np.where(valid, (1.0 - uniform_weight) * prior + uniform_level, 0.0)
     post = out[:n_bins]
@@ -1621,6 +1796,9 @@ def decode_step_numpy(
     if not posterior_from_log_numpy(log_like, prior, valid, post, _prob_floor(uniform_weight, uniform_level)):
         status = STEP_UNDERFLOW
         posterior_from_log_numpy(log_like, uniform, valid, post)
+    if transition_kind == VELOCITY_TRANSITION:
+        used = state[STATE_HAS_PREVIOUS] == 1 and status == STEP_OK
+        carry_heading_velocity_numpy(post, grid_scratch, mask_f, used, uniform_weight, uniform_level, inv_norm)
     if transition_kind != NO_TRANSITION:
         # Every row of the grid, a band outside which the posterior is 0.
         state[STATE_HAS_PREVIOUS:] = (1, 0, ny - 1)

@@ -30,8 +30,10 @@ import numpy as np
 
 from decoder.inference import _kernels
 from decoder.inference.checks import bin_mask, kernel_set, positive_finite
+from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
+from decoder.space.headings import HeadingRing
 
 logger = logging.getLogger(__name__)
 
@@ -157,6 +159,13 @@ class BayesDecoder:
         exponentially, never the tracker's.
     velocity_time_constant_s : float, default 1.0
         Time constant of that average (s of data time).
+    heading_velocity : HeadingVelocity, optional
+        On a heading ring with ``"state_space"``: the filter's state is
+        heading and angular velocity together, the velocity this
+        Ornstein-Uhlenbeck process and the heading turning by it
+        (``decoder.inference.heading_velocity``), in place of the random
+        walk; the posterior reported is the heading's (the joint state's
+        marginal). Not with a drift.
     zone_masks : ndarray of bool, shape (n_zones, n_bins), optional
         Bins of each target zone; the posterior mass in each is reported.
     rate_floor_hz : float, default 0.01
@@ -204,6 +213,7 @@ class BayesDecoder:
         likelihood_temperature: float = 1.0,
         drift_gain: float = 0.0,
         velocity_time_constant_s: float = 1.0,
+        heading_velocity: HeadingVelocity | None = None,
         zone_masks: np.ndarray | None = None,
         rate_floor_hz: float = 0.01,
         point_estimate: str = "map",
@@ -231,6 +241,16 @@ class BayesDecoder:
             raise ValueError(f"drift_gain must be a number in [0, 1], got {drift_gain!r}")
         self.drift_gain = float(drift_gain)
         self.velocity_time_constant_s = positive_finite("velocity_time_constant_s", velocity_time_constant_s)
+        if heading_velocity is not None and not (
+            isinstance(heading_velocity, HeadingVelocity) and isinstance(environment, HeadingRing)
+            and prior == "state_space" and self.drift_gain == 0.0
+        ):
+            raise ValueError(
+                "heading_velocity must be a HeadingVelocity, for a heading ring decoded with the state-space "
+                f"prior and no drift; got {heading_velocity!r} with {type(environment).__name__}, prior {prior!r} "
+                f"and drift_gain {self.drift_gain:g}"
+            )
+        self.heading_velocity = heading_velocity
         if point_estimate not in POINT_ESTIMATES:
             raise ValueError(f"point_estimate must be one of {POINT_ESTIMATES}, got {point_estimate!r}")
         self.point_estimate = point_estimate
@@ -297,8 +317,15 @@ class BayesDecoder:
         # ``_state``, ``_unit_counts`` and ``_log_like``.
         walk = self.transition
         walk_arrays, dense = (np.zeros(1),) * 3, np.zeros((1, 1))
+        joint_predicted = None
         if walk is None:
             kind = _kernels.NO_TRANSITION
+        elif heading_velocity is not None:
+            # The joint state's arrays ride in the walk's slots (see _kernels.decode_step).
+            _, dense, velocity_prior, shift_bins = heading_velocity.discretised(self.window_s, environment.bin_cm)
+            joint = np.zeros(n_bins * velocity_prior.size)
+            kind, walk_arrays = _kernels.VELOCITY_TRANSITION, (shift_bins, velocity_prior, joint)
+            joint_predicted = np.zeros(joint.size)
         elif walk._transition is None:
             kind, walk_arrays = _kernels.GRID_TRANSITION, (walk._kernel_1d, walk._mask_f, walk._inv_norm)
         else:
@@ -346,7 +373,7 @@ class BayesDecoder:
             np.empty(n_bins),  # scratch
             # grid_scratch: two copies of the grid padded by the walk's reach
             # (zeros: padding that is never written must hold numbers)
-            np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach)),
+            np.zeros((2 * ny + 2 * reach) * (nx + 2 * reach)) if joint_predicted is None else joint_predicted,
         )
         self._out_size = n_bins + 4 + self.n_zones
         # The last posterior's own buffer (posterior, MAP and mean centres,

@@ -15,6 +15,7 @@ import math
 import numpy as np
 
 from decoder.config import DecoderSettings
+from decoder.encoding.heading_motion import heading_velocity_of
 from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.movement import default_uniform_weight
 from decoder.encoding.place_model import PlaceModel
@@ -43,7 +44,9 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     after the model's fit), the point estimate chosen with that fit
     (``PlaceModel.point_estimate``) as the steps' decoded position, and the
     drift of the walk towards the decoded velocity fitted with it
-    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain); the
+    (``PlaceModel.drift``; ``settings.drift_gain`` overrides its gain), or on
+    a heading ring without a drift the joint state of heading and angular
+    velocity the same fit chose (``encoding.heading_motion``); the
     sliding window reports the MAP. With ``marks`` the filter's temperature,
     point estimate and drift are fitted afresh on held-out steps decoded
     with their waveform marks as well (``PlaceModel.calibrate``), since the
@@ -97,10 +100,12 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         temperature = temperature or 1.0
     if settings.drift_gain is not None:
         drift_gain = settings.drift_gain
+    heading_velocity = heading_velocity_of(model.temperature_fits_.get(settings.step_s)) if drift_gain == 0 else None
     return BayesDecoder(
         model.rate_maps_hz_, environment, model.visited_mask_, window_s=settings.step_s,
         random_walk_sd_cm=walk_sd_cm, uniform_weight=uniform_weight, likelihood_temperature=temperature,
-        drift_gain=drift_gain, velocity_time_constant_s=time_constant_s, point_estimate=point_estimate, **common,
+        drift_gain=drift_gain, velocity_time_constant_s=time_constant_s, heading_velocity=heading_velocity,
+        point_estimate=point_estimate, **common,
     )
 
 
@@ -131,6 +136,8 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
         "point_estimate": decoder.point_estimate,
         "drift_gain": decoder.drift_gain,
         "velocity_time_constant_s": decoder.velocity_time_constant_s,
+        "angular_velocity_sd_deg_s": getattr(decoder.heading_velocity, "sd_deg_s", 0.0),
+        "angular_velocity_time_constant_s": getattr(decoder.heading_velocity, "time_constant_s", 0.0),
     }
     fit = model.temperature_fits_.get(decoder.window_s)
     if fit is not None:

@@ -1,0 +1,214 @@
+"""The head's turning learned from the tracked heading, and whether the filter should carry it.
+
+On a heading ring the filter may keep the angular velocity in its state
+(``decoder.inference.heading_velocity``): the velocity an Ornstein-Uhlenbeck
+process of stationary s.d. ``sigma`` and correlation time ``tau``, the
+heading its integral. :func:`fit_heading_velocity` learns both from the
+tracked heading of the learning period. A velocity from consecutive frames
+would drown in the tracker's noise (3 degrees of noise at 50 Hz is over
+200 deg/s of velocity noise), so the fit uses the growth of the heading's
+displacement variance with the lag instead, which for an integrated
+Ornstein-Uhlenbeck velocity is
+
+    var(L) = c + 2 sigma^2 tau^2 (L / tau - 1 + exp(-L / tau)),
+
+``c`` twice the tracker's noise variance (Uhlenbeck and Ornstein 1930; from
+memory): ballistic (``sigma^2 L^2``) at lags well under ``tau``,
+diffusive (``2 sigma^2 tau L``) well over it.
+
+:func:`choose_heading_velocity` decodes the held-out learning steps with
+the joint state at the plain walk's temperature and keeps it only if its
+held-out median error beats the plain walk's by ``MIN_GAIN`` (the drift's
+rule, ``calibration.fit_drift``, with a smaller margin); the temperature
+is not refitted for it.
+
+References
+----------
+Uhlenbeck GE, Ornstein LS (1930). On the theory of the Brownian motion.
+Phys Rev 36:823-841.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+from collections.abc import Sequence
+
+import numpy as np
+from scipy import optimize
+
+from decoder.encoding.calibration import (
+    _MEAN_MARGIN,
+    TemperatureFit,
+    _decoded_steps,
+    _fired,
+    _point_medians_cm,
+    _unscored,
+)
+from decoder.inference.decoding import HPD_MASS
+from decoder.inference.heading_velocity import HeadingVelocity
+from decoder.inference.random_walk import RandomWalk
+from decoder.space.headings import HeadingRing, angle_difference_deg
+
+logger = logging.getLogger(__name__)
+
+#: Displacements are taken at lags of one frame up to this (s): a few
+#: correlation times of a rodent's head turning (0.1-0.5 s, common practice),
+#: short enough that a displacement stays well under half a turn.
+MAX_LAG_S = 1.0
+
+#: Fewest displacements at a lag for its variance to be used.
+MIN_DISPLACEMENTS = 200
+
+#: Share of the largest displacements left out of each variance (swapped LEDs, outliers).
+TRIM_FRACTION = 0.01
+
+#: The joint state is kept only if it lowers the held-out median error by
+#: more than this share. Smaller than the drift's margin
+#: (``calibration._DRIFT_MIN_GAIN``, 5 %): the process is learned from the
+#: tracker, not tuned on the held-out steps, so they decide one yes or no;
+#: and they are scored against the tracker's own noisy heading, whose
+#: error adds to both medians and shrinks their relative difference (on the
+#: heading scenario 3.5 % held out for 8 % against the true heading).
+MIN_GAIN = 0.02
+
+
+def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> HeadingVelocity:
+    """The Ornstein-Uhlenbeck angular velocity whose integral moves like the tracked heading.
+
+    Parameters
+    ----------
+    times_s : array_like of float64, shape (n,)
+        Frame times, strictly increasing, data time.
+    heading_deg : array_like of float64, shape (n,)
+        Tracked heading in degrees (any turn; NaN for a frame without one).
+
+    Returns
+    -------
+    HeadingVelocity
+
+    Raises
+    ------
+    ValueError
+        For arrays of different shapes, times that do not increase, too few
+        frames with a heading, or a heading that never turns.
+    """
+    t = np.asarray(times_s, dtype=np.float64)
+    h = np.asarray(heading_deg, dtype=np.float64)
+    if t.ndim != 1 or h.shape != t.shape:
+        raise ValueError(f"times_s and heading_deg must have the same shape (n,); got {t.shape} and {h.shape}")
+    if not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
+        raise ValueError("times_s must be finite and strictly increasing; sort the frames and drop repeats")
+    ok = np.isfinite(h)
+    t, h = t[ok], h[ok]
+    if t.size <= MIN_DISPLACEMENTS:
+        raise ValueError(f"only {t.size} frames with a heading; at least {MIN_DISPLACEMENTS + 1} are needed "
+                         "to learn how the head turns")
+    frame_s = float(np.median(np.diff(t)))
+    lags_s, variances = [], []
+    for lag in range(1, max(2, round(MAX_LAG_S / frame_s)) + 1):
+        if t.size - lag < MIN_DISPLACEMENTS:
+            break
+        turned = angle_difference_deg(h[lag:], h[:-lag])
+        size = np.abs(turned)
+        kept = turned[size <= np.quantile(size, 1.0 - TRIM_FRACTION)]
+        lags_s.append(float(np.median(t[lag:] - t[:-lag])))
+        variances.append(float(np.mean(kept**2)))
+    lags, var = np.array(lags_s), np.array(variances)
+    if lags.size < 3 or not var[-1] > 0:
+        raise ValueError("the tracked heading never turns, or too few frames; check the tracker's heading")
+
+    def model(params: np.ndarray) -> np.ndarray:
+        log_sd, log_tau, noise = params
+        sd2, tau = math.exp(2 * log_sd), math.exp(log_tau)
+        return noise**2 + 2.0 * sd2 * tau**2 * (lags / tau + np.expm1(-lags / tau))
+
+    # Relative residuals: the short lags, which hold the velocity, weigh as much as the long ones.
+    start = np.array([math.log(math.sqrt(var[-1] / lags[-1])), math.log(0.3), math.sqrt(var[0] / 2)])
+    fit = optimize.least_squares(lambda p: model(p) / var - 1.0, start, method="lm")
+    log_sd, log_tau, _ = fit.x
+    return HeadingVelocity(sd_deg_s=math.exp(log_sd), time_constant_s=math.exp(log_tau))
+
+
+def heading_velocity_of(fit: TemperatureFit | None) -> HeadingVelocity | None:
+    """The joint state a fit chose (:func:`choose_heading_velocity`), or None for the plain walk."""
+    if fit is None or not fit.angular_velocity_sd_deg_s > 0:
+        return None
+    return HeadingVelocity(fit.angular_velocity_sd_deg_s, fit.angular_velocity_time_constant_s)
+
+
+def choose_heading_velocity(
+    fit: TemperatureFit,
+    fold_rate_maps_hz: Sequence[np.ndarray],
+    fold_counts: Sequence[np.ndarray],
+    fold_true_xy_cm: Sequence[np.ndarray],
+    step_s: float,
+    walk: RandomWalk,
+    frame_t_s: np.ndarray,
+    frame_xy_cm: np.ndarray,
+    *,
+    uniform_weight: float,
+    rate_floor_hz: float = 0.01,
+    fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
+) -> TemperatureFit:
+    """``fit`` with the joint state of heading and angular velocity, if that decodes the held-out steps better.
+
+    On a heading ring with no drift, the velocity process is learned from
+    the tracked frames (:func:`fit_heading_velocity`) and the held-out
+    blocks are decoded with it at ``fit.temperature``, one pass; if the
+    better point estimate's median error is below the plain walk's by more
+    than ``MIN_GAIN``, the returned
+    fit carries the process (``angular_velocity_sd_deg_s``,
+    ``angular_velocity_time_constant_s``), the medians and the point
+    estimate chosen by ``calibration``'s rule, and the held-out 95 % HPD
+    coverage with the joint state (at the plain walk's temperature, which
+    is not refitted: ``coverage`` is then what the session decodes with,
+    not what the temperature was fitted to). Otherwise ``fit`` itself.
+
+    Parameters
+    ----------
+    fit : TemperatureFit
+        The plain walk's fit, with its held-out medians.
+    fold_rate_maps_hz, fold_counts, fold_true_xy_cm, step_s, walk, uniform_weight, rate_floor_hz, fold_mark_terms
+        As in ``calibration.fit_drift``.
+    frame_t_s : ndarray of float64, shape (n,)
+    frame_xy_cm : ndarray of float64, shape (n, 2)
+        The learning period's tracked headings as ring points (NaN rows lost).
+
+    Returns
+    -------
+    TemperatureFit
+    """
+    env = walk.environment
+    plain_cm = min(fit.map_median_cm, fit.mean_median_cm)
+    if not isinstance(env, HeadingRing) or fit.drift_gain > 0 or not math.isfinite(plain_cm):
+        return fit
+    try:
+        process = fit_heading_velocity(frame_t_s, env.linearize(frame_xy_cm))
+    except ValueError as exc:
+        logger.info("no angular velocity learned (%s); the filter keeps the plain walk", exc)
+        return fit
+    truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
+    true_bins = env.bin_index(truth).tolist()
+    points, inside = [], []
+    for step, true_bin in zip(_decoded_steps(fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight,
+                                             fit.temperature, rate_floor_hz, 0.0, 1.0, fold_mark_terms,
+                                             heading_velocity=process),
+                              true_bins):
+        points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
+        if true_bin >= 0:
+            # The HPD region holds the true bin when the bins more probable than it hold less than its mass
+            # (calibration.fit_temperature's count).
+            p = step.posterior
+            inside.append(bool(p[p > p[true_bin]].sum() < HPD_MASS))
+    map_cm, mean_cm = _point_medians_cm(env, np.array(points), truth)
+    logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
+                process.sd_deg_s, process.time_constant_s, min(map_cm, mean_cm), plain_cm)
+    if not min(map_cm, mean_cm) < plain_cm * (1.0 - MIN_GAIN):
+        return fit
+    return dataclasses.replace(
+        fit, coverage=float(np.mean(inside)), map_median_cm=map_cm, mean_median_cm=mean_cm,
+        point_estimate="mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map",
+        angular_velocity_sd_deg_s=process.sd_deg_s, angular_velocity_time_constant_s=process.time_constant_s,
+    )
