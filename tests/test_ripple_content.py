@@ -85,6 +85,33 @@ def test_rank_correlation_counts_ties_as_tau_b_does_and_shrugs_off_one_far_bin()
     assert m.rank_correlation()[0] < -0.55 and m.line()[0][0] > -0.4
 
 
+def test_the_rank_correlations_z_score_is_scipys_normal_approximation():
+    # scipy.stats.kendalltau(method="asymptotic") tests tau-b with the normal approximation of Kendall's
+    # S, its variance corrected for ties (Kendall 1948, Rank Correlation Methods); its two-sided p value
+    # is 2 sf(|z|), so |z| = isf(p / 2). Random posteriors (no ties), and one-hot ones (ties), 3 to 12 bins
+    # (scipy's tie term divides by n - 2).
+    rng = np.random.default_rng(11)
+    dist = zone_distances_cm(TRACK, END)
+    for one_hot in (False, True):
+        m = SequenceMeasures(END, dist)
+        times = 0.0075 + 0.015 * np.arange(12)
+        d = []
+        for k, t in enumerate(times):
+            p = np.eye(N_BINS)[rng.integers(8, 14)] if one_hot else rng.dirichlet(np.full(N_BINS, 0.3))
+            m.add(t, p)
+            d.append(dist[0] @ p)
+            if k == 0:
+                assert np.isnan(m.rank_z()[0])
+            if k < 2:
+                continue
+            if np.all(np.array(d) == d[0]):
+                assert np.isnan(m.rank_z()[0])
+                continue
+            ref = stats.kendalltau(times[:k + 1], d, method="asymptotic")
+            want = np.sign(ref.statistic) * stats.norm.isf(ref.pvalue / 2)
+            assert m.rank_z()[0] == pytest.approx(want, abs=1e-6)
+
+
 def test_zone_distances_follow_the_track():
     d = zone_distances_cm(TRACK, END)[0]
     x = TRACK.bin_centers_cm[:, 0]

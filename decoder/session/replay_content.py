@@ -174,6 +174,29 @@ class SequenceMeasures:
             tau = np.where(n0 - self._ties > 0, self._concordance / np.sqrt(n0 * (n0 - self._ties)), np.nan)
         return tau
 
+    def rank_z(self) -> np.ndarray:
+        """The evidence behind :meth:`rank_correlation`: its normal approximation's z score, shape (n_zones,).
+
+        ``z = S / sqrt(var(S))`` with the variance of ``S`` under independence
+        corrected for ties in the mean distances (Kendall 1948, Rank
+        Correlation Methods; times have none): ``var(S) = (n (n - 1) (2n + 5)
+        - sum_g t_g (t_g - 1) (2 t_g + 5)) / 18`` over the groups of ``t_g``
+        equal values. Its sign is the correlation's; its size grows with the
+        bins that agree, so a threshold on it asks more of few bins than of
+        many. NaN before two bins, or where every mean distance is the same.
+        """
+        n = self.n_bins
+        if n < 2:
+            return np.full(self._concordance.shape, np.nan)
+        tie_term = np.zeros(self._concordance.shape)
+        if self._ties.any():
+            for z in np.flatnonzero(self._ties):
+                _, t = np.unique(np.array(self._means)[:, z], return_counts=True)
+                tie_term[z] = np.sum(t * (t - 1.0) * (2.0 * t + 5.0))
+        var = (n * (n - 1.0) * (2.0 * n + 5.0) - tie_term) / 18.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(var > 0, self._concordance / np.sqrt(var), np.nan)
+
     @property
     def mean_mass(self) -> np.ndarray:
         """Posterior mass in each zone averaged over the event's bins so far, shape (n_zones,)."""
@@ -225,6 +248,9 @@ class ContentBin(NamedTuple):
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
         Weighted correlation of time and distance to each zone over the bins
         so far, and the fitted line's slope (negative: moving towards the zone).
+    rank_z : ndarray of float64, shape (n_zones,)
+        The z score of ``rank_correlation`` (:meth:`SequenceMeasures.rank_z`):
+        the evidence the sequence rules ask of it.
     """
 
     t_s: float
@@ -239,6 +265,7 @@ class ContentBin(NamedTuple):
     rank_correlation: np.ndarray
     correlation: np.ndarray
     slope_cm_s: np.ndarray
+    rank_z: np.ndarray
 
 
 class ReplayContent:
@@ -412,4 +439,4 @@ class ReplayContent:
             m.add(0.5 * (start + stop), step.posterior)
         r, slope = m.line()
         return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
-                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope)
+                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z())
