@@ -36,7 +36,7 @@ chunks of ``chunk_s`` as an acquisition system would:
   path at 300-600 cm/s, half of them ending at the goal well, the others
   between random points): a place model learned from the first
   ``--learn-s`` of running, then every ripple detected at rest decoded in
-  15 ms bins from the start of its population burst to its LFP offset
+  15 ms bins from 20 ms before its onset to its LFP offset
   (decoder.session.ripples, decoder.session.replay_content) and judged by
   one rule, "a sequence moving towards the goal" (within 12 cm of the well
   at (0, 80)). A replay's truth is the simulator's own record
@@ -265,7 +265,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     rate = settings.lfp.rate_hz
     ref = offline_ripples(x, rate)
     # A decision is known once its bin has ended and the ripple has been detected: the bins before
-    # the detection (from the population burst's start) are decoded at the detection, not before.
+    # the detection (from [ripples] content_lead_s before the onset) are decoded at the detection, not before.
     fired = np.array([max(e.t_s, detected_at[b.content.onset_s]) for b in bins for e in b.events])
     rows = []
     for rep in session.replay.replays:

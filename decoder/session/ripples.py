@@ -21,7 +21,7 @@ counted (``ripples_moving``) and reported, but judged by no rule.
 
 Once a model is installed (:meth:`RippleStream.install_model`), every ripple
 detected at rest also starts a candidate event whose content is decoded in
-short bins from its onset (``decoder.session.replay_content``), fed with the
+short bins from just before its onset (``decoder.session.replay_content``), fed with the
 spike source's spikes (:meth:`RippleStream.take_spikes`), each bin decoded
 once the spikes' watermark has passed its end and the LFP its start
 (:meth:`RippleStream.content_due`, and after each chunk); the event ends at
@@ -217,7 +217,8 @@ class RippleStream:
         s = self.settings
         self.content = ReplayContent.for_model(model.rate_maps_hz_, environment, model.visited_mask_, zone_masks,
                                                bin_s=s.content_bin_s, max_event_s=s.content_max_s,
-                                               unit_ids=model.unit_ids_, rate_floor_hz=rate_floor_hz,
+                                               lead_s=s.content_lead_s, unit_ids=model.unit_ids_,
+                                               rate_floor_hz=rate_floor_hz,
                                                min_spikes=s.content_min_spikes)
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
