@@ -49,9 +49,9 @@ chunks of ``chunk_s`` as an acquisition system would:
   ``content_accuracy``: the share of the replays the offline reference found
   whose truth the rule matched (fired or stayed silent), with each class's
   share beside (``_towards``, ``_other``); ``content_decision_ms_p10/p50/p90``:
-  when it fired on a true sequence, ms after the offline onset, at the later
-  of the deciding bin's end and the ripple's detection (the bins before the
-  detection are decoded at it). ``--events`` prints each replay's truth,
+  when it fired on a true sequence, ms after the offline onset (an event's
+  time: the deciding bin's end, or the ripple's detection for a bin that
+  ended before it). ``--events`` prints each replay's truth,
   draw, approach and length, the decision and when, and the rank
   correlation and its z score bin by bin.
 
@@ -77,7 +77,7 @@ sys.path.insert(0, str(ROOT))
 from decoder.config import SafetyCaps, TriggerRule, load_config  # noqa: E402
 from decoder.encoding.place_model import PlaceModel  # noqa: E402
 from decoder.messages import Heartbeat, SpikeBatch, TrackerFrames  # noqa: E402
-from decoder.session.ripples import ContentOutput, RippleOutput, RippleStream  # noqa: E402
+from decoder.session.ripples import ContentOutput, RippleStream  # noqa: E402
 from decoder.session.tracking import TrackHistory  # noqa: E402
 from decoder.session.triggers import TriggerBank  # noqa: E402
 from decoder.signals._kernels import ripple_chunk, ripple_chunk_numpy  # noqa: E402
@@ -234,7 +234,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     bank.arm(0.0)
     tracked = TrackHistory()
     stream = RippleStream(config.ripples, bank, tracked)
-    lfp, bins, detected_at = [], [], {}
+    lfp, bins = [], []
     watermark = -np.inf
     learning = True
     for msg in session.messages(until_s=duration_s):
@@ -256,17 +256,11 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
             bins.extend(stream.content_due(watermark))
         elif isinstance(msg, LfpChunk):
             lfp.append(msg.samples_uv())
-            for out in stream.take(msg, watermark):
-                if isinstance(out, RippleOutput):
-                    detected_at[out.detection.onset_s] = out.t_s
-                elif isinstance(out, ContentOutput):
-                    bins.append(out)
+            bins.extend(out for out in stream.take(msg, watermark) if isinstance(out, ContentOutput))
     x = np.concatenate(lfp)
     rate = settings.lfp.rate_hz
     ref = offline_ripples(x, rate)
-    # A decision is known once its bin has ended and the ripple has been detected: the bins before
-    # the detection (from [ripples] content_lead_s before the onset) are decoded at the detection, not before.
-    fired = np.array([max(e.t_s, detected_at[b.content.onset_s]) for b in bins for e in b.events])
+    fired = np.array([e.t_s for b in bins for e in b.events])
     rows = []
     for rep in session.replay.replays:
         r = rep.ripple

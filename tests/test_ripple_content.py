@@ -349,6 +349,10 @@ def test_the_stream_decodes_each_ripple_and_fires_on_sequences_towards_the_zone(
         assert b.content.t_s == pytest.approx(b.content.start_s + 0.015 * (b.content.index + 1))
         # Bins start [ripples] content_lead_s before the onset.
         assert b.content.start_s == pytest.approx(b.content.onset_s - stream.settings.content_lead_s, abs=1e-12)
+        # A content event is stamped when it could be known: the bin's end, or the ripple's detection
+        # for a bin that ended before it (the bins before the onset are decoded at the detection).
+        for e in b.events:
+            assert e.t_s == max(b.content.t_s, offsets[b.content.onset_s].t_s)
     ends = {e.onset_s: e.offset_s for e in stream.events_}
     assert len(ends) == len(offsets) and all(np.isfinite(list(ends.values())))
     for b in bins:

@@ -223,7 +223,7 @@ class ContentBin(NamedTuple):
     Attributes
     ----------
     t_s : float
-        Data time of the bin's end (when it could be decoded at the earliest).
+        Data time of the bin's end (a bin that ended before the ripple's detection is decoded at it).
     onset_s : float
         The event's onset (its detection's threshold crossing; it names the event).
     start_s : float

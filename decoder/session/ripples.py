@@ -94,7 +94,8 @@ class ContentOutput(NamedTuple):
         Data time of the bin's end.
     content : ContentBin
     tracked_xy_cm : ndarray of float64, shape (2,)
-        The tracked position at ``t_s`` (NaN when unknown).
+        The tracked position when the bin was judged (NaN when unknown): at ``t_s``, or at the
+        ripple's detection for a bin that ended before it, which is also its events' time.
     events : tuple of TriggerEvent
     armed : bool
     """
@@ -121,7 +122,7 @@ class ContentEvent:
     decided : list of str
         The content rules that fired, in order (empty: none did).
     decision_s : float
-        Data time of the first content rule's event; NaN for none.
+        Data time of the first content rule's event (never before the detection); NaN for none.
     """
 
     onset_s: float
@@ -169,6 +170,7 @@ class RippleStream:
         self.content: ReplayContent | None = None
         self.events_: deque[ContentEvent] = deque(maxlen=EVENTS_KEPT)
         self._next_s = math.nan
+        self._detected_s = -math.inf
         self._hash = hashlib.sha256()
 
     def take(self, chunk: LfpChunk, watermark_s: float) -> list[RippleOutput | ContentOutput]:
@@ -234,17 +236,19 @@ class RippleStream:
         out = []
         h = self._hash
         for b in content.due(watermark_s, self._next_s):
-            x, y, speed = self.tracked.at_xy(b.t_s)
+            # A bin that ended before the ripple was detected is judged at the detection: its
+            # events carry the data time at which they could be known, never an earlier one.
+            t = max(b.t_s, self._detected_s)
+            x, y, speed = self.tracked.at_xy(t)
             xy = np.array((x, y))
-            lag = max(watermark_s - b.t_s, 0.0)
-            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed,
-                                             lag))
+            lag = max(watermark_s - t, 0.0)
+            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag))
             self.counters["content_bins"] += 1
             self.counters["events"] += len(events)
             record = self.events_[-1]
             record.n_bins += 1
             if events and not record.decided:
-                record.decision_s = b.t_s
+                record.decision_s = t
             record.decided = (record.decided or []) + [ev.rule for ev in events]
             h.update(struct.pack("<di", b.t_s, b.n_spikes))
             h.update(b.posterior.tobytes())
@@ -305,6 +309,7 @@ class RippleStream:
         else:
             if self.content is not None:
                 self.content.begin(d.onset_s)
+                self._detected_s = t
                 self.events_.append(ContentEvent(d.onset_s))
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
             events = tuple(self.bank.ripple(t, xy, speed, lag))
