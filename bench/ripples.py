@@ -36,19 +36,24 @@ chunks of ``chunk_s`` as an acquisition system would:
   path at 300-600 cm/s, half of them ending at the goal well, the others
   between random points): a place model learned from the first
   ``--learn-s`` of running, then every ripple detected at rest decoded in
-  15 ms bins from the start of its population burst to its LFP offset
+  15 ms bins from 20 ms before its onset to its LFP offset
   (decoder.session.ripples, decoder.session.replay_content) and judged by
   one rule, "a sequence moving towards the goal" (within 12 cm of the well
-  at (0, 80)). A replay's truth: its path's straight-line distance to the
-  goal shrinks by at least half the path's length. ``content_accuracy``: the
-  share of the replays the offline reference found whose truth the rule
-  matched (fired or stayed silent), with each class's share beside
-  (``_towards``, ``_other``); ``content_decision_ms_p10/p50/p90``: when it
-  fired on a true sequence, ms after the offline onset. The rule measures
-  distance along the maze, as the environment does; on a maze the two
-  truths part (a path down the far arm nears the goal along the track and
-  leaves it in a straight line), so the same figures are given for the
-  truth along the track (``content_accuracy_along_track``, ...).
+  at (0, 80)). A replay's truth is the simulator's own record
+  (``Replay.towards_goal``, rig_adapters.sim.replay_content): its path ends
+  nearer to the goal along the track, the metric the rule measures with, by
+  at least half the path's length. Not the draw (``to_goal``): a path between
+  random points moves towards the goal about half the time; and not a
+  straight line, which on a maze parts from the track (a path down the far
+  arm nears the goal along the track and leaves it in a straight line).
+  ``content_accuracy``: the share of the replays the offline reference found
+  whose truth the rule matched (fired or stayed silent), with each class's
+  share beside (``_towards``, ``_other``); ``content_decision_ms_p10/p50/p90``:
+  when it fired on a true sequence, ms after the offline onset (an event's
+  time: the deciding bin's end, or the ripple's detection for a bin that
+  ended before it). ``--events`` prints each replay's truth,
+  draw, approach and length, the decision and when, and the rank
+  correlation and its z score bin by bin.
 
 Bar (issue 14): detection_latency_ms_p50 <= 12 and below
 reference_latency_ms_p50, hit_rate >= 0.95, false_per_min <= 0.5,
@@ -72,7 +77,6 @@ sys.path.insert(0, str(ROOT))
 from decoder.config import SafetyCaps, TriggerRule, load_config  # noqa: E402
 from decoder.encoding.place_model import PlaceModel  # noqa: E402
 from decoder.messages import Heartbeat, SpikeBatch, TrackerFrames  # noqa: E402
-from decoder.session.replay_content import zone_distances_cm  # noqa: E402
 from decoder.session.ripples import ContentOutput, RippleStream  # noqa: E402
 from decoder.session.tracking import TrackHistory  # noqa: E402
 from decoder.session.triggers import TriggerBank  # noqa: E402
@@ -213,7 +217,7 @@ GOAL_CM, GOAL_RADIUS_CM = (0.0, 80.0), 12.0
 
 
 def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
-                place_cells: int) -> dict:
+                place_cells: int, show_events: bool = False) -> dict:
     """Replay content on the W maze: the towards-the-goal rule against the simulator's truth."""
     config = load_config(ROOT / "configs" / "w_maze_ripples.toml")
     env = config.environment
@@ -230,7 +234,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     bank.arm(0.0)
     tracked = TrackHistory()
     stream = RippleStream(config.ripples, bank, tracked)
-    lfp, fired = [], []
+    lfp, bins = [], []
     watermark = -np.inf
     learning = True
     for msg in session.messages(until_s=duration_s):
@@ -249,20 +253,15 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                     model.update_spikes(msg.t_s, msg.unit_id)
                 else:
                     stream.take_spikes(msg.t_s, msg.unit_id)
-            for b in stream.content_due(watermark):
-                fired.extend(e.t_s for e in b.events)
+            bins.extend(stream.content_due(watermark))
         elif isinstance(msg, LfpChunk):
             lfp.append(msg.samples_uv())
-            for out in stream.take(msg, watermark):
-                if isinstance(out, ContentOutput):
-                    fired.extend(e.t_s for e in out.events)
+            bins.extend(out for out in stream.take(msg, watermark) if isinstance(out, ContentOutput))
     x = np.concatenate(lfp)
     rate = settings.lfp.rate_hz
     ref = offline_ripples(x, rate)
-    fired = np.array(fired)
-    goal_xy = np.array(GOAL_CM)
-    along = zone_distances_cm(env, masks)[0]
-    truths: dict[str, list[tuple[bool, bool, float]]] = {"": [], "_along_track": []}
+    fired = np.array([e.t_s for b in bins for e in b.events])
+    rows = []
     for rep in session.replay.replays:
         r = rep.ripple
         if r.start_s < learn_s + 1.0:
@@ -271,28 +270,36 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         if not match.size:
             continue  # the offline reference did not find this ripple
         onset = float(ref.onset_s[match[0]])
-        path = rep.path_xy_cm
-        length = np.hypot(*np.diff(path, axis=0).T).sum()
-        straight = np.maximum(np.hypot(*(path - goal_xy).T) - GOAL_RADIUS_CM, 0.0)
-        on_track = along[env.bin_index(path[[0, -1]])]
         hit = fired[(fired >= onset - EARLY_S) & (fired <= r.end_s + config.ripples.content_max_s)]
-        decided_ms = (hit[0] - onset) * 1e3 if hit.size else np.nan
-        for key, gap in (("", straight[[0, -1]]), ("_along_track", on_track)):
-            truths[key].append((bool(gap[0] - gap[-1] >= 0.5 * length and length > 0), bool(hit.size), decided_ms))
-    result: dict = {}
-    for key, rows in truths.items():
-        truth = np.array([t for t, _, _ in rows], bool)
-        said = np.array([f for _, f, _ in rows], bool)
-        decisions = np.array([d for t, f, d in rows if t and f])
-        result[f"content_accuracy{key}"] = float(np.mean(truth == said)) if rows else None
-        result[f"content_accuracy{key}_towards"] = float(np.mean(said[truth])) if truth.any() else None
-        result[f"content_accuracy{key}_other"] = float(np.mean(~said[~truth])) if (~truth).any() else None
-        for q in (10, 50, 90):
-            result[f"content_decision{key}_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
-        result[f"content_towards_goal{key}"] = int(truth.sum())
+        mine = [b for b in bins if r.start_s - EARLY_S <= b.content.onset_s <= r.end_s]
+        rows.append({"onset_s": onset, "truth": rep.towards_goal, "drawn_to_goal": rep.to_goal,
+                     "approach_cm": rep.goal_distance_cm[0] - rep.goal_distance_cm[1], "length_cm": rep.length_cm,
+                     "said": bool(hit.size), "decision_ms": (hit[0] - onset) * 1e3 if hit.size else np.nan,
+                     "bins": len(mine), "used": mine[-1].content.n_used if mine else 0,
+                     "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
+                     "z": [round(float(b.content.rank_z[0]), 1) for b in mine]})
+    if show_events:
+        print("onset_s   truth    drawn   approach/length_cm  said     ms  bins used  tau-b per bin; its z", file=sys.stderr)
+        for e in rows:
+            print(f"{e['onset_s']:8.2f}  {'towards' if e['truth'] else 'other':7s}  "
+                  f"{'goal' if e['drawn_to_goal'] else 'random':6s}  {e['approach_cm']:6.0f}/{e['length_cm']:4.0f}"
+                  f"         {'yes' if e['said'] else 'no':3s}  {e['decision_ms']:5.0f}  {e['bins']:4d} {e['used']:4d}  "
+                  f"{e['tau']}; {e['z']}", file=sys.stderr)
+    truth = np.array([e["truth"] for e in rows], bool)
+    said = np.array([e["said"] for e in rows], bool)
+    decisions = np.array([e["decision_ms"] for e in rows if e["truth"] and e["said"]])
+    result: dict = {
+        "content_accuracy": float(np.mean(truth == said)) if rows else None,
+        "content_accuracy_towards": float(np.mean(said[truth])) if truth.any() else None,
+        "content_accuracy_other": float(np.mean(~said[~truth])) if (~truth).any() else None,
+    }
+    for q in (10, 50, 90):
+        result[f"content_decision_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
     return {
         **result,
-        "content_events": len(truths[""]),
+        "content_events": len(rows),
+        "content_towards_goal": int(truth.sum()),
+        "content_drawn_to_goal": int(sum(e["drawn_to_goal"] for e in rows)),
         "content_min_bins": min_bins,
         "content_min_correlation": min_correlation,
         "content_bin_ms": 1e3 * config.ripples.content_bin_s,
@@ -315,6 +322,7 @@ def main(argv=None) -> int:
                         help="place cells of that run (50-150 units on a W track is common in the literature)")
     parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
     parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
+    parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
     args = parser.parse_args(argv)
     rate = args.rate_hz
     speed, x, ripples = simulate(args.duration_s, rate, args.channels, args.seed)
@@ -355,7 +363,7 @@ def main(argv=None) -> int:
         "channels": args.channels,
     }
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
-                              args.min_correlation, args.place_cells))
+                              args.min_correlation, args.place_cells, args.events))
     result.update(chunk_cost(args.chunk_s, args.seed))
     text = json.dumps(result, indent=2)
     print(text)

@@ -37,3 +37,24 @@ def test_ripples_come_only_at_rest_with_their_frequency_and_duration():
     for r in synth.ripples:
         assert not 20.0 <= r.start_s < 40.0 + s.rest_settle_s
         assert 150.0 <= r.freq_hz <= 250.0 and 0.03 <= r.end_s - r.start_s <= 0.1
+
+
+def test_brief_excursions_above_the_rest_speed_neither_end_a_rest_nor_start_a_ripple():
+    # Immobility is speed below a few cm/s for some hundreds of ms, brief movements merged (common
+    # practice): 0.1 s at 3 cm/s every 2 s (tracker jitter, a head movement) keeps one rest going, so
+    # its ripple train is never restarted (restarting waits rest_settle_s again); 1 s of running ends it.
+    s = LfpSettings(rate_hz=RATE_HZ, n_channels=2, ripple_rate_hz=2.0)
+    t = np.arange(int(RATE_HZ * 60)) / RATE_HZ
+    speed = np.where((t % 2.0) < 0.1, 3.0, 0.0)
+    speed[(t >= 30.0) & (t < 31.0)] = 20.0
+    for brk, rests in ((s.rest_break_s, 2), (0.0, 30)):
+        synth = LfpSynth(LfpSettings(rate_hz=RATE_HZ, n_channels=2, ripple_rate_hz=2.0, rest_break_s=brk), 5)
+        began = set()
+        for i in range(0, speed.size, 300):
+            synth.block(speed[i:i + 300])
+            began.add(synth._rest_since_s)
+        assert len(began - {np.inf}) == rests  # the start of every rest the blocks ended in
+        starts = np.array([r.start_s for r in synth.ripples])
+        assert starts.size > 40
+        assert not np.any((starts % 2.0) < 0.1)  # none begins during an excursion
+        assert not np.any((starts >= 30.0) & (starts < 31.0 + s.rest_settle_s))

@@ -9,7 +9,7 @@ import pytest
 from scipy import stats
 
 from decoder.config import ConfigError, RippleSettings, SafetyCaps, TriggerRule
-from decoder.session.replay_content import MAX_LEAD_S, ReplayContent, SequenceMeasures, zone_distances_cm
+from decoder.session.replay_content import ReplayContent, SequenceMeasures, zone_distances_cm
 from decoder.session.triggers import TriggerBank
 from decoder.space.environments import LinearTrack
 
@@ -85,6 +85,33 @@ def test_rank_correlation_counts_ties_as_tau_b_does_and_shrugs_off_one_far_bin()
     assert m.rank_correlation()[0] < -0.55 and m.line()[0][0] > -0.4
 
 
+def test_the_rank_correlations_z_score_is_scipys_normal_approximation():
+    # scipy.stats.kendalltau(method="asymptotic") tests tau-b with the normal approximation of Kendall's
+    # S, its variance corrected for ties (Kendall 1948, Rank Correlation Methods); its two-sided p value
+    # is 2 sf(|z|), so |z| = isf(p / 2). Random posteriors (no ties), and one-hot ones (ties), 3 to 12 bins
+    # (scipy's tie term divides by n - 2).
+    rng = np.random.default_rng(11)
+    dist = zone_distances_cm(TRACK, END)
+    for one_hot in (False, True):
+        m = SequenceMeasures(END, dist)
+        times = 0.0075 + 0.015 * np.arange(12)
+        d = []
+        for k, t in enumerate(times):
+            p = np.eye(N_BINS)[rng.integers(8, 14)] if one_hot else rng.dirichlet(np.full(N_BINS, 0.3))
+            m.add(t, p)
+            d.append(dist[0] @ p)
+            if k == 0:
+                assert np.isnan(m.rank_z()[0])
+            if k < 2:
+                continue
+            if np.all(np.array(d) == d[0]):
+                assert np.isnan(m.rank_z()[0])
+                continue
+            ref = stats.kendalltau(times[:k + 1], d, method="asymptotic")
+            want = np.sign(ref.statistic) * stats.norm.isf(ref.pvalue / 2)
+            assert m.rank_z()[0] == pytest.approx(want, abs=1e-6)
+
+
 def test_zone_distances_follow_the_track():
     d = zone_distances_cm(TRACK, END)[0]
     x = TRACK.bin_centers_cm[:, 0]
@@ -150,29 +177,18 @@ def test_the_event_ends_at_its_lfp_offset_not_with_a_lull_in_the_spikes():
     assert bins[-1].n_used == 3  # bins 0, 2 and 3 have spikes enough: the measures cover them
 
 
-def test_bins_start_where_the_population_burst_began_before_the_onset():
-    content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
-    background = 9.002 + 0.01 * np.arange(100)  # 100 spikes/s, evenly: 0.5 per 5 ms step on average
+def test_bins_start_their_lead_before_the_onset_and_those_before_it_are_decoded_at_once():
+    content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3,
+                                      lead_s=0.02)
     burst = np.arange(9.9805, 10.03, 0.001)  # 1 spike per ms from 19.5 ms before the onset
-    t = np.sort(np.concatenate([background[background < 9.98], burst]))
-    content.take_spikes(t, np.full(t.size, 3))
+    content.take_spikes(burst, np.full(burst.size, 3))
     content.begin(10.0)
-    assert content.due(9.999) == []  # the spikes have not passed the onset: no start yet
-    (first,) = content.due(10.0)
-    # Back from the onset in 5 ms steps while each holds at least the mean count of the 0.5 s before
-    # the look back: the steps from 9.980 on are full, the one before holds background only.
+    (first,) = content.due(10.0)  # the bin before the onset is complete when the ripple is detected
     assert first.start_s == pytest.approx(9.98) and first.onset_s == 10.0
     assert first.t_s == pytest.approx(9.995) and first.n_spikes == 15
-    # Without a burst (the 5 ms before 9.96 hold no spike), or without half a second of history,
-    # the bins start at the onset.
-    quiet = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
-    quiet.take_spikes(background, np.full(background.size, 3))
-    quiet.begin(9.96)
-    assert quiet.due(9.98)[0].start_s == 9.96
-    young = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.3)
-    young.take_spikes(burst, np.full(burst.size, 3))
-    young.begin(10.0)
-    assert young.due(10.015)[0].start_s == 10.0
+    with pytest.raises(ValueError, match="lead_s"):
+        ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.03,
+                                lead_s=0.05)
 
 
 def test_spikes_before_the_onset_and_of_unknown_units_stay_out():
@@ -258,6 +274,8 @@ def test_content_rule_settings_are_checked():
         RippleSettings(content_bin_s=0.5)
     with pytest.raises(ConfigError, match="content_max_s"):
         RippleSettings(content_bin_s=0.02, content_max_s=0.01)
+    with pytest.raises(ConfigError, match="content_lead_s"):
+        RippleSettings(content_lead_s=-0.01)
     assert "content_bin_s" not in RippleSettings().detector_kwargs()
 
 
@@ -284,7 +302,7 @@ def _run_stream(seed: int = 2):
     tracked.add(frames.tolist(), [[50.0, 0.0]] * frames.size)
     stream = RippleStream(settings, bank, tracked)
     stream.content = ReplayContent.for_model(_place_maps(), TRACK, TRACK.valid_mask, END, bin_s=settings.content_bin_s,
-                                             max_event_s=settings.content_max_s)
+                                             max_event_s=settings.content_max_s, lead_s=settings.content_lead_s)
     # Every other ripple's place cells sweep towards the zone (the track's far end), the others away from it.
     spike_t, spike_u, forward = [], [], []
     for i, r in enumerate(synth.ripples):
@@ -329,9 +347,12 @@ def test_the_stream_decodes_each_ripple_and_fires_on_sequences_towards_the_zone(
     assert offsets
     for b in bins:
         assert b.content.t_s == pytest.approx(b.content.start_s + 0.015 * (b.content.index + 1))
-        # Bins start where the envelope rose above end_sd, at most MAX_LEAD_S before the onset.
-        assert b.content.onset_s - MAX_LEAD_S - 1e-12 <= b.content.start_s <= b.content.onset_s
-    assert any(b.content.start_s < b.content.onset_s for b in bins)
+        # Bins start [ripples] content_lead_s before the onset.
+        assert b.content.start_s == pytest.approx(b.content.onset_s - stream.settings.content_lead_s, abs=1e-12)
+        # A content event is stamped when it could be known: the bin's end, or the ripple's detection
+        # for a bin that ended before it (the bins before the onset are decoded at the detection).
+        for e in b.events:
+            assert e.t_s == max(b.content.t_s, offsets[b.content.onset_s].t_s)
     ends = {e.onset_s: e.offset_s for e in stream.events_}
     assert len(ends) == len(offsets) and all(np.isfinite(list(ends.values())))
     for b in bins:

@@ -4,10 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy.sparse.csgraph import shortest_path
 
 from decoder.messages import SpikeBatch
+from decoder.session.replay_content import zone_distances_cm
 from decoder.space.environments import Arena, TrackGraph
 from rig_adapters.sim.lfp import LfpSettings, LfpSynth
+from rig_adapters.sim.replay_content import TOWARDS_SHARE
 from rig_adapters.sim.settings import ReplaySettings, SimulationSettings
 from rig_adapters.sim.simulation import SimulatedSession
 
@@ -78,6 +81,44 @@ def test_goal_replays_end_at_the_goal(sessions):
     for rep in session.replay.replays:
         if rep.to_goal:
             assert np.hypot(*(rep.path_xy_cm[-1] - goal)) <= MAZE.bin_cm
+
+
+def test_the_content_a_replay_has_is_measured_along_the_track_as_the_rules_measure_it(sessions):
+    # Distances along the maze from scipy's shortest paths over its nodes (an independent reference):
+    # a point on the edge (a, b) is min(|p - a| + D[a, goal], |p - b| + D[b, goal]) from the goal node.
+    (session, _, _), _ = sessions
+    nodes = np.array([[0, 0], [60, 0], [120, 0], [0, 80], [60, 80], [120, 80]], float)
+    edges = [[3, 0], [0, 1], [1, 2], [4, 1], [5, 2]]
+    weights = np.zeros((6, 6))
+    for a, b in edges:
+        weights[a, b] = weights[b, a] = np.hypot(*(nodes[a] - nodes[b]))
+    to_goal_node = shortest_path(weights, directed=False)[:, 3]  # the goal well (0, 80) is node 3
+
+    def along(p):
+        best = np.inf
+        for a, b in edges:
+            ab = nodes[b] - nodes[a]
+            u = np.dot(p - nodes[a], ab) / np.dot(ab, ab)
+            if -1e-9 <= u <= 1 + 1e-9 and abs(ab[0] * (p - nodes[a])[1] - ab[1] * (p - nodes[a])[0]) < 1e-6 * np.linalg.norm(ab):
+                best = min(best, np.hypot(*(p - nodes[a])) + to_goal_node[a], np.hypot(*(p - nodes[b])) + to_goal_node[b])
+        return best
+
+    goal_bin = MAZE.bin_index(np.array([session.settings.replay.goal_cm]))[0]
+    goal_mask = np.zeros((1, MAZE.n_bins), bool)
+    goal_mask[0, goal_bin] = True
+    rule_distance = zone_distances_cm(MAZE, goal_mask)[0]  # what the towards / away rules measure
+    replays = session.replay.replays
+    assert any(r.towards_goal and not r.to_goal for r in replays)  # a random path may move towards the goal
+    for rep in replays:
+        ends = rep.path_xy_cm[[0, -1]]
+        offset = along(MAZE.bin_centers_cm[goal_bin])  # the goal bin's centre lies within a bin of the node
+        for d_sim, p in zip(rep.goal_distance_cm, ends):
+            assert d_sim == pytest.approx(along(p) - offset, abs=1e-6)
+            assert d_sim == pytest.approx(rule_distance[MAZE.bin_index(p[None])[0]], abs=1e-6)
+        first, last = rep.goal_distance_cm
+        assert rep.towards_goal == (first - last >= TOWARDS_SHARE * rep.length_cm > 0)
+        if rep.to_goal:
+            assert rep.towards_goal
 
 
 def test_bad_replay_settings_say_what_is_wrong():

@@ -50,10 +50,13 @@ class RippleSettings:
     #: Length of the content bins decoded while a ripple lasts (s): short, non-overlapping, each
     #: with the uniform prior (replay content jumps); 10-20 ms is common practice.
     content_bin_s: float = 0.015
-    #: Content bins are decoded from the event's start (where its population burst began, at most
-    #: 50 ms before the ripple's onset) up to this long after it (s), unless the ripple's LFP
-    #: offset (the envelope back below end_sd) ends them sooner; ripples last 30-100 ms (common
-    #: practice).
+    #: The first content bin starts this long before the ripple's onset (s): a replay's spikes
+    #: begin before the envelope crosses the threshold (on the simulated rig the crossing comes
+    #: 14-32 ms into a ripple), and a sequence seen from its start shows its direction sooner.
+    content_lead_s: float = 0.02
+    #: Content bins are decoded from the event's start (content_lead_s before the ripple's onset)
+    #: up to this long after it (s), unless the ripple's LFP offset (the envelope back below
+    #: end_sd) ends them sooner; ripples last 30-100 ms (common practice).
     content_max_s: float = 0.1
     #: A content bin with fewer spikes is left out of the event's measures (a nearly empty bin's
     #: posterior is close to the uniform prior and says little of the content); the event goes
@@ -91,6 +94,9 @@ class RippleSettings:
         if not self.content_bin_s <= self.content_max_s <= 2.0:
             raise ConfigError(f"[ripples] content_max_s must lie within content_bin_s..2 s, "
                               f"got {self.content_max_s!r}")
+        if not 0 <= self.content_lead_s <= min(0.1, self.content_max_s):
+            raise ConfigError(f"[ripples] content_lead_s must lie within 0..0.1 s and not exceed content_max_s, "
+                              f"got {self.content_lead_s!r}")
 
     def detector_kwargs(self) -> dict[str, Any]:
         """The ``RippleDetector`` keyword arguments this table sets."""

@@ -12,15 +12,17 @@ or ``max_event_s`` after the start, whichever comes first. A bin is decoded
 once the spikes have passed its end and the LFP its start, so that no bin
 begins after the offset.
 
-The start is where the population burst began, at most ``MAX_LEAD_S`` before
-the LFP onset: the spikes before the onset are in the past when the ripple is
-detected, so the bins before it are decoded at once. Candidate events are
-commonly bounded by the multi-unit rate crossing its mean (Davidson,
-Kloosterman & Wilson 2009, from memory); here, going back from the onset in
-steps of ``BURST_STEP_S``, the burst goes on while each step holds at least
-the mean count of the ``BASELINE_S`` before it. A replay's sequence begins
-with that burst, before the ripple envelope is high enough to be detected,
-and a sequence seen from its start tells its direction sooner.
+The bins start ``lead_s`` before the LFP onset: the replay's spikes begin
+before the ripple envelope is high enough to cross the detection threshold
+(on the simulated rig the crossing comes 14-32 ms, median 21, after a
+ripple's start), and a sequence seen from its start tells its direction
+sooner; the spikes before the onset are in the past when the ripple is
+detected, so those bins are decoded at once. A fixed lead, not a search for
+where the population burst began: at rest the animal's own place cells fire
+at a steady rate, and a look back that follows the spike count over a few ms
+at a time takes those bins for the burst as often as not, so the event
+begins with bins decoded at the animal's own place, which read as a
+sequence leaving it.
 
 As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
@@ -55,14 +57,8 @@ import numpy as np
 from decoder.inference.decoding import BayesDecoder
 from decoder.space.environments import Environment
 
-#: Spikes are held this much longer than the longest event and the burst's look back, for the detection's latency (s).
+#: Spikes are held this much longer than the longest event and its lead, for the detection's latency (s).
 _HOLD_MARGIN_S = 0.5
-#: Bins start at most this long before the LFP onset (s).
-MAX_LEAD_S = 0.05
-#: Step of the look back for the population burst's start (s).
-BURST_STEP_S = 0.005
-#: The population's mean spike rate is taken over this long before the look back (s).
-BASELINE_S = 0.5
 
 
 def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.ndarray:
@@ -174,6 +170,29 @@ class SequenceMeasures:
             tau = np.where(n0 - self._ties > 0, self._concordance / np.sqrt(n0 * (n0 - self._ties)), np.nan)
         return tau
 
+    def rank_z(self) -> np.ndarray:
+        """The evidence behind :meth:`rank_correlation`: its normal approximation's z score, shape (n_zones,).
+
+        ``z = S / sqrt(var(S))`` with the variance of ``S`` under independence
+        corrected for ties in the mean distances (Kendall 1948, Rank
+        Correlation Methods; times have none): ``var(S) = (n (n - 1) (2n + 5)
+        - sum_g t_g (t_g - 1) (2 t_g + 5)) / 18`` over the groups of ``t_g``
+        equal values. Its sign is the correlation's; its size grows with the
+        bins that agree, so a threshold on it asks more of few bins than of
+        many. NaN before two bins, or where every mean distance is the same.
+        """
+        n = self.n_bins
+        if n < 2:
+            return np.full(self._concordance.shape, np.nan)
+        tie_term = np.zeros(self._concordance.shape)
+        if self._ties.any():
+            for z in np.flatnonzero(self._ties):
+                _, t = np.unique(np.array(self._means)[:, z], return_counts=True)
+                tie_term[z] = np.sum(t * (t - 1.0) * (2.0 * t + 5.0))
+        var = (n * (n - 1.0) * (2.0 * n + 5.0) - tie_term) / 18.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(var > 0, self._concordance / np.sqrt(var), np.nan)
+
     @property
     def mean_mass(self) -> np.ndarray:
         """Posterior mass in each zone averaged over the event's bins so far, shape (n_zones,)."""
@@ -204,7 +223,7 @@ class ContentBin(NamedTuple):
     Attributes
     ----------
     t_s : float
-        Data time of the bin's end (when it could be decoded at the earliest).
+        Data time of the bin's end (a bin that ended before the ripple's detection is decoded at it).
     onset_s : float
         The event's onset (its detection's threshold crossing; it names the event).
     start_s : float
@@ -225,6 +244,9 @@ class ContentBin(NamedTuple):
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
         Weighted correlation of time and distance to each zone over the bins
         so far, and the fitted line's slope (negative: moving towards the zone).
+    rank_z : ndarray of float64, shape (n_zones,)
+        The z score of ``rank_correlation`` (:meth:`SequenceMeasures.rank_z`):
+        the evidence the sequence rules ask of it.
     """
 
     t_s: float
@@ -239,6 +261,7 @@ class ContentBin(NamedTuple):
     rank_correlation: np.ndarray
     correlation: np.ndarray
     slope_cm_s: np.ndarray
+    rank_z: np.ndarray
 
 
 class ReplayContent:
@@ -255,6 +278,8 @@ class ReplayContent:
     distance_cm : ndarray of float64, shape (n_zones, n_bins)
     max_event_s : float
         Bins are decoded from the event's start up to this long after it at most.
+    lead_s : float, default 0.0
+        The event's first bin starts this long before its LFP onset.
     min_spikes : int, default 1
         A bin with fewer spikes is decoded and reported but left out of the
         event's measures: with the uniform prior, an empty bin's posterior
@@ -279,18 +304,21 @@ class ReplayContent:
     """
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
-                 distance_cm: np.ndarray, max_event_s: float, min_spikes: int = 1) -> None:
+                 distance_cm: np.ndarray, max_event_s: float, lead_s: float = 0.0, min_spikes: int = 1) -> None:
         if decoder.transition is not None:
             raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
                              "behavioural movement model does not hold; build the decoder with prior='uniform'")
         if not max_event_s >= decoder.window_s:
             raise ValueError(f"max_event_s ({max_event_s}) must hold at least one bin of {decoder.window_s} s")
+        if not 0.0 <= lead_s <= max_event_s:
+            raise ValueError(f"lead_s ({lead_s}) must lie within 0..max_event_s ({max_event_s}) s")
         ids = np.asarray(unit_ids, np.int64)
         self._known_ids, first = np.unique(ids, return_index=True)
         self._row_of_known = first.astype(np.int64)
         self.decoder = decoder
         self.bin_s = decoder.window_s
         self.max_event_s = float(max_event_s)
+        self.lead_s = float(lead_s)
         self.min_spikes = int(min_spikes)
         self.measures = SequenceMeasures(zone_masks, distance_cm)
         self._n_units = ids.size
@@ -303,13 +331,15 @@ class ReplayContent:
 
     @classmethod
     def for_model(cls, rate_maps_hz: np.ndarray, environment: Environment, valid_mask: np.ndarray,
-                  zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, unit_ids: np.ndarray | None = None,
-                  rate_floor_hz: float = 0.01, min_spikes: int = 1) -> ReplayContent:
+                  zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, lead_s: float = 0.0,
+                  unit_ids: np.ndarray | None = None, rate_floor_hz: float = 0.01,
+                  min_spikes: int = 1) -> ReplayContent:
         """Content decoding for rate maps (shape (n_units, n_bins), Hz), with the uniform prior."""
         decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
                                zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
         ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
-        return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, min_spikes)
+        return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, lead_s,
+                   min_spikes)
 
     @property
     def active(self) -> bool:
@@ -325,7 +355,7 @@ class ReplayContent:
         at = np.minimum(np.searchsorted(self._known_ids, ids), self._known_ids.size - 1)
         known = self._known_ids[at] == ids
         t, rows = t[known], self._row_of_known[at[known]]
-        keep_from = t[-1] - self.max_event_s - MAX_LEAD_S - BASELINE_S - _HOLD_MARGIN_S
+        keep_from = t[-1] - self.max_event_s - self.lead_s - _HOLD_MARGIN_S
         old = int(np.searchsorted(self._t, keep_from))
         self._t = np.concatenate([self._t[old:], t])
         self._rows = np.concatenate([self._rows[old:], rows])
@@ -341,11 +371,10 @@ class ReplayContent:
     def begin(self, onset_s: float) -> None:
         """A candidate event detected with its LFP onset at ``onset_s`` (data time): a running one ends.
 
-        Its bins start where its population burst began, found once the
-        spikes have passed the onset.
+        Its bins start ``lead_s`` before the onset.
         """
         self._onset_s = float(onset_s)
-        self._start_s = math.nan
+        self._start_s = self._onset_s - self.lead_s
         self._offset_s = math.inf
         self._next = 0
         self.measures.reset()
@@ -371,10 +400,6 @@ class ReplayContent:
             still on (inf: do not wait for it).
         """
         out: list[ContentBin] = []
-        if self.active and math.isnan(self._start_s):
-            if watermark_s < self._onset_s:
-                return out
-            self._start_s = self._burst_start()
         while self.active:
             start = self._start_s + self._next * self.bin_s
             stop = start + self.bin_s
@@ -387,21 +412,6 @@ class ReplayContent:
             self._next += 1
         return out
 
-    def _burst_start(self) -> float:
-        """Where the population burst before the onset began (see the module's docstring)."""
-        onset, t = self._onset_s, self._t
-        until = onset - MAX_LEAD_S
-        since = max(until - BASELINE_S, float(t[0])) if t.size else until
-        if until - since < BASELINE_S / 2:
-            return onset  # too little history for a mean rate (the session's first moments)
-        lo, hi = np.searchsorted(t, (since, until))
-        mean_count = (hi - lo) / (until - since) * BURST_STEP_S
-        edges = onset - BURST_STEP_S * np.arange(int(round(MAX_LEAD_S / BURST_STEP_S)) + 1)
-        counts = -np.diff(np.searchsorted(t, edges))  # counts[i]: spikes in [edges[i + 1], edges[i])
-        quiet = np.flatnonzero(counts < mean_count)
-        steps = int(quiet[0]) if quiet.size else counts.size
-        return float(edges[steps])
-
     def _decode(self, start: float, stop: float) -> ContentBin:
         a, b = np.searchsorted(self._t, (start, stop), side="left")
         counts = np.bincount(self._rows[a:b], minlength=self._n_units)
@@ -412,4 +422,4 @@ class ReplayContent:
             m.add(0.5 * (start + stop), step.posterior)
         r, slope = m.line()
         return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
-                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope)
+                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z())

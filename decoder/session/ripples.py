@@ -21,7 +21,7 @@ counted (``ripples_moving``) and reported, but judged by no rule.
 
 Once a model is installed (:meth:`RippleStream.install_model`), every ripple
 detected at rest also starts a candidate event whose content is decoded in
-short bins from its onset (``decoder.session.replay_content``), fed with the
+short bins from just before its onset (``decoder.session.replay_content``), fed with the
 spike source's spikes (:meth:`RippleStream.take_spikes`), each bin decoded
 once the spikes' watermark has passed its end and the LFP its start
 (:meth:`RippleStream.content_due`, and after each chunk); the event ends at
@@ -94,7 +94,8 @@ class ContentOutput(NamedTuple):
         Data time of the bin's end.
     content : ContentBin
     tracked_xy_cm : ndarray of float64, shape (2,)
-        The tracked position at ``t_s`` (NaN when unknown).
+        The tracked position when the bin was judged (NaN when unknown): at ``t_s``, or at the
+        ripple's detection for a bin that ended before it, which is also its events' time.
     events : tuple of TriggerEvent
     armed : bool
     """
@@ -121,7 +122,7 @@ class ContentEvent:
     decided : list of str
         The content rules that fired, in order (empty: none did).
     decision_s : float
-        Data time of the first content rule's event; NaN for none.
+        Data time of the first content rule's event (never before the detection); NaN for none.
     sequence : list of (float, float, float, int)
         The decoded sequence, one tuple per content bin: the bin's end (data
         time, s), its MAP position x and y (cm) and its spikes. For display
@@ -177,6 +178,7 @@ class RippleStream:
         self.content: ReplayContent | None = None
         self.events_: deque[ContentEvent] = deque(maxlen=EVENTS_KEPT)
         self._next_s = math.nan
+        self._detected_s = -math.inf
         self._hash = hashlib.sha256()
 
     def take(self, chunk: LfpChunk, watermark_s: float) -> list[RippleOutput | ContentOutput]:
@@ -225,7 +227,8 @@ class RippleStream:
         s = self.settings
         self.content = ReplayContent.for_model(model.rate_maps_hz_, environment, model.visited_mask_, zone_masks,
                                                bin_s=s.content_bin_s, max_event_s=s.content_max_s,
-                                               unit_ids=model.unit_ids_, rate_floor_hz=rate_floor_hz,
+                                               lead_s=s.content_lead_s, unit_ids=model.unit_ids_,
+                                               rate_floor_hz=rate_floor_hz,
                                                min_spikes=s.content_min_spikes)
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
@@ -241,11 +244,13 @@ class RippleStream:
         out = []
         h = self._hash
         for b in content.due(watermark_s, self._next_s):
-            x, y, speed = self.tracked.at_xy(b.t_s)
+            # A bin that ended before the ripple was detected is judged at the detection: its
+            # events carry the data time at which they could be known, never an earlier one.
+            t = max(b.t_s, self._detected_s)
+            x, y, speed = self.tracked.at_xy(t)
             xy = np.array((x, y))
-            lag = max(watermark_s - b.t_s, 0.0)
-            events = tuple(self.bank.content(b.t_s, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed,
-                                             lag))
+            lag = max(watermark_s - t, 0.0)
+            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag))
             self.counters["content_bins"] += 1
             self.counters["events"] += len(events)
             record = self.events_[-1]
@@ -253,7 +258,7 @@ class RippleStream:
             record.sequence.append((b.t_s, float(b.map_xy_cm[0]), float(b.map_xy_cm[1]), b.n_spikes))
             record.rank_correlation = b.rank_correlation.tolist()
             if events and not record.decided:
-                record.decision_s = b.t_s
+                record.decision_s = t
             record.decided = (record.decided or []) + [ev.rule for ev in events]
             h.update(struct.pack("<di", b.t_s, b.n_spikes))
             h.update(b.posterior.tobytes())
@@ -314,6 +319,7 @@ class RippleStream:
         else:
             if self.content is not None:
                 self.content.begin(d.onset_s)
+                self._detected_s = t
                 self.events_.append(ContentEvent(d.onset_s))
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
             events = tuple(self.bank.ripple(t, xy, speed, lag))

@@ -19,7 +19,9 @@ recorded with tetrodes or a silicon probe; the figures are from memory):
 * theta (about 8 Hz) whose amplitude follows running: full above
   ``theta_speed_cm_s``, none at rest;
 * sharp-wave ripples while the animal rests (slower than ``rest_speed_cm_s``
-  for at least ``rest_settle_s``): a Poisson train at ``ripple_rate_hz``
+  for at least ``rest_settle_s``; a rest ends once the speed has stayed at
+  or above it for ``rest_break_s``, so that the wander of a resting animal's
+  tracked position does not cut it short): a Poisson train at ``ripple_rate_hz``
   with a least interval between ripples; each ripple is an oscillation at a
   frequency drawn from ``ripple_hz`` under a Gaussian envelope that rises
   smoothly (no step), lasting ``ripple_duration_s`` (taken as 5 s.d. of the
@@ -85,6 +87,11 @@ class LfpSettings:
     rest_speed_cm_s: float = 2.0
     #: Rest must have lasted this long before the first ripple (s).
     rest_settle_s: float = 0.5
+    #: A rest ends when the speed has stayed at or above rest_speed_cm_s this long (s): immobility
+    #: is speed below a few cm/s for some hundreds of ms, brief excursions merged (common practice),
+    #: so the jitter of a resting animal's measured speed neither ends a rest nor restarts its ripple
+    #: train; no ripple begins during an excursion. 0 ends a rest at the first faster sample.
+    rest_break_s: float = 0.5
     #: Mean rate of ripples at rest (Hz); about 0.5-2 Hz in quiet rest.
     ripple_rate_hz: float = 0.8
     #: Least time from the end of one ripple to the start of the next (s).
@@ -189,6 +196,7 @@ class LfpSynth:
         # Not resting yet: the first sample below rest_speed_cm_s starts a rest, so that a session that
         # begins at rest draws ripples from its start, not only after the first run.
         self._rest_since_s = math.inf
+        self._moving_since_s = math.inf
         self._next_ripple_s = math.inf
         self._theta_phase = 0.0
 
@@ -244,9 +252,13 @@ class LfpSynth:
         s = self.settings
         for ti, v in zip(t.tolist(), speed_cm_s.tolist()):
             if not v < s.rest_speed_cm_s:
-                self._rest_since_s = math.inf
-                self._next_ripple_s = math.inf
+                if self._moving_since_s == math.inf:
+                    self._moving_since_s = ti
+                if ti - self._moving_since_s >= s.rest_break_s:
+                    self._rest_since_s = math.inf
+                    self._next_ripple_s = math.inf
                 continue
+            self._moving_since_s = math.inf
             if self._rest_since_s == math.inf:
                 self._rest_since_s = ti
                 self._next_ripple_s = ti + s.rest_settle_s + self._rng.exponential(1 / s.ripple_rate_hz)

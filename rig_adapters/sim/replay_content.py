@@ -12,6 +12,15 @@ Poisson process at ``rate_gain`` times its field's rate at the replayed
 position (thinning, as in :mod:`rig_adapters.sim.cells`). The path and the
 choice are the ground truth (:attr:`ReplayMaker.replays`).
 
+The content a replay has is a property of the path it ran, measured with the
+environment's own metric: along the track, the way the decoder's content
+measures (``decoder.session.replay_content.zone_distances_cm``) and the
+paths themselves are. :attr:`Replay.towards_goal` is the one definition of
+"a sequence moving towards the goal" that benchmarks and tests score the
+content rules against. It is not :attr:`Replay.to_goal` (the draw): a path
+between two random points moves towards the goal about half the time, and its
+content then is a sequence towards the goal however it was drawn.
+
 Its settings are :class:`~rig_adapters.sim.settings.ReplaySettings`. Its random numbers come from a generator of its own, so that a session
 without ``[simulation.replay]`` is unchanged.
 """
@@ -29,6 +38,9 @@ from rig_adapters.sim.settings import ReplaySettings
 
 #: Neighbouring bins along a path are at most this many bin widths apart.
 _NEIGHBOUR_BINS = 1.5
+#: A path moves towards the goal when it ends nearer to it, along the track, by at least this
+#: share of its length: mostly towards it, not a path that nears the goal's junction and turns off.
+TOWARDS_SHARE = 0.5
 
 
 class Replay(NamedTuple):
@@ -44,12 +56,28 @@ class Replay(NamedTuple):
         The path's points (bin centres), run at constant speed from the
         ripple's start to its end.
     speed_cm_s : float
+    length_cm : float
+        The path's length along the track.
+    goal_distance_cm : tuple of float
+        Distance along the track from the goal to the path's first and last point.
     """
 
     ripple: Ripple
     to_goal: bool
     path_xy_cm: np.ndarray
     speed_cm_s: float
+    length_cm: float
+    goal_distance_cm: tuple[float, float]
+
+    @property
+    def towards_goal(self) -> bool:
+        """Whether the path's content is a sequence moving towards the goal (see the module's docstring).
+
+        It ends nearer to the goal along the track than it began by at least
+        ``TOWARDS_SHARE`` of its length.
+        """
+        first, last = self.goal_distance_cm
+        return self.length_cm > 0 and first - last >= TOWARDS_SHARE * self.length_cm
 
     def position_cm(self, t_s: np.ndarray) -> np.ndarray:
         """The replayed position at data times ``t_s`` (shape (n,)) in the ripple, shape (n, 2)."""
@@ -135,7 +163,11 @@ class ReplayMaker:
         else:
             start = int(rng.integers(self._distance.shape[0]))
             end = self._bin_at(self._distance[start], length)
-        return Replay(ripple, to_goal, self._centres[self._route(start, end)], speed)
+        route = self._route(start, end)
+        d = self._distance
+        length = float(d[route[:-1], route[1:]].sum())
+        return Replay(ripple, to_goal, self._centres[route], speed, length,
+                      (float(d[route[0], self._goal]), float(d[route[-1], self._goal])))
 
     def _bin_at(self, distance_cm: np.ndarray, length_cm: float) -> int:
         """A bin drawn among those nearest to ``length_cm`` away (within a bin's width of the nearest)."""
