@@ -31,6 +31,14 @@ run:
    is the median 1-worker wall time over the median 2-worker one
    (target >= 1.7).
 
+4. With ``--against DIR``, instead of the above: an A/B of this checkout
+   against another placeloop checkout (``git worktree add /tmp/base main``)
+   on one shorter session (``--session-s``, default 90 s, a third learned),
+   in subprocesses that alternate between the two, ``--rounds`` each; every
+   subprocess replays the log ``--ab-replays`` times (the thread's CPU time)
+   and times its parts by message kind as in 2. Printed: the medians over the
+   rounds of each side, their ratio, and each side's x real time in CPU time.
+
 The sessions are simulated (invented data), for timing only. BLAS and
 OpenMP threads are held to one so that "one core" and "two workers" mean
 what they say.
@@ -50,6 +58,7 @@ import cProfile  # noqa: E402
 import json  # noqa: E402
 import pathlib  # noqa: E402
 import platform  # noqa: E402
+import subprocess  # noqa: E402
 import pstats  # noqa: E402
 import sys  # noqa: E402
 import tempfile  # noqa: E402
@@ -262,6 +271,77 @@ def time_sweep(log_dir: pathlib.Path, workers: int) -> float:
     return wall
 
 
+def ab_worker(log_dir: pathlib.Path, replays: int) -> dict:
+    """One side of an A/B, in its own process: CPU time of whole replays, then the parts by message kind."""
+    replay_session(log_dir)  # numba's caches and the imports, before anything is timed
+    cpu = []
+    for _ in range(replays):
+        started = time.thread_time()
+        replay_session(log_dir)
+        cpu.append(time.thread_time() - started)
+    started = time.thread_time()
+    for _ in iter_records(log_dir):
+        pass
+    return {"replay_cpu_s": cpu, "read_cpu_s": time.thread_time() - started, "parts": time_by_kind(log_dir)}
+
+
+def run_ab(args: argparse.Namespace) -> int:
+    """This checkout against ``args.against``, alternating subprocesses; medians per part and overall."""
+    other = args.against.resolve()
+    if not (other / "decoder" / "__init__.py").exists():
+        raise SystemExit(f"--against {other}: not a placeloop checkout (no decoder/ package there)")
+    here = _HERE.parent
+    session_s = args.session_s or 90.0
+    sides = {"this": here, "other": other}
+    runs: dict[str, list[dict]] = {"this": [], "other": []}
+    with tempfile.TemporaryDirectory(prefix="placeloop-bench-ab-") as tmp:
+        log_dir = record_simulated_session(parse_config(bench_config(args.units, session_s / 3)),
+                                           pathlib.Path(tmp) / "ab", until_s=session_s, seed=12)
+        for k in range(args.rounds):
+            for side in ("other", "this") if k % 2 == 0 else ("this", "other"):
+                print(f"round {k + 1}/{args.rounds}: {side} ({sides[side]}) ...", file=sys.stderr)
+                # This script, with the side's packages first on the path.
+                env = {**os.environ, "PYTHONPATH": str(sides[side])}
+                done = subprocess.run([sys.executable, __file__, "--ab-worker", str(log_dir),
+                                       "--ab-replays", str(args.ab_replays)],
+                                      env=env, cwd=sides[side], capture_output=True, text=True, check=True)
+                runs[side].append(json.loads(done.stdout.strip().splitlines()[-1]))
+
+    def median(side: str, pick) -> float:
+        values = [pick(r) for r in runs[side]]
+        values = [v for v in values if v is not None]
+        return float(np.median(values)) if values else float("nan")
+
+    rows = [("replay, CPU s (median of each run's median)", lambda r: float(np.median(r["replay_cpu_s"])))]
+    rows.append(("read the log only, CPU ms", lambda r: r["read_cpu_s"] * 1e3))
+    kinds = sorted(set().union(*(r["parts"]["wire"] for r in runs["this"] + runs["other"])))
+    for kind in kinds:
+        rows.append((f"wire reader {kind}, us/msg", lambda r, k=kind: r["parts"]["wire"].get(k, {}).get("us_per_message")))
+    parts = sorted(set().union(*(r["parts"]["pipeline"] for r in runs["this"] + runs["other"])))
+    for part in parts:
+        rows.append((f"pipeline {part}, us/msg (p50)",
+                     lambda r, k=part: r["parts"]["pipeline"].get(k, {}).get("us_p50")))
+        rows.append((f"pipeline {part}, us/msg (mean)",
+                     lambda r, k=part: r["parts"]["pipeline"].get(k, {}).get("us_per_message")))
+    print(f"\nA/B on a {session_s:.0f} s session ({args.units} units, 2,500 bins, {session_s / 3:.0f} s learned), "
+          f"{args.rounds} alternating rounds, medians; load average now {os.getloadavg()[0]:.1f}")
+    print(f"  this: {here}\n  other: {other}")
+    print(f"{'':58s}{'other':>10s}{'this':>10s}{'this/other':>12s}")
+    table = []
+    for name, pick in rows:
+        a, b = median("other", pick), median("this", pick)
+        table.append({"part": name, "other": a, "this": b})
+        print(f"{name:58s}{a:10.2f}{b:10.2f}{b / a if a else float('nan'):12.3f}")
+    cpu_other, cpu_this = table[0]["other"], table[0]["this"]
+    print(f"x real time in CPU time: other {session_s / cpu_other:.0f}x, this {session_s / cpu_this:.0f}x "
+          f"(target {TARGET_X_REALTIME:g}x)")
+    if args.json:
+        args.json.parent.mkdir(parents=True, exist_ok=True)
+        args.json.write_text(json.dumps({"session_s": session_s, "this": str(here), "other": str(other),
+                                         "table": table, "runs": runs}, indent=2))
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--json", type=pathlib.Path, help="write the results here as JSON")
@@ -274,7 +354,17 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--repeats", type=int, default=None, help="sweep repeats per worker count (default 5)")
     parser.add_argument("--replay-repeats", type=int, default=3, help="repeats of the long replay (default 3)")
     parser.add_argument("--top", type=int, default=15, help="functions to show from the profile")
+    parser.add_argument("--against", type=pathlib.Path, default=None,
+                        help="A/B against the placeloop checkout in this folder instead (default: off)")
+    parser.add_argument("--rounds", type=int, default=5, help="A/B rounds, each side once a round (default 5)")
+    parser.add_argument("--ab-replays", type=int, default=3, help="replays timed per A/B subprocess (default 3)")
+    parser.add_argument("--ab-worker", type=pathlib.Path, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
+    if args.ab_worker is not None:
+        print(json.dumps(ab_worker(args.ab_worker, args.ab_replays)))
+        return 0
+    if args.against is not None:
+        return run_ab(args)
     session_s = args.session_s or (300.0 if args.quick else 1800.0)
     learn_s = min(args.learn_s, session_s / 3)
     sweep_session_s = args.sweep_session_s or (90.0 if args.quick else 180.0)

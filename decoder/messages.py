@@ -281,10 +281,10 @@ def _is_ready_vector(arr: Any, dtype: np.dtype) -> bool:
     Arrays read straight off the wire with ``numpy.frombuffer`` are, and
     checking costs a fraction of converting.
     """
-    return (
-        type(arr) is np.ndarray and arr.dtype == dtype and arr.ndim == 1 and arr.size <= MAX_BATCH
-        and not arr.flags.writeable and arr.flags.c_contiguous
-    )
+    if type(arr) is not np.ndarray or arr.ndim != 1 or arr.dtype != dtype or arr.size > MAX_BATCH:
+        return False
+    flags = arr.flags
+    return not flags.writeable and flags.c_contiguous
 
 
 def _check_source_seq(msg: Any) -> None:
@@ -568,14 +568,16 @@ class TrackerFrames:
         """
         t_s, x_cm, y_cm, quality = stored_frame(t_s, x_cm, y_cm, quality)
         self = object.__new__(cls)
-        object.__setattr__(self, "source", _name("source", source))
-        object.__setattr__(self, "seq", _count("seq", seq))
-        object.__setattr__(self, "head_dir_rad", None)
+        put = object.__setattr__
+        put(self, "source", source)
+        put(self, "seq", seq)
+        _check_source_seq(self)
+        put(self, "head_dir_rad", None)
         # One buffer for time and position, read-only as bytes are: numpy's constructors cost more than the rule.
         txy = np.frombuffer(_TXY.pack(t_s, x_cm, y_cm), _F64)
-        object.__setattr__(self, "t_s", txy[:1])
-        object.__setattr__(self, "xy_cm", txy[1:].reshape(1, 2))
-        object.__setattr__(self, "quality", SINGLE_FRAME_QUALITY[quality])
+        put(self, "t_s", txy[:1])
+        put(self, "xy_cm", txy[None, 1:])
+        put(self, "quality", SINGLE_FRAME_QUALITY[quality])
         return self
 
     def _take_columns(self, t_s: Any, x_cm: Any, y_cm: Any, head_dir_rad: Any, quality: Any) -> None:

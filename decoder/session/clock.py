@@ -133,12 +133,13 @@ def fit_clock(pulses_ref_s: Any, pulses_other_s: Any) -> ClockFit:
         )
     if ref.size == 0:
         raise ValueError("fit_clock needs at least one pulse seen by both sources")
-    if not (np.all(np.isfinite(ref)) and np.all(np.isfinite(other))):
+    if not (np.isfinite(ref).all() and np.isfinite(other).all()):
         raise ValueError("pulse times must be finite")
     if ref.size == 1:
         return ClockFit(float(ref[0] - other[0]), 0.0, 0.0, 1)
-    # Centring keeps the products small when clocks read thousands of seconds.
-    ref_mean, other_mean = ref.mean(), other.mean()
+    # Centring keeps the products small when clocks read thousands of seconds. The
+    # sum over the count is what ndarray.mean computes, without its Python wrapper.
+    ref_mean, other_mean = np.add.reduce(ref) / ref.size, np.add.reduce(other) / ref.size
     dx, dy = other - other_mean, ref - ref_mean
     sxx = float(np.dot(dx, dx))
     if sxx == 0.0:
@@ -146,7 +147,7 @@ def fit_clock(pulses_ref_s: Any, pulses_other_s: Any) -> ClockFit:
     slope = float(np.dot(dx, dy)) / sxx
     offset = float(ref_mean - slope * other_mean)
     residual = ref - (offset + slope * other)
-    return ClockFit(offset, (slope - 1.0) * 1e6, float(np.max(np.abs(residual))), int(ref.size))
+    return ClockFit(offset, (slope - 1.0) * 1e6, float(np.abs(residual).max()), int(ref.size))
 
 
 class ClockAligner:
