@@ -200,7 +200,7 @@ def field_size(rate_map, environment, mask, threshold=0.2):
         # separate ndimage.label calls cost more than the labelling itself.
         within_map = np.zeros((3, 3, 3), dtype=bool)
         within_map[1] = ndimage.generate_binary_structure(2, 1)
-        labels = ndimage.label(above[units].reshape(len(units), *grid), within_map)[0].reshape(len(units), -1)
+        labels = ndimage.label(above[units].reshape(len(units), *grid), within_map)[0].reshape(len(units), environment.n_bins)
         own = labels[np.arange(len(units)), peak_bin[units]]
         sizes[units] = np.count_nonzero(labels == own[:, None], axis=1)
         sizes *= environment.bin_size
