@@ -152,6 +152,7 @@ def _write_summary(path: str, summary: dict) -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     from decoder.session.pipeline import Pipeline
+    from decoder.session.steps import model_problem
     from decoder.encoding.place_model import ModelFileError, PlaceModel
     from rig_adapters.live.loop import LiveLoop
     from rig_adapters.sessions.summary import jsonable
@@ -183,6 +184,10 @@ def cmd_run(args: argparse.Namespace) -> int:
             model = PlaceModel.load(args.model)
         except ModelFileError as exc:
             return _error(str(exc), EXIT_FILE)
+        # The check a load_model request gets: a model that cannot decode this session never starts it.
+        why = model_problem(model, config.environment, config.marks.enabled)
+        if why is not None:
+            return _error(f"--model {args.model}: {why}", EXIT_FILE)
     pipeline = Pipeline(config, model=model)
     recorder = None
     if args.log:
