@@ -190,3 +190,15 @@ def test_load_model_takes_a_marks_only_file_and_says_why_where_it_cannot(marks_o
     # The units' checks read as before.
     assert model_problem(PlaceModel(config.environment), config.environment, True).startswith(
         "the model was never fitted")
+
+
+def test_placeloop_replay_refuses_a_model_that_cannot_decode_its_session(marks_only, tmp_path):
+    from rig_adapters.sim.recording import record_simulated_session
+
+    tmp, model, _ = marks_only
+    plain = parse_config(tomli_w.dumps({**BASE, "marks": {"enabled": False}, "session": {"learn_s": 0.0}}))
+    log = record_simulated_session(plain, tmp_path / "log", until_s=5.0, seed=2)
+    proc = subprocess.run([sys.executable, "-m", "rig_adapters.cli", "replay", str(log), "--model", str(model)],
+                          cwd=ROOT, capture_output=True, text=True, timeout=300)
+    assert proc.returncode == EXIT_FILE, proc.stderr[-2000:]
+    assert "decodes from waveform marks only" in proc.stderr
