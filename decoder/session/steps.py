@@ -151,10 +151,12 @@ def model_problem(model: PlaceModel, environment: Environment, marks_enabled: bo
         return "the model's rate maps hold negative or non-finite rates"
     marks = model.mark_model_
     if marks is not None and marks.environment != environment:
-        return "the model's mark model was learnt in another environment; use a model learnt with this config"
+        return ("the model's mark model was learnt in another environment; use a model learnt with this config's "
+                "environment")
     if ids.size == 0:
         if marks is None:
-            return "the model has no units and no mark model, so it has nothing to decode from"
+            return ("the model has no units and no mark model, so it has nothing to decode from; use the model "
+                    "file of a session that learnt units or marks")
         if not marks_enabled:
             return ("the model decodes from waveform marks only (it has no units) and this config's [marks] is "
                     "not enabled; set enabled = true under [marks] to decode with it")
