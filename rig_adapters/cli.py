@@ -152,6 +152,7 @@ def _write_summary(path: str, summary: dict) -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     from decoder.session.pipeline import Pipeline
+    from decoder.session.steps import model_problem
     from decoder.encoding.place_model import ModelFileError, PlaceModel
     from rig_adapters.live.loop import LiveLoop
     from rig_adapters.sessions.summary import jsonable
@@ -183,6 +184,10 @@ def cmd_run(args: argparse.Namespace) -> int:
             model = PlaceModel.load(args.model)
         except ModelFileError as exc:
             return _error(str(exc), EXIT_FILE)
+        # The check a load_model request gets: a model that cannot decode this session never starts it.
+        why = model_problem(model, config.environment, config.marks.enabled)
+        if why is not None:
+            return _error(f"--model {args.model}: {why}", EXIT_FILE)
     pipeline = Pipeline(config, model=model)
     recorder = None
     if args.log:
@@ -323,6 +328,7 @@ def cmd_keys(args: argparse.Namespace) -> int:
 def cmd_replay(args: argparse.Namespace) -> int:
     from decoder.config import parse_settings, with_overrides
     from decoder.encoding.place_model import ModelFileError, PlaceModel
+    from decoder.session.steps import model_problem
     from rig_adapters.sessions.summary import jsonable
     from rig_adapters.sessions.recorder import LogFormatError
     from rig_adapters.sessions.replay import replay_session, session_config
@@ -333,6 +339,9 @@ def cmd_replay(args: argparse.Namespace) -> int:
         if overrides:
             config = with_overrides(config, overrides)
         model = PlaceModel.load(args.model) if args.model else None
+        why = model_problem(model, config.environment, config.marks.enabled) if model is not None else None
+        if why is not None:
+            return _error(f"--model {args.model}: {why}", EXIT_FILE)
         result = replay_session(args.log, config=config, model=model, realtime=args.realtime)
     except (LogFormatError, ModelFileError, OSError) as exc:
         return _error(str(exc), EXIT_FILE)

@@ -153,3 +153,60 @@ def test_a_place_model_without_spikes_is_calibrated_on_the_marks_alone():
     assert min(fit.map_median_cm, fit.mean_median_cm) < 15.0
     with pytest.raises(ValueError, match="held-out"):
         place.calibrate(step_s)   # the units alone hold nothing to fit on
+
+
+def _stream(cap, counters):
+    from decoder.config import MarkSettings, SessionSettings
+    from decoder.messages import GroupAnnounce
+    from decoder.session.marks import MarkStream
+
+    stream = MarkStream(MarkSettings(enabled=True, max_spikes_per_step=cap), SessionSettings(), TRACK, 12.0, 3.0,
+                        0.01, counters)
+    stream.announce(GroupAnnounce("ephys", 0, [10, 11], [3, 3]))
+    return stream
+
+
+def test_a_held_out_step_weighs_the_marks_a_live_step_weighs_under_the_cap_per_step():
+    rng = np.random.default_rng(5)
+    model = _learned(rng).fit(np.full(TRACK.n_bins, 2.0), TRACK.valid_mask)
+    step_s, cap, n_steps = 0.02, 3, 4
+    # Steps of 0, 2, 5 and 7 spikes: the last two beyond the cap of [marks] max_spikes_per_step.
+    per_step = [0, 2, 5, 7]
+    index = np.repeat(np.arange(n_steps), per_step)
+    t = (index + rng.uniform(0.05, 0.95, index.size)) * step_s
+    order = np.lexsort((t, index))
+    index, t = index[order], t[order]
+    groups = 10 + rng.integers(0, 2, index.size)
+    marks = (60 + 40 * rng.random((index.size, 3))).astype(np.float32)
+    counters = {}
+    live = _stream(cap, counters)
+    live.install(model, step_s)
+    live.take((t, groups, marks), -math.inf)
+    held, _ = model.step_terms(index, groups, marks, n_steps, step_s, max_spikes_per_step=cap)
+    for k in range(n_steps):
+        log_like, _ = live.terms((k + 1) * step_s)
+        # The same bound, the same spikes (the first in time order), the same terms.
+        np.testing.assert_array_equal(held[k], log_like)
+    assert counters["mark_spikes_over_cap"] == (5 - cap) + (7 - cap)
+    every, _ = model.step_terms(index, groups, marks, n_steps, step_s)
+    assert not np.allclose(every[3], held[3]) and np.array_equal(every[1], held[1])
+
+
+def test_marks_dropped_while_waiting_for_the_tracker_still_reach_the_held_out_steps(monkeypatch):
+    from decoder.session import marks as marks_module
+    from decoder.session.tracking import TrackHistory
+
+    monkeypatch.setattr(marks_module, "MAX_PENDING_MARKS", 10)
+    counters = {}
+    stream = _stream(2000, counters)
+    stream.start_learning(lambda t: np.zeros(np.shape(t), np.int64))
+    silent = TrackHistory()   # no frame: nothing is placed, everything waits
+    rng = np.random.default_rng(8)
+    t = np.sort(rng.uniform(0.0, 0.6, 18))
+    for part in np.split(np.arange(18), 3):
+        stream.learn((t[part], np.full(part.size, 10), np.full((part.size, 3), 80.0, np.float32)), silent)
+    assert counters["mark_pending_dropped"] == 12 and stream.learning.counters_["spikes_placed"] == 0
+    # A live step would have decoded the dropped spikes, so the held-out buffer has them (held_out.HeldOutSpikes).
+    _, _, ids, _ = stream.learning.held_out.step_spikes(0.02)
+    first, last = stream.learning.held_out.step_range(0.02)
+    assert ids.size == int(np.count_nonzero((t[:12] > (first - 1) * 0.02) & (t[:12] <= last * 0.02)))

@@ -490,8 +490,37 @@ class MarkModel:
                       self.kernel_1d_, self.bin_scale_, self.group_scale_, self.group_log_floor_, self.valid_mask_,
                       scratch, out)
 
+    def window_log_intensity(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
+                             scratch: tuple[np.ndarray, ...], max_spikes: int) -> int:
+        """A decoding window's ``sum_k log lambda(x, m_k)`` into ``out``, over its first ``max_spikes`` spikes.
+
+        The one rule of a window, for live steps (``decoder.session.marks``)
+        and held-out steps (:meth:`step_terms`) alike: the work per step is
+        bounded, so beyond ``max_spikes`` (``[marks] max_spikes_per_step``)
+        the later spikes are left out.
+
+        Parameters
+        ----------
+        rows : ndarray of int64, shape (k,)
+            Model rows, in time order.
+        marks_uv : ndarray of float32, shape (k, n_channels_max)
+        out : ndarray of float64, shape (n_bins,)
+        scratch : from :meth:`scratch`
+        max_spikes : int
+
+        Returns
+        -------
+        int
+            Spikes left out.
+        """
+        over = max(rows.size - max_spikes, 0)
+        if over:
+            rows, marks_uv = rows[:max_spikes], marks_uv[:max_spikes]
+        self.log_intensity_sum(rows, np.ascontiguousarray(marks_uv), out, scratch)
+        return over
+
     def step_terms(self, step_index: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray, n_steps: int,
-                   window_s: float) -> tuple[np.ndarray, np.ndarray]:
+                   window_s: float, max_spikes_per_step: int | None = None) -> tuple[np.ndarray, np.ndarray]:
         """The marks' terms of ``n_steps`` windows, as a live step gives them to the decoder (after :meth:`fit`).
 
         Parameters
@@ -504,6 +533,9 @@ class MarkModel:
             Narrower marks are padded with zeros, as groups of fewer channels are.
         n_steps : int
         window_s : float
+        max_spikes_per_step : int, optional
+            Spikes weighed per window at most, the live steps' bound
+            (:meth:`window_log_intensity`); all by default.
 
         Returns
         -------
@@ -522,9 +554,10 @@ class MarkModel:
         bounds = np.searchsorted(step_index, np.arange(n_steps + 1))
         log_like = np.empty((n_steps, self.environment.n_bins))
         scratch = self.scratch()
+        cap = rows.size if max_spikes_per_step is None else max_spikes_per_step
         for i in range(n_steps):
             a, b = bounds[i], bounds[i + 1]
-            self.log_intensity_sum(rows[a:b], marks[a:b], log_like[i], scratch)
+            self.window_log_intensity(rows[a:b], marks[a:b], log_like[i], scratch, cap)
         return log_like, window_s * self.ground_total_hz_
 
     # -- readiness -----------------------------------------------------------

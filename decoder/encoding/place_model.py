@@ -282,18 +282,18 @@ class PlaceModel(OnlineCounts):
             return np.zeros(t.shape, np.int64)
         return (cv_block(t, self._t0, self.cv_block_s).astype(np.int64) % self.cv_folds).astype(np.int64)
 
-    def calibrate(self, step_s: float, marks: MarkModel | None = None) -> TemperatureFit:
+    def calibrate(self, step_s: float, marks: MarkModel | None = None, max_marks: int | None = None) -> TemperatureFit:
         """Fit (again) the temperature, drift and point estimate of :meth:`likelihood_temperature`, with marks if given.
 
         With ``marks`` (a fitted ``MarkModel`` learned beside this model, its
         spikes in the folds of :meth:`fold_of`) each held-out step is decoded
-        with its waveform marks too, weighed by ``marks.without_fold`` of the
-        step's fold, on the steps both hold (``marks.held_out`` alone if this
-        model holds no spike). Kept in :attr:`temperature_fits_`; ValueError as
-        :meth:`likelihood_temperature`.
+        with its waveform marks too (at most ``max_marks`` of them, as a live
+        step), weighed by ``marks.without_fold`` of the step's fold, on the
+        steps both hold (``marks.held_out`` alone if this model holds no spike).
+        Kept in :attr:`temperature_fits_`; ValueError as :meth:`likelihood_temperature`.
         """
         step_s = float(step_s)
-        self.temperature_fits_[step_s] = self._fit_temperature(step_s, marks)
+        self.temperature_fits_[step_s] = self._fit_temperature(step_s, marks, max_marks)
         return self.temperature_fits_[step_s]
 
     def likelihood_temperature(self, step_s: float) -> float:
@@ -351,7 +351,7 @@ class PlaceModel(OnlineCounts):
         fit = self.temperature_fits_[float(step_s)]
         return fit.drift_gain, fit.velocity_time_constant_s
 
-    def _fit_temperature(self, step_s: float, marks: MarkModel | None = None) -> TemperatureFit:
+    def _fit_temperature(self, step_s: float, marks: MarkModel | None = None, max_marks: int | None = None) -> TemperatureFit:
         if not hasattr(self, "rate_maps_hz_"):
             raise ValueError("the place model is not fitted; fit it before asking for its likelihood temperature")
         movement = self.movement_model(step_s)
@@ -403,7 +403,7 @@ class PlaceModel(OnlineCounts):
             if marks is not None:
                 a, b = np.searchsorted(step_index, [run[0], run[-1] + 1])
                 fold_terms.append(marks_of_fold[fold].step_terms(step_index[a:b] - run[0], group_ids[a:b],
-                                                                 marks_uv[a:b], run.size, step_s))
+                                                                 marks_uv[a:b], run.size, step_s, max_marks))
         walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
         common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz,
                       fold_mark_terms=fold_terms if marks is not None else None)

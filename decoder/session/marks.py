@@ -134,9 +134,12 @@ class MarkStream:
             self._pending.append(batch)
             self._n_pending += batch[0].size
             while self._n_pending > MAX_PENDING_MARKS:
-                dropped = self._pending.pop(0)
-                self._n_pending -= dropped[0].size
-                self.counters["mark_pending_dropped"] += dropped[0].size
+                t, g, m = self._pending.pop(0)
+                self._n_pending -= t.size
+                self.counters["mark_pending_dropped"] += t.size
+                # Never placed (no tracked position reached them), yet a live step would decode them:
+                # the held-out steps of calibration keep them, as they keep spikes that are not placed.
+                self.learning.held_out.add(t, g, m)
         self.settle(tracked, tracked.newest_t_s)
 
     def settle(self, tracked: TrackHistory, until_s: float) -> None:
@@ -224,9 +227,6 @@ class MarkStream:
                 at += k
         else:
             rows, marks = np.zeros(0, np.int64), np.zeros((0, int(self.decoding.group_channels_.max())), np.float32)
-        cap = self.settings.max_spikes_per_step
-        if rows.size > cap:
-            self.counters["mark_spikes_over_cap"] += rows.size - cap
-            rows, marks = rows[:cap], marks[:cap]
-        self.decoding.log_intensity_sum(rows, np.ascontiguousarray(marks), self._log_like, self._scratch)
+        self.counters["mark_spikes_over_cap"] += self.decoding.window_log_intensity(
+            rows, marks, self._log_like, self._scratch, self.settings.max_spikes_per_step)
         return self._log_like, self._expected

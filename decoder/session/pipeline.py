@@ -463,7 +463,7 @@ class Pipeline:
             mark_model = model.mark_model_
         # Everything that can fail comes before the first assignment: a failure leaves the session as it was.
         decoder = build_decoder(model, self.environment, d, self._zone_masks, self.config.model.rate_floor_hz,
-                                marks=mark_model)
+                                marks=mark_model, max_marks_per_step=self.config.marks.max_spikes_per_step)
         marks = self.marks if mark_model is not None else None
         steps = DecodingSteps(decoder, model.unit_ids_, self.schedule, self.counters, marks)
         if self.marks is not None:

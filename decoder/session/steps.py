@@ -32,7 +32,8 @@ MAX_STEPS_PER_MESSAGE = 500
 
 
 def build_decoder(model: PlaceModel, environment: Environment, settings: DecoderSettings,
-                  zone_masks: np.ndarray, rate_floor_hz: float, marks: MarkModel | None = None) -> BayesDecoder:
+                  zone_masks: np.ndarray, rate_floor_hz: float, marks: MarkModel | None = None,
+                  max_marks_per_step: int | None = None) -> BayesDecoder:
     """The session's decoder for a fitted model, as ``settings.method`` asks.
 
     ``"sliding_window"``: windows of ``window_s`` with ``settings.prior`` and
@@ -65,6 +66,8 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     rate_floor_hz : float
     marks : MarkModel, optional
         The fitted mark model that decodes beside the units.
+    max_marks_per_step : int, optional
+        ``[marks] max_spikes_per_step``: a held-out step weighs at most as many marks as a live one.
 
     Returns
     -------
@@ -86,7 +89,7 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
     fitted = model.temperature_fits_.get(float(settings.step_s))
     if marks is not None and not (fitted is not None and fitted.with_marks):
         try:
-            model.calibrate(settings.step_s, marks)
+            model.calibrate(settings.step_s, marks, max_marks_per_step)
         except ValueError as exc:
             logger.warning("%s; the filter is calibrated without the marks", exc)
     try:
@@ -107,6 +110,57 @@ def build_decoder(model: PlaceModel, environment: Environment, settings: Decoder
         drift_gain=drift_gain, velocity_time_constant_s=time_constant_s, heading_velocity=heading_velocity,
         point_estimate=point_estimate, **common,
     )
+
+
+def model_problem(model: PlaceModel, environment: Environment, marks_enabled: bool) -> str | None:
+    """Why ``model`` cannot decode a session in ``environment``, or None if it can.
+
+    A model decodes from its units, from its mark model (``PlaceModel.mark_model_``)
+    where the session's ``[marks]`` is enabled, or from both; one with
+    neither would decode nothing but its prior, step after step.
+
+    Parameters
+    ----------
+    model : PlaceModel
+        Loaded from a file or fitted.
+    environment : Environment
+        The session's.
+    marks_enabled : bool
+        Whether the session's ``[marks]`` table is enabled.
+
+    Returns
+    -------
+    str or None
+        A sentence that says what to do, for a refusal.
+    """
+    if not hasattr(model, "rate_maps_hz_"):
+        return "the model was never fitted; fit it (or load a fitted one) first"
+    if model.environment != environment:
+        if type(model.environment) is type(environment) and model.environment.bin_cm != environment.bin_cm:
+            return (f"the model's bins are {model.environment.bin_cm} cm, the session's "
+                    f"{environment.bin_cm} cm; use a model learnt with this config's environment")
+        return (f"the model was learnt in another environment ({model.environment!r}, the session's is "
+                f"{environment!r}); use a model learnt with this config's environment")
+    ids = np.asarray(model.unit_ids_)
+    rates = np.asarray(model.rate_maps_hz_)
+    if ids.ndim != 1 or rates.shape != (ids.size, environment.n_bins) \
+            or np.shape(model.visited_mask_) != (environment.n_bins,):
+        return (f"the model's maps have shape {rates.shape} for {ids.size} units; "
+                f"this environment needs ({ids.size}, {environment.n_bins})")
+    if not np.all(np.isfinite(rates)) or np.any(rates < 0):
+        return "the model's rate maps hold negative or non-finite rates"
+    marks = model.mark_model_
+    if marks is not None and marks.environment != environment:
+        return ("the model's mark model was learnt in another environment; use a model learnt with this config's "
+                "environment")
+    if ids.size == 0:
+        if marks is None:
+            return ("the model has no units and no mark model, so it has nothing to decode from; use the model "
+                    "file of a session that learnt units or marks")
+        if not marks_enabled:
+            return ("the model decodes from waveform marks only (it has no units) and this config's [marks] is "
+                    "not enabled; set enabled = true under [marks] to decode with it")
+    return None
 
 
 def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:

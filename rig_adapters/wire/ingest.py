@@ -26,11 +26,10 @@ import logging
 import os
 import stat
 
-import numpy as np
-
 from decoder.messages import ControlCommand
 from decoder.session.outputs import Notice, StepOutput
 from decoder.session.pipeline import Pipeline
+from decoder.session.steps import model_problem
 from decoder.session.streams import CONTROL_STREAM
 from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire import protocol
@@ -194,32 +193,10 @@ class Ingest:
             model, why = _read_model_file(path)
             if model is None:
                 return self.refuse("bad_model", why)
-        why = self._model_problem(model)
+        why = model_problem(model, self.pipeline.environment, self.pipeline.marks is not None)
         if why is not None:
             return self.refuse("bad_model", f"{_quote(path)}: {why}; the model in use is unchanged")
         return self._answer(self.pipeline.install_model(model, self.pipeline.spike_watermark_s, loaded=True))
-
-    def _model_problem(self, model: PlaceModel) -> str | None:
-        """Why ``model`` cannot decode this session, or None if it can."""
-        env = self.pipeline.environment
-        if not hasattr(model, "rate_maps_hz_"):
-            return "the model was never fitted; fit it (or load a fitted one) first"
-        if model.environment != env:
-            if type(model.environment) is type(env) and model.environment.bin_cm != env.bin_cm:
-                return (f"the model's bins are {model.environment.bin_cm} cm, the session's "
-                        f"{env.bin_cm} cm; use a model learnt with this config's environment")
-            return (f"the model was learnt in another environment ({model.environment!r}, the session's is "
-                    f"{env!r}); use a model learnt with this config's environment")
-        ids = np.asarray(model.unit_ids_)
-        if ids.ndim != 1 or ids.size == 0:
-            return "the model has no units"
-        rates = np.asarray(model.rate_maps_hz_)
-        if rates.shape != (ids.size, env.n_bins) or np.shape(model.visited_mask_) != (env.n_bins,):
-            return (f"the model's maps have shape {rates.shape} for {ids.size} units; "
-                    f"this environment needs ({ids.size}, {env.n_bins})")
-        if not np.all(np.isfinite(rates)) or np.any(rates < 0):
-            return "the model's rate maps hold negative or non-finite rates"
-        return None
 
     @staticmethod
     def stall_request(stream: str) -> bytes:
