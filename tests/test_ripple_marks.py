@@ -212,3 +212,25 @@ def test_bad_marks_during_a_candidate_event_are_counted_and_change_nothing(sessi
     assert pipeline.ripples.digest == clean.ripples.digest
     assert [e for c in content for e in c.events] == [e for c in clean_content for e in c.events]
     assert pipeline.digest == clean.digest
+
+
+def test_a_session_with_sorted_units_and_marks_decodes_content_from_both():
+    doc = {**CONFIG, "simulation": {**CONFIG["simulation"], "marks": {"send": "both"}}}
+    runs = {}
+    for enabled in (True, False):
+        config = parse_config(tomli_w.dumps({**doc, "marks": {"enabled": enabled}}))
+        sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=2)
+        pipeline = Pipeline(config)
+        content = []
+        for msg in sim.messages(until_s=UNTIL_S):
+            content.extend(o.content for o in pipeline.on_message(msg) if isinstance(o, ContentOutput))
+        runs[enabled] = pipeline, {(b.onset_s, b.index): b for b in content}
+    (both, with_marks), (units, without) = runs[True], runs[False]
+    assert both.ripples.content.marks is not None and units.ripples.content.marks is None
+    assert both.ripples.content.decoder.n_units == units.ripples.content.decoder.n_units > 0
+    # The same ripples, bins and sorted spikes; with [marks] on, each bin adds its marked spikes too
+    # (every sorted spike is also sent as a mark here: a sorter keeps the large units).
+    assert with_marks.keys() == without.keys() and len(with_marks) > 10
+    assert all(with_marks[k].n_spikes >= without[k].n_spikes for k in with_marks)
+    assert sum(with_marks[k].n_spikes for k in with_marks) > sum(without[k].n_spikes for k in without)
+    assert any(not np.allclose(with_marks[k].posterior, without[k].posterior) for k in with_marks)
