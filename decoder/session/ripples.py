@@ -176,8 +176,7 @@ class RippleStream:
         self.detector: RippleDetector | None = None
         self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
                                               "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
-                                              "events", "content_bins",
-                                              "content_marks_over_cap")}
+                                              "events", "content_bins", "content_marks_over_cap")}
         self.content: ReplayContent | None = None
         self.events_: deque[ContentEvent] = deque(maxlen=EVENTS_KEPT)
         self._next_s = math.nan
