@@ -54,7 +54,9 @@ chunks of ``chunk_s`` as an acquisition system would:
   time: the deciding bin's end, or the ripple's detection for a bin that
   ended before it). ``--events`` prints each replay's truth,
   draw, approach and length, the decision and when, and the rank
-  correlation and its z score bin by bin.
+  correlation and its z score bin by bin. ``content_bin_cpu_ms_p50/p99``:
+  the thread's CPU time per content bin decoded as the spikes close it
+  (decoding and judging; bins an LFP chunk completes are left out).
 
 * ``--marks``: the replay content a second time, on the same session
   (``configs/w_maze_ripples_marks.toml`` simulates the same cells, path, LFP
@@ -260,7 +262,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     bank.arm(0.0)
     tracked = TrackHistory()
     stream = RippleStream(config.ripples, bank, tracked)
-    lfp, bins = [], []
+    lfp, bins, bin_cpu_ms = [], [], []
     watermark = -np.inf
     learning = True
     for msg in session.messages(until_s=duration_s):
@@ -290,7 +292,12 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                     mark_stream.learn(batch, tracked)
                 else:
                     stream.take_marks(batch)
-            bins.extend(stream.content_due(watermark))
+            c0 = time.thread_time()
+            due = stream.content_due(watermark)
+            if due:
+                # The thread's CPU time per content bin of the call (decoding and judging), free of the scheduler.
+                bin_cpu_ms.extend([(time.thread_time() - c0) * 1e3 / len(due)] * len(due))
+                bins.extend(due)
         elif isinstance(msg, LfpChunk):
             lfp.append(msg.samples_uv())
             bins.extend(out for out in stream.take(msg, watermark) if isinstance(out, ContentOutput))
@@ -342,6 +349,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         "content_bin_ms": 1e3 * config.ripples.content_bin_s,
         "content_place_cells": place_cells,
         "content_input": "marks" if marks else "sorted units",
+        "content_bin_cpu_ms_p50": float(np.median(bin_cpu_ms)) if bin_cpu_ms else None,
+        "content_bin_cpu_ms_p99": float(np.percentile(bin_cpu_ms, 99)) if bin_cpu_ms else None,
     }
 
 
