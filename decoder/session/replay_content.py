@@ -393,9 +393,15 @@ class ReplayContent:
             self._t, self._rows = self._t[order], self._rows[order]
 
     def take_marks(self, t_s: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray) -> None:
-        """Hold a batch of checked marked spikes (times in s sorted, group ids, shape (n,); marks in uV,
-        shape (n, n_channels)) for the events to come; groups the mark model does not know are left out
-        (the behavioural steps count them).
+        """Hold a batch of checked marked spikes for the events to come.
+
+        Parameters
+        ----------
+        t_s : ndarray of float64, shape (n,)
+            Times (s), sorted.
+        group_ids : ndarray of int64, shape (n,)
+            Groups the mark model does not know are left out here (the behavioural steps count them).
+        marks_uv : ndarray of float32, shape (n, n_channels)
         """
         t = np.asarray(t_s, np.float64)
         if self.marks is None or not t.size:
