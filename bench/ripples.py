@@ -1,6 +1,7 @@
 """Online ripple detection: latency, hits and false detections against the offline reference; chunk cost.
 
     python bench/ripples.py --json out/ripples.json [--duration-s 300] [--chunk-s 0.002] [--seed 1]
+                            [--marks] [--content-only]
 
 One run, one simulated session (rig_adapters.sim.lfp: 1/f background, theta
 while running, ripples with smoothly rising envelopes while resting; the
@@ -53,7 +54,19 @@ chunks of ``chunk_s`` as an acquisition system would:
   time: the deciding bin's end, or the ripple's detection for a bin that
   ended before it). ``--events`` prints each replay's truth,
   draw, approach and length, the decision and when, and the rank
-  correlation and its z score bin by bin.
+  correlation and its z score bin by bin. ``content_bin_cpu_ms_p50/p99``:
+  the thread's CPU time per content bin decoded as the spikes close it
+  (decoding and judging; bins an LFP chunk completes are left out).
+
+* ``--marks``: the replay content a second time, on the same session
+  (``configs/w_maze_ripples_marks.toml`` simulates the same cells, path, LFP
+  and replays) sent as tetrode marks alone, a third of the cells small and
+  every tetrode with multi-unit activity: a mark model learned by the
+  session's ``MarkStream`` over the same ``--learn-s``, each content bin
+  adding the marks' log-likelihood and expected count. Its figures carry the
+  prefix ``marks_`` (``marks_content_accuracy``,
+  ``marks_content_decision_ms_p50``, ...). ``--content-only`` skips the
+  detection and chunk-cost parts.
 
 Bar (issue 14): detection_latency_ms_p50 <= 12 and below
 reference_latency_ms_p50, hit_rate >= 0.95, false_per_min <= 0.5,
@@ -76,7 +89,8 @@ sys.path.insert(0, str(ROOT))
 
 from decoder.config import SafetyCaps, TriggerRule, load_config  # noqa: E402
 from decoder.encoding.place_model import PlaceModel  # noqa: E402
-from decoder.messages import Heartbeat, SpikeBatch, TrackerFrames  # noqa: E402
+from decoder.messages import GroupAnnounce, Heartbeat, MarkedSpikes, SpikeBatch, TrackerFrames  # noqa: E402
+from decoder.session.marks import MarkStream  # noqa: E402
 from decoder.session.ripples import ContentOutput, RippleStream  # noqa: E402
 from decoder.session.tracking import TrackHistory  # noqa: E402
 from decoder.session.triggers import TriggerBank  # noqa: E402
@@ -217,14 +231,28 @@ GOAL_CM, GOAL_RADIUS_CM = (0.0, 80.0), 12.0
 
 
 def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
-                place_cells: int, show_events: bool = False) -> dict:
-    """Replay content on the W maze: the towards-the-goal rule against the simulator's truth."""
+                place_cells: int, show_events: bool = False, marks: bool = False) -> dict:
+    """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
+
+    With ``marks``, the same session (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and
+    replays) reaches the decoder as tetrode marks alone, learned by the session's ``MarkStream``.
+    """
     config = load_config(ROOT / "configs" / "w_maze_ripples.toml")
+    if marks:
+        sorted_config = config
+        config = load_config(ROOT / "configs" / "w_maze_ripples_marks.toml")
+        same = {k: v for k, v in config.simulation.items() if k != "marks"} == sorted_config.simulation
+        assert same, "the marks scenario must simulate the sorted one's session"
     env = config.environment
     settings = SimulationSettings.from_dict(dict(config.simulation, n_place_cells=place_cells,
                                                  replay={"goal_cm": list(GOAL_CM)}))
     session = SimulatedSession(env, settings, seed)
-    model = PlaceModel(env, **config.model.place_model_kwargs())
+    m = config.model
+    model = PlaceModel(env, unit_ids=np.zeros(0, np.int64) if marks else None, **m.place_model_kwargs())
+    mark_stream = None
+    if marks:
+        mark_stream = MarkStream(config.marks, config.session, env, m.smooth_cm, m.min_speed_cm_s, m.rate_floor_hz, {})
+        mark_stream.start_learning(model.fold_of)
     goal = CircleZone("goal", GOAL_CM, GOAL_RADIUS_CM)
     masks = zone_masks([goal], env)
     # Caps loose enough that every decision is seen: this measures the classification, not the caps.
@@ -234,7 +262,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     bank.arm(0.0)
     tracked = TrackHistory()
     stream = RippleStream(config.ripples, bank, tracked)
-    lfp, bins = [], []
+    lfp, bins, bin_cpu_ms = [], [], []
     watermark = -np.inf
     learning = True
     for msg in session.messages(until_s=duration_s):
@@ -242,18 +270,34 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
             tracked.add(msg.t_s.tolist(), msg.xy_cm.tolist())
             if learning:
                 model.update_frames(msg.t_s, msg.xy_cm)
-        elif isinstance(msg, (SpikeBatch, Heartbeat)) and msg.source == SPIKE_SOURCE:
+        elif isinstance(msg, GroupAnnounce) and mark_stream is not None:
+            mark_stream.announce(msg)
+        elif isinstance(msg, (SpikeBatch, MarkedSpikes, Heartbeat)) and msg.source == SPIKE_SOURCE:
             t = msg.t_s if isinstance(msg, Heartbeat) else (msg.t_s[-1] if msg.t_s.size else watermark)
             watermark = max(watermark, float(t))
             if learning and watermark >= learn_s:
                 learning = False
-                stream.install_model(model.fit(), env, masks, config.model.rate_floor_hz)
+                model.fit()
+                mark_model = (mark_stream.fit(model.occupancy_s_, model.visited_mask_, tracked)
+                              if mark_stream is not None else None)
+                stream.install_model(model, env, masks, m.rate_floor_hz, mark_model, config.marks.max_spikes_per_step)
             if isinstance(msg, SpikeBatch):
                 if learning:
                     model.update_spikes(msg.t_s, msg.unit_id)
                 else:
                     stream.take_spikes(msg.t_s, msg.unit_id)
-            bins.extend(stream.content_due(watermark))
+            elif isinstance(msg, MarkedSpikes) and mark_stream is not None:
+                batch = mark_stream.accept(msg)
+                if learning:
+                    mark_stream.learn(batch, tracked)
+                else:
+                    stream.take_marks(batch)
+            c0 = time.thread_time()
+            due = stream.content_due(watermark)
+            if due:
+                # The thread's CPU time per content bin of the call (decoding and judging), free of the scheduler.
+                bin_cpu_ms.extend([(time.thread_time() - c0) * 1e3 / len(due)] * len(due))
+                bins.extend(due)
         elif isinstance(msg, LfpChunk):
             lfp.append(msg.samples_uv())
             bins.extend(out for out in stream.take(msg, watermark) if isinstance(out, ContentOutput))
@@ -304,26 +348,14 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         "content_min_correlation": min_correlation,
         "content_bin_ms": 1e3 * config.ripples.content_bin_s,
         "content_place_cells": place_cells,
+        "content_input": "marks" if marks else "sorted units",
+        "content_bin_cpu_ms_p50": float(np.median(bin_cpu_ms)) if bin_cpu_ms else None,
+        "content_bin_cpu_ms_p99": float(np.percentile(bin_cpu_ms, 99)) if bin_cpu_ms else None,
     }
 
 
-def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--json", default=None, help="write results here")
-    parser.add_argument("--duration-s", type=float, default=300.0)
-    parser.add_argument("--chunk-s", type=float, default=0.002, help="LFP chunk length (s), at most 0.005")
-    parser.add_argument("--rate-hz", type=float, default=1500.0)
-    parser.add_argument("--channels", type=int, default=8)
-    parser.add_argument("--seed", type=int, default=1)
-    parser.add_argument("--content-duration-s", type=float, default=420.0,
-                        help="simulated seconds of the replay-content run (W maze)")
-    parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
-    parser.add_argument("--place-cells", type=int, default=150,
-                        help="place cells of that run (50-150 units on a W track is common in the literature)")
-    parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
-    parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
-    parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
-    args = parser.parse_args(argv)
+def detection_run(args: argparse.Namespace) -> dict:
+    """Online detection and the plain causal reference on one simulated session, scored against the offline one."""
     rate = args.rate_hz
     speed, x, ripples = simulate(args.duration_s, rate, args.channels, args.seed)
     ref = offline_ripples(x, rate)
@@ -342,7 +374,7 @@ def main(argv=None) -> int:
     on, off = ref.onset_s[keep], ref.offset_s[keep]
     ours = score(np.array([d for d in online if d >= warm]), on, off, ripples, speed, rate)
     theirs = score(np.array([d for d in reference if d >= warm]), on, off, ripples, speed, rate)
-    result = {
+    return {
         "detection_latency_ms_p50": ours["latency_ms_p50"],
         "detection_latency_ms_p90": ours["latency_ms_p90"],
         "reference_latency_ms_p50": theirs["latency_ms_p50"],
@@ -362,9 +394,41 @@ def main(argv=None) -> int:
         "rate_hz": rate,
         "channels": args.channels,
     }
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--json", default=None, help="write results here")
+    parser.add_argument("--duration-s", type=float, default=300.0)
+    parser.add_argument("--chunk-s", type=float, default=0.002, help="LFP chunk length (s), at most 0.005")
+    parser.add_argument("--rate-hz", type=float, default=1500.0)
+    parser.add_argument("--channels", type=int, default=8)
+    parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--content-duration-s", type=float, default=420.0,
+                        help="simulated seconds of the replay-content run (W maze)")
+    parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
+    parser.add_argument("--place-cells", type=int, default=150,
+                        help="place cells of that run (50-150 units on a W track is common in the literature)")
+    parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
+    parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
+    parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
+    parser.add_argument("--marks", action="store_true",
+                        help="run the replay content a second time on the same session sent as tetrode marks "
+                             "(configs/w_maze_ripples_marks.toml), its figures under marks_content_*")
+    parser.add_argument("--content-only", action="store_true",
+                        help="skip the detection and chunk-cost parts: replay content only")
+    args = parser.parse_args(argv)
+    result: dict = {}
+    if not args.content_only:
+        result.update(detection_run(args))
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
                               args.min_correlation, args.place_cells, args.events))
-    result.update(chunk_cost(args.chunk_s, args.seed))
+    if args.marks:
+        marks = content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins, args.min_correlation,
+                            args.place_cells, args.events, marks=True)
+        result.update({f"marks_{k}": v for k, v in marks.items()})
+    if not args.content_only:
+        result.update(chunk_cost(args.chunk_s, args.seed))
     text = json.dumps(result, indent=2)
     print(text)
     if args.json:

@@ -311,6 +311,7 @@ class Pipeline:
                 self.marks.learn(marks, self.positions.tracked)
             elif self.state == "decoding":
                 self.steps.take_marks(marks)
+                self.ripples.take_marks(marks)
         if self.state == "decoding":
             steps: list[Output] = [self._decode_step(k, previous) for k in self.steps.due(now)]
             content = self.ripples.content_due(now)
@@ -469,7 +470,9 @@ class Pipeline:
         if self.marks is not None:
             self.marks.install(mark_model, decoder.window_s)
         if self.config.ripples.source:
-            self.ripples.install_model(model, self.environment, self._zone_masks, self.config.model.rate_floor_hz)
+            self.ripples.install_model(model, self.environment, self._zone_masks, self.config.model.rate_floor_hz,
+                                       mark_model if marks is not None else None,
+                                       self.config.marks.max_spikes_per_step)
         self.model = model
         self.model_is_loaded = loaded
         self.steps = steps

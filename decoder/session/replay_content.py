@@ -6,7 +6,11 @@ behavioural decoding (its filter, its movement model, its step schedule) does
 not follow such jumps and is left as it is; beside it, :class:`ReplayContent`
 decodes a second schedule of short non-overlapping bins of ``bin_s`` (10-20 ms
 is common practice) from the event's start, each bin on its own with the
-uniform prior over the model's bins, with the plain Poisson likelihood, until
+uniform prior over the model's bins, with the plain Poisson likelihood of the
+sorted units and, when a mark model decodes beside them, the marks' terms
+(``sum_k log lambda(x, m_k)`` over the bin's marked spikes and their expected
+count, ``MarkModel.log_intensity_sum`` and ``ground_total_hz_``: what a
+behavioural step adds, untempered here like the units' terms), until
 the event's LFP offset (the ripple envelope falling back, :meth:`ReplayContent.close`)
 or ``max_event_s`` after the start, whichever comes first. A bin is decoded
 once the spikes have passed its end and the LFP its start, so that no bin
@@ -54,6 +58,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from decoder.encoding.mark_model import MarkModel
 from decoder.inference.decoding import BayesDecoder
 from decoder.space.environments import Environment
 
@@ -235,6 +240,7 @@ class ContentBin(NamedTuple):
     posterior : ndarray of float64, shape (n_bins,)
     map_xy_cm : ndarray of float64, shape (2,)
     n_spikes : int
+        Sorted units' spikes and marked spikes decoded in the bin.
     mean_mass : ndarray of float64, shape (n_zones,)
         Zone mass averaged over the event's bins so far (NaN before the first one used).
     rank_correlation : ndarray of float64, shape (n_zones,)
@@ -247,6 +253,8 @@ class ContentBin(NamedTuple):
     rank_z : ndarray of float64, shape (n_zones,)
         The z score of ``rank_correlation`` (:meth:`SequenceMeasures.rank_z`):
         the evidence the sequence rules ask of it.
+    n_marks_over_cap : int
+        Marked spikes of the bin beyond ``max_marks_per_bin``, left out.
     """
 
     t_s: float
@@ -262,6 +270,7 @@ class ContentBin(NamedTuple):
     correlation: np.ndarray
     slope_cm_s: np.ndarray
     rank_z: np.ndarray
+    n_marks_over_cap: int = 0
 
 
 class ReplayContent:
@@ -286,7 +295,14 @@ class ReplayContent:
         is the prior itself, whose mean distance to a zone would pull every
         line towards the environment's middle (bins without spikes are left
         out of line fitting in common practice). The event goes on: it ends
-        with the LFP, not with a lull in the spikes.
+        with the LFP, not with a lull in the spikes. Marked spikes count as spikes.
+    marks : MarkModel, optional
+        A fitted mark model: each bin adds the marks' log-likelihood and
+        expected count of its marked spikes (:meth:`take_marks`), as a
+        behavioural step does. The decoder may then have no unit at all.
+    max_marks_per_bin : int, default 2000
+        Marked spikes decoded per bin at most (``[marks] max_spikes_per_step``);
+        beyond, the rest are left out and reported (``ContentBin.n_marks_over_cap``).
 
     Examples
     --------
@@ -304,7 +320,8 @@ class ReplayContent:
     """
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
-                 distance_cm: np.ndarray, max_event_s: float, lead_s: float = 0.0, min_spikes: int = 1) -> None:
+                 distance_cm: np.ndarray, max_event_s: float, lead_s: float = 0.0, min_spikes: int = 1,
+                 marks: MarkModel | None = None, max_marks_per_bin: int = 2000) -> None:
         if decoder.transition is not None:
             raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
                              "behavioural movement model does not hold; build the decoder with prior='uniform'")
@@ -328,18 +345,30 @@ class ReplayContent:
         self._start_s = math.nan
         self._offset_s = math.inf
         self._next = 0
+        self.marks = marks
+        self.max_marks_per_bin = int(max_marks_per_bin)
+        if marks is not None:
+            self._mark_width = int(marks.group_channels_.max())
+            self._mark_t = np.zeros(0)
+            self._mark_rows = np.zeros(0, np.int64)
+            self._mark_uv = np.zeros((0, self._mark_width), np.float32)
+            self._mark_scratch = marks.scratch()
+            self._mark_log_like = np.empty(marks.environment.n_bins)
+            # The marks' ground-process rate over one bin: the expected count a behavioural step subtracts.
+            self._mark_expected = self.bin_s * marks.ground_total_hz_
 
     @classmethod
     def for_model(cls, rate_maps_hz: np.ndarray, environment: Environment, valid_mask: np.ndarray,
                   zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, lead_s: float = 0.0,
                   unit_ids: np.ndarray | None = None, rate_floor_hz: float = 0.01,
-                  min_spikes: int = 1) -> ReplayContent:
-        """Content decoding for rate maps (shape (n_units, n_bins), Hz), with the uniform prior."""
+                  min_spikes: int = 1, marks: MarkModel | None = None,
+                  max_marks_per_bin: int = 2000) -> ReplayContent:
+        """Content decoding for rate maps (shape (n_units, n_bins), Hz) and ``marks``, with the uniform prior."""
         decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
                                zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
         ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
         return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, lead_s,
-                   min_spikes)
+                   min_spikes, marks, max_marks_per_bin)
 
     @property
     def active(self) -> bool:
@@ -362,6 +391,39 @@ class ReplayContent:
         if t.size and self._t.size > t.size and self._t[-t.size - 1] > t[0]:
             order = np.argsort(self._t, kind="stable")
             self._t, self._rows = self._t[order], self._rows[order]
+
+    def take_marks(self, t_s: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray) -> None:
+        """Hold a batch of checked marked spikes for the events to come.
+
+        Parameters
+        ----------
+        t_s : ndarray of float64, shape (n,)
+            Times (s), sorted.
+        group_ids : ndarray of int64, shape (n,)
+            Groups the mark model does not know are left out here (the behavioural steps count them).
+        marks_uv : ndarray of float32, shape (n, n_channels)
+        """
+        t = np.asarray(t_s, np.float64)
+        if self.marks is None or not t.size:
+            return
+        rows = self.marks.rows_of(group_ids)
+        known = rows >= 0
+        t, rows = t[known], rows[known]
+        if not t.size:
+            return
+        given = np.asarray(marks_uv, np.float32)[known][:, : self._mark_width]
+        # Narrower marks padded with zeros, as the behavioural window pads a group of fewer channels.
+        uv = np.zeros((t.size, self._mark_width), np.float32)
+        uv[:, : given.shape[1]] = given
+        keep_from = t[-1] - self.max_event_s - self.lead_s - _HOLD_MARGIN_S
+        old = int(np.searchsorted(self._mark_t, keep_from))
+        self._mark_t = np.concatenate([self._mark_t[old:], t])
+        self._mark_rows = np.concatenate([self._mark_rows[old:], rows])
+        self._mark_uv = np.concatenate([self._mark_uv[old:], uv])
+        if self._mark_t.size > t.size and self._mark_t[-t.size - 1] > t[0]:
+            order = np.argsort(self._mark_t, kind="stable")
+            self._mark_t, self._mark_rows = self._mark_t[order], self._mark_rows[order]
+            self._mark_uv = self._mark_uv[order]
 
     @property
     def onset_s(self) -> float:
@@ -416,10 +478,21 @@ class ReplayContent:
         a, b = np.searchsorted(self._t, (start, stop), side="left")
         counts = np.bincount(self._rows[a:b], minlength=self._n_units)
         rows = np.flatnonzero(counts).astype(np.int64)
-        step = self.decoder.decode(rows, counts[rows].astype(np.float64))
+        n_marks = over_cap = 0
+        if self.marks is None:
+            step = self.decoder.decode(rows, counts[rows].astype(np.float64))
+        else:
+            c, d = np.searchsorted(self._mark_t, (start, stop), side="left")
+            n_marks = min(int(d - c), self.max_marks_per_bin)
+            over_cap = int(d - c) - n_marks
+            self.marks.log_intensity_sum(self._mark_rows[c:c + n_marks], self._mark_uv[c:c + n_marks],
+                                         self._mark_log_like, self._mark_scratch)
+            step = self.decoder.decode(rows, counts[rows].astype(np.float64), self._mark_log_like,
+                                       self._mark_expected)
+        n_spikes = step.n_spikes + n_marks
         m = self.measures
-        if step.n_spikes >= self.min_spikes:
+        if n_spikes >= self.min_spikes:
             m.add(0.5 * (start + stop), step.posterior)
         r, slope = m.line()
         return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
-                          step.n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z())
+                          n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z(), over_cap)

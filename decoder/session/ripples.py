@@ -22,7 +22,8 @@ counted (``ripples_moving``) and reported, but judged by no rule.
 Once a model is installed (:meth:`RippleStream.install_model`), every ripple
 detected at rest also starts a candidate event whose content is decoded in
 short bins from just before its onset (``decoder.session.replay_content``), fed with the
-spike source's spikes (:meth:`RippleStream.take_spikes`), each bin decoded
+spike source's spikes (:meth:`RippleStream.take_spikes`) and, when a mark model decodes
+beside the units, its checked marked spikes (:meth:`RippleStream.take_marks`), each bin decoded
 once the spikes' watermark has passed its end and the LFP its start
 (:meth:`RippleStream.content_due`, and after each chunk); the event ends at
 its LFP offset (the envelope falling back), or at a gap in the LFP. Each
@@ -42,6 +43,7 @@ from typing import NamedTuple
 import numpy as np
 
 from decoder.config import RippleSettings
+from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.place_model import PlaceModel
 from decoder.session.replay_content import ContentBin, ReplayContent
 from decoder.space.environments import Environment
@@ -174,7 +176,7 @@ class RippleStream:
         self.detector: RippleDetector | None = None
         self.counters = {name: 0 for name in ("lfp_chunks", "lfp_gaps", "lfp_overlaps", "lfp_rate_changes",
                                               "lfp_shape_changes", "lfp_unusable", "ripples", "ripples_moving",
-                                              "events", "content_bins")}
+                                              "events", "content_bins", "content_marks_over_cap")}
         self.content: ReplayContent | None = None
         self.events_: deque[ContentEvent] = deque(maxlen=EVENTS_KEPT)
         self._next_s = math.nan
@@ -222,19 +224,29 @@ class RippleStream:
         return out
 
     def install_model(self, model: PlaceModel, environment: Environment, zone_masks: np.ndarray,
-                      rate_floor_hz: float) -> None:
-        """Decode the content of the ripples to come with this fitted model (its rate maps, uniform prior)."""
+                      rate_floor_hz: float, marks: MarkModel | None = None, max_marks_per_bin: int = 2000) -> None:
+        """Decode the content of the ripples to come with this fitted model (its rate maps, uniform prior).
+
+        With ``marks`` (the fitted mark model the behavioural steps decode with), each content bin adds
+        its marked spikes' terms, at most ``max_marks_per_bin`` of them (``[marks] max_spikes_per_step``).
+        """
         s = self.settings
         self.content = ReplayContent.for_model(model.rate_maps_hz_, environment, model.visited_mask_, zone_masks,
                                                bin_s=s.content_bin_s, max_event_s=s.content_max_s,
                                                lead_s=s.content_lead_s, unit_ids=model.unit_ids_,
                                                rate_floor_hz=rate_floor_hz,
-                                               min_spikes=s.content_min_spikes)
+                                               min_spikes=s.content_min_spikes, marks=marks,
+                                               max_marks_per_bin=max_marks_per_bin)
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
         """Hold the spike source's spikes (times sorted, shape (n,) each) for content decoding."""
         if self.content is not None:
             self.content.take_spikes(t_s, unit_ids)
+
+    def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
+        """Hold the spike source's checked marked spikes (``MarkStream.accept``'s times, groups, marks) for content."""
+        if self.content is not None:
+            self.content.take_marks(*batch)
 
     def content_due(self, watermark_s: float) -> list[ContentOutput]:
         """Decode the content bins the spike stream's watermark closed, and judge each by the content rules."""
@@ -252,6 +264,7 @@ class RippleStream:
             lag = max(watermark_s - t, 0.0)
             events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag))
             self.counters["content_bins"] += 1
+            self.counters["content_marks_over_cap"] += b.n_marks_over_cap
             self.counters["events"] += len(events)
             record = self.events_[-1]
             record.n_bins += 1
