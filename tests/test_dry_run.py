@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
+from control_client import control_request
 
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
@@ -71,18 +72,6 @@ def _t(msg):
     return float(np.max(t)) if np.ndim(t) and np.size(t) else (float(t) if np.ndim(t) == 0 else -1.0)
 
 
-def _request(endpoint, command):
-    req = zmq.Context.instance().socket(zmq.REQ)
-    req.setsockopt(zmq.LINGER, 0)
-    req.setsockopt(zmq.RCVTIMEO, 10_000)
-    try:
-        req.connect(endpoint)
-        req.send(protocol.encode_control_request(command))
-        return protocol.decode_control_reply(req.recv())
-    finally:
-        req.close()
-
-
 def test_a_dry_run_publishes_no_event_where_a_stimulator_listens(session):
     tmp, model, messages = session
     ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
@@ -120,7 +109,7 @@ def test_a_dry_run_publishes_no_event_where_a_stimulator_listens(session):
         for msg in head:
             pub.send(protocol.encode(msg))
         deadline = time.monotonic() + 10.0
-        while not _request(ep["control"], "arm")["ok"]:
+        while not control_request(ep["control"], "arm")["ok"]:
             assert time.monotonic() < deadline, "the loop never armed"
             time.sleep(0.02)
         for i, msg in enumerate(messages[len(head):]):
@@ -128,7 +117,7 @@ def test_a_dry_run_publishes_no_event_where_a_stimulator_listens(session):
             if i % 500 == 0:
                 time.sleep(0.002)
         deadline = time.monotonic() + 60.0
-        while (_request(ep["control"], "status")["status"]["data_time_s"] or 0.0) < SESSION_S - 1.0:
+        while (control_request(ep["control"], "status")["status"]["data_time_s"] or 0.0) < SESSION_S - 1.0:
             assert time.monotonic() < deadline, "the loop did not decode the session"
             time.sleep(0.2)
         # The events endpoint is not bound by the loop: this test can bind it itself.

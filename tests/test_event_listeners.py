@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
+from control_client import control_request
 
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
@@ -90,20 +91,8 @@ class _Running:
         assert not self.thread.is_alive()
 
 
-def _request(endpoint, command, timeout_ms=20_000, keys=None):
-    req = zmq.Context.instance().socket(zmq.REQ)
-    req.setsockopt(zmq.LINGER, 0)
-    req.setsockopt(zmq.RCVTIMEO, timeout_ms)
-    try:
-        req.connect(endpoint)
-        req.send(protocol.encode_control_request(command))
-        return protocol.decode_control_reply(req.recv())
-    finally:
-        req.close()
-
-
 def _events_status(endpoint):
-    reply = _request(endpoint, "status")
+    reply = control_request(endpoint, "status")
     assert reply["ok"], reply
     return reply["status"]["events"]
 
@@ -171,7 +160,7 @@ class _Rig:
 def _arm(endpoint, timeout_s=20.0):
     """Arm once the first spikes are in (the session refuses an arm before); the accepted reply."""
     deadline = time.monotonic() + timeout_s
-    while not (reply := _request(endpoint, "arm"))["ok"]:
+    while not (reply := control_request(endpoint, "arm"))["ok"]:
         assert time.monotonic() < deadline, f"the loop never armed: {reply}"
         time.sleep(0.02)
     return reply
@@ -267,11 +256,11 @@ def test_an_arm_with_no_listener_is_answered_with_a_warning_and_one_with_a_liste
         reply = _arm(ep["control"])
         assert reply["status"]["armed"]
         assert "no listener on the events socket" in reply["warning"] and ep["events"] in reply["warning"]
-        assert _request(ep["control"], "disarm")["ok"]
+        assert control_request(ep["control"], "disarm")["ok"]
         sub = _sub(ep["events"])
         try:
             _wait_listeners(ep["control"], 1)
-            reply = _request(ep["control"], "arm")
+            reply = control_request(ep["control"], "arm")
             assert reply["ok"] and "warning" not in reply
         finally:
             sub.close()
@@ -287,10 +276,10 @@ def test_with_arm_requires_listener_an_unheard_arm_is_refused_counted_and_logged
     rig = _Rig(ep["rig"])
     with _Running(config, model, recorder=recorder) as loop:
         rig.send(messages[:50])
-        reply = _request(ep["control"], "arm")
+        reply = control_request(ep["control"], "arm")
         assert not reply["ok"] and reply["reason"] == "no_listener"
         assert "arm_requires_listener" in reply["error"] and ep["events"] in reply["error"]
-        status = _request(ep["control"], "status")["status"]
+        status = control_request(ep["control"], "status")["status"]
         assert not status["armed"] and status["control"]["refused"] == {"no_listener": 1}
         sub = _sub(ep["events"])
         try:
@@ -347,7 +336,7 @@ def test_events_published_to_nobody_are_counted_and_logged_once_per_run(session,
             _wait_listeners(ep["control"], 1, timeout_s=60.0)
             rig.send(messages[half:])
             deadline = time.monotonic() + 60.0
-            while (_request(ep["control"], "status")["status"]["data_time_s"] or 0.0) < 59.0:
+            while (control_request(ep["control"], "status")["status"]["data_time_s"] or 0.0) < 59.0:
                 assert time.monotonic() < deadline, "the loop did not decode the session"
                 time.sleep(0.2)
             heard = 0

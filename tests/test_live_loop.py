@@ -19,14 +19,15 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
+from control_client import control_request
 
 from decoder.config import parse_config
 from decoder.messages import SourceAnnounce, SpikeBatch, TrackerFrames
 from decoder.session.pipeline import Pipeline
-from rig_adapters.wire import protocol
-from rig_adapters.sim.demo import free_loopback_port
 from rig_adapters.sessions.recorder import read_log
+from rig_adapters.sim.demo import free_loopback_port
 from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
+from rig_adapters.wire import protocol
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -76,19 +77,6 @@ def _bind_again(sock, endpoint, timeout_s=10.0):
             if time.monotonic() > deadline:
                 raise
             time.sleep(0.1)
-
-
-def _request(endpoint, command, args=None):
-    ctx = zmq.Context.instance()
-    req = ctx.socket(zmq.REQ)
-    req.setsockopt(zmq.LINGER, 0)
-    req.setsockopt(zmq.RCVTIMEO, 10000)
-    try:
-        req.connect(endpoint)
-        req.send(protocol.encode_control_request(command, args or {}))
-        return protocol.decode_control_reply(req.recv())
-    finally:
-        req.close()
 
 
 def _bad_frames():
@@ -174,7 +162,7 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
             i += 400
             pub.send(bad[i // 400][0])
             sent += 1
-        reply = _request(control, "arm")
+        reply = control_request(control, "arm")
         assert reply["ok"], reply
         for msg in second[: len(second) // 2]:
             pub.send(protocol.encode(msg))
@@ -184,7 +172,7 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
         deadline = time.monotonic() + 20.0
         while True:
             time.sleep(0.5)
-            status = _request(control, "status")["status"]
+            status = control_request(control, "status")["status"]
             if status["armed"] is False or time.monotonic() > deadline:
                 break
         assert status["armed"] is False
@@ -209,7 +197,7 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
         # Stopped by signal once the last frame is in, not by an idle timeout: on a loaded
         # machine `placeloop control` above may take longer to start than any short timeout.
         deadline = time.monotonic() + 30.0
-        while _request(control, "status")["status"]["sources"].get("tracker", {}).get("last_seq") != 10**6:
+        while control_request(control, "status")["status"]["sources"].get("tracker", {}).get("last_seq") != 10**6:
             assert time.monotonic() < deadline, "the loop never took the last frame"
             time.sleep(0.2)
         pub.close()

@@ -21,10 +21,11 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
+from control_client import control_request
 
 from decoder.config import parse_config
 from decoder.encoding.place_model import PlaceModel
-from decoder.messages import GroupAnnounce, SpikeBatch
+from decoder.messages import SpikeBatch
 from decoder.session.pipeline import Pipeline
 from decoder.session.steps import model_problem
 from rig_adapters.console import EXIT_FILE
@@ -90,18 +91,6 @@ def _ports_config(tmp, marks_enabled=True):
     return cfg, ep
 
 
-def _request(endpoint, command):
-    req = zmq.Context.instance().socket(zmq.REQ)
-    req.setsockopt(zmq.LINGER, 0)
-    req.setsockopt(zmq.RCVTIMEO, 10_000)
-    try:
-        req.connect(endpoint)
-        req.send(protocol.encode_control_request(command))
-        return protocol.decode_control_reply(req.recv())
-    finally:
-        req.close()
-
-
 def test_placeloop_run_decodes_marks_from_a_marks_only_model_file_and_its_replay_matches(marks_only):
     tmp, model, messages = marks_only
     cfg, ep = _ports_config(tmp)
@@ -119,7 +108,7 @@ def test_placeloop_run_decodes_marks_from_a_marks_only_model_file_and_its_replay
         # The loop subscribes once its kernels are loaded: about a minute with an empty numba cache.
         assert pub.poll(120_000), "the loop never subscribed to the test rig"
         pub.recv()
-        status = _request(ep["control"], "status")["status"]
+        status = control_request(ep["control"], "status")["status"]
         assert status["state"] == "decoding"
         for i, msg in enumerate(messages):
             pub.send(protocol.encode(msg))
@@ -129,7 +118,7 @@ def test_placeloop_run_decodes_marks_from_a_marks_only_model_file_and_its_replay
         while (status["data_time_s"] or 0.0) < SESSION_S - 1.0:
             assert time.monotonic() < deadline, "the loop did not decode the session"
             time.sleep(0.2)
-            status = _request(ep["control"], "status")["status"]
+            status = control_request(ep["control"], "status")["status"]
         loop.wait(timeout=60)
     finally:
         pub.close()
