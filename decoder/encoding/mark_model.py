@@ -463,6 +463,16 @@ class MarkModel:
         """The scratch buffers :meth:`log_intensity_sum` needs, zeroed (after :meth:`fit`)."""
         return _mark_kernels.make_scratch(self.environment.n_bins, self.grid_nx_, self.kernel_1d_)
 
+    def expected_count(self, window_s: float) -> np.ndarray:
+        """Marked spikes expected in a window of ``window_s`` at each bin: the marks' term beside the log-likelihood.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_bins,)
+            ``window_s`` times the ground-process rate summed over the groups (Hz).
+        """
+        return window_s * self.ground_total_hz_
+
     def log_intensity_sum(self, rows: np.ndarray, marks_uv: np.ndarray, out: np.ndarray,
                           scratch: tuple[np.ndarray, ...], backend: str = "numba") -> int:
         """``sum_k log lambda(x, m_k)`` over a window's marked spikes, into ``out`` (n_bins,).
@@ -558,7 +568,7 @@ class MarkModel:
         for i in range(n_steps):
             a, b = bounds[i], bounds[i + 1]
             self.window_log_intensity(rows[a:b], marks[a:b], log_like[i], scratch, cap)
-        return log_like, window_s * self.ground_total_hz_
+        return log_like, self.expected_count(window_s)
 
     # -- readiness -----------------------------------------------------------
 

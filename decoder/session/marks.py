@@ -180,7 +180,7 @@ class MarkStream:
         if model is not None:
             self._scratch = model.scratch()
             self._log_like = np.empty(model.environment.n_bins)
-            self._expected = window_s * model.ground_total_hz_
+            self._expected = model.expected_count(window_s)
 
     def take(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray], closed_until_s: float) -> None:
         """Hold a batch for the steps still to close; spikes of steps already decoded are counted late."""

@@ -9,7 +9,7 @@ is common practice) from the event's start, each bin on its own with the
 uniform prior over the model's bins, with the plain Poisson likelihood of the
 sorted units and, when a mark model decodes beside them, the marks' terms
 (``sum_k log lambda(x, m_k)`` over the bin's marked spikes and their expected
-count, ``MarkModel.log_intensity_sum`` and ``ground_total_hz_``: what a
+count, ``MarkModel.log_intensity_sum`` and ``expected_count``: what a
 behavioural step adds, untempered here like the units' terms), until
 the event's LFP offset (the ripple envelope falling back, :meth:`ReplayContent.close`)
 or ``max_event_s`` after the start, whichever comes first. A bin is decoded
@@ -355,7 +355,7 @@ class ReplayContent:
             self._mark_scratch = marks.scratch()
             self._mark_log_like = np.empty(marks.environment.n_bins)
             # The marks' ground-process rate over one bin: the expected count a behavioural step subtracts.
-            self._mark_expected = self.bin_s * marks.ground_total_hz_
+            self._mark_expected = marks.expected_count(self.bin_s)
 
     @classmethod
     def for_model(cls, rate_maps_hz: np.ndarray, environment: Environment, valid_mask: np.ndarray,
