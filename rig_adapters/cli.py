@@ -328,7 +328,6 @@ def cmd_keys(args: argparse.Namespace) -> int:
 def cmd_replay(args: argparse.Namespace) -> int:
     from decoder.config import parse_settings, with_overrides
     from decoder.encoding.place_model import ModelFileError, PlaceModel
-    from decoder.session.steps import model_problem
     from rig_adapters.sessions.summary import jsonable
     from rig_adapters.sessions.recorder import LogFormatError
     from rig_adapters.sessions.replay import replay_session, session_config
@@ -339,9 +338,6 @@ def cmd_replay(args: argparse.Namespace) -> int:
         if overrides:
             config = with_overrides(config, overrides)
         model = PlaceModel.load(args.model) if args.model else None
-        why = model_problem(model, config.environment, config.marks.enabled) if model is not None else None
-        if why is not None:
-            return _error(f"--model {args.model}: {why}", EXIT_FILE)
         result = replay_session(args.log, config=config, model=model, realtime=args.realtime)
     except (LogFormatError, ModelFileError, OSError) as exc:
         return _error(str(exc), EXIT_FILE)

@@ -20,7 +20,8 @@ from decoder.config import ExperimentConfig, load_config
 from decoder.session.outputs import LearningProgress, Notice, StepOutput
 from decoder.session.pipeline import Pipeline
 from decoder.session.ripples import RippleOutput
-from decoder.encoding.place_model import PlaceModel
+from decoder.session.steps import model_problem
+from decoder.encoding.place_model import ModelFileError, PlaceModel
 from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_RIG, Ingest
 from rig_adapters.sessions.recorder import CONFIG_SIDECAR, INITIAL_MODEL_SIDECAR, LogFormatError, LogRecord, iter_records
 from rig_adapters.sessions.summary import LatencyLog, LatencySeries, session_summary
@@ -73,7 +74,8 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
         Settings to replay with; the recorded config by default.
     model : PlaceModel, optional
         Decode with this model from the start (and for every ``load_model``)
-        instead of learning as the live run did.
+        instead of learning as the live run did; one that cannot decode this
+        session (``decoder.session.steps.model_problem``) raises ModelFileError.
     keep_steps : bool
         Keep every StepOutput (memory grows with the session).
     on_output : callable, optional
@@ -97,6 +99,11 @@ def replay_session(log_dir: str | Path, config: ExperimentConfig | None = None,
     log_dir = Path(log_dir)
     session_dir = log_dir if log_dir.is_dir() else log_dir.parent
     config = config or session_config(session_dir)
+    if model is not None:
+        # The check a load_model request and `placeloop run --model` get, for replay, export and report alike.
+        why = model_problem(model, config.environment, config.marks.enabled)
+        if why is not None:
+            raise ModelFileError(f"the model given to decode with: {why}")
     initial = model
     if initial is None and (session_dir / INITIAL_MODEL_SIDECAR).exists():
         initial = PlaceModel.load(session_dir / INITIAL_MODEL_SIDECAR)
