@@ -25,7 +25,7 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
-from control_client import control_request
+from loop_helpers import BASE, control_request
 
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
@@ -39,16 +39,6 @@ from rig_adapters.wire.ingest import CHANNEL_CONTROL, CHANNEL_CONTROL_REFUSED
 
 ROOT = Path(__file__).resolve().parent.parent
 
-BASE = {
-    "environment": {"kind": "rectangle", "width_cm": 80.0, "height_cm": 80.0, "bin_cm": 4.0},
-    "model": {"cv_folds": 2, "cv_block_s": 20.0},
-    "decoder": {"window_s": 0.25, "step_s": 0.025, "prior": "state_space", "random_walk_sd_cm": 4.0},
-    "sources": {"truth": "truth"},
-    "safety": {"refractory_s": 2.0, "max_per_minute": 20, "max_per_session": 100, "stall_limit_s": 1.0},
-    "zones": [{"kind": "circle", "name": "goal", "center_cm": [60.0, 60.0], "radius_cm": 12.0}],
-    "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
-    "simulation": {"n_place_cells": 50, "n_grid_cells": 5, "n_nonspatial_cells": 5},
-}
 
 SUBSCRIBER = """
 import sys, time, zmq

@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 import tomli_w
 import zmq
-from control_client import control_request
+from loop_helpers import control_request
 
 from decoder.config import parse_config
 from decoder.encoding.place_model import PlaceModel

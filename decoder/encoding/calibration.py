@@ -369,8 +369,8 @@ def fit_temperature(
                                   velocity_time_constant_s=drift.velocity_time_constant_s,
                                   with_marks=fold_mark_terms is not None)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
-        choice = "mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map"
-        return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm, choice, drift.gain,
+        return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
+                              point_estimate_of(map_cm, mean_cm), drift.gain,
                               drift.velocity_time_constant_s, fold_mark_terms is not None)
 
     def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
@@ -450,6 +450,14 @@ def _decoded_steps(
             log_like, expected = fold_mark_terms[k]
             for (rows, counts), step_log_like in zip(steps, log_like):
                 yield decoder.decode(rows, counts, step_log_like, expected)
+
+
+def point_estimate_of(map_median_cm: float, mean_median_cm: float) -> str:
+    """The decoded position a fit chooses from the held-out medians: "mean" if smaller by ``_MEAN_MARGIN``, else "map".
+
+    A near tie goes to the MAP, which never lies between two arms.
+    """
+    return "mean" if mean_median_cm < map_median_cm * (1.0 - _MEAN_MARGIN) else "map"
 
 
 def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.ndarray) -> tuple[float, float]:

@@ -39,14 +39,14 @@ import numpy as np
 from scipy import optimize
 
 from decoder.encoding.calibration import (
-    _MEAN_MARGIN,
     TemperatureFit,
     _decoded_steps,
     _fired,
     _point_medians_cm,
     _unscored,
+    point_estimate_of,
 )
-from decoder.inference.decoding import HPD_MASS
+from decoder.inference.filtering import hpd_contains
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.headings import HeadingRing, angle_difference_deg
@@ -198,10 +198,7 @@ def choose_heading_velocity(
                               true_bins):
         points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
         if true_bin >= 0:
-            # The HPD region holds the true bin when the bins more probable than it hold less than its mass
-            # (calibration.fit_temperature's count).
-            p = step.posterior
-            inside.append(bool(p[p > p[true_bin]].sum() < HPD_MASS))
+            inside.append(bool(hpd_contains(step.posterior[np.newaxis], np.array([true_bin]))[0]))
     map_cm, mean_cm = _point_medians_cm(env, np.array(points), truth)
     logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
                 process.sd_deg_s, process.time_constant_s, min(map_cm, mean_cm), plain_cm)
@@ -209,6 +206,6 @@ def choose_heading_velocity(
         return fit
     return dataclasses.replace(
         fit, coverage=float(np.mean(inside)), map_median_cm=map_cm, mean_median_cm=mean_cm,
-        point_estimate="mean" if mean_cm < map_cm * (1.0 - _MEAN_MARGIN) else "map",
+        point_estimate=point_estimate_of(map_cm, mean_cm),
         angular_velocity_sd_deg_s=process.sd_deg_s, angular_velocity_time_constant_s=process.time_constant_s,
     )

@@ -561,11 +561,15 @@ class LiveLoop:
         except Exception:  # noqa: BLE001 - not an arm; ingest refuses it with the reason
             return False
 
+    def _event_counts(self) -> dict:
+        """Whether this is a dry run, and the events published, withheld and unheard: status and summary alike."""
+        return {"dry_run": self.dry_run, "published": self.events_sent, "withheld": self.events_withheld,
+                "unheard": self.events_unheard}
+
     def _events_status(self) -> dict:
-        """The events socket in a ``status`` reply: listeners now, events published, unheard, withheld."""
+        """The events socket in a ``status`` reply: the event counts and the listeners now."""
         listeners = self.listeners.summary() if self.listeners is not None else {}
-        return {"dry_run": self.dry_run, "published": self.events_sent, "unheard": self.events_unheard,
-                "withheld": self.events_withheld, **listeners}
+        return {**self._event_counts(), **listeners}
 
     def _reply(self, fields: dict | None) -> None:
         if fields is None:
@@ -615,8 +619,7 @@ class LiveLoop:
         listeners at the end, the most at once, subscriptions joined and left.
         """
         summary = session_summary(self.pipeline, self.latency)
-        summary["triggers"].update(dry_run=self.dry_run, published=self.events_sent, withheld=self.events_withheld,
-                                   unheard=self.events_unheard)
+        summary["triggers"].update(self._event_counts())
         if self.listeners is not None:
             summary["event_listeners"] = self.listeners.summary()
         summary["input"]["control_refused"] = dict(self.ingest.control_refused)
