@@ -672,6 +672,34 @@ def test_held_arrays_are_copies_and_memory_stays_bounded(short_session):
     assert model._ft.size <= (model.max_spike_delay_s + 2.0) * 50
 
 
+def _same_readiness(a, b):
+    for name in a:
+        np.testing.assert_array_equal(np.asarray(a[name]), np.asarray(b[name]), err_msg=name)
+
+
+def test_readiness_right_after_a_fit_gives_what_its_totals_give_afresh(short_session, tmp_path):
+    t, xy, st, su = short_session
+    half = len(t) // 2
+    cut = np.searchsorted(st, t[half])
+    model = PlaceModel(box(2.0), smooth_cm=4.0)
+    model.update_spikes(st[:cut], su[:cut])
+    model.update_frames(t[:half], xy[:half])
+    model.fit()
+    model.save(tmp_path / "fitted.npz")
+    # A loaded model computes its readiness from the saved totals, not from a fit of its own.
+    _same_readiness(model.readiness(), PlaceModel.load(tmp_path / "fitted.npz").readiness())
+    # Counted after the fit: the readiness follows the new totals, as a model never fitted gives them.
+    model.update_spikes(st[cut:], su[cut:])
+    model.update_frames(t[half:], xy[half:])
+    never_fitted = PlaceModel(box(2.0), smooth_cm=4.0)
+    never_fitted.update_spikes(st, su)
+    never_fitted.update_frames(t, xy)
+    after = model.readiness()
+    assert after.running_time_s > model.occupancy_s_.sum()
+    _same_readiness({k: v for k, v in after.items() if k != "walk_sd_cm_per_sqrt_s"},
+                    {k: v for k, v in never_fitted.readiness().items() if k != "walk_sd_cm_per_sqrt_s"})
+
+
 def test_tuned_count_so_far_matches_readiness_on_the_models_grid(foraging_model):
     # 4 cm bins and smooth_cm = 4: no coarser grid, so the very count readiness gives.
     assert foraging_model.n_tuned_units_so_far() == foraging_model.readiness().n_tuned_units
