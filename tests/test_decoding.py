@@ -400,6 +400,28 @@ def test_temperature_one_and_no_jump_change_no_bit():
                                       explicit.decode(rows, counts[rows]).posterior)
 
 
+@pytest.mark.parametrize("temperature", [1.0, 1.7])
+@pytest.mark.parametrize("layout", ["C float64", "F float64", "float32", "int"])
+@pytest.mark.parametrize("all_valid", [True, False])
+def test_tempered_log_rates_and_expected_counts_are_the_formula_bit_for_bit(temperature, layout, all_valid):
+    arena = Arena.rectangle(60, 40, bin_cm=4)
+    valid = arena.valid_mask.copy()
+    if not all_valid:
+        valid[::5] = False
+    rates = _random_rates(31, 7, arena.n_bins) * 3
+    rates[:, ::7] = 0.0  # below the floor
+    given = {"C float64": rates, "F float64": np.asfortranarray(rates), "float32": rates.astype(np.float32),
+             "int": np.round(rates).astype(np.int64)}[layout]
+    decoder = BayesDecoder(given, arena, valid, 0.2, likelihood_temperature=temperature, rate_floor_hz=0.05)
+    # The Poisson log-likelihood's two terms (Zhang et al. 1998), tempered: log of the floored
+    # rate over T, and the window's expected count over T; the floor fills the invalid bins.
+    floored = np.full(given.shape, 0.05)
+    floored[:, valid] = np.maximum(np.asarray(given, np.float64)[:, valid], 0.05)
+    np.testing.assert_array_equal(decoder._log_rate, np.log(floored) / temperature)
+    np.testing.assert_array_equal(decoder._expected_total, 0.2 * floored.sum(axis=0) / temperature)
+    assert decoder._log_rate.flags.c_contiguous
+
+
 # -- validation ---------------------------------------------------------------------------
 
 
@@ -442,6 +464,8 @@ def test_bad_counts_are_refused_with_a_clear_message_and_no_state_change(rows, c
     [
         (dict(rate_maps_hz=np.ones((2, 5))), r"shape \(n_units, 10\)"),
         (dict(rate_maps_hz=-np.ones((2, 10))), "row 0 holds a negative"),
+        (dict(rate_maps_hz=np.array([[1.0] * 10, [1.0] * 9 + [np.nan]])), "row 1 holds a negative, NaN or infinite"),
+        (dict(rate_maps_hz=np.array([[1.0] * 9 + [np.inf], [1.0] * 10])), "row 0 holds a negative, NaN or infinite"),
         (dict(valid_mask=np.zeros(10, bool)), "no bin is valid"),
         (dict(valid_mask=np.ones(9, bool)), r"shape \(10,\)"),
         (dict(window_s=0.0), "window_s must be a positive"),

@@ -672,24 +672,52 @@ def test_held_arrays_are_copies_and_memory_stays_bounded(short_session):
     assert model._ft.size <= (model.max_spike_delay_s + 2.0) * 50
 
 
+def _fed_in_two_halves(session, smooth_cm, between):
+    """A model fed the first half of ``session``, given to ``between``, then fed the rest; and one fed all at once."""
+    t, xy, st, su = session
+    half = len(t) // 2
+    cut = np.searchsorted(st, t[half])
+    model = PlaceModel(box(2.0), smooth_cm=smooth_cm)
+    model.update_spikes(st[:cut], su[:cut])
+    model.update_frames(t[:half], xy[:half])
+    between(model)
+    model.update_spikes(st[cut:], su[cut:])
+    model.update_frames(t[half:], xy[half:])
+    whole = PlaceModel(box(2.0), smooth_cm=smooth_cm)
+    whole.update_spikes(st, su)
+    whole.update_frames(t, xy)
+    return model, whole
+
+
+def _same_readiness(a, b, leave_out=()):
+    for name in a:
+        if name not in leave_out:
+            np.testing.assert_array_equal(np.asarray(a[name]), np.asarray(b[name]), err_msg=name)
+
+
+def test_readiness_right_after_a_fit_gives_what_its_totals_give_afresh(short_session, tmp_path):
+    def fit_and_compare(model):
+        model.fit()
+        model.save(tmp_path / "fitted.npz")
+        # A loaded model computes its readiness from the saved totals, not from a fit of its own.
+        _same_readiness(model.readiness(), PlaceModel.load(tmp_path / "fitted.npz").readiness())
+
+    model, never_fitted = _fed_in_two_halves(short_session, 4.0, fit_and_compare)
+    # Counted after the fit: the readiness follows the new totals, as a model never fitted gives them
+    # (all but the walk, which only a fit learns).
+    after = model.readiness()
+    assert after.running_time_s > model.occupancy_s_.sum()
+    _same_readiness(after, never_fitted.readiness(), leave_out=("walk_sd_cm_per_sqrt_s",))
+
+
 def test_tuned_count_so_far_matches_readiness_on_the_models_grid(foraging_model):
     # 4 cm bins and smooth_cm = 4: no coarser grid, so the very count readiness gives.
     assert foraging_model.n_tuned_units_so_far() == foraging_model.readiness().n_tuned_units
 
 
 def test_tuned_count_so_far_on_a_coarser_grid_is_close_and_keeps_counting(short_session):
-    t, xy, st, su = short_session
-    half = len(t) // 2
-    cut = np.searchsorted(st, t[half])
-    model = PlaceModel(box(2.0), smooth_cm=5.0)
-    model.update_spikes(st[:cut], su[:cut])
-    model.update_frames(t[:half], xy[:half])
-    model.n_tuned_units_so_far()  # the coarse grid's counts start here and follow every spike after
-    model.update_spikes(st[cut:], su[cut:])
-    model.update_frames(t[half:], xy[half:])
-    fresh = PlaceModel(box(2.0), smooth_cm=5.0)
-    fresh.update_spikes(st, su)
-    fresh.update_frames(t, xy)
+    # The coarse grid's counts start at the first call and follow every spike after.
+    model, fresh = _fed_in_two_halves(short_session, 5.0, PlaceModel.n_tuned_units_so_far)
     assert model.n_tuned_units_so_far() == fresh.n_tuned_units_so_far()
     np.testing.assert_array_equal(model._tuning_counts[: model.n_units], fresh._tuning_counts[: fresh.n_units])
     # The pooled counts hold every placed spike that lands in a grid bin (exact integers).

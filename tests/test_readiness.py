@@ -12,7 +12,9 @@ from decoder.encoding.readiness import (
     TUNED_BITS_PER_SPIKE,
     TUNED_PEAK_HZ,
     Readiness,
+    coarse_counts,
     coarse_tuning_grid,
+    count_tuned,
     count_tuned_units,
 )
 from decoder.space.environments import Arena, LinearTrack
@@ -67,3 +69,26 @@ def test_readiness_reads_as_a_mapping_of_its_fields():
     assert list(r) == ["coverage", "running_time_s", "unit_ids", "spikes_per_unit", "n_tuned_units",
                        "median_cv_error_cm", "walk_sd_cm_per_sqrt_s"]
     assert dict(r)["running_time_s"] == 12.0 and r["median_cv_error_cm"] is None and len(r) == 7
+
+
+def test_counts_on_the_coarse_grid_are_numpys_unbuffered_sums():
+    arena = Arena.rectangle(width_cm=30, height_cm=20, bin_cm=2.0)
+    _, to_grid = coarse_tuning_grid(arena, smooth_cm=5.0)
+    to_grid = to_grid.copy()
+    to_grid[::7] = -1  # bins left out, as invalid bins are
+    counts = np.random.default_rng(3).poisson(4.0, (12, arena.n_bins))
+    expected = np.zeros((12, int(to_grid.max()) + 1), np.int64)
+    into = np.flatnonzero(to_grid >= 0)
+    # Reference: numpy's np.add.at, which adds every element, repeated indices included.
+    np.add.at(expected, (slice(None), to_grid[into]), counts[:, into])
+    got = coarse_counts(counts, to_grid, expected.shape[1])
+    assert got.dtype == np.int64
+    np.testing.assert_array_equal(got, expected)
+
+
+def test_the_tuned_count_from_figures_is_the_count_from_maps():
+    rng = np.random.default_rng(5)
+    maps = rng.gamma(0.3, 4.0, (40, 50))
+    occupancy = rng.uniform(0.1, 2.0, 50)
+    bits = np.array([skaggs_bits_per_spike(m, occupancy) for m in maps])  # Skaggs et al. 1993
+    assert count_tuned(bits, maps.max(axis=1)) == count_tuned_units(maps, occupancy)

@@ -331,8 +331,12 @@ def fit_temperature(
     all_true_bins = np.concatenate(truths).tolist()
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
 
-    def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
-        """Coverage of held-out steps, the mean mass of their HPD regions and, if asked, the points' medians.
+    # The decoded points (MAP, mean) of each step by temperature, for fit()'s medians: the chosen
+    # temperature's pass is not decoded a second time (a pass costs as much as the fit's other work).
+    points_at: dict[float, np.ndarray] = {}
+
+    def held_out(temperature: float) -> tuple[float, float]:
+        """Coverage of held-out steps and the mean mass of their HPD regions; the points go to ``points_at``.
 
         Step by step, from the decoder's own HPD size: whole posteriors of
         thousands of steps would take more memory and time than the decoding.
@@ -340,6 +344,7 @@ def fit_temperature(
         part of one bin), so every ``_MASS_EVERY``-th known step estimates it.
         """
         inside, mass, n_mass = 0, 0.0, 0
+        score_points = fold_true_xy_cm is not None
         points: list[np.ndarray] = []
         steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
                                drift.gain, drift.velocity_time_constant_s, fold_mark_terms)
@@ -356,10 +361,9 @@ def fit_temperature(
                 n_hpd = round(step.hpd95_size / bin_size)
                 mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
             n_mass += 1
-        figures = (inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY)))
-        if not score_points:
-            return figures
-        return (*figures, *_point_medians_cm(walk.environment, np.array(points), np.concatenate(fold_true_xy_cm)))
+        if score_points:
+            points_at[temperature] = np.array(points)
+        return inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
 
@@ -368,7 +372,7 @@ def fit_temperature(
             return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s,
                                   with_marks=fold_mark_terms is not None)
-        _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
+        map_cm, mean_cm = _point_medians_cm(walk.environment, points_at[temperature], np.concatenate(fold_true_xy_cm))
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
                               point_estimate_of(map_cm, mean_cm), drift.gain,
                               drift.velocity_time_constant_s, fold_mark_terms is not None)

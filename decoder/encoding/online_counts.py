@@ -176,6 +176,8 @@ class OnlineCounts:
         # Row of each unit id in 0.._MAX_UNIT_TABLE - 1 (-1: none), to look
         # up a batch at once; larger or negative ids are only in _unit_row.
         self._row_table = np.zeros(0, dtype=np.int64)
+        # Counts up whenever the totals (occupancy, spike counts, units) change.
+        self._revision = 0
         if unit_ids is not None:
             ids = np.asarray(unit_ids)
             if ids.ndim != 1 or ids.dtype.kind not in "iu":
@@ -476,6 +478,7 @@ class OnlineCounts:
         row = len(self._unit_list)
         self._unit_row[uid] = row
         self._unit_list.append(uid)
+        self._revision += 1
         if 0 <= uid < _MAX_UNIT_TABLE:
             if uid >= len(self._row_table):
                 grown = np.full(min(max(2 * len(self._row_table), uid + 1), _MAX_UNIT_TABLE), -1, dtype=np.int64)
@@ -530,6 +533,7 @@ class OnlineCounts:
         self._iv_fold[k] = fold
         counted = status == _COUNTED
         np.add.at(self._fold_occ, (fold[counted], self._fbin[k][counted]), dt[counted])
+        self._revision += 1
         self._add_cv_samples(k, counted, dt)
         self._n_final = stop
 
@@ -605,6 +609,7 @@ class OnlineCounts:
         rows_in, bins_in = rows[run][inside], bins[inside]
         flat = (self._iv_fold[k_run][inside] * n_units_cap + rows_in) * n_bins + bins_in
         _add_ones(self._fold_counts.reshape(-1), flat)
+        self._revision += 1
         if self._tuning is not None:
             to_grid = self._tuning[1][bins_in]
             into = to_grid >= 0

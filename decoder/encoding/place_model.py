@@ -3,7 +3,8 @@
 A :class:`PlaceModel` is fed tracker frames and spikes as a session delivers
 them (the online counting is :class:`decoder.encoding.online_counts.OnlineCounts`'s)
 and fits smoothed rate maps and per-unit figures from the counts whenever
-asked, as often as asked. Beside it: :mod:`decoder.encoding.readiness` (how
+asked, as often as asked. Beside it: :mod:`decoder.encoding.rate_maps` (the
+visited bins and smoothed maps from totals), :mod:`decoder.encoding.readiness` (how
 far a session has come), :mod:`decoder.encoding.cross_validation` (blocked
 folds and the held-out decoding error) and :mod:`decoder.encoding.model_file`
 (the versioned ``.npz`` file, which needs no pickle to load).
@@ -34,7 +35,8 @@ from decoder.encoding.model_file import (
 )
 from decoder.encoding.movement import MovementModel, default_uniform_weight
 from decoder.encoding.online_counts import OnlineCounts
-from decoder.encoding.readiness import Readiness, coarse_tuning_grid, count_tuned_units
+from decoder.encoding.rate_maps import smoothed_rate_maps, visited_bins
+from decoder.encoding.readiness import Readiness, coarse_counts, coarse_tuning_grid, count_tuned, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment, HeadingRing
@@ -42,8 +44,8 @@ from decoder.space.environments import Environment, HeadingRing
 logger = logging.getLogger(__name__)
 
 #: Most held-out steps the temperature is fitted on: the newest minute at 20 ms
-#: steps. Each of the fit's passes decodes them all: about nine for the
-#: temperature, four for the drift and five to refit the temperature with it
+#: steps. Each of the fit's passes decodes them all: about eight for the
+#: temperature, four for the drift and four to refit the temperature with it
 #: (bench/decoder.py times the whole fit).
 MAX_CALIBRATION_STEPS = 3_000
 
@@ -164,43 +166,14 @@ class PlaceModel(OnlineCounts):
     # Estimation
     # ------------------------------------------------------------------
 
-    def _visited(self, occupancy: np.ndarray, env: Environment | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """Occupancy around each bin (n_bins,) and the bins the decoder may use.
-
-        A bin is used when the running time in its neighbourhood, weighted by
-        a Gaussian of ``smooth_cm`` with weight 1 at the bin itself, reaches
-        ``min_occupancy_s``. With small bins a running animal spends well
-        under 0.1 s in most bins it crosses, so a threshold on each bin's own
-        time would leave holes along its path; the neighbourhood fills them,
-        and the smoothed rate maps are defined there (common practice).
-        """
-        env = self.environment if env is None else env
-        s = self.smooth_cm / env.bin_cm
-        # Sum of a unit-peak Gaussian over the grid (2-D) or the track (1-D).
-        peak_to_sum = 2.0 * np.pi * s * s if env.ndim_spatial == 2 else np.sqrt(2.0 * np.pi) * s
-        every_bin = np.ones(env.n_bins, dtype=bool)
-        around = env.smooth(occupancy, every_bin, self.smooth_cm) * max(peak_to_sum, 1.0)
-        return around, env.valid_mask & (occupancy.sum() > 0) & (around >= self.min_occupancy_s)
-
     def _rate_maps(
         self, counts: np.ndarray, occupancy: np.ndarray, env: Environment | None = None
     ) -> tuple[np.ndarray, np.ndarray]:
         """Smoothed rate maps (n_units, n_bins) and the visited mask from totals, on ``env`` (the model's)."""
-        env = self.environment if env is None else env
-        valid = env.valid_mask
-        _, visited = self._visited(occupancy, env)
-        if not np.any(visited):
-            raise ValueError(
-                f"no bin has min_occupancy_s={self.min_occupancy_s} s of running yet "
-                f"(running time so far {occupancy.sum():.1f} s); feed more frames of the animal moving "
-                f"faster than min_speed_cm_s={self.min_speed_cm_s}"
-            )
-        spikes = env.smooth(counts.astype(np.float64), valid, self.smooth_cm)
-        time = env.smooth(occupancy, valid, self.smooth_cm)
-        rates = np.zeros_like(spikes)
-        np.divide(spikes, time, out=rates, where=visited & (time > 0))
-        rates = np.where(visited, np.maximum(rates, self.rate_floor_hz), 0.0)
-        return rates, visited
+        return smoothed_rate_maps(
+            self.environment if env is None else env, counts, occupancy, smooth_cm=self.smooth_cm,
+            min_occupancy_s=self.min_occupancy_s, rate_floor_hz=self.rate_floor_hz, min_speed_cm_s=self.min_speed_cm_s,
+        )
 
     def fit(self) -> PlaceModel:
         """Compute rate maps and per-unit figures from everything settled so far.
@@ -228,6 +201,8 @@ class PlaceModel(OnlineCounts):
         self.walk_variance_cm2_per_s_ = self._learn_walk_variance()
         self.heading_tuning_ = self._heading_tuning(counts)
         self.temperature_fits_ = {}
+        # The totals these figures came from, for readiness() to reuse them while nothing new is counted.
+        self._fitted_revision = self._revision
         logger.info(
             "fitted %d units on %d visited bins from %.1f s of running",
             len(self.unit_ids_), int(visited.sum()), occupancy.sum(),
@@ -468,8 +443,13 @@ class PlaceModel(OnlineCounts):
         self._flush()
         counts, occupancy = self._totals()
         valid = self.environment.valid_mask
-        _, visited = self._visited(occupancy)
-        n_tuned = self._count_tuned(counts, occupancy, self.environment)
+        if getattr(self, "_fitted_revision", None) == self._revision:
+            # Nothing counted since fit(): its maps are what the totals give, bit for bit.
+            visited = self.visited_mask_
+            n_tuned = count_tuned(self.info_bits_per_spike_, self.peak_rate_hz_)
+        else:
+            visited = visited_bins(self.environment, occupancy, self.smooth_cm, self.min_occupancy_s)
+            n_tuned = self._count_tuned(counts, occupancy, self.environment)
         cv = None
         if with_cv_error:
             try:
@@ -489,7 +469,7 @@ class PlaceModel(OnlineCounts):
 
     def _count_tuned(self, counts: np.ndarray, occupancy: np.ndarray, env: Environment) -> int:
         """Units whose maps on ``env`` pass the tuning thresholds (0 before any bin is visited)."""
-        _, visited = self._visited(occupancy, env)
+        visited = visited_bins(env, occupancy, self.smooth_cm, self.min_occupancy_s)
         if not (np.any(visited) and len(counts)):
             return 0
         rates, visited = self._rate_maps(counts, occupancy, env)
@@ -534,8 +514,7 @@ class PlaceModel(OnlineCounts):
             n = len(self._unit_list)
             fine = self._fold_counts[:, :n].sum(axis=0, dtype=np.int64)
             self._tuning_counts = np.zeros((self._fold_counts.shape[1], grid.n_bins), dtype=np.int64)
-            into = np.flatnonzero(to_grid >= 0)
-            np.add.at(self._tuning_counts, (slice(0, n), to_grid[into]), fine[:, into])
+            self._tuning_counts[:n] = coarse_counts(fine, to_grid, grid.n_bins)
         return self._tuning
 
     def cross_validated_error_cm(self) -> CrossValidatedError:

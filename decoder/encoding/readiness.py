@@ -2,7 +2,8 @@
 
 :class:`Readiness` is what the session reports while it learns and at the
 fit; the tuning test and the coarser grid on which it can be asked every few
-seconds live here beside it, so that the threshold is written once.
+seconds (with the counts summed onto it) live here beside it, so that the
+threshold is written once.
 """
 
 from __future__ import annotations
@@ -91,7 +92,24 @@ def count_tuned_units(rate_maps_hz: np.ndarray, occupancy_s: np.ndarray) -> int:
     Advances in Neural Information Processing Systems 5, 1030-1037.
     """
     bits, _ = skaggs_information(rate_maps_hz, occupancy_s)
-    tuned = (bits >= TUNED_BITS_PER_SPIKE) & (rate_maps_hz.max(axis=1) >= TUNED_PEAK_HZ)
+    return count_tuned(bits, rate_maps_hz.max(axis=1))
+
+
+def count_tuned(bits_per_spike: np.ndarray, peak_rate_hz: np.ndarray) -> int:
+    """Units with at least 0.5 bits/spike and a peak rate of at least 1 Hz, from their figures.
+
+    The test of :func:`count_tuned_units` on figures a fit already holds
+    (``PlaceModel.info_bits_per_spike_``, ``peak_rate_hz_``).
+
+    Parameters
+    ----------
+    bits_per_spike, peak_rate_hz : ndarray of float64, shape (n_units,)
+
+    Returns
+    -------
+    int
+    """
+    tuned = (bits_per_spike >= TUNED_BITS_PER_SPIKE) & (peak_rate_hz >= TUNED_PEAK_HZ)
     return int(np.count_nonzero(tuned))
 
 
@@ -118,3 +136,26 @@ def coarse_tuning_grid(environment: Environment, smooth_cm: float) -> tuple[Envi
         return environment, np.arange(environment.n_bins)
     grid = Environment.from_dict({**environment.to_dict(), "bin_cm": factor * environment.bin_cm})
     return grid, np.where(environment.valid_mask, grid.bin_index(environment.bin_centers_cm), -1)
+
+
+def coarse_counts(counts: np.ndarray, to_grid: np.ndarray, n_grid_bins: int) -> np.ndarray:
+    """Spike counts summed into the bins of the coarser grid.
+
+    Parameters
+    ----------
+    counts : ndarray of int, shape (n_units, n_bins)
+    to_grid : ndarray of int64, shape (n_bins,)
+        Grid bin of each bin (:func:`coarse_tuning_grid`); -1 leaves the bin out.
+    n_grid_bins : int
+
+    Returns
+    -------
+    ndarray of int64, shape (n_units, n_grid_bins)
+    """
+    n_units = counts.shape[0]
+    into = np.flatnonzero(to_grid >= 0)
+    cells = (np.arange(n_units)[:, None] * n_grid_bins + to_grid[into]).ravel()
+    # One bincount instead of np.add.at's element-wise adds; its float64 sums of
+    # whole counts are exact below 2**53 spikes, so the integers come back unchanged.
+    summed = np.bincount(cells, weights=counts[:, into].ravel(), minlength=n_units * n_grid_bins)
+    return summed.astype(np.int64).reshape(n_units, n_grid_bins)

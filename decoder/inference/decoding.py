@@ -273,17 +273,27 @@ class BayesDecoder:
                 f"rate_maps_hz must be a numeric array of shape (n_units, {n_bins}), "
                 f"got {rates.dtype} of shape {rates.shape}"
             )
-        on_valid = rates[:, valid].astype(np.float64)
-        if not np.all(np.isfinite(on_valid)) or np.any(on_valid < 0):
+        # Every bin valid (an arena's grid): the maps themselves, no gathered copy. C order, as
+        # np.full made it before: the sum over units below adds in memory order.
+        all_valid = bool(valid.all())
+        on_valid = np.ascontiguousarray(rates if all_valid else rates[:, valid], dtype=np.float64)
+        # NaN and negative rates fail ">= 0"; an infinite one makes the largest infinite.
+        if on_valid.size and not ((on_valid >= 0).all() and np.isfinite(on_valid.max())):
             unit = int(np.flatnonzero(~(np.isfinite(on_valid) & (on_valid >= 0)).all(axis=1))[0])
             raise ValueError(f"rate_maps_hz row {unit} holds a negative, NaN or infinite rate on a valid bin")
         self.n_units, self.n_bins = rates.shape
-        floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
-        floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
+        if all_valid:
+            floored = np.maximum(on_valid, self.rate_floor_hz)
+        else:
+            floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
+            floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
         # Both terms of the log-likelihood are linear in them, so dividing
         # here tempers every window, and the in-place updates stay exact.
-        # (Dividing by 1.0 changes no bit.)
-        self._log_rate = np.ascontiguousarray(np.log(floored) / self.likelihood_temperature)
+        # In place, the same division without a second array; by 1.0 it
+        # would change no bit, so it is left out.
+        self._log_rate = np.log(floored)
+        if self.likelihood_temperature != 1.0:
+            self._log_rate /= self.likelihood_temperature
         with np.errstate(over="ignore"):
             self._expected_total = self.window_s * floored.sum(axis=0) / self.likelihood_temperature
         if not np.all(np.isfinite(self._expected_total)):
