@@ -52,7 +52,10 @@ The same held-out steps choose the drift of the walk towards the decoded
 velocity (:func:`fit_drift`): its gain and the time constant of the
 velocity's average, by the held-out median error at the plain walk's
 temperature; the
-temperature is then fitted again with the drift, whose coverage it is.
+temperature is then fitted again with the drift, whose coverage it is. On
+a heading ring the joint state of heading and angular velocity is chosen
+and the temperature refitted for it the same way
+(``decoder.encoding.heading_motion``).
 
 References
 ----------
@@ -238,6 +241,7 @@ def fit_temperature(
     drift: DriftFit | None = None,
     near: TemperatureFit | None = None,
     fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
+    heading_velocity: HeadingVelocity | None = None,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -278,6 +282,10 @@ def fit_temperature(
         count, shape (n_bins,), the ground-process rate times ``step_s``;
         both from the mark model fitted without the block. Decoded with the
         units' counts as ``BayesDecoder.decode`` takes them; none by default.
+    heading_velocity : HeadingVelocity, optional
+        On a heading ring, the joint state of heading and angular velocity
+        the filter decodes with (``decoder.encoding.heading_motion``); the
+        plain walk by default. It is kept in the returned fit.
 
     Returns
     -------
@@ -342,7 +350,7 @@ def fit_temperature(
         inside, mass, n_mass = 0, 0.0, 0
         points: list[np.ndarray] = []
         steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
-                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms)
+                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms, heading_velocity)
         for step, true_bin in zip(steps, all_true_bins):
             if score_points:
                 points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
@@ -362,16 +370,19 @@ def fit_temperature(
         return (*figures, *_point_medians_cm(walk.environment, np.array(points), np.concatenate(fold_true_xy_cm)))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
+    turning = {} if heading_velocity is None else {
+        "angular_velocity_sd_deg_s": heading_velocity.sd_deg_s,
+        "angular_velocity_time_constant_s": heading_velocity.time_constant_s}
 
     def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
         if fold_true_xy_cm is None:
             return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s,
-                                  with_marks=fold_mark_terms is not None)
+                                  with_marks=fold_mark_terms is not None, **turning)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
                               point_estimate_of(map_cm, mean_cm), drift.gain,
-                              drift.velocity_time_constant_s, fold_mark_terms is not None)
+                              drift.velocity_time_constant_s, fold_mark_terms is not None, **turning)
 
     def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
         for _ in range(steps):

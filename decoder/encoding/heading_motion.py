@@ -17,10 +17,12 @@ memory): ballistic (``sigma^2 L^2``) at lags well under ``tau``,
 diffusive (``2 sigma^2 tau L``) well over it.
 
 :func:`choose_heading_velocity` decodes the held-out learning steps with
-the joint state at the plain walk's temperature and keeps it only if its
-held-out median error beats the plain walk's by ``MIN_GAIN`` (the drift's
-rule, ``calibration.fit_drift``, with a smaller margin); the temperature
-is not refitted for it.
+the joint state at the walk's temperature and keeps it only if its
+held-out median error beats the walk's (plain or drifting) by ``MIN_GAIN``
+(the drift's rule, ``calibration.fit_drift``, with a smaller margin); the
+temperature is then fitted again with the joint state
+(``calibration.fit_temperature``, starting near the walk's), so that the held-out coverage is the one
+the session decodes with, as it is for the drift.
 
 References
 ----------
@@ -30,7 +32,6 @@ Phys Rev 36:823-841.
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import math
 from collections.abc import Sequence
@@ -44,9 +45,8 @@ from decoder.encoding.calibration import (
     _fired,
     _point_medians_cm,
     _unscored,
-    point_estimate_of,
+    fit_temperature,
 )
-from decoder.inference.filtering import hpd_contains
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.headings import HeadingRing, angle_difference_deg
@@ -154,22 +154,25 @@ def choose_heading_velocity(
 ) -> TemperatureFit:
     """``fit`` with the joint state of heading and angular velocity, if that decodes the held-out steps better.
 
-    On a heading ring with no drift, the velocity process is learned from
+    On a heading ring, the velocity process is learned from
     the tracked frames (:func:`fit_heading_velocity`) and the held-out
     blocks are decoded with it at ``fit.temperature``, one pass; if the
-    better point estimate's median error is below the plain walk's by more
-    than ``MIN_GAIN``, the returned
-    fit carries the process (``angular_velocity_sd_deg_s``,
-    ``angular_velocity_time_constant_s``), the medians and the point
-    estimate chosen by ``calibration``'s rule, and the held-out 95 % HPD
-    coverage with the joint state (at the plain walk's temperature, which
-    is not refitted: ``coverage`` is then what the session decodes with,
-    not what the temperature was fitted to). Otherwise ``fit`` itself.
+    better point estimate's median error is below the walk's by more
+    than ``MIN_GAIN``, the temperature is fitted again with the joint state
+    (``calibration.fit_temperature`` with ``heading_velocity``, bracketed
+    near ``fit.temperature``, with no drift: the joint state carries the
+    velocity the drift would follow, and replaces it), and that fit is
+    returned: it carries the
+    process (``angular_velocity_sd_deg_s``,
+    ``angular_velocity_time_constant_s``), its temperature, the held-out
+    95 % HPD coverage it was fitted to, the medians and the point estimate
+    at that temperature. Otherwise ``fit`` itself.
 
     Parameters
     ----------
     fit : TemperatureFit
-        The plain walk's fit, with its held-out medians.
+        The walk's fit (plain or with the drift ``calibration.fit_drift``
+        chose), with its held-out medians.
     fold_rate_maps_hz, fold_counts, fold_true_xy_cm, step_s, walk, uniform_weight, rate_floor_hz, fold_mark_terms
         As in ``calibration.fit_drift``.
     frame_t_s : ndarray of float64, shape (n,)
@@ -181,31 +184,26 @@ def choose_heading_velocity(
     TemperatureFit
     """
     env = walk.environment
-    plain_cm = min(fit.map_median_cm, fit.mean_median_cm)
-    if not isinstance(env, HeadingRing) or fit.drift_gain > 0 or not math.isfinite(plain_cm):
+    walk_cm = min(fit.map_median_cm, fit.mean_median_cm)
+    if not isinstance(env, HeadingRing) or not math.isfinite(walk_cm):
         return fit
     try:
         process = fit_heading_velocity(frame_t_s, env.linearize(frame_xy_cm))
     except ValueError as exc:
-        logger.info("no angular velocity learned (%s); the filter keeps the plain walk", exc)
+        logger.info("no angular velocity learned (%s); the filter keeps the walk", exc)
         return fit
     truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
-    true_bins = env.bin_index(truth).tolist()
-    points, inside = [], []
-    for step, true_bin in zip(_decoded_steps(fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight,
-                                             fit.temperature, rate_floor_hz, 0.0, 1.0, fold_mark_terms,
-                                             heading_velocity=process),
-                              true_bins):
-        points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
-        if true_bin >= 0:
-            inside.append(bool(hpd_contains(step.posterior[np.newaxis], np.array([true_bin]))[0]))
-    map_cm, mean_cm = _point_medians_cm(env, np.array(points), truth)
+    points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
+        fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight, fit.temperature, rate_floor_hz, 0.0,
+        1.0, fold_mark_terms, heading_velocity=process)]
+    joint_cm = min(_point_medians_cm(env, np.array(points), truth))
     logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
-                process.sd_deg_s, process.time_constant_s, min(map_cm, mean_cm), plain_cm)
-    if not min(map_cm, mean_cm) < plain_cm * (1.0 - MIN_GAIN):
+                process.sd_deg_s, process.time_constant_s, joint_cm, walk_cm)
+    if not joint_cm < walk_cm * (1.0 - MIN_GAIN):
         return fit
-    return dataclasses.replace(
-        fit, coverage=float(np.mean(inside)), map_median_cm=map_cm, mean_median_cm=mean_cm,
-        point_estimate=point_estimate_of(map_cm, mean_cm),
-        angular_velocity_sd_deg_s=process.sd_deg_s, angular_velocity_time_constant_s=process.time_constant_s,
-    )
+    # The true bins as fit_temperature scores them (-1 where the tracker lost the head).
+    fold_true_bins = [env.bin_index(np.asarray(xy, dtype=np.float64).reshape(-1, 2)) for xy in fold_true_xy_cm]
+    return fit_temperature(fold_rate_maps_hz, fold_counts, fold_true_bins, step_s, walk,
+                           uniform_weight=uniform_weight, rate_floor_hz=rate_floor_hz,
+                           fold_true_xy_cm=fold_true_xy_cm, near=fit, fold_mark_terms=fold_mark_terms,
+                           heading_velocity=process)
