@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from hmmlearn.hmm import PoissonHMM
 
-from decoder.encoding.calibration import fit_temperature
+from decoder.encoding.calibration import fit_temperature, point_estimate_of
 from decoder.encoding.heading_motion import (
     MIN_GAIN,
     choose_heading_velocity,
@@ -247,7 +247,7 @@ def test_temperature_is_refitted_for_the_joint_state_and_its_coverage_is_what_it
     # The coverage reported is the joint filter's at that temperature, recounted with the reference
     # filter module's HPD rule (decoder.inference.filtering.hpd_contains, checked against hmmlearn's
     # forward pass with the joint state above), burn-in steps left out as the fit leaves them out.
-    inside, known = [], []
+    inside = []
     burn = round(1.0 / step_s)
     for counts_k, bins_k in zip(fold_counts, fold_bins):
         decoder = BayesDecoder(rates, ring, ring.valid_mask, step_s, prior="state_space", random_walk_sd_cm=7.0,
@@ -288,3 +288,13 @@ def test_a_live_heading_demo_with_the_joint_state_is_reproduced_by_its_replay(tm
     assert replay["triggers"]["count"] == live["triggers"]["count"]
     figures = replay["session"]["readiness"]["filter"]
     assert figures["angular_velocity_sd_deg_s"] > 0, figures
+
+
+def test_a_heading_ring_takes_the_posterior_mean_without_the_arms_margin():
+    # Source: the rule documented in decoder.encoding.calibration.point_estimate_of: the mean's 5 %
+    # margin guards against a mean between two arms, off the track; a circular mean is always a heading.
+    ring, track = HeadingRing(6.0), LinearTrack((0, 0), (40, 0), bin_cm=10)
+    assert point_estimate_of(5.0, 4.9, ring) == "mean"
+    assert point_estimate_of(5.0, 4.9, track) == point_estimate_of(5.0, 4.9) == "map"
+    assert point_estimate_of(5.0, 4.7, track) == "mean"
+    assert point_estimate_of(5.0, 5.0, ring) == "map"

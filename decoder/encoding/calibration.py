@@ -34,7 +34,7 @@ regions' mass hardly moves, so the fit is a bisection on ``log T``.
 The same held-out steps choose the decoded position, the point estimate
 the session scores and shows: the MAP bin's centre or the posterior mean,
 whichever lies closer to the tracked position in the median (the mean by a
-margin, ``_MEAN_MARGIN``), at the fitted
+margin, ``_MEAN_MARGIN``, except on a heading ring), at the fitted
 temperature. Where the posterior is broad and round (an open arena) the
 mean averages out the bins' quantisation and the MAP's jumps between
 neighbouring peaks; where it is split between arms or along a track's two
@@ -78,6 +78,7 @@ from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
+from decoder.space.headings import HeadingRing
 
 logger = logging.getLogger(__name__)
 
@@ -107,6 +108,7 @@ _MASS_EVERY = 8
 #: median error is this share below the MAP's: the mean of a posterior split
 #: between two arms lies between them, off the track, a risk that a median
 #: over a minute of held-out steps may not show; a near tie goes to the MAP.
+#: Not on a heading ring (:func:`point_estimate_of`).
 _MEAN_MARGIN = 0.05
 
 #: Drift gains and time constants of the decoded velocity (s) that
@@ -150,7 +152,7 @@ class TemperatureFit:
         in model files written before the choice was made).
     point_estimate : {"map", "mean"}
         The one with the smaller median, the mean only if smaller by
-        ``_MEAN_MARGIN`` (the MAP on a near tie or without positions).
+        ``_MEAN_MARGIN`` off a heading ring (the MAP on a near tie or without positions).
     drift_gain, velocity_time_constant_s : float
         The drift the filter decodes with and the temperature was fitted
         for (:class:`DriftFit`); a gain of 0 (and in model files written
@@ -265,7 +267,7 @@ def fit_temperature(
         Tracked position at the end of each step (NaN where unknown): with
         them the MAP and the posterior mean are scored at the fitted
         temperature, by ``walk.environment.distance_cm``, and the closer
-        one (the mean by ``_MEAN_MARGIN``) becomes ``point_estimate``.
+        one (the mean by ``_MEAN_MARGIN`` off a heading ring) becomes ``point_estimate``.
     drift : DriftFit, optional
         The drift the filter decodes with (:func:`fit_drift`); none by
         default. It is kept in the returned fit.
@@ -381,7 +383,7 @@ def fit_temperature(
                                   with_marks=fold_mark_terms is not None, **turning)
         _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
-                              point_estimate_of(map_cm, mean_cm), drift.gain,
+                              point_estimate_of(map_cm, mean_cm, walk.environment), drift.gain,
                               drift.velocity_time_constant_s, fold_mark_terms is not None, **turning)
 
     def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
@@ -463,12 +465,17 @@ def _decoded_steps(
                 yield decoder.decode(rows, counts, step_log_like, expected)
 
 
-def point_estimate_of(map_median_cm: float, mean_median_cm: float) -> str:
+def point_estimate_of(map_median_cm: float, mean_median_cm: float, environment: Environment | None = None) -> str:
     """The decoded position a fit chooses from the held-out medians: "mean" if smaller by ``_MEAN_MARGIN``, else "map".
 
-    A near tie goes to the MAP, which never lies between two arms.
+    A near tie goes to the MAP, which never lies between two arms. On a
+    heading ring the mean needs no margin: its direction (the circular
+    mean) is a heading like any other, never a point off the environment,
+    and the held-out headings are the tracker's, whose noise adds to both
+    medians and shrinks their relative difference.
     """
-    return "mean" if mean_median_cm < map_median_cm * (1.0 - _MEAN_MARGIN) else "map"
+    margin = 0.0 if isinstance(environment, HeadingRing) else _MEAN_MARGIN
+    return "mean" if mean_median_cm < map_median_cm * (1.0 - margin) else "map"
 
 
 def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.ndarray) -> tuple[float, float]:
