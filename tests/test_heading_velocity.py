@@ -178,28 +178,42 @@ def test_turning_fit_refuses_too_few_frames_or_a_still_head():
         fit_heading_velocity(t[::-1], np.zeros(5000))
 
 
-def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
-    # Invented data (a sanity bound, not a reference): 12 von Mises cells on a head turning at
-    # 90 deg/s with a 0.3 s correlation time; the joint state must beat the plain walk held out, and a
-    # fit with a drift or on another environment is returned as it came.
+def _turning_cells(seed: int, burst: int = 1):
+    """Invented data: 12 von Mises cells on a head turning at 90 deg/s over 0.3 s, 6000 steps of 20 ms.
+
+    Each spike is a burst of ``burst`` (at ``1 / burst`` of the rate). Returns the ring, the step, the
+    cells' tuning on the bins, two folds' counts and headings (ring points), the walk, the plain walk's
+    fit on them, and the generator for further draws.
+    """
     ring = HeadingRing(6.0)
-    rng = np.random.default_rng(2)
+    rng = np.random.default_rng(seed)
     step_s = 0.02
     heading = _ou_heading(rng, 90.0, 0.3, 6000, step_s)
     preferred = np.linspace(0, 360, 12, endpoint=False)
     rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(ring.bin_centers_deg[None, :] - preferred[:, None])) - 1))
     true_rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(heading[:, None] - preferred[None, :])) - 1))
-    counts = rng.poisson(true_rates * step_s)
+    counts = burst * rng.poisson(true_rates / burst * step_s)
     xy = heading_points_cm(np.radians(heading))
     walk = RandomWalk(ring, ring.valid_mask, 7.0)
     folds = [slice(0, 3000), slice(3000, 6000)]
-    plain = fit_temperature([rates, rates], [counts[f] for f in folds],
-                            [ring.bin_index(xy[f]) for f in folds], step_s, walk, uniform_weight=1e-3,
-                            fold_true_xy_cm=[xy[f] for f in folds])
+    fold_counts, fold_xy = [counts[f] for f in folds], [xy[f] for f in folds]
+    plain = fit_temperature([rates, rates], fold_counts, [ring.bin_index(p) for p in fold_xy], step_s, walk,
+                            uniform_weight=1e-3, fold_true_xy_cm=fold_xy)
+    return ring, step_s, rates, fold_counts, fold_xy, walk, plain, rng
+
+
+def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
+    # Invented data (a sanity bound, not a reference): the joint state must beat the plain walk held
+    # out, replace a drift it beats, and leave a fit it cannot beat as it came.
+    _, step_s, rates, fold_counts, fold_xy, walk, plain, rng = _turning_cells(2)
     frames_t = np.arange(6000) * step_s
-    tracked = xy + rng.normal(0.0, 0.5, xy.shape)
-    chosen = choose_heading_velocity(plain, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
-                                     step_s, walk, frames_t, tracked, uniform_weight=1e-3)
+    tracked = np.concatenate(fold_xy) + rng.normal(0.0, 0.5, (6000, 2))
+
+    def choose(fit):
+        return choose_heading_velocity(fit, [rates, rates], fold_counts, fold_xy, step_s, walk, frames_t, tracked,
+                                       uniform_weight=1e-3)
+
+    chosen = choose(plain)
     assert chosen.angular_velocity_sd_deg_s > 0 and 0.5 < chosen.coverage <= 1.0
     assert min(chosen.map_median_cm, chosen.mean_median_cm) < (1 - MIN_GAIN) * min(plain.map_median_cm,
                                                                                    plain.mean_median_cm)
@@ -207,37 +221,20 @@ def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
                                                           chosen.angular_velocity_time_constant_s)
     assert heading_velocity_of(plain) is None
     # A drifting walk is replaced by the joint state where that wins: the fit decodes without the drift.
-    drifting = dataclasses.replace(plain, drift_gain=0.5)
-    replaced = choose_heading_velocity(drifting, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
-                                       step_s, walk, frames_t, tracked, uniform_weight=1e-3)
+    replaced = choose(dataclasses.replace(plain, drift_gain=0.5))
     assert replaced.drift_gain == 0 and replaced.angular_velocity_sd_deg_s > 0
     # ... and kept where the walk's held-out median is already out of reach.
     sharp = dataclasses.replace(plain, map_median_cm=0.01, mean_median_cm=0.01)
-    assert choose_heading_velocity(sharp, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
-                                   step_s, walk, frames_t, tracked, uniform_weight=1e-3) is sharp
+    assert choose(sharp) is sharp
 
 
 def test_temperature_is_refitted_for_the_joint_state_and_its_coverage_is_what_it_decodes_with():
-    # Invented data (a sanity bound, not a reference): the cells of the test above at a third of their
-    # rates, each spike a burst of three, so that their counts are overdispersed (variance three times
-    # the mean) and the plain Poisson filter is overconfident.
-    ring = HeadingRing(6.0)
-    rng = np.random.default_rng(5)
-    step_s = 0.02
-    heading = _ou_heading(rng, 90.0, 0.3, 6000, step_s)
-    preferred = np.linspace(0, 360, 12, endpoint=False)
-    rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(ring.bin_centers_deg[None, :] - preferred[:, None])) - 1))
-    true_rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(heading[:, None] - preferred[None, :])) - 1))
-    counts = 3 * rng.poisson(true_rates / 3.0 * step_s)
-    xy = heading_points_cm(np.radians(heading))
-    walk = RandomWalk(ring, ring.valid_mask, 7.0)
-    folds = [slice(0, 3000), slice(3000, 6000)]
-    fold_counts, fold_xy = [counts[f] for f in folds], [xy[f] for f in folds]
-    fold_bins = [ring.bin_index(p) for p in fold_xy]
-    plain = fit_temperature([rates, rates], fold_counts, fold_bins, step_s, walk, uniform_weight=1e-3,
-                            fold_true_xy_cm=fold_xy)
+    # Invented data (a sanity bound, not a reference): the cells above, each spike a burst of three, so
+    # that their counts are overdispersed (variance three times the mean) and the plain Poisson filter
+    # is overconfident.
+    ring, step_s, rates, fold_counts, fold_xy, walk, plain, _ = _turning_cells(5, burst=3)
     chosen = choose_heading_velocity(plain, [rates, rates], fold_counts, fold_xy, step_s, walk,
-                                     np.arange(6000) * step_s, xy, uniform_weight=1e-3)
+                                     np.arange(6000) * step_s, np.concatenate(fold_xy), uniform_weight=1e-3)
     assert plain.temperature > 1.0 and chosen.angular_velocity_sd_deg_s > 0
     assert chosen.temperature != plain.temperature
     # Source: the definition of a calibrated 95 % HPD region (common practice): at the refitted
@@ -249,7 +246,8 @@ def test_temperature_is_refitted_for_the_joint_state_and_its_coverage_is_what_it
     # forward pass with the joint state above), burn-in steps left out as the fit leaves them out.
     inside = []
     burn = round(1.0 / step_s)
-    for counts_k, bins_k in zip(fold_counts, fold_bins):
+    for counts_k, xy_k in zip(fold_counts, fold_xy):
+        bins_k = ring.bin_index(xy_k)
         decoder = BayesDecoder(rates, ring, ring.valid_mask, step_s, prior="state_space", random_walk_sd_cm=7.0,
                                uniform_weight=1e-3, likelihood_temperature=chosen.temperature,
                                heading_velocity=heading_velocity_of(chosen))
