@@ -29,7 +29,18 @@ what the issue asks of the posterior and what the trigger rules threshold
 (posterior mass in a zone); the log density is dominated by the few steps
 where the true bin has almost no mass, so its optimum follows the tails.
 Coverage rises with ``T`` (a wider posterior covers more) while the
-regions' mass hardly moves, so the fit is a bisection on ``log T``.
+regions' mass hardly moves, so the fit is a bisection on ``log T``, ending
+where the line between the final bracket's ends meets the target.
+
+The tracked position is not the truth: where its noise is comparable to a
+bin, a calibrated posterior covers the tracked bin less often than its
+mass says, and the fit would widen it to cover the tracker's noise too.
+Given that noise (``tracked_noise_sd``; on a heading ring
+``heading_motion.tracked_heading_noise_deg`` learns it from the frames),
+each held-out step is scored by the tracked position's predictive
+distribution, the posterior blurred by the noise
+(``Environment.tracked_bin_kernel``): the question a calibrated posterior
+answers right.
 
 The same held-out steps choose the decoded position, the point estimate
 the session scores and shows: the MAP bin's centre or the posterior mean,
@@ -75,6 +86,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
+from decoder.inference.filtering import hpd_mass
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
@@ -164,6 +176,10 @@ class TemperatureFit:
         On a heading ring, the joint state of heading and angular velocity
         the filter decodes with (``decoder.encoding.heading_motion``); an
         s.d. of 0 is the plain walk.
+    tracked_noise_sd : float
+        S.d. of the tracked position's noise that ``coverage`` and
+        ``region_mass`` were scored with (the environment's units; 0, and in
+        model files written before, scores against the tracked bin itself).
     """
 
     temperature: float
@@ -179,6 +195,7 @@ class TemperatureFit:
     with_marks: bool = False
     angular_velocity_sd_deg_s: float = 0.0
     angular_velocity_time_constant_s: float = 0.0
+    tracked_noise_sd: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -244,6 +261,7 @@ def fit_temperature(
     near: TemperatureFit | None = None,
     fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
     heading_velocity: HeadingVelocity | None = None,
+    tracked_noise_sd: float = 0.0,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -288,6 +306,18 @@ def fit_temperature(
         On a heading ring, the joint state of heading and angular velocity
         the filter decodes with (``decoder.encoding.heading_motion``); the
         plain walk by default. It is kept in the returned fit.
+    tracked_noise_sd : float, default 0
+        S.d. of the noise of the tracked positions the held-out steps are
+        scored against, in the environment's units (degrees on a heading
+        ring). Above 0, each step's coverage and region are those of the
+        tracked position's predictive distribution, the posterior blurred
+        by that noise (``posterior @ environment.tracked_bin_kernel(sd)``):
+        a calibrated posterior observed through a noisy tracker then
+        covers the tracked bin as often as the regions' mass says, where
+        the posterior's own region would cover it less often and push the
+        temperature up. 0 scores the posterior's region against the tracked
+        bin, as if the tracker were exact. Only a heading ring models the
+        noise so far (``NotImplementedError`` elsewhere).
 
     Returns
     -------
@@ -296,7 +326,8 @@ def fit_temperature(
         rounded up to whole bins), which is what a calibrated posterior
         covers. ``temperature`` is 1 when the plain model already covers
         it, ``MAX_TEMPERATURE`` when even that does not, and otherwise
-        whichever end of the final bisection bracket comes closer.
+        where the coverage meets the mass, interpolated in ``log T``
+        between the ends of the final bisection bracket.
 
     Raises
     ------
@@ -340,6 +371,9 @@ def fit_temperature(
     fired = _fired(fold_counts)
     all_true_bins = np.concatenate(truths).tolist()
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
+    if not (math.isfinite(tracked_noise_sd) and tracked_noise_sd >= 0.0):
+        raise ValueError(f"tracked_noise_sd must be a finite s.d. >= 0, got {tracked_noise_sd!r}")
+    blur = walk.environment.tracked_bin_kernel(tracked_noise_sd) if tracked_noise_sd > 0 else None
 
     def held_out(temperature: float, score_points: bool = False) -> tuple[float, ...]:
         """Coverage of held-out steps, the mean mass of their HPD regions and, if asked, the points' medians.
@@ -348,6 +382,8 @@ def fit_temperature(
         thousands of steps would take more memory and time than the decoding.
         The regions' mass varies little from step to step (it is 0.95 plus
         part of one bin), so every ``_MASS_EVERY``-th known step estimates it.
+        With a tracked noise, the region and its mass are the predictive
+        distribution's, the posterior blurred by ``blur``.
         """
         inside, mass, n_mass = 0, 0.0, 0
         points: list[np.ndarray] = []
@@ -358,13 +394,15 @@ def fit_temperature(
                 points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
             if true_bin < 0:
                 continue
-            p = step.posterior
+            p = step.posterior if blur is None else step.posterior @ blur
             # Inside when the bins more probable than the true one hold less than the mass
             # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
             inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
-            if n_mass % _MASS_EVERY == 0:
+            if n_mass % _MASS_EVERY == 0 and blur is None:
                 n_hpd = round(step.hpd95_size / bin_size)
                 mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
+            elif n_mass % _MASS_EVERY == 0:
+                mass += float(hpd_mass(p[np.newaxis])[0])
             n_mass += 1
         figures = (inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY)))
         if not score_points:
@@ -372,16 +410,19 @@ def fit_temperature(
         return (*figures, *_point_medians_cm(walk.environment, np.array(points), np.concatenate(fold_true_xy_cm)))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
-    turning = {} if heading_velocity is None else {
+    turning = {"tracked_noise_sd": float(tracked_noise_sd)} if heading_velocity is None else {
         "angular_velocity_sd_deg_s": heading_velocity.sd_deg_s,
-        "angular_velocity_time_constant_s": heading_velocity.time_constant_s}
+        "angular_velocity_time_constant_s": heading_velocity.time_constant_s,
+        "tracked_noise_sd": float(tracked_noise_sd)}
 
-    def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
+    def fit(temperature: float, *figures: float) -> TemperatureFit:
+        """The fit at ``temperature``, with its coverage and mass if known (measured again where points are scored)."""
         if fold_true_xy_cm is None:
+            cov, mass = figures or held_out(temperature)
             return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s,
                                   with_marks=fold_mark_terms is not None, **turning)
-        _, _, map_cm, mean_cm = held_out(temperature, score_points=True)
+        cov, mass, map_cm, mean_cm = held_out(temperature, score_points=True)
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
                               point_estimate_of(map_cm, mean_cm, walk.environment), drift.gain,
                               drift.velocity_time_constant_s, fold_mark_terms is not None, **turning)
@@ -394,7 +435,10 @@ def fit_temperature(
                 hi = at_mid
             else:
                 lo = at_mid
-        return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+        # Either end misses the target by up to the bracket's change of coverage (about 0.01 at the full
+        # fit's last bracket): the temperature where the line between them meets it, in log T, lands on it.
+        short, over = lo[2] - lo[1], hi[1] - hi[2]
+        return fit(lo[0] * (hi[0] / lo[0]) ** (short / (short + over)))
 
     if near is not None:
         # A bracket of _NEAR_FACTOR either side of the expected temperature, when it holds the answer.
