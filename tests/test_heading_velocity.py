@@ -160,11 +160,14 @@ def test_turning_process_is_recovered_from_a_noisy_tracked_heading(sd_deg_s, tau
     t = np.arange(heading.size) * 4 * frame_s
     tracked = np.mod(heading + rng.normal(0.0, 3.0, heading.size), 360.0)
     tracked[rng.random(heading.size) < 0.02] = np.nan
-    fit = fit_heading_velocity(t, tracked)
+    fit, noise_sd_deg = fit_heading_velocity(t, tracked)
     # Source: the integrated Ornstein-Uhlenbeck displacement variance (Uhlenbeck & Ornstein 1930, from
     # memory) generated the data; 1000 s hold ~3,000-7,000 correlation times, so 10 % bounds the estimate.
     assert fit.sd_deg_s == pytest.approx(sd_deg_s, rel=0.1)
     assert fit.time_constant_s == pytest.approx(tau_s, rel=0.15)
+    # The generator's 3-degree white tracker noise, from the variance's intercept (twice its variance),
+    # the trimmed variances corrected by the truncated normal's second moment (from memory).
+    assert noise_sd_deg == pytest.approx(3.0, rel=0.05)
 
 
 def test_turning_fit_refuses_too_few_frames_or_a_still_head():
