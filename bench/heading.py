@@ -12,7 +12,9 @@ without a heading):
    its decoded heading (the point estimate chosen at fit time; the MAP's
    and the posterior mean's errors beside it), the true heading of the
    simulation and its events; ``hpd95_coverage``, the share of steps
-   whose true heading bin lies in the posterior's 95 % HPD region, says
+   whose true heading bin lies in the posterior's 95 % HPD region, beside
+   ``hpd95_region_mass``, the regions' mean mass (what a calibrated
+   posterior covers: a little over 0.95, since whole bins go in), says
    how well the fitted temperature calibrates it.
 2. The plain numpy textbook heading decoder (below) learns tuning curves
    over the same 6-degree bins from the learning part (spikes and the
@@ -69,7 +71,7 @@ from decoder.config import load_config, with_overrides  # noqa: E402
 from decoder.encoding.heading_metrics import tuned_against_shuffle  # noqa: E402
 from decoder.encoding.movement import default_uniform_weight  # noqa: E402
 from decoder.inference.decoding import BayesDecoder  # noqa: E402
-from decoder.inference.filtering import hpd_contains  # noqa: E402
+from decoder.inference.filtering import hpd_contains, hpd_mass  # noqa: E402
 from decoder.inference.heading_velocity import HeadingVelocity  # noqa: E402
 from decoder.messages import SpikeBatch, TrackerFrames  # noqa: E402
 from decoder.space.headings import HeadingRing, angle_difference_deg, heading_of_point  # noqa: E402
@@ -212,7 +214,9 @@ def run(decode_s: float, seed: int) -> dict:
     ours_mean = np.abs(angle_difference_deg(mean_deg, true_deg))[known]
     # Calibration where the truth is exact: the fit could only score against the tracker's noisy heading.
     true_bins = ring.bin_index(np.array([s.true_xy_cm for s in steps]))
-    coverage = float(np.mean(hpd_contains(np.array([s.step.posterior for s in steps]), true_bins)[true_bins >= 0]))
+    posteriors = np.array([s.step.posterior for s in steps])
+    coverage = float(np.mean(hpd_contains(posteriors, true_bins)[true_bins >= 0]))
+    region_mass = float(np.mean(hpd_mass(posteriors)[true_bins >= 0]))
 
     arcs = {z.name: z for z in config.zones}
     facing_away = {r.name for r in config.rules if r.tracked == "outside"}
@@ -283,6 +287,7 @@ def run(decode_s: float, seed: int) -> dict:
         "map_median_error_deg": float(np.median(ours_map)),
         "mean_median_error_deg": float(np.median(ours_mean)),
         "hpd95_coverage": coverage,
+        "hpd95_region_mass": region_mass,
         "summary_heading_median_error_deg": result.summary["decode"].get("heading_median_error_deg"),
         "textbook_median_error_deg": best,
         "textbook_by_window": textbook,
