@@ -27,6 +27,7 @@ from decoder.inference.filtering import hpd_contains, hpd_mass
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Arena, HeadingRing
 from decoder.space.headings import angle_difference_deg, heading_points_cm
+from test_heading_velocity import _ou_heading
 
 RING = HeadingRing(6.0)
 STEP_S = 0.02
@@ -148,20 +149,10 @@ def test_a_running_median_of_five_still_frames_keeps_the_share_of_noise_order_st
     assert math.isnan(smoothed_noise_sd(frame_t[:1], still[:1], still[:3], 2.0, frame_t[:3], 0.5, rng))
 
 
-def _ou_heading(rng, sd_deg_s, tau_s, t):
-    """An invented head turning: an Ornstein-Uhlenbeck angular velocity at the frames, the heading its integral."""
-    decay = math.exp(-(t[1] - t[0]) / tau_s)
-    velocity = np.empty(t.size)
-    velocity[0] = rng.normal(0.0, sd_deg_s)
-    for i in range(1, t.size):
-        velocity[i] = decay * velocity[i - 1] + rng.normal(0.0, sd_deg_s * math.sqrt(1 - decay**2))
-    return np.cumsum(velocity) * (t[1] - t[0])
-
-
 def test_the_tracked_headings_noise_is_what_its_smoothing_leaves_of_the_trackers():
     rng = np.random.default_rng(3)
     t = np.arange(15_000) * 0.02
-    truth = _ou_heading(rng, 90.0, 0.3, t)
+    truth = _ou_heading(rng, 90.0, 0.3, t.size, 0.02)  # an invented head turning at 90 deg/s over 0.3 s
     seen = truth + rng.normal(0.0, 3.0, t.size)
     seen[rng.random(t.size) < 0.02] = np.nan
     xy = heading_points_cm(np.radians(seen))
