@@ -11,7 +11,11 @@ without a heading):
    settings and its automatic plan (learn, fit, arm): every 20 ms step gives
    its decoded heading (the point estimate chosen at fit time; the MAP's
    and the posterior mean's errors beside it), the true heading of the
-   simulation and its events.
+   simulation and its events; ``hpd95_coverage``, the share of steps
+   whose true heading bin lies in the posterior's 95 % HPD region, beside
+   ``hpd95_region_mass``, the regions' mean mass (what a calibrated
+   posterior covers: a little over 0.95, since whole bins go in), says
+   how well the fitted temperature calibrates it.
 2. The plain numpy textbook heading decoder (below) learns tuning curves
    over the same 6-degree bins from the learning part (spikes and the
    tracker's heading on the acquisition clock) and decodes the same steps
@@ -67,6 +71,7 @@ from decoder.config import load_config, with_overrides  # noqa: E402
 from decoder.encoding.heading_metrics import tuned_against_shuffle  # noqa: E402
 from decoder.encoding.movement import default_uniform_weight  # noqa: E402
 from decoder.inference.decoding import BayesDecoder  # noqa: E402
+from decoder.inference.filtering import hpd_contains, hpd_mass  # noqa: E402
 from decoder.inference.heading_velocity import HeadingVelocity  # noqa: E402
 from decoder.messages import SpikeBatch, TrackerFrames  # noqa: E402
 from decoder.space.headings import HeadingRing, angle_difference_deg, heading_of_point  # noqa: E402
@@ -207,6 +212,11 @@ def run(decode_s: float, seed: int) -> dict:
     ours = np.abs(angle_difference_deg(decoded_deg, true_deg))[known]
     ours_map = np.abs(angle_difference_deg(map_deg, true_deg))[known]
     ours_mean = np.abs(angle_difference_deg(mean_deg, true_deg))[known]
+    # Calibration where the truth is exact: the fit could only score against the tracker's noisy heading.
+    true_bins = ring.bin_index(np.array([s.true_xy_cm for s in steps]))
+    posteriors = np.array([s.step.posterior for s in steps])
+    coverage = float(np.mean(hpd_contains(posteriors, true_bins)[true_bins >= 0]))
+    region_mass = float(np.mean(hpd_mass(posteriors)[true_bins >= 0]))
 
     arcs = {z.name: z for z in config.zones}
     facing_away = {r.name for r in config.rules if r.tracked == "outside"}
@@ -276,6 +286,8 @@ def run(decode_s: float, seed: int) -> dict:
         "p90_error_deg": float(np.percentile(ours, 90)),
         "map_median_error_deg": float(np.median(ours_map)),
         "mean_median_error_deg": float(np.median(ours_mean)),
+        "hpd95_coverage": coverage,
+        "hpd95_region_mass": region_mass,
         "summary_heading_median_error_deg": result.summary["decode"].get("heading_median_error_deg"),
         "textbook_median_error_deg": best,
         "textbook_by_window": textbook,

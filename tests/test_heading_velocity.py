@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from hmmlearn.hmm import PoissonHMM
 
-from decoder.encoding.calibration import fit_temperature
+from decoder.encoding.calibration import fit_temperature, point_estimate_of
 from decoder.encoding.heading_motion import (
     MIN_GAIN,
     choose_heading_velocity,
@@ -28,6 +28,7 @@ from decoder.encoding.heading_motion import (
 )
 from decoder.inference import _kernels as K
 from decoder.inference.decoding import BayesDecoder
+from decoder.inference.filtering import hpd_contains
 from decoder.inference.heading_velocity import N_VELOCITY_BINS, HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import LinearTrack
@@ -159,11 +160,14 @@ def test_turning_process_is_recovered_from_a_noisy_tracked_heading(sd_deg_s, tau
     t = np.arange(heading.size) * 4 * frame_s
     tracked = np.mod(heading + rng.normal(0.0, 3.0, heading.size), 360.0)
     tracked[rng.random(heading.size) < 0.02] = np.nan
-    fit = fit_heading_velocity(t, tracked)
+    fit, noise_sd_deg = fit_heading_velocity(t, tracked)
     # Source: the integrated Ornstein-Uhlenbeck displacement variance (Uhlenbeck & Ornstein 1930, from
     # memory) generated the data; 1000 s hold ~3,000-7,000 correlation times, so 10 % bounds the estimate.
     assert fit.sd_deg_s == pytest.approx(sd_deg_s, rel=0.1)
     assert fit.time_constant_s == pytest.approx(tau_s, rel=0.15)
+    # The generator's 3-degree white tracker noise, from the variance's intercept (twice its variance),
+    # the trimmed variances corrected by the truncated normal's second moment (from memory).
+    assert noise_sd_deg == pytest.approx(3.0, rel=0.05)
 
 
 def test_turning_fit_refuses_too_few_frames_or_a_still_head():
@@ -177,37 +181,84 @@ def test_turning_fit_refuses_too_few_frames_or_a_still_head():
         fit_heading_velocity(t[::-1], np.zeros(5000))
 
 
-def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
-    # Invented data (a sanity bound, not a reference): 12 von Mises cells on a head turning at
-    # 90 deg/s with a 0.3 s correlation time; the joint state must beat the plain walk held out, and a
-    # fit with a drift or on another environment is returned as it came.
+def _turning_cells(seed: int, burst: int = 1):
+    """Invented data: 12 von Mises cells on a head turning at 90 deg/s over 0.3 s, 6000 steps of 20 ms.
+
+    Each spike is a burst of ``burst`` (at ``1 / burst`` of the rate). Returns the ring, the step, the
+    cells' tuning on the bins, two folds' counts and headings (ring points), the walk, the plain walk's
+    fit on them, and the generator for further draws.
+    """
     ring = HeadingRing(6.0)
-    rng = np.random.default_rng(2)
+    rng = np.random.default_rng(seed)
     step_s = 0.02
     heading = _ou_heading(rng, 90.0, 0.3, 6000, step_s)
     preferred = np.linspace(0, 360, 12, endpoint=False)
     rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(ring.bin_centers_deg[None, :] - preferred[:, None])) - 1))
     true_rates = 0.5 + 40.0 * np.exp(4.0 * (np.cos(np.radians(heading[:, None] - preferred[None, :])) - 1))
-    counts = rng.poisson(true_rates * step_s)
+    counts = burst * rng.poisson(true_rates / burst * step_s)
     xy = heading_points_cm(np.radians(heading))
     walk = RandomWalk(ring, ring.valid_mask, 7.0)
     folds = [slice(0, 3000), slice(3000, 6000)]
-    plain = fit_temperature([rates, rates], [counts[f] for f in folds],
-                            [ring.bin_index(xy[f]) for f in folds], step_s, walk, uniform_weight=1e-3,
-                            fold_true_xy_cm=[xy[f] for f in folds])
+    fold_counts, fold_xy = [counts[f] for f in folds], [xy[f] for f in folds]
+    plain = fit_temperature([rates, rates], fold_counts, [ring.bin_index(p) for p in fold_xy], step_s, walk,
+                            uniform_weight=1e-3, fold_true_xy_cm=fold_xy)
+    return ring, step_s, rates, fold_counts, fold_xy, walk, plain, rng
+
+
+def test_fit_time_choice_keeps_the_joint_state_only_where_it_wins():
+    # Invented data (a sanity bound, not a reference): the joint state must beat the plain walk held
+    # out, replace a drift it beats, and leave a fit it cannot beat as it came.
+    _, step_s, rates, fold_counts, fold_xy, walk, plain, rng = _turning_cells(2)
     frames_t = np.arange(6000) * step_s
-    tracked = xy + rng.normal(0.0, 0.5, xy.shape)
-    chosen = choose_heading_velocity(plain, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
-                                     step_s, walk, frames_t, tracked, uniform_weight=1e-3)
+    tracked = np.concatenate(fold_xy) + rng.normal(0.0, 0.5, (6000, 2))
+
+    def choose(fit):
+        return choose_heading_velocity(fit, [rates, rates], fold_counts, fold_xy, step_s, walk, frames_t, tracked,
+                                       uniform_weight=1e-3)
+
+    chosen = choose(plain)
     assert chosen.angular_velocity_sd_deg_s > 0 and 0.5 < chosen.coverage <= 1.0
     assert min(chosen.map_median_cm, chosen.mean_median_cm) < (1 - MIN_GAIN) * min(plain.map_median_cm,
                                                                                    plain.mean_median_cm)
     assert heading_velocity_of(chosen) == HeadingVelocity(chosen.angular_velocity_sd_deg_s,
                                                           chosen.angular_velocity_time_constant_s)
     assert heading_velocity_of(plain) is None
-    drifting = dataclasses.replace(plain, drift_gain=0.5)
-    assert choose_heading_velocity(drifting, [rates, rates], [counts[f] for f in folds], [xy[f] for f in folds],
-                                   step_s, walk, frames_t, tracked, uniform_weight=1e-3) is drifting
+    # A drifting walk is replaced by the joint state where that wins: the fit decodes without the drift.
+    replaced = choose(dataclasses.replace(plain, drift_gain=0.5))
+    assert replaced.drift_gain == 0 and replaced.angular_velocity_sd_deg_s > 0
+    # ... and kept where the walk's held-out median is already out of reach.
+    sharp = dataclasses.replace(plain, map_median_cm=0.01, mean_median_cm=0.01)
+    assert choose(sharp) is sharp
+
+
+def test_temperature_is_refitted_for_the_joint_state_and_its_coverage_is_what_it_decodes_with():
+    # Invented data (a sanity bound, not a reference): the cells above, each spike a burst of three, so
+    # that their counts are overdispersed (variance three times the mean) and the plain Poisson filter
+    # is overconfident.
+    ring, step_s, rates, fold_counts, fold_xy, walk, plain, _ = _turning_cells(5, burst=3)
+    chosen = choose_heading_velocity(plain, [rates, rates], fold_counts, fold_xy, step_s, walk,
+                                     np.arange(6000) * step_s, np.concatenate(fold_xy), uniform_weight=1e-3)
+    assert plain.temperature > 1.0 and chosen.angular_velocity_sd_deg_s > 0
+    assert chosen.temperature != plain.temperature
+    # Source: the definition of a calibrated 95 % HPD region (common practice): at the refitted
+    # temperature the held-out coverage meets the regions' own mass, to the bisection's resolution
+    # (a few percent of T moves the coverage by about a hundredth here).
+    assert chosen.coverage == pytest.approx(chosen.region_mass, abs=0.02)
+    # The coverage reported is the joint filter's at that temperature, recounted with the reference
+    # filter module's HPD rule (decoder.inference.filtering.hpd_contains, checked against hmmlearn's
+    # forward pass with the joint state above), burn-in steps left out as the fit leaves them out.
+    inside = []
+    burn = round(1.0 / step_s)
+    for counts_k, xy_k in zip(fold_counts, fold_xy):
+        bins_k = ring.bin_index(xy_k)
+        decoder = BayesDecoder(rates, ring, ring.valid_mask, step_s, prior="state_space", random_walk_sd_cm=7.0,
+                               uniform_weight=1e-3, likelihood_temperature=chosen.temperature,
+                               heading_velocity=heading_velocity_of(chosen))
+        for i, row in enumerate(counts_k):
+            post = decoder.decode(np.flatnonzero(row), row[row > 0].astype(np.float64)).posterior
+            if i >= burn and bins_k[i] >= 0:
+                inside.append(bool(hpd_contains(post[np.newaxis], np.array([bins_k[i]]))[0]))
+    assert chosen.coverage == pytest.approx(np.mean(inside), abs=1e-12)
 
 
 def test_a_live_heading_demo_with_the_joint_state_is_reproduced_by_its_replay(tmp_path):
@@ -238,3 +289,13 @@ def test_a_live_heading_demo_with_the_joint_state_is_reproduced_by_its_replay(tm
     assert replay["triggers"]["count"] == live["triggers"]["count"]
     figures = replay["session"]["readiness"]["filter"]
     assert figures["angular_velocity_sd_deg_s"] > 0, figures
+
+
+def test_a_heading_ring_takes_the_posterior_mean_without_the_arms_margin():
+    # Source: the rule documented in decoder.encoding.calibration.point_estimate_of: the mean's 5 %
+    # margin guards against a mean between two arms, off the track; a circular mean is always a heading.
+    ring, track = HeadingRing(6.0), LinearTrack((0, 0), (40, 0), bin_cm=10)
+    assert point_estimate_of(5.0, 4.9, ring) == "mean"
+    assert point_estimate_of(5.0, 4.9, track) == point_estimate_of(5.0, 4.9) == "map"
+    assert point_estimate_of(5.0, 4.7, track) == "mean"
+    assert point_estimate_of(5.0, 5.0, ring) == "map"

@@ -29,12 +29,23 @@ what the issue asks of the posterior and what the trigger rules threshold
 (posterior mass in a zone); the log density is dominated by the few steps
 where the true bin has almost no mass, so its optimum follows the tails.
 Coverage rises with ``T`` (a wider posterior covers more) while the
-regions' mass hardly moves, so the fit is a bisection on ``log T``.
+regions' mass hardly moves, so the fit is a bisection on ``log T``, ending
+where the line between the final bracket's ends meets the target.
+
+The tracked position is not the truth: where its noise is comparable to a
+bin, a calibrated posterior covers the tracked bin less often than its
+mass says, and the fit would widen it to cover the tracker's noise too.
+Given that noise (``tracked_noise_sd``; on a heading ring
+``heading_motion.tracked_heading_noise_deg`` learns it from the frames),
+each held-out step is scored by the tracked position's predictive
+distribution, the posterior blurred by the noise
+(``Environment.tracked_bin_kernel``): the question a calibrated posterior
+answers right.
 
 The same held-out steps choose the decoded position, the point estimate
 the session scores and shows: the MAP bin's centre or the posterior mean,
 whichever lies closer to the tracked position in the median (the mean by a
-margin, ``_MEAN_MARGIN``), at the fitted
+margin, ``_MEAN_MARGIN``, except on a heading ring), at the fitted
 temperature. Where the posterior is broad and round (an open arena) the
 mean averages out the bins' quantisation and the MAP's jumps between
 neighbouring peaks; where it is split between arms or along a track's two
@@ -52,7 +63,10 @@ The same held-out steps choose the drift of the walk towards the decoded
 velocity (:func:`fit_drift`): its gain and the time constant of the
 velocity's average, by the held-out median error at the plain walk's
 temperature; the
-temperature is then fitted again with the drift, whose coverage it is.
+temperature is then fitted again with the drift, whose coverage it is. On
+a heading ring the joint state of heading and angular velocity is chosen
+and the temperature refitted for it the same way
+(``decoder.encoding.heading_motion``).
 
 References
 ----------
@@ -72,9 +86,11 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
+from decoder.inference.filtering import hpd_mass
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
+from decoder.space.headings import HeadingRing
 
 logger = logging.getLogger(__name__)
 
@@ -104,6 +120,7 @@ _MASS_EVERY = 8
 #: median error is this share below the MAP's: the mean of a posterior split
 #: between two arms lies between them, off the track, a risk that a median
 #: over a minute of held-out steps may not show; a near tie goes to the MAP.
+#: Not on a heading ring (:func:`point_estimate_of`).
 _MEAN_MARGIN = 0.05
 
 #: Drift gains and time constants of the decoded velocity (s) that
@@ -147,7 +164,7 @@ class TemperatureFit:
         in model files written before the choice was made).
     point_estimate : {"map", "mean"}
         The one with the smaller median, the mean only if smaller by
-        ``_MEAN_MARGIN`` (the MAP on a near tie or without positions).
+        ``_MEAN_MARGIN`` off a heading ring (the MAP on a near tie or without positions).
     drift_gain, velocity_time_constant_s : float
         The drift the filter decodes with and the temperature was fitted
         for (:class:`DriftFit`); a gain of 0 (and in model files written
@@ -159,6 +176,10 @@ class TemperatureFit:
         On a heading ring, the joint state of heading and angular velocity
         the filter decodes with (``decoder.encoding.heading_motion``); an
         s.d. of 0 is the plain walk.
+    tracked_noise_sd : float
+        S.d. of the tracked position's noise that ``coverage`` and
+        ``region_mass`` were scored with (the environment's units; 0, and in
+        model files written before, scores against the tracked bin itself).
     """
 
     temperature: float
@@ -174,6 +195,7 @@ class TemperatureFit:
     with_marks: bool = False
     angular_velocity_sd_deg_s: float = 0.0
     angular_velocity_time_constant_s: float = 0.0
+    tracked_noise_sd: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -238,6 +260,8 @@ def fit_temperature(
     drift: DriftFit | None = None,
     near: TemperatureFit | None = None,
     fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
+    heading_velocity: HeadingVelocity | None = None,
+    tracked_noise_sd: float = 0.0,
 ) -> TemperatureFit:
     """Fit the likelihood temperature on held-out blocks.
 
@@ -261,7 +285,7 @@ def fit_temperature(
         Tracked position at the end of each step (NaN where unknown): with
         them the MAP and the posterior mean are scored at the fitted
         temperature, by ``walk.environment.distance_cm``, and the closer
-        one (the mean by ``_MEAN_MARGIN``) becomes ``point_estimate``.
+        one (the mean by ``_MEAN_MARGIN`` off a heading ring) becomes ``point_estimate``.
     drift : DriftFit, optional
         The drift the filter decodes with (:func:`fit_drift`); none by
         default. It is kept in the returned fit.
@@ -278,6 +302,22 @@ def fit_temperature(
         count, shape (n_bins,), the ground-process rate times ``step_s``;
         both from the mark model fitted without the block. Decoded with the
         units' counts as ``BayesDecoder.decode`` takes them; none by default.
+    heading_velocity : HeadingVelocity, optional
+        On a heading ring, the joint state of heading and angular velocity
+        the filter decodes with (``decoder.encoding.heading_motion``); the
+        plain walk by default. It is kept in the returned fit.
+    tracked_noise_sd : float, default 0
+        S.d. of the noise of the tracked positions the held-out steps are
+        scored against, in the environment's units (degrees on a heading
+        ring). Above 0, each step's coverage and region are those of the
+        tracked position's predictive distribution, the posterior blurred
+        by that noise (``posterior @ environment.tracked_bin_kernel(sd)``):
+        a calibrated posterior observed through a noisy tracker then
+        covers the tracked bin as often as the regions' mass says, where
+        the posterior's own region would cover it less often and push the
+        temperature up. 0 scores the posterior's region against the tracked
+        bin, as if the tracker were exact. Only a heading ring models the
+        noise so far (``NotImplementedError`` elsewhere).
 
     Returns
     -------
@@ -286,7 +326,8 @@ def fit_temperature(
         rounded up to whole bins), which is what a calibrated posterior
         covers. ``temperature`` is 1 when the plain model already covers
         it, ``MAX_TEMPERATURE`` when even that does not, and otherwise
-        whichever end of the final bisection bracket comes closer.
+        where the coverage meets the mass, interpolated in ``log T``
+        between the ends of the final bisection bracket.
 
     Raises
     ------
@@ -330,9 +371,13 @@ def fit_temperature(
     fired = _fired(fold_counts)
     all_true_bins = np.concatenate(truths).tolist()
     n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
+    if not (math.isfinite(tracked_noise_sd) and tracked_noise_sd >= 0.0):
+        raise ValueError(f"tracked_noise_sd must be a finite s.d. >= 0, got {tracked_noise_sd!r}")
+    blur = walk.environment.tracked_bin_kernel(tracked_noise_sd) if tracked_noise_sd > 0 else None
 
-    # The decoded points (MAP, mean) of each step by temperature, for fit()'s medians: the chosen
-    # temperature's pass is not decoded a second time (a pass costs as much as the fit's other work).
+    # The decoded points (MAP, mean) of each step by temperature, for fit()'s medians: a temperature
+    # already decoded is not decoded again (a pass costs as much as the fit's other work); only the
+    # bisection's interpolated temperature takes a pass of its own.
     points_at: dict[float, np.ndarray] = {}
 
     def held_out(temperature: float) -> tuple[float, float]:
@@ -342,40 +387,50 @@ def fit_temperature(
         thousands of steps would take more memory and time than the decoding.
         The regions' mass varies little from step to step (it is 0.95 plus
         part of one bin), so every ``_MASS_EVERY``-th known step estimates it.
+        With a tracked noise, the region and its mass are the predictive
+        distribution's, the posterior blurred by ``blur``.
         """
         inside, mass, n_mass = 0, 0.0, 0
         score_points = fold_true_xy_cm is not None
         points: list[np.ndarray] = []
         steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
-                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms)
+                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms, heading_velocity)
         for step, true_bin in zip(steps, all_true_bins):
             if score_points:
                 points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
             if true_bin < 0:
                 continue
-            p = step.posterior
+            p = step.posterior if blur is None else step.posterior @ blur
             # Inside when the bins more probable than the true one hold less than the mass
             # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
             inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
-            if n_mass % _MASS_EVERY == 0:
+            if n_mass % _MASS_EVERY == 0 and blur is None:
                 n_hpd = round(step.hpd95_size / bin_size)
                 mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
+            elif n_mass % _MASS_EVERY == 0:
+                mass += float(hpd_mass(p[np.newaxis])[0])
             n_mass += 1
         if score_points:
             points_at[temperature] = np.array(points)
         return inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
+    turning = {"tracked_noise_sd": float(tracked_noise_sd)} if heading_velocity is None else {
+        "angular_velocity_sd_deg_s": heading_velocity.sd_deg_s,
+        "angular_velocity_time_constant_s": heading_velocity.time_constant_s,
+        "tracked_noise_sd": float(tracked_noise_sd)}
 
-    def fit(temperature: float, cov: float, mass: float) -> TemperatureFit:
+    def fit(temperature: float, *figures: float) -> TemperatureFit:
+        """The fit at ``temperature``, with its coverage and mass if known (decoded once more if not)."""
+        cov, mass = figures or held_out(temperature)
         if fold_true_xy_cm is None:
             return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, drift_gain=drift.gain,
                                   velocity_time_constant_s=drift.velocity_time_constant_s,
-                                  with_marks=fold_mark_terms is not None)
+                                  with_marks=fold_mark_terms is not None, **turning)
         map_cm, mean_cm = _point_medians_cm(walk.environment, points_at[temperature], np.concatenate(fold_true_xy_cm))
         return TemperatureFit(temperature, cov, coverage_at_1, mass, n_known, map_cm, mean_cm,
-                              point_estimate_of(map_cm, mean_cm), drift.gain,
-                              drift.velocity_time_constant_s, fold_mark_terms is not None)
+                              point_estimate_of(map_cm, mean_cm, walk.environment), drift.gain,
+                              drift.velocity_time_constant_s, fold_mark_terms is not None, **turning)
 
     def bisect(lo: tuple[float, ...], hi: tuple[float, ...], steps: int) -> TemperatureFit:
         for _ in range(steps):
@@ -385,7 +440,10 @@ def fit_temperature(
                 hi = at_mid
             else:
                 lo = at_mid
-        return fit(*min(lo, hi, key=lambda end: abs(end[1] - end[2])))
+        # Either end misses the target by up to the bracket's change of coverage (about 0.01 at the full
+        # fit's last bracket): the temperature where the line between them meets it, in log T, lands on it.
+        short, over = lo[2] - lo[1], hi[1] - hi[2]
+        return fit(lo[0] * (hi[0] / lo[0]) ** (short / (short + over)))
 
     if near is not None:
         # A bracket of _NEAR_FACTOR either side of the expected temperature, when it holds the answer.
@@ -456,12 +514,17 @@ def _decoded_steps(
                 yield decoder.decode(rows, counts, step_log_like, expected)
 
 
-def point_estimate_of(map_median_cm: float, mean_median_cm: float) -> str:
+def point_estimate_of(map_median_cm: float, mean_median_cm: float, environment: Environment | None = None) -> str:
     """The decoded position a fit chooses from the held-out medians: "mean" if smaller by ``_MEAN_MARGIN``, else "map".
 
-    A near tie goes to the MAP, which never lies between two arms.
+    A near tie goes to the MAP, which never lies between two arms. On a
+    heading ring the mean needs no margin: its direction (the circular
+    mean) is a heading like any other, never a point off the environment,
+    and the held-out headings are the tracker's, whose noise adds to both
+    medians and shrinks their relative difference.
     """
-    return "mean" if mean_median_cm < map_median_cm * (1.0 - _MEAN_MARGIN) else "map"
+    margin = 0.0 if isinstance(environment, HeadingRing) else _MEAN_MARGIN
+    return "mean" if mean_median_cm < map_median_cm * (1.0 - margin) else "map"
 
 
 def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.ndarray) -> tuple[float, float]:

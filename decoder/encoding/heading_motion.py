@@ -14,13 +14,21 @@ Ornstein-Uhlenbeck velocity is
 
 ``c`` twice the tracker's noise variance (Uhlenbeck and Ornstein 1930; from
 memory): ballistic (``sigma^2 L^2``) at lags well under ``tau``,
-diffusive (``2 sigma^2 tau L``) well over it.
+diffusive (``2 sigma^2 tau L``) well over it. The same fit gives the
+tracker's noise, ``sqrt(c / 2)``, from which :func:`tracked_heading_noise_deg`
+simulates the noise of the smoothed tracked heading the held-out steps are scored against,
+and every temperature fit on a heading ring scores the held-out coverage
+against that noisy heading's predictive distribution
+(``calibration.fit_temperature(tracked_noise_sd=...)``), not as if the
+tracker were exact.
 
 :func:`choose_heading_velocity` decodes the held-out learning steps with
-the joint state at the plain walk's temperature and keeps it only if its
-held-out median error beats the plain walk's by ``MIN_GAIN`` (the drift's
-rule, ``calibration.fit_drift``, with a smaller margin); the temperature
-is not refitted for it.
+the joint state at the walk's temperature and keeps it only if its
+held-out median error beats the walk's (plain or drifting) by ``MIN_GAIN``
+(the drift's rule, ``calibration.fit_drift``, with a smaller margin); the
+temperature is then fitted again with the joint state
+(``calibration.fit_temperature``, starting near the walk's), so that the held-out coverage is the one
+the session decodes with, as it is for the drift.
 
 References
 ----------
@@ -30,13 +38,12 @@ Phys Rev 36:823-841.
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import math
 from collections.abc import Sequence
 
 import numpy as np
-from scipy import optimize
+from scipy import optimize, stats
 
 from decoder.encoding.calibration import (
     TemperatureFit,
@@ -44,11 +51,12 @@ from decoder.encoding.calibration import (
     _fired,
     _point_medians_cm,
     _unscored,
-    point_estimate_of,
+    fit_temperature,
 )
-from decoder.inference.filtering import hpd_contains
+from decoder.encoding.tracked_steps import smoothed_noise_sd
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
+from decoder.space.environments import Environment
 from decoder.space.headings import HeadingRing, angle_difference_deg
 
 logger = logging.getLogger(__name__)
@@ -64,6 +72,15 @@ MIN_DISPLACEMENTS = 200
 #: Share of the largest displacements left out of each variance (swapped LEDs, outliers).
 TRIM_FRACTION = 0.01
 
+#: A normal variable's mean square with the largest ``TRIM_FRACTION`` of its
+#: sizes left out, over its variance: ``1 - 2 z phi(z) / (1 - TRIM_FRACTION)``
+#: at ``z`` its ``1 - TRIM_FRACTION / 2`` quantile (the truncated normal's
+#: second moment; Johnson, Kotz and Balakrishnan 1994, Continuous Univariate
+#: Distributions 1, ch. 13; from memory). The trimmed variances are divided by
+#: it, so that the displacements' normal variance is estimated without bias.
+_TRIMMED_SHARE = 1.0 - 2.0 * stats.norm.ppf(1.0 - TRIM_FRACTION / 2) * stats.norm.pdf(
+    stats.norm.ppf(1.0 - TRIM_FRACTION / 2)) / (1.0 - TRIM_FRACTION)
+
 #: The joint state is kept only if it lowers the held-out median error by
 #: more than this share. Smaller than the drift's margin
 #: (``calibration._DRIFT_MIN_GAIN``, 5 %): the process is learned from the
@@ -73,9 +90,13 @@ TRIM_FRACTION = 0.01
 #: heading scenario 3.5 % held out for 8 % against the true heading).
 MIN_GAIN = 0.02
 
+#: Simulated headings whose smoothed error :func:`tracked_heading_noise_deg`
+#: averages: with a few thousand steps each, known to about 1 %.
+_NOISE_DRAWS = 4
 
-def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> HeadingVelocity:
-    """The Ornstein-Uhlenbeck angular velocity whose integral moves like the tracked heading.
+
+def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> tuple[HeadingVelocity, float]:
+    """The Ornstein-Uhlenbeck angular velocity whose integral moves like the tracked heading, and the tracker's noise.
 
     Parameters
     ----------
@@ -86,7 +107,10 @@ def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> Headin
 
     Returns
     -------
-    HeadingVelocity
+    process : HeadingVelocity
+    noise_sd_deg : float
+        S.d. of the tracker's heading noise on one frame, degrees (from the
+        variance's intercept; white normal noise assumed).
 
     Raises
     ------
@@ -114,7 +138,7 @@ def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> Headin
         size = np.abs(turned)
         kept = turned[size <= np.quantile(size, 1.0 - TRIM_FRACTION)]
         lags_s.append(float(np.median(t[lag:] - t[:-lag])))
-        variances.append(float(np.mean(kept**2)))
+        variances.append(float(np.mean(kept**2)) / _TRIMMED_SHARE)
     lags, var = np.array(lags_s), np.array(variances)
     if lags.size < 3 or not var[-1] > 0:
         raise ValueError("the tracked heading never turns, or too few frames; check the tracker's heading")
@@ -127,8 +151,63 @@ def fit_heading_velocity(times_s: np.ndarray, heading_deg: np.ndarray) -> Headin
     # Relative residuals: the short lags, which hold the velocity, weigh as much as the long ones.
     start = np.array([math.log(math.sqrt(var[-1] / lags[-1])), math.log(0.3), math.sqrt(var[0] / 2)])
     fit = optimize.least_squares(lambda p: model(p) / var - 1.0, start, method="lm")
-    log_sd, log_tau, _ = fit.x
-    return HeadingVelocity(sd_deg_s=math.exp(log_sd), time_constant_s=math.exp(log_tau))
+    log_sd, log_tau, noise = fit.x
+    return HeadingVelocity(sd_deg_s=math.exp(log_sd), time_constant_s=math.exp(log_tau)), abs(noise) / math.sqrt(2.0)
+
+
+def tracked_heading_noise_deg(environment: Environment, frame_t_s: np.ndarray, frame_xy_cm: np.ndarray,
+                              t_s: np.ndarray, max_frame_gap_s: float) -> float:
+    """S.d. of the noise of the tracked heading the held-out steps are scored against, degrees.
+
+    The tracker's frames are smoothed before the held-out steps are scored
+    against them (``tracked_steps.tracked_at``), so the frames' noise
+    (:func:`fit_heading_velocity`) is not the scored heading's. The scored
+    heading's error is simulated instead: ``_NOISE_DRAWS`` headings turned
+    by the fitted process at the session's own valid frame times, seen
+    through the fitted noise, smoothed the same way and read at ``t_s``
+    (``tracked_steps.smoothed_noise_sd``), with a fixed seed: the same
+    answer every time. About 0.6 of the frames' noise on the heading
+    scenario, where a median of still frames would keep 0.54 of it.
+
+    Parameters
+    ----------
+    environment : Environment
+    frame_t_s : ndarray of float64, shape (n,)
+    frame_xy_cm : ndarray of float64, shape (n, 2)
+        The learning period's tracked frames (ring points on a heading ring; NaN rows lost).
+    t_s : ndarray of float64, shape (m,)
+        The held-out steps' ends.
+    max_frame_gap_s : float
+        As the place model's: steps in a longer gap are not scored.
+
+    Returns
+    -------
+    float
+        0 off a heading ring, and where no turning can be learned (the
+        temperature fit then scores as if the tracker were exact).
+    """
+    if not isinstance(environment, HeadingRing):
+        return 0.0
+    heading = environment.linearize(frame_xy_cm)
+    try:
+        process, noise_sd_deg = fit_heading_velocity(frame_t_s, heading)
+    except ValueError:
+        return 0.0
+    t = np.asarray(frame_t_s, dtype=np.float64)[np.isfinite(heading)]
+    rng = np.random.default_rng(0)
+    # The exact Ornstein-Uhlenbeck step over each frame interval, the heading its (Euler) integral.
+    dt = np.diff(t, prepend=t[0])[:, np.newaxis]
+    decay = np.exp(-dt / process.time_constant_s)
+    kicks = rng.normal(0.0, 1.0, (t.size, _NOISE_DRAWS)) * process.sd_deg_s * np.sqrt(1.0 - decay**2)
+    velocity = np.empty_like(kicks)
+    velocity[0] = rng.normal(0.0, process.sd_deg_s, _NOISE_DRAWS)
+    for i in range(1, t.size):
+        velocity[i] = decay[i] * velocity[i - 1] + kicks[i]
+    truth = np.cumsum(velocity * dt, axis=0)
+    truth_at = np.column_stack([np.interp(t_s, t, truth[:, k]) for k in range(_NOISE_DRAWS)])
+    scored = smoothed_noise_sd(t, truth, truth_at, noise_sd_deg, np.asarray(t_s, dtype=np.float64),
+                               max_frame_gap_s, rng)
+    return scored if math.isfinite(scored) else 0.0
 
 
 def heading_velocity_of(fit: TemperatureFit | None) -> HeadingVelocity | None:
@@ -151,61 +230,64 @@ def choose_heading_velocity(
     uniform_weight: float,
     rate_floor_hz: float = 0.01,
     fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
+    tracked_noise_sd: float = 0.0,
 ) -> TemperatureFit:
     """``fit`` with the joint state of heading and angular velocity, if that decodes the held-out steps better.
 
-    On a heading ring with no drift, the velocity process is learned from
+    On a heading ring, the velocity process is learned from
     the tracked frames (:func:`fit_heading_velocity`) and the held-out
     blocks are decoded with it at ``fit.temperature``, one pass; if the
-    better point estimate's median error is below the plain walk's by more
-    than ``MIN_GAIN``, the returned
-    fit carries the process (``angular_velocity_sd_deg_s``,
-    ``angular_velocity_time_constant_s``), the medians and the point
-    estimate chosen by ``calibration``'s rule, and the held-out 95 % HPD
-    coverage with the joint state (at the plain walk's temperature, which
-    is not refitted: ``coverage`` is then what the session decodes with,
-    not what the temperature was fitted to). Otherwise ``fit`` itself.
+    better point estimate's median error is below the walk's by more
+    than ``MIN_GAIN``, the temperature is fitted again with the joint state
+    (``calibration.fit_temperature`` with ``heading_velocity``, bracketed
+    near ``fit.temperature``, with no drift: the joint state carries the
+    velocity the drift would follow, and replaces it), and that fit is
+    returned: it carries the
+    process (``angular_velocity_sd_deg_s``,
+    ``angular_velocity_time_constant_s``), its temperature, the held-out
+    95 % HPD coverage it was fitted to, the medians and the point estimate
+    at that temperature. Otherwise ``fit`` itself.
 
     Parameters
     ----------
     fit : TemperatureFit
-        The plain walk's fit, with its held-out medians.
+        The walk's fit (plain or with the drift ``calibration.fit_drift``
+        chose), with its held-out medians.
     fold_rate_maps_hz, fold_counts, fold_true_xy_cm, step_s, walk, uniform_weight, rate_floor_hz, fold_mark_terms
         As in ``calibration.fit_drift``.
     frame_t_s : ndarray of float64, shape (n,)
     frame_xy_cm : ndarray of float64, shape (n, 2)
         The learning period's tracked headings as ring points (NaN rows lost).
+    tracked_noise_sd : float, default 0
+        The held-out steps' tracked heading noise, degrees
+        (:func:`tracked_heading_noise_deg`), for the refit's scoring
+        (``calibration.fit_temperature``); ``fit`` should have been scored with the same.
 
     Returns
     -------
     TemperatureFit
     """
     env = walk.environment
-    plain_cm = min(fit.map_median_cm, fit.mean_median_cm)
-    if not isinstance(env, HeadingRing) or fit.drift_gain > 0 or not math.isfinite(plain_cm):
+    walk_cm = min(fit.map_median_cm, fit.mean_median_cm)
+    if not isinstance(env, HeadingRing) or not math.isfinite(walk_cm):
         return fit
     try:
-        process = fit_heading_velocity(frame_t_s, env.linearize(frame_xy_cm))
+        process, _ = fit_heading_velocity(frame_t_s, env.linearize(frame_xy_cm))
     except ValueError as exc:
-        logger.info("no angular velocity learned (%s); the filter keeps the plain walk", exc)
+        logger.info("no angular velocity learned (%s); the filter keeps the walk", exc)
         return fit
     truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
-    true_bins = env.bin_index(truth).tolist()
-    points, inside = [], []
-    for step, true_bin in zip(_decoded_steps(fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight,
-                                             fit.temperature, rate_floor_hz, 0.0, 1.0, fold_mark_terms,
-                                             heading_velocity=process),
-                              true_bins):
-        points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
-        if true_bin >= 0:
-            inside.append(bool(hpd_contains(step.posterior[np.newaxis], np.array([true_bin]))[0]))
-    map_cm, mean_cm = _point_medians_cm(env, np.array(points), truth)
+    points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
+        fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight, fit.temperature, rate_floor_hz, 0.0,
+        1.0, fold_mark_terms, heading_velocity=process)]
+    joint_cm = min(_point_medians_cm(env, np.array(points), truth))
     logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
-                process.sd_deg_s, process.time_constant_s, min(map_cm, mean_cm), plain_cm)
-    if not min(map_cm, mean_cm) < plain_cm * (1.0 - MIN_GAIN):
+                process.sd_deg_s, process.time_constant_s, joint_cm, walk_cm)
+    if not joint_cm < walk_cm * (1.0 - MIN_GAIN):
         return fit
-    return dataclasses.replace(
-        fit, coverage=float(np.mean(inside)), map_median_cm=map_cm, mean_median_cm=mean_cm,
-        point_estimate=point_estimate_of(map_cm, mean_cm),
-        angular_velocity_sd_deg_s=process.sd_deg_s, angular_velocity_time_constant_s=process.time_constant_s,
-    )
+    # The true bins as fit_temperature scores them (-1 where the tracker lost the head).
+    fold_true_bins = [env.bin_index(np.asarray(xy, dtype=np.float64).reshape(-1, 2)) for xy in fold_true_xy_cm]
+    return fit_temperature(fold_rate_maps_hz, fold_counts, fold_true_bins, step_s, walk,
+                           uniform_weight=uniform_weight, rate_floor_hz=rate_floor_hz,
+                           fold_true_xy_cm=fold_true_xy_cm, near=fit, fold_mark_terms=fold_mark_terms,
+                           heading_velocity=process, tracked_noise_sd=tracked_noise_sd)

@@ -18,12 +18,11 @@ import os
 from typing import Any
 
 import numpy as np
-from scipy import ndimage
 
 from decoder.encoding.calibration import TemperatureFit, fit_drift, fit_temperature
 from decoder.encoding.cross_validation import CrossValidatedError, cv_block, held_out_error
 from decoder.encoding.heading_metrics import HeadingTuning, heading_tuning
-from decoder.encoding.heading_motion import choose_heading_velocity
+from decoder.encoding.heading_motion import choose_heading_velocity, tracked_heading_noise_deg
 from decoder.encoding.held_out import HeldOutSpikes
 from decoder.encoding.mark_model import MarkModel
 from decoder.encoding.model_file import (
@@ -38,6 +37,7 @@ from decoder.encoding.online_counts import OnlineCounts
 from decoder.encoding.rate_maps import smoothed_rate_maps, visited_bins
 from decoder.encoding.readiness import Readiness, coarse_counts, coarse_tuning_grid, count_tuned, count_tuned_units
 from decoder.encoding.spatial_metrics import field_size, skaggs_information, sparsity
+from decoder.encoding.tracked_steps import tracked_at
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment, HeadingRing
 
@@ -48,11 +48,6 @@ logger = logging.getLogger(__name__)
 #: temperature, four for the drift and four to refit the temperature with it
 #: (bench/decoder.py times the whole fit).
 MAX_CALIBRATION_STEPS = 3_000
-
-#: Tracked frames in the running median that the held-out steps are scored
-#: against: 5 frames, 100 ms at 50 Hz, shorter than a stride of a running
-#: rat, long enough to drop a lone outlier and halve frame-to-frame jitter.
-TRACKED_MEDIAN_FRAMES = 5
 
 #: Names of the mark model's arrays in a model file that holds one.
 _MARKS_PREFIX = "marks__"
@@ -382,15 +377,19 @@ class PlaceModel(OnlineCounts):
         walk = RandomWalk(env, visited, movement.walk_sd_cm(env.bin_cm))
         common = dict(uniform_weight=movement.uniform_weight, rate_floor_hz=self.rate_floor_hz,
                       fold_mark_terms=fold_terms if marks is not None else None)
-        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy, **common)
+        # A heading ring's held-out steps are scored against the tracked heading's predictive distribution.
+        frame_t, frame_xy = self.movement_frames()
+        noise = tracked_heading_noise_deg(env, frame_t, frame_xy, ends, self.max_frame_gap_s)
+        fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
+                              tracked_noise_sd=noise, **common)
         # The drift is chosen at the plain walk's temperature, then the temperature refitted for it.
         drift = fit_drift(fold_maps, fold_counts, fold_xy, step_s, walk, temperature=fit.temperature,
                           median_without_cm=min(fit.map_median_cm, fit.mean_median_cm), **common)
         if drift.gain > 0:
             fit = fit_temperature(fold_maps, fold_counts, fold_bins, step_s, walk, fold_true_xy_cm=fold_xy,
-                                  drift=drift, near=fit, **common)
-        fit = choose_heading_velocity(fit, fold_maps, fold_counts, fold_xy, step_s, walk, *self.movement_frames(),
-                                      **common)
+                                  drift=drift, near=fit, tracked_noise_sd=noise, **common)
+        fit = choose_heading_velocity(fit, fold_maps, fold_counts, fold_xy, step_s, walk, frame_t, frame_xy,
+                                      tracked_noise_sd=noise, **common)
         logger.info(
             "likelihood temperature %.2f for %g s steps%s: held-out 95%% HPD coverage %.3f (%.3f at 1) over %d steps; "
             "decoded position the %s (held-out median %.2f cm; MAP %.2f, mean %.2f); drift gain %.2f on the decoded "
@@ -403,25 +402,8 @@ class PlaceModel(OnlineCounts):
         return fit
 
     def _tracked_at(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Tracked bin (n,) and position (n, 2) at each time, linear between valid frames.
-
-        In a tracking gap the bin is -1 and the position NaN; off the bins
-        the bin is -1. The frames are a running median of
-        ``TRACKED_MEDIAN_FRAMES`` valid frames.
-        """
-        frame_t, frame_xy = self.movement_frames()
-        ok = np.all(np.isfinite(frame_xy), axis=1)
-        frame_t, frame_xy = frame_t[ok], frame_xy[ok]
-        if frame_t.size < 2:
-            return np.full(t_s.size, -1, np.int64), np.full((t_s.size, 2), np.nan)
-        # The tracker's jitter and outliers would count as the filter's misses and
-        # push the temperature up: a running median over a few frames removes them.
-        frame_xy = ndimage.median_filter(frame_xy, size=(TRACKED_MEDIAN_FRAMES, 1), mode="nearest")
-        after = np.clip(np.searchsorted(frame_t, t_s), 1, frame_t.size - 1)
-        gap = (frame_t[after] - frame_t[after - 1] > self.max_frame_gap_s) | (t_s < frame_t[0]) | (t_s > frame_t[-1])
-        xy = np.column_stack([np.interp(t_s, frame_t, frame_xy[:, i]) for i in (0, 1)])
-        xy[gap] = np.nan
-        return np.where(gap, -1, self.environment.bin_index(xy)), xy
+        """Tracked bin (n,) and position (n, 2) at each time (``tracked_steps.tracked_at``): -1 and NaN in a gap."""
+        return tracked_at(self.environment, *self.movement_frames(), t_s, self.max_frame_gap_s)
 
     def readiness(self, *, with_cv_error: bool = False) -> Readiness:
         """Summarise coverage, running time and tuning so far, without changing the fit.

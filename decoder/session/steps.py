@@ -168,7 +168,8 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
 
     Beside the settings the decoder runs with, the held-out figures of the
     fit behind them (``decoder.encoding.calibration.TemperatureFit``) where
-    the model made one for this step: the 95 % HPD coverage, and the median
+    the model made one for this step: the 95 % HPD coverage (and the tracked
+    noise s.d. it was scored with), and the median
     error of the MAP and of the posterior mean that chose ``point_estimate``.
 
     Parameters
@@ -196,7 +197,8 @@ def filter_figures(model: PlaceModel, decoder: BayesDecoder) -> dict:
     fit = model.temperature_fits_.get(decoder.window_s)
     if fit is not None:
         figures.update(held_out_coverage=fit.coverage, held_out_map_median_cm=fit.map_median_cm,
-                       held_out_mean_median_cm=fit.mean_median_cm, held_out_with_marks=fit.with_marks)
+                       held_out_mean_median_cm=fit.mean_median_cm, held_out_with_marks=fit.with_marks,
+                       held_out_tracked_noise_sd=fit.tracked_noise_sd)
     return figures
 
 

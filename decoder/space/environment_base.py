@@ -176,6 +176,12 @@ class Environment(abc.ABC):
             "work on the grid instead, for example with distance_cm on bin centres"
         )
 
+    def tracked_bin_kernel(self, noise_sd_cm: float) -> np.ndarray:
+        """Which bin a tracked position falls in, given the bin of the true one; only a heading ring has it so far."""
+        raise NotImplementedError(
+            f"{type(self).__name__} does not yet model the tracker's noise in its bins; pass a noise s.d. of 0"
+        )
+
     def smooth(self, values: np.ndarray, mask: np.ndarray, sigma_cm: float) -> np.ndarray:
         """Gaussian smoothing restricted to ``mask``, normalised by the mask's weight.
 

@@ -29,6 +29,7 @@ import math
 from typing import Any, ClassVar
 
 import numpy as np
+from scipy import special
 
 from decoder.space.environment_base import Environment, freeze, read_positions
 
@@ -231,6 +232,50 @@ class HeadingRing(Environment):
             rows = (np.arange(self.n_bins)[None, :] - np.arange(self.n_bins)[:, None]) % self.n_bins
             self._kernel = (sigma_deg, first_row[rows])
         return self._kernel[1]
+
+    def tracked_bin_kernel(self, noise_sd_cm: float) -> np.ndarray:
+        """Probability that the tracked heading falls in bin ``j`` when the true one lies in bin ``i``.
+
+        The true heading is taken uniform within its bin and the tracker adds
+        a normal error of s.d. ``noise_sd_cm`` (degrees on this ring),
+        wrapped around the circle: a wrapped normal convolved with the bin's
+        box and integrated over each bin. With ``G(x) = x Phi(x/s) + s
+        phi(x/s)``, the integral of the normal c.d.f., the mass ``k`` bins
+        away is the second difference ``(G((k+1)w) - 2 G(kw) + G((k-1)w)) /
+        w``, summed over the wraps ``k w + 360 m`` (Mardia and Jupp 2000,
+        Directional Statistics, sec. 3.5.7, the wrapped normal as a sum over
+        turns; from memory).
+
+        Parameters
+        ----------
+        noise_sd_cm : float
+            The tracked heading's noise s.d. in degrees, >= 0; 0 gives the identity.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_bins, n_bins)
+            Circulant, rows summing to 1: ``posterior @ kernel`` is the
+            distribution of the tracked heading's bin (the posterior
+            predictive of a noisy observation).
+        """
+        sd = float(noise_sd_cm)
+        if not (math.isfinite(sd) and sd >= 0.0):
+            raise ValueError(f"noise_sd_cm must be a finite s.d. >= 0 degrees, got {noise_sd_cm!r}")
+        if sd == 0.0:
+            return np.eye(self.n_bins)
+        w = self.bin_cm
+        # Enough turns either side that the normal's tails beyond them are negligible (8 s.d.).
+        reach = math.ceil(2 * _TRUNCATE_SD * sd / 360.0) + 1
+        turns = np.arange(-reach, reach + 1)
+        offsets = (np.arange(self.n_bins)[:, None] * w + 360.0 * turns[None, :]) / sd
+        w_sd = w / sd
+
+        def g(z: np.ndarray) -> np.ndarray:  # G(x) / s at z = x / s
+            return z * special.ndtr(z) + np.exp(-0.5 * z**2) / math.sqrt(2.0 * math.pi)
+
+        first_row = ((g(offsets + w_sd) - 2.0 * g(offsets) + g(offsets - w_sd)) / w_sd).sum(axis=1)
+        rows = (np.arange(self.n_bins)[None, :] - np.arange(self.n_bins)[:, None]) % self.n_bins
+        return first_row[rows] / first_row.sum()
 
     def _smooth_masked(
         self, values: np.ndarray, mask_f: np.ndarray, sigma_cm: float

@@ -202,18 +202,23 @@ class SimulationSettings:
     # -- head direction (rig_adapters.sim.heading): used when the environment is a heading ring --
     #: Number of head-direction cells (von Mises tuning to the head's direction).
     n_head_direction_cells: int = 0
-    #: Peak rate of a head-direction cell at its preferred direction (Hz), a range; 10-60 Hz in
-    #: anterior thalamus and postsubiculum of the rat (common practice; Taube 1995, J Neurosci 15:70,
-    #: range from memory).
+    #: Peak rate of a head-direction cell at its preferred direction (Hz), a range drawn uniformly;
+    #: about 5-115 Hz, mean about 35, in rat postsubiculum (Taube, Muller & Ranck 1990, J Neurosci
+    #: 10:420) and a little higher in anterior thalamus (Taube 1995, J Neurosci 15:70), both from
+    #: memory. The default's mean (32.5 Hz) and top (50 Hz) are conservative.
     hd_peak_hz: tuple[float, float] = (15.0, 50.0)
     #: Background rate of a head-direction cell away from its preferred direction (Hz); below
-    #: about 1 Hz (from memory).
+    #: about 1 Hz (same papers, from memory).
     hd_baseline_hz: float = 0.5
-    #: Full width at half maximum of the tuning curve (degrees), a range; directional firing ranges
-    #: of about 60-150 degrees base to base put the half-maximum width near 40-90 degrees (from memory).
+    #: Full width at half maximum of the tuning curve (degrees), a range drawn uniformly. The papers
+    #: give a triangular fit's base ("directional firing range"), twice the FWHM: about 60-150
+    #: degrees, mean about 90 (postsubiculum) to 110 (anterior thalamus), so FWHM 30-75, mean
+    #: 45-55 (from memory). The default (mean 67.5) is broader than the record: conservative.
     hd_tuning_fwhm_deg: tuple[float, float] = (45.0, 90.0)
     #: Standard deviation of the angular head velocity (deg/s): a foraging rat turns its head at
-    #: 0-400 deg/s, most of the time below 150 deg/s (from memory).
+    #: 0-400 deg/s, most of the time below 100 deg/s, s.d. about 70-120 deg/s (Blair & Sharp 1995;
+    #: Stackman & Taube 1998; both J Neurosci, from memory). The recorded velocity is peaked at 0
+    #: with heavy tails; this process is Gaussian.
     angular_velocity_sd_deg_s: float = 90.0
     #: Correlation time of the angular head velocity (s), an Ornstein-Uhlenbeck process (from memory).
     angular_velocity_tau_s: float = 0.3
