@@ -331,7 +331,7 @@ class RippleStream:
             self.counters["ripples_moving"] += 1
         else:
             if self.content is not None:
-                self.content.begin(d.onset_s)
+                self.content.begin(d.onset_s, xy)
                 self._detected_s = t
                 self.events_.append(ContentEvent(d.onset_s))
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0
