@@ -291,7 +291,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                 if learning:
                     mark_stream.learn(batch, tracked)
                 else:
-                    stream.take_marks(batch)
+                    # Times, model rows, marks: what the pipeline's MarkStream.take hands the content bins.
+                    stream.take_marks((batch[0], mark_model.rows_of(batch[1]), batch[2]))
             c0 = time.thread_time()
             due = stream.content_due(watermark)
             if due:

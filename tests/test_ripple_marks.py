@@ -90,7 +90,7 @@ def test_a_content_bin_from_marks_alone_is_the_marked_point_process_posterior_wi
     t = np.array([0.995, 1.002, 1.006, 1.011, 1.014, 1.016])  # the first before the bin, the last after it
     groups = np.array([11, 10, 11, 11, 10, 10])
     marks = (60 + 40 * rng.random((6, 3))).astype(np.float32)
-    content.take_marks(t, groups, marks)
+    content.take_marks(t, model.rows_of(groups), marks)
     content.begin(1.0)
     (b,) = content.due(1.0151)
     inside = slice(1, 5)
@@ -109,7 +109,7 @@ def test_units_and_marks_together_add_their_terms():
                                       unit_ids=np.array([7, 8, 9]), marks=model)
     content.take_spikes(np.array([2.001, 2.004, 2.009, 2.012]), np.array([9, 9, 8, 9]))
     groups, marks = np.array([10, 11, 10]), (60 + 40 * rng.random((3, 3))).astype(np.float32)
-    content.take_marks(np.array([2.003, 2.007, 2.013]), groups, marks)
+    content.take_marks(np.array([2.003, 2.007, 2.013]), model.rows_of(groups), marks)
     content.begin(2.0)
     (b,) = content.due(2.016)
     counts = np.array([0, 1, 3])
@@ -129,7 +129,7 @@ def test_the_resting_animals_own_firing_adds_to_units_and_marks_alike():
                                       unit_ids=np.array([7, 8, 9]), marks=model)
     content.take_spikes(np.array([4.001, 4.004, 4.009, 4.012]), np.array([7, 9, 8, 9]))
     groups, marks = np.array([10, 11, 10]), (60 + 40 * rng.random((3, 3))).astype(np.float32)
-    content.take_marks(np.array([4.003, 4.007, 4.013]), groups, marks)
+    content.take_marks(np.array([4.003, 4.007, 4.013]), model.rows_of(groups), marks)
     rest = 1  # the animal rests at 14 cm, in bin 1 (10 to 20 cm)
     content.begin(4.0, resting_xy_cm=np.array([14.0, 0.0]))
     (b,) = content.due(4.016)
@@ -142,7 +142,7 @@ def test_the_resting_animals_own_firing_adds_to_units_and_marks_alike():
     np.testing.assert_allclose(b.posterior, want, rtol=1e-5, atol=1e-12)
     # A lost tracked position adds no background: the plain posterior.
     content.take_spikes(np.array([5.001, 5.004, 5.009, 5.012]), np.array([7, 9, 8, 9]))
-    content.take_marks(np.array([5.003, 5.007, 5.013]), groups, marks)
+    content.take_marks(np.array([5.003, 5.007, 5.013]), model.rows_of(groups), marks)
     content.begin(5.0, resting_xy_cm=np.array([np.nan, np.nan]))
     (b,) = content.due(5.016)
     plain = stats.poisson.logpmf(counts[:, None], BIN_S * maps).sum(axis=0)
@@ -156,8 +156,8 @@ def test_marks_beyond_the_cap_and_of_unknown_groups_stay_out():
     content = ReplayContent.for_model(np.zeros((0, TRACK.n_bins)), TRACK, TRACK.valid_mask, END, bin_s=BIN_S,
                                       max_event_s=0.1, marks=model, max_marks_per_bin=2)
     marks = (60 + 40 * rng.random((4, 3))).astype(np.float32)
-    content.take_marks(np.array([3.001, 3.002]), np.array([99, 10]), marks[:2])  # group 99: not in the model
-    content.take_marks(np.array([3.003, 3.004]), np.array([11, 10]), marks[2:])
+    content.take_marks(np.array([3.001, 3.002]), model.rows_of(np.array([99, 10])), marks[:2])  # group 99: not in the model
+    content.take_marks(np.array([3.003, 3.004]), model.rows_of(np.array([11, 10])), marks[2:])
     content.begin(3.0)
     (b,) = content.due(3.02)
     # The first two known marked spikes in time are decoded; the third is beyond the cap.

@@ -467,21 +467,23 @@ class ReplayContent:
             order = np.argsort(self._t, kind="stable")
             self._t, self._rows = self._t[order], self._rows[order]
 
-    def take_marks(self, t_s: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray) -> None:
+    def take_marks(self, t_s: np.ndarray, rows: np.ndarray, marks_uv: np.ndarray) -> None:
         """Hold a batch of checked marked spikes for the events to come.
 
         Parameters
         ----------
         t_s : ndarray of float64, shape (n,)
             Times (s), sorted.
-        group_ids : ndarray of int64, shape (n,)
-            Groups the mark model does not know are left out here (the behavioural steps count them).
+        rows : ndarray of int64, shape (n,)
+            The mark model's row of each spike's group (``MarkModel.rows_of``,
+            looked up once per batch by ``MarkStream.take``); -1, a group the
+            model does not know, is left out here (the behavioural steps count them).
         marks_uv : ndarray of float32, shape (n, n_channels)
         """
         t = np.asarray(t_s, np.float64)
         if self.marks is None or not t.size:
             return
-        rows = self.marks.rows_of(group_ids)
+        rows = np.asarray(rows, np.int64)
         known = rows >= 0
         t, rows = t[known], rows[known]
         if not t.size:

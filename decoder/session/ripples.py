@@ -244,7 +244,7 @@ class RippleStream:
             self.content.take_spikes(t_s, unit_ids)
 
     def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
-        """Hold the spike source's checked marked spikes (``MarkStream.accept``'s times, groups, marks) for content."""
+        """Hold the spike source's checked marked spikes for content: times, mark model rows, marks (``MarkStream.take``)."""
         if self.content is not None:
             self.content.take_marks(*batch)
 
