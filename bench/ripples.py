@@ -37,7 +37,8 @@ chunks of ``chunk_s`` as an acquisition system would:
   path at 300-600 cm/s, half of them ending at the goal well, the others
   between random points): a place model learned from the first
   ``--learn-s`` of running, then every ripple detected at rest decoded in
-  15 ms bins from 20 ms before its onset to its LFP offset
+  15 ms bins from 20 ms before its onset to its LFP offset, the resting
+  animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
   one rule, "a sequence moving towards the goal" (within 12 cm of the well
   at (0, 80)). A replay's truth is the simulator's own record
