@@ -100,7 +100,9 @@ def test_a_content_bin_from_marks_alone_is_the_marked_point_process_posterior_wi
     assert b.n_spikes == 4 and b.n_marks_over_cap == 0
 
 
-def test_units_and_marks_together_add_their_terms():
+@pytest.mark.parametrize("resting_xy_cm, rest", [(None, None), ((14.0, 0.0), 1), ((math.nan, math.nan), None)],
+                         ids=["no_position", "resting_in_bin_1", "lost_position"])
+def test_units_and_marks_together_add_their_terms(resting_xy_cm, rest):
     rng = np.random.default_rng(5)
     model, occupancy = _mark_model(rng)
     x = TRACK.bin_centers_cm[:, 0]
@@ -110,44 +112,19 @@ def test_units_and_marks_together_add_their_terms():
     content.take_spikes(np.array([2.001, 2.004, 2.009, 2.012]), np.array([9, 9, 8, 9]))
     groups, marks = np.array([10, 11, 10]), (60 + 40 * rng.random((3, 3))).astype(np.float32)
     content.take_marks(np.array([2.003, 2.007, 2.013]), model.rows_of(groups), marks)
-    content.begin(2.0)
+    content.begin(2.0, resting_xy_cm=None if resting_xy_cm is None else np.array(resting_xy_cm))
     (b,) = content.due(2.016)
     counts = np.array([0, 1, 3])
     # Zhang et al. 1998 with scipy.stats.poisson as the reference pmf, plus the marks' brute-force terms.
-    units = stats.poisson.logpmf(counts[:, None], BIN_S * maps).sum(axis=0)
-    want = _softmax(units + _brute_marks(model, occupancy, groups - 10, marks))
-    np.testing.assert_allclose(b.posterior, want, rtol=1e-5, atol=1e-12)
-    assert b.n_spikes == 7
-
-
-def test_the_resting_animals_own_firing_adds_to_units_and_marks_alike():
-    rng = np.random.default_rng(8)
-    model, occupancy = _mark_model(rng)
-    x = TRACK.bin_centers_cm[:, 0]
-    maps = 0.5 + 30.0 * np.exp(-0.5 * ((x[None, :] - np.array([15.0, 50.0, 85.0])[:, None]) / 10.0) ** 2)
-    content = ReplayContent.for_model(maps, TRACK, TRACK.valid_mask, END, bin_s=BIN_S, max_event_s=0.1,
-                                      unit_ids=np.array([7, 8, 9]), marks=model)
-    content.take_spikes(np.array([4.001, 4.004, 4.009, 4.012]), np.array([7, 9, 8, 9]))
-    groups, marks = np.array([10, 11, 10]), (60 + 40 * rng.random((3, 3))).astype(np.float32)
-    content.take_marks(np.array([4.003, 4.007, 4.013]), model.rows_of(groups), marks)
-    rest = 1  # the animal rests at 14 cm, in bin 1 (10 to 20 cm)
-    content.begin(4.0, resting_xy_cm=np.array([14.0, 0.0]))
-    (b,) = content.due(4.016)
-    counts = np.array([1, 1, 2])
-    # Two independent Poisson processes superpose with their intensities added (a textbook property of
-    # Poisson processes, common practice): each unit's rate is r(x) + r(a), scipy.stats.poisson the
-    # reference pmf; the marks' brute force with lambda(m, x) + lambda(m, a).
-    units = stats.poisson.logpmf(counts[:, None], BIN_S * (maps + maps[:, rest:rest + 1])).sum(axis=0)
+    # Where the animal rests on the track (14 cm: bin 1, 10 to 20 cm), its own place's firing superposes
+    # on the replay's: independent Poisson processes superpose with their intensities added (a textbook
+    # property, common practice), so a unit's rate is r(x) + r(a) and a mark's lambda(m, x) + lambda(m, a).
+    # A lost position adds nothing.
+    rates = maps if rest is None else maps + maps[:, rest:rest + 1]
+    units = stats.poisson.logpmf(counts[:, None], BIN_S * rates).sum(axis=0)
     want = _softmax(units + _brute_marks(model, occupancy, groups - 10, marks, resting_bin=rest))
     np.testing.assert_allclose(b.posterior, want, rtol=1e-5, atol=1e-12)
-    # A lost tracked position adds no background: the plain posterior.
-    content.take_spikes(np.array([5.001, 5.004, 5.009, 5.012]), np.array([7, 9, 8, 9]))
-    content.take_marks(np.array([5.003, 5.007, 5.013]), model.rows_of(groups), marks)
-    content.begin(5.0, resting_xy_cm=np.array([np.nan, np.nan]))
-    (b,) = content.due(5.016)
-    plain = stats.poisson.logpmf(counts[:, None], BIN_S * maps).sum(axis=0)
-    want = _softmax(plain + _brute_marks(model, occupancy, groups - 10, marks))
-    np.testing.assert_allclose(b.posterior, want, rtol=1e-5, atol=1e-12)
+    assert b.n_spikes == 7
 
 
 def test_marks_beyond_the_cap_and_of_unknown_groups_stay_out():

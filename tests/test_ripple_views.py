@@ -344,31 +344,22 @@ def test_kendall_tau_b_is_nan_without_two_distinct_values():
 
 def test_the_loop_sends_the_ripple_view_while_learning_and_after_the_fit():
     """Real sockets on 127.0.0.1: the state stream carries the ripple view in learning frames and decoding frames."""
-    import zmq
-
     from decoder.config import parse_config
     from decoder.session.pipeline import Pipeline
+    from loop_helpers import loopback_endpoints, open_with_subscriber
     from rig_adapters.live.loop import LiveLoop
-    from rig_adapters.sim.demo import free_loopback_port
     from rig_adapters.sim.settings import SimulationSettings
     from rig_adapters.sim.simulation import SimulatedSession
 
-    ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
     doc = tomllib.loads(CONFIG.read_text())
     doc["session"]["learn_s"] = 15.0
-    doc["endpoints"] = {"rig": [f"tcp://127.0.0.1:{ports['rig']}"],
-                        **{k: f"tcp://127.0.0.1:{ports[k]}" for k in ("events", "state", "control")}}
+    doc["endpoints"] = loopback_endpoints()
     config = parse_config(tomli_w.dumps(doc))
     sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=3)
     loop = LiveLoop(config, Pipeline(config))
-    watcher = zmq.Context.instance().socket(zmq.SUB)
-    watcher.setsockopt(zmq.SUBSCRIBE, b"")
-    watcher.setsockopt(zmq.LINGER, 0)
     frames = []
+    watcher = open_with_subscriber(loop, doc["endpoints"]["state"])
     try:
-        loop._open_sockets()
-        watcher.connect(doc["endpoints"]["state"])
-        time.sleep(0.3)  # the subscription reaches the publisher before the first frame
         for msg in sim.messages(until_s=25.0):
             loop.handle_rig_bytes(protocol.encode(msg), time.time())
             while watcher.poll(0):
