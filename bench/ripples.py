@@ -40,8 +40,12 @@ chunks of ``chunk_s`` as an acquisition system would:
   15 ms bins from 20 ms before its onset to its LFP offset, the resting
   animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
-  one rule, "a sequence moving towards the goal" (within 12 cm of the well
-  at (0, 80)). A replay's truth is the simulator's own record
+  one rule, "a sequence moving towards the goal": towards a zone of one
+  bin's radius at the well at (0, 80), which holds the well's own bin and no
+  other. The experimenter's "towards the well" means towards the well, and
+  so does the truth; a wider zone (12 cm until now) puts the last bins of a
+  short path to the well at distance 0, where the rule sees none of the
+  approach the truth counts. A replay's truth is the simulator's own record
   (``Replay.towards_goal``, rig_adapters.sim.replay_content): its path ends
   nearer to the goal along the track, the metric the rule measures with, by
   at least half the path's length. Not the draw (``to_goal``): a path between
@@ -227,12 +231,14 @@ def chunk_cost(chunk_s: float, seed: int) -> dict:
     }
 
 
-#: The goal well of the content run and the radius of its zone (cm).
-GOAL_CM, GOAL_RADIUS_CM = (0.0, 80.0), 12.0
+#: The goal well of the content run (cm).
+GOAL_CM = (0.0, 80.0)
 
 
 def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
-                place_cells: int, show_events: bool = False, marks: bool = False) -> dict:
+                place_cells: int, show_events: bool = False, marks: bool = False,
+                goal_radius_cm: float | None = None, events_out: list | None = None,
+                replay_gain: bool = False) -> dict:
     """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
 
     With ``marks``, the same session (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and
@@ -254,7 +260,9 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     if marks:
         mark_stream = MarkStream(config.marks, config.session, env, m.smooth_cm, m.min_speed_cm_s, m.rate_floor_hz, {})
         mark_stream.start_learning(model.fold_of)
-    goal = CircleZone("goal", GOAL_CM, GOAL_RADIUS_CM)
+    # One bin's radius: the zone is the goal's own bin, and its distance the truth's (see the module docstring).
+    radius = env.bin_cm if goal_radius_cm is None else goal_radius_cm
+    goal = CircleZone("goal", GOAL_CM, radius)
     masks = zone_masks([goal], env)
     # Caps loose enough that every decision is seen: this measures the classification, not the caps.
     bank = TriggerBank([TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
@@ -282,6 +290,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                 mark_model = (mark_stream.fit(model.occupancy_s_, model.visited_mask_, tracked)
                               if mark_stream is not None else None)
                 stream.install_model(model, env, masks, m.rate_floor_hz, mark_model, config.marks.max_spikes_per_step)
+                stream.content.replay_gain = replay_gain
             if isinstance(msg, SpikeBatch):
                 if learning:
                     model.update_spikes(msg.t_s, msg.unit_id)
@@ -322,6 +331,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                      "approach_cm": rep.goal_distance_cm[0] - rep.goal_distance_cm[1], "length_cm": rep.length_cm,
                      "said": bool(hit.size), "decision_ms": (hit[0] - onset) * 1e3 if hit.size else np.nan,
                      "bins": len(mine), "used": mine[-1].content.n_used if mine else 0,
+                     "rest_goal_cm": float(np.hypot(*(mine[0].tracked_xy_cm - np.asarray(GOAL_CM)))) if mine else np.nan,
+                     "bin_end_s": [b.t_s for b in mine], "n_used": [b.content.n_used for b in mine],
                      "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
                      "z": [round(float(b.content.rank_z[0]), 1) for b in mine]})
     if show_events:
@@ -331,6 +342,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                   f"{'goal' if e['drawn_to_goal'] else 'random':6s}  {e['approach_cm']:6.0f}/{e['length_cm']:4.0f}"
                   f"         {'yes' if e['said'] else 'no':3s}  {e['decision_ms']:5.0f}  {e['bins']:4d} {e['used']:4d}  "
                   f"{e['tau']}; {e['z']}", file=sys.stderr)
+    if events_out is not None:
+        events_out.extend(rows)
     truth = np.array([e["truth"] for e in rows], bool)
     said = np.array([e["said"] for e in rows], bool)
     decisions = np.array([e["decision_ms"] for e in rows if e["truth"] and e["said"]])
@@ -348,6 +361,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         "content_drawn_to_goal": int(sum(e["drawn_to_goal"] for e in rows)),
         "content_min_bins": min_bins,
         "content_min_correlation": min_correlation,
+        "content_goal_radius_cm": radius,
         "content_bin_ms": 1e3 * config.ripples.content_bin_s,
         "content_place_cells": place_cells,
         "content_input": "marks" if marks else "sorted units",
@@ -414,6 +428,11 @@ def main(argv=None) -> int:
     parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
     parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
     parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
+    parser.add_argument("--events-json", default=None,
+                        help="write each replay event's truth, bins and decision here (a list per input)")
+    parser.add_argument("--replay-gain", action="store_true", help="estimate each content bin's replay gain")
+    parser.add_argument("--goal-radius-cm", type=float, default=None,
+                        help="the goal zone's radius (default: one bin, the goal's own bin)")
     parser.add_argument("--marks", action="store_true",
                         help="run the replay content a second time on the same session sent as tetrode marks "
                              "(configs/w_maze_ripples_marks.toml), its figures under marks_content_*")
@@ -423,12 +442,19 @@ def main(argv=None) -> int:
     result: dict = {}
     if not args.content_only:
         result.update(detection_run(args))
+    events: dict[str, list] = {"units": [], "marks": []}
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
-                              args.min_correlation, args.place_cells, args.events))
+                              args.min_correlation, args.place_cells, args.events,
+                              goal_radius_cm=args.goal_radius_cm, events_out=events["units"],
+                              replay_gain=args.replay_gain))
     if args.marks:
         marks = content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins, args.min_correlation,
-                            args.place_cells, args.events, marks=True)
+                            args.place_cells, args.events, marks=True, goal_radius_cm=args.goal_radius_cm,
+                            events_out=events["marks"], replay_gain=args.replay_gain)
         result.update({f"marks_{k}": v for k, v in marks.items()})
+    if args.events_json:
+        Path(args.events_json).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.events_json).write_text(json.dumps(events, default=float))
     if not args.content_only:
         result.update(chunk_cost(args.chunk_s, args.seed))
     text = json.dumps(result, indent=2)
