@@ -425,7 +425,8 @@ def main(argv=None) -> int:
     parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
     parser.add_argument("--place-cells", type=int, default=150,
                         help="place cells of that run (50-150 units on a W track is common in the literature)")
-    parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
+    parser.add_argument("--min-bins", type=int, default=2,
+                        help="content bins with spikes before the rule may fire (2: chosen on seeds 1-3)")
     parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
     parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
     parser.add_argument("--events-json", default=None,
