@@ -237,8 +237,7 @@ GOAL_CM = (0.0, 80.0)
 
 def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
                 place_cells: int, show_events: bool = False, marks: bool = False,
-                goal_radius_cm: float | None = None, events_out: list | None = None,
-                replay_gain: bool = False) -> dict:
+                goal_radius_cm: float | None = None, events_out: list | None = None) -> dict:
     """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
 
     With ``marks``, the same session (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and
@@ -290,7 +289,6 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                 mark_model = (mark_stream.fit(model.occupancy_s_, model.visited_mask_, tracked)
                               if mark_stream is not None else None)
                 stream.install_model(model, env, masks, m.rate_floor_hz, mark_model, config.marks.max_spikes_per_step)
-                stream.content.replay_gain = replay_gain
             if isinstance(msg, SpikeBatch):
                 if learning:
                     model.update_spikes(msg.t_s, msg.unit_id)
@@ -431,7 +429,6 @@ def main(argv=None) -> int:
     parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
     parser.add_argument("--events-json", default=None,
                         help="write each replay event's truth, bins and decision here (a list per input)")
-    parser.add_argument("--replay-gain", action="store_true", help="estimate each content bin's replay gain")
     parser.add_argument("--goal-radius-cm", type=float, default=None,
                         help="the goal zone's radius (default: one bin, the goal's own bin)")
     parser.add_argument("--marks", action="store_true",
@@ -446,12 +443,11 @@ def main(argv=None) -> int:
     events: dict[str, list] = {"units": [], "marks": []}
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
                               args.min_correlation, args.place_cells, args.events,
-                              goal_radius_cm=args.goal_radius_cm, events_out=events["units"],
-                              replay_gain=args.replay_gain))
+                              goal_radius_cm=args.goal_radius_cm, events_out=events["units"]))
     if args.marks:
         marks = content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins, args.min_correlation,
                             args.place_cells, args.events, marks=True, goal_radius_cm=args.goal_radius_cm,
-                            events_out=events["marks"], replay_gain=args.replay_gain)
+                            events_out=events["marks"])
         result.update({f"marks_{k}": v for k, v in marks.items()})
     if args.events_json:
         Path(args.events_json).parent.mkdir(parents=True, exist_ok=True)

@@ -180,33 +180,6 @@ def test_the_resting_animals_own_place_is_a_background_not_the_content():
     assert abs(b.map_xy_cm[0] - 80.0) <= 5.0
 
 
-def test_a_replays_gain_is_estimated_from_the_bins_spike_count():
-    maps = _place_maps()
-    content = ReplayContent.for_model(maps, TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.1,
-                                      rate_floor_hz=0.01, replay_gain=True)
-    # A dense replay at 80 cm (units 15 and 16) while the animal rests at 12 cm (units 2 and 3).
-    t = 0.1 + np.linspace(0.0005, 0.0145, 14)
-    units = np.array([2, 15, 16, 15, 3, 16, 15, 16, 15, 16, 2, 15, 16, 15])
-    content.take_spikes(t, units)
-    content.begin(0.1, resting_xy_cm=np.array([12.0, 0.0]))
-    (b,) = content.due(0.115)
-    rates = np.maximum(maps, 0.01)
-    # The method of moments (common practice): the count's expectation w (g mean_x R(x) + R(a)), R the
-    # summed rates, solved for g; the superposed Poisson processes' rates g r(x) + r(a) then give the
-    # posterior, scipy.stats.poisson the reference pmf, flat prior.
-    total = rates.sum(axis=0)
-    g = (units.size / 0.015 - total[2]) / total.mean()
-    assert g > 1.0 and content.last_gain == pytest.approx(g, rel=1e-12)
-    counts = np.bincount(units, minlength=maps.shape[0])
-    log_post = stats.poisson.logpmf(counts[:, None], 0.015 * (g * rates + rates[:, 2:3])).sum(axis=0)
-    want = np.exp(log_post - log_post.max())
-    np.testing.assert_allclose(b.posterior, want / want.sum(), rtol=1e-9, atol=1e-15)
-    # A sparse bin is no denser than the learned rates: its gain stays 1, the plain background.
-    content.take_spikes(np.array([0.201, 0.205]), np.array([2, 15]))
-    content.begin(0.2, resting_xy_cm=np.array([12.0, 0.0]))
-    assert len(content.due(0.22)) == 1 and content.last_gain == 1.0
-
-
 def _sweep(content: ReplayContent, onset_s: float, forward: bool, speed_cm_s: float = 600.0) -> None:
     """Units fire in the order of their fields along the track, forwards or backwards, from ``onset_s``."""
     t = onset_s + np.arange(0.0005, 100.0 / speed_cm_s, 0.0025)

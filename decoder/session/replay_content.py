@@ -81,8 +81,6 @@ from decoder.space.environments import Environment
 
 #: Spikes are held this much longer than the longest event and its lead, for the detection's latency (s).
 _HOLD_MARGIN_S = 0.5
-#: The replay's rate is taken as at most this many times the learned rates.
-_MAX_GAIN = 20.0
 
 
 def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.ndarray:
@@ -120,8 +118,7 @@ def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.nd
     return out
 
 
-def units_background(rates_hz: np.ndarray, rows: np.ndarray, counts: np.ndarray, resting_bin: int,
-                     gain: float = 1.0) -> np.ndarray:
+def units_background(rates_hz: np.ndarray, rows: np.ndarray, counts: np.ndarray, resting_bin: int) -> np.ndarray:
     """What the resting animal's own firing changes in a bin's units' log-likelihood, shape (n_bins,).
 
     With the rates ``r_i(x) + r_i(a)`` (a place ``x`` replayed, the animal
@@ -142,12 +139,11 @@ def units_background(rates_hz: np.ndarray, rows: np.ndarray, counts: np.ndarray,
         The animal's bin ``a``.
     """
     r = rates_hz[rows]
-    return counts @ np.log1p(r[:, resting_bin, None] / (gain * r))
+    return counts @ np.log1p(r[:, resting_bin, None] / r)
 
 
 def marks_with_background(marks: MarkModel, rows: np.ndarray, marks_uv: np.ndarray, resting_bin: int,
-                          out: np.ndarray, scratch: tuple[np.ndarray, ...], one: np.ndarray,
-                          gain: float = 1.0) -> None:
+                          out: np.ndarray, scratch: tuple[np.ndarray, ...], one: np.ndarray) -> None:
     """``sum_k log(lambda(x, m_k) + lambda(a, m_k))`` over a bin's marked spikes, into ``out`` (n_bins,).
 
     The marks' spike term when the resting animal's place ``a`` fires beside
@@ -160,7 +156,7 @@ def marks_with_background(marks: MarkModel, rows: np.ndarray, marks_uv: np.ndarr
     out[:] = 0.0
     for k in range(rows.size):
         marks.log_intensity_sum(rows[k:k + 1], marks_uv[k:k + 1], one, scratch)
-        out += np.logaddexp(one, one[resting_bin] - math.log(gain))
+        out += np.logaddexp(one, one[resting_bin])
 
 
 class SequenceMeasures:
@@ -398,7 +394,7 @@ class ReplayContent:
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
                  distance_cm: np.ndarray, max_event_s: float, lead_s: float = 0.0, min_spikes: int = 1,
-                 marks: MarkModel | None = None, max_marks_per_bin: int = 2000, replay_gain: bool = False) -> None:
+                 marks: MarkModel | None = None, max_marks_per_bin: int = 2000) -> None:
         if decoder.transition is not None:
             raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
                              "behavioural movement model does not hold; build the decoder with prior='uniform'")
@@ -425,10 +421,6 @@ class ReplayContent:
         self._next = 0
         self.marks = marks
         self.max_marks_per_bin = int(max_marks_per_bin)
-        self.replay_gain = bool(replay_gain)
-        self.last_gain = 1.0
-        # Every unit's rate at each place (Hz): the units' part of the expected count.
-        self._units_hz = decoder.rates_hz.sum(axis=0)
         if marks is not None:
             self._mark_width = int(marks.group_channels_.max())
             self._mark_t = np.zeros(0)
@@ -445,13 +437,13 @@ class ReplayContent:
                   zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, lead_s: float = 0.0,
                   unit_ids: np.ndarray | None = None, rate_floor_hz: float = 0.01,
                   min_spikes: int = 1, marks: MarkModel | None = None,
-                  max_marks_per_bin: int = 2000, replay_gain: bool = False) -> ReplayContent:
+                  max_marks_per_bin: int = 2000) -> ReplayContent:
         """Content decoding for rate maps (shape (n_units, n_bins), Hz) and ``marks``, with the uniform prior."""
         decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
                                zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
         ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
         return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, lead_s,
-                   min_spikes, marks, max_marks_per_bin, replay_gain)
+                   min_spikes, marks, max_marks_per_bin)
 
     @property
     def active(self) -> bool:
@@ -569,15 +561,6 @@ class ReplayContent:
             self._next += 1
         return out
 
-    def _gain(self, n_spikes: float) -> float:
-        """The replay's rate over the learned rates in this bin, from its spike count (at least 1)."""
-        if not self.replay_gain:
-            return 1.0
-        rate = self._units_hz if self.marks is None else self._units_hz + self._mark_expected / self.bin_s
-        valid = self.decoder.valid_mask
-        g = (n_spikes / self.bin_s - rate[self._resting_bin]) / rate[valid].mean()
-        return float(min(max(g, 1.0), _MAX_GAIN))
-
     def _decode(self, start: float, stop: float) -> ContentBin:
         a, b = np.searchsorted(self._t, (start, stop), side="left")
         counts = np.bincount(self._rows[a:b], minlength=self._n_units)
@@ -590,23 +573,17 @@ class ReplayContent:
             c, d = np.searchsorted(self._mark_t, (start, stop), side="left")
             n_marks = min(int(d - c), self.max_marks_per_bin)
             over_cap = int(d - c) - n_marks
-        gain = self._gain(float(fired.sum()) + n_marks) if rest >= 0 else 1.0
-        self.last_gain = gain
-        if self.marks is not None:
             mark_rows, mark_uv = self._mark_rows[c:c + n_marks], self._mark_uv[c:c + n_marks]
             if rest < 0:
                 self.marks.log_intensity_sum(mark_rows, mark_uv, self._mark_log_like, self._mark_scratch)
             else:
                 marks_with_background(self.marks, mark_rows, mark_uv, rest, self._mark_log_like,
-                                      self._mark_scratch, self._mark_one, gain)
-            log_like, expected = self._mark_log_like, gain * self._mark_expected
+                                      self._mark_scratch, self._mark_one)
+            log_like, expected = self._mark_log_like, self._mark_expected
         if rest >= 0 and rows.size:
-            units = units_background(self.decoder.rates_hz, rows, fired, rest, gain)
+            units = units_background(self.decoder.rates_hz, rows, fired, rest)
             log_like = units if log_like is None else log_like + units
             expected = np.zeros_like(units) if expected is None else expected
-            if gain != 1.0:
-                # The decoder subtracts the units' expected count once; the replay's is gain times it.
-                expected = expected + (gain - 1.0) * self.bin_s * self._units_hz
         step = self.decoder.decode(rows, fired, log_like, expected)
         n_spikes = step.n_spikes + n_marks
         m = self.measures
