@@ -125,11 +125,12 @@ def test_the_content_a_replay_has_is_measured_along_the_track_as_the_rules_measu
 def test_a_zone_of_one_bins_radius_at_the_goal_is_the_goal_bin_the_truth_measures_from(sessions):
     # bench/ripples.py's goal zone: a circle of one bin's radius at the well. Its only bin is the one the
     # simulator measures every replay's goal distance from, so the rule's distance is the truth's (the
-    # geometry of the maze: the well's bin centre is half a bin from the arm's end, 78.5 cm up it).
+    # geometry of the maze: the 80 cm arm holds 27 bins of 80/27 cm, the last one's centre half of one
+    # from the arm's end).
     (session, _, _), _ = sessions
     mask = zone_masks([CircleZone("goal", tuple(session.settings.replay.goal_cm), MAZE.bin_cm)], MAZE)
     assert np.flatnonzero(mask[0]).tolist() == MAZE.bin_index(np.array([[0.0, 80.0]])).tolist()
-    np.testing.assert_allclose(MAZE.bin_centers_cm[mask[0]], [[0.0, 78.5]], atol=1e-9)
+    np.testing.assert_allclose(MAZE.bin_centers_cm[mask[0]], [[0.0, 80.0 - 40.0 / 27.0]], atol=1e-9)
     distance = zone_distances_cm(MAZE, mask)[0]
     for rep in session.replay.replays:
         for d_sim, p in zip(rep.goal_distance_cm, rep.path_xy_cm[[0, -1]]):
