@@ -37,10 +37,15 @@ chunks of ``chunk_s`` as an acquisition system would:
   path at 300-600 cm/s, half of them ending at the goal well, the others
   between random points): a place model learned from the first
   ``--learn-s`` of running, then every ripple detected at rest decoded in
-  15 ms bins from 20 ms before its onset to its LFP offset
+  15 ms bins from 20 ms before its onset to its LFP offset, the resting
+  animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
-  one rule, "a sequence moving towards the goal" (within 12 cm of the well
-  at (0, 80)). A replay's truth is the simulator's own record
+  one rule, "a sequence moving towards the goal": towards a zone of one
+  bin's radius at the well at (0, 80), which holds the well's own bin and no
+  other. The experimenter's "towards the well" means towards the well, and
+  so does the truth; a wider zone (12 cm until now) puts the last bins of a
+  short path to the well at distance 0, where the rule sees none of the
+  approach the truth counts. A replay's truth is the simulator's own record
   (``Replay.towards_goal``, rig_adapters.sim.replay_content): its path ends
   nearer to the goal along the track, the metric the rule measures with, by
   at least half the path's length. Not the draw (``to_goal``): a path between
@@ -226,12 +231,13 @@ def chunk_cost(chunk_s: float, seed: int) -> dict:
     }
 
 
-#: The goal well of the content run and the radius of its zone (cm).
-GOAL_CM, GOAL_RADIUS_CM = (0.0, 80.0), 12.0
+#: The goal well of the content run (cm).
+GOAL_CM = (0.0, 80.0)
 
 
 def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
-                place_cells: int, show_events: bool = False, marks: bool = False) -> dict:
+                place_cells: int, show_events: bool = False, marks: bool = False,
+                goal_radius_cm: float | None = None, events_out: list | None = None) -> dict:
     """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
 
     With ``marks``, the same session (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and
@@ -253,7 +259,9 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     if marks:
         mark_stream = MarkStream(config.marks, config.session, env, m.smooth_cm, m.min_speed_cm_s, m.rate_floor_hz, {})
         mark_stream.start_learning(model.fold_of)
-    goal = CircleZone("goal", GOAL_CM, GOAL_RADIUS_CM)
+    # One bin's radius: the zone is the goal's own bin, and its distance the truth's (see the module docstring).
+    radius = env.bin_cm if goal_radius_cm is None else goal_radius_cm
+    goal = CircleZone("goal", GOAL_CM, radius)
     masks = zone_masks([goal], env)
     # Caps loose enough that every decision is seen: this measures the classification, not the caps.
     bank = TriggerBank([TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
@@ -291,7 +299,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                 if learning:
                     mark_stream.learn(batch, tracked)
                 else:
-                    stream.take_marks(batch)
+                    # Times, model rows, marks: what the pipeline's MarkStream.take hands the content bins.
+                    stream.take_marks((batch[0], mark_model.rows_of(batch[1]), batch[2]))
             c0 = time.thread_time()
             due = stream.content_due(watermark)
             if due:
@@ -320,6 +329,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                      "approach_cm": rep.goal_distance_cm[0] - rep.goal_distance_cm[1], "length_cm": rep.length_cm,
                      "said": bool(hit.size), "decision_ms": (hit[0] - onset) * 1e3 if hit.size else np.nan,
                      "bins": len(mine), "used": mine[-1].content.n_used if mine else 0,
+                     "rest_goal_cm": float(np.hypot(*(mine[0].tracked_xy_cm - np.asarray(GOAL_CM)))) if mine else np.nan,
+                     "bin_end_s": [b.t_s for b in mine], "n_used": [b.content.n_used for b in mine],
                      "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
                      "z": [round(float(b.content.rank_z[0]), 1) for b in mine]})
     if show_events:
@@ -329,6 +340,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                   f"{'goal' if e['drawn_to_goal'] else 'random':6s}  {e['approach_cm']:6.0f}/{e['length_cm']:4.0f}"
                   f"         {'yes' if e['said'] else 'no':3s}  {e['decision_ms']:5.0f}  {e['bins']:4d} {e['used']:4d}  "
                   f"{e['tau']}; {e['z']}", file=sys.stderr)
+    if events_out is not None:
+        events_out.extend(rows)
     truth = np.array([e["truth"] for e in rows], bool)
     said = np.array([e["said"] for e in rows], bool)
     decisions = np.array([e["decision_ms"] for e in rows if e["truth"] and e["said"]])
@@ -346,6 +359,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         "content_drawn_to_goal": int(sum(e["drawn_to_goal"] for e in rows)),
         "content_min_bins": min_bins,
         "content_min_correlation": min_correlation,
+        "content_goal_radius_cm": radius,
         "content_bin_ms": 1e3 * config.ripples.content_bin_s,
         "content_place_cells": place_cells,
         "content_input": "marks" if marks else "sorted units",
@@ -409,9 +423,14 @@ def main(argv=None) -> int:
     parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
     parser.add_argument("--place-cells", type=int, default=150,
                         help="place cells of that run (50-150 units on a W track is common in the literature)")
-    parser.add_argument("--min-bins", type=int, default=3, help="content bins before the rule may fire")
+    parser.add_argument("--min-bins", type=int, default=2,
+                        help="content bins with spikes before the rule may fire (2: chosen on seeds 1-3)")
     parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
     parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
+    parser.add_argument("--events-json", default=None,
+                        help="write each replay event's truth, bins and decision here (a list per input)")
+    parser.add_argument("--goal-radius-cm", type=float, default=None,
+                        help="the goal zone's radius (default: one bin, the goal's own bin)")
     parser.add_argument("--marks", action="store_true",
                         help="run the replay content a second time on the same session sent as tetrode marks "
                              "(configs/w_maze_ripples_marks.toml), its figures under marks_content_*")
@@ -421,12 +440,18 @@ def main(argv=None) -> int:
     result: dict = {}
     if not args.content_only:
         result.update(detection_run(args))
+    events: dict[str, list] = {"units": [], "marks": []}
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
-                              args.min_correlation, args.place_cells, args.events))
+                              args.min_correlation, args.place_cells, args.events,
+                              goal_radius_cm=args.goal_radius_cm, events_out=events["units"]))
     if args.marks:
         marks = content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins, args.min_correlation,
-                            args.place_cells, args.events, marks=True)
+                            args.place_cells, args.events, marks=True, goal_radius_cm=args.goal_radius_cm,
+                            events_out=events["marks"])
         result.update({f"marks_{k}": v for k, v in marks.items()})
+    if args.events_json:
+        Path(args.events_json).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.events_json).write_text(json.dumps(events, default=float))
     if not args.content_only:
         result.update(chunk_cost(args.chunk_s, args.seed))
     text = json.dumps(result, indent=2)

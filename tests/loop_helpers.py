@@ -1,6 +1,8 @@
-"""What the loop tests share: a small arena session's config and a control client on loopback."""
+"""What the loop tests share: a small arena session's config, loopback endpoints, a subscriber and a control client."""
 
 from __future__ import annotations
+
+import time
 
 import zmq
 
@@ -18,6 +20,33 @@ BASE = {
     "rules": [{"name": "reward", "zone": "goal", "mode": "mass", "min_mass": 0.6, "consecutive_steps": 3}],
     "simulation": {"n_place_cells": 50, "n_grid_cells": 5, "n_nonspatial_cells": 5},
 }
+
+
+def loopback_endpoints() -> dict:
+    """The ``[endpoints]`` table of a loop on free 127.0.0.1 ports (rig, events, state, control)."""
+    from rig_adapters.sim.demo import free_loopback_port
+
+    ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
+    return {"rig": [f"tcp://127.0.0.1:{ports['rig']}"],
+            **{k: f"tcp://127.0.0.1:{ports[k]}" for k in ("events", "state", "control")}}
+
+
+def open_with_subscriber(loop, endpoint: str) -> zmq.Socket:
+    """Open ``loop``'s sockets and a SUB socket on ``endpoint`` taking every message, once subscribed.
+
+    The caller closes both (``loop._close_sockets()``, ``close()``: LINGER 0).
+    """
+    sock = zmq.Context.instance().socket(zmq.SUB)
+    sock.setsockopt(zmq.SUBSCRIBE, b"")
+    sock.setsockopt(zmq.LINGER, 0)
+    try:
+        loop._open_sockets()
+        sock.connect(endpoint)
+    except Exception:
+        sock.close()
+        raise
+    time.sleep(0.3)  # the subscription reaches the publisher before the first message
+    return sock
 
 
 def control_request(endpoint: str, command: str, args: dict | None = None, timeout_ms: int = 20_000) -> dict:

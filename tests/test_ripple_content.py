@@ -37,6 +37,25 @@ def _direct_line(times: np.ndarray, posteriors: np.ndarray, distance: np.ndarray
     return ctd / math.sqrt(ctt * cdd), ctd / ctt
 
 
+def _weighted_median(values: np.ndarray, weights: np.ndarray) -> float:
+    """numpy's weighted quantile at 1/2, inverted CDF: the lower weighted median."""
+    return float(np.quantile(values, 0.5, method="inverted_cdf", weights=weights))
+
+
+def test_the_median_distance_is_numpys_weighted_median():
+    rng = np.random.default_rng(5)
+    dist = zone_distances_cm(TRACK, END)
+    m = SequenceMeasures(END, dist)
+    for post in rng.dirichlet(np.full(N_BINS, 0.3), 50):
+        # numpy.quantile(method="inverted_cdf", weights=...): the reference weighted median.
+        assert m.median_distance(post)[0] == _weighted_median(dist[0], post)
+    # A posterior with 60% of its mass 15 cm from the zone and 40% at the far end, 87.5 cm away:
+    # the median stays with the bulk, where the mean (44 cm) would sit between the two.
+    post = np.zeros(N_BINS)
+    post[[15, 0]] = 0.6, 0.4
+    assert m.median_distance(post)[0] == pytest.approx(dist[0][15])
+
+
 def test_running_measures_equal_the_definitions_at_every_bin():
     rng = np.random.default_rng(3)
     n_t = 8
@@ -64,8 +83,11 @@ def test_running_measures_equal_the_definitions_at_every_bin():
                          w=np.sqrt(post[:k + 1].ravel()))
         assert slope[0] == pytest.approx(fit[0], rel=1e-7)
         np.testing.assert_allclose(m.mean_mass, [post[:k + 1, -2:].sum(axis=1).mean()], rtol=1e-12)
-        # Kendall's tau-b of time and each bin's mean distance: scipy.stats.kendalltau (tau-b by default).
-        want_tau = stats.kendalltau(times[:k + 1], post[:k + 1] @ dist[0]).statistic
+        # Kendall's tau-b of time and each bin's median distance: scipy.stats.kendalltau (tau-b by
+        # default) on medians from numpy's weighted quantile (inverted CDF: the least value whose
+        # cumulative weight reaches one half, the lower weighted median).
+        medians = [_weighted_median(dist[0], p) for p in post[:k + 1]]
+        want_tau = stats.kendalltau(times[:k + 1], medians).statistic
         assert m.rank_correlation()[0] == pytest.approx(want_tau, abs=1e-12)
 
 
@@ -99,7 +121,7 @@ def test_the_rank_correlations_z_score_is_scipys_normal_approximation():
         for k, t in enumerate(times):
             p = np.eye(N_BINS)[rng.integers(8, 14)] if one_hot else rng.dirichlet(np.full(N_BINS, 0.3))
             m.add(t, p)
-            d.append(dist[0] @ p)
+            d.append(_weighted_median(dist[0], p))
             if k == 0:
                 assert np.isnan(m.rank_z()[0])
             if k < 2:
@@ -134,6 +156,28 @@ def test_one_bin_is_the_poisson_posterior_with_a_uniform_prior():
     want = np.exp(log_post - log_post.max())
     np.testing.assert_allclose(b.posterior, want / want.sum(), rtol=1e-9, atol=1e-15)
     assert b.n_spikes == 4 and b.index == 0 and b.t_s == pytest.approx(0.115)
+
+
+def test_the_resting_animals_own_place_is_a_background_not_the_content():
+    maps = _place_maps()
+    content = ReplayContent.for_model(maps, TRACK, TRACK.valid_mask, END, bin_s=0.015, max_event_s=0.1,
+                                      rate_floor_hz=0.01)
+    # The animal rests at 12 cm (bin 2): units 2 and 3 fire there; the replay's units 15 and 16 at 80 cm.
+    t = np.array([0.101, 0.103, 0.104, 0.106, 0.108, 0.109, 0.111])
+    units = np.array([2, 15, 3, 16, 15, 2, 16])
+    content.take_spikes(t, units)
+    content.begin(0.1, resting_xy_cm=np.array([12.0, 0.0]))
+    (b,) = content.due(0.115)
+    counts = np.bincount(units, minlength=maps.shape[0])
+    # Poisson processes superpose with their intensities added (common practice): each unit's rate is
+    # r(x) + r(a) with a the animal's bin; scipy.stats.poisson the reference pmf, flat prior.
+    rates = np.maximum(maps, 0.01)
+    log_post = stats.poisson.logpmf(counts[:, None], 0.015 * (rates + rates[:, 2:3])).sum(axis=0)
+    want = np.exp(log_post - log_post.max())
+    np.testing.assert_allclose(b.posterior, want / want.sum(), rtol=1e-9, atol=1e-15)
+    # The replayed place (unit 15's and 16's fields, 77.5 and 82.5 cm) carries the bin; without the
+    # background the resting animal's spikes pull it towards a place between the two.
+    assert abs(b.map_xy_cm[0] - 80.0) <= 5.0
 
 
 def _sweep(content: ReplayContent, onset_s: float, forward: bool, speed_cm_s: float = 600.0) -> None:

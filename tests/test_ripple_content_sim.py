@@ -9,6 +9,7 @@ from scipy.sparse.csgraph import shortest_path
 from decoder.messages import SpikeBatch
 from decoder.session.replay_content import zone_distances_cm
 from decoder.space.environments import Arena, TrackGraph
+from decoder.space.zones import CircleZone, zone_masks
 from rig_adapters.sim.lfp import LfpSettings, LfpSynth
 from rig_adapters.sim.replay_content import TOWARDS_SHARE
 from rig_adapters.sim.settings import ReplaySettings, SimulationSettings
@@ -119,6 +120,21 @@ def test_the_content_a_replay_has_is_measured_along_the_track_as_the_rules_measu
         assert rep.towards_goal == (first - last >= TOWARDS_SHARE * rep.length_cm > 0)
         if rep.to_goal:
             assert rep.towards_goal
+
+
+def test_a_zone_of_one_bins_radius_at_the_goal_is_the_goal_bin_the_truth_measures_from(sessions):
+    # bench/ripples.py's goal zone: a circle of one bin's radius at the well. Its only bin is the one the
+    # simulator measures every replay's goal distance from, so the rule's distance is the truth's (the
+    # geometry of the maze: the 80 cm arm holds 27 bins of 80/27 cm, the last one's centre half of one
+    # from the arm's end).
+    (session, _, _), _ = sessions
+    mask = zone_masks([CircleZone("goal", tuple(session.settings.replay.goal_cm), MAZE.bin_cm)], MAZE)
+    assert np.flatnonzero(mask[0]).tolist() == MAZE.bin_index(np.array([[0.0, 80.0]])).tolist()
+    np.testing.assert_allclose(MAZE.bin_centers_cm[mask[0]], [[0.0, 80.0 - 40.0 / 27.0]], atol=1e-9)
+    distance = zone_distances_cm(MAZE, mask)[0]
+    for rep in session.replay.replays:
+        for d_sim, p in zip(rep.goal_distance_cm, rep.path_xy_cm[[0, -1]]):
+            assert d_sim == pytest.approx(distance[MAZE.bin_index(p[None])[0]], abs=1e-6)
 
 
 def test_bad_replay_settings_say_what_is_wrong():

@@ -54,19 +54,26 @@ def _mark_model(rng) -> tuple[MarkModel, np.ndarray]:
     return model.fit(occupancy, TRACK.valid_mask), occupancy
 
 
-def _brute_marks(model: MarkModel, occupancy: np.ndarray, groups: np.ndarray, marks: np.ndarray) -> np.ndarray:
-    """sum_k log lambda(m_k, x) - dt sum_g Lambda_g(x), straight from the published form (see the module docstring)."""
+def _brute_marks(model: MarkModel, occupancy: np.ndarray, groups: np.ndarray, marks: np.ndarray,
+                 resting_bin: int | None = None) -> np.ndarray:
+    """sum_k log lambda(m_k, x) - dt sum_g Lambda_g(x), straight from the published form (see the module docstring).
+
+    With ``resting_bin`` a, the superposition of the replay's process and the resting animal's own:
+    sum_k log(lambda(m_k, x) + lambda(m_k, a)) - dt sum_g (Lambda_g(x) + Lambda_g(a)).
+    """
     x = TRACK.bin_centers_cm[:, 0]
     occ_smooth = np.exp(-0.5 * ((x[:, None] - x[None, :]) / SMOOTH_CM) ** 2) @ occupancy
     out = np.zeros(TRACK.n_bins)
     for g, m in zip(groups, marks):
         enc_m, enc_x = model._marks[g].astype(np.float64), x[model._bins[g]]
         km = np.exp(-0.5 * (((enc_m - m.astype(np.float64)) / BW_UV) ** 2).sum(axis=1)) / (2 * np.pi * BW_UV**2) ** 1.5
-        for j in range(TRACK.n_bins):
-            out[j] += math.log(np.sum(km * np.exp(-0.5 * ((x[j] - enc_x) / SMOOTH_CM) ** 2)) / occ_smooth[j])
+        lam = np.array([np.sum(km * np.exp(-0.5 * ((x[j] - enc_x) / SMOOTH_CM) ** 2)) / occ_smooth[j]
+                        for j in range(TRACK.n_bins)])
+        out += np.log(lam if resting_bin is None else lam + lam[resting_bin])
     for g in range(2):
         enc_x = x[model._bins[g]]
-        out -= BIN_S * np.array([np.sum(np.exp(-0.5 * ((xj - enc_x) / SMOOTH_CM) ** 2)) for xj in x]) / occ_smooth
+        ground = np.array([np.sum(np.exp(-0.5 * ((xj - enc_x) / SMOOTH_CM) ** 2)) for xj in x]) / occ_smooth
+        out -= BIN_S * (ground if resting_bin is None else ground + ground[resting_bin])
     return out
 
 
@@ -83,7 +90,7 @@ def test_a_content_bin_from_marks_alone_is_the_marked_point_process_posterior_wi
     t = np.array([0.995, 1.002, 1.006, 1.011, 1.014, 1.016])  # the first before the bin, the last after it
     groups = np.array([11, 10, 11, 11, 10, 10])
     marks = (60 + 40 * rng.random((6, 3))).astype(np.float32)
-    content.take_marks(t, groups, marks)
+    content.take_marks(t, model.rows_of(groups), marks)
     content.begin(1.0)
     (b,) = content.due(1.0151)
     inside = slice(1, 5)
@@ -93,7 +100,9 @@ def test_a_content_bin_from_marks_alone_is_the_marked_point_process_posterior_wi
     assert b.n_spikes == 4 and b.n_marks_over_cap == 0
 
 
-def test_units_and_marks_together_add_their_terms():
+@pytest.mark.parametrize("resting_xy_cm, rest", [(None, None), ((14.0, 0.0), 1), ((math.nan, math.nan), None)],
+                         ids=["no_position", "resting_in_bin_1", "lost_position"])
+def test_units_and_marks_together_add_their_terms(resting_xy_cm, rest):
     rng = np.random.default_rng(5)
     model, occupancy = _mark_model(rng)
     x = TRACK.bin_centers_cm[:, 0]
@@ -102,13 +111,18 @@ def test_units_and_marks_together_add_their_terms():
                                       unit_ids=np.array([7, 8, 9]), marks=model)
     content.take_spikes(np.array([2.001, 2.004, 2.009, 2.012]), np.array([9, 9, 8, 9]))
     groups, marks = np.array([10, 11, 10]), (60 + 40 * rng.random((3, 3))).astype(np.float32)
-    content.take_marks(np.array([2.003, 2.007, 2.013]), groups, marks)
-    content.begin(2.0)
+    content.take_marks(np.array([2.003, 2.007, 2.013]), model.rows_of(groups), marks)
+    content.begin(2.0, resting_xy_cm=None if resting_xy_cm is None else np.array(resting_xy_cm))
     (b,) = content.due(2.016)
     counts = np.array([0, 1, 3])
     # Zhang et al. 1998 with scipy.stats.poisson as the reference pmf, plus the marks' brute-force terms.
-    units = stats.poisson.logpmf(counts[:, None], BIN_S * maps).sum(axis=0)
-    want = _softmax(units + _brute_marks(model, occupancy, groups - 10, marks))
+    # Where the animal rests on the track (14 cm: bin 1, 10 to 20 cm), its own place's firing superposes
+    # on the replay's: independent Poisson processes superpose with their intensities added (a textbook
+    # property, common practice), so a unit's rate is r(x) + r(a) and a mark's lambda(m, x) + lambda(m, a).
+    # A lost position adds nothing.
+    rates = maps if rest is None else maps + maps[:, rest:rest + 1]
+    units = stats.poisson.logpmf(counts[:, None], BIN_S * rates).sum(axis=0)
+    want = _softmax(units + _brute_marks(model, occupancy, groups - 10, marks, resting_bin=rest))
     np.testing.assert_allclose(b.posterior, want, rtol=1e-5, atol=1e-12)
     assert b.n_spikes == 7
 
@@ -119,8 +133,8 @@ def test_marks_beyond_the_cap_and_of_unknown_groups_stay_out():
     content = ReplayContent.for_model(np.zeros((0, TRACK.n_bins)), TRACK, TRACK.valid_mask, END, bin_s=BIN_S,
                                       max_event_s=0.1, marks=model, max_marks_per_bin=2)
     marks = (60 + 40 * rng.random((4, 3))).astype(np.float32)
-    content.take_marks(np.array([3.001, 3.002]), np.array([99, 10]), marks[:2])  # group 99: not in the model
-    content.take_marks(np.array([3.003, 3.004]), np.array([11, 10]), marks[2:])
+    content.take_marks(np.array([3.001, 3.002]), model.rows_of(np.array([99, 10])), marks[:2])  # group 99: not in the model
+    content.take_marks(np.array([3.003, 3.004]), model.rows_of(np.array([11, 10])), marks[2:])
     content.begin(3.0)
     (b,) = content.due(3.02)
     # The first two known marked spikes in time are decoded; the third is beyond the cap.
@@ -137,8 +151,10 @@ CONFIG = {
     "session": {"learn_s": 20.0, "arm_after_fit": True, "cross_validate": False},
     "ripples": {"source": "lfp", "warm_up_s": 3.0, "baseline_window_s": 20.0, "max_speed_cm_s": 6.0},
     "safety": {"refractory_s": 0.05, "max_per_minute": 1000},
-    "zones": [{"kind": "interval", "name": "far_end", "start_cm": 80.0, "end_cm": 100.0}],
-    "rules": [{"name": "far", "kind": "replay_mass", "zone": "far_end", "min_mass": 0.5, "min_bins": 2}],
+    # Most replays after learning (seed 2) run through the track's middle (82 to 58 cm, 58 to 98 cm, 70 to
+    # 98 cm, ...: the simulator's record), and the rule asks for that content.
+    "zones": [{"kind": "interval", "name": "middle", "start_cm": 40.0, "end_cm": 80.0}],
+    "rules": [{"name": "mid", "kind": "replay_mass", "zone": "middle", "min_mass": 0.5, "min_bins": 2}],
     "simulation": {"n_place_cells": 24, "units_per_tetrode": 6, "end_pause_s": [3.0, 6.0],
                    "track_lateral_sd_cm": 0.1, "lfp": {"n_channels": 4, "ripple_rate_hz": 2.0},
                    "replay": {"goal_cm": [100.0, 0.0]}, "marks": {"send": "marks"}},
@@ -169,7 +185,7 @@ def test_a_marks_only_ripple_session_decodes_content_from_marks_and_its_replay_r
     assert live.state == "decoding" and live.steps.n_units == 0  # no sorted unit: the marks alone decode
     assert live.ripples.content.marks is not None
     assert content and sum(c.content.n_spikes for c in content) > 0
-    assert any(e.rule == "far" for c in content for e in c.events)
+    assert any(e.rule == "mid" for c in content for e in c.events)
     log_dir = record_simulated_session(config, tmp_path / "session", until_s=UNTIL_S, seed=2)
     replayed = replay_session(log_dir)
     assert replayed.pipeline.ripples.digest == live.ripples.digest

@@ -337,3 +337,40 @@ def test_kendall_tau_b_is_nan_without_two_distinct_values():
 
     assert math.isnan(kendall_tau_b(np.array([1.0]), np.array([2.0])))
     assert math.isnan(kendall_tau_b(np.array([1.0, 2.0, 3.0]), np.array([4.0, 4.0, 4.0])))
+
+
+# ---------------------------------------------------------------- the live loop's ripple view
+
+
+def test_the_loop_sends_the_ripple_view_while_learning_and_after_the_fit():
+    """Real sockets on 127.0.0.1: the state stream carries the ripple view in learning frames and decoding frames."""
+    from decoder.config import parse_config
+    from decoder.session.pipeline import Pipeline
+    from loop_helpers import loopback_endpoints, open_with_subscriber
+    from rig_adapters.live.loop import LiveLoop
+    from rig_adapters.sim.settings import SimulationSettings
+    from rig_adapters.sim.simulation import SimulatedSession
+
+    doc = tomllib.loads(CONFIG.read_text())
+    doc["session"]["learn_s"] = 15.0
+    doc["endpoints"] = loopback_endpoints()
+    config = parse_config(tomli_w.dumps(doc))
+    sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=3)
+    loop = LiveLoop(config, Pipeline(config))
+    frames = []
+    watcher = open_with_subscriber(loop, doc["endpoints"]["state"])
+    try:
+        for msg in sim.messages(until_s=25.0):
+            loop.handle_rig_bytes(protocol.encode(msg), time.time())
+            while watcher.poll(0):
+                frames.append(protocol.decode_output(watcher.recv()))
+            if any(f["state"] == "decoding" and f["ripples"] for f in frames):
+                break
+    finally:
+        watcher.close()
+        loop._close_sockets()
+    with_view = [f for f in frames if f["ripples"] is not None]
+    # The detector runs from the first LFP chunk, so the view comes with the learning frames as well.
+    assert any(f["state"] == "learning" for f in with_view), sorted({f["state"] for f in frames})
+    assert any(f["state"] == "decoding" for f in with_view)
+    assert all(v["ripples"]["threshold_sd"] > 0 for v in with_view)

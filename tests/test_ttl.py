@@ -14,13 +14,12 @@ import time
 import numpy as np
 import pytest
 import tomli_w
-import zmq
+from loop_helpers import loopback_endpoints, open_with_subscriber
 
 from decoder.config import ConfigError, TtlSettings, parse_config
 from decoder.session.pipeline import Pipeline
 from rig_adapters.live.loop import LiveLoop
 from rig_adapters.live.ttl import TtlDevice
-from rig_adapters.sim.demo import free_loopback_port
 from rig_adapters.sim.simulation import SimulatedSession, SimulationSettings
 from rig_adapters.wire import protocol
 
@@ -145,26 +144,19 @@ def test_a_wrong_ttl_table_is_refused_naming_what_to_change(ttl, message):
 def test_the_live_loop_drives_each_rules_byte_for_the_events_it_publishes(pty):
     """Real sockets, a real pseudo-terminal: the bytes that arrive follow the rules of the published events."""
     path, read_all = pty
-    ports = {k: free_loopback_port() for k in ("rig", "events", "state", "control")}
     doc = {**BASE, "sources": {"truth": "truth"}, "model": {"cv_folds": 2, "cv_block_s": 20.0},
            "session": {"learn_s": 60.0, "cross_validate": False, "arm_after_fit": True},
            "safety": {"refractory_s": 1.0, "max_per_minute": 60},
            "simulation": {"n_place_cells": 50, "n_grid_cells": 5, "n_nonspatial_cells": 5},
-           "endpoints": {"rig": [f"tcp://127.0.0.1:{ports['rig']}"],
-                         **{k: f"tcp://127.0.0.1:{ports[k]}" for k in ("events", "state", "control")}},
+           "endpoints": loopback_endpoints(),
            "ttl": {"device": path, "outputs": [{"rule": "west_reward", "byte": 0x57},
                                                {"rule": "east_reward", "byte": 0x45}]}}
     config = parse_config(tomli_w.dumps(doc))
     sim = SimulatedSession(config.environment, SimulationSettings.from_dict(config.simulation), seed=11)
     device = TtlDevice.from_settings(config.ttl, [r.name for r in config.rules])
     loop = LiveLoop(config, Pipeline(config), ttl=device, publish_state=False)
-    listener = zmq.Context.instance().socket(zmq.SUB)
-    listener.setsockopt(zmq.SUBSCRIBE, b"")
-    listener.setsockopt(zmq.LINGER, 0)
+    listener = open_with_subscriber(loop, doc["endpoints"]["events"])
     try:
-        loop._open_sockets()
-        listener.connect(doc["endpoints"]["events"])
-        time.sleep(0.3)  # the subscription reaches the publisher before the first event
         for msg in sim.messages(until_s=150.0):
             loop.handle_rig_bytes(protocol.encode(msg), time.time())
         rules = []

@@ -294,6 +294,8 @@ class BayesDecoder:
         self._log_rate = np.log(floored)
         if self.likelihood_temperature != 1.0:
             self._log_rate /= self.likelihood_temperature
+        floored.setflags(write=False)
+        self._floored_hz = floored
         with np.errstate(over="ignore"):
             self._expected_total = self.window_s * floored.sum(axis=0) / self.likelihood_temperature
         if not np.all(np.isfinite(self._expected_total)):
@@ -466,6 +468,11 @@ class BayesDecoder:
             # Tempered like the units' terms, whose rates were divided at construction.
             np.divide(arr, self.likelihood_temperature, out=terms[row])
         return terms
+
+    @property
+    def rates_hz(self) -> np.ndarray:
+        """The rate maps the likelihood uses, floored at ``rate_floor_hz`` (Hz), shape (n_units, n_bins); read-only."""
+        return self._floored_hz
 
     def decode(self, fired_rows: np.ndarray, fired_counts: np.ndarray, mark_log_like: np.ndarray | None = None,
                mark_expected: np.ndarray | None = None) -> DecodedStep:

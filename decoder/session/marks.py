@@ -182,22 +182,31 @@ class MarkStream:
             self._log_like = np.empty(model.environment.n_bins)
             self._expected = model.expected_count(window_s)
 
-    def take(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray], closed_until_s: float) -> None:
-        """Hold a batch for the steps still to close; spikes of steps already decoded are counted late."""
+    def take(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray],
+             closed_until_s: float) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        """Hold a batch for the steps still to close; spikes of steps already decoded are counted late.
+
+        Returns
+        -------
+        tuple of ndarray or None
+            The batch's spikes of groups the model knows, late ones included:
+            times, model rows and marks (the content bins' input, so that
+            each batch's groups are looked up once); None without a model.
+        """
         t, g, m = batch
-        if self.decoding is None or not t.size:
-            return
-        late = int(np.searchsorted(t, closed_until_s, side="right"))
-        if late:
-            self.counters["mark_late_spikes"] += late
-            t, g, m = t[late:], g[late:], m[late:]
+        if self.decoding is None:
+            return None
         rows = self.decoding.rows_of(g)
         if (rows < 0).any():
             # Announced after the model was fitted: the model has nothing on them.
             self.counters["mark_unknown_group"] += int((rows < 0).sum())
             t, rows, m = t[rows >= 0], rows[rows >= 0], m[rows >= 0]
-        if t.size:
-            self._held.append((t, rows, m))
+        late = int(np.searchsorted(t, closed_until_s, side="right"))
+        if late:
+            self.counters["mark_late_spikes"] += late
+        if t.size > late:
+            self._held.append((t[late:], rows[late:], m[late:]))
+        return t, rows, m
 
     def restart(self) -> None:
         """Forget the held spikes (the spike source restarted its clock)."""

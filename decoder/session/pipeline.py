@@ -310,8 +310,9 @@ class Pipeline:
             if self.state == "learning":
                 self.marks.learn(marks, self.positions.tracked)
             elif self.state == "decoding":
-                self.steps.take_marks(marks)
-                self.ripples.take_marks(marks)
+                known = self.steps.take_marks(marks)
+                if known is not None:
+                    self.ripples.take_marks(known)
         if self.state == "decoding":
             steps: list[Output] = [self._decode_step(k, previous) for k in self.steps.due(now)]
             content = self.ripples.content_due(now)

@@ -16,6 +16,19 @@ or ``max_event_s`` after the start, whichever comes first. A bin is decoded
 once the spikes have passed its end and the LFP its start, so that no bin
 begins after the offset.
 
+The resting animal's own place cells go on firing while a replay runs,
+and a bin's likelihood that counts their spikes as the replay's is pulled
+towards the animal's place, or to a compromise between it and the replayed
+place. When the pipeline knows where the animal rests (its tracked
+position at the detection, :meth:`ReplayContent.begin`), each bin's
+spikes are decoded as the superposition of two Poisson processes (the
+intensities add): the replay's at the decoded place ``x`` and the resting
+animal's own at its tracked place ``a``, both from the learned model, so a
+unit's rate is ``r(x) + r(a)`` and a marked spike's intensity
+``lambda(x, m) + lambda(a, m)``. The background's expected count does not
+depend on ``x`` and drops out of the posterior. Without a tracked position
+(lost, or off the model's bins) the bins are decoded as before.
+
 The bins start ``lead_s`` before the LFP onset: the replay's spikes begin
 before the ripple envelope is high enough to cross the detection threshold
 (on the simulated rig the crossing comes 14-32 ms, median 21, after a
@@ -33,11 +46,15 @@ As the event unfolds, after each bin and using only the bins so far,
 
 * the posterior mass in the zone averaged over the event's bins so far;
 * Kendall's rank correlation (tau-b) between the bins' times and their
-  decoded distance to the zone (the posterior mean of the distance): the
+  decoded distance to the zone (the posterior median of the distance): the
   measure the sequence rules judge. A rank correlation, because one bin
   decoded far away (a bin where the resting animal's own place cells
   outnumber the replay's spikes) changes at most ``n - 1`` of its
-  ``n (n - 1) / 2`` pairs, where it would swing a least-squares line;
+  ``n (n - 1) / 2`` pairs, where it would swing a least-squares line; the
+  median, because a bin's posterior often holds the replayed place and a
+  diffuse remainder (spikes no place explains well), and the mean follows
+  the remainder towards the environment's middle where the median stays
+  with the bulk of the mass;
 * the weighted correlation between time and the decoded distance to the zone,
   every (bin, position) pair weighted by its posterior probability, and the
   slope (cm/s) of the weighted least-squares line of distance on time: a
@@ -101,6 +118,47 @@ def zone_distances_cm(environment: Environment, zone_masks: np.ndarray) -> np.nd
     return out
 
 
+def units_background(rates_hz: np.ndarray, rows: np.ndarray, counts: np.ndarray, resting_bin: int) -> np.ndarray:
+    """What the resting animal's own firing changes in a bin's units' log-likelihood, shape (n_bins,).
+
+    With the rates ``r_i(x) + r_i(a)`` (a place ``x`` replayed, the animal
+    at ``a``), the spike term ``sum_i n_i log(r_i(x) + r_i(a))`` is the
+    plain one plus ``sum_i n_i log(1 + r_i(a) / r_i(x))``, returned here;
+    the background's expected count, ``window * sum_i r_i(a)``, does not
+    depend on ``x`` and drops out.
+
+    Parameters
+    ----------
+    rates_hz : ndarray of float64, shape (n_units, n_bins)
+        The floored rate maps (``BayesDecoder.rates_hz``).
+    rows : ndarray of int64, shape (k,)
+        Units that fired, each once.
+    counts : ndarray of float64, shape (k,)
+        Their spike counts.
+    resting_bin : int
+        The animal's bin ``a``.
+    """
+    r = rates_hz[rows]
+    return counts @ np.log1p(r[:, resting_bin, None] / r)
+
+
+def marks_with_background(marks: MarkModel, rows: np.ndarray, marks_uv: np.ndarray, resting_bin: int,
+                          out: np.ndarray, scratch: tuple[np.ndarray, ...], one: np.ndarray) -> None:
+    """``sum_k log(lambda(x, m_k) + lambda(a, m_k))`` over a bin's marked spikes, into ``out`` (n_bins,).
+
+    The marks' spike term when the resting animal's place ``a`` fires beside
+    the replay (the intensities of two Poisson processes add); the
+    background's expected count does not depend on ``x`` and drops out.
+    Each spike's ``log lambda(x, m_k)`` comes from
+    :meth:`MarkModel.log_intensity_sum` over that spike alone, into ``one``
+    (n_bins,).
+    """
+    out[:] = 0.0
+    for k in range(rows.size):
+        marks.log_intensity_sum(rows[k:k + 1], marks_uv[k:k + 1], one, scratch)
+        out += np.logaddexp(one, one[resting_bin])
+
+
 class SequenceMeasures:
     """Causal content measures of one event, updated bin by bin from running sums.
 
@@ -122,9 +180,10 @@ class SequenceMeasures:
     (no stored posteriors). Positions with NaN distance (bins off the model)
     carry no posterior mass.
 
-    Kendall's tau-b of the bins' times ``t_k`` and mean distances
-    ``m_k = sum_x P(x | k) d(x)``: ``S = sum_{j<k} sign(m_k - m_j)`` (times
-    only increase) over ``sqrt(n0 (n0 - n_ties))`` with ``n0 = n (n - 1) / 2``
+    Kendall's tau-b of the bins' times ``t_k`` and median distances ``m_k``
+    (the least ``d`` with ``sum_{x: d(x) <= d} P(x | k) >= 1/2``, the lower
+    weighted median): ``S = sum_{j<k} sign(m_k - m_j)`` (times only
+    increase) over ``sqrt(n0 (n0 - n_ties))`` with ``n0 = n (n - 1) / 2``
     and ``n_ties`` the pairs of equal ``m``; ``S`` grows by one sum per bin.
     """
 
@@ -133,6 +192,9 @@ class SequenceMeasures:
         d = np.asarray(distance_cm, np.float64)
         self._d = np.nan_to_num(d, nan=0.0)
         self._d2 = self._d**2
+        # Each zone's bins by distance, for the posterior median of the distance.
+        self._by_distance = np.argsort(self._d, axis=1, kind="stable")
+        self._sorted_d = np.take_along_axis(self._d, self._by_distance, axis=1)
         self.reset()
 
     def reset(self) -> None:
@@ -142,7 +204,7 @@ class SequenceMeasures:
         self._t0 = math.nan
         self._st = self._stt = 0.0
         self._sd, self._sdd, self._std, self._mass = (np.zeros(n_zones) for _ in range(4))
-        self._means: list[np.ndarray] = []
+        self._medians: list[np.ndarray] = []
         self._concordance = np.zeros(n_zones)
         self._ties = np.zeros(n_zones)
 
@@ -159,16 +221,27 @@ class SequenceMeasures:
         self._sdd += self._d2 @ posterior
         self._std += t * d
         self._mass += self._mask @ posterior
-        if self._means:
-            earlier = np.array(self._means)
-            self._concordance += np.sign(d - earlier).sum(axis=0)
-            self._ties += np.count_nonzero(d == earlier, axis=0)
-        self._means.append(d)
+        median = self.median_distance(posterior)
+        if self._medians:
+            earlier = np.array(self._medians)
+            self._concordance += np.sign(median - earlier).sum(axis=0)
+            self._ties += np.count_nonzero(median == earlier, axis=0)
+        self._medians.append(median)
+
+    def median_distance(self, posterior: np.ndarray) -> np.ndarray:
+        """The posterior median of the distance to each zone (cm), shape (n_zones,).
+
+        The lower weighted median: the least distance whose cumulative
+        posterior mass reaches half the total.
+        """
+        mass = np.cumsum(np.asarray(posterior, np.float64)[self._by_distance], axis=1)
+        at = [int(np.searchsorted(row, 0.5 * row[-1])) for row in mass]
+        return self._sorted_d[np.arange(len(at)), at]
 
     def rank_correlation(self) -> np.ndarray:
-        """Kendall's tau-b of the bins' times and mean distances to each zone, shape (n_zones,).
+        """Kendall's tau-b of the bins' times and median distances to each zone, shape (n_zones,).
 
-        NaN before two bins, or where every mean distance is the same.
+        NaN before two bins, or where every median distance is the same.
         """
         n0 = self.n_bins * (self.n_bins - 1) / 2
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -179,12 +252,12 @@ class SequenceMeasures:
         """The evidence behind :meth:`rank_correlation`: its normal approximation's z score, shape (n_zones,).
 
         ``z = S / sqrt(var(S))`` with the variance of ``S`` under independence
-        corrected for ties in the mean distances (Kendall 1948, Rank
+        corrected for ties in the median distances (Kendall 1948, Rank
         Correlation Methods; times have none): ``var(S) = (n (n - 1) (2n + 5)
         - sum_g t_g (t_g - 1) (2 t_g + 5)) / 18`` over the groups of ``t_g``
         equal values. Its sign is the correlation's; its size grows with the
         bins that agree, so a threshold on it asks more of few bins than of
-        many. NaN before two bins, or where every mean distance is the same.
+        many. NaN before two bins, or where every median distance is the same.
         """
         n = self.n_bins
         if n < 2:
@@ -192,7 +265,7 @@ class SequenceMeasures:
         tie_term = np.zeros(self._concordance.shape)
         if self._ties.any():
             for z in np.flatnonzero(self._ties):
-                _, t = np.unique(np.array(self._means)[:, z], return_counts=True)
+                _, t = np.unique(np.array(self._medians)[:, z], return_counts=True)
                 tie_term[z] = np.sum(t * (t - 1.0) * (2.0 * t + 5.0))
         var = (n * (n - 1.0) * (2.0 * n + 5.0) - tie_term) / 18.0
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -244,7 +317,7 @@ class ContentBin(NamedTuple):
     mean_mass : ndarray of float64, shape (n_zones,)
         Zone mass averaged over the event's bins so far (NaN before the first one used).
     rank_correlation : ndarray of float64, shape (n_zones,)
-        Kendall's tau-b of time and mean decoded distance to each zone over
+        Kendall's tau-b of time and median decoded distance to each zone over
         the bins so far (negative: moving towards the zone); what the
         sequence rules judge.
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
@@ -292,7 +365,7 @@ class ReplayContent:
     min_spikes : int, default 1
         A bin with fewer spikes is decoded and reported but left out of the
         event's measures: with the uniform prior, an empty bin's posterior
-        is the prior itself, whose mean distance to a zone would pull every
+        is the prior itself, whose median distance to a zone would pull every
         line towards the environment's middle (bins without spikes are left
         out of line fitting in common practice). The event goes on: it ends
         with the LFP, not with a lull in the spikes. Marked spikes count as spikes.
@@ -342,6 +415,7 @@ class ReplayContent:
         self._t = np.zeros(0)
         self._rows = np.zeros(0, np.int64)
         self._onset_s = math.nan
+        self._resting_bin = -1
         self._start_s = math.nan
         self._offset_s = math.inf
         self._next = 0
@@ -354,6 +428,7 @@ class ReplayContent:
             self._mark_uv = np.zeros((0, self._mark_width), np.float32)
             self._mark_scratch = marks.scratch()
             self._mark_log_like = np.empty(marks.environment.n_bins)
+            self._mark_one = np.empty(marks.environment.n_bins)
             # The marks' ground-process rate over one bin: the expected count a behavioural step subtracts.
             self._mark_expected = marks.expected_count(self.bin_s)
 
@@ -392,21 +467,23 @@ class ReplayContent:
             order = np.argsort(self._t, kind="stable")
             self._t, self._rows = self._t[order], self._rows[order]
 
-    def take_marks(self, t_s: np.ndarray, group_ids: np.ndarray, marks_uv: np.ndarray) -> None:
+    def take_marks(self, t_s: np.ndarray, rows: np.ndarray, marks_uv: np.ndarray) -> None:
         """Hold a batch of checked marked spikes for the events to come.
 
         Parameters
         ----------
         t_s : ndarray of float64, shape (n,)
             Times (s), sorted.
-        group_ids : ndarray of int64, shape (n,)
-            Groups the mark model does not know are left out here (the behavioural steps count them).
+        rows : ndarray of int64, shape (n,)
+            The mark model's row of each spike's group (``MarkModel.rows_of``,
+            looked up once per batch by ``MarkStream.take``); -1, a group the
+            model does not know, is left out here (the behavioural steps count them).
         marks_uv : ndarray of float32, shape (n, n_channels)
         """
         t = np.asarray(t_s, np.float64)
         if self.marks is None or not t.size:
             return
-        rows = self.marks.rows_of(group_ids)
+        rows = np.asarray(rows, np.int64)
         known = rows >= 0
         t, rows = t[known], rows[known]
         if not t.size:
@@ -430,11 +507,21 @@ class ReplayContent:
         """The current event's onset (NaN when none is active)."""
         return self._onset_s
 
-    def begin(self, onset_s: float) -> None:
+    def begin(self, onset_s: float, resting_xy_cm: np.ndarray | None = None) -> None:
         """A candidate event detected with its LFP onset at ``onset_s`` (data time): a running one ends.
 
-        Its bins start ``lead_s`` before the onset.
+        Its bins start ``lead_s`` before the onset. ``resting_xy_cm`` (shape
+        (2,)), the animal's tracked position, adds its own place's firing to
+        every bin as a background (see the module's docstring); NaN, None or
+        a place off the model's bins adds none.
         """
+        self._resting_bin = -1
+        if resting_xy_cm is not None:
+            xy = np.asarray(resting_xy_cm, np.float64).reshape(1, 2)
+            if np.all(np.isfinite(xy)):
+                b = int(self.decoder.environment.bin_index(xy)[0])
+                if b >= 0 and self.decoder.valid_mask[b]:
+                    self._resting_bin = b
         self._onset_s = float(onset_s)
         self._start_s = self._onset_s - self.lead_s
         self._offset_s = math.inf
@@ -478,17 +565,26 @@ class ReplayContent:
         a, b = np.searchsorted(self._t, (start, stop), side="left")
         counts = np.bincount(self._rows[a:b], minlength=self._n_units)
         rows = np.flatnonzero(counts).astype(np.int64)
+        fired = counts[rows].astype(np.float64)
         n_marks = over_cap = 0
-        if self.marks is None:
-            step = self.decoder.decode(rows, counts[rows].astype(np.float64))
-        else:
+        rest = self._resting_bin
+        log_like, expected = None, None
+        if self.marks is not None:
             c, d = np.searchsorted(self._mark_t, (start, stop), side="left")
             n_marks = min(int(d - c), self.max_marks_per_bin)
             over_cap = int(d - c) - n_marks
-            self.marks.log_intensity_sum(self._mark_rows[c:c + n_marks], self._mark_uv[c:c + n_marks],
-                                         self._mark_log_like, self._mark_scratch)
-            step = self.decoder.decode(rows, counts[rows].astype(np.float64), self._mark_log_like,
-                                       self._mark_expected)
+            mark_rows, mark_uv = self._mark_rows[c:c + n_marks], self._mark_uv[c:c + n_marks]
+            if rest < 0:
+                self.marks.log_intensity_sum(mark_rows, mark_uv, self._mark_log_like, self._mark_scratch)
+            else:
+                marks_with_background(self.marks, mark_rows, mark_uv, rest, self._mark_log_like,
+                                      self._mark_scratch, self._mark_one)
+            log_like, expected = self._mark_log_like, self._mark_expected
+        if rest >= 0 and rows.size:
+            units = units_background(self.decoder.rates_hz, rows, fired, rest)
+            log_like = units if log_like is None else log_like + units
+            expected = np.zeros_like(units) if expected is None else expected
+        step = self.decoder.decode(rows, fired, log_like, expected)
         n_spikes = step.n_spikes + n_marks
         m = self.measures
         if n_spikes >= self.min_spikes:

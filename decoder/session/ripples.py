@@ -244,7 +244,7 @@ class RippleStream:
             self.content.take_spikes(t_s, unit_ids)
 
     def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
-        """Hold the spike source's checked marked spikes (``MarkStream.accept``'s times, groups, marks) for content."""
+        """Hold the spike source's checked marked spikes for content: times, mark model rows, marks (``MarkStream.take``)."""
         if self.content is not None:
             self.content.take_marks(*batch)
 
@@ -331,7 +331,7 @@ class RippleStream:
             self.counters["ripples_moving"] += 1
         else:
             if self.content is not None:
-                self.content.begin(d.onset_s)
+                self.content.begin(d.onset_s, xy)
                 self._detected_s = t
                 self.events_.append(ContentEvent(d.onset_s))
             lag = max(watermark_s - t, 0.0) if math.isfinite(watermark_s) else 0.0

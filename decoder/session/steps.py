@@ -281,11 +281,17 @@ class DecodingSteps:
         if n_late:
             self.counters["late_spikes"] += n_late
 
-    def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
-        """Hold a batch of checked marked spikes (times, groups, marks) for the steps still to close."""
-        if self.marks is not None:
-            next_k = self.schedule.next_k
-            self.marks.take(batch, self.schedule.step_end_s(next_k - 1) if next_k is not None else -math.inf)
+    def take_marks(self, batch: tuple[np.ndarray, np.ndarray, np.ndarray]
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        """Hold a batch of checked marked spikes (times, groups, marks) for the steps still to close.
+
+        Returns the spikes of the groups the mark model knows as times, model
+        rows and marks (``MarkStream.take``), or None without a mark model.
+        """
+        if self.marks is None:
+            return None
+        next_k = self.schedule.next_k
+        return self.marks.take(batch, self.schedule.step_end_s(next_k - 1) if next_k is not None else -math.inf)
 
     def due(self, watermark_s: float) -> list[int]:
         """The steps this watermark closes, at most ``MAX_STEPS_PER_MESSAGE`` (the newest)."""

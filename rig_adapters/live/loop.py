@@ -149,6 +149,7 @@ class LiveLoop:
         self._ripple_view_wall_s = -math.inf
         self._ripple_view_key: tuple = ()
         self._ripple_view_cache: dict = {}
+        self._ripple_view: dict | None = None
         shape = config.environment.grid_shape
         self._grid_shape = list(shape) if shape is not None else [config.environment.n_bins]
         self._last_rig_wall_s: float | None = None
@@ -312,6 +313,9 @@ class LiveLoop:
         # step to the last byte of its output handed to ZeroMQ.
         if steps:
             self.latency.added_ms.append((time.time() - recv_wall_s) * 1e3)
+        if self.publish_state:
+            # After the latency is measured: the view is for a monitor, and rides on the next state frame.
+            self._prepare_ripple_view()
 
     def _send_event(self, out: StepOutput | RippleOutput | ContentOutput, event, is_false: bool,
                     recv_wall_s: float, decoded_wall_s: float) -> None:
@@ -396,19 +400,23 @@ class LiveLoop:
             grid_shape=self._grid_shape,
             stats={k: v for k, v in stats.items() if isinstance(v, int) or math.isfinite(v)},
         )
-        ripples = self.pipeline.ripples
-        if ripples.detector is not None:
-            # A slow consumer needs the view a few times a second, and soon after an event begins or ends.
-            events = ripples.events_
-            key = (len(events), math.isnan(events[-1].offset_s)) if events else ()
-            now = time.monotonic()
-            since = now - self._ripple_view_wall_s
-            if since >= protocol.RIPPLE_VIEW_PERIOD_S or (key != self._ripple_view_key
-                                                          and since >= protocol.RIPPLE_VIEW_MIN_GAP_S):
-                fields["ripples"] = protocol.ripple_view(ripples.detector, events, cache=self._ripple_view_cache)
-                self._ripple_view_wall_s = now
-                self._ripple_view_key = key
         self._publish_state(fields)
+
+    def _prepare_ripple_view(self) -> None:
+        """Build the ripple view when one is due; the next state frame, learning or decoding, carries it."""
+        ripples = self.pipeline.ripples
+        if ripples.detector is None:
+            return
+        # A slow consumer needs the view a few times a second, and soon after an event begins or ends.
+        events = ripples.events_
+        key = (len(events), math.isnan(events[-1].offset_s)) if events else ()
+        now = time.monotonic()
+        since = now - self._ripple_view_wall_s
+        if since >= protocol.RIPPLE_VIEW_PERIOD_S or (key != self._ripple_view_key
+                                                      and since >= protocol.RIPPLE_VIEW_MIN_GAP_S):
+            self._ripple_view = protocol.ripple_view(ripples.detector, events, cache=self._ripple_view_cache)
+            self._ripple_view_wall_s = now
+            self._ripple_view_key = key
 
     def _send_learning(self, progress: LearningProgress) -> None:
         tracked_xy, _ = self.pipeline.tracked.at(progress.t_s)
@@ -438,6 +446,8 @@ class LiveLoop:
         ))
 
     def _publish_state(self, fields: dict) -> None:
+        if self._ripple_view is not None:
+            fields["ripples"], self._ripple_view = self._ripple_view, None
         self._state_seq += 1
         try:
             self.state_pub.send(protocol.encode_state(**fields), zmq.NOBLOCK)
