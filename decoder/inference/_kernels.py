@@ -954,7 +954,10 @@ def _add_moves(src, kernel, step, dst):
     """``dst[j] = sum_k kernel[k] * src[j + (2 * r - k) * step]``, ``k`` ascending, with no fused multiply-adds.
 
     The sums of :func:`_tilted_inv_norm`, in the order its bin-by-bin form
-    adds their terms (``kernel[k]`` weighs a move of ``r - k`` bins).
+    adds their terms (``kernel[k]`` weighs a move of ``r - k`` bins). Not
+    :func:`_filter`, which reads the taps the other way round and fuses
+    multiply and add: either would round the normalisers differently from
+    that form, and a replay's steps with them.
 
     Parameters
     ----------
