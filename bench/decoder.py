@@ -170,21 +170,23 @@ def time_steps(decoder: BayesDecoder, windows: list, warmup: int) -> tuple[np.nd
     return wall * 1e3, cpu * 1e3
 
 
-def run_case(env: Environment, n_units: int, kind: str, n_steps: int, warmup: int, seed: int) -> dict:
+def run_case(env: Environment, n_units: int, kind: str, n_steps: int, warmup: int, seed: int,
+             temperature: float = FILTER_TEMPERATURE) -> dict:
     """One case; ``kind`` is a prior of the sliding window (``"uniform"``, ``"state_space"``) or ``"filter"``."""
     rng = np.random.default_rng(seed)
     rates = place_maps(env, n_units, rng)
     windows = window_counts(env, rates, n_steps + warmup, rng, STEP_S if kind.startswith("filter") else WINDOW_S)
-    return time_backends(env, rates, windows, kind, warmup)
+    return time_backends(env, rates, windows, kind, warmup, temperature=temperature)
 
 
-def _decoder(env: Environment, rates: np.ndarray, kind: str, zones: np.ndarray | None, backend: str) -> BayesDecoder:
+def _decoder(env: Environment, rates: np.ndarray, kind: str, zones: np.ndarray | None, backend: str,
+             temperature: float) -> BayesDecoder:
     """The decoder of a case, as ``decoder.session.steps.build_decoder`` makes it for that method."""
     if kind in ("filter", "filter_drift"):
         drift = kind == "filter_drift"
         return BayesDecoder(
             rates, env, env.valid_mask, STEP_S, prior="state_space", random_walk_sd_cm=FILTER_WALK_SD_CM,
-            uniform_weight=FILTER_UNIFORM_WEIGHT, likelihood_temperature=FILTER_TEMPERATURE, zone_masks=zones,
+            uniform_weight=FILTER_UNIFORM_WEIGHT, likelihood_temperature=temperature, zone_masks=zones,
             drift_gain=FILTER_DRIFT_GAIN if drift else 0.0,
             velocity_time_constant_s=FILTER_VELOCITY_TIME_CONSTANT_S, backend=backend,
         )
@@ -195,12 +197,13 @@ def _decoder(env: Environment, rates: np.ndarray, kind: str, zones: np.ndarray |
 
 
 def time_backends(
-    env: Environment, rates: np.ndarray, windows: list, kind: str, warmup: int, zones: np.ndarray | None = None
+    env: Environment, rates: np.ndarray, windows: list, kind: str, warmup: int, zones: np.ndarray | None = None,
+    temperature: float = FILTER_TEMPERATURE,
 ) -> dict:
     """Per-step latency of the numba decoder and of the same decoder on the numpy twins."""
     result = {"units": rates.shape[0], "bins": env.n_bins, "prior": kind}
     for backend in ("numba", "numpy"):
-        decoder = _decoder(env, rates, kind, zones, backend)
+        decoder = _decoder(env, rates, kind, zones, backend, temperature)
         wall_ms, cpu_ms = time_steps(decoder, windows, warmup)
         result[f"{backend}_p50_ms"] = float(np.median(wall_ms))
         result[f"{backend}_p99_ms"] = float(np.percentile(wall_ms, 99))
@@ -301,6 +304,10 @@ def main(argv: list[str] | None = None) -> int:
         "--quick", action="store_true", help="few steps, 300 units only, 3 simulated minutes of fitting"
     )
     parser.add_argument("--steps", type=int, help="timed steps per case (default 400, quick 60)")
+    parser.add_argument(
+        "--temperature", type=float, default=FILTER_TEMPERATURE,
+        help=f"likelihood temperature of the filter cases (default {FILTER_TEMPERATURE:g}, a typical fitted one)",
+    )
     args = parser.parse_args(argv)
     n_steps = args.steps or (60 if args.quick else 400)
     warmup = 10 if args.quick else 30
@@ -321,7 +328,7 @@ def main(argv: list[str] | None = None) -> int:
         for n_units in unit_counts:
             for kind in KINDS:
                 seed += 1
-                cases.append(run_case(env, n_units, kind, n_steps, warmup, seed))
+                cases.append(run_case(env, n_units, kind, n_steps, warmup, seed, args.temperature))
     replay = replay_case(max(n_steps, 2000), warmup, seed=77)
     load_after = os.getloadavg()
     print_table(cases)
@@ -395,7 +402,7 @@ def main(argv: list[str] | None = None) -> int:
                 "step_s": STEP_S,
                 "random_walk_sd_cm": RANDOM_WALK_SD_CM,
                 "filter": {"walk_sd_cm": FILTER_WALK_SD_CM, "uniform_weight": FILTER_UNIFORM_WEIGHT,
-                           "likelihood_temperature": FILTER_TEMPERATURE, "drift_gain": FILTER_DRIFT_GAIN,
+                           "likelihood_temperature": args.temperature, "drift_gain": FILTER_DRIFT_GAIN,
                            "velocity_time_constant_s": FILTER_VELOCITY_TIME_CONSTANT_S},
                 "timed_steps": n_steps,
                 "warmup_steps": warmup,

@@ -80,10 +80,10 @@ def _grid_compiled(walk: RandomWalk, p: np.ndarray, theta: np.ndarray) -> np.nda
     K.tilt_kernels(kernel, walk.environment.bin_cm, theta[0], theta[1], kx, ky)
     y0, y1 = K._support_rows(p, nx, 0, ny - 1)
     inv = np.full(p.size, np.nan)  # whatever the buffer held must not leak in
-    K._tilted_inv_norm(p, ny, nx, kx, ky, walk._mask_f, walk.interior, y0, y1, inv)
+    grid_scratch = np.zeros((2 * ny + 2 * r) * (nx + 2 * r))
+    K._tilted_inv_norm(p, ny, nx, kx, ky, walk._mask_f, walk.interior, y0, y1, inv, grid_scratch)
     out = np.full(p.size, np.nan)
-    y0, y1 = K._predict_grid_rows(p, ny, nx, kx, ky, False, walk._mask_f, inv, y0, y1, out,
-                                  np.zeros((2 * ny + 2 * r) * (nx + 2 * r)))
+    y0, y1 = K._predict_grid_rows(p, ny, nx, kx, ky, False, walk._mask_f, inv, y0, y1, out, grid_scratch)
     out[: y0 * nx] = 0.0
     out[(y1 + 1) * nx :] = 0.0
     return out
@@ -96,16 +96,75 @@ def test_tilted_grid_prediction_is_the_reweighted_row_normalised_transition(thet
     walk = RandomWalk(arena, arena.valid_mask & (rng.random(arena.n_bins) < 0.9), sd_cm=2.5, backend="numpy")
     theta = np.array(theta)
     t = _tilted_matrix(walk, theta)
-    p = rng.random(arena.n_bins) * walk.valid_mask
+    broad = rng.random(arena.n_bins) * walk.valid_mask  # every valid bin: a broad posterior
+    broad /= broad.sum()
+    p = broad.copy()
     p[: arena.n_bins // 3] = 0.0  # a support that ends inside the grid, and touches the wall
     p /= p.sum()
     expected = p @ t
     # Source: Markov prediction p T with T written out entry by entry (above).
     np.testing.assert_allclose(walk.predict(p, tuple(theta)), expected, rtol=1e-10, atol=1e-15)
     np.testing.assert_allclose(_grid_compiled(walk, p, theta), expected, rtol=1e-10, atol=1e-15)
+    np.testing.assert_allclose(_grid_compiled(walk, broad, theta), broad @ t, rtol=1e-10, atol=1e-15)
     # Source: a row-stochastic T keeps total probability and puts none on invalid bins (definition).
     assert walk.predict(p, tuple(theta)).sum() == pytest.approx(1.0, rel=1e-12)
     assert np.all(walk.predict(p, tuple(theta))[~walk.valid_mask] == 0.0)
+
+
+def _inv_norm_bin_by_bin(p, ny, nx, kx, ky, mask_f, interior):
+    """1 / sum_j K_tilted(i -> j) m_j on the non-zero bins of p, each bin's reach summed on its own in plain Python.
+
+    The terms in the order the compiled sum keeps: kx[k] ascending within a row of the reach, then the
+    rows with ky[k] ascending (kernel[k] weighs a move of r - k bins); interior bins take the full kernels.
+    """
+    r = kx.size // 2
+    full = 1.0 / (sum(kx.tolist()) * sum(ky.tolist()))
+    inv = np.zeros(p.size)
+    for iy in range(ny):
+        for ix in range(nx):
+            i = iy * nx + ix
+            if p[i] == 0.0:
+                continue
+            if interior[i]:
+                inv[i] = full
+                continue
+            total = 0.0
+            for b in range(2 * r + 1):
+                if not 0 <= iy + r - b < ny:
+                    continue
+                part = 0.0
+                for a in range(2 * r + 1):
+                    if 0 <= ix + r - a < nx:
+                        part += float(kx[a]) * float(mask_f[(iy + r - b) * nx + ix + r - a])
+                total += float(ky[b]) * part
+            inv[i] = 1.0 / total
+    return inv
+
+
+@pytest.mark.parametrize("rows", [(0, None), (9, 14), (0, 4), (15, None)], ids=["all", "middle", "top", "bottom"])
+def test_tilted_normalisers_are_the_bin_by_bin_sums_bit_for_bit(rows):
+    # A broad posterior (a high likelihood temperature) on a ragged map of visited bins: most of
+    # its bins lie near a wall, where the normaliser is not the full kernels' sum.
+    rng = np.random.default_rng(5)
+    arena = Arena.circle((20, 20), 19, bin_cm=2.0)
+    walk = RandomWalk(arena, arena.valid_mask & (rng.random(arena.n_bins) < 0.8), sd_cm=2.5, backend="numpy")
+    ny, nx = arena.grid_shape
+    y0, y1 = rows[0], ny - 1 if rows[1] is None else rows[1]
+    p = rng.random(arena.n_bins) * walk.valid_mask
+    p[: y0 * nx] = 0.0
+    p[(y1 + 1) * nx :] = 0.0
+    kernel = walk._kernel_1d
+    r = kernel.size // 2
+    kx, ky = np.empty_like(kernel), np.empty_like(kernel)
+    K.tilt_kernels(kernel, arena.bin_cm, 0.35, -0.2, kx, ky)
+    inv = np.full(p.size, np.nan)
+    grid_scratch = np.full((2 * ny + 2 * r) * (nx + 2 * r), np.nan)  # nothing it held may leak in
+    K._tilted_inv_norm(p, ny, nx, kx, ky, walk._mask_f, walk.interior, y0, y1, inv, grid_scratch)
+    expected = _inv_norm_bin_by_bin(p, ny, nx, kx, ky, walk._mask_f, walk.interior)
+    assert np.count_nonzero((p > 0) & ~walk.interior) > 30
+    # Source: definition of the tilted walk's row normaliser (sum of K exp(theta . d) m over the
+    # reach), summed bin by bin in the compiled sum's order: equal bit for bit.
+    np.testing.assert_array_equal(inv[y0 * nx : (y1 + 1) * nx], expected[y0 * nx : (y1 + 1) * nx])
 
 
 @pytest.mark.parametrize(

@@ -950,12 +950,68 @@ def tilt_kernels_numpy(kernel_1d, bin_cm, theta_x, theta_y, kernel_x, kernel_y):
 
 
 @numba.njit(cache=True)
-def _tilted_inv_norm(p, ny, nx, kernel_x, kernel_y, mask_f, interior, y0, y1, inv):
+def _add_moves(src, kernel, step, dst):
+    """``dst[j] = sum_k kernel[k] * src[j + (2 * r - k) * step]``, ``k`` ascending, with no fused multiply-adds.
+
+    The sums of :func:`_tilted_inv_norm`, in the order its bin-by-bin form
+    adds their terms (``kernel[k]`` weighs a move of ``r - k`` bins). Not
+    :func:`_filter`, which reads the taps the other way round and fuses
+    multiply and add: either would round the normalisers differently from
+    that form, and a replay's steps with them.
+
+    Parameters
+    ----------
+    src : ndarray, shape (>= len(dst) + 2 * r * step,), float64
+    kernel : ndarray, shape (2 * r + 1,), float64
+    step : int
+    dst : ndarray, float64
+        Receives the sums; must not overlap ``src``.
+    """
+    last = kernel.shape[0] - 1
+    n = dst.shape[0]
+    for j in range(n):
+        dst[j] = 0.0
+    for k in range(last + 1):
+        a = src[(last - k) * step : (last - k) * step + n]
+        w = kernel[k]
+        for j in range(n):
+            dst[j] += w * a[j]
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _tilted_inv_norm(p, ny, nx, kernel_x, kernel_y, mask_f, interior, y0, y1, inv, grid_scratch):
     """``inv[i] = 1 / sum_j K_tilted(i -> j) m_j`` on the non-zero bins of ``p`` in rows ``y0..y1``.
 
     A bin whose whole reach is valid (``interior``) sums the full kernels,
-    ``sum(kernel_x) * sum(kernel_y)``; only bins near a wall or the grid's
-    edge sum their reach bin by bin, and a posterior touches few of them.
+    ``sum(kernel_x) * sum(kernel_y)``. Bins near a wall or the grid's edge
+    sum their reach; a broad posterior (a high likelihood temperature)
+    touches hundreds of them on a ragged map of visited bins, so the sum is
+    taken apart as the kernel is: the mask's rows along x (rows
+    ``y0 - r .. y1 + r``), then those sums along y, each as a few long loops
+    over grid rows padded with zeros, as in :func:`_predict_grid_rows`.
+    Every bin receives its terms in the order of the sum written out bin by
+    bin (``kernel_x[k]`` ascending within a row, then ``kernel_y[k]``
+    ascending), with no fused multiply-adds, and a term beyond the grid
+    (0 times a kernel weight) leaves a non-negative sum as it was: the
+    result is that sum's, bit for bit (tests/test_movement_drift.py).
+
+    Parameters
+    ----------
+    p : ndarray, shape (ny * nx,), float64
+        Current posterior; 0 outside rows ``y0..y1``.
+    ny, nx : int
+    kernel_x, kernel_y : ndarray, shape (2 * r + 1,), float64
+        The tilted walk (:func:`tilt_kernels`): ``kernel[k]`` weighs a move
+        of ``r - k`` bins, to column (row) ``i + r - k``.
+    mask_f : ndarray, shape (ny * nx,), float64
+    interior : ndarray, shape (ny * nx,), bool
+        Bins whose whole reach is valid.
+    y0, y1 : int
+        Inclusive, ``0 <= y0 <= y1 < ny``.
+    inv : ndarray, shape (ny * nx,), float64
+        Receives the normalisers on rows ``y0..y1`` (0 where ``p`` is 0).
+    grid_scratch : ndarray, shape (>= (2 * ny + 2 * r) * (nx + 2 * r),), float64
+        Overwritten.
     """
     r = kernel_x.shape[0] // 2
     full = 0.0
@@ -965,25 +1021,39 @@ def _tilted_inv_norm(p, ny, nx, kernel_x, kernel_y, mask_f, interior, y0, y1, in
     for k in range(kernel_y.shape[0]):
         sum_y += kernel_y[k]
     full = 1.0 / (full * sum_y)
-    for iy in range(y0, y1 + 1):
+    stride = nx + 2 * r
+    m0 = max(0, y0 - r)
+    m1 = min(ny - 1, y1 + r)
+    # Grid row g, column ix is padded[(g - m0) * stride + r + ix] (the mask),
+    # along_x[(g - y0 + r) * stride + r + ix] after the x pass (rows beyond
+    # the grid are zero) and, after the y pass, padded[(g - y0) * stride + r + ix].
+    padded = grid_scratch[: ny * stride]
+    along_x = grid_scratch[ny * stride : (2 * ny + 2 * r) * stride]
+    for g in range(m0, m1 + 1):
+        dst = padded[(g - m0) * stride : (g - m0 + 1) * stride]
+        src = mask_f[g * nx : (g + 1) * nx]
+        dst[:r] = 0.0
+        dst[r + nx :] = 0.0
         for ix in range(nx):
-            i = iy * nx + ix
-            if p[i] == 0.0:
-                # Read beside the non-zero bins: a number, never what the buffer held.
-                inv[i] = 0.0
-                continue
-            if interior[i]:
-                inv[i] = full
-                continue
-            total = 0.0
-            # kernel[k] weighs a move of r - k bins: to row iy + r - ky, column ix + r - kx.
-            for ky in range(max(0, iy + r - ny + 1), min(2 * r + 1, iy + r + 1)):
-                row = (iy + r - ky) * nx
-                part = 0.0
-                for kx in range(max(0, ix + r - nx + 1), min(2 * r + 1, ix + r + 1)):
-                    part += kernel_x[kx] * mask_f[row + ix + r - kx]
-                total += kernel_y[ky] * part
-            inv[i] = 1.0 / total
+            dst[r + ix] = src[ix]
+    # From the first real bin of row m0 to the last of row m1; the padding
+    # columns between get values that only ever reach padding columns.
+    n = (m1 - m0) * stride + nx
+    _add_moves(padded[: n + 2 * r], kernel_x, 1, along_x[(m0 - y0 + r) * stride + r : (m0 - y0 + r) * stride + r + n])
+    along_x[: (m0 - y0 + r) * stride] = 0.0
+    along_x[(m1 - y0 + r + 1) * stride : (y1 - y0 + 2 * r + 1) * stride] = 0.0
+    n = (y1 - y0) * stride + nx
+    total = padded[r : r + n]
+    _add_moves(along_x[r : r + n + 2 * r * stride], kernel_y, stride, total)
+    for iy in range(y0, y1 + 1):
+        row_total = total[(iy - y0) * stride : (iy - y0) * stride + nx]
+        row_p = p[iy * nx : (iy + 1) * nx]
+        row_interior = interior[iy * nx : (iy + 1) * nx]
+        row_inv = inv[iy * nx : (iy + 1) * nx]
+        for ix in range(nx):
+            # Read beside the non-zero bins: a number, never what the buffer held. A non-zero
+            # bin is valid, so its own move (kernel[r] > 0) makes its total positive.
+            row_inv[ix] = 0.0 if row_p[ix] == 0.0 else (full if row_interior[ix] else 1.0 / row_total[ix])
 
 
 def predict_grid_tilted_numpy(p, ny, nx, kernel_1d, bin_cm, theta_x, theta_y, mask_f, out):
@@ -1655,7 +1725,9 @@ def _decode_counts(
             kernel_y = np.empty_like(kernel_1d)
             tilt_kernels(kernel_1d, drift[DRIFT_BIN_CM], theta_x, theta_y, kernel_x, kernel_y)
             # scratch holds the tilted rows' normalisers until the summaries need it.
-            _tilted_inv_norm(previous, ny, nx, kernel_x, kernel_y, mask_f, interior, p_y0, p_y1, scratch)
+            _tilted_inv_norm(
+                previous, ny, nx, kernel_x, kernel_y, mask_f, interior, p_y0, p_y1, scratch, grid_scratch
+            )
             y0, y1 = _predict_grid_rows(
                 previous, ny, nx, kernel_x, kernel_y, False, mask_f, scratch, p_y0, p_y1, predicted, grid_scratch
             )
