@@ -28,7 +28,8 @@ from decoder.space.zones import Zone
 from rig_adapters.sim.settings import SimulationSettings
 
 #: Unit of a key, from the suffix of its name (longest suffix first).
-UNIT_SUFFIXES = (("_cm_s", "cm/s"), ("_cm", "cm"), ("_ms", "ms"), ("_hz", "Hz"), ("_s", "s"))
+UNIT_SUFFIXES = (("_cm_s", "cm/s"), ("_deg_s", "deg/s"), ("_cm", "cm"), ("_deg", "deg"), ("_uv", "µV"), ("_ms", "ms"),
+                 ("_hz", "Hz"), ("_s", "s"))
 
 HEADER = """\
 # placeloop configuration reference
