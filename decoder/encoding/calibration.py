@@ -404,21 +404,22 @@ def fit_temperature(
             # Inside when the bins more probable than the true one hold less than the mass
             # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
             inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
-            if n_mass % _MASS_EVERY == 0 and blur is None:
-                n_hpd = round(step.hpd95_size / bin_size)
-                mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
-            elif n_mass % _MASS_EVERY == 0:
-                mass += float(hpd_mass(p[np.newaxis])[0])
+            if n_mass % _MASS_EVERY == 0:
+                if blur is None:
+                    n_hpd = round(step.hpd95_size / bin_size)
+                    mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
+                else:
+                    mass += float(hpd_mass(p[np.newaxis])[0])
             n_mass += 1
         if score_points:
             points_at[temperature] = np.array(points)
         return inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY))
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
-    turning = {"tracked_noise_sd": float(tracked_noise_sd)} if heading_velocity is None else {
-        "angular_velocity_sd_deg_s": heading_velocity.sd_deg_s,
-        "angular_velocity_time_constant_s": heading_velocity.time_constant_s,
-        "tracked_noise_sd": float(tracked_noise_sd)}
+    turning = {"tracked_noise_sd": float(tracked_noise_sd)}
+    if heading_velocity is not None:
+        turning.update(angular_velocity_sd_deg_s=heading_velocity.sd_deg_s,
+                       angular_velocity_time_constant_s=heading_velocity.time_constant_s)
 
     def fit(temperature: float, *figures: float) -> TemperatureFit:
         """The fit at ``temperature``, with its coverage and mass if known (decoded once more if not)."""

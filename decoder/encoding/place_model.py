@@ -44,8 +44,8 @@ from decoder.space.environments import Environment, HeadingRing
 logger = logging.getLogger(__name__)
 
 #: Most held-out steps the temperature is fitted on: the newest minute at 20 ms
-#: steps. Each of the fit's passes decodes them all: about eight for the
-#: temperature, four for the drift and four to refit the temperature with it
+#: steps. Each of the fit's passes decodes them all: about nine for the
+#: temperature, four for the drift and five to refit the temperature with it
 #: (bench/decoder.py times the whole fit).
 MAX_CALIBRATION_STEPS = 3_000
 

@@ -22,6 +22,7 @@ from decoder.space.environment_base import Environment
 #: rat, long enough to drop a lone outlier and halve frame-to-frame jitter.
 TRACKED_MEDIAN_FRAMES = 5
 
+
 def smoothed_at(frame_t_s: np.ndarray, values: np.ndarray, t_s: np.ndarray,
                  max_frame_gap_s: float) -> tuple[np.ndarray, np.ndarray]:
     """Running median of ``values`` (n, k) over the frames, linear at ``t_s`` (m,); and which ``t_s`` fall in a gap."""
