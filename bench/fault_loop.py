@@ -145,7 +145,7 @@ class LoopUnderTest:
         self.stderr_path = self.dir / "stderr.txt"
         cmd = [sys.executable, "-m", "rig_adapters.cli", "-v", "run", "--config", str(self.config_path),
                "--model", str(model), "--summary", str(self.dir / "summary.json"),
-               "--idle-exit-s", str(idle_exit_s)]
+               "--idle-wall-s", str(idle_exit_s)]
         if self.log_dir is not None:
             cmd += ["--log", str(self.log_dir)]
         if dry_run:

@@ -84,7 +84,7 @@ def test_a_dry_run_publishes_no_event_where_a_stimulator_listens(session):
     state.connect(ep["state"])
     loop = subprocess.Popen(
         [sys.executable, "-m", "rig_adapters.cli", "-v", "run", "--dry-run", "--config", str(cfg), "--model",
-         str(model), "--log", str(log_dir), "--summary", str(summary_path), "--idle-exit-s", "3"],
+         str(model), "--log", str(log_dir), "--summary", str(summary_path), "--idle-wall-s", "3"],
         cwd=ROOT, stderr=subprocess.PIPE, text=True,
     )
     pub = ctx.socket(zmq.XPUB)

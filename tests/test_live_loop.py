@@ -120,7 +120,7 @@ def test_live_loop_survives_bad_input_and_records_everything(rig_setup):
     summary_path = tmp / "summary.json"
     loop = subprocess.Popen(
         [sys.executable, "-m", "rig_adapters.cli", "-v", "run", "--config", str(cfg), "--model", str(model),
-         "--log", str(log_dir), "--summary", str(summary_path), "--idle-exit-s", "120"],
+         "--log", str(log_dir), "--summary", str(summary_path), "--idle-wall-s", "120"],
         cwd=ROOT, stderr=subprocess.PIPE, text=True,
     )
     ctx = zmq.Context.instance()

@@ -278,7 +278,7 @@ def _session_scenario(work: Path, ports: dict) -> dict:
     spike_out, position_out = _outlets(pylsl)
     rig = ports["rig"][0]
     run = _placeloop("run", "--config", str(work / "run.toml"), "--model", str(work / "model.npz"), "--rig", rig,
-                     "--dry-run", "--summary", str(work / "run_summary.json"), "--idle-exit-s", "10")
+                     "--dry-run", "--summary", str(work / "run_summary.json"), "--idle-wall-s", "10")
     _wait_ready(f"tcp://127.0.0.1:{ports['control']}", 180.0)
     # Nothing is pushed until the loop has heard an announcement (the bridge repeats them every 4 s), so the
     # outlets are silent for a while: --stall-s keeps the heartbeats going meanwhile.
