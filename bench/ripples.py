@@ -1,7 +1,7 @@
 """Online ripple detection: latency, hits and false detections against the offline reference; chunk cost.
 
     python bench/ripples.py --json out/ripples.json [--duration-s 300] [--chunk-s 0.002] [--seed 1]
-                            [--marks] [--content-only]
+                            [--marks] [--content-only | --detection-only]
 
 One run, one simulated session (rig_adapters.sim.lfp: 1/f background, theta
 while running, ripples with smoothly rising envelopes while resting; the
@@ -71,7 +71,7 @@ chunks of ``chunk_s`` as an acquisition system would:
   adding the marks' log-likelihood and expected count. Its figures carry the
   prefix ``marks_`` (``marks_content_accuracy``,
   ``marks_content_decision_ms_p50``, ...). ``--content-only`` skips the
-  detection and chunk-cost parts.
+  detection and chunk-cost parts, ``--detection-only`` the replay content.
 
 Bar (issue 14): detection_latency_ms_p50 <= 12 and below
 reference_latency_ms_p50, hit_rate >= 0.95, false_per_min <= 0.5,
@@ -189,6 +189,8 @@ def score(detected_s: np.ndarray, onset_s, offset_s, ripples, speed, rate_hz) ->
         "latency_ms_p50": float(np.median(lat)),
         "latency_ms_p90": float(np.percentile(lat, 90)),
         "hit_rate": hits / max(1, len(onset_s)),
+        "hits": hits,
+        "false_detections": false,
         "false_per_min": false / rest_min,
         "unmatched_offline_per_min": unmatched / rest_min,
         "rest_min": rest_min,
@@ -394,7 +396,9 @@ def detection_run(args: argparse.Namespace) -> dict:
         "reference_latency_ms_p50": theirs["latency_ms_p50"],
         "reference_latency_ms_p90": theirs["latency_ms_p90"],
         "hit_rate": ours["hit_rate"],
+        "hits": ours["hits"],
         "false_per_min": ours["false_per_min"],
+        "false_detections": ours["false_detections"],
         "unmatched_offline_per_min": ours["unmatched_offline_per_min"],
         "reference_hit_rate": theirs["hit_rate"],
         "reference_false_per_min": theirs["false_per_min"],
@@ -436,10 +440,17 @@ def main(argv=None) -> int:
                              "(configs/w_maze_ripples_marks.toml), its figures under marks_content_*")
     parser.add_argument("--content-only", action="store_true",
                         help="skip the detection and chunk-cost parts: replay content only")
+    parser.add_argument("--detection-only", action="store_true",
+                        help="skip the replay-content part: detection and chunk cost only")
     args = parser.parse_args(argv)
+    if args.content_only and args.detection_only:
+        parser.error("--content-only and --detection-only exclude each other")
     result: dict = {}
     if not args.content_only:
         result.update(detection_run(args))
+    if args.detection_only:
+        result.update(chunk_cost(args.chunk_s, args.seed))
+        return report(result, args.json)
     events: dict[str, list] = {"units": [], "marks": []}
     result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
                               args.min_correlation, args.place_cells, args.events,
@@ -454,11 +465,16 @@ def main(argv=None) -> int:
         Path(args.events_json).write_text(json.dumps(events, default=float))
     if not args.content_only:
         result.update(chunk_cost(args.chunk_s, args.seed))
+    return report(result, args.json)
+
+
+def report(result: dict, json_path: str | None) -> int:
+    """Print the figures as JSON, and write them to ``json_path`` if given; the exit status."""
     text = json.dumps(result, indent=2)
     print(text)
-    if args.json:
-        Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-        Path(args.json).write_text(text)
+    if json_path:
+        Path(json_path).parent.mkdir(parents=True, exist_ok=True)
+        Path(json_path).write_text(text)
     return 0
 
 

@@ -3,15 +3,17 @@
 The simulated LFP (rig_adapters.sim.lfp) is test data here only in the sense
 of a signal to run both detectors on: each check compares the online detector
 with an outside reference (scipy.signal.filtfilt and scipy.signal.hilbert on
-the whole signal; the Rayleigh distribution's median and MAD).
+the whole signal; the Rayleigh distribution's median and MAD, its tail from
+scipy.stats.rayleigh; Rice's mean duration of the envelope's excursions).
 """
 
 import math
 
 import numpy as np
 import pytest
-from scipy import signal
+from scipy import signal, stats
 
+from decoder.signals._kernels import ripple_chunk_numpy
 from decoder.signals.ripple_detector import RippleDetection, RippleDetector, RippleOffset
 from decoder.signals.ripple_reference import offline_ripples
 from rig_adapters.sim.lfp import LfpSettings, LfpSynth
@@ -101,7 +103,7 @@ def test_latency_is_onset_to_the_end_of_the_detecting_chunk(session):
     assert detections
     for d in detections:
         assert d.latency_s == pytest.approx(d.detected_s - d.onset_s)
-        assert d.latency_s >= 0.002  # min_duration_s, common to every detection
+        assert d.latency_s >= 0.004  # min_duration_s (its default), common to every detection
         # A detection completes at the end of a chunk of 3 samples.
         samples = d.detected_s * RATE_HZ
         assert samples == pytest.approx(3 * round(samples / 3), abs=1e-6)
@@ -121,6 +123,47 @@ def test_baseline_of_band_passed_noise_is_the_rayleigh_median_and_mad():
     mad = np.median(np.abs(r - np.median(r)))
     assert mad == pytest.approx(0.448, abs=0.002)
     np.testing.assert_allclose(det.spread_ / sigma, 1.4826 * mad, rtol=0.06)
+
+
+def test_threshold_in_sd_is_a_rayleigh_tail_and_noise_leaves_it_sooner_than_the_minimum_duration():
+    # What the default threshold and minimum duration mean in band-passed Gaussian noise, the
+    # background a false detection is made of:
+    # * the share of envelope samples above a channel's threshold (median + 3.5 robust s.d.) is
+    #   the Rayleigh tail there, scipy.stats.rayleigh.sf, about 2.2e-3: ten times a normal's
+    #   scipy.stats.norm.sf(3.5) = 2.3e-4, although the z-score is a correct robust z;
+    # * the envelope of noise behind a filter of RMS bandwidth B (about its centroid) stays above a
+    #   level u (in the band's s.d.) for 1 / (sqrt(2 pi) B u) on average (S. O. Rice 1944-45, Bell
+    #   System Technical Journal 23:282 and 24:46, from memory; the Hilbert envelope matches it to 1 %
+    #   here, the detector's three-sample envelope runs about 10 % shorter), B from
+    #   scipy.signal.sosfreqz: about 2.6 ms at the threshold, below the default minimum duration.
+    rng = np.random.default_rng(6)
+    x = rng.standard_normal((int(RATE_HZ * 60), 4)) * 10
+    det = RippleDetector(RATE_HZ, 4, warm_up_s=20.0)
+    _run(det, x)
+    sos = det.band.sos_
+    y, env, z = np.empty_like(x), np.empty_like(x), np.empty(x.shape[0])
+    # The detector's envelope computed by its numpy twin on scipy.signal.sosfilt, the filter settled.
+    ripple_chunk_numpy(x, sos, np.zeros((sos.shape[0], 2, 4)), np.zeros((2, 4)),
+                       1 / (2 * math.sin(math.pi * 400.0 / RATE_HZ)), det.centre_, 1 / det.spread_, y, env, z)
+    y, env = y[3000:], env[3000:]
+    sigma = y.std(axis=0)
+    u = det.threshold_uv / sigma
+    np.testing.assert_allclose(u, 1.1774 + 1.4826 * 0.4482 * 3.5, rtol=0.06)  # the Rayleigh median and MAD
+    above = env >= det.threshold_uv
+    # Pooled over the channels: each channel's share rests on about 50 excursions.
+    assert above.mean() == pytest.approx(stats.rayleigh.sf(u).mean(), rel=0.2)
+    assert above.mean() > 5 * stats.norm.sf(det.threshold_sd)
+    f, h = signal.sosfreqz(sos, worN=1 << 14, fs=RATE_HZ)
+    power = np.abs(h) ** 2
+    centroid = np.sum(f * power) / np.sum(power)
+    rms_bandwidth_hz = math.sqrt(np.sum((f - centroid) ** 2 * power) / np.sum(power))
+    rice_s = 1 / (math.sqrt(2 * math.pi) * rms_bandwidth_hz * u.mean())
+    edges = np.diff(np.concatenate([np.zeros((1, 4)), above, np.zeros((1, 4))]).astype(np.int8), axis=0)
+    runs = np.concatenate([np.flatnonzero(edges[:, c] == -1) - np.flatnonzero(edges[:, c] == 1) for c in range(4)])
+    assert runs.size > 150
+    assert runs.mean() / RATE_HZ == pytest.approx(rice_s, rel=0.25)
+    default = RippleDetector(RATE_HZ, 4)
+    assert default._min_samples / RATE_HZ > 1.4 * rice_s
 
 
 def test_no_detection_before_the_warm_up_nor_in_noise():

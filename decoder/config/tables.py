@@ -33,8 +33,10 @@ class RippleSettings:
     threshold_sd: float = 3.5
     #: An event ends when the mean z-score falls below this.
     end_sd: float = 1.0
-    #: The mean z-score must stay above the threshold this long before a detection (s).
-    min_duration_s: float = 0.002
+    #: The mean z-score must stay above the threshold this long before a detection (s): each ms
+    #: adds a ms of latency and filters out more of the background's brief excursions above the
+    #: threshold (2-3 ms on average in the ripple band), the false detections at rest.
+    min_duration_s: float = 0.004
     #: Channels that must each be above ``channel_sd`` at the detection (multi-channel agreement).
     min_channels: int = 1
     #: The per-channel z-score for agreement.

@@ -27,6 +27,31 @@ envelope lags is a millisecond of latency):
   ends when the mean falls below ``end_sd`` (the envelope has fallen back),
   and a :class:`RippleOffset` says so.
 
+What a threshold "in s.d." means. Each channel's z-score is a robust z of
+its envelope, and the envelope of band-passed Gaussian noise is Rayleigh
+distributed, not normal: its median is 1.177 and its normal-consistent MAD
+0.664 times the band's s.d., so ``threshold_sd`` 3.5 is an envelope of
+3.50 s.d., exceeded a share exp(-3.50^2 / 2) = 2.2e-3 of the time, ten
+times a normal's 2.3e-4 at 3.5 s.d. (``tests/test_ripple_detector.py``
+holds it to ``scipy.stats.rayleigh``). The channels' mean, where the
+background is partly shared, is narrower (its robust s.d. about 0.6 on
+the simulated rig's 8 channels) and skewed to the right; its excursions
+above the threshold are what a false detection at rest is made of: the
+shared background rising on every channel at once, so channel agreement
+does not tell them from a ripple, but briefly. The envelope of noise in
+a band of RMS width B stays above a high level u (in its s.d.) for about
+1 / (sqrt(2 pi) B u) on average (Rice 1944, 1945), 2-3 ms for the ripple
+band; a ripple's envelope stays above it for tens of ms. Hence a minimum
+duration of 4 ms by default: the longest the latency allows (every ms of
+it is a ms of latency), chosen on ``bench/ripples.py``'s seeds 1-6 and
+measured on seeds 7-12 (see DEVELOPERS.md).
+
+References
+----------
+S. O. Rice (1944, 1945), "Mathematical analysis of random noise", Bell
+System Technical Journal 23:282-332 and 24:46-156 (the envelope's
+distribution and its crossings of a level; citation from memory).
+
 Each :class:`RippleDetection` carries its onset in data time and the
 latency of the detection: from the onset to the end of the chunk that
 completed it. Nothing here reads a clock or a socket.
@@ -112,9 +137,10 @@ class RippleDetector:
         Onset threshold on the channels' mean z-score.
     end_sd : float, default 1.0
         The event ends when the mean z-score falls below this.
-    min_duration_s : float, default 0.002
+    min_duration_s : float, default 0.004
         The mean z-score must stay above ``threshold_sd`` this long before a
-        detection; every ms here is a ms of latency.
+        detection; every ms here is a ms of latency, and each filters out
+        the background's brief excursions (see the module docstring).
     min_channels : int, default 1
         Channels that must each be above ``channel_sd`` at the detection.
     channel_sd : float, default 2.0
@@ -152,7 +178,7 @@ class RippleDetector:
 
     def __init__(self, rate_hz: float, n_channels: int, *, band_hz: tuple[float, float] = (150.0, 250.0),
                  filter_order: int = 2, threshold_sd: float = 3.5, end_sd: float = 1.0,
-                 min_duration_s: float = 0.002, min_channels: int = 1, channel_sd: float = 2.0,
+                 min_duration_s: float = 0.004, min_channels: int = 1, channel_sd: float = 2.0,
                  baseline_window_s: float = 60.0, baseline_rate_hz: float = 100.0, warm_up_s: float = 10.0,
                  hold_s: float = 0.1, settle_s: float = 0.05) -> None:
         if not (math.isfinite(rate_hz) and rate_hz > 0):
