@@ -258,3 +258,11 @@ def test_a_log_odds_rule_judges_its_row_and_zone_beneath_the_caps():
     assert judge(3.215, 0, 0.0, 0.0) == [] and judge(3.230, 1, 5.0, -5.0) == []  # the caps stay beneath
     assert bank.counters["refractory"] == 1
     assert judge(5.015, 0, 0.0, 0.0) == [] and judge(5.030, 1, np.nan, 2.9) == []
+    assert judge(5.045, 2, 3.0, -3.0) == []  # the odds must exceed the threshold
+    even = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_log_odds=0.0, min_bins=2)], ["goal"])
+    even.arm(0.0)
+    # At 0: fires once towards is more likely than not (a tie is not enough).
+    assert even.content(1.015, 0, 1, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0, np.zeros((2, 1))) == []
+    assert even.content(1.030, 1, 2, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0, np.zeros((2, 1))) == []
+    assert len(even.content(1.045, 2, 3, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0,
+                            np.array([[0.2], [-0.2]]))) == 1

@@ -68,9 +68,10 @@ class TriggerRule:
     min_correlation: float = 0.6
     #: "replay_towards" / "replay_away": when set, the rule judges the sequence filter instead of
     #: the rank correlation: it fires once the posterior log odds (natural log) that the replay
-    #: moves towards (away from) the zone, rather than otherwise, reach this, with even prior odds
-    #: (the [ripples] content_speed_cm_s, content_slack_cm, content_stray_p settings; every bin
-    #: so far weighed by its whole likelihood). Positive; 3 asks for odds of 20 to 1.
+    #: moves towards (away from) the zone, rather than otherwise, exceed this, with even prior
+    #: odds (the [ripples] content_speed_cm_s, content_slack_cm, content_stray_p settings; every
+    #: bin so far weighed by its whole likelihood). At least 0: 0 fires as soon as the sequence is
+    #: more likely than not after min_bins bins; 3 asks for odds of 20 to 1.
     min_log_odds: float | None = None
 
     def __post_init__(self) -> None:
@@ -113,8 +114,8 @@ class TriggerRule:
                 odds = float(self.min_log_odds)
             except (TypeError, ValueError):
                 odds = math.nan
-            if not 0.0 < odds <= 50.0:
-                raise ValueError(f"{owner}: min_log_odds must be a number in (0, 50] (natural log), "
+            if not 0.0 <= odds <= 50.0:
+                raise ValueError(f"{owner}: min_log_odds must be a number in [0, 50] (natural log), "
                                  f"got {self.min_log_odds!r}")
             object.__setattr__(self, "min_log_odds", odds)
         lo = _optional_speed(owner, "min_speed_cm_s", self.min_speed_cm_s)

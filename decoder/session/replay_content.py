@@ -45,9 +45,15 @@ As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
 
 * the posterior mass in the zone averaged over the event's bins so far;
+* the posterior log odds that the replay moves towards the zone, and away
+  from it, from the sequence filter
+  (:class:`decoder.inference.sequence_filter.SequenceFilter`): every bin of
+  the event so far weighed by its whole likelihood over the distance to the
+  zone, against a replay moving the other way or no sequence at all; what a
+  sequence rule with ``min_log_odds`` judges (``ContentBin.log_odds``);
 * Kendall's rank correlation (tau-b) between the bins' times and their
   decoded distance to the zone (the posterior median of the distance): the
-  measure the sequence rules judge. A rank correlation, because one bin
+  measure a sequence rule without ``min_log_odds`` judges. A rank correlation, because one bin
   decoded far away (a bin where the resting animal's own place cells
   outnumber the replay's spikes) changes at most ``n - 1`` of its
   ``n (n - 1) / 2`` pairs, where it would swing a least-squares line; the

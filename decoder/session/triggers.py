@@ -62,7 +62,7 @@ are judged by ``TriggerBank.content`` on each content bin of a ripple
 detected at rest, from the event's measures so far: the zone's posterior mass
 averaged over the bins (``>= min_mass``); for a sequence rule with
 ``min_log_odds``, the posterior log odds that the replay moves towards (away
-from) the zone (``decoder.inference.sequence_filter``, ``>= min_log_odds``);
+from) the zone (``decoder.inference.sequence_filter``, ``> min_log_odds``);
 without it, Kendall's rank correlation (tau-b) of bin time and decoded distance
 to the zone (``<= -min_correlation`` towards, ``>= min_correlation`` away);
 each once the measures cover ``min_bins`` bins (bins with spikes), the speed
@@ -529,7 +529,7 @@ class TriggerBank:
                 holds = mean_mass[zi] >= rule.min_mass
             elif rule.min_log_odds is not None:
                 row = 0 if rule.kind == "replay_towards" else 1
-                holds = log_odds is not None and log_odds[row, zi] >= rule.min_log_odds
+                holds = log_odds is not None and log_odds[row, zi] > rule.min_log_odds
             elif rule.kind == "replay_towards":
                 holds = correlation[zi] <= -rule.min_correlation
             else:
