@@ -40,7 +40,14 @@ chunks of ``chunk_s`` as an acquisition system would:
   15 ms bins from 20 ms before its onset to its LFP offset, the resting
   animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
-  one rule, "a sequence moving towards the goal": towards a zone of one
+  one rule, "a sequence moving towards the goal" (by default on the sequence
+  filter's posterior log odds, decoder.inference.sequence_filter: fires once
+  they exceed ``--min-log-odds`` after ``--min-bins-log-odds`` bins with
+  spikes; ``--measure rank``: on Kendall's tau-b, ``--min-correlation`` after
+  ``--min-bins``; the other measure's rule judges the same bins in a bank of
+  its own, its figures under ``rank_content_*`` or ``log_odds_content_*``,
+  and ``content_accuracy_fire_always`` is what firing on every event
+  scores): towards a zone of one
   bin's radius at the well at (0, 80), which holds the well's own bin and no
   other. The experimenter's "towards the well" means towards the well, and
   so does the truth; a wider zone (12 cm until now) puts the last bins of a
@@ -58,10 +65,12 @@ chunks of ``chunk_s`` as an acquisition system would:
   when it fired on a true sequence, ms after the offline onset (an event's
   time: the deciding bin's end, or the ripple's detection for a bin that
   ended before it). ``--events`` prints each replay's truth,
-  draw, approach and length, the decision and when, and the rank
-  correlation and its z score bin by bin. ``content_bin_cpu_ms_p50/p99``:
+  draw, approach and length, the decision and when, and the
+  log odds and tau-b bin by bin. ``content_bin_cpu_ms_p50/p99``:
   the thread's CPU time per content bin decoded as the spikes close it
-  (decoding and judging; bins an LFP chunk completes are left out).
+  (decoding, the sequence filter and judging; bins an LFP chunk completes
+  are left out); ``sequence_step_us_p50/p99``: the filter's step alone, and
+  against its numpy twin on the same bins (``sequence_step_kernel_vs_numpy_p50``).
 
 * ``--marks``: the replay content a second time, on the same session
   (``configs/w_maze_ripples_marks.toml`` simulates the same cells, path, LFP
@@ -97,6 +106,7 @@ from decoder.config import SafetyCaps, TriggerRule, load_config  # noqa: E402
 from decoder.encoding.place_model import PlaceModel  # noqa: E402
 from decoder.messages import GroupAnnounce, Heartbeat, MarkedSpikes, SpikeBatch, TrackerFrames  # noqa: E402
 from decoder.session.marks import MarkStream  # noqa: E402
+from decoder.session.replay_content import ReplayContent  # noqa: E402
 from decoder.session.ripples import ContentOutput, RippleStream  # noqa: E402
 from decoder.session.tracking import TrackHistory  # noqa: E402
 from decoder.session.triggers import TriggerBank  # noqa: E402
@@ -257,6 +267,29 @@ def _loose_bank(rule: TriggerRule) -> TriggerBank:
     bank = TriggerBank([rule], ["goal"], SafetyCaps(refractory_s=0.05, max_per_minute=10_000, max_per_session=100_000))
     bank.arm(0.0)
     return bank
+
+
+def sequence_cost(content: ReplayContent, bins: list) -> dict:
+    """The sequence filter's step, compiled kernel against its numpy twin, over the run's content bins.
+
+    Per bin, the thread's CPU time of the step alone (both backends on the same posteriors, event by event).
+    """
+    out = {}
+    for backend in ("numba", "numpy"):
+        f = content.sequence.copy(backend)
+        f.step(bins[0].content.posterior, True)  # compiled before timing
+        times = []
+        for b in bins:
+            if b.content.index == 0:
+                f.reset()
+            c0 = time.thread_time_ns()
+            f.step(b.content.posterior, b.content.n_spikes >= content.min_spikes)
+            times.append((time.thread_time_ns() - c0) * 1e-3)
+        out[backend] = np.array(times)
+    return {"sequence_step_us_p50": float(np.median(out["numba"])),
+            "sequence_step_us_p99": float(np.percentile(out["numba"], 99)),
+            "sequence_step_numpy_us_p50": float(np.median(out["numpy"])),
+            "sequence_step_kernel_vs_numpy_p50": float(np.median(out["numba"]) / np.median(out["numpy"]))}
 
 
 def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place_cells: int,
@@ -430,6 +463,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place
         "content_input": "marks" if marks else "sorted units",
         "content_bin_cpu_ms_p50": float(np.median(bin_cpu_ms)) if bin_cpu_ms else None,
         "content_bin_cpu_ms_p99": float(np.percentile(bin_cpu_ms, 99)) if bin_cpu_ms else None,
+        **(sequence_cost(stream.content, bins) if bins else {}),
     }
 
 

@@ -97,6 +97,13 @@ def test_kernel_and_numpy_twin_agree(stray_p):
         states.append((alpha, log_lik))
     np.testing.assert_allclose(states[0][0], states[1][0], rtol=1e-12, atol=1e-300)
     np.testing.assert_allclose(states[0][1], states[1][1], rtol=1e-12)
+    # The filter's own copy on the twin (bench/ripples.py's baseline) follows the same path.
+    twin = f.copy("numpy")
+    for k, p in enumerate(_posteriors(np.random.default_rng(1), valid, 9)):
+        f.step(p, k != 4)
+        twin.step(p, k != 4)
+    np.testing.assert_allclose(twin.log_likelihood, f.log_likelihood, rtol=1e-12)
+    np.testing.assert_allclose(f.log_likelihood, states[0][1], rtol=1e-12)
 
 
 class _GivenEmissions(BaseHMM):

@@ -48,6 +48,7 @@ not from a bench.
 
 from __future__ import annotations
 
+import copy
 import math
 
 import numpy as np
@@ -176,6 +177,17 @@ class SequenceFilter:
                      self.inv_count_, self.start_, self.n_levels_, self.stray_p, self.step_p_, self.step_lo_,
                      self.stay_p_, STAY_WEIGHT, self._alpha, self._log_lik, self._scratch)
         self.n_steps += 1
+
+    def copy(self, backend: str | None = None) -> SequenceFilter:
+        """The same filter, reset, on ``backend`` (``"numba"`` or ``"numpy"``; None keeps this one's)."""
+        twin = copy.copy(self)
+        if backend is not None:
+            if backend not in ("numba", "numpy"):
+                raise ValueError(f"backend must be 'numba' or 'numpy', got {backend!r}")
+            twin._kernel = sequence_step if backend == "numba" else sequence_step_numpy
+        twin._alpha, twin._log_lik, twin._scratch = (a.copy() for a in (self._alpha, self._log_lik, self._scratch))
+        twin.reset()
+        return twin
 
     @property
     def log_likelihood(self) -> np.ndarray:
