@@ -230,6 +230,19 @@ def test_a_bin_with_too_few_spikes_passes_without_its_evidence():
     np.testing.assert_allclose(f.log_odds(), bins[-1].log_odds, rtol=1e-12)
 
 
+def test_no_zones_and_a_zone_off_the_decoded_positions():
+    none = SequenceFilter(np.zeros((0, 4)), np.ones(4, bool), level_cm=5.0, bin_s=0.015)
+    none.step(np.full(4, 0.25), True)
+    assert none.log_odds().shape == (2, 0)
+    # A zone whose positions the decoder never decodes (NaN distances) has no odds: no rule can fire on it.
+    off = SequenceFilter(np.array([[np.nan] * 4, [0.0, 5.0, 10.0, 15.0]]), np.ones(4, bool), level_cm=5.0,
+                         bin_s=0.015)
+    for x in (3, 2, 1):
+        off.step(np.eye(4)[x] * 0.97 + 0.01, True)
+    odds = off.log_odds()
+    assert np.all(np.isnan(odds[:, 0])) and odds[0, 1] > 0
+
+
 def test_settings_are_checked():
     d = np.zeros((1, 4))
     for kw, what in (({"speed_cm_s": (500, 100)}, "speed_cm_s"), ({"slack_cm": -1}, "slack_cm"),

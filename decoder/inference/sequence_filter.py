@@ -144,7 +144,7 @@ class SequenceFilter:
         on = valid[None, :] & np.isfinite(d)
         level = np.where(on, np.floor(np.nan_to_num(d) / level_cm + 0.5), -1).astype(np.int64)
         self.n_levels_ = np.array([row.max() + 1 if (row >= 0).any() else 0 for row in level], np.int64)
-        width = max(1, int(self.n_levels_.max()))
+        width = max(1, int(self.n_levels_.max(initial=0)))  # a session may have no zones at all
         count = np.zeros((d.shape[0], width))
         for z, row in enumerate(level):
             count[z] = np.bincount(row[row >= 0], minlength=width)
