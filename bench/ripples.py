@@ -270,7 +270,7 @@ def _loose_bank(rule: TriggerRule) -> TriggerBank:
 
 
 def sequence_cost(content: ReplayContent, bins: list) -> dict:
-    """The sequence filter's step, compiled kernel against its numpy twin, over the run's content bins.
+    """The sequence filter's step (with its log odds), compiled kernel against its numpy twin, over the run's bins.
 
     Per bin, the thread's CPU time of the step alone (both backends on the same posteriors, event by event).
     """

@@ -90,13 +90,23 @@ def test_kernel_and_numpy_twin_agree(stray_p):
     for kernel in (sequence_step, sequence_step_numpy):
         alpha = np.repeat(f.start_[:, None, :], 3, axis=1).copy()
         log_lik = np.zeros((2, 3))
+        log_odds = np.zeros((2, 2))
         scratch = np.empty((2, f.start_.shape[1]))
         for k, p in enumerate(_posteriors(np.random.default_rng(1), valid, 9)):
             kernel(p, k != 4, k > 0, f.level_of_bin_, f.inv_count_, f.start_, f.n_levels_, stray_p, f.step_p_,
-                   f.step_lo_, f.stay_p_, STAY_WEIGHT, alpha, log_lik, scratch)
-        states.append((alpha, log_lik))
+                   f.step_lo_, f.stay_p_, STAY_WEIGHT, alpha, log_lik, log_odds, scratch)
+        states.append((alpha, log_lik, log_odds))
     np.testing.assert_allclose(states[0][0], states[1][0], rtol=1e-12, atol=1e-300)
     np.testing.assert_allclose(states[0][1], states[1][1], rtol=1e-12)
+    np.testing.assert_allclose(states[0][2], states[1][2], rtol=1e-10, atol=1e-12)
+    # A zone where no hypothesis explains the bins has NaN odds; one where only towards does, +inf.
+    for kernel in (sequence_step, sequence_step_numpy):
+        log_lik = np.array([[-np.inf, -np.inf, -np.inf], [-1.0, -np.inf, -np.inf]])
+        log_odds = np.zeros((2, 2))
+        kernel(np.full(valid.size, 1.0 / valid.size), False, True, f.level_of_bin_, f.inv_count_, f.start_,
+               f.n_levels_, 0.1, f.step_p_, f.step_lo_, f.stay_p_, STAY_WEIGHT,
+               np.repeat(f.start_[:, None, :], 3, axis=1).copy(), log_lik, log_odds, np.empty((2, f.start_.shape[1])))
+        assert np.all(np.isnan(log_odds[:, 0])) and log_odds[0, 1] == np.inf and log_odds[1, 1] == -np.inf
     # The filter's own copy on the twin (bench/ripples.py's baseline) follows the same path.
     twin = f.copy("numpy")
     for k, p in enumerate(_posteriors(np.random.default_rng(1), valid, 9)):

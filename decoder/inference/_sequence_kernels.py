@@ -66,8 +66,19 @@ def _predict_shift(alpha, n_levels, step_p, step_lo, sign, out):
 
 
 @numba.njit(cache=True)
+def _against_the_rest(h, o1, o2):
+    """``h - log((exp(o1) + exp(o2)) / 2)``: log odds of one hypothesis against the other two, even priors."""
+    if h != h or o1 != o1 or o2 != o2:
+        return math.nan
+    m = max(o1, o2)
+    if m == -math.inf:
+        return math.nan if h == -math.inf else math.inf
+    return h - (m + math.log(math.exp(o1 - m) + math.exp(o2 - m)) - math.log(2.0))
+
+
+@numba.njit(cache=True)
 def sequence_step(posterior, observed, predict, level_of_bin, inv_count, start, n_levels, stray_p,
-                  step_p, step_lo, stay_p, stay_weight, alpha, log_lik, scratch):
+                  step_p, step_lo, stay_p, stay_weight, alpha, log_lik, log_odds, scratch):
     """Advance every zone's three forward filters by one content bin, in place.
 
     Parameters
@@ -100,6 +111,9 @@ def sequence_step(posterior, observed, predict, level_of_bin, inv_count, start, 
         The normalised forward vectors (in/out).
     log_lik : ndarray of float64, shape (n_zones, 3)
         Each hypothesis's log-likelihood so far (in/out; -inf once a hypothesis cannot explain the bins).
+    log_odds : ndarray of float64, shape (2, n_zones)
+        Out: the log odds of towards (row 0) and of away (row 1) against the other two, even prior odds
+        (NaN where no hypothesis explains the bins).
     scratch : ndarray of float64, shape (2, L)
     """
     m = (stay_p.size - 1) // 2
@@ -137,10 +151,12 @@ def sequence_step(posterior, observed, predict, level_of_bin, inv_count, start, 
                 log_lik[z, h] += math.log(c)
             else:
                 log_lik[z, h] = -math.inf
+        log_odds[0, z] = _against_the_rest(log_lik[z, 0], log_lik[z, 1], log_lik[z, 2])
+        log_odds[1, z] = _against_the_rest(log_lik[z, 1], log_lik[z, 0], log_lik[z, 2])
 
 
 def sequence_step_numpy(posterior, observed, predict, level_of_bin, inv_count, start, n_levels, stray_p,
-                        step_p, step_lo, stay_p, stay_weight, alpha, log_lik, scratch):
+                        step_p, step_lo, stay_p, stay_weight, alpha, log_lik, log_odds, scratch):
     """The numpy twin of :func:`sequence_step`: the same arguments, the same result."""
     m = (stay_p.size - 1) // 2
     for z in range(level_of_bin.shape[0]):
@@ -174,3 +190,7 @@ def sequence_step_numpy(posterior, observed, predict, level_of_bin, inv_count, s
                 log_lik[z, h] += np.log(c)
             else:
                 log_lik[z, h] = -np.inf
+        for row, (h, o1, o2) in enumerate(((0, 1, 2), (1, 0, 2))):
+            mine, rest = log_lik[z, h], np.logaddexp(log_lik[z, o1], log_lik[z, o2]) - np.log(2.0)
+            both_impossible = mine == -np.inf and rest == -np.inf
+            log_odds[row, z] = np.nan if both_impossible or np.isnan(mine + rest) else mine - rest

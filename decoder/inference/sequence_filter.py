@@ -158,6 +158,7 @@ class SequenceFilter:
         assert stay_lo == -(self.stay_p_.size - 1) // 2
         self._alpha = np.zeros((d.shape[0], len(HYPOTHESES), width))
         self._log_lik = np.zeros((d.shape[0], len(HYPOTHESES)))
+        self._log_odds = np.zeros((2, d.shape[0]))
         self._scratch = np.empty((2, width))
         self.reset()
 
@@ -166,6 +167,7 @@ class SequenceFilter:
         self._alpha[:] = self.start_[:, None, :]
         self._log_lik[:] = 0.0
         self._log_lik[self.n_levels_ == 0] = math.nan
+        self._log_odds[:] = np.where(self.n_levels_ == 0, math.nan, 0.0)
         self.n_steps = 0
 
     def step(self, posterior: np.ndarray, observed: bool) -> None:
@@ -175,7 +177,7 @@ class SequenceFilter:
         """
         self._kernel(np.asarray(posterior, np.float64), bool(observed), self.n_steps > 0, self.level_of_bin_,
                      self.inv_count_, self.start_, self.n_levels_, self.stray_p, self.step_p_, self.step_lo_,
-                     self.stay_p_, STAY_WEIGHT, self._alpha, self._log_lik, self._scratch)
+                     self.stay_p_, STAY_WEIGHT, self._alpha, self._log_lik, self._log_odds, self._scratch)
         self.n_steps += 1
 
     def copy(self, backend: str | None = None) -> SequenceFilter:
@@ -185,7 +187,8 @@ class SequenceFilter:
             if backend not in ("numba", "numpy"):
                 raise ValueError(f"backend must be 'numba' or 'numpy', got {backend!r}")
             twin._kernel = sequence_step if backend == "numba" else sequence_step_numpy
-        twin._alpha, twin._log_lik, twin._scratch = (a.copy() for a in (self._alpha, self._log_lik, self._scratch))
+        twin._alpha, twin._log_lik, twin._log_odds, twin._scratch = (
+            a.copy() for a in (self._alpha, self._log_lik, self._log_odds, self._scratch))
         twin.reset()
         return twin
 
@@ -199,8 +202,4 @@ class SequenceFilter:
 
         0 before any bin; NaN for a zone without positions or where no hypothesis explains the bins.
         """
-        ll = self._log_lik
-        with np.errstate(invalid="ignore"):
-            towards = ll[:, 0] - np.logaddexp(ll[:, 1], ll[:, 2]) + math.log(2.0)
-            away = ll[:, 1] - np.logaddexp(ll[:, 0], ll[:, 2]) + math.log(2.0)
-        return np.vstack([towards, away])
+        return self._log_odds.copy()
