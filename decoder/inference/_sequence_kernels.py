@@ -68,7 +68,7 @@ def _predict_shift(alpha, n_levels, step_p, step_lo, sign, out):
 @numba.njit(cache=True)
 def _against_the_rest(h, o1, o2):
     """``h - log((exp(o1) + exp(o2)) / 2)``: log odds of one hypothesis against the other two, even priors."""
-    if h != h or o1 != o1 or o2 != o2:
+    if math.isnan(h) or math.isnan(o1) or math.isnan(o2):
         return math.nan
     m = max(o1, o2)
     if m == -math.inf:
