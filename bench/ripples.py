@@ -40,7 +40,14 @@ chunks of ``chunk_s`` as an acquisition system would:
   15 ms bins from 20 ms before its onset to its LFP offset, the resting
   animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
-  one rule, "a sequence moving towards the goal": towards a zone of one
+  one rule, "a sequence moving towards the goal" (by default on the sequence
+  filter's posterior log odds, decoder.inference.sequence_filter: fires once
+  they exceed ``--min-log-odds`` after ``--min-bins-log-odds`` bins with
+  spikes; ``--measure rank``: on Kendall's tau-b, ``--min-correlation`` after
+  ``--min-bins``; the other measure's rule judges the same bins in a bank of
+  its own, its figures under ``rank_content_*`` or ``log_odds_content_*``,
+  and ``content_accuracy_fire_always`` is what firing on every event
+  scores): towards a zone of one
   bin's radius at the well at (0, 80), which holds the well's own bin and no
   other. The experimenter's "towards the well" means towards the well, and
   so does the truth; a wider zone (12 cm until now) puts the last bins of a
@@ -58,10 +65,12 @@ chunks of ``chunk_s`` as an acquisition system would:
   when it fired on a true sequence, ms after the offline onset (an event's
   time: the deciding bin's end, or the ripple's detection for a bin that
   ended before it). ``--events`` prints each replay's truth,
-  draw, approach and length, the decision and when, and the rank
-  correlation and its z score bin by bin. ``content_bin_cpu_ms_p50/p99``:
+  draw, approach and length, the decision and when, and the
+  log odds and tau-b bin by bin. ``content_bin_cpu_ms_p50/p99``:
   the thread's CPU time per content bin decoded as the spikes close it
-  (decoding and judging; bins an LFP chunk completes are left out).
+  (decoding, the sequence filter and judging; bins an LFP chunk completes
+  are left out); ``sequence_step_us_p50/p99``: the filter's step alone, and
+  against its numpy twin on the same bins (``sequence_step_kernel_vs_numpy_p50``).
 
 * ``--marks``: the replay content a second time, on the same session
   (``configs/w_maze_ripples_marks.toml`` simulates the same cells, path, LFP
@@ -81,6 +90,7 @@ chunk_p99_ms <= 1, content_accuracy >= 0.85, content_decision_ms_p50 <= 60.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import sys
 import time
@@ -96,6 +106,7 @@ from decoder.config import SafetyCaps, TriggerRule, load_config  # noqa: E402
 from decoder.encoding.place_model import PlaceModel  # noqa: E402
 from decoder.messages import GroupAnnounce, Heartbeat, MarkedSpikes, SpikeBatch, TrackerFrames  # noqa: E402
 from decoder.session.marks import MarkStream  # noqa: E402
+from decoder.session.replay_content import ReplayContent  # noqa: E402
 from decoder.session.ripples import ContentOutput, RippleStream  # noqa: E402
 from decoder.session.tracking import TrackHistory  # noqa: E402
 from decoder.session.triggers import TriggerBank  # noqa: E402
@@ -235,15 +246,65 @@ def chunk_cost(chunk_s: float, seed: int) -> dict:
 
 #: The goal well of the content run (cm).
 GOAL_CM = (0.0, 80.0)
+#: The log-odds rule's threshold (natural log) and its least bins with spikes: chosen on seeds 1-3.
+MIN_LOG_ODDS = 0.0
+MIN_BINS_LOG_ODDS = 2
 
 
-def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min_correlation: float,
-                place_cells: int, show_events: bool = False, marks: bool = False,
-                goal_radius_cm: float | None = None, events_out: list | None = None) -> dict:
-    """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
+#: The sequence rules the content run can judge: the sequence filter's log odds, or the rank correlation.
+MEASURES = ("log_odds", "rank")
 
-    With ``marks``, the same session (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and
-    replays) reaches the decoder as tetrode marks alone, learned by the session's ``MarkStream``.
+
+def _rule(measure: str, min_bins: int, min_correlation: float, min_log_odds: float) -> TriggerRule:
+    """The towards-the-goal rule on one measure."""
+    if measure == "log_odds":
+        return TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
+                           min_log_odds=min_log_odds)
+    return TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
+                       min_correlation=min_correlation)
+
+
+def _loose_bank(rule: TriggerRule) -> TriggerBank:
+    """Caps loose enough that every decision is seen: this measures the classification, not the caps."""
+    bank = TriggerBank([rule], ["goal"], SafetyCaps(refractory_s=0.05, max_per_minute=10_000, max_per_session=100_000))
+    bank.arm(0.0)
+    return bank
+
+
+def sequence_cost(content: ReplayContent, bins: list) -> dict:
+    """The sequence filter's step (with its log odds), compiled kernel against its numpy twin, over the run's bins.
+
+    Per bin, the thread's CPU time of the step alone (both backends on the same posteriors, event by event).
+    """
+    out = {}
+    for backend in ("numba", "numpy"):
+        f = content.sequence.copy(backend)
+        f.step(bins[0].content.posterior, True)  # compiled before timing
+        times = []
+        for b in bins:
+            if b.content.index == 0:
+                f.reset()
+            c0 = time.thread_time_ns()
+            f.step(b.content.posterior, b.content.n_spikes >= content.min_spikes)
+            times.append((time.thread_time_ns() - c0) * 1e-3)
+        out[backend] = np.array(times)
+    return {"sequence_step_us_p50": float(np.median(out["numba"])),
+            "sequence_step_us_p99": float(np.percentile(out["numba"], 99)),
+            "sequence_step_numpy_us_p50": float(np.median(out["numpy"])),
+            "sequence_step_kernel_vs_numpy_p50": float(np.median(out["numba"]) / np.median(out["numpy"]))}
+
+
+def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place_cells: int,
+                show_events: bool = False, marks: bool = False, goal_radius_cm: float | None = None,
+                events_out: list | None = None, ripples_overrides: dict | None = None) -> dict:
+    """Replay content on the W maze: the towards-the-goal rules against the simulator's truth.
+
+    ``rules``: measure name to its rule; the first judges inside the session's ``RippleStream`` (its
+    cost is in ``content_bin_cpu_ms_*``), the others judge the same content bins in banks of their own,
+    for a comparison on the same events. With ``marks``, the same session
+    (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and replays) reaches the decoder as
+    tetrode marks alone, learned by the session's ``MarkStream``. ``ripples_overrides``: ``[ripples]``
+    settings replaced (the sequence filter's, from the command line).
     """
     config = load_config(ROOT / "configs" / "w_maze_ripples.toml")
     if marks:
@@ -251,6 +312,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         config = load_config(ROOT / "configs" / "w_maze_ripples_marks.toml")
         same = {k: v for k, v in config.simulation.items() if k != "marks"} == sorted_config.simulation
         assert same, "the marks scenario must simulate the sorted one's session"
+    ripple_settings = dataclasses.replace(config.ripples, **(ripples_overrides or {}))
     env = config.environment
     settings = SimulationSettings.from_dict(dict(config.simulation, n_place_cells=place_cells,
                                                  replay={"goal_cm": list(GOAL_CM)}))
@@ -265,14 +327,12 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
     radius = env.bin_cm if goal_radius_cm is None else goal_radius_cm
     goal = CircleZone("goal", GOAL_CM, radius)
     masks = zone_masks([goal], env)
-    # Caps loose enough that every decision is seen: this measures the classification, not the caps.
-    bank = TriggerBank([TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
-                                    min_correlation=min_correlation)], ["goal"],
-                       SafetyCaps(refractory_s=0.05, max_per_minute=10_000, max_per_session=100_000))
-    bank.arm(0.0)
+    names = list(rules)
+    banks = {name: _loose_bank(rule) for name, rule in rules.items()}
     tracked = TrackHistory()
-    stream = RippleStream(config.ripples, bank, tracked)
+    stream = RippleStream(ripple_settings, banks[names[0]], tracked)
     lfp, bins, bin_cpu_ms = [], [], []
+    detected: dict[float, float] = {}
     watermark = -np.inf
     learning = True
     for msg in session.messages(until_s=duration_s):
@@ -311,11 +371,26 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
                 bins.extend(due)
         elif isinstance(msg, LfpChunk):
             lfp.append(msg.samples_uv())
-            bins.extend(out for out in stream.take(msg, watermark) if isinstance(out, ContentOutput))
+            for out in stream.take(msg, watermark):
+                if isinstance(out, ContentOutput):
+                    bins.append(out)
+                elif not out.moving:
+                    detected[out.detection.onset_s] = out.t_s
+    # The other rules judge the same bins, each at the time the stream judged them (the bin's end, or the
+    # ripple's detection for a bin that ended before it).
+    fired = {names[0]: np.array([e.t_s for b in bins for e in b.events])}
+    for name in names[1:]:
+        bank, times = banks[name], []
+        for b in bins:
+            c = b.content
+            t = max(b.t_s, detected.get(c.onset_s, -np.inf))
+            times.extend(e.t_s for e in bank.content(t, c.index, c.n_used, c.mean_mass, c.rank_correlation,
+                                                        b.tracked_xy_cm, 0.0, 0.0, c.log_odds))
+        fired[name] = np.array(times)
     x = np.concatenate(lfp)
     rate = settings.lfp.rate_hz
     ref = offline_ripples(x, rate)
-    fired = np.array([e.t_s for b in bins for e in b.events])
+    min_spikes = ripple_settings.content_min_spikes
     rows = []
     for rep in session.replay.replays:
         r = rep.ripple
@@ -325,48 +400,72 @@ def content_run(duration_s: float, learn_s: float, seed: int, min_bins: int, min
         if not match.size:
             continue  # the offline reference did not find this ripple
         onset = float(ref.onset_s[match[0]])
-        hit = fired[(fired >= onset - EARLY_S) & (fired <= r.end_s + config.ripples.content_max_s)]
         mine = [b for b in bins if r.start_s - EARLY_S <= b.content.onset_s <= r.end_s]
-        rows.append({"onset_s": onset, "truth": rep.towards_goal, "drawn_to_goal": rep.to_goal,
-                     "approach_cm": rep.goal_distance_cm[0] - rep.goal_distance_cm[1], "length_cm": rep.length_cm,
-                     "said": bool(hit.size), "decision_ms": (hit[0] - onset) * 1e3 if hit.size else np.nan,
-                     "bins": len(mine), "used": mine[-1].content.n_used if mine else 0,
-                     "rest_goal_cm": float(np.hypot(*(mine[0].tracked_xy_cm - np.asarray(GOAL_CM)))) if mine else np.nan,
-                     "bin_end_s": [b.t_s for b in mine], "n_used": [b.content.n_used for b in mine],
-                     "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
-                     "z": [round(float(b.content.rank_z[0]), 1) for b in mine]})
+        row = {"onset_s": onset, "truth": rep.towards_goal, "drawn_to_goal": rep.to_goal,
+               "approach_cm": rep.goal_distance_cm[0] - rep.goal_distance_cm[1], "length_cm": rep.length_cm,
+               "bins": len(mine), "used": mine[-1].content.n_used if mine else 0,
+               "rest_goal_cm": float(np.hypot(*(mine[0].tracked_xy_cm - np.asarray(GOAL_CM)))) if mine else np.nan,
+               "detected_s": detected.get(mine[0].content.onset_s, np.nan) if mine else np.nan,
+               "bin_end_s": [b.t_s for b in mine], "n_used": [b.content.n_used for b in mine],
+               "n_spikes": [b.content.n_spikes for b in mine],
+               "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
+               "z": [round(float(b.content.rank_z[0]), 1) for b in mine],
+               "log_odds": [round(float(b.content.log_odds[0, 0]), 2) for b in mine]}
+        if events_out is not None:
+            # Each bin's posterior, for looking at the filter's settings offline (on the choosing seeds only).
+            row["observed"] = [b.content.n_spikes >= min_spikes for b in mine]
+            row["posterior"] = [np.round(b.content.posterior, 6).tolist() for b in mine]
+        for name in names:
+            hit = fired[name][(fired[name] >= onset - EARLY_S) & (fired[name] <= r.end_s + ripple_settings.content_max_s)]
+            row[f"said_{name}"] = bool(hit.size)
+            row[f"decision_ms_{name}"] = (hit[0] - onset) * 1e3 if hit.size else np.nan
+        rows.append(row)
+    first = names[0]
     if show_events:
-        print("onset_s   truth    drawn   approach/length_cm  said     ms  bins used  tau-b per bin; its z", file=sys.stderr)
+        print(f"onset_s   truth    drawn   approach/length_cm  said({first}) ms  bins used  "
+              f"log odds towards per bin; tau-b", file=sys.stderr)
         for e in rows:
             print(f"{e['onset_s']:8.2f}  {'towards' if e['truth'] else 'other':7s}  "
                   f"{'goal' if e['drawn_to_goal'] else 'random':6s}  {e['approach_cm']:6.0f}/{e['length_cm']:4.0f}"
-                  f"         {'yes' if e['said'] else 'no':3s}  {e['decision_ms']:5.0f}  {e['bins']:4d} {e['used']:4d}  "
-                  f"{e['tau']}; {e['z']}", file=sys.stderr)
+                  f"         {'yes' if e[f'said_{first}'] else 'no':3s}  {e[f'decision_ms_{first}']:5.0f}  "
+                  f"{e['bins']:4d} {e['used']:4d}  {e['log_odds']}; {e['tau']}", file=sys.stderr)
     if events_out is not None:
         events_out.extend(rows)
     truth = np.array([e["truth"] for e in rows], bool)
-    said = np.array([e["said"] for e in rows], bool)
-    decisions = np.array([e["decision_ms"] for e in rows if e["truth"] and e["said"]])
-    result: dict = {
-        "content_accuracy": float(np.mean(truth == said)) if rows else None,
-        "content_accuracy_towards": float(np.mean(said[truth])) if truth.any() else None,
-        "content_accuracy_other": float(np.mean(~said[~truth])) if (~truth).any() else None,
-    }
-    for q in (10, 50, 90):
-        result[f"content_decision_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
+    result: dict = {}
+    for i, name in enumerate(names):
+        prefix = "content" if i == 0 else f"{name}_content"
+        said = np.array([e[f"said_{name}"] for e in rows], bool)
+        decisions = np.array([e[f"decision_ms_{name}"] for e in rows if e["truth"] and e[f"said_{name}"]])
+        result[f"{prefix}_accuracy"] = float(np.mean(truth == said)) if rows else None
+        result[f"{prefix}_accuracy_towards"] = float(np.mean(said[truth])) if truth.any() else None
+        result[f"{prefix}_accuracy_other"] = float(np.mean(~said[~truth])) if (~truth).any() else None
+        for q in (10, 50, 90):
+            result[f"{prefix}_decision_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
+    rule = rules[first]
     return {
         **result,
+        # Firing on every event, without looking at its content: the share of events truly towards the goal.
+        "content_accuracy_fire_always": float(np.mean(truth)) if rows else None,
         "content_events": len(rows),
         "content_towards_goal": int(truth.sum()),
         "content_drawn_to_goal": int(sum(e["drawn_to_goal"] for e in rows)),
-        "content_min_bins": min_bins,
-        "content_min_correlation": min_correlation,
+        "content_measure": first,
+        "content_compared": names[1:],
+        "content_min_bins": rule.min_bins,
+        "content_min_log_odds": rules["log_odds"].min_log_odds if "log_odds" in rules else None,
+        "content_min_correlation": rules["rank"].min_correlation if "rank" in rules else None,
+        "content_min_spikes": min_spikes,
+        "content_speed_cm_s": list(ripple_settings.content_speed_cm_s),
+        "content_slack_cm": ripple_settings.content_slack_cm,
+        "content_stray_p": ripple_settings.content_stray_p,
         "content_goal_radius_cm": radius,
-        "content_bin_ms": 1e3 * config.ripples.content_bin_s,
+        "content_bin_ms": 1e3 * ripple_settings.content_bin_s,
         "content_place_cells": place_cells,
         "content_input": "marks" if marks else "sorted units",
         "content_bin_cpu_ms_p50": float(np.median(bin_cpu_ms)) if bin_cpu_ms else None,
         "content_bin_cpu_ms_p99": float(np.percentile(bin_cpu_ms, 99)) if bin_cpu_ms else None,
+        **(sequence_cost(stream.content, bins) if bins else {}),
     }
 
 
@@ -427,12 +526,27 @@ def main(argv=None) -> int:
     parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
     parser.add_argument("--place-cells", type=int, default=150,
                         help="place cells of that run (50-150 units on a W track is common in the literature)")
+    parser.add_argument("--measure", choices=MEASURES, default="log_odds",
+                        help="what the towards-the-goal rule judges: the sequence filter's posterior log odds "
+                             "(log_odds) or Kendall's tau-b of time and median distance (rank); the other is "
+                             "judged on the same bins for comparison, its figures under <measure>_content_*")
+    parser.add_argument("--min-log-odds", type=float, default=MIN_LOG_ODDS,
+                        help=f"the log-odds rule's threshold (natural log; {MIN_LOG_ODDS}: chosen on seeds 1-3)")
+    parser.add_argument("--min-bins-log-odds", type=int, default=MIN_BINS_LOG_ODDS,
+                        help=f"content bins with spikes before the log-odds rule may fire "
+                             f"({MIN_BINS_LOG_ODDS}: chosen on seeds 1-3)")
     parser.add_argument("--min-bins", type=int, default=2,
-                        help="content bins with spikes before the rule may fire (2: chosen on seeds 1-3)")
-    parser.add_argument("--min-correlation", type=float, default=0.3, help="the rule's least |correlation|")
+                        help="content bins with spikes before the rank rule may fire (2: chosen on seeds 1-3)")
+    parser.add_argument("--min-correlation", type=float, default=0.3, help="the rank rule's least |tau-b|")
+    parser.add_argument("--speed-cm-s", type=float, nargs=2, default=None, metavar=("LOW", "HIGH"),
+                        help="[ripples] content_speed_cm_s for the sequence filter (default: the config's)")
+    parser.add_argument("--slack-cm", type=float, default=None, help="[ripples] content_slack_cm")
+    parser.add_argument("--stray-p", type=float, default=None, help="[ripples] content_stray_p")
+    parser.add_argument("--min-spikes", type=int, default=None, help="[ripples] content_min_spikes")
     parser.add_argument("--events", action="store_true", help="print each replay event's truth and decision")
     parser.add_argument("--events-json", default=None,
-                        help="write each replay event's truth, bins and decision here (a list per input)")
+                        help="write each replay event's truth, bins (with posteriors) and decisions here "
+                             "(a list per input)")
     parser.add_argument("--goal-radius-cm", type=float, default=None,
                         help="the goal zone's radius (default: one bin, the goal's own bin)")
     parser.add_argument("--marks", action="store_true",
@@ -452,14 +566,20 @@ def main(argv=None) -> int:
         result.update(chunk_cost(args.chunk_s, args.seed))
         return report(result, args.json)
     events: dict[str, list] = {"units": [], "marks": []}
-    result.update(content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins,
-                              args.min_correlation, args.place_cells, args.events,
-                              goal_radius_cm=args.goal_radius_cm, events_out=events["units"]))
-    if args.marks:
-        marks = content_run(args.content_duration_s, args.learn_s, args.seed, args.min_bins, args.min_correlation,
-                            args.place_cells, args.events, marks=True, goal_radius_cm=args.goal_radius_cm,
-                            events_out=events["marks"])
-        result.update({f"marks_{k}": v for k, v in marks.items()})
+    built = {"log_odds": _rule("log_odds", args.min_bins_log_odds, args.min_correlation, args.min_log_odds),
+             "rank": _rule("rank", args.min_bins, args.min_correlation, args.min_log_odds)}
+    rules = {args.measure: built[args.measure], **{k: v for k, v in built.items() if k != args.measure}}
+    overrides = {key: value for key, value in (("content_speed_cm_s", args.speed_cm_s),
+                                               ("content_slack_cm", args.slack_cm),
+                                               ("content_stray_p", args.stray_p),
+                                               ("content_min_spikes", args.min_spikes)) if value is not None}
+    for marks, key in ((False, "units"), (True, "marks")):
+        if marks and not args.marks:
+            continue
+        out = content_run(args.content_duration_s, args.learn_s, args.seed, rules, args.place_cells, args.events,
+                          marks=marks, goal_radius_cm=args.goal_radius_cm,
+                          events_out=events[key] if args.events_json else None, ripples_overrides=overrides)
+        result.update({f"marks_{k}": v for k, v in out.items()} if marks else out)
     if args.events_json:
         Path(args.events_json).parent.mkdir(parents=True, exist_ok=True)
         Path(args.events_json).write_text(json.dumps(events, default=float))

@@ -30,7 +30,12 @@ def _config():
     doc["zones"] = [{"kind": "circle", "name": "left_well", "center_cm": [0.0, 80.0], "radius_cm": 20.0}]
     doc["rules"] = [{"name": "disrupt", "kind": "ripple"},
                     {"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_bins": 3,
-                     "min_correlation": 0.3}]
+                     "min_correlation": 0.3},
+                    {"name": "towards_left_odds", "kind": "replay_towards", "zone": "left_well", "min_bins": 2,
+                     "min_log_odds": 0.0},
+                    {"name": "away_from_left_odds", "kind": "replay_away", "zone": "left_well", "min_bins": 2,
+                     "min_log_odds": 1.0}]
+    doc["ripples"].update(content_speed_cm_s=[150.0, 1000.0], content_slack_cm=3.0, content_stray_p=0.1)
     doc["simulation"]["n_place_cells"] = 120
     return parse_config(tomli_w.dumps(doc))
 
@@ -51,7 +56,19 @@ def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_
     assert content, "no ripple's content was decoded in the session"
     events = [e for c in content for e in c.events]
     # Whether a replay moved towards the well depends on the draw; every event is a content rule's.
-    assert all(e.rule == "towards_left" for e in events)
+    rules = {"towards_left", "towards_left_odds", "away_from_left_odds"}
+    assert {e.rule for e in events} <= rules
+    # A log-odds rule fires only on a bin whose filter gives the sequence odds above its threshold
+    # after its bins with spikes; the rank rule only where tau-b says so.
+    for c in content:
+        for e in c.events:
+            b = c.content
+            if e.rule == "towards_left_odds":
+                assert b.log_odds[0, 0] > 0.0 and b.n_used >= 2
+            elif e.rule == "away_from_left_odds":
+                assert b.log_odds[1, 0] > 1.0 and b.n_used >= 2
+            else:
+                assert b.rank_correlation[0] <= -0.3 and b.n_used >= 3
     assert pipeline.counters["events"] >= len(events)
     assert pipeline.ripples.status()["counters"]["content_bins"] == len(content)
 
@@ -66,4 +83,4 @@ def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_
         assert (e["decision_ms"] is None) == (not e["decided"])
     rows = content_event_rows({"ripples": status})
     assert len(rows) == len(listed) and all(len(r) == 4 for r in rows)
-    assert {r[2] for r in rows} <= {"none", "towards_left"}
+    assert {d for r in rows for d in r[2].split(", ")} <= rules | {"none"}

@@ -64,6 +64,18 @@ class RippleSettings:
     #: posterior is close to the uniform prior and says little of the content); the event goes
     #: on, to its LFP offset.
     content_min_spikes: int = 4
+    #: The sequence filter (``decoder.inference.sequence_filter``): the replay's speed range along
+    #: the distance to a zone (cm/s), low and high. Replay runs 10-20 times faster than the
+    #: animal (common practice), which runs 15-50 cm/s.
+    content_speed_cm_s: tuple[float, float] = (150.0, 1000.0)
+    #: The sequence filter's slack (cm): each bin's move is widened by this on either side (a
+    #: path bending away from the shortest route, the decoding's jitter), and a replay that
+    #: stays within it reads as no sequence.
+    content_slack_cm: float = 3.0
+    #: The sequence filter's stray share, in [0, 1): the probability that a content bin's spikes
+    #: say nothing of the replayed place (the resting animal's own cells beyond the background, a
+    #: stray burst), so that one such bin costs a hypothesis a bounded amount.
+    content_stray_p: float = 0.1
 
     def __post_init__(self) -> None:
         if not isinstance(self.source, str):
@@ -99,6 +111,24 @@ class RippleSettings:
         if not 0 <= self.content_lead_s <= min(0.1, self.content_max_s):
             raise ConfigError(f"[ripples] content_lead_s must lie within 0..0.1 s and not exceed content_max_s, "
                               f"got {self.content_lead_s!r}")
+        try:
+            low_v, high_v = (float(v) for v in self.content_speed_cm_s)
+        except (TypeError, ValueError):
+            raise ConfigError(f"[ripples] content_speed_cm_s must be a pair [low, high] in cm/s, "
+                              f"got {self.content_speed_cm_s!r}") from None
+        if not 0 <= low_v <= high_v <= 10_000.0:
+            raise ConfigError(f"[ripples] content_speed_cm_s must satisfy 0 <= low <= high <= 10000 cm/s, "
+                              f"got {self.content_speed_cm_s!r}")
+        object.__setattr__(self, "content_speed_cm_s", (low_v, high_v))
+        if not 0 <= self.content_slack_cm <= 100.0:
+            raise ConfigError(f"[ripples] content_slack_cm must lie within 0..100 cm, got {self.content_slack_cm!r}")
+        if not 0 <= self.content_stray_p < 1:
+            raise ConfigError(f"[ripples] content_stray_p must lie in [0, 1), got {self.content_stray_p!r}")
+
+    def sequence_kwargs(self) -> dict[str, Any]:
+        """The sequence filter's keyword arguments (``ReplayContent``'s ``speed_cm_s``, ``slack_cm``, ``stray_p``)."""
+        return {"speed_cm_s": self.content_speed_cm_s, "slack_cm": self.content_slack_cm,
+                "stray_p": self.content_stray_p}
 
     def detector_kwargs(self) -> dict[str, Any]:
         """The ``RippleDetector`` keyword arguments this table sets."""

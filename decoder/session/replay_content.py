@@ -45,9 +45,15 @@ As the event unfolds, after each bin and using only the bins so far,
 :class:`SequenceMeasures` gives for each zone
 
 * the posterior mass in the zone averaged over the event's bins so far;
+* the posterior log odds that the replay moves towards the zone, and away
+  from it, from the sequence filter
+  (:class:`decoder.inference.sequence_filter.SequenceFilter`): every bin of
+  the event so far weighed by its whole likelihood over the distance to the
+  zone, against a replay moving the other way or no sequence at all; what a
+  sequence rule with ``min_log_odds`` judges (``ContentBin.log_odds``);
 * Kendall's rank correlation (tau-b) between the bins' times and their
   decoded distance to the zone (the posterior median of the distance): the
-  measure the sequence rules judge. A rank correlation, because one bin
+  measure a sequence rule without ``min_log_odds`` judges. A rank correlation, because one bin
   decoded far away (a bin where the resting animal's own place cells
   outnumber the replay's spikes) changes at most ``n - 1`` of its
   ``n (n - 1) / 2`` pairs, where it would swing a least-squares line; the
@@ -77,6 +83,7 @@ import numpy as np
 
 from decoder.encoding.mark_model import MarkModel
 from decoder.inference.decoding import BayesDecoder
+from decoder.inference.sequence_filter import SequenceFilter
 from decoder.space.environments import Environment
 
 #: Spikes are held this much longer than the longest event and its lead, for the detection's latency (s).
@@ -325,7 +332,12 @@ class ContentBin(NamedTuple):
         so far, and the fitted line's slope (negative: moving towards the zone).
     rank_z : ndarray of float64, shape (n_zones,)
         The z score of ``rank_correlation`` (:meth:`SequenceMeasures.rank_z`):
-        the evidence the sequence rules ask of it.
+        the evidence behind it.
+    log_odds : ndarray of float64, shape (2, n_zones)
+        The posterior log odds that the event's replay moves towards each zone
+        (row 0) and away from it (row 1), over every bin so far
+        (:meth:`decoder.inference.sequence_filter.SequenceFilter.log_odds`):
+        what a sequence rule with ``min_log_odds`` judges.
     n_marks_over_cap : int
         Marked spikes of the bin beyond ``max_marks_per_bin``, left out.
     """
@@ -343,6 +355,7 @@ class ContentBin(NamedTuple):
     correlation: np.ndarray
     slope_cm_s: np.ndarray
     rank_z: np.ndarray
+    log_odds: np.ndarray
     n_marks_over_cap: int = 0
 
 
@@ -376,6 +389,11 @@ class ReplayContent:
     max_marks_per_bin : int, default 2000
         Marked spikes decoded per bin at most (``[marks] max_spikes_per_step``);
         beyond, the rest are left out and reported (``ContentBin.n_marks_over_cap``).
+    speed_cm_s, slack_cm, stray_p
+        The sequence filter's replay speed range (cm/s), slack (cm) and stray
+        share (:class:`~decoder.inference.sequence_filter.SequenceFilter`); its
+        distance levels are the environment's bins. Every bin of the event
+        goes through it, those below ``min_spikes`` without their evidence.
 
     Examples
     --------
@@ -394,7 +412,9 @@ class ReplayContent:
 
     def __init__(self, decoder: BayesDecoder, unit_ids: np.ndarray, zone_masks: np.ndarray,
                  distance_cm: np.ndarray, max_event_s: float, lead_s: float = 0.0, min_spikes: int = 1,
-                 marks: MarkModel | None = None, max_marks_per_bin: int = 2000) -> None:
+                 marks: MarkModel | None = None, max_marks_per_bin: int = 2000,
+                 speed_cm_s: tuple[float, float] = (150.0, 1000.0), slack_cm: float = 3.0,
+                 stray_p: float = 0.1) -> None:
         if decoder.transition is not None:
             raise ValueError("content bins are decoded with the uniform prior: replay content jumps, and the "
                              "behavioural movement model does not hold; build the decoder with prior='uniform'")
@@ -411,6 +431,8 @@ class ReplayContent:
         self.lead_s = float(lead_s)
         self.min_spikes = int(min_spikes)
         self.measures = SequenceMeasures(zone_masks, distance_cm)
+        self.sequence = SequenceFilter(distance_cm, decoder.valid_mask, level_cm=decoder.environment.bin_cm,
+                                       bin_s=self.bin_s, speed_cm_s=speed_cm_s, slack_cm=slack_cm, stray_p=stray_p)
         self._n_units = ids.size
         self._t = np.zeros(0)
         self._rows = np.zeros(0, np.int64)
@@ -437,13 +459,16 @@ class ReplayContent:
                   zone_masks: np.ndarray, *, bin_s: float, max_event_s: float, lead_s: float = 0.0,
                   unit_ids: np.ndarray | None = None, rate_floor_hz: float = 0.01,
                   min_spikes: int = 1, marks: MarkModel | None = None,
-                  max_marks_per_bin: int = 2000) -> ReplayContent:
-        """Content decoding for rate maps (shape (n_units, n_bins), Hz) and ``marks``, with the uniform prior."""
+                  max_marks_per_bin: int = 2000, **sequence: float | tuple[float, float]) -> ReplayContent:
+        """Content decoding for rate maps (shape (n_units, n_bins), Hz) and ``marks``, with the uniform prior.
+
+        ``sequence``: the sequence filter's ``speed_cm_s``, ``slack_cm``, ``stray_p`` (their defaults otherwise).
+        """
         decoder = BayesDecoder(rate_maps_hz, environment, valid_mask, window_s=bin_s, prior="uniform",
                                zone_masks=zone_masks, rate_floor_hz=rate_floor_hz)
         ids = np.arange(decoder.n_units) if unit_ids is None else unit_ids
         return cls(decoder, ids, zone_masks, zone_distances_cm(environment, zone_masks), max_event_s, lead_s,
-                   min_spikes, marks, max_marks_per_bin)
+                   min_spikes, marks, max_marks_per_bin, **sequence)
 
     @property
     def active(self) -> bool:
@@ -527,6 +552,7 @@ class ReplayContent:
         self._offset_s = math.inf
         self._next = 0
         self.measures.reset()
+        self.sequence.reset()
 
     def close(self, offset_s: float) -> None:
         """The current event's LFP offset: no bin that begins at or after ``offset_s`` is decoded."""
@@ -587,8 +613,11 @@ class ReplayContent:
         step = self.decoder.decode(rows, fired, log_like, expected)
         n_spikes = step.n_spikes + n_marks
         m = self.measures
-        if n_spikes >= self.min_spikes:
+        used = n_spikes >= self.min_spikes
+        if used:
             m.add(0.5 * (start + stop), step.posterior)
+        self.sequence.step(step.posterior, observed=used)
         r, slope = m.line()
         return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
-                          n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z(), over_cap)
+                          n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z(),
+                          self.sequence.log_odds(), over_cap)

@@ -236,7 +236,7 @@ class RippleStream:
                                                lead_s=s.content_lead_s, unit_ids=model.unit_ids_,
                                                rate_floor_hz=rate_floor_hz,
                                                min_spikes=s.content_min_spikes, marks=marks,
-                                               max_marks_per_bin=max_marks_per_bin)
+                                               max_marks_per_bin=max_marks_per_bin, **s.sequence_kwargs())
 
     def take_spikes(self, t_s: np.ndarray, unit_ids: np.ndarray) -> None:
         """Hold the spike source's spikes (times sorted, shape (n,) each) for content decoding."""
@@ -262,7 +262,8 @@ class RippleStream:
             x, y, speed = self.tracked.at_xy(t)
             xy = np.array((x, y))
             lag = max(watermark_s - t, 0.0)
-            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag))
+            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag,
+                                             b.log_odds))
             self.counters["content_bins"] += 1
             self.counters["content_marks_over_cap"] += b.n_marks_over_cap
             self.counters["events"] += len(events)

@@ -60,10 +60,13 @@ ripple detected after arming is always a new entry.
 Content rules (``kind = "replay_mass"``, ``"replay_towards"``, ``"replay_away"``)
 are judged by ``TriggerBank.content`` on each content bin of a ripple
 detected at rest, from the event's measures so far: the zone's posterior mass
-averaged over the bins (``>= min_mass``), or Kendall's rank correlation (tau-b) of
-bin time and decoded distance to the zone (``<= -min_correlation`` towards,
-``>= min_correlation`` away), once the measures cover ``min_bins`` bins (bins
-with spikes), the speed bounds holding. Each event is one entry: a rule makes at most one would-be
+averaged over the bins (``>= min_mass``); for a sequence rule with
+``min_log_odds``, the posterior log odds that the replay moves towards (away
+from) the zone (``decoder.inference.sequence_filter``, ``> min_log_odds``);
+without it, Kendall's rank correlation (tau-b) of bin time and decoded distance
+to the zone (``<= -min_correlation`` towards, ``>= min_correlation`` away);
+each once the measures cover ``min_bins`` bins (bins with spikes), the speed
+bounds holding. Each event is one entry: a rule makes at most one would-be
 event per event (spent by it whether or not the caps let it through), and
 the next event's first bin clears every content rule. The would-be events
 meet the same caps in the same order, the same stall guard and the same
@@ -481,7 +484,8 @@ class TriggerBank:
         return bool(self._content_rules)
 
     def content(self, t_s: float, index: int, n_used: int, mean_mass: np.ndarray, correlation: np.ndarray,
-                tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float) -> list[TriggerEvent]:
+                tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float,
+                log_odds: np.ndarray | None = None) -> list[TriggerEvent]:
         """Judge one content bin of a candidate event; return the events it makes.
 
         Parameters
@@ -501,6 +505,10 @@ class TriggerBank:
             NaN when unknown; never satisfies a speed bound.
         stream_lag_s : float
             As for :meth:`ripple`.
+        log_odds : ndarray of float64, shape (2, n_zones), optional
+            The posterior log odds that the replay moves towards (row 0) and away
+            from (row 1) each zone (``ContentBin.log_odds``), for the rules with
+            ``min_log_odds``; None or NaN satisfies none.
         """
         t = float(t_s)
         if not math.isfinite(t):
@@ -519,6 +527,9 @@ class TriggerBank:
                 continue
             if rule.kind == "replay_mass":
                 holds = mean_mass[zi] >= rule.min_mass
+            elif rule.min_log_odds is not None:
+                row = 0 if rule.kind == "replay_towards" else 1
+                holds = log_odds is not None and log_odds[row, zi] > rule.min_log_odds
             elif rule.kind == "replay_towards":
                 holds = correlation[zi] <= -rule.min_correlation
             else:
