@@ -410,7 +410,8 @@ def fit_temperature(
             above = passed.above_true[known_at]
         else:
             blurred = [p @ blur for p in passed.kept]
-            above = [mass_above(p, p[true_bin], None) for p, true_bin in zip(blurred, all_true_bins[known_at])]
+            scratch = np.empty(n_bins)
+            above = [mass_above(p, p[true_bin], scratch) for p, true_bin in zip(blurred, all_true_bins[known_at])]
         # Inside when the bins more probable than the true one hold less than the mass
         # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
         inside = sum(bool(a < HPD_MASS) for a in above)
