@@ -97,3 +97,26 @@ def test_the_pass_carries_the_posterior_on_to_the_next_window_and_refuses_a_bad_
     bad_rows[start[40]] = 99
     with pytest.raises(ValueError, match="row 99, outside the model's rows"):
         decoder.decode_held_out(bad_rows, counts, start, np.full(60, -1, np.int64), np.zeros(60, bool))
+
+
+def test_a_decoder_from_floored_rates_decodes_as_one_from_the_maps_and_refuses_other_bins():
+    from decoder.inference.floored_rates import floored_rates
+
+    rng = np.random.default_rng(5)
+    env = Arena.rectangle(20, 20, bin_cm=2.0)
+    rates = rng.gamma(1.0, 4.0, (10, env.n_bins))
+    valid = env.valid_mask.copy()
+    valid[:7] = False
+    shared = floored_rates(rates, valid, 0.05)
+    rows, counts, start = _windows(rng, 40, 10)
+    for temperature in (1.0, 1.7):
+        kwargs = dict(prior="state_space", uniform_weight=1e-3, likelihood_temperature=temperature, rate_floor_hz=0.05)
+        a, b = BayesDecoder(shared, env, valid, 0.02, **kwargs), BayesDecoder(rates, env, valid, 0.02, **kwargs)
+        np.testing.assert_array_equal(a.rates_hz, b.rates_hz)
+        for i in range(40):
+            window = rows[start[i]:start[i + 1]], counts[start[i]:start[i + 1]]
+            np.testing.assert_array_equal(a.decode(*window).posterior, b.decode(*window).posterior)
+    with pytest.raises(ValueError, match="other valid bins or another rate floor"):
+        BayesDecoder(shared, env, env.valid_mask, 0.02, rate_floor_hz=0.05)
+    with pytest.raises(ValueError, match="other valid bins or another rate floor"):
+        BayesDecoder(shared, env, valid, 0.02, rate_floor_hz=0.01)

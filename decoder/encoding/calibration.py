@@ -87,6 +87,7 @@ import numpy as np
 
 from decoder.inference.checks import kernel_set
 from decoder.inference.decoding import HPD_MASS, BayesDecoder, HeldOutPass
+from decoder.inference.floored_rates import FlooredRates, floored_rates
 from decoder.inference.filtering import hpd_mass
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
@@ -370,6 +371,7 @@ def fit_temperature(
     _check_mark_terms(fold_mark_terms, [b.size for b in truths], walk.environment.n_bins)
 
     fired = _fired(fold_counts)
+    fold_rate_maps_hz = _floored(fold_rate_maps_hz, walk, rate_floor_hz)
     all_true_bins = np.concatenate(truths)
     n_bins = walk.environment.n_bins
     if not (math.isfinite(tracked_noise_sd) and tracked_noise_sd >= 0.0):
@@ -502,7 +504,8 @@ def _check_mark_terms(fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] |
 
 
 def _held_out_pass(
-    fold_rate_maps_hz: Sequence[np.ndarray], fired: list[tuple[np.ndarray, np.ndarray, np.ndarray]], step_s: float,
+    fold_rate_maps_hz: Sequence[np.ndarray | FlooredRates], fired: list[tuple[np.ndarray, np.ndarray, np.ndarray]],
+    step_s: float,
     walk: RandomWalk, uniform_weight: float, temperature: float, rate_floor_hz: float, drift_gain: float,
     velocity_time_constant_s: float, fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
     heading_velocity: HeadingVelocity | None = None,
@@ -515,7 +518,7 @@ def _held_out_pass(
     without it only the points are of use.
     """
     parts = []
-    for k, (rates, (rows, counts, start)) in enumerate(zip(fold_rate_maps_hz, fired)):
+    for k, (rates, (rows, counts, start)) in enumerate(zip(_floored(fold_rate_maps_hz, walk, rate_floor_hz), fired)):
         decoder = BayesDecoder(
             rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
             uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
@@ -549,6 +552,13 @@ def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.nda
     if not known.any():
         return math.nan, math.nan
     return tuple(float(np.nanmedian(env.distance_cm(decoded[known, i : i + 2], truth_xy_cm[known]))) for i in (0, 2))
+
+
+def _floored(fold_rate_maps_hz: Sequence[np.ndarray | FlooredRates], walk: RandomWalk,
+             rate_floor_hz: float) -> list[FlooredRates]:
+    """Each fold's maps checked and floored once, for the dozen decoders a fit makes of them."""
+    return [maps if isinstance(maps, FlooredRates) else floored_rates(maps, walk.valid_mask, rate_floor_hz)
+            for maps in fold_rate_maps_hz]
 
 
 def _fired(fold_counts: Sequence[np.ndarray]) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
@@ -620,6 +630,7 @@ def fit_drift(
         raise ValueError("no held-out step has a known position; the tracker was lost throughout")
     _check_mark_terms(fold_mark_terms, [len(c) for c in fold_counts], walk.environment.n_bins)
     fired = _fired(fold_counts)
+    fold_rate_maps_hz = _floored(fold_rate_maps_hz, walk, rate_floor_hz)
     env = walk.environment
 
     def median_cm(gain: float, time_constant_s: float) -> float:

@@ -30,6 +30,7 @@ import numpy as np
 
 from decoder.inference import _kernels
 from decoder.inference.checks import bin_mask, kernel_set, positive_finite
+from decoder.inference.floored_rates import FlooredRates, floored_rates
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
@@ -151,9 +152,12 @@ class BayesDecoder:
 
     Parameters
     ----------
-    rate_maps_hz : ndarray of float64, shape (n_units, n_bins)
+    rate_maps_hz : ndarray of float64, shape (n_units, n_bins), or FlooredRates
         Firing-rate map of each unit (Hz); must be finite and non-negative
-        on the valid bins (other bins are ignored, NaN allowed there).
+        on the valid bins (other bins are ignored, NaN allowed there). Or
+        the maps as ``decoder.inference.floored_rates.floored_rates`` made
+        them for these valid bins and ``rate_floor_hz``, when several
+        decoders share them.
         ``n_units`` may be 0 for a decoder that takes its whole likelihood
         from waveform marks (``mark_log_like`` of :meth:`decode`).
     environment : Environment
@@ -225,7 +229,7 @@ class BayesDecoder:
 
     def __init__(
         self,
-        rate_maps_hz: np.ndarray,
+        rate_maps_hz: np.ndarray | FlooredRates,
         environment: Environment,
         valid_mask: np.ndarray,
         window_s: float,
@@ -290,37 +294,23 @@ class BayesDecoder:
         self.valid_mask = valid.view()
         self.valid_mask.setflags(write=False)
 
-        rates = np.asarray(rate_maps_hz)
-        if rates.ndim != 2 or rates.shape[1] != n_bins or rates.dtype.kind not in "iuf":
-            raise ValueError(
-                f"rate_maps_hz must be a numeric array of shape (n_units, {n_bins}), "
-                f"got {rates.dtype} of shape {rates.shape}"
-            )
-        # Every bin valid (an arena's grid): the maps themselves, no gathered copy. C order, as
-        # np.full made it before: the sum over units below adds in memory order.
-        all_valid = bool(valid.all())
-        on_valid = np.ascontiguousarray(rates if all_valid else rates[:, valid], dtype=np.float64)
-        # NaN and negative rates fail ">= 0"; an infinite one makes the largest infinite.
-        if on_valid.size and not ((on_valid >= 0).all() and np.isfinite(on_valid.max())):
-            unit = int(np.flatnonzero(~(np.isfinite(on_valid) & (on_valid >= 0)).all(axis=1))[0])
-            raise ValueError(f"rate_maps_hz row {unit} holds a negative, NaN or infinite rate on a valid bin")
-        self.n_units, self.n_bins = rates.shape
-        if all_valid:
-            floored = np.maximum(on_valid, self.rate_floor_hz)
+        if isinstance(rate_maps_hz, FlooredRates):
+            rates = rate_maps_hz
+            if rates.rate_floor_hz != self.rate_floor_hz or not np.array_equal(rates.valid, valid):
+                raise ValueError("the floored rates were made for other valid bins or another rate floor")
         else:
-            floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
-            floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
+            rates = floored_rates(rate_maps_hz, valid, self.rate_floor_hz)
+        self.n_units, self.n_bins = rates.floored_hz.shape
         # Both terms of the log-likelihood are linear in them, so dividing
         # here tempers every window, and the in-place updates stay exact.
-        # In place, the same division without a second array; by 1.0 it
-        # would change no bit, so it is left out.
-        self._log_rate = np.log(floored)
+        # By 1.0 it would change no bit, so it is left out (and the
+        # logarithm shared: no kernel writes to it).
+        self._log_rate = rates.log_floored
         if self.likelihood_temperature != 1.0:
-            self._log_rate /= self.likelihood_temperature
-        floored.setflags(write=False)
-        self._floored_hz = floored
+            self._log_rate = rates.log_floored / self.likelihood_temperature
+        self._floored_hz = rates.floored_hz
         with np.errstate(over="ignore"):
-            self._expected_total = self.window_s * floored.sum(axis=0) / self.likelihood_temperature
+            self._expected_total = self.window_s * rates.total_hz / self.likelihood_temperature
         if not np.all(np.isfinite(self._expected_total)):
             raise ValueError(
                 "rate_maps_hz sum to an infinite expected spike count; check the units (Hz) of the maps"
