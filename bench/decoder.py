@@ -22,6 +22,10 @@ zone, with a per-unit background rate on top of the place fields so that
 about 100 units fire per window. Its figure feeds the replay benchmark
 (``bench/replay.py``), which holds the replay's own target.
 
+The held-out pass of calibration is timed as one compiled call
+(``BayesDecoder.decode_held_out``), on its numpy twin, and as the compiled
+``decode`` called window by window, which it replaced.
+
 Three more figures: the time for :class:`decoder.encoding.place_model.PlaceModel` to
 take 30 simulated minutes (tracker at 50 Hz, 300 units) through its update
 methods and fit them, the time it then takes to fit the filter's likelihood
@@ -223,6 +227,48 @@ def replay_case(n_steps: int, warmup: int, seed: int) -> dict:
     return time_backends(env, rates, windows, "state_space", warmup, zones)
 
 
+def held_out_pass_case(n_steps: int, seed: int) -> dict:
+    """Calibration's held-out pass (300 units, 2,500 bins, the filter): µs per window, three ways.
+
+    ``BayesDecoder.decode_held_out`` compiled and on its numpy twin (the
+    baseline), and the compiled ``decode`` called window by window from
+    Python with the mass above the known bin summed in numpy, as the pass
+    did before it was one call. Median of five runs each.
+    """
+    env = ENVIRONMENTS[2_500]()
+    rng = np.random.default_rng(seed)
+    rates = place_maps(env, 300, rng)
+    windows = window_counts(env, rates, n_steps, rng, STEP_S)
+    rows = np.concatenate([w[0] for w in windows])
+    counts = np.concatenate([w[1] for w in windows])
+    start = np.concatenate([[0], np.cumsum([w[0].size for w in windows])]).astype(np.int64)
+    true_bins = rng.integers(0, env.n_bins, n_steps)
+    keep = np.arange(n_steps) % 8 == 0
+
+    def one_call(backend: str) -> float:
+        decoder = _decoder(env, rates, "filter", None, backend, FILTER_TEMPERATURE)
+        t0 = time.thread_time()
+        decoder.decode_held_out(rows, counts, start, true_bins, keep)
+        return time.thread_time() - t0
+
+    def window_by_window() -> float:
+        decoder = _decoder(env, rates, "filter", None, "numba", FILTER_TEMPERATURE)
+        t0 = time.thread_time()
+        for (r, c), true_bin in zip(windows, true_bins):
+            p = decoder.decode(r, c).posterior
+            float(p[p > p[true_bin]].sum())
+        return time.thread_time() - t0
+
+    one_call("numba")
+    window_by_window()
+    per_window_us = {
+        "numba_us": float(np.median([one_call("numba") for _ in range(5)])) / n_steps * 1e6,
+        "decode_loop_us": float(np.median([window_by_window() for _ in range(5)])) / n_steps * 1e6,
+        "numpy_us": float(np.median([one_call("numpy") for _ in range(5)])) / n_steps * 1e6,
+    }
+    return {"steps": n_steps, **per_window_us}
+
+
 def fit_time_s(minutes: float, n_units: int, seed: int) -> tuple[float, float]:
     """Seconds to feed ``minutes`` of 50 Hz frames and spikes to a PlaceModel and fit it, then its temperature."""
     env = ENVIRONMENTS[2_500]()
@@ -342,6 +388,14 @@ def main(argv: list[str] | None = None) -> int:
         f"({os.cpu_count()} cores)"
     )
 
+    held_out = held_out_pass_case(500 if args.quick else 2000, seed=78)
+    print(
+        f"calibration's held-out pass (300 units, 2,500 bins, filter, {held_out['steps']} windows, thread CPU): "
+        f"one compiled call {held_out['numba_us']:.1f} us per window, the compiled decode() window by window "
+        f"{held_out['decode_loop_us']:.1f} us, the numpy twin {held_out['numpy_us']:.1f} us; "
+        f"ratio to the twin {held_out['numpy_us'] / held_out['numba_us']:.1f}x"
+    )
+
     fit_s, temperature_s = fit_time_s(fit_minutes, 300, seed=99)
     print(
         f"PlaceModel, {fit_minutes:g} simulated min at 50 Hz, 300 units, 2,500 bins: updates + fit {fit_s:.2f} s, "
@@ -394,6 +448,7 @@ def main(argv: list[str] | None = None) -> int:
         report = {
             "cases": cases,
             "replay_case": replay,
+            "held_out_pass": held_out,
             "fit_s_30min_300units": None if args.quick else fit_s,
             "temperature_fit_s": temperature_s,
             "warm_start_s": warm_s,

@@ -80,12 +80,14 @@ from __future__ import annotations
 import itertools
 import logging
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from decoder.inference.decoding import HPD_MASS, BayesDecoder, DecodedStep
+from decoder.inference.checks import kernel_set
+from decoder.inference.decoding import HPD_MASS, BayesDecoder, HeldOutPass
+from decoder.inference.floored_rates import FlooredRates, floored_rates
 from decoder.inference.filtering import hpd_mass
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
@@ -369,11 +371,21 @@ def fit_temperature(
     _check_mark_terms(fold_mark_terms, [b.size for b in truths], walk.environment.n_bins)
 
     fired = _fired(fold_counts)
-    all_true_bins = np.concatenate(truths).tolist()
-    n_bins, bin_size = walk.environment.n_bins, float(walk.environment.bin_size)
+    fold_rate_maps_hz = _floored(fold_rate_maps_hz, walk, rate_floor_hz)
+    all_true_bins = np.concatenate(truths)
+    n_bins = walk.environment.n_bins
     if not (math.isfinite(tracked_noise_sd) and tracked_noise_sd >= 0.0):
         raise ValueError(f"tracked_noise_sd must be a finite s.d. >= 0, got {tracked_noise_sd!r}")
     blur = walk.environment.tracked_bin_kernel(tracked_noise_sd) if tracked_noise_sd > 0 else None
+    # The known steps, and every _MASS_EVERY-th of them, whose HPD region's mass is measured.
+    known_at = np.flatnonzero(all_true_bins >= 0)
+    mass_of_known = np.arange(0, known_at.size, _MASS_EVERY)
+    mass_at = known_at[mass_of_known]
+    # The posteriors a pass returns whole: the mass steps', or every known step's to blur.
+    keep = np.zeros(all_true_bins.size, bool)
+    keep[known_at if blur is not None else mass_at] = True
+    kept = np.split(keep, np.cumsum([b.size for b in truths])[:-1])
+    mass_above = kernel_set(walk.backend).mass_above
 
     # The decoded points (MAP, mean) of each step by temperature, for fit()'s medians: a temperature
     # already decoded is not decoded again (a pass costs as much as the fit's other work); only the
@@ -388,32 +400,31 @@ def fit_temperature(
         The regions' mass varies little from step to step (it is 0.95 plus
         part of one bin), so every ``_MASS_EVERY``-th known step estimates it.
         With a tracked noise, the region and its mass are the predictive
-        distribution's, the posterior blurred by ``blur``.
+        distribution's, the posterior blurred by ``blur``: those steps'
+        posteriors come back whole and are scored here.
         """
-        inside, mass, n_mass = 0, 0.0, 0
-        score_points = fold_true_xy_cm is not None
-        points: list[np.ndarray] = []
-        steps = _decoded_steps(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
-                               drift.gain, drift.velocity_time_constant_s, fold_mark_terms, heading_velocity)
-        for step, true_bin in zip(steps, all_true_bins):
-            if score_points:
-                points.append(np.concatenate([step.map_xy_cm, step.mean_xy_cm]))
-            if true_bin < 0:
-                continue
-            p = step.posterior if blur is None else step.posterior @ blur
-            # Inside when the bins more probable than the true one hold less than the mass
-            # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
-            inside += bool(p[p > p[true_bin]].sum() < HPD_MASS)
-            if n_mass % _MASS_EVERY == 0:
-                if blur is None:
-                    n_hpd = round(step.hpd95_size / bin_size)
-                    mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
-                else:
-                    mass += float(hpd_mass(p[np.newaxis])[0])
-            n_mass += 1
-        if score_points:
-            points_at[temperature] = np.array(points)
-        return inside / n_known, mass / len(range(0, n_mass, _MASS_EVERY))
+        passed = _held_out_pass(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
+                                drift.gain, drift.velocity_time_constant_s, fold_mark_terms, heading_velocity,
+                                scored=(truths, kept))
+        if fold_true_xy_cm is not None:
+            points_at[temperature] = passed.points_cm
+        if blur is None:
+            above = passed.above_true[known_at]
+        else:
+            blurred = [p @ blur for p in passed.kept]
+            scratch = np.empty(n_bins)
+            above = [mass_above(p, p[true_bin], scratch) for p, true_bin in zip(blurred, all_true_bins[known_at])]
+        # Inside when the bins more probable than the true one hold less than the mass
+        # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
+        inside = sum(bool(a < HPD_MASS) for a in above)
+        mass = 0.0
+        for i, at in enumerate(mass_at):
+            if blur is None:
+                p, n_hpd = passed.kept[i], int(passed.n_hpd[at])
+                mass += float(np.partition(p, n_bins - n_hpd)[n_bins - n_hpd :].sum())
+            else:
+                mass += float(hpd_mass(blurred[mass_of_known[i]][np.newaxis])[0])
+        return inside / n_known, mass / len(mass_at)
 
     coverage_at_1 = math.nan if near is None else near.coverage_at_1
     turning = {"tracked_noise_sd": float(tracked_noise_sd)}
@@ -492,27 +503,34 @@ def _check_mark_terms(fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] |
                          f"expected count per fold, for fold steps {n_steps}; got shapes {shapes}")
 
 
-def _decoded_steps(
-    fold_rate_maps_hz: Sequence[np.ndarray], fired: list[list[tuple[np.ndarray, np.ndarray]]], step_s: float,
+def _held_out_pass(
+    fold_rate_maps_hz: Sequence[np.ndarray | FlooredRates], fired: list[tuple[np.ndarray, np.ndarray, np.ndarray]],
+    step_s: float,
     walk: RandomWalk, uniform_weight: float, temperature: float, rate_floor_hz: float, drift_gain: float,
     velocity_time_constant_s: float, fold_mark_terms: Sequence[tuple[np.ndarray, np.ndarray]] | None = None,
     heading_velocity: HeadingVelocity | None = None,
-) -> Iterator[DecodedStep]:
-    """Every held-out step decoded by the filter, fold after fold, each fold from a fresh decoder."""
-    for k, (rates, steps) in enumerate(zip(fold_rate_maps_hz, fired)):
+    scored: tuple[Sequence[np.ndarray], Sequence[np.ndarray]] | None = None,
+) -> HeldOutPass:
+    """Every held-out step decoded by the filter, fold after fold, each fold from a fresh decoder, in one call a fold.
+
+    ``scored`` holds each fold's true bins (-1: not scored) and the steps
+    whose posteriors come back whole (``BayesDecoder.decode_held_out``);
+    without it only the points are of use.
+    """
+    parts = []
+    for k, (rates, (rows, counts, start)) in enumerate(zip(_floored(fold_rate_maps_hz, walk, rate_floor_hz), fired)):
         decoder = BayesDecoder(
             rates, walk.environment, walk.valid_mask, step_s, prior="state_space", random_walk_sd_cm=walk.sd_cm,
             uniform_weight=uniform_weight, likelihood_temperature=temperature, rate_floor_hz=rate_floor_hz,
             drift_gain=drift_gain, velocity_time_constant_s=velocity_time_constant_s,
             heading_velocity=heading_velocity, backend=walk.backend,
         )
-        if fold_mark_terms is None:
-            for rows, counts in steps:
-                yield decoder.decode(rows, counts)
-        else:
-            log_like, expected = fold_mark_terms[k]
-            for (rows, counts), step_log_like in zip(steps, log_like):
-                yield decoder.decode(rows, counts, step_log_like, expected)
+        n_steps = start.size - 1
+        true_bins, keep = ((np.full(n_steps, -1, np.int64), np.zeros(n_steps, bool)) if scored is None
+                           else (scored[0][k], scored[1][k]))
+        marks = (None, None) if fold_mark_terms is None else fold_mark_terms[k]
+        parts.append(decoder.decode_held_out(rows, counts, start, true_bins, keep, *marks))
+    return HeldOutPass(*(np.concatenate(column) for column in zip(*parts)))
 
 
 def point_estimate_of(map_median_cm: float, mean_median_cm: float, environment: Environment | None = None) -> str:
@@ -536,9 +554,26 @@ def _point_medians_cm(env: Environment, decoded: np.ndarray, truth_xy_cm: np.nda
     return tuple(float(np.nanmedian(env.distance_cm(decoded[known, i : i + 2], truth_xy_cm[known]))) for i in (0, 2))
 
 
-def _fired(fold_counts: Sequence[np.ndarray]) -> list[list[tuple[np.ndarray, np.ndarray]]]:
-    """Each held-out step as the decoder takes it: the rows that fired and their counts."""
-    return [[(np.flatnonzero(row), row[row > 0].astype(np.float64)) for row in np.asarray(c)] for c in fold_counts]
+def _floored(fold_rate_maps_hz: Sequence[np.ndarray | FlooredRates], walk: RandomWalk,
+             rate_floor_hz: float) -> list[FlooredRates]:
+    """Each fold's maps checked and floored once, for the dozen decoders a fit makes of them."""
+    return [maps if isinstance(maps, FlooredRates) else floored_rates(maps, walk.valid_mask, rate_floor_hz)
+            for maps in fold_rate_maps_hz]
+
+
+def _fired(fold_counts: Sequence[np.ndarray]) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Each fold's held-out steps as the decoder takes them: the rows that fired and their counts, end to end.
+
+    Per fold ``(rows, counts, start)``: step ``i`` fired ``rows[start[i]:start[i + 1]]`` (int64) with
+    ``counts[...]`` spikes (float64), as ``BayesDecoder.decode_held_out`` takes them.
+    """
+    out = []
+    for c in fold_counts:
+        c = np.asarray(c)
+        steps, rows = np.nonzero(c)
+        start = np.searchsorted(steps, np.arange(c.shape[0] + 1)).astype(np.int64)
+        out.append((rows.astype(np.int64), c[steps, rows].astype(np.float64), start))
+    return out
 
 
 def fit_drift(
@@ -595,13 +630,13 @@ def fit_drift(
         raise ValueError("no held-out step has a known position; the tracker was lost throughout")
     _check_mark_terms(fold_mark_terms, [len(c) for c in fold_counts], walk.environment.n_bins)
     fired = _fired(fold_counts)
+    fold_rate_maps_hz = _floored(fold_rate_maps_hz, walk, rate_floor_hz)
     env = walk.environment
 
     def median_cm(gain: float, time_constant_s: float) -> float:
-        points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
-            fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz, gain, time_constant_s,
-            fold_mark_terms)]
-        return min(_point_medians_cm(env, np.array(points), truth))
+        points = _held_out_pass(fold_rate_maps_hz, fired, step_s, walk, uniform_weight, temperature, rate_floor_hz,
+                                gain, time_constant_s, fold_mark_terms).points_cm
+        return min(_point_medians_cm(env, points, truth))
 
     without = median_cm(0.0, 1.0) if median_without_cm is None else median_without_cm
     plain = DriftFit(median_cm=without, median_without_cm=without)

@@ -47,8 +47,8 @@ from scipy import optimize, stats
 
 from decoder.encoding.calibration import (
     TemperatureFit,
-    _decoded_steps,
     _fired,
+    _held_out_pass,
     _point_medians_cm,
     _unscored,
     fit_temperature,
@@ -277,10 +277,9 @@ def choose_heading_velocity(
         logger.info("no angular velocity learned (%s); the filter keeps the walk", exc)
         return fit
     truth = np.concatenate([_unscored(step_s, xy) for xy in fold_true_xy_cm])
-    points = [np.concatenate([step.map_xy_cm, step.mean_xy_cm]) for step in _decoded_steps(
-        fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight, fit.temperature, rate_floor_hz, 0.0,
-        1.0, fold_mark_terms, heading_velocity=process)]
-    joint_cm = min(_point_medians_cm(env, np.array(points), truth))
+    points = _held_out_pass(fold_rate_maps_hz, _fired(fold_counts), step_s, walk, uniform_weight, fit.temperature,
+                            rate_floor_hz, 0.0, 1.0, fold_mark_terms, heading_velocity=process).points_cm
+    joint_cm = min(_point_medians_cm(env, points, truth))
     logger.info("angular velocity s.d. %.0f deg/s over %.2f s: held-out median %.2f deg with it, %.2f with the walk",
                 process.sd_deg_s, process.time_constant_s, joint_cm, walk_cm)
     if not joint_cm < walk_cm * (1.0 - MIN_GAIN):

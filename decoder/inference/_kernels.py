@@ -1951,3 +1951,243 @@ def decode_window_step_numpy(held_t_s, held_rows, start, stop, t_end_s, window_s
     binned = np.bincount(in_window, minlength=n_units)
     fired = np.flatnonzero(binned)
     return (*decode_step_numpy(fired, binned[fired].astype(np.float64), *decode_args), start + lo)
+
+
+# -- the held-out pass of calibration: many windows decoded and scored in one call --------------------
+
+#: numpy's pairwise summation: runs of at most this many values are added in eight running sums.
+_PAIRWISE_BLOCK = 128
+
+
+@numba.njit(cache=True)
+def _block_sum(a, lo, n):
+    """``a[lo:lo + n]``, ``n <= _PAIRWISE_BLOCK``, summed as numpy sums one block (see :func:`_pairwise_sum`)."""
+    if n < 8:
+        res = 0.0
+        for i in range(lo, lo + n):
+            res += a[i]
+        return res
+    r0, r1, r2, r3 = a[lo], a[lo + 1], a[lo + 2], a[lo + 3]
+    r4, r5, r6, r7 = a[lo + 4], a[lo + 5], a[lo + 6], a[lo + 7]
+    i = lo + 8
+    end = lo + n - n % 8
+    while i < end:
+        r0 += a[i]
+        r1 += a[i + 1]
+        r2 += a[i + 2]
+        r3 += a[i + 3]
+        r4 += a[i + 4]
+        r5 += a[i + 5]
+        r6 += a[i + 6]
+        r7 += a[i + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < lo + n:
+        res += a[i]
+        i += 1
+    return res
+
+
+@numba.njit(cache=True)
+def _pairwise_sum(a, lo, n):
+    """``a[lo:lo + n]`` summed in numpy's pairwise order, bit for bit what ``ndarray.sum`` gives on it.
+
+    numpy adds a contiguous float64 run of up to ``_PAIRWISE_BLOCK`` values
+    in eight interleaved running sums, joined as ``((r0 + r1) + (r2 + r3)) +
+    ((r4 + r5) + (r6 + r7))``, and splits a longer run in two at half its
+    length rounded down to a multiple of eight, adding the halves' sums.
+    The halving is walked here with a small stack, not by recursion (a
+    cached kernel calling a recursive one crashed numba 0.68).
+    ``tests/test_kernels.py`` holds this to numpy's sum.
+
+    References
+    ----------
+    Higham NJ (1993). The accuracy of floating point summation. SIAM J Sci
+    Comput 14:783-799 (pairwise summation).
+    """
+    if n <= _PAIRWISE_BLOCK:
+        return _block_sum(a, lo, n)
+    # Each level: its run (start, length), whether its left half is summed, and that sum.
+    starts = np.empty(64, np.int64)
+    lengths = np.empty(64, np.int64)
+    left_done = np.zeros(64, np.bool_)
+    left_sum = np.empty(64)
+    depth = 0
+    starts[0], lengths[0] = lo, n
+    while True:
+        m = lengths[depth]
+        if m > _PAIRWISE_BLOCK:
+            half = m // 2
+            half -= half % 8
+            left_done[depth] = False
+            starts[depth + 1], lengths[depth + 1] = starts[depth], half
+            depth += 1
+            continue
+        value = _block_sum(a, starts[depth], m)
+        while True:
+            depth -= 1
+            if depth < 0:
+                return value
+            if not left_done[depth]:
+                left_done[depth] = True
+                left_sum[depth] = value
+                half = lengths[depth] // 2
+                half -= half % 8
+                starts[depth + 1], lengths[depth + 1] = starts[depth] + half, lengths[depth] - half
+                depth += 1
+                break
+            value = left_sum[depth] + value
+
+
+@numba.njit(cache=True)
+def mass_above(p, level, scratch):
+    """Total of the values of ``p`` above ``level``: ``p[p > level].sum()``, bit for bit.
+
+    Parameters
+    ----------
+    p : ndarray, shape (n,), float64
+    level : float
+    scratch : ndarray, shape (>= n,), float64
+        Overwritten: the values above ``level`` gathered in order, then
+        summed in numpy's order (:func:`_pairwise_sum`).
+
+    Returns
+    -------
+    float
+    """
+    k = 0
+    for j in range(p.shape[0]):
+        if p[j] > level:
+            scratch[k] = p[j]
+            k += 1
+    return 0.0 + _pairwise_sum(scratch, 0, k)
+
+
+def mass_above_numpy(p, level, scratch):
+    """Numpy twin of :func:`mass_above` (the tests' reference)."""
+    return float(p[p > level].sum())
+
+
+@numba.njit(cache=True)
+def decode_held_out(fired_rows, fired_counts, step_start, true_bins, keep, mark_log_like, mark_expected, temperature,
+                    has_transition, decode_before, buffers, mark_terms, decode_after, points, above, n_hpd, kept):
+    """Decode consecutive windows with :func:`decode_step` and score each against its known bin, in one call.
+
+    The held-out pass of ``decoder.encoding.calibration``: a Python loop
+    over :meth:`BayesDecoder.decode` cost a third of the pass beside the
+    compiled step itself. Each window is decoded exactly as ``decode`` does
+    it (the same kernel, the marks' terms tempered in the same way, the
+    posterior carried to the next window), so every number is the one that
+    loop gave.
+
+    Parameters
+    ----------
+    fired_rows : ndarray, shape (n_fired,), int64
+    fired_counts : ndarray, shape (n_fired,), float64
+        The windows' fired rows and counts end to end; window ``i`` holds
+        entries ``step_start[i]:step_start[i + 1]``.
+    step_start : ndarray, shape (n_steps + 1,), int64
+    true_bins : ndarray, shape (n_steps,), int64
+        The known bin of each window, -1 where unknown (not scored).
+    keep : ndarray, shape (n_steps,), bool
+        Windows whose posterior is copied into ``kept``, in order.
+    mark_log_like : ndarray, shape (n_steps, n_bins) or (0, n_bins), float64
+        Each window's marks log-likelihood (untempered), or no rows.
+    mark_expected : ndarray, shape (n_bins,), float64
+        The marks' expected count (untempered); read only with marks.
+    temperature : float
+        The decoder's likelihood temperature, dividing the marks' terms.
+    has_transition : bool
+        Whether each posterior is the next window's prior (the state-space
+        prior) or the given one stays (the uniform prior).
+    decode_before, decode_after : tuple
+        :func:`decode_step`'s arguments between the counts and
+        ``previous``, and between ``mark_terms`` and ``out``.
+    buffers : ndarray, shape (3, n_bins + 4 + n_zones), float64
+        Row 2 holds the posterior before the first window (the decoder's
+        ``previous``); rows 0 and 1 take the windows' outputs in turn.
+    mark_terms : ndarray, shape (3, n_bins) or (0, n_bins), float64
+        :func:`decode_step`'s ``mark_terms`` (overwritten with marks).
+    points : ndarray, shape (n_steps, 4), float64
+        Out: each window's MAP centre and posterior mean (x, y each).
+    above : ndarray, shape (n_steps,), float64
+        Out, where the bin is known: the posterior mass of the bins more
+        probable than the known one (:func:`mass_above`); the bin lies in
+        the HPD region of a mass when this is below it.
+    n_hpd : ndarray, shape (n_steps,), int64
+        Out: the number of bins in each window's HPD region.
+    kept : ndarray, shape (keep.sum(), n_bins), float64
+        Out: the posteriors of the ``keep`` windows.
+
+    Returns
+    -------
+    status : int
+        -1, or the first window with a bad entry (outputs before it are written).
+    bad_entry : int
+        That window's bad entry, as :func:`decode_step` returns it.
+    underflows : int
+        Windows decoded with the uniform prior after the state-space prior underflowed.
+    last : int
+        Row of ``buffers`` holding the last posterior carried (2: none was).
+    """
+    n_bins = mark_terms.shape[1]
+    scratch = np.empty(n_bins)
+    with_marks = mark_log_like.shape[0] > 0
+    last = 2
+    n_kept = 0
+    underflows = 0
+    for i in range(true_bins.shape[0]):
+        if with_marks:
+            for j in range(n_bins):
+                mark_terms[0, j] = mark_log_like[i, j] / temperature
+                mark_terms[1, j] = mark_expected[j] / temperature
+        out = buffers[i % 2]
+        a, b = step_start[i], step_start[i + 1]
+        status, map_bin, size, n_spikes, peak = decode_step(
+            fired_rows[a:b], fired_counts[a:b], *decode_before, buffers[last], mark_terms, *decode_after, out
+        )
+        if status >= 0:
+            return i, status, underflows, last
+        if status == STEP_UNDERFLOW:
+            underflows += 1
+        if has_transition:
+            last = i % 2
+        for j in range(4):
+            points[i, j] = out[n_bins + j]
+        n_hpd[i] = size
+        t = true_bins[i]
+        if t >= 0:
+            above[i] = mass_above(out[:n_bins], out[t], scratch)
+        if keep[i]:
+            kept[n_kept, :] = out[:n_bins]
+            n_kept += 1
+    return -1, -1, underflows, last
+
+
+def decode_held_out_numpy(fired_rows, fired_counts, step_start, true_bins, keep, mark_log_like, mark_expected,
+                          temperature, has_transition, decode_before, buffers, mark_terms, decode_after, points, above,
+                          n_hpd, kept):
+    """Numpy twin of :func:`decode_held_out`: :func:`decode_step_numpy` window by window."""
+    n_bins = mark_terms.shape[1]
+    last, n_kept, underflows = 2, 0, 0
+    for i in range(true_bins.shape[0]):
+        if mark_log_like.shape[0]:
+            np.divide(mark_log_like[i], temperature, out=mark_terms[0])
+            np.divide(mark_expected, temperature, out=mark_terms[1])
+        out = buffers[i % 2]
+        a, b = step_start[i], step_start[i + 1]
+        status, _, size, _, _ = decode_step_numpy(fired_rows[a:b], fired_counts[a:b], *decode_before, buffers[last],
+                                                  mark_terms, *decode_after, out)
+        if status >= 0:
+            return i, status, underflows, last
+        underflows += status == STEP_UNDERFLOW
+        if has_transition:
+            last = i % 2
+        points[i] = out[n_bins : n_bins + 4]
+        n_hpd[i] = size
+        if true_bins[i] >= 0:
+            above[i] = mass_above_numpy(out[:n_bins], out[true_bins[i]], None)
+        if keep[i]:
+            kept[n_kept] = out[:n_bins]
+            n_kept += 1
+    return -1, -1, underflows, last

@@ -12,7 +12,7 @@ from decoder.inference import _kernels
 
 BACKENDS = ("numba", "numpy")
 
-_KERNEL_NAMES = ("convolve_separable", "decode_step", "decode_window_step")
+_KERNEL_NAMES = ("convolve_separable", "decode_step", "decode_window_step", "decode_held_out", "mass_above")
 
 
 def kernel_set(backend: str) -> SimpleNamespace:

@@ -30,6 +30,7 @@ import numpy as np
 
 from decoder.inference import _kernels
 from decoder.inference.checks import bin_mask, kernel_set, positive_finite
+from decoder.inference.floored_rates import FlooredRates, floored_rates
 from decoder.inference.heading_velocity import HeadingVelocity
 from decoder.inference.random_walk import RandomWalk
 from decoder.space.environments import Environment
@@ -106,6 +107,29 @@ class DecodedStep(NamedTuple):
     decoded_xy_cm: np.ndarray
 
 
+class HeldOutPass(NamedTuple):
+    """What :meth:`BayesDecoder.decode_held_out` keeps of each window (``n_steps`` of them).
+
+    Attributes
+    ----------
+    points_cm : ndarray of float64, shape (n_steps, 4)
+        MAP centre (x, y) and posterior mean (x, y) of each window.
+    above_true : ndarray of float64, shape (n_steps,)
+        Posterior mass of the bins more probable than the window's known
+        bin: the known bin lies in the HPD region of mass ``m`` when this is
+        below ``m``. NaN where the bin is unknown.
+    n_hpd : ndarray of int64, shape (n_steps,)
+        Bins in each window's 95 % HPD region.
+    kept : ndarray of float64, shape (n_kept, n_bins)
+        The posteriors of the windows asked for, in order.
+    """
+
+    points_cm: np.ndarray
+    above_true: np.ndarray
+    n_hpd: np.ndarray
+    kept: np.ndarray
+
+
 class BayesDecoder:
     """Posterior over position from the spike counts of one window.
 
@@ -128,9 +152,12 @@ class BayesDecoder:
 
     Parameters
     ----------
-    rate_maps_hz : ndarray of float64, shape (n_units, n_bins)
+    rate_maps_hz : ndarray of float64, shape (n_units, n_bins), or FlooredRates
         Firing-rate map of each unit (Hz); must be finite and non-negative
-        on the valid bins (other bins are ignored, NaN allowed there).
+        on the valid bins (other bins are ignored, NaN allowed there). Or
+        the maps as ``decoder.inference.floored_rates.floored_rates`` made
+        them for these valid bins and ``rate_floor_hz``, when several
+        decoders share them.
         ``n_units`` may be 0 for a decoder that takes its whole likelihood
         from waveform marks (``mark_log_like`` of :meth:`decode`).
     environment : Environment
@@ -202,7 +229,7 @@ class BayesDecoder:
 
     def __init__(
         self,
-        rate_maps_hz: np.ndarray,
+        rate_maps_hz: np.ndarray | FlooredRates,
         environment: Environment,
         valid_mask: np.ndarray,
         window_s: float,
@@ -267,37 +294,23 @@ class BayesDecoder:
         self.valid_mask = valid.view()
         self.valid_mask.setflags(write=False)
 
-        rates = np.asarray(rate_maps_hz)
-        if rates.ndim != 2 or rates.shape[1] != n_bins or rates.dtype.kind not in "iuf":
-            raise ValueError(
-                f"rate_maps_hz must be a numeric array of shape (n_units, {n_bins}), "
-                f"got {rates.dtype} of shape {rates.shape}"
-            )
-        # Every bin valid (an arena's grid): the maps themselves, no gathered copy. C order, as
-        # np.full made it before: the sum over units below adds in memory order.
-        all_valid = bool(valid.all())
-        on_valid = np.ascontiguousarray(rates if all_valid else rates[:, valid], dtype=np.float64)
-        # NaN and negative rates fail ">= 0"; an infinite one makes the largest infinite.
-        if on_valid.size and not ((on_valid >= 0).all() and np.isfinite(on_valid.max())):
-            unit = int(np.flatnonzero(~(np.isfinite(on_valid) & (on_valid >= 0)).all(axis=1))[0])
-            raise ValueError(f"rate_maps_hz row {unit} holds a negative, NaN or infinite rate on a valid bin")
-        self.n_units, self.n_bins = rates.shape
-        if all_valid:
-            floored = np.maximum(on_valid, self.rate_floor_hz)
+        if isinstance(rate_maps_hz, FlooredRates):
+            rates = rate_maps_hz
+            if rates.rate_floor_hz != self.rate_floor_hz or not np.array_equal(rates.valid, valid):
+                raise ValueError("the floored rates were made for other valid bins or another rate floor")
         else:
-            floored = np.full((self.n_units, n_bins), self.rate_floor_hz)
-            floored[:, valid] = np.maximum(on_valid, self.rate_floor_hz)
+            rates = floored_rates(rate_maps_hz, valid, self.rate_floor_hz)
+        self.n_units, self.n_bins = rates.floored_hz.shape
         # Both terms of the log-likelihood are linear in them, so dividing
         # here tempers every window, and the in-place updates stay exact.
-        # In place, the same division without a second array; by 1.0 it
-        # would change no bit, so it is left out.
-        self._log_rate = np.log(floored)
+        # By 1.0 it would change no bit, so it is left out (and the
+        # logarithm shared: no kernel writes to it).
+        self._log_rate = rates.log_floored
         if self.likelihood_temperature != 1.0:
-            self._log_rate /= self.likelihood_temperature
-        floored.setflags(write=False)
-        self._floored_hz = floored
+            self._log_rate = rates.log_floored / self.likelihood_temperature
+        self._floored_hz = rates.floored_hz
         with np.errstate(over="ignore"):
-            self._expected_total = self.window_s * floored.sum(axis=0) / self.likelihood_temperature
+            self._expected_total = self.window_s * rates.total_hz / self.likelihood_temperature
         if not np.all(np.isfinite(self._expected_total)):
             raise ValueError(
                 "rate_maps_hz sum to an infinite expected spike count; check the units (Hz) of the maps"
@@ -574,18 +587,90 @@ class BayesDecoder:
             )
         return self._step(buf, status, map_bin, n_hpd, n_spikes, peak), first
 
+    def decode_held_out(self, fired_rows: np.ndarray, fired_counts: np.ndarray, step_start: np.ndarray,
+                        true_bins: np.ndarray, keep: np.ndarray, mark_log_like: np.ndarray | None = None,
+                        mark_expected: np.ndarray | None = None) -> HeldOutPass:
+        """Decode consecutive windows and score each against a known bin, in one compiled call.
+
+        The same windows, bit for bit, as :meth:`decode` called on each in
+        turn (the posterior carried from one to the next); for calibration,
+        which decodes thousands of held-out windows per pass and keeps only
+        these figures of each.
+
+        Parameters
+        ----------
+        fired_rows : ndarray of int64, shape (n_fired,)
+        fired_counts : ndarray of float64, shape (n_fired,)
+            Every window's fired rows and counts (as :meth:`decode` takes
+            them), end to end; window ``i`` holds ``step_start[i]:step_start[i + 1]``.
+        step_start : ndarray of int64, shape (n_steps + 1,)
+        true_bins : ndarray of int64, shape (n_steps,)
+            The known bin of each window; -1 where unknown.
+        keep : ndarray of bool, shape (n_steps,)
+            Windows whose whole posterior is returned.
+        mark_log_like : ndarray of float64, shape (n_steps, n_bins), optional
+            Each window's ``mark_log_like`` (as in :meth:`decode`).
+        mark_expected : ndarray of float64, shape (n_bins,), optional
+            The marks' expected count, the same for every window.
+
+        Returns
+        -------
+        HeldOutPass
+
+        Raises
+        ------
+        ValueError
+            As :meth:`decode` does, for the first window with a bad entry or
+            mark terms that are not finite on a valid bin.
+        """
+        n_steps = true_bins.shape[0]
+        if mark_log_like is None:
+            log_like, expected, terms = np.zeros((0, self.n_bins)), np.zeros(self.n_bins), self._no_marks
+        else:
+            log_like = np.ascontiguousarray(mark_log_like, dtype=np.float64)
+            expected = np.ascontiguousarray(mark_expected, dtype=np.float64)
+            if log_like.shape != (n_steps, self.n_bins) or expected.shape != (self.n_bins,):
+                raise ValueError(f"mark_log_like must have shape ({n_steps}, {self.n_bins}) and mark_expected "
+                                 f"({self.n_bins},); got {log_like.shape} and {expected.shape}")
+            if not (np.isfinite(log_like[:, self._valid]).all() and np.isfinite(expected[self._valid]).all()):
+                raise ValueError("mark_log_like or mark_expected holds a NaN or infinite value on a valid bin; "
+                                 "floor the intensities")
+            terms = self._mark_terms
+        buffers = np.empty((3, self._out_size))
+        buffers[2] = self._previous
+        held = HeldOutPass(np.empty((n_steps, 4)), np.full(n_steps, np.nan), np.empty(n_steps, np.int64),
+                           np.empty((int(np.count_nonzero(keep)), self.n_bins)))
+        window, bad, underflows, last = self._k.decode_held_out(
+            fired_rows, fired_counts, step_start, true_bins, keep, log_like, expected, self.likelihood_temperature,
+            self.transition is not None, self._args_before, buffers, terms, self._args_after, *held,
+        )
+        self._note_underflows(underflows)
+        if last != 2:
+            self._previous = buffers[last].copy()
+            self._previous.setflags(write=False)
+        if window >= 0:
+            a = step_start[window]
+            raise self._bad_entry(fired_rows[a:], fired_counts[a:], bad)
+        return held
+
+    def _note_underflows(self, n: int) -> None:
+        """Count ``n`` windows whose state-space prior underflowed."""
+        if not n:
+            return
+        self.underflow_resets += n
+        # Loud once, then quiet: a pathological stream could repeat this at every step.
+        log = logger.warning if self.underflow_resets == n else logger.debug
+        log(
+            "state-space prior underflowed (no prior mass where the spikes point); "
+            "decoding this window with the uniform prior (%d so far)",
+            self.underflow_resets,
+        )
+
     def _step(self, buf: np.ndarray, status: int, map_bin: int, n_hpd: int, n_spikes: int,
               peak: float) -> DecodedStep:
         """The DecodedStep of a window the kernel decoded into ``buf``."""
         if status == _kernels.STEP_UNDERFLOW:
-            self.underflow_resets += 1
-            # Loud once, then quiet: a pathological stream could repeat this at every step.
-            log = logger.warning if self.underflow_resets == 1 else logger.debug
-            log(
-                "state-space prior underflowed (no prior mass where the spikes point); "
-                "decoding this window with the uniform prior (%d so far)",
-                self.underflow_resets,
-            )
+            self._note_underflows(1)
         # Read-only from here on: the caller gets views of it, and the next
         # step reads it as the previous posterior.
         buf.setflags(write=False)

@@ -17,6 +17,8 @@ from __future__ import annotations
 
 import logging
 
+import numpy as np
+
 from decoder.config import parse_config
 from decoder.session.pipeline import Pipeline
 from rig_adapters.wire import protocol
@@ -79,6 +81,12 @@ def warm_up(seconds: float = 8.0) -> int:
         for chunk in session.chunks(until_s=seconds):
             for msg in chunk.messages:
                 steps += len(pipeline.on_message(protocol.decode(protocol.encode(msg))))
+        if pipeline.steps is not None:
+            # The fit's held-out pass (decoder.encoding.calibration), which a session this short cannot run:
+            # a live session runs it at its fit, with data streaming in. One window of the fitted decoder
+            # compiles it (argument types do not depend on the sizes).
+            pipeline.steps.decoder.decode_held_out(np.zeros(0, np.int64), np.zeros(0), np.zeros(2, np.int64),
+                                                   np.zeros(1, np.int64), np.ones(1, bool))
     finally:
         logging.disable(logging.NOTSET)
     return steps
