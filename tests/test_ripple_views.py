@@ -31,7 +31,7 @@ from decoder.signals.envelope_trace import EnvelopeTrace
 from decoder.signals.ripple_detector import RippleDetector
 from rig_adapters.monitor.session_view import SessionView
 from rig_adapters.wire import protocol
-from rig_adapters.wire.outputs import RIPPLE_ENVELOPE_MAX
+from rig_adapters.wire.outputs import RIPPLE_ENVELOPE_MAX, RIPPLE_LOG_ODDS_MAX
 
 REPO = Path(__file__).resolve().parent.parent
 CONFIG = REPO / "configs" / "w_maze_ripples.toml"
@@ -106,7 +106,10 @@ def test_ripple_view_round_trips_through_the_state_frame():
     np.testing.assert_allclose(e["bins"][:, 1], [0.0, 3.0, 6.0, 9.0])
     assert e["bins"][:, 3].tolist() == [0, 1, 2, 0] and e["decided"] == ["towards_goal"]
     # The deciding log odds, towards then away per zone; an infinite one travels clipped (PROTOCOL.md, section 8).
-    assert e["log_odds"].tolist() == [2.5, -protocol.RIPPLE_LOG_ODDS_MAX]
+    assert e["log_odds"].tolist() == [2.5, -RIPPLE_LOG_ODDS_MAX]
+    # An event just detected has no bin yet, hence no log odds.
+    fresh = protocol.decode_output(_state(1, 3.0, protocol.ripple_view(det, [ContentEvent(2.0)])))["ripples"]
+    assert fresh["events"][0]["log_odds"].size == 0
     t0, env = det.trace_.recent(6.0)
     assert out["t0_s"] == t0
     np.testing.assert_array_equal(out["envelope_sd"], env)

@@ -424,9 +424,12 @@ def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s:
 def wire_log_odds(log_odds: list) -> np.ndarray:
     """An event's log odds (2 rows of n_zones) as the flat float32 vector ``lo``: towards row, then away row.
 
-    The first ``RIPPLE_NAMES_MAX`` zones; sizes beyond ``RIPPLE_LOG_ODDS_MAX`` clipped to it, NaN kept.
+    The first ``RIPPLE_NAMES_MAX`` zones; sizes beyond ``RIPPLE_LOG_ODDS_MAX`` clipped to it, NaN kept;
+    empty before the event's first bin.
     """
-    a = np.array(log_odds, np.float64).reshape(-1, len(log_odds[0]) if log_odds else 0)[:, :RIPPLE_NAMES_MAX]
+    if not log_odds:
+        return np.zeros(0, _F32)
+    a = np.array(log_odds, np.float64)[:, :RIPPLE_NAMES_MAX]
     return np.clip(a, -RIPPLE_LOG_ODDS_MAX, RIPPLE_LOG_ODDS_MAX).astype(_F32).ravel()
 
 
