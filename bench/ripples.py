@@ -40,14 +40,11 @@ chunks of ``chunk_s`` as an acquisition system would:
   15 ms bins from 20 ms before its onset to its LFP offset, the resting
   animal's own place firing as a background at its tracked position
   (decoder.session.ripples, decoder.session.replay_content) and judged by
-  one rule, "a sequence moving towards the goal" (by default on the sequence
-  filter's posterior log odds, decoder.inference.sequence_filter: fires once
-  they exceed ``--min-log-odds`` after ``--min-bins-log-odds`` bins with
-  spikes; ``--measure rank``: on Kendall's tau-b, ``--min-correlation`` after
-  ``--min-bins``; the other measure's rule judges the same bins in a bank of
-  its own, its figures under ``rank_content_*`` or ``log_odds_content_*``,
-  and ``content_accuracy_fire_always`` is what firing on every event
-  scores): towards a zone of one
+  one rule, "a sequence moving towards the goal" (on the sequence filter's
+  posterior log odds, decoder.inference.sequence_filter, the one measure a
+  sequence rule judges: fires once they exceed ``--min-log-odds`` after
+  ``--min-bins`` bins with spikes; ``content_accuracy_fire_always`` is what
+  firing on every event scores): towards a zone of one
   bin's radius at the well at (0, 80), which holds the well's own bin and no
   other. The experimenter's "towards the well" means towards the well, and
   so does the truth; a wider zone (12 cm until now) puts the last bins of a
@@ -66,7 +63,7 @@ chunks of ``chunk_s`` as an acquisition system would:
   time: the deciding bin's end, or the ripple's detection for a bin that
   ended before it). ``--events`` prints each replay's truth,
   draw, approach and length, the decision and when, and the
-  log odds and tau-b bin by bin. ``content_bin_cpu_ms_p50/p99``:
+  log odds bin by bin, with the reported (unjudged) tau-b beside. ``content_bin_cpu_ms_p50/p99``:
   the thread's CPU time per content bin decoded as the spikes close it
   (decoding, the sequence filter and judging; bins an LFP chunk completes
   are left out); ``sequence_step_us_p50/p99``: the filter's step alone, and
@@ -248,20 +245,13 @@ def chunk_cost(chunk_s: float, seed: int) -> dict:
 GOAL_CM = (0.0, 80.0)
 #: The log-odds rule's threshold (natural log) and its least bins with spikes: chosen on seeds 1-3.
 MIN_LOG_ODDS = 0.0
-MIN_BINS_LOG_ODDS = 2
+MIN_BINS = 2
 
 
-#: The sequence rules the content run can judge: the sequence filter's log odds, or the rank correlation.
-MEASURES = ("log_odds", "rank")
-
-
-def _rule(measure: str, min_bins: int, min_correlation: float, min_log_odds: float) -> TriggerRule:
-    """The towards-the-goal rule on one measure."""
-    if measure == "log_odds":
-        return TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
-                           min_log_odds=min_log_odds)
+def towards_goal_rule(min_bins: int, min_log_odds: float) -> TriggerRule:
+    """The towards-the-goal rule on the sequence filter's log odds."""
     return TriggerRule("towards_goal", zone="goal", kind="replay_towards", min_bins=min_bins,
-                       min_correlation=min_correlation)
+                       min_log_odds=min_log_odds)
 
 
 def _loose_bank(rule: TriggerRule) -> TriggerBank:
@@ -294,14 +284,13 @@ def sequence_cost(content: ReplayContent, bins: list) -> dict:
             "sequence_step_kernel_vs_numpy_p50": float(np.median(out["numba"]) / np.median(out["numpy"]))}
 
 
-def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place_cells: int,
+def content_run(duration_s: float, learn_s: float, seed: int, rule: TriggerRule, place_cells: int,
                 show_events: bool = False, marks: bool = False, goal_radius_cm: float | None = None,
                 events_out: list | None = None, ripples_overrides: dict | None = None) -> dict:
-    """Replay content on the W maze: the towards-the-goal rules against the simulator's truth.
+    """Replay content on the W maze: the towards-the-goal rule against the simulator's truth.
 
-    ``rules``: measure name to its rule; the first judges inside the session's ``RippleStream`` (its
-    cost is in ``content_bin_cpu_ms_*``), the others judge the same content bins in banks of their own,
-    for a comparison on the same events. With ``marks``, the same session
+    ``rule`` judges inside the session's ``RippleStream`` (its cost is in ``content_bin_cpu_ms_*``).
+    With ``marks``, the same session
     (``configs/w_maze_ripples_marks.toml``: the same cells, path, LFP and replays) reaches the decoder as
     tetrode marks alone, learned by the session's ``MarkStream``. ``ripples_overrides``: ``[ripples]``
     settings replaced (the sequence filter's, from the command line).
@@ -327,10 +316,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place
     radius = env.bin_cm if goal_radius_cm is None else goal_radius_cm
     goal = CircleZone("goal", GOAL_CM, radius)
     masks = zone_masks([goal], env)
-    names = list(rules)
-    banks = {name: _loose_bank(rule) for name, rule in rules.items()}
     tracked = TrackHistory()
-    stream = RippleStream(ripple_settings, banks[names[0]], tracked)
+    stream = RippleStream(ripple_settings, _loose_bank(rule), tracked)
     lfp, bins, bin_cpu_ms = [], [], []
     detected: dict[float, float] = {}
     watermark = -np.inf
@@ -376,17 +363,7 @@ def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place
                     bins.append(out)
                 elif not out.moving:
                     detected[out.detection.onset_s] = out.t_s
-    # The other rules judge the same bins, each at the time the stream judged them (the bin's end, or the
-    # ripple's detection for a bin that ended before it).
-    fired = {names[0]: np.array([e.t_s for b in bins for e in b.events])}
-    for name in names[1:]:
-        bank, times = banks[name], []
-        for b in bins:
-            c = b.content
-            t = max(b.t_s, detected.get(c.onset_s, -np.inf))
-            times.extend(e.t_s for e in bank.content(t, c.index, c.n_used, c.mean_mass, c.rank_correlation,
-                                                        b.tracked_xy_cm, 0.0, 0.0, c.log_odds))
-        fired[name] = np.array(times)
+    fired = np.array([e.t_s for b in bins for e in b.events])
     x = np.concatenate(lfp)
     rate = settings.lfp.rate_hz
     ref = offline_ripples(x, rate)
@@ -409,40 +386,33 @@ def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place
                "bin_end_s": [b.t_s for b in mine], "n_used": [b.content.n_used for b in mine],
                "n_spikes": [b.content.n_spikes for b in mine],
                "tau": [round(float(b.content.rank_correlation[0]), 2) for b in mine],
-               "z": [round(float(b.content.rank_z[0]), 1) for b in mine],
                "log_odds": [round(float(b.content.log_odds[0, 0]), 2) for b in mine]}
         if events_out is not None:
             # Each bin's posterior, for looking at the filter's settings offline (on the choosing seeds only).
             row["observed"] = [b.content.n_spikes >= min_spikes for b in mine]
             row["posterior"] = [np.round(b.content.posterior, 6).tolist() for b in mine]
-        for name in names:
-            hit = fired[name][(fired[name] >= onset - EARLY_S) & (fired[name] <= r.end_s + ripple_settings.content_max_s)]
-            row[f"said_{name}"] = bool(hit.size)
-            row[f"decision_ms_{name}"] = (hit[0] - onset) * 1e3 if hit.size else np.nan
+        hit = fired[(fired >= onset - EARLY_S) & (fired <= r.end_s + ripple_settings.content_max_s)]
+        row["said"] = bool(hit.size)
+        row["decision_ms"] = (hit[0] - onset) * 1e3 if hit.size else np.nan
         rows.append(row)
-    first = names[0]
     if show_events:
-        print(f"onset_s   truth    drawn   approach/length_cm  said({first}) ms  bins used  "
-              f"log odds towards per bin; tau-b", file=sys.stderr)
+        print("onset_s   truth    drawn   approach/length_cm  said  ms  bins used  "
+              "log odds towards per bin; tau-b (reported, not judged)", file=sys.stderr)
         for e in rows:
             print(f"{e['onset_s']:8.2f}  {'towards' if e['truth'] else 'other':7s}  "
                   f"{'goal' if e['drawn_to_goal'] else 'random':6s}  {e['approach_cm']:6.0f}/{e['length_cm']:4.0f}"
-                  f"         {'yes' if e[f'said_{first}'] else 'no':3s}  {e[f'decision_ms_{first}']:5.0f}  "
+                  f"         {'yes' if e['said'] else 'no':3s}  {e['decision_ms']:5.0f}  "
                   f"{e['bins']:4d} {e['used']:4d}  {e['log_odds']}; {e['tau']}", file=sys.stderr)
     if events_out is not None:
         events_out.extend(rows)
     truth = np.array([e["truth"] for e in rows], bool)
-    result: dict = {}
-    for i, name in enumerate(names):
-        prefix = "content" if i == 0 else f"{name}_content"
-        said = np.array([e[f"said_{name}"] for e in rows], bool)
-        decisions = np.array([e[f"decision_ms_{name}"] for e in rows if e["truth"] and e[f"said_{name}"]])
-        result[f"{prefix}_accuracy"] = float(np.mean(truth == said)) if rows else None
-        result[f"{prefix}_accuracy_towards"] = float(np.mean(said[truth])) if truth.any() else None
-        result[f"{prefix}_accuracy_other"] = float(np.mean(~said[~truth])) if (~truth).any() else None
-        for q in (10, 50, 90):
-            result[f"{prefix}_decision_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
-    rule = rules[first]
+    said = np.array([e["said"] for e in rows], bool)
+    decisions = np.array([e["decision_ms"] for e in rows if e["truth"] and e["said"]])
+    result = {"content_accuracy": float(np.mean(truth == said)) if rows else None,
+              "content_accuracy_towards": float(np.mean(said[truth])) if truth.any() else None,
+              "content_accuracy_other": float(np.mean(~said[~truth])) if (~truth).any() else None}
+    for q in (10, 50, 90):
+        result[f"content_decision_ms_p{q}"] = float(np.percentile(decisions, q)) if decisions.size else None
     return {
         **result,
         # Firing on every event, without looking at its content: the share of events truly towards the goal.
@@ -450,11 +420,8 @@ def content_run(duration_s: float, learn_s: float, seed: int, rules: dict, place
         "content_events": len(rows),
         "content_towards_goal": int(truth.sum()),
         "content_drawn_to_goal": int(sum(e["drawn_to_goal"] for e in rows)),
-        "content_measure": first,
-        "content_compared": names[1:],
         "content_min_bins": rule.min_bins,
-        "content_min_log_odds": rules["log_odds"].min_log_odds if "log_odds" in rules else None,
-        "content_min_correlation": rules["rank"].min_correlation if "rank" in rules else None,
+        "content_min_log_odds": rule.min_log_odds,
         "content_min_spikes": min_spikes,
         "content_speed_cm_s": list(ripple_settings.content_speed_cm_s),
         "content_slack_cm": ripple_settings.content_slack_cm,
@@ -526,18 +493,10 @@ def main(argv=None) -> int:
     parser.add_argument("--learn-s", type=float, default=120.0, help="seconds of that run the place model learns from")
     parser.add_argument("--place-cells", type=int, default=150,
                         help="place cells of that run (50-150 units on a W track is common in the literature)")
-    parser.add_argument("--measure", choices=MEASURES, default="log_odds",
-                        help="what the towards-the-goal rule judges: the sequence filter's posterior log odds "
-                             "(log_odds) or Kendall's tau-b of time and median distance (rank); the other is "
-                             "judged on the same bins for comparison, its figures under <measure>_content_*")
     parser.add_argument("--min-log-odds", type=float, default=MIN_LOG_ODDS,
-                        help=f"the log-odds rule's threshold (natural log; {MIN_LOG_ODDS}: chosen on seeds 1-3)")
-    parser.add_argument("--min-bins-log-odds", type=int, default=MIN_BINS_LOG_ODDS,
-                        help=f"content bins with spikes before the log-odds rule may fire "
-                             f"({MIN_BINS_LOG_ODDS}: chosen on seeds 1-3)")
-    parser.add_argument("--min-bins", type=int, default=2,
-                        help="content bins with spikes before the rank rule may fire (2: chosen on seeds 1-3)")
-    parser.add_argument("--min-correlation", type=float, default=0.3, help="the rank rule's least |tau-b|")
+                        help=f"the rule's threshold on the log odds (natural log; {MIN_LOG_ODDS}: chosen on seeds 1-3)")
+    parser.add_argument("--min-bins", type=int, default=MIN_BINS,
+                        help=f"content bins with spikes before the rule may fire ({MIN_BINS}: chosen on seeds 1-3)")
     parser.add_argument("--speed-cm-s", type=float, nargs=2, default=None, metavar=("LOW", "HIGH"),
                         help="[ripples] content_speed_cm_s for the sequence filter (default: the config's)")
     parser.add_argument("--slack-cm", type=float, default=None, help="[ripples] content_slack_cm")
@@ -566,9 +525,7 @@ def main(argv=None) -> int:
         result.update(chunk_cost(args.chunk_s, args.seed))
         return report(result, args.json)
     events: dict[str, list] = {"units": [], "marks": []}
-    built = {"log_odds": _rule("log_odds", args.min_bins_log_odds, args.min_correlation, args.min_log_odds),
-             "rank": _rule("rank", args.min_bins, args.min_correlation, args.min_log_odds)}
-    rules = {args.measure: built[args.measure], **{k: v for k, v in built.items() if k != args.measure}}
+    rule = towards_goal_rule(args.min_bins, args.min_log_odds)
     overrides = {key: value for key, value in (("content_speed_cm_s", args.speed_cm_s),
                                                ("content_slack_cm", args.slack_cm),
                                                ("content_stray_p", args.stray_p),
@@ -576,7 +533,7 @@ def main(argv=None) -> int:
     for marks, key in ((False, "units"), (True, "marks")):
         if marks and not args.marks:
             continue
-        out = content_run(args.content_duration_s, args.learn_s, args.seed, rules, args.place_cells, args.events,
+        out = content_run(args.content_duration_s, args.learn_s, args.seed, rule, args.place_cells, args.events,
                           marks=marks, goal_radius_cm=args.goal_radius_cm,
                           events_out=events[key] if args.events_json else None, ripples_overrides=overrides)
         result.update({f"marks_{k}": v for k, v in out.items()} if marks else out)

@@ -107,33 +107,6 @@ def test_rank_correlation_counts_ties_as_tau_b_does_and_shrugs_off_one_far_bin()
     assert m.rank_correlation()[0] < -0.55 and m.line()[0][0] > -0.4
 
 
-def test_the_rank_correlations_z_score_is_scipys_normal_approximation():
-    # scipy.stats.kendalltau(method="asymptotic") tests tau-b with the normal approximation of Kendall's
-    # S, its variance corrected for ties (Kendall 1948, Rank Correlation Methods); its two-sided p value
-    # is 2 sf(|z|), so |z| = isf(p / 2). Random posteriors (no ties), and one-hot ones (ties), 3 to 12 bins
-    # (scipy's tie term divides by n - 2).
-    rng = np.random.default_rng(11)
-    dist = zone_distances_cm(TRACK, END)
-    for one_hot in (False, True):
-        m = SequenceMeasures(END, dist)
-        times = 0.0075 + 0.015 * np.arange(12)
-        d = []
-        for k, t in enumerate(times):
-            p = np.eye(N_BINS)[rng.integers(8, 14)] if one_hot else rng.dirichlet(np.full(N_BINS, 0.3))
-            m.add(t, p)
-            d.append(_weighted_median(dist[0], p))
-            if k == 0:
-                assert np.isnan(m.rank_z()[0])
-            if k < 2:
-                continue
-            if np.all(np.array(d) == d[0]):
-                assert np.isnan(m.rank_z()[0])
-                continue
-            ref = stats.kendalltau(times[:k + 1], d, method="asymptotic")
-            want = np.sign(ref.statistic) * stats.norm.isf(ref.pvalue / 2)
-            assert m.rank_z()[0] == pytest.approx(want, abs=1e-6)
-
-
 def test_zone_distances_follow_the_track():
     d = zone_distances_cm(TRACK, END)[0]
     x = TRACK.bin_centers_cm[:, 0]
@@ -260,8 +233,10 @@ def _bank(*rules: TriggerRule, caps: SafetyCaps | None = None) -> TriggerBank:
     return bank
 
 
-def _judge(bank: TriggerBank, t: float, index: int, mass: float = 0.0, r: float = float("nan"), speed: float = 0.0):
-    return bank.content(t, index, index + 1, np.array([mass]), np.array([r]), np.array([1.0, 1.0]), speed, 0.0)
+def _judge(bank: TriggerBank, t: float, index: int, mass: float = 0.0, towards: float = float("nan"),
+           away: float = float("nan"), speed: float = 0.0):
+    return bank.content(t, index, index + 1, np.array([mass]), np.array([[towards], [away]]), np.array([1.0, 1.0]),
+                        speed, 0.0)
 
 
 def test_mass_rule_fires_once_per_event_after_min_bins():
@@ -278,16 +253,17 @@ def test_mass_rule_fires_once_per_event_after_min_bins():
     assert len(_judge(bank, 5.060, 3, mass=0.7)) == 1
 
 
-def test_towards_and_away_rules_read_the_correlation_sign():
-    towards = TriggerRule("to", zone="goal", kind="replay_towards", min_correlation=0.7, min_bins=2)
-    away = TriggerRule("from", zone="goal", kind="replay_away", min_correlation=0.7, min_bins=2)
+def test_towards_and_away_rules_read_their_row_of_the_log_odds():
+    towards = TriggerRule("to", zone="goal", kind="replay_towards", min_log_odds=2.0, min_bins=2)
+    away = TriggerRule("from", zone="goal", kind="replay_away", min_log_odds=2.0, min_bins=2)
     bank = _bank(towards, away)
-    _judge(bank, 1.015, 0, r=float("nan"))
-    assert [e.rule for e in _judge(bank, 1.030, 1, r=-0.8)] == ["to"]
+    _judge(bank, 1.015, 0, towards=9.0, away=9.0)  # one bin: below min_bins
+    assert [e.rule for e in _judge(bank, 1.030, 1, towards=2.5, away=-4.0)] == ["to"]
     _judge(bank, 3.015, 0)
-    assert [e.rule for e in _judge(bank, 3.030, 1, r=0.9)] == ["from"]
+    assert [e.rule for e in _judge(bank, 3.030, 1, towards=-4.0, away=2.5)] == ["from"]
     _judge(bank, 5.015, 0)
-    assert _judge(bank, 5.030, 1, r=0.5) == [] and _judge(bank, 5.045, 2, r=float("nan")) == []
+    # The threshold is strict, and NaN satisfies no rule.
+    assert _judge(bank, 5.030, 1, towards=2.0, away=2.0) == [] and _judge(bank, 5.045, 2) == []
 
 
 def test_content_rules_sit_beneath_the_caps_and_speed_bounds():
@@ -301,15 +277,18 @@ def test_content_rules_sit_beneath_the_caps_and_speed_bounds():
     assert not bank.armed and bank.disarm_reason == "session_cap"
     assert _judge(bank, 7.0, 0, mass=0.9) == [] and bank.counters["session_cap"] == 1
     stalled = _bank(rule)
-    assert stalled.content(1.0, 0, 1, np.array([0.9]), np.array([0.0]), np.array([1.0, 1.0]), 0.0, 5.0) == []
+    assert stalled.content(1.0, 0, 1, np.array([0.9]), np.zeros((2, 1)), np.array([1.0, 1.0]), 0.0,
+                            5.0) == []
     assert stalled.disarm_reason == "stall"
 
 
 def test_content_rule_settings_are_checked():
     with pytest.raises(ValueError, match="zone"):
         TriggerRule("x", kind="replay_towards")
-    with pytest.raises(ValueError, match="min_correlation"):
-        TriggerRule("x", zone="goal", kind="replay_away", min_correlation=1.5)
+    with pytest.raises(ValueError, match="min_log_odds"):
+        TriggerRule("x", zone="goal", kind="replay_away", min_log_odds=-0.5)
+    with pytest.raises(TypeError, match="min_correlation"):  # no longer a rule's setting (the config names it)
+        TriggerRule("x", zone="goal", kind="replay_away", min_correlation=0.5)
     with pytest.raises(ValueError, match="min_bins"):
         TriggerRule("x", zone="goal", kind="replay_mass", min_bins=0)
     with pytest.raises(ValueError, match="not among the zones"):
@@ -338,7 +317,7 @@ def _run_stream(seed: int = 2):
     speed[:int(rate)] = 10.0  # a short run first: ripples come once the animal has come to rest
     x = synth.block(speed)
     settings = RippleSettings(source="lfp", warm_up_s=5.0, baseline_window_s=20.0, content_max_s=0.1)
-    bank = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_correlation=0.5, min_bins=3)],
+    bank = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_log_odds=3.0, min_bins=3)],
                        ["goal"], SafetyCaps(refractory_s=0.25, max_per_minute=200))
     bank.arm(0.0)
     tracked = TrackHistory(keep_s=duration + 1)

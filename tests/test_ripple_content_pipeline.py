@@ -12,12 +12,13 @@ from __future__ import annotations
 import tomllib
 from pathlib import Path
 
+import pytest
 import tomli_w
 
-from decoder.config import parse_config
+from decoder.config import ConfigError, parse_config, with_overrides
 from decoder.session.pipeline import Pipeline
 from decoder.session.ripples import ContentOutput
-from rig_adapters.offline.report_data import content_event_rows
+from rig_adapters.offline.report_data import content_event_rows, format_figure
 from rig_adapters.sessions.summary import jsonable
 from rig_adapters.sim.settings import SimulationSettings
 from rig_adapters.sim.simulation import SimulatedSession
@@ -29,8 +30,6 @@ def _config():
     doc = tomllib.loads(CONFIG.read_text())
     doc["zones"] = [{"kind": "circle", "name": "left_well", "center_cm": [0.0, 80.0], "radius_cm": 20.0}]
     doc["rules"] = [{"name": "disrupt", "kind": "ripple"},
-                    {"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_bins": 3,
-                     "min_correlation": 0.3},
                     {"name": "towards_left_odds", "kind": "replay_towards", "zone": "left_well", "min_bins": 2,
                      "min_log_odds": 0.0},
                     {"name": "away_from_left_odds", "kind": "replay_away", "zone": "left_well", "min_bins": 2,
@@ -56,19 +55,17 @@ def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_
     assert content, "no ripple's content was decoded in the session"
     events = [e for c in content for e in c.events]
     # Whether a replay moved towards the well depends on the draw; every event is a content rule's.
-    rules = {"towards_left", "towards_left_odds", "away_from_left_odds"}
+    rules = {"towards_left_odds", "away_from_left_odds"}
     assert {e.rule for e in events} <= rules
     # A log-odds rule fires only on a bin whose filter gives the sequence odds above its threshold
-    # after its bins with spikes; the rank rule only where tau-b says so.
+    # after its bins with spikes.
     for c in content:
         for e in c.events:
             b = c.content
             if e.rule == "towards_left_odds":
                 assert b.log_odds[0, 0] > 0.0 and b.n_used >= 2
-            elif e.rule == "away_from_left_odds":
-                assert b.log_odds[1, 0] > 1.0 and b.n_used >= 2
             else:
-                assert b.rank_correlation[0] <= -0.3 and b.n_used >= 3
+                assert b.log_odds[1, 0] > 1.0 and b.n_used >= 2
     assert pipeline.counters["events"] >= len(events)
     assert pipeline.ripples.status()["counters"]["content_bins"] == len(content)
 
@@ -83,4 +80,27 @@ def test_the_pipeline_decodes_each_ripples_content_and_judges_it_by_the_content_
         assert (e["decision_ms"] is None) == (not e["decided"])
     rows = content_event_rows({"ripples": status})
     assert len(rows) == len(listed) and all(len(r) == 4 for r in rows)
+    # With the first sequence rule's row and zone, each row shows the event's log odds there (as of its decision).
+    odds = content_event_rows({"ripples": status}, (0, 0))
+    assert [r[:4] for r in odds] == rows
+    for r, e in zip(odds, listed):
+        assert e["log_odds"] and len(e["log_odds"]) == 2
+        assert r[4] == format_figure(e["log_odds"][0][0])
     assert {d for r in rows for d in r[2].split(", ")} <= rules | {"none"}
+
+
+def test_a_config_that_sets_min_correlation_is_refused_with_a_sentence_naming_min_log_odds():
+    # Sequence rules judge the log odds alone: the key they once took is refused by name, in the file
+    # and as a sweep's setting, never silently ignored (a config meant for tau-b would otherwise run).
+    doc = tomllib.loads(CONFIG.read_text())
+    doc["zones"] = [{"kind": "circle", "name": "left_well", "center_cm": [0.0, 80.0], "radius_cm": 20.0}]
+    doc["rules"] = [{"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_correlation": 0.3}]
+    with pytest.raises(ConfigError, match=r"min_correlation, which is no longer a key: .*set min_log_odds"):
+        parse_config(tomli_w.dumps(doc))
+    del doc["rules"][0]["min_correlation"]
+    config = parse_config(tomli_w.dumps(doc))
+    assert config.rules[0].min_log_odds == 0.0  # the default: more likely than not
+    for name in ("rules.min_correlation", "rules.towards_left.min_correlation"):
+        with pytest.raises(ConfigError, match="no longer a key: .*min_log_odds"):
+            with_overrides(config, {name: 0.3})
+    assert with_overrides(config, {"rules.min_log_odds": 2.0}).rules[0].min_log_odds == 2.0

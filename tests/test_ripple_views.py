@@ -31,7 +31,7 @@ from decoder.signals.envelope_trace import EnvelopeTrace
 from decoder.signals.ripple_detector import RippleDetector
 from rig_adapters.monitor.session_view import SessionView
 from rig_adapters.wire import protocol
-from rig_adapters.wire.outputs import RIPPLE_ENVELOPE_MAX
+from rig_adapters.wire.outputs import RIPPLE_ENVELOPE_MAX, RIPPLE_LOG_ODDS_MAX
 
 REPO = Path(__file__).resolve().parent.parent
 CONFIG = REPO / "configs" / "w_maze_ripples.toml"
@@ -83,7 +83,8 @@ def _detector_with_baseline() -> RippleDetector:
 
 def _event(onset_s: float, n_bins: int, decided=("towards_goal",)) -> ContentEvent:
     seq = [(onset_s + 0.015 * (k + 1), 3.0 * k, 80.0 - 10.0 * k, k % 3) for k in range(n_bins)]
-    return ContentEvent(onset_s, onset_s + 0.015 * n_bins, n_bins, list(decided), onset_s + 0.03, seq, [-0.8])
+    return ContentEvent(onset_s, onset_s + 0.015 * n_bins, n_bins, list(decided), onset_s + 0.03, seq,
+                        [[2.5], [-math.inf]])
 
 
 def _state(seq: int, t_s: float, ripples: dict | None) -> bytes:
@@ -104,6 +105,11 @@ def test_ripple_view_round_trips_through_the_state_frame():
     np.testing.assert_allclose(e["bins"][:, 0], [15.0, 30.0, 45.0, 60.0], atol=1e-3)  # ms after the onset
     np.testing.assert_allclose(e["bins"][:, 1], [0.0, 3.0, 6.0, 9.0])
     assert e["bins"][:, 3].tolist() == [0, 1, 2, 0] and e["decided"] == ["towards_goal"]
+    # The deciding log odds, towards then away per zone; an infinite one travels clipped (PROTOCOL.md, section 8).
+    assert e["log_odds"].tolist() == [2.5, -RIPPLE_LOG_ODDS_MAX]
+    # An event just detected has no bin yet, hence no log odds.
+    fresh = protocol.decode_output(_state(1, 3.0, protocol.ripple_view(det, [ContentEvent(2.0)])))["ripples"]
+    assert fresh["events"][0]["log_odds"].size == 0
     t0, env = det.trace_.recent(6.0)
     assert out["t0_s"] == t0
     np.testing.assert_array_equal(out["envelope_sd"], env)
@@ -119,6 +125,8 @@ def test_ripple_view_round_trips_through_the_state_frame():
     ({"events": [{"onset_s": 1.0, "bins": [[1.0, 2.0, 3.0, -1.0]]}]}, "bad_field"),
     ({"events": [{"onset_s": 1.0, "bins": b"\x00" * 6}]}, "bad_array"),
     ({"events": [{"onset_s": 1.0, "decided": [""]}]}, "bad_field"),
+    ({"events": [{"onset_s": 1.0, "log_odds": [1.0, 2.0, 3.0]}]}, "bad_field"),
+    ({"events": [{"onset_s": 1.0, "log_odds": [1.0, math.inf]}]}, "bad_field"),
     ({"colour": "red"}, "bad_field"),
 ])
 def test_a_bad_ripple_view_is_refused_with_a_reason(bad, reason):
@@ -174,6 +182,7 @@ def test_session_view_merges_events_across_frames_and_linearises_them():
     xy = np.array([row[1:3] for row in events[-1].sequence])
     np.testing.assert_allclose(last["positions"][0], config.environment.linearize(xy), atol=0.01)
     assert last["decided"] == ["towards_goal"] and last["decision_ms"] == pytest.approx(30.0)
+    assert last["log_odds"] == [[2.5], [-1000.0]]
 
 
 # ---------------------------------------------------------------- a live ripple session, watched and recorded
@@ -214,10 +223,8 @@ def watched_session(tmp_path_factory):
     # decided, two rules in two colours.
     doc = tomllib.loads(CONFIG.read_text())
     doc["zones"] = [{"kind": "circle", "name": "left_well", "center_cm": [0.0, 80.0], "radius_cm": 20.0}]
-    doc["rules"] = [{"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_bins": 2,
-                      "min_correlation": 0.3},
-                     {"name": "away_from_left", "kind": "replay_away", "zone": "left_well", "min_bins": 2,
-                      "min_correlation": 0.3}]
+    doc["rules"] = [{"name": "towards_left", "kind": "replay_towards", "zone": "left_well", "min_bins": 2},
+                     {"name": "away_from_left", "kind": "replay_away", "zone": "left_well", "min_bins": 2}]
     doc["simulation"]["lfp"]["ripple_rate_hz"] = 2.0
     config_path = tmp / "w_maze_content.toml"
     config_path.write_text(tomli_w.dumps(doc))
@@ -311,9 +318,13 @@ def test_the_report_draws_each_event_sequence_of_the_recorded_session(watched_se
             # Reference: scipy.stats.kendalltau (tau-b, its default variant).
             expected = scipy.stats.kendalltau(q.bin_ms[ok], q.positions[0, ok]).statistic
             assert q.tau_linear == pytest.approx(expected, abs=1e-12)
+        # The log odds the report shows are the pipeline's: at the decision, else at the last bin.
+        assert set(q.log_odds_zones) == set(config.zone_names())
+        assert q.log_odds_zones["left_well"] == pytest.approx(tuple(row[0] for row in e.log_odds), nan_ok=True)
     html = render_report(record)
     section = html[html.index('id="replay-content"'):]
     section = section[:section.index("</section>")]
+    assert "<th>log odds (towards_left)</th>" in section
     assert 'alt="decoded sequence of each candidate event" src="data:image/png;base64,' in section
     assert f"The first {len(sequences)} candidate events of the replay" in section
 

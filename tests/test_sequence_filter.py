@@ -266,8 +266,6 @@ def test_settings_are_checked():
     with pytest.raises(ConfigError, match="content_slack_cm"):
         RippleSettings(content_slack_cm=-2.0)
     with pytest.raises(ValueError, match="min_log_odds"):
-        TriggerRule("x", zone="goal", kind="replay_mass", min_log_odds=3.0)
-    with pytest.raises(ValueError, match="min_log_odds"):
         TriggerRule("x", zone="goal", kind="replay_towards", min_log_odds=-1.0)
     assert RippleSettings().sequence_kwargs() == {"speed_cm_s": (150.0, 1000.0), "slack_cm": 3.0, "stray_p": 0.1}
 
@@ -278,21 +276,21 @@ def test_a_log_odds_rule_judges_its_row_and_zone_beneath_the_caps():
     bank = TriggerBank(rules, ["goal"], SafetyCaps(refractory_s=0.5))
     bank.arm(0.0)
 
-    def judge(t, index, towards, away, tau=np.nan):
-        return [e.rule for e in bank.content(t, index, index + 1, np.array([0.0]), np.array([tau]),
-                                             np.array([1.0, 1.0]), 0.0, 0.0, np.array([[towards], [away]]))]
+    def judge(t, index, towards, away):
+        return [e.rule for e in bank.content(t, index, index + 1, np.array([0.0]), np.array([[towards], [away]]),
+                                             np.array([1.0, 1.0]), 0.0, 0.0)]
 
     assert judge(1.015, 0, 9.0, -9.0) == []  # one bin: min_bins not reached
-    assert judge(1.030, 1, 3.5, -3.5, tau=0.9) == ["to"]  # the log odds decide, not the rank correlation
+    assert judge(1.030, 1, 3.5, -3.5) == ["to"]
     assert judge(3.015, 0, 0.0, 0.0) == [] and judge(3.030, 1, -4.0, 4.0) == ["from"]
     assert judge(3.215, 0, 0.0, 0.0) == [] and judge(3.230, 1, 5.0, -5.0) == []  # the caps stay beneath
     assert bank.counters["refractory"] == 1
     assert judge(5.015, 0, 0.0, 0.0) == [] and judge(5.030, 1, np.nan, 2.9) == []
     assert judge(5.045, 2, 3.0, -3.0) == []  # the odds must exceed the threshold
-    even = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_log_odds=0.0, min_bins=2)], ["goal"])
+    # The default threshold, 0: fires once towards is more likely than not (a tie is not enough).
+    even = TriggerBank([TriggerRule("to", zone="goal", kind="replay_towards", min_bins=2)], ["goal"])
+    assert TriggerRule("to", zone="goal", kind="replay_towards").min_log_odds == 0.0
     even.arm(0.0)
-    # At 0: fires once towards is more likely than not (a tie is not enough).
-    assert even.content(1.015, 0, 1, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0, np.zeros((2, 1))) == []
-    assert even.content(1.030, 1, 2, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0, np.zeros((2, 1))) == []
-    assert len(even.content(1.045, 2, 3, np.zeros(1), np.zeros(1), np.ones(2), 0.0, 0.0,
-                            np.array([[0.2], [-0.2]]))) == 1
+    assert even.content(1.015, 0, 1, np.zeros(1), np.zeros((2, 1)), np.ones(2), 0.0, 0.0) == []
+    assert even.content(1.030, 1, 2, np.zeros(1), np.zeros((2, 1)), np.ones(2), 0.0, 0.0) == []
+    assert len(even.content(1.045, 2, 3, np.zeros(1), np.array([[0.2], [-0.2]]), np.ones(2), 0.0, 0.0)) == 1

@@ -35,7 +35,7 @@ from typing import Any
 
 import tomli_w
 
-from decoder.config.checks import ConfigError, _from_table
+from decoder.config.checks import ConfigError, _from_table, retired_key
 from decoder.config.rules import SafetyCaps, TriggerRule
 from decoder.config.shell import (
     EndpointSettings,
@@ -293,6 +293,8 @@ def _set_known(item: dict, key: str, value: Any, name: str, where: str) -> None:
     if key == "name":
         raise ConfigError(f"setting {name!r}: names cannot be swept")
     allowed = {f.name for f in dataclasses.fields(TriggerRule)} if where.startswith("[[rules") else None
+    if allowed is not None:
+        retired_key(TriggerRule, key, f"setting {name!r}: {where}")
     if allowed is not None and key not in allowed:
         raise ConfigError(f"setting {name!r}: {where} has no key {key!r}; known keys are {sorted(allowed)}")
     if allowed is None and key not in item:

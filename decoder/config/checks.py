@@ -41,9 +41,18 @@ def _optional_speed(owner: str, field_name: str, value: Any) -> float | None:
     return out
 
 
+def retired_key(cls, key: str, where: str) -> None:
+    """Refuse a key ``cls`` no longer takes (its ``RETIRED`` map), with the sentence that says what to write instead."""
+    why = getattr(cls, "RETIRED", {}).get(key)
+    if why is not None:
+        raise ConfigError(f"{where} sets {key}, which is no longer a key: {why}")
+
+
 def _from_table(cls, table: dict | None, where: str):
     """Build dataclass ``cls`` from a TOML table, rejecting unknown keys."""
     table = dict(table or {})
+    for key in table:
+        retired_key(cls, key, f"[{where}]")
     names = {f.name for f in dataclasses.fields(cls)}
     unknown = sorted(set(table) - names)
     if unknown:

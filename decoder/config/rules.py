@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Literal, get_args
+from typing import ClassVar, Literal, get_args
 
 from decoder.config.checks import (
     _optional_speed,
@@ -59,20 +59,21 @@ class TriggerRule:
     #: The "replay_" kinds: content bins of the event ([ripples] content_bin_s) decoded before
     #: the rule may fire; each rule fires at most once per event.
     min_bins: int = 3
-    #: "replay_towards" / "replay_away" without min_log_odds: least size of the rank correlation
-    #: (Kendall's tau-b) between the bins' times and their decoded distance to the zone (the
-    #: posterior median) over the event's bins so far, in (0, 1]; negative (distance shrinking)
-    #: for towards, positive for away. A rank correlation, so that one bin decoded far off cannot
-    #: swing it. "replay_mass" uses min_mass instead, on the zone's posterior mass averaged over
-    #: the event's bins so far.
-    min_correlation: float = 0.6
-    #: "replay_towards" / "replay_away": when set, the rule judges the sequence filter instead of
-    #: the rank correlation: it fires once the posterior log odds (natural log) that the replay
-    #: moves towards (away from) the zone, rather than otherwise, exceed this, with even prior
-    #: odds (the [ripples] content_speed_cm_s, content_slack_cm, content_stray_p settings; every
-    #: bin so far weighed by its whole likelihood). At least 0: 0 fires as soon as the sequence is
-    #: more likely than not after min_bins bins; 3 asks for odds of 20 to 1.
-    min_log_odds: float | None = None
+    #: "replay_towards" / "replay_away": the rule fires once the posterior log odds (natural log)
+    #: that the replay moves towards (away from) the zone, rather than otherwise, exceed this, with
+    #: even prior odds: the sequence filter over the event's bins so far, every bin weighed by its
+    #: whole likelihood ([ripples] content_speed_cm_s, content_slack_cm, content_stray_p). In
+    #: [0, 50]: 0 fires as soon as the sequence is more likely than not after min_bins bins; 3 asks
+    #: for odds of 20 to 1. "replay_mass" uses min_mass instead, on the zone's posterior mass
+    #: averaged over the event's bins so far.
+    min_log_odds: float = 0.0
+
+    #: Keys a ``[[rules]]`` entry took once and takes no more, each with the sentence that says
+    #: what to write instead (``checks.retired_key`` refuses them by name).
+    RETIRED: ClassVar[dict[str, str]] = {
+        "min_correlation": "sequence rules judge the posterior log odds that the replay moves towards (away "
+                           "from) the zone, not Kendall's tau-b; remove min_correlation and set min_log_odds "
+                           "(natural log, default 0: more likely than not)"}
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name.strip():
@@ -100,24 +101,13 @@ class TriggerRule:
         object.__setattr__(self, "consecutive_steps", steps)
         object.__setattr__(self, "min_bins", _positive_int(owner, "min_bins", self.min_bins))
         try:
-            r = float(self.min_correlation)
+            odds = float(self.min_log_odds)
         except (TypeError, ValueError):
-            r = math.nan
-        if not 0.0 < r <= 1.0:
-            raise ValueError(f"{owner}: min_correlation must be a number in (0, 1], got {self.min_correlation!r}")
-        object.__setattr__(self, "min_correlation", r)
-        if self.min_log_odds is not None:
-            if self.kind not in ("replay_towards", "replay_away"):
-                raise ValueError(f"{owner}: min_log_odds judges a sequence; it applies to kind "
-                                 f"'replay_towards' or 'replay_away' only, not {self.kind!r}")
-            try:
-                odds = float(self.min_log_odds)
-            except (TypeError, ValueError):
-                odds = math.nan
-            if not 0.0 <= odds <= 50.0:
-                raise ValueError(f"{owner}: min_log_odds must be a number in [0, 50] (natural log), "
-                                 f"got {self.min_log_odds!r}")
-            object.__setattr__(self, "min_log_odds", odds)
+            odds = math.nan
+        if not 0.0 <= odds <= 50.0:
+            raise ValueError(f"{owner}: min_log_odds must be a number in [0, 50] (natural log), "
+                             f"got {self.min_log_odds!r}")
+        object.__setattr__(self, "min_log_odds", odds)
         lo = _optional_speed(owner, "min_speed_cm_s", self.min_speed_cm_s)
         hi = _optional_speed(owner, "max_speed_cm_s", self.max_speed_cm_s)
         if lo is not None and hi is not None and lo > hi:

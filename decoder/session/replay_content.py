@@ -49,11 +49,11 @@ As the event unfolds, after each bin and using only the bins so far,
   from it, from the sequence filter
   (:class:`decoder.inference.sequence_filter.SequenceFilter`): every bin of
   the event so far weighed by its whole likelihood over the distance to the
-  zone, against a replay moving the other way or no sequence at all; what a
-  sequence rule with ``min_log_odds`` judges (``ContentBin.log_odds``);
-* Kendall's rank correlation (tau-b) between the bins' times and their
-  decoded distance to the zone (the posterior median of the distance): the
-  measure a sequence rule without ``min_log_odds`` judges. A rank correlation, because one bin
+  zone, against a replay moving the other way or no sequence at all: the one
+  measure the sequence rules judge (``ContentBin.log_odds``, ``min_log_odds``);
+* reported beside it, judged by no rule: Kendall's rank correlation (tau-b)
+  between the bins' times and their decoded distance to the zone (the
+  posterior median of the distance). A rank correlation, because one bin
   decoded far away (a bin where the resting animal's own place cells
   outnumber the replay's spikes) changes at most ``n - 1`` of its
   ``n (n - 1) / 2`` pairs, where it would swing a least-squares line; the
@@ -69,9 +69,10 @@ As the event unfolds, after each bin and using only the bins so far,
   Kloosterman & Wilson (2009, Neuron 63:497), our own design: the line is
   fitted over the bins seen so far, not the whole event, and it is fitted to
   the distance to a zone, which serves an open field, a track or a maze alike.
+  Reported, judged by no rule.
 
-The judgement of these measures by content rules is the trigger bank's
-(``TriggerBank.content``), beneath the same caps as every rule.
+The judgement of the zone mass and the log odds by content rules is the
+trigger bank's (``TriggerBank.content``), beneath the same caps as every rule.
 """
 
 from __future__ import annotations
@@ -249,34 +250,13 @@ class SequenceMeasures:
         """Kendall's tau-b of the bins' times and median distances to each zone, shape (n_zones,).
 
         NaN before two bins, or where every median distance is the same.
+        Reported for each bin; no rule judges it (the sequence rules judge
+        the sequence filter's log odds).
         """
         n0 = self.n_bins * (self.n_bins - 1) / 2
         with np.errstate(invalid="ignore", divide="ignore"):
             tau = np.where(n0 - self._ties > 0, self._concordance / np.sqrt(n0 * (n0 - self._ties)), np.nan)
         return tau
-
-    def rank_z(self) -> np.ndarray:
-        """The evidence behind :meth:`rank_correlation`: its normal approximation's z score, shape (n_zones,).
-
-        ``z = S / sqrt(var(S))`` with the variance of ``S`` under independence
-        corrected for ties in the median distances (Kendall 1948, Rank
-        Correlation Methods; times have none): ``var(S) = (n (n - 1) (2n + 5)
-        - sum_g t_g (t_g - 1) (2 t_g + 5)) / 18`` over the groups of ``t_g``
-        equal values. Its sign is the correlation's; its size grows with the
-        bins that agree, so a threshold on it asks more of few bins than of
-        many. NaN before two bins, or where every median distance is the same.
-        """
-        n = self.n_bins
-        if n < 2:
-            return np.full(self._concordance.shape, np.nan)
-        tie_term = np.zeros(self._concordance.shape)
-        if self._ties.any():
-            for z in np.flatnonzero(self._ties):
-                _, t = np.unique(np.array(self._medians)[:, z], return_counts=True)
-                tie_term[z] = np.sum(t * (t - 1.0) * (2.0 * t + 5.0))
-        var = (n * (n - 1.0) * (2.0 * n + 5.0) - tie_term) / 18.0
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(var > 0, self._concordance / np.sqrt(var), np.nan)
 
     @property
     def mean_mass(self) -> np.ndarray:
@@ -285,6 +265,8 @@ class SequenceMeasures:
 
     def line(self) -> tuple[np.ndarray, np.ndarray]:
         """Weighted correlation of time and distance to each zone, and the line's slope (cm/s).
+
+        Reported for each bin (the issue's line fit); no rule judges it.
 
         Returns
         -------
@@ -325,19 +307,16 @@ class ContentBin(NamedTuple):
         Zone mass averaged over the event's bins so far (NaN before the first one used).
     rank_correlation : ndarray of float64, shape (n_zones,)
         Kendall's tau-b of time and median decoded distance to each zone over
-        the bins so far (negative: moving towards the zone); what the
-        sequence rules judge.
+        the bins so far (negative: moving towards the zone). Reported; no rule judges it.
     correlation, slope_cm_s : ndarray of float64, shape (n_zones,)
         Weighted correlation of time and distance to each zone over the bins
         so far, and the fitted line's slope (negative: moving towards the zone).
-    rank_z : ndarray of float64, shape (n_zones,)
-        The z score of ``rank_correlation`` (:meth:`SequenceMeasures.rank_z`):
-        the evidence behind it.
+        Reported; no rule judges them.
     log_odds : ndarray of float64, shape (2, n_zones)
         The posterior log odds that the event's replay moves towards each zone
         (row 0) and away from it (row 1), over every bin so far
         (:meth:`decoder.inference.sequence_filter.SequenceFilter.log_odds`):
-        what a sequence rule with ``min_log_odds`` judges.
+        what the sequence rules judge (``min_log_odds``).
     n_marks_over_cap : int
         Marked spikes of the bin beyond ``max_marks_per_bin``, left out.
     """
@@ -354,7 +333,6 @@ class ContentBin(NamedTuple):
     rank_correlation: np.ndarray
     correlation: np.ndarray
     slope_cm_s: np.ndarray
-    rank_z: np.ndarray
     log_odds: np.ndarray
     n_marks_over_cap: int = 0
 
@@ -619,5 +597,5 @@ class ReplayContent:
         self.sequence.step(step.posterior, observed=used)
         r, slope = m.line()
         return ContentBin(stop, self._onset_s, self._start_s, self._next, m.n_bins, step.posterior, step.map_xy_cm,
-                          n_spikes, m.mean_mass, m.rank_correlation(), r, slope, m.rank_z(),
+                          n_spikes, m.mean_mass, m.rank_correlation(), r, slope,
                           self.sequence.log_odds(), over_cap)

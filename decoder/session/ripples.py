@@ -129,8 +129,12 @@ class ContentEvent:
         The decoded sequence, one tuple per content bin: the bin's end (data
         time, s), its MAP position x and y (cm) and its spikes. For display
         (the monitor, the report); not in :meth:`as_dict`.
-    rank_correlation : list of float
-        The newest bin's Kendall tau-b per zone (``ContentBin.rank_correlation``; NaN before two bins).
+    log_odds : list of list of float
+        The posterior log odds that the replay moves towards (first list) and
+        away from (second list) each zone (``ContentBin.log_odds``, what the
+        sequence rules judge): as of the decision (the bin whose events came
+        first) once one is made, the newest bin's before; empty before the
+        first bin.
     """
 
     onset_s: float
@@ -139,14 +143,15 @@ class ContentEvent:
     decided: list[str] | None = None
     decision_s: float = math.nan
     sequence: list[tuple[float, float, float, int]] = field(default_factory=list)
-    rank_correlation: list[float] = field(default_factory=list)
+    log_odds: list[list[float]] = field(default_factory=list)
 
     def as_dict(self) -> dict:
-        """Plain JSON values: onset (s), duration and decision time after the onset (ms; None when unknown)."""
+        """Plain JSON values: onset (s), duration and decision time after the onset (ms), log odds (None when unknown)."""
         def ms(t: float) -> float | None:
             return round(1e3 * (t - self.onset_s), 3) if math.isfinite(t) else None
+        odds = [[round(v, 3) if math.isfinite(v) else None for v in row] for row in self.log_odds]
         return {"onset_s": self.onset_s, "duration_ms": ms(self.offset_s), "n_bins": self.n_bins,
-                "decided": list(self.decided or ()), "decision_ms": ms(self.decision_s)}
+                "decided": list(self.decided or ()), "decision_ms": ms(self.decision_s), "log_odds": odds}
 
 
 class RippleStream:
@@ -262,17 +267,17 @@ class RippleStream:
             x, y, speed = self.tracked.at_xy(t)
             xy = np.array((x, y))
             lag = max(watermark_s - t, 0.0)
-            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.rank_correlation, xy, speed, lag,
-                                             b.log_odds))
+            events = tuple(self.bank.content(t, b.index, b.n_used, b.mean_mass, b.log_odds, xy, speed, lag))
             self.counters["content_bins"] += 1
             self.counters["content_marks_over_cap"] += b.n_marks_over_cap
             self.counters["events"] += len(events)
             record = self.events_[-1]
             record.n_bins += 1
             record.sequence.append((b.t_s, float(b.map_xy_cm[0]), float(b.map_xy_cm[1]), b.n_spikes))
-            record.rank_correlation = b.rank_correlation.tolist()
-            if events and not record.decided:
-                record.decision_s = t
+            if not record.decided:
+                record.log_odds = b.log_odds.tolist()
+                if events:
+                    record.decision_s = t
             record.decided = (record.decided or []) + [ev.rule for ev in events]
             h.update(struct.pack("<di", b.t_s, b.n_spikes))
             h.update(b.posterior.tobytes())

@@ -60,12 +60,9 @@ ripple detected after arming is always a new entry.
 Content rules (``kind = "replay_mass"``, ``"replay_towards"``, ``"replay_away"``)
 are judged by ``TriggerBank.content`` on each content bin of a ripple
 detected at rest, from the event's measures so far: the zone's posterior mass
-averaged over the bins (``>= min_mass``); for a sequence rule with
-``min_log_odds``, the posterior log odds that the replay moves towards (away
-from) the zone (``decoder.inference.sequence_filter``, ``> min_log_odds``);
-without it, Kendall's rank correlation (tau-b) of bin time and decoded distance
-to the zone (``<= -min_correlation`` towards, ``>= min_correlation`` away);
-each once the measures cover ``min_bins`` bins (bins with spikes), the speed
+averaged over the bins (``>= min_mass``); for a sequence rule, the posterior
+log odds that the replay moves towards (away from) the zone
+(``decoder.inference.sequence_filter``, ``> min_log_odds``); each once the measures cover ``min_bins`` bins (bins with spikes), the speed
 bounds holding. Each event is one entry: a rule makes at most one would-be
 event per event (spent by it whether or not the caps let it through), and
 the next event's first bin clears every content rule. The would-be events
@@ -483,9 +480,8 @@ class TriggerBank:
     def has_content_rules(self) -> bool:
         return bool(self._content_rules)
 
-    def content(self, t_s: float, index: int, n_used: int, mean_mass: np.ndarray, correlation: np.ndarray,
-                tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float,
-                log_odds: np.ndarray | None = None) -> list[TriggerEvent]:
+    def content(self, t_s: float, index: int, n_used: int, mean_mass: np.ndarray, log_odds: np.ndarray,
+                tracked_xy_cm: np.ndarray, tracked_speed_cm_s: float, stream_lag_s: float) -> list[TriggerEvent]:
         """Judge one content bin of a candidate event; return the events it makes.
 
         Parameters
@@ -496,19 +492,16 @@ class TriggerBank:
             The bin's place in its event, 0 for the first (which clears every content rule).
         n_used : int
             The event's bins so far that its measures cover (``min_bins`` counts these).
-        mean_mass, correlation : ndarray of float64, shape (n_zones,)
-            The event's zone mass averaged over its bins so far, and Kendall's
-            rank correlation (tau-b) of bin time and decoded distance to each zone
-            (``decoder.session.replay_content``); NaN satisfies no rule.
+        mean_mass : ndarray of float64, shape (n_zones,)
+            The event's zone mass averaged over its bins so far; NaN satisfies no rule.
+        log_odds : ndarray of float64, shape (2, n_zones)
+            The posterior log odds that the replay moves towards (row 0) and away
+            from (row 1) each zone (``ContentBin.log_odds``); NaN satisfies no rule.
         tracked_xy_cm : ndarray of float64, shape (2,)
         tracked_speed_cm_s : float
             NaN when unknown; never satisfies a speed bound.
         stream_lag_s : float
             As for :meth:`ripple`.
-        log_odds : ndarray of float64, shape (2, n_zones), optional
-            The posterior log odds that the replay moves towards (row 0) and away
-            from (row 1) each zone (``ContentBin.log_odds``), for the rules with
-            ``min_log_odds``; None or NaN satisfies none.
         """
         t = float(t_s)
         if not math.isfinite(t):
@@ -527,13 +520,8 @@ class TriggerBank:
                 continue
             if rule.kind == "replay_mass":
                 holds = mean_mass[zi] >= rule.min_mass
-            elif rule.min_log_odds is not None:
-                row = 0 if rule.kind == "replay_towards" else 1
-                holds = log_odds is not None and log_odds[row, zi] > rule.min_log_odds
-            elif rule.kind == "replay_towards":
-                holds = correlation[zi] <= -rule.min_correlation
             else:
-                holds = correlation[zi] >= rule.min_correlation
+                holds = log_odds[0 if rule.kind == "replay_towards" else 1, zi] > rule.min_log_odds
             speed = tracked_speed_cm_s
             if rule.min_speed_cm_s is not None and not speed >= rule.min_speed_cm_s:
                 holds = False

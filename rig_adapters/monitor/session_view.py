@@ -373,7 +373,7 @@ class SessionView:
             "bin_ms": [_number(round(float(v), 2)) for v in bins[:, 0]],
             "positions": [[_number(round(float(v), 2)) for v in s] for s in series],
             "n_spikes": bins[:, 3].astype(int).tolist(),
-            "tau": [_number(v) for v in e["tau"]],
+            "log_odds": [[_number(round(float(v), 2)) for v in row] for row in e["log_odds"].reshape(2, -1)],
         }
 
     def _ripple_packet(self) -> dict | None:

@@ -55,6 +55,7 @@ from rig_adapters.offline.report_data import (
     SessionRecord,
     SessionTrace,
     content_event_rows,
+    deciding_rule,
     event_sequences,
     finite_number,
     format_figure,
@@ -232,27 +233,36 @@ def _header_section(record: SessionRecord) -> str:
 
 def _content_section(record: SessionRecord) -> str:
     """The candidate ripple events and what their content was decided to be; nothing without replay content."""
-    rows = content_event_rows(record.summary)
+    config = record.config
+    rule = deciding_rule(config.rules, (), list(config.zone_names()))
+    rows = content_event_rows(record.summary, None if rule is None else rule[1:])
     if not rows:
         return ""
     body = "".join("<tr>" + "".join(f'<td class="num">{html.escape(v)}</td>' if i != 2 else f"<td>{html.escape(v)}</td>"
                                     for i, v in enumerate(row)) + "</tr>" for row in rows)
-    config = record.config
     sequences = event_sequences(record.content_events, config.environment, config.zone_names(),
                                 config.ripples.content_min_spikes)
     along = "" if is_arena(config.environment) else (
         " τ is Kendall's tau-b of the bins' times and their decoded positions along the track, over the bins "
-        "with enough spikes.")
+        "with enough spikes; it is descriptive, no rule judges it.")
+    odds_head, odds_note = "", ""
+    if rule is not None:
+        odds_head = f"<th>log odds ({html.escape(rule[0])})</th>"
+        odds_note = (f" The log odds are the posterior log odds (natural log, even prior odds) that the replay "
+                     f"moves as the sequence rule {html.escape(rule[0])!s} asks, what that rule judges: at the "
+                     "decision, or at the last bin when none was made.")
     return ('<section id="replay-content"><h2>Ripple events and their content</h2>'
             f'<p class="note">The newest {len(rows)} candidate events. Duration runs from the LFP onset to its '
             "offset; the decided content names the content rules that fired (none: no rule was satisfied); the "
-            "decision time is from the onset, in data time.</p>"
-            "<table><tr><th>onset (s)</th><th>duration (ms)</th><th>decided content</th><th>decision (ms)</th></tr>"
+            f"decision time is from the onset, in data time.{odds_note}</p>"
+            "<table><tr><th>onset (s)</th><th>duration (ms)</th><th>decided content</th><th>decision (ms)</th>"
+            f"{odds_head}</tr>"
             f"{body}</table>"
             f'<h3>Decoded sequences</h3><p class="note">The first {len(sequences)} candidate events of the replay '
             "with a decoded bin: each content bin's most probable position against its end, in ms after the "
             "onset, coloured by the event's decided content; small hollow marks are bins with too few spikes "
-            f"for the content measures ([ripples] content_min_spikes).{along}</p>"
+            "for the content measures ([ripples] content_min_spikes); “ln odds” is the log odds of the sequence "
+            f"rule that decided the event (else of the first sequence rule) at the decision or the last bin.{along}</p>"
             + _image(event_sequences_figure(sequences, config), "decoded sequence of each candidate event",
                      "No candidate event has a decoded bin.")
             + "</section>")

@@ -455,18 +455,40 @@ def sweep_figures(sweep: dict) -> list[str]:
 MAX_CONTENT_EVENTS = 50
 
 
-def content_event_rows(summary: dict) -> list[tuple[str, str, str, str]]:
+def content_event_rows(summary: dict, odds_at: tuple[int, int] | None = None) -> list[tuple[str, ...]]:
     """The newest candidate events of a session's summary as the report's table rows, in text.
 
     Each row: onset (s of data time), duration (ms, onset to the LFP offset),
     decided content (the content rules that fired, or "none") and the
-    decision time (ms after the onset). Empty when the session decoded no
+    decision time (ms after the onset); with ``odds_at`` (row: 0 towards,
+    1 away; zone index), the event's log odds there (``ContentEvent.as_dict``:
+    at the decision, else at the last bin). Empty when the session decoded no
     replay content.
     """
     events = ((summary.get("ripples") or {}).get("events") or [])[-MAX_CONTENT_EVENTS:]
-    return [(format_figure(e.get("onset_s"), 6), format_figure(e.get("duration_ms")),
-             ", ".join(e.get("decided") or []) or "none", format_figure(e.get("decision_ms")))
-            for e in events]
+    rows = []
+    for e in events:
+        row = (format_figure(e.get("onset_s"), 6), format_figure(e.get("duration_ms")),
+               ", ".join(e.get("decided") or []) or "none", format_figure(e.get("decision_ms")))
+        if odds_at is not None:
+            odds = e.get("log_odds") or []
+            value = odds[odds_at[0]][odds_at[1]] if len(odds) == 2 and odds_at[1] < len(odds[0]) else None
+            row += (format_figure(value),)
+        rows.append(row)
+    return rows
+
+
+def deciding_rule(rules: tuple, decided: tuple[str, ...], zone_names: list[str]) -> tuple[str, int, int] | None:
+    """The sequence rule whose log odds an event's panel and row show: name, row (0 towards, 1 away), zone index.
+
+    The first sequence rule among ``decided``, else the config's first
+    sequence rule; None without sequence rules.
+    """
+    sequence = [r for r in rules if r.kind in ("replay_towards", "replay_away")]
+    chosen = next((r for name in decided for r in sequence if r.name == name), sequence[0] if sequence else None)
+    if chosen is None:
+        return None
+    return chosen.name, 0 if chosen.kind == "replay_towards" else 1, zone_names.index(chosen.zone)
 
 
 #: Candidate events whose decoded sequences the report draws at most (the session's first).
@@ -519,9 +541,11 @@ class EventSequence:
     tau_linear : float
         Kendall's tau-b of the used bins' times and linear MAP positions;
         NaN in an arena or with fewer than two used bins.
-    tau_zones : dict of str to float
-        The pipeline's own tau per zone at the last bin (time against the
-        decoded distance to the zone, what the sequence rules judge).
+        Descriptive: no rule judges it.
+    log_odds_zones : dict of str to (float, float)
+        Per zone, the posterior log odds that the replay moves towards it and
+        away from it (``ContentEvent.log_odds``, what the sequence rules
+        judge): at the decision once one was made, at the last bin otherwise.
     """
 
     onset_s: float
@@ -533,7 +557,7 @@ class EventSequence:
     decided: tuple[str, ...]
     decision_ms: float
     tau_linear: float
-    tau_zones: dict
+    log_odds_zones: dict
 
 
 def event_sequences(events: list[ContentEvent], environment: Environment, zone_names: list[str],
@@ -565,6 +589,6 @@ def event_sequences(events: list[ContentEvent], environment: Environment, zone_n
             onset_s=e.onset_s, duration_ms=1e3 * (e.offset_s - e.onset_s), bin_ms=1e3 * (rows[:, 0] - e.onset_s),
             positions=positions, n_spikes=n_spikes, used=used, decided=tuple(dict.fromkeys(e.decided or ())),
             decision_ms=1e3 * (e.decision_s - e.onset_s), tau_linear=tau,
-            tau_zones=dict(zip(zone_names, e.rank_correlation)),
+            log_odds_zones=dict(zip(zone_names, zip(*e.log_odds))) if e.log_odds else {},
         ))
     return out

@@ -30,6 +30,7 @@ from rig_adapters.offline.report_data import (
     SWEEP_X_FIGURE,
     SessionRecord,
     SessionTrace,
+    deciding_rule,
     finite_number,
     format_figure,
     sweep_figures,
@@ -317,6 +318,7 @@ def event_sequences_figure(sequences: list[EventSequence], config: ExperimentCon
     env = config.environment
     arena = is_arena(env)
     rules = [r.name for r in config.rules if r.kind.startswith("replay_")]
+    zone_names = list(config.zone_names())
     colours = content_colours(rules)
     ncols = min(6, len(sequences))
     nrows = math.ceil(len(sequences) / ncols)
@@ -341,7 +343,10 @@ def event_sequences_figure(sequences: list[EventSequence], config: ExperimentCon
             ax.axvline(q.decision_ms, color=INK, lw=0.8, ls=":")
         content = ", ".join(q.decided) if q.decided else "none decided"
         tau = "" if arena else f" · τ {format_figure(q.tau_linear, 2)}"
-        ax.set_title(f"t={q.onset_s:.2f} s · {len(q.bin_ms)} bins\n{content}{tau}", fontsize=7)
+        rule = deciding_rule(config.rules, q.decided, zone_names)
+        odds = q.log_odds_zones.get(zone_names[rule[2]]) if rule else None
+        lo = "" if odds is None else f" · ln odds {format_figure(odds[rule[1]], 2)}"
+        ax.set_title(f"t={q.onset_s:.2f} s · {len(q.bin_ms)} bins\n{content}{lo}{tau}", fontsize=7)
     handles = [Line2D([], [], ls="", marker="o", markerfacecolor=colours[name], markeredgecolor=INK,
                       label=f"decided: {name}") for name in rules]
     handles.append(Line2D([], [], ls="", marker="o", markerfacecolor="none", markeredgecolor=UNDECIDED_COLOUR,

@@ -352,8 +352,10 @@ RIPPLE_ENVELOPE_MAX = 2000
 RIPPLE_EVENTS_MAX = 8
 #: Content bins of one event in one state frame at most (its first).
 RIPPLE_BINS_MAX = 200
-#: Names of decided content rules, and zones' tau values, of one event at most.
+#: Names of decided content rules, and zones in an event's log odds, of one event at most.
 RIPPLE_NAMES_MAX = 64
+#: Log odds beyond this size travel as this (a hypothesis without likelihood gives an infinite one).
+RIPPLE_LOG_ODDS_MAX = 1000.0
 #: A loop attaches the ripple view to a state frame at least this often (wall s) while frames flow.
 RIPPLE_VIEW_PERIOD_S = 0.25
 #: ... and sooner when an event begins or ends, but never twice within this (wall s).
@@ -362,7 +364,7 @@ RIPPLE_VIEW_MIN_GAP_S = 0.05
 _RIPPLE_KEYS = (("threshold_sd", "thr"), ("end_sd", "end"), ("ready", "rdy"), ("t0_s", "t0"), ("step_s", "dt"),
                 ("envelope_sd", "env"), ("n_events", "n"), ("events", "ev"))
 _EVENT_KEYS = (("onset_s", "on"), ("offset_s", "off"), ("decided", "dec"), ("decision_s", "ds"), ("bins", "sq"),
-               ("tau", "tau"))
+               ("log_odds", "lo"))
 _RIPPLE_NAMES = frozenset(name for name, _ in _RIPPLE_KEYS)
 _EVENT_NAMES = frozenset(name for name, _ in _EVENT_KEYS)
 #: Columns of an event's ``bins``: bin end (ms after the onset), MAP x and y (cm), spikes.
@@ -411,12 +413,24 @@ def ripple_view(detector, events, n_events: int = RIPPLE_EVENTS_MAX, envelope_s:
             checked = cache[key] = _ripple_event({
                 "onset_s": e.onset_s, "offset_s": e.offset_s, "decided": list(e.decided or ())[:RIPPLE_NAMES_MAX],
                 "decision_s": e.decision_s, "bins": bins.astype(_F32),
-                "tau": np.array(e.rank_correlation[:RIPPLE_NAMES_MAX], _F32)})
+                "log_odds": wire_log_odds(e.log_odds)})
         out_events.append(checked)
     return _ripples_value({"threshold_sd": detector.threshold_sd, "end_sd": detector.end_sd,
                            "ready": bool(detector.ready_), "t0_s": t0_s, "step_s": detector.trace_.step_s,
                            "envelope_sd": envelope[-RIPPLE_ENVELOPE_MAX:], "n_events": len(events),
                            "events": out_events})
+
+
+def wire_log_odds(log_odds: list) -> np.ndarray:
+    """An event's log odds (2 rows of n_zones) as the flat float32 vector ``lo``: towards row, then away row.
+
+    The first ``RIPPLE_NAMES_MAX`` zones; sizes beyond ``RIPPLE_LOG_ODDS_MAX`` clipped to it, NaN kept;
+    empty before the event's first bin.
+    """
+    if not log_odds:
+        return np.zeros(0, _F32)
+    a = np.array(log_odds, np.float64)[:, :RIPPLE_NAMES_MAX]
+    return np.clip(a, -RIPPLE_LOG_ODDS_MAX, RIPPLE_LOG_ODDS_MAX).astype(_F32).ravel()
 
 
 class _CheckedEvent(dict):
@@ -498,10 +512,13 @@ def _ripple_event(e: Any) -> _CheckedEvent:
     spikes = bins[:, 3]
     if not ((spikes >= 0) & (spikes == np.floor(spikes))).all():
         raise _bad_ripples("'bins' must hold a whole, non-negative spike count in its fourth column", value=spikes)
-    tau = _f32("tau", e.get("tau", ()), RIPPLE_NAMES_MAX)
+    odds = _f32("log_odds", e.get("log_odds", ()), 2 * RIPPLE_NAMES_MAX)
+    if odds.size % 2:
+        raise _bad_ripples("'log_odds' must hold two rows of one value per zone (towards, then away)", odds)
     return _CheckedEvent(onset_s=_real("onset_s", e.get("onset_s"), finite=True),
                          offset_s=_real("offset_s", e.get("offset_s", math.nan)), decided=list(decided),
-                         decision_s=_real("decision_s", e.get("decision_s", math.nan)), bins=bins, tau=tau)
+                         decision_s=_real("decision_s", e.get("decision_s", math.nan)), bins=bins,
+                         log_odds=odds)
 
 
 def _ripples_value(value: Any) -> _CheckedRipples:
