@@ -175,13 +175,16 @@ def _status(keys, endpoint, own=None, server="decoder", timeout_ms=10_000):
     req = zmq.Context.instance().socket(zmq.REQ)
     req.setsockopt(zmq.LINGER, 0)
     req.setsockopt(zmq.RCVTIMEO, timeout_ms)
+    # A refused handshake can drop the connection's pipe before the request is queued; a REQ socket
+    # with no pipe then blocks in send, so the send has a timeout too and counts as no reply.
+    req.setsockopt(zmq.SNDTIMEO, timeout_ms)
     try:
         if own is not None:
             server_public = zmq.curve_keypair()[0] if server is None else _key(keys, server).public
             as_client(req, _key(keys, own), server_public)
         req.connect(endpoint)
-        req.send(protocol.encode_control_request("status"))
         try:
+            req.send(protocol.encode_control_request("status"))
             return protocol.decode_control_reply(req.recv())
         except zmq.Again:
             return None
