@@ -416,7 +416,7 @@ def fit_temperature(
             above = [mass_above(p, p[true_bin], scratch) for p, true_bin in zip(blurred, all_true_bins[known_at])]
         # Inside when the bins more probable than the true one hold less than the mass
         # (filtering.hpd_contains); the region is the decoder's n_hpd most probable bins.
-        inside = sum(bool(a < HPD_MASS) for a in above)
+        inside = int(np.count_nonzero(np.asarray(above) < HPD_MASS))
         mass = 0.0
         for i, at in enumerate(mass_at):
             if blur is None:

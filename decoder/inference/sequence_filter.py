@@ -87,6 +87,13 @@ def uniform_moves(low_cm: float, high_cm: float, level_cm: float) -> tuple[np.nd
     return p / p.sum(), lo
 
 
+def _kernel_of(backend: str):
+    """The compiled step (``"numba"``) or its numpy twin (``"numpy"``)."""
+    if backend not in ("numba", "numpy"):
+        raise ValueError(f"backend must be 'numba' or 'numpy', got {backend!r}")
+    return sequence_step if backend == "numba" else sequence_step_numpy
+
+
 class SequenceFilter:
     """Three forward filters per zone over the replayed place's distance to it, one content bin at a time.
 
@@ -136,11 +143,9 @@ class SequenceFilter:
             raise ValueError(f"slack_cm must be a distance >= 0 cm, got {slack_cm!r}")
         if not 0 <= stray_p < 1:
             raise ValueError(f"stray_p must lie in [0, 1), got {stray_p!r}")
-        if backend not in ("numba", "numpy"):
-            raise ValueError(f"backend must be 'numba' or 'numpy', got {backend!r}")
+        self._kernel = _kernel_of(backend)
         self.level_cm, self.bin_s = float(level_cm), float(bin_s)
         self.speed_cm_s, self.slack_cm, self.stray_p = (lo, hi), float(slack_cm), float(stray_p)
-        self._kernel = sequence_step if backend == "numba" else sequence_step_numpy
         on = valid[None, :] & np.isfinite(d)
         level = np.where(on, np.floor(np.nan_to_num(d) / level_cm + 0.5), -1).astype(np.int64)
         self.n_levels_ = np.array([row.max() + 1 if (row >= 0).any() else 0 for row in level], np.int64)
@@ -184,9 +189,7 @@ class SequenceFilter:
         """The same filter, reset, on ``backend`` (``"numba"`` or ``"numpy"``; None keeps this one's)."""
         twin = copy.copy(self)
         if backend is not None:
-            if backend not in ("numba", "numpy"):
-                raise ValueError(f"backend must be 'numba' or 'numpy', got {backend!r}")
-            twin._kernel = sequence_step if backend == "numba" else sequence_step_numpy
+            twin._kernel = _kernel_of(backend)
         twin._alpha, twin._log_lik, twin._log_odds, twin._scratch = (
             a.copy() for a in (self._alpha, self._log_lik, self._log_odds, self._scratch))
         twin.reset()
